@@ -1,0 +1,1 @@
+//! A fitted model out as text: SPICE subcircuit, Touchstone 1-port, CSV.

@@ -1,0 +1,194 @@
+//! Estimation: initial values from the curve, Levenberg–Marquardt, model selection, uncertainty and
+//! derived figures. Everything here is pure: a [`Sweep`] and [`FitOptions`] in, a [`FitReport`] out.
+//!
+//! The report's field names are part of the JSON contract (CLI, HTTP, database): add fields, do not
+//! rename them.
+
+use crate::model::FittedModel;
+use serde::{Deserialize, Serialize};
+use std::sync::Arc;
+use std::sync::atomic::AtomicBool;
+
+/// The engine version stored with every fit, so a refit by a newer engine is a new revision.
+pub const ENGINE_VERSION: &str = env!("CARGO_PKG_VERSION");
+
+/// A separate four-wire DC resistance reading that pins `rdc_ohm`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct DcrReading {
+    pub value_ohm: f64,
+    /// Standard uncertainty of the reading; when absent, 0.5 % of the value plus 1 mΩ.
+    pub sigma_ohm: Option<f64>,
+}
+
+/// Which model family to fit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ModelFamily {
+    #[default]
+    Lumped,
+    Rational,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default)]
+pub struct FitOptions {
+    pub family: ModelFamily,
+    pub dcr: Option<DcrReading>,
+    /// Most extra resonant sections model selection may add (0..=3).
+    pub max_sections: usize,
+    pub max_iterations: u64,
+    /// Wall-clock bound for one whole fit (all candidate models), in seconds.
+    pub time_limit_s: f64,
+    /// Frequencies at which the report gives effective L and Q.
+    pub report_frequencies_hz: Vec<f64>,
+}
+
+impl Default for FitOptions {
+    fn default() -> Self {
+        FitOptions {
+            family: ModelFamily::Lumped,
+            dcr: None,
+            max_sections: 3,
+            max_iterations: 200,
+            time_limit_s: 10.0,
+            report_frequencies_hz: Vec::new(),
+        }
+    }
+}
+
+/// Hooks for a caller that runs the fit on a worker: cancellation and progress. Not serialised.
+#[derive(Clone, Default)]
+pub struct FitControl {
+    /// Set to true to cancel; the fit returns [`FitError::Cancelled`].
+    pub cancel: Option<Arc<AtomicBool>>,
+    /// Called with a fraction in 0..=1 as candidate models finish.
+    pub progress: Option<Arc<dyn Fn(f64) + Send + Sync>>,
+}
+
+/// One-sigma uncertainty with the same keys as the lumped model; `None` where the parameter is absent
+/// from the chosen model or not identifiable from the data.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct LumpedUncertainty {
+    pub l0_h: Option<f64>,
+    pub rdc_ohm: Option<f64>,
+    pub k_ac_ohm_per_sqrt_hz: Option<f64>,
+    pub rp_ohm: Option<f64>,
+    pub cp_f: Option<f64>,
+    pub ls_h: Option<f64>,
+    pub sections: Vec<SectionUncertainty>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+pub struct SectionUncertainty {
+    pub r_ohm: Option<f64>,
+    pub l_h: Option<f64>,
+    pub c_f: Option<f64>,
+}
+
+/// Correlation matrix of the fitted parameters, rows and columns in `names` order
+/// (e.g. "l0_h", "sections[0].c_f").
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Correlation {
+    pub names: Vec<String>,
+    pub matrix: Vec<Vec<f64>>,
+}
+
+/// Effective inductance and Q at one frequency, from the fitted model.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct PointFigures {
+    pub frequency_hz: f64,
+    /// Im Z / ω.
+    pub l_eff_h: f64,
+    /// Im Z / Re Z.
+    pub q: f64,
+    pub z_mag_ohm: f64,
+}
+
+/// Figures derived from the fitted model (never from raw points).
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Derived {
+    /// First parallel resonance (Im Z crosses zero from + to −), or `None` when above the sweep.
+    pub srf_hz: Option<f64>,
+    /// When `srf_hz` is `None`: the SRF lies above this frequency (the top of the sweep).
+    pub srf_above_hz: Option<f64>,
+    /// Im Z crossing from − to + (|Z| minima) inside the band.
+    pub series_resonances_hz: Vec<f64>,
+    /// Every Im Z crossing from + to − inside the band, the SRF first.
+    pub parallel_resonances_hz: Vec<f64>,
+    pub q_peak: Option<f64>,
+    pub q_peak_hz: Option<f64>,
+    /// 1/((2π·SRF)²·L0): what the usual one-line estimate would say.
+    pub naive_cp_f: Option<f64>,
+    /// (naive − fitted)/fitted in percent.
+    pub naive_cp_error_percent: Option<f64>,
+    /// rp/(2π·L0): the equivalent single-pole permeability roll-off corner.
+    pub core_corner_hz: Option<f64>,
+    /// L and Q at the requested frequencies.
+    pub at_frequencies: Vec<PointFigures>,
+}
+
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Quality {
+    /// sqrt(Σ |r/σ|² / (2N)): 1 when the residuals match the stated uncertainty.
+    pub rms_weighted: f64,
+    /// max |Z_fit − Z_meas| / |Z_meas|.
+    pub max_relative_error: f64,
+    pub max_relative_error_at_hz: f64,
+    pub points: usize,
+    pub parameters: usize,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Termination {
+    /// Relative cost or step change below tolerance.
+    Converged,
+    MaxIterations,
+    TimeLimit,
+    /// Damping grew without a cost decrease: at a minimum to machine precision or stuck.
+    NoFurtherProgress,
+}
+
+/// One candidate tried during model selection.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Candidate {
+    /// e.g. "l0+rdc+cp+rp+k_ac+ls+1s".
+    pub label: String,
+    pub parameters: usize,
+    pub cost: f64,
+    /// Bayesian information criterion (lower is better).
+    pub bic: f64,
+    pub chosen: bool,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FitReport {
+    pub engine_version: String,
+    pub model: FittedModel,
+    /// Lumped fits only.
+    pub uncertainty: Option<LumpedUncertainty>,
+    /// Parameter names the data cannot determine (their uncertainty is `None`).
+    pub not_identifiable: Vec<String>,
+    pub correlation: Option<Correlation>,
+    pub derived: Derived,
+    pub quality: Quality,
+    pub termination: Termination,
+    pub iterations: u64,
+    pub candidates: Vec<Candidate>,
+    /// Lowest and highest frequency of the sweep: the band where the model is valid.
+    pub band_hz: [f64; 2],
+}
+
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum FitError {
+    #[error("the sweep has {0} points; a fit needs at least 20")]
+    TooFewPoints(usize),
+    #[error("the sweep does not look like an inductor: {0}")]
+    NotAnInductor(String),
+    #[error("invalid fit options: {0}")]
+    InvalidOptions(String),
+    #[error("the fit was cancelled")]
+    Cancelled,
+    #[error("the fit did not produce a finite model: {0}")]
+    NonFinite(String),
+}

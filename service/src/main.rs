@@ -1,0 +1,3 @@
+fn main() -> std::process::ExitCode {
+    henrybook::cli::main(std::env::args().skip(1).collect())
+}
