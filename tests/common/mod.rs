@@ -1,0 +1,64 @@
+//! Shared helpers for the integration tests and reference checks.
+
+use std::path::PathBuf;
+use std::process::Command;
+
+/// The repository root.
+pub fn repo_root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .expect("tests/ sits in the repository root")
+        .to_path_buf()
+}
+
+/// The Python interpreter that has numpy, scipy and scikit-rf: `$HENRYBOOK_PYTHON`, or the venv that
+/// `.ci/setup` makes in `target/pyref`. Panics with the set-up command when neither exists, so a
+/// reference check never passes silently.
+pub fn reference_python() -> PathBuf {
+    if let Ok(p) = std::env::var("HENRYBOOK_PYTHON") {
+        return PathBuf::from(p);
+    }
+    let venv = repo_root().join("target/pyref/bin/python");
+    assert!(
+        venv.exists(),
+        "reference checks need Python with numpy, scipy and scikit-rf: run `bash .ci/setup` \
+         (or set HENRYBOOK_PYTHON)"
+    );
+    venv
+}
+
+/// Runs `tests/python/<script>` with the reference Python and returns its standard output parsed as JSON.
+/// `stdin` is written to the script's standard input.
+pub fn run_reference_script(script: &str, args: &[&str], stdin: &str) -> serde_json::Value {
+    use std::io::Write;
+    let path = repo_root().join("tests/python").join(script);
+    let mut child = Command::new(reference_python())
+        .arg(&path)
+        .args(args)
+        .env("OPENBLAS_NUM_THREADS", "1")
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("cannot start {}: {e}", path.display()));
+    child
+        .stdin
+        .take()
+        .expect("stdin is piped")
+        .write_all(stdin.as_bytes())
+        .expect("write to the reference script");
+    let out = child.wait_with_output().expect("reference script runs");
+    assert!(
+        out.status.success(),
+        "{} failed: {}",
+        path.display(),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| {
+        panic!(
+            "{} printed no JSON ({e}): {}",
+            path.display(),
+            String::from_utf8_lossy(&out.stdout)
+        )
+    })
+}
