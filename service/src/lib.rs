@@ -16,4 +16,5 @@ pub mod cli;
 pub mod export;
 pub mod fit;
 pub mod model;
+pub mod server_cli;
 pub mod sweep;

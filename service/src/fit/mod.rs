@@ -192,3 +192,37 @@ pub enum FitError {
     #[error("the fit did not produce a finite model: {0}")]
     NonFinite(String),
 }
+
+/// Fits the family the options ask for.
+pub fn fit(
+    sweep: &crate::sweep::Sweep,
+    options: &FitOptions,
+    control: &FitControl,
+) -> Result<FitReport, FitError> {
+    match options.family {
+        ModelFamily::Lumped => fit_lumped(sweep, options, control),
+        ModelFamily::Rational => fit_rational(sweep, options, control),
+    }
+}
+
+// Transient: replaced by the fitting engine on the `fit` branch.
+pub fn fit_lumped(
+    _sweep: &crate::sweep::Sweep,
+    _options: &FitOptions,
+    _control: &FitControl,
+) -> Result<FitReport, FitError> {
+    Err(FitError::InvalidOptions(
+        "the lumped fit is not built yet".into(),
+    ))
+}
+
+// Transient: replaced by vector fitting on the `vfit` branch.
+pub fn fit_rational(
+    _sweep: &crate::sweep::Sweep,
+    _options: &FitOptions,
+    _control: &FitControl,
+) -> Result<FitReport, FitError> {
+    Err(FitError::InvalidOptions(
+        "the rational fit is not built yet".into(),
+    ))
+}
