@@ -48,6 +48,18 @@ pub fn dz_ds(method: Method, s: Complex64, z0_ohm: f64) -> Complex64 {
     }
 }
 
+/// The full S-matrix of an ideal element of impedance `z` between two ports of reference `z0_ohm`:
+/// in series (S11 = S22 = Z/(Z + 2 Z0), S21 = S12 = 2 Z0/(Z + 2 Z0)) or as a shunt to ground
+/// (S11 = S22 = −Z0/(Z0 + 2 Z), S21 = S12 = 2 Z/(2 Z + Z0)). `None` for the 1-port methods.
+pub fn two_port_s(method: Method, z: Complex64, z0_ohm: f64) -> Option<Mat2> {
+    let (s11, s21) = match method {
+        Method::SeriesThru => (z / (z + 2.0 * z0_ohm), s_from_z(method, z, z0_ohm)),
+        Method::ShuntThru => (-z0_ohm / (z0_ohm + 2.0 * z), s_from_z(method, z, z0_ohm)),
+        Method::Reflection | Method::Direct => return None,
+    };
+    Some([[s11, s21], [s21, s11]])
+}
+
 /// Row-major n×n data (n = 1 or 2) as a 2×2 matrix; a 1-port fills only `[0][0]`.
 pub fn mat2(data: &[Complex64]) -> Mat2 {
     let z = Complex64::new(0.0, 0.0);
@@ -131,8 +143,9 @@ mod tests {
 
     #[test]
     fn conversion_check_values() {
-        // Source: ../shared TOOLBOX reference values, "Conversion check" (computed; agrees with
-        // scikit-rf to 5e-15): Z = 0.5 + j62.8319 Ω, Z0 = 50.
+        // Source: the team's gathered check values, computed from the relations above and agreeing
+        // with scikit-rf to 5e-15 (tests/sweep_skrf.rs checks scikit-rf live): Z = 0.5 + j62.8319 Ω,
+        // Z0 = 50.
         let z = Complex64::new(0.5, 62.8319);
         let s11 = s_from_z(Method::Reflection, z, 50.0);
         assert!(
@@ -179,6 +192,16 @@ mod tests {
             let an = dz_ds(method, s, 50.0);
             assert!(close(an, fd, 1e-6), "{method:?}: {an} vs {fd}");
         }
+    }
+
+    #[test]
+    fn the_ideal_two_port_elements_are_lossless_at_a_reactance() {
+        // A lossless two-port has a unitary S-matrix: |S11|² + |S21|² = 1.
+        for method in [Method::SeriesThru, Method::ShuntThru] {
+            let s = two_port_s(method, Complex64::new(0.0, 37.0), 50.0).unwrap();
+            assert!((s[0][0].norm_sqr() + s[1][0].norm_sqr() - 1.0).abs() < 1e-12);
+        }
+        assert!(two_port_s(Method::Reflection, Complex64::new(1.0, 0.0), 50.0).is_none());
     }
 
     #[test]

@@ -22,7 +22,10 @@ pub mod fixture;
 pub mod touchstone;
 pub mod uncertainty;
 
-pub use touchstone::{DataFormat, Network, Parameter, TouchstoneVersion, parse_touchstone};
+pub use touchstone::{
+    DataFormat, Network, Parameter, TouchstoneVersion, TwoPortOrder, parse_touchstone,
+    write_touchstone,
+};
 pub use uncertainty::NoiseModel;
 
 use num_complex::Complex64;

@@ -592,6 +592,87 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
     Ok(net)
 }
 
+/// Writes a network as Touchstone text: version 1 (Z and Y normalised by R, two-port order N11 N21
+/// N12 N22) or version 2 (values in ohm/siemens, the keywords, `[Two-Port Data Order]` as the network
+/// states), in the network's unit, parameter and format. Numbers are written in the shortest form that
+/// reads back to the same `f64`. `comments` become `!` lines at the top.
+pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    for c in comments {
+        for line in c.lines() {
+            let _ = writeln!(out, "! {line}");
+        }
+    }
+    let (unit, unit_hz) = [("kHz", 1e3), ("MHz", 1e6), ("GHz", 1e9)]
+        .into_iter()
+        .find(|&(_, u)| u == net.frequency_unit_hz)
+        .unwrap_or(("Hz", 1.0));
+    let parameter = match net.parameter {
+        Parameter::S => "S",
+        Parameter::Y => "Y",
+        Parameter::Z => "Z",
+    };
+    let format = match net.format {
+        DataFormat::RealImaginary => "RI",
+        DataFormat::MagnitudeAngle => "MA",
+        DataFormat::DecibelAngle => "DB",
+    };
+    let r = net.reference_ohm.first().copied().unwrap_or(50.0);
+    let n = net.ports;
+    let order = net.two_port_order.unwrap_or(TwoPortOrder::N21First);
+    if net.version == TouchstoneVersion::V2 {
+        let _ = writeln!(out, "[Version] 2.0");
+        let _ = writeln!(out, "# {unit} {parameter} {format} R {r}");
+        let _ = writeln!(out, "[Number of Ports] {n}");
+        if n == 2 {
+            let o = match order {
+                TwoPortOrder::N12First => "12_21",
+                TwoPortOrder::N21First => "21_12",
+            };
+            let _ = writeln!(out, "[Two-Port Data Order] {o}");
+        }
+        let _ = writeln!(out, "[Number of Frequencies] {}", net.frequency_hz.len());
+        let refs: Vec<String> = net.reference_ohm.iter().map(|r| r.to_string()).collect();
+        if !refs.is_empty() {
+            let _ = writeln!(out, "[Reference] {}", refs.join(" "));
+        }
+        let _ = writeln!(out, "[Network Data]");
+    } else {
+        let _ = writeln!(out, "# {unit} {parameter} {format} R {r}");
+    }
+    let scale = match (net.version, net.parameter) {
+        (TouchstoneVersion::V1, Parameter::Z) => 1.0 / r,
+        (TouchstoneVersion::V1, Parameter::Y) => r,
+        _ => 1.0,
+    };
+    for (f, m) in net.frequency_hz.iter().zip(&net.data) {
+        let entries: Vec<Complex64> = if n == 2 && m.len() == 4 {
+            match (net.version, order) {
+                (TouchstoneVersion::V2, TwoPortOrder::N12First) => m.clone(),
+                _ => vec![m[0], m[2], m[1], m[3]],
+            }
+        } else {
+            m.clone()
+        };
+        let _ = write!(out, "{:e}", f / unit_hz);
+        for c in entries {
+            let c = c * scale;
+            let (a, b) = match net.format {
+                DataFormat::RealImaginary => (c.re, c.im),
+                DataFormat::MagnitudeAngle => (c.norm(), c.arg().to_degrees()),
+                DataFormat::DecibelAngle => (20.0 * c.norm().log10(), c.arg().to_degrees()),
+            };
+            let _ = write!(out, " {a:e} {b:e}");
+        }
+        out.push('\n');
+    }
+    if net.version == TouchstoneVersion::V2 {
+        out.push_str("[End]\n");
+    }
+    out
+}
+
 fn expected_len(ports: Option<usize>, matrix: MatrixFormat) -> usize {
     let n = ports.unwrap_or(1);
     let entries = match matrix {
@@ -833,6 +914,46 @@ mod tests {
         }
         let err = parse_touchstone("! only a comment\n# MHz S RI\n", Some(1)).unwrap_err();
         assert!(err.message.contains("no data"), "{err}");
+    }
+
+    #[test]
+    fn written_files_read_back() {
+        for version in [TouchstoneVersion::V1, TouchstoneVersion::V2] {
+            for parameter in [Parameter::S, Parameter::Z, Parameter::Y] {
+                for format in [
+                    DataFormat::RealImaginary,
+                    DataFormat::MagnitudeAngle,
+                    DataFormat::DecibelAngle,
+                ] {
+                    for order in [TwoPortOrder::N12First, TwoPortOrder::N21First] {
+                        let net = Network {
+                            version,
+                            ports: 2,
+                            parameter,
+                            format,
+                            frequency_unit_hz: 1e6,
+                            reference_ohm: vec![75.0, 75.0],
+                            two_port_order: Some(order),
+                            frequency_hz: vec![1e6, 2.5e6],
+                            data: vec![
+                                vec![c(0.1, 0.2), c(0.3, -0.4), c(-0.5, 0.6), c(0.7, 0.8)],
+                                vec![c(1.1, 0.2), c(1.3, -0.4), c(-1.5, 0.6), c(1.7, 0.8)],
+                            ],
+                            line: vec![0, 0],
+                        };
+                        let text = write_touchstone(&net, &["a comment"]);
+                        let back = parse_touchstone(&text, Some(2)).unwrap();
+                        assert_eq!(back.frequency_hz, net.frequency_hz);
+                        for (a, b) in back.data.iter().flatten().zip(net.data.iter().flatten()) {
+                            assert!(
+                                close(*a, *b),
+                                "{version:?} {parameter:?} {format:?}: {a} vs {b}"
+                            );
+                        }
+                    }
+                }
+            }
+        }
     }
 
     #[test]
