@@ -450,7 +450,7 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
                     },
                 });
             }
-            if ports.unwrap_or(1) > 2 {
+            if !(1..=2).contains(&ports.unwrap_or(1)) {
                 return Err(SweepError::at(
                     ln,
                     format!(
@@ -906,6 +906,8 @@ mod tests {
             ("\n[Version] 3.0\n", None, 2, "version"),
             ("# MHz S RI\n-1 0 0\n", Some(1), 2, "negative"),
             ("# MHz S RI\n1 0 0 0 0\n", None, 2, "first data line"),
+            ("# MHz S RI\n1 0 0\n", Some(0), 2, "not supported"),
+            ("# MHz S RI\n1 0 0\n", Some(4), 2, "not supported"),
         ];
         for (text, hint, line, needle) in cases {
             let err = parse_touchstone(text, *hint).unwrap_err();
