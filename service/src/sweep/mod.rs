@@ -24,7 +24,7 @@ pub mod uncertainty;
 
 pub use touchstone::{
     DataFormat, Network, Parameter, TouchstoneVersion, TwoPortOrder, parse_touchstone,
-    write_touchstone,
+    write_touchstone, write_touchstone_with_digits,
 };
 pub use uncertainty::NoiseModel;
 

@@ -597,6 +597,16 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
 /// states), in the network's unit, parameter and format. Numbers are written in the shortest form that
 /// reads back to the same `f64`. `comments` become `!` lines at the top.
 pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
+    write_touchstone_with_digits(net, comments, None)
+}
+
+/// As [`write_touchstone`], with data values rounded to `significant_digits` (as instruments write
+/// them); frequencies keep full precision.
+pub fn write_touchstone_with_digits(
+    net: &Network,
+    comments: &[&str],
+    significant_digits: Option<usize>,
+) -> String {
     use std::fmt::Write;
     let mut out = String::new();
     for c in comments {
@@ -655,7 +665,7 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
         } else {
             m.clone()
         };
-        let _ = write!(out, "{:e}", f / unit_hz);
+        out.push_str(&frequency_text(*f, unit_hz));
         for c in entries {
             let c = c * scale;
             let (a, b) = match net.format {
@@ -663,7 +673,15 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
                 DataFormat::MagnitudeAngle => (c.norm(), c.arg().to_degrees()),
                 DataFormat::DecibelAngle => (20.0 * c.norm().log10(), c.arg().to_degrees()),
             };
-            let _ = write!(out, " {a:e} {b:e}");
+            match significant_digits {
+                Some(d) => {
+                    let p = d.clamp(1, 17) - 1;
+                    let _ = write!(out, " {a:.p$e} {b:.p$e}");
+                }
+                None => {
+                    let _ = write!(out, " {a:e} {b:e}");
+                }
+            }
         }
         out.push('\n');
     }
@@ -671,6 +689,22 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
         out.push_str("[End]\n");
     }
     out
+}
+
+/// The shortest decimal of `f / unit_hz` that reads back (times the unit) to `f` within two ulps (the
+/// product itself rounds, so exactly `f` is not always reachable).
+fn frequency_text(f: f64, unit_hz: f64) -> String {
+    let v = f / unit_hz;
+    for p in 0..17 {
+        let text = format!("{v:.p$e}");
+        if text
+            .parse::<f64>()
+            .is_ok_and(|x| (x * unit_hz - f).abs() <= 2.0 * f64::EPSILON * f.abs())
+        {
+            return text;
+        }
+    }
+    format!("{v:e}")
 }
 
 fn expected_len(ports: Option<usize>, matrix: MatrixFormat) -> usize {
