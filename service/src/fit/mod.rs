@@ -4,6 +4,8 @@
 //! The report's field names are part of the JSON contract (CLI, HTTP, database): add fields, do not
 //! rename them.
 
+pub mod derived;
+
 use crate::model::FittedModel;
 use serde::{Deserialize, Serialize};
 use std::sync::Arc;
