@@ -198,28 +198,40 @@ pub fn guess(data: &FitData) -> Guess {
     }
 }
 
-/// A section of `kind` placed on a (notch, peak) pair, given the winding capacitance.
-pub fn section_for(kind: SectionKind, pair: (f64, f64, f64, f64), cp_f: f64) -> Section {
+/// A section of `kind` placed on a (notch, peak) pair, given the winding capacitance seen so far;
+/// returns the section and the winding capacitance to use with it (below its notch a series branch
+/// acts as its own c in parallel with Cp, so the SRF-derived Cp already contains it).
+pub fn section_for(kind: SectionKind, pair: (f64, f64, f64, f64), cp_f: f64) -> (Section, f64) {
     let (fs, fp, r_notch, r_peak) = pair;
     let (ws2, wp2) = ((2.0 * PI * fs).powi(2), (2.0 * PI * fp).powi(2));
-    let (r_ohm, l_h, c_f) = match kind {
+    let (r_ohm, l_h, c_f, cp) = match kind {
         // Branch l–c resonates at the notch; above it the branch is inductive and resonates with Cp
         // at the peak: ωp² = ωs² + 1/(l·Cp).
         SectionKind::Series => {
-            let l = 1.0 / (cp_f * (wp2 - ws2).max(0.1 * ws2));
-            (r_notch, l, 1.0 / (ws2 * l))
+            let mut cp = cp_f;
+            let mut l = 0.0;
+            let mut c = 0.0;
+            for _ in 0..3 {
+                l = 1.0 / (cp * (wp2 - ws2).max(0.1 * ws2));
+                c = 1.0 / (ws2 * l);
+                cp = (cp_f - c).max(0.2 * cp_f);
+            }
+            (r_notch, l, c, cp)
         }
         // Tank resonates at the peak; below it the tank is inductive and cancels the winding's
         // capacitive reactance at the notch: 1/ωs² = l·(Cp + c), 1/ωp² = l·c.
         SectionKind::Parallel => {
             let l = ((1.0 / ws2 - 1.0 / wp2) / cp_f).max(1e-3 / (ws2 * cp_f));
-            (r_peak, l, 1.0 / (wp2 * l))
+            (r_peak, l, 1.0 / (wp2 * l), cp_f)
         }
     };
-    Section {
-        kind,
-        r_ohm,
-        l_h,
-        c_f,
-    }
+    (
+        Section {
+            kind,
+            r_ohm,
+            l_h,
+            c_f,
+        },
+        cp,
+    )
 }

@@ -233,8 +233,9 @@ fn start_for(kinds: &[SectionKind], prefix: &LumpedModel, guess: &Guess) -> Lump
     let mut m = prefix.clone();
     m.sections.truncate(kinds.len());
     for (i, &kind) in kinds.iter().enumerate().skip(m.sections.len()) {
-        m.sections
-            .push(initial::section_for(kind, guess.pairs[i], prefix.cp_f));
+        let (section, cp_f) = initial::section_for(kind, guess.pairs[i], m.cp_f);
+        m.sections.push(section);
+        m.cp_f = cp_f;
     }
     m
 }
