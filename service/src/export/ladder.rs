@@ -15,7 +15,7 @@
 //! including near a high-Q self-resonance.
 
 use super::nnls::nnls;
-use super::{ExportError, grid_points, log_grid};
+use super::{ExportError, grid_with_resonances, log_grid, resonances};
 use crate::model::{LumpedModel, SectionKind};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
@@ -113,7 +113,9 @@ const IRLS_ROUNDS: usize = 12;
 pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadder, ExportError> {
     let [lo, hi] = band_hz;
     let k = m.k_ac_ohm_per_sqrt_hz;
-    let grid = log_grid(lo, hi, grid_points(lo, hi, 25.0, 100, 500));
+    let model_z = |f: f64| impedance_with_skin(m, Complex64::new(k * f.sqrt(), 0.0), m.l0_h, f);
+    let res = resonances(&model_z, lo, hi);
+    let grid = grid_with_resonances(lo, hi, 25.0, 100, 500, &res, 12);
     let n_corner = ((hi / lo).log10() + 2.0) * CORNERS_PER_DECADE;
     let corners_hz = log_grid(lo / 10.0, hi * 10.0, n_corner.ceil() as usize + 1);
     let n = corners_hz.len();
@@ -235,7 +237,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         max_reactance_ohm: 0.0,
         internal_inductance_h: [0.0; 2],
     };
-    let check = log_grid(lo, hi, grid_points(lo, hi, 200.0, 400, 6000));
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
     for &f in &check {
         let z = ladder.impedance(f);
         let target = k * f.sqrt();

@@ -139,3 +139,59 @@ pub(crate) fn check_param(
     }
     Ok(())
 }
+
+/// Frequencies in `[lo, hi]` where Im Z changes sign (series and parallel resonances), located by
+/// bisection from a 200-per-decade scan.
+pub(crate) fn resonances(z: &dyn Fn(f64) -> num_complex::Complex64, lo: f64, hi: f64) -> Vec<f64> {
+    let scan = log_grid(lo, hi, grid_points(lo, hi, 200.0, 200, 4000));
+    let mut out = Vec::new();
+    for pair in scan.windows(2) {
+        let (mut a, mut b) = (pair[0], pair[1]);
+        let (mut za, zb) = (z(a).im, z(b).im);
+        if !(za.is_finite() && zb.is_finite()) || za.signum() == zb.signum() || za == 0.0 {
+            continue;
+        }
+        for _ in 0..200 {
+            let m = (a * b).sqrt();
+            let zm = z(m).im;
+            if zm.signum() == za.signum() {
+                a = m;
+                za = zm;
+            } else {
+                b = m;
+            }
+            if b / a - 1.0 < 1e-15 {
+                break;
+            }
+        }
+        out.push((a * b).sqrt());
+    }
+    out
+}
+
+/// A log grid over `[lo, hi]` with `per_decade` points, plus `per_side` points on each side of every
+/// resonance, geometrically from 1e-9 to 3 % away (so a resonance of any Q is resolved), sorted.
+pub(crate) fn grid_with_resonances(
+    lo: f64,
+    hi: f64,
+    per_decade: f64,
+    min: usize,
+    max: usize,
+    resonances_hz: &[f64],
+    per_side: usize,
+) -> Vec<f64> {
+    let mut g = log_grid(lo, hi, grid_points(lo, hi, per_decade, min, max));
+    for &fr in resonances_hz {
+        g.push(fr);
+        for t in log_grid(1e-9, 0.03, per_side) {
+            for f in [fr * (1.0 + t), fr / (1.0 + t)] {
+                if f > lo && f < hi {
+                    g.push(f);
+                }
+            }
+        }
+    }
+    g.sort_by(f64::total_cmp);
+    g.dedup();
+    g
+}

@@ -8,7 +8,9 @@
 
 use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_skin};
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
-use super::{ExportContext, ExportError, check_param, grid_points, log_grid, provenance_lines};
+use super::{
+    ExportContext, ExportError, check_param, grid_with_resonances, provenance_lines, resonances,
+};
 use crate::model::{ImpedanceModel, LumpedModel, SectionKind};
 use num_complex::Complex64;
 
@@ -33,7 +35,9 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         impedance_with_skin(model, skin, l0_h, f)
     };
     let [lo, hi] = band;
-    let check = log_grid(lo, hi, grid_points(lo, hi, 200.0, 400, 6000));
+    let model_z = |f: f64| model.impedance(f);
+    let res = resonances(&model_z, lo, hi);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
     let mut max_err = 0.0f64;
     let mut max_err_at = lo;
     for &f in &check {
@@ -47,7 +51,8 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
             max_err_at = f;
         }
     }
-    let bound = 1.25 * max_err + 1e-10;
+    // 1e-8 covers a simulator's own rounding at a resonance of Q up to ~1e5.
+    let bound = 1.25 * max_err + 1e-8;
 
     let mut net = Netlist::new();
     net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
@@ -68,8 +73,9 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         ladder_comments(&mut net, l, model);
     }
     net.comment(format!(
-        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} log-spaced points over the band)",
-        check.len()
+        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
+        check.len(),
+        res.len()
     ));
     net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
     net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
