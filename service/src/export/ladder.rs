@@ -209,10 +209,13 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
     }
     let x = best.map(|(_, x)| x).unwrap_or_else(|| DVector::zeros(cols));
     let value = |j: usize| x[j];
+    let r_max = (0..n).map(value).fold(0.0f64, f64::max);
     let cells: Vec<LadderCell> = corners_hz
         .iter()
         .enumerate()
-        .filter(|&(j, _)| value(j) > 0.0)
+        // A cell with a vanishing R is a near-short across its L: leave it out (the error is measured
+        // on the cells actually written).
+        .filter(|&(j, _)| value(j) > 1e-9 * r_max)
         .map(|(j, &fc)| {
             let r = value(j);
             LadderCell {

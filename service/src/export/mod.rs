@@ -10,6 +10,7 @@
 //! - [`foster::rational_subcircuit`]: the rational model as a series Foster realisation.
 //! - [`touchstone::touchstone_1port`] and [`csv::impedance_csv`]: the model evaluated on a grid.
 
+pub mod foster;
 pub mod ladder;
 mod netlist;
 mod nnls;
