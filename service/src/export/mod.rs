@@ -10,11 +10,13 @@
 //! - [`foster::rational_subcircuit`]: the rational model as a series Foster realisation.
 //! - [`touchstone::touchstone_1port`] and [`csv::impedance_csv`]: the model evaluated on a grid.
 
+pub mod csv;
 pub mod foster;
 pub mod ladder;
 mod netlist;
 mod nnls;
 pub mod spice;
+pub mod touchstone;
 
 use serde::{Deserialize, Serialize};
 
@@ -195,4 +197,45 @@ pub(crate) fn grid_with_resonances(
     g.sort_by(f64::total_cmp);
     g.dedup();
     g
+}
+
+/// A grid to export on: at least one point, every frequency finite and > 0, strictly increasing.
+pub(crate) fn check_grid(frequencies_hz: &[f64]) -> Result<(), ExportError> {
+    if frequencies_hz.is_empty() {
+        return Err(ExportError::InvalidGrid("no frequencies".to_string()));
+    }
+    for (i, &f) in frequencies_hz.iter().enumerate() {
+        if !(f.is_finite() && f > 0.0) {
+            return Err(ExportError::InvalidGrid(format!(
+                "frequency_hz[{i}] = {f}: need a finite value > 0"
+            )));
+        }
+        if i > 0 && f <= frequencies_hz[i - 1] {
+            return Err(ExportError::InvalidGrid(format!(
+                "frequency_hz[{i}] = {f} does not exceed frequency_hz[{}] = {}",
+                i - 1,
+                frequencies_hz[i - 1]
+            )));
+        }
+    }
+    Ok(())
+}
+
+/// A requested grid: `points` log-spaced frequencies from `f_min_hz` to `f_max_hz` inclusive.
+pub fn log_frequency_grid(
+    f_min_hz: f64,
+    f_max_hz: f64,
+    points: usize,
+) -> Result<Vec<f64>, ExportError> {
+    if !(f_min_hz.is_finite() && f_max_hz.is_finite() && f_min_hz > 0.0 && f_max_hz > f_min_hz) {
+        return Err(ExportError::InvalidGrid(format!(
+            "[{f_min_hz}, {f_max_hz}]: need 0 < f_min < f_max, both finite"
+        )));
+    }
+    if points < 2 {
+        return Err(ExportError::InvalidGrid(format!(
+            "{points} points: need at least 2"
+        )));
+    }
+    Ok(log_grid(f_min_hz, f_max_hz, points))
 }
