@@ -94,6 +94,8 @@ struct OptionLine {
     parameter: Parameter,
     format: DataFormat,
     r_ohm: f64,
+    /// A second reference resistance (`R 50 50`: one per port, as some writers of 2-port files do).
+    r_port2_ohm: Option<f64>,
     line: usize,
 }
 
@@ -103,6 +105,7 @@ impl OptionLine {
             && self.parameter == o.parameter
             && self.format == o.format
             && self.r_ohm == o.r_ohm
+            && self.r_port2_ohm == o.r_port2_ohm
     }
 }
 
@@ -112,9 +115,10 @@ fn parse_option_line(rest: &str, line: usize) -> Result<OptionLine, SweepError> 
         parameter: Parameter::S,
         format: DataFormat::MagnitudeAngle,
         r_ohm: 50.0,
+        r_port2_ohm: None,
         line,
     };
-    let mut tokens = rest.split_whitespace();
+    let mut tokens = rest.split_whitespace().peekable();
     while let Some(tok) = tokens.next() {
         match tok.to_ascii_lowercase().as_str() {
             "hz" => opt.unit_hz = 1.0,
@@ -147,6 +151,16 @@ fn parse_option_line(rest: &str, line: usize) -> Result<OptionLine, SweepError> 
                     ));
                 }
                 opt.r_ohm = r;
+                if let Some(r2) = tokens.peek().and_then(|t| t.parse::<f64>().ok()) {
+                    tokens.next();
+                    if !(r2.is_finite() && r2 > 0.0) {
+                        return Err(SweepError::at(
+                            line,
+                            format!("reference resistance {r2} must be finite and positive"),
+                        ));
+                    }
+                    opt.r_port2_ohm = Some(r2);
+                }
             }
             _ => {
                 return Err(SweepError::at(
@@ -531,7 +545,25 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
             ));
         }
     } else {
-        reference = vec![opt.r_ohm; n];
+        reference = match (n, opt.r_port2_ohm) {
+            (2, Some(r2)) => vec![opt.r_ohm, r2],
+            (_, Some(_)) => {
+                return Err(SweepError::at(
+                    opt.line,
+                    format!("the option line gives two reference resistances for a {n}-port file"),
+                ));
+            }
+            _ => vec![opt.r_ohm; n],
+        };
+    }
+    if version == TouchstoneVersion::V1
+        && opt.parameter != Parameter::S
+        && reference.iter().any(|&r| r != opt.r_ohm)
+    {
+        return Err(SweepError::at(
+            opt.line,
+            "version 1 Z or Y data normalised by different resistances per port are not supported",
+        ));
     }
     let order = if n == 2 {
         Some(order.unwrap_or(TwoPortOrder::N21First))
@@ -911,6 +943,14 @@ mod tests {
     }
 
     #[test]
+    fn one_reference_resistance_per_port_on_the_option_line() {
+        let net = parse_touchstone("# MHz S RI R 50 50\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert_eq!(net.reference_ohm, vec![50.0, 50.0]);
+        let net = parse_touchstone("# MHz S RI R 50 75\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert!(net.common_reference_ohm().is_err());
+    }
+
+    #[test]
     fn lower_matrix_format_fills_the_symmetric_entry() {
         let net = parse_touchstone(
             "[Version] 2.0\n# Hz Z RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
@@ -941,6 +981,8 @@ mod tests {
             ("# MHz S RI\n-1 0 0\n", Some(1), 2, "negative"),
             ("# MHz S RI\n1 0 0 0 0\n", None, 2, "first data line"),
             ("# MHz S RI\n1 0 0\n", Some(0), 2, "not supported"),
+            ("# MHz S RI R 50 75\n1 0 0\n", Some(1), 1, "two reference"),
+            ("# MHz S RI R 50 0\n1 0 0\n", Some(1), 1, "positive"),
             ("# MHz S RI\n1 0 0\n", Some(4), 2, "not supported"),
         ];
         for (text, hint, line, needle) in cases {
