@@ -43,7 +43,7 @@ pub struct LevenbergMarquardt {
 impl Default for LevenbergMarquardt {
     fn default() -> Self {
         LevenbergMarquardt {
-            ftol: 1e-10,
+            ftol: 1e-9,
             xtol: 1e-10,
             gtol: 1e-10,
             max_step: 5.0,
@@ -53,6 +53,21 @@ impl Default for LevenbergMarquardt {
             scale: None,
             stop: None,
         }
+    }
+}
+
+impl LevenbergMarquardt {
+    /// Starts with damping `lambda` (relative to diag(JᵀJ)); small when the start is near the answer.
+    pub fn with_initial_damping(mut self, lambda: f64) -> Self {
+        self.lambda = lambda;
+        self
+    }
+
+    /// Converges when a step lowers the cost by less than `ftol`·cost or moves less than `xtol`.
+    pub fn with_tolerances(mut self, ftol: f64, xtol: f64) -> Self {
+        self.ftol = ftol;
+        self.xtol = xtol;
+        self
     }
 }
 

@@ -167,25 +167,31 @@ fn termination_of(reason: Option<&TerminationReason>) -> Termination {
     }
 }
 
-/// Fits one structure from a starting model (which must have every element the structure has).
-pub fn fit_structure(
+/// Points above which [`fit_structure`] first converges on a thinned copy of the sweep.
+pub const COARSE_ABOVE_POINTS: usize = 600;
+/// Points of the thinned copy.
+pub const COARSE_POINTS: usize = 200;
+
+struct LmRun {
+    theta: Vec<f64>,
+    cost: f64,
+    iterations: u64,
+    termination: Termination,
+    jacobian: DMatrix<f64>,
+}
+
+fn run_lm(
     data: &FitData,
     structure: &Structure,
-    start: &LumpedModel,
+    solver: LevenbergMarquardt,
+    theta0: Vec<f64>,
     max_iterations: u64,
     time_limit: Duration,
     control: &FitControl,
-) -> Result<StructureFit, FitError> {
-    let theta0 = DVector::from_vec(structure.pack(start));
-    if theta0.iter().any(|t| !t.is_finite()) {
-        return Err(FitError::NonFinite(format!(
-            "the starting values of {} are not all positive",
-            structure.label()
-        )));
-    }
+) -> Result<LmRun, FitError> {
     let problem = LumpedProblem { data, structure };
-    let mut exec = Executor::new(problem, LevenbergMarquardt::default())
-        .configure(|s| s.param(theta0).max_iters(max_iterations))
+    let mut exec = Executor::new(problem, solver)
+        .configure(|s| s.param(DVector::from_vec(theta0)).max_iters(max_iterations))
         .timeout(time_limit);
     if let Some(flag) = &control.cancel {
         exec = exec.add_observer(CancelObserver(flag.clone()), ObserverMode::Always);
@@ -198,27 +204,106 @@ pub fn fit_structure(
         }
     })?;
     let state = res.state();
-    let theta = state
-        .get_best_param()
-        .or(state.get_param())
-        .ok_or_else(|| FitError::NonFinite("the solver returned no parameters".into()))?
-        .clone();
-    let problem = LumpedProblem { data, structure };
-    let mut r = vec![0.0; data.residual_count()];
-    problem.residuals_into(theta.as_slice(), &mut r);
-    let cost: f64 = r.iter().map(|x| x * x).sum();
-    let mut jacobian = DMatrix::zeros(data.residual_count(), structure.len());
-    problem.jacobian_into(theta.as_slice(), &mut jacobian);
+    // The solver only accepts steps that lower the cost, so the current point is the best one and
+    // its residuals and Jacobian are in the state.
+    let (Some(theta), Some(jacobian)) = (state.get_param(), state.get_jacobian()) else {
+        return Err(FitError::NonFinite(
+            "the solver returned no parameters".into(),
+        ));
+    };
+    let cost = state.get_cost();
     if !cost.is_finite() || jacobian.iter().any(|v| !v.is_finite()) {
         return Err(FitError::NonFinite(structure.label()));
     }
-    Ok(StructureFit {
-        structure: structure.clone(),
+    Ok(LmRun {
         theta: theta.as_slice().to_vec(),
         cost,
         iterations: state.get_iter(),
         termination: termination_of(state.get_termination_reason()),
-        jacobian,
+        jacobian: jacobian.clone(),
+    })
+}
+
+/// Every `stride`-th point of the sweep (the DCR prior kept): a cheap problem with nearly the same
+/// optimum, used to get close before the full-data iterations.
+fn thinned(data: &FitData, stride: usize) -> FitData {
+    let pick = |v: &Vec<f64>| v.iter().step_by(stride).copied().collect::<Vec<_>>();
+    FitData {
+        frequency_hz: pick(&data.frequency_hz),
+        sqrt_f: pick(&data.sqrt_f),
+        z: data.z.iter().step_by(stride).copied().collect(),
+        inv_sigma: pick(&data.inv_sigma),
+        dcr_prior: data.dcr_prior,
+    }
+}
+
+/// Fits one structure from a starting model (which must have every element the structure has).
+///
+/// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
+/// evenly picked points; LM then continues on the full sweep from there, so the result is the
+/// full-data optimum (the thinning only saves iterations on the full data).
+pub fn fit_structure(
+    data: &FitData,
+    structure: &Structure,
+    start: &LumpedModel,
+    max_iterations: u64,
+    time_limit: Duration,
+    control: &FitControl,
+) -> Result<StructureFit, FitError> {
+    let started = Instant::now();
+    let mut theta = structure.pack(start);
+    if theta.iter().any(|t| !t.is_finite()) {
+        return Err(FitError::NonFinite(format!(
+            "the starting values of {} are not all positive",
+            structure.label()
+        )));
+    }
+    let n = data.frequency_hz.len();
+    let mut iterations = 0;
+    if n > COARSE_ABOVE_POINTS {
+        let coarse = thinned(data, n.div_ceil(COARSE_POINTS));
+        // Only a starting point: a loose tolerance is enough.
+        let solver = LevenbergMarquardt::default().with_tolerances(1e-6, 1e-6);
+        match run_lm(
+            &coarse,
+            structure,
+            solver,
+            theta.clone(),
+            max_iterations,
+            time_limit,
+            control,
+        ) {
+            Ok(r) => {
+                theta = r.theta;
+                iterations = r.iterations;
+            }
+            Err(FitError::Cancelled) => return Err(FitError::Cancelled),
+            Err(_) => {}
+        }
+    }
+    let remaining = time_limit.saturating_sub(started.elapsed());
+    // After the coarse stage the start is close: begin nearly Gauss–Newton.
+    let solver = if iterations > 0 {
+        LevenbergMarquardt::default().with_initial_damping(1e-8)
+    } else {
+        LevenbergMarquardt::default()
+    };
+    let fine = run_lm(
+        data,
+        structure,
+        solver,
+        theta,
+        max_iterations.saturating_sub(iterations).max(1),
+        remaining.max(Duration::from_millis(1)),
+        control,
+    )?;
+    Ok(StructureFit {
+        structure: structure.clone(),
+        theta: fine.theta,
+        cost: fine.cost,
+        iterations: iterations + fine.iterations,
+        termination: fine.termination,
+        jacobian: fine.jacobian,
     })
 }
 
