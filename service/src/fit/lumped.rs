@@ -476,16 +476,23 @@ pub fn fit_lumped(
             return Err(FitError::Cancelled);
         }
         let now = Instant::now();
+        // Out of time: skip the remaining candidates, but always fit the first one (for at least a
+        // millisecond) so the caller gets a model whose termination says TimeLimit.
         if now >= deadline {
             ran_out_of_time = true;
-            return Ok(None);
+            if !fits.is_empty() {
+                return Ok(None);
+            }
         }
+        let budget = deadline
+            .saturating_duration_since(now)
+            .max(Duration::from_millis(1));
         match fit_structure(
             &data,
             structure,
             start,
             options.max_iterations,
-            deadline - now,
+            budget,
             control,
         ) {
             Ok(f) => {
@@ -574,7 +581,7 @@ pub fn fit_lumped(
     );
     let mut quality = derived::quality(&model, sweep);
     quality.parameters = fit.structure.len();
-    let termination = if ran_out_of_time && fit.termination == Termination::Converged {
+    let termination = if ran_out_of_time && fit.termination != Termination::MaxIterations {
         Termination::TimeLimit
     } else {
         fit.termination
@@ -592,6 +599,9 @@ pub fn fit_lumped(
         })
         .collect();
     let iterations = fit.iterations;
+    if let Some(p) = &control.progress {
+        p(1.0);
+    }
     Ok(FitReport {
         engine_version: super::ENGINE_VERSION.to_string(),
         model: FittedModel::Lumped(model),
@@ -610,7 +620,7 @@ pub fn fit_lumped(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{ImpedanceModel, Section};
+    use crate::model::ImpedanceModel;
     use crate::sweep::Method;
     use num_complex::Complex64;
 
@@ -673,15 +683,126 @@ mod tests {
         let FittedModel::Lumped(m) = &rep.model else {
             panic!()
         };
-        eprintln!("{:#?}", rep.candidates);
-        eprintln!("{m:#?} {:?} {:?}", rep.termination, rep.not_identifiable);
         assert!((m.l0_h / truth.l0_h - 1.0).abs() < 5e-3);
         assert!((m.cp_f / truth.cp_f - 1.0).abs() < 1e-2);
-        let _ = Section {
-            kind: SectionKind::Series,
-            r_ohm: 1.0,
-            l_h: 1.0,
-            c_f: 1.0,
+        assert_eq!(rep.termination, Termination::Converged);
+        assert!(rep.candidates.iter().any(|c| c.chosen));
+    }
+}
+
+#[cfg(test)]
+mod control_tests {
+    use super::tests::synthetic;
+    use super::*;
+    use std::sync::Mutex;
+
+    fn choke() -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.05,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: Some(20e3),
+            cp_f: 3e-12,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn a_set_cancel_flag_cancels() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 1);
+        let flag = Arc::new(AtomicBool::new(true));
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: None,
         };
+        assert_eq!(
+            fit_lumped(&sweep, &FitOptions::default(), &control),
+            Err(FitError::Cancelled)
+        );
+    }
+
+    #[test]
+    fn cancelling_from_the_progress_hook_stops_the_remaining_candidates() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 2);
+        let flag = Arc::new(AtomicBool::new(false));
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let (f2, s2) = (flag.clone(), seen.clone());
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: Some(Arc::new(move |p| {
+                s2.lock().unwrap().push(p);
+                f2.store(true, Ordering::Relaxed);
+            })),
+        };
+        let r = fit_lumped(&sweep, &FitOptions::default(), &control);
+        assert_eq!(r, Err(FitError::Cancelled));
+        assert_eq!(seen.lock().unwrap().len(), 1);
+    }
+
+    #[test]
+    fn progress_rises_to_one() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 3);
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let s2 = seen.clone();
+        let control = FitControl {
+            cancel: None,
+            progress: Some(Arc::new(move |p| s2.lock().unwrap().push(p))),
+        };
+        fit_lumped(&sweep, &FitOptions::default(), &control).unwrap();
+        let seen = seen.lock().unwrap();
+        assert!(seen.windows(2).all(|w| w[0] <= w[1]), "{seen:?}");
+        assert_eq!(*seen.last().unwrap(), 1.0);
+    }
+
+    #[test]
+    fn an_exhausted_time_limit_gives_a_model_marked_time_limit() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 4);
+        let options = FitOptions {
+            time_limit_s: 1e-9,
+            ..FitOptions::default()
+        };
+        let r = fit_lumped(&sweep, &options, &FitControl::default()).unwrap();
+        assert_eq!(r.termination, Termination::TimeLimit);
+        assert_eq!(r.candidates.len(), 1);
+        let FittedModel::Lumped(m) = &r.model else {
+            panic!()
+        };
+        assert!(m.l0_h.is_finite() && m.l0_h > 0.0);
+    }
+
+    #[test]
+    fn bad_sweeps_and_options_are_clear_errors() {
+        let good = synthetic(&choke(), 1e3, 200e6, 50, 5);
+        let mut short = good.clone();
+        short.frequency_hz.truncate(10);
+        short.impedance_ohm.truncate(10);
+        short.sigma_ohm.truncate(10);
+        assert_eq!(
+            fit_lumped(&short, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::TooFewPoints(10))
+        );
+        let mut zero_sigma = good.clone();
+        zero_sigma.sigma_ohm[7] = 0.0;
+        assert!(matches!(
+            fit_lumped(&zero_sigma, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::InvalidOptions(m)) if m.contains("uncertainty")
+        ));
+        let mut capacitor = good.clone();
+        for z in &mut capacitor.impedance_ohm {
+            z.im = -z.im.abs() - 1.0;
+        }
+        assert!(matches!(
+            fit_lumped(&capacitor, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::NotAnInductor(_))
+        ));
+        let options = FitOptions {
+            max_sections: 4,
+            ..FitOptions::default()
+        };
+        assert!(matches!(
+            fit_lumped(&good, &options, &FitControl::default()),
+            Err(FitError::InvalidOptions(_))
+        ));
     }
 }
