@@ -203,24 +203,26 @@ fn run_lm(
             FitError::NonFinite(format!("{}: {e}", structure.label()))
         }
     })?;
-    let state = res.state();
+    let mut state = res.state;
+    let termination = termination_of(state.get_termination_reason());
+    let iterations = state.get_iter();
+    let cost = state.get_cost();
     // The solver only accepts steps that lower the cost, so the current point is the best one and
-    // its residuals and Jacobian are in the state.
-    let (Some(theta), Some(jacobian)) = (state.get_param(), state.get_jacobian()) else {
+    // its Jacobian is in the state.
+    let (Some(theta), Some(jacobian)) = (state.take_param(), state.take_jacobian()) else {
         return Err(FitError::NonFinite(
             "the solver returned no parameters".into(),
         ));
     };
-    let cost = state.get_cost();
-    if !cost.is_finite() || jacobian.iter().any(|v| !v.is_finite()) {
+    if !cost.is_finite() || !jacobian.norm_squared().is_finite() {
         return Err(FitError::NonFinite(structure.label()));
     }
     Ok(LmRun {
         theta: theta.as_slice().to_vec(),
         cost,
-        iterations: state.get_iter(),
-        termination: termination_of(state.get_termination_reason()),
-        jacobian: jacobian.clone(),
+        iterations,
+        termination,
+        jacobian,
     })
 }
 
@@ -335,7 +337,7 @@ pub struct Spread {
 pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     let n = fit.structure.len();
     let params = fit.structure.params();
-    let jtj = fit.jacobian.tr_mul(&fit.jacobian);
+    let jtj = super::lm::normal_equations(&fit.jacobian, &DVector::zeros(fit.jacobian.nrows())).0;
     let d: Vec<f64> = (0..n)
         .map(|i| jtj[(i, i)].sqrt().max(f64::MIN_POSITIVE))
         .collect();

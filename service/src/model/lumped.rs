@@ -240,7 +240,7 @@ fn inv(z: Complex64) -> Complex64 {
 
 /// Z at one frequency and, when `dz` is given (length = number of parameters), ∂Z/∂θ_k for θ = ln p.
 /// `sqrt_f` is √f, passed in so a fit computes it once per point.
-#[inline]
+#[inline(always)]
 pub fn eval(
     structure: &Structure,
     v: &Values,
