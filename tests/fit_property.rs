@@ -97,3 +97,45 @@ proptest! {
         prop_assert!(rel(got, srf) < 2e-3, "SRF {} vs {}", got, srf);
     }
 }
+
+fn junk_sweep() -> impl Strategy<Value = henrybook::sweep::Sweep> {
+    (
+        20usize..120,
+        log_uniform(1.0, 1e6),
+        log_uniform(2.0, 1e5),
+        proptest::collection::vec((-1e4f64..1e4, -1e4f64..1e4, 1e-6f64..1e3), 120),
+    )
+        .prop_map(|(n, f0, span, pts)| {
+            let frequency_hz = fit_synth::log_grid(f0, f0 * span, n);
+            henrybook::sweep::Sweep {
+                impedance_ohm: pts[..n]
+                    .iter()
+                    .map(|p| num_complex::Complex64::new(p.0, p.1))
+                    .collect(),
+                sigma_ohm: pts[..n].iter().map(|p| p.2).collect(),
+                frequency_hz,
+                method: Method::Direct,
+                z0_ohm: 50.0,
+            }
+        })
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 48, ..ProptestConfig::default() })]
+
+    /// Arbitrary (junk) sweeps: the fit returns an error or a finite model and report, never a panic
+    /// and never a NaN.
+    #[test]
+    fn junk_sweeps_give_an_error_or_a_finite_report(s in junk_sweep()) {
+        let options = FitOptions { time_limit_s: 2.0, ..FitOptions::default() };
+        if let Ok(r) = fit(&s, &options, &FitControl::default()) {
+            let FittedModel::Lumped(m) = &r.model else { panic!("lumped expected") };
+            let values = [m.l0_h, m.rdc_ohm, m.cp_f, m.ls_h, m.k_ac_ohm_per_sqrt_hz, m.rp_ohm.unwrap_or(1.0)];
+            prop_assert!(values.iter().all(|v| v.is_finite()), "{:?}", m);
+            prop_assert!(r.quality.rms_weighted.is_finite());
+            prop_assert!(r.candidates.iter().all(|c| c.cost.is_finite() && c.bic.is_finite()));
+            let json = serde_json::to_string(&r).unwrap();
+            prop_assert!(!json.contains("NaN"));
+        }
+    }
+}
