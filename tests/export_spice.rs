@@ -49,8 +49,8 @@ fn series_section() -> Section {
     Section {
         kind: SectionKind::Series,
         r_ohm: 3.0,
-        l_h: 40e-9,
-        c_f: 1e-12,
+        l_h: 0.4e-6,
+        c_f: 30e-12,
     }
 }
 
@@ -58,8 +58,8 @@ fn tank_section() -> Section {
     Section {
         kind: SectionKind::Parallel,
         r_ohm: 800.0,
-        l_h: 50e-9,
-        c_f: 2e-12,
+        l_h: 0.3e-6,
+        c_f: 50e-12,
     }
 }
 
