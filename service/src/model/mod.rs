@@ -69,6 +69,7 @@ impl ImpedanceModel for LumpedModel {
 }
 
 pub mod construction;
+pub mod lumped;
 pub mod rational;
 pub use rational::RationalModel;
 
