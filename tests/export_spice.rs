@@ -191,7 +191,10 @@ fn every_lumped_netlist_matches_its_model_within_the_stated_error() {
         );
         // Without a skin-effect term the map is exact (values are written round-trip).
         if model.k_ac_ohm_per_sqrt_hz == 0.0 {
-            assert!(err < 1e-8, "{name}: {err:e}");
+            assert!(
+                err < 1e-8 && bound < 1e-6,
+                "{name}: {err:e}, stated {bound:e}"
+            );
         }
         // The stated error must also be useful, not merely true. Its floor is physical: a causal
         // network whose resistance rises as √f carries a reactance of about k·√f, which is ~1 % of |Z|

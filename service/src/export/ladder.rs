@@ -115,7 +115,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
     let k = m.k_ac_ohm_per_sqrt_hz;
     let model_z = |f: f64| impedance_with_skin(m, Complex64::new(k * f.sqrt(), 0.0), m.l0_h, f);
     let res = resonances(&model_z, lo, hi);
-    let grid = grid_with_resonances(lo, hi, 25.0, 100, 500, &res, 12);
+    let grid = grid_with_resonances(lo, hi, 25.0, 100, 500, &res, 30);
     let n_corner = ((hi / lo).log10() + 2.0) * CORNERS_PER_DECADE;
     let corners_hz = log_grid(lo / 10.0, hi * 10.0, n_corner.ceil() as usize + 1);
     let n = corners_hz.len();
@@ -240,7 +240,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         max_reactance_ohm: 0.0,
         internal_inductance_h: [0.0; 2],
     };
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
     for &f in &check {
         let z = ladder.impedance(f);
         let target = k * f.sqrt();
