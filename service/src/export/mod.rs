@@ -44,6 +44,11 @@ impl ExportContext {
         }
     }
 
+    /// A context for a fit report: its band of validity (the sweep's), nothing else yet.
+    pub fn for_report(report: &crate::fit::FitReport) -> Self {
+        Self::for_band(report.band_hz[0], report.band_hz[1])
+    }
+
     pub(crate) fn checked_band(&self) -> Result<[f64; 2], ExportError> {
         let [lo, hi] = self.band_hz;
         if !(lo.is_finite() && hi.is_finite() && lo > 0.0 && hi > lo) {
