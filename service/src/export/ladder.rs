@@ -259,3 +259,33 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
     ];
     Ok(ladder)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn winding_only(k: f64) -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.02,
+            k_ac_ohm_per_sqrt_hz: k,
+            rp_ohm: None,
+            cp_f: 0.0,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn the_ladder_is_zero_at_dc_and_follows_sqrt_f_in_band() {
+        let m = winding_only(2e-5);
+        let l = design_skin_ladder(&m, [1e3, 1e8]).unwrap();
+        assert!(l.impedance(1e-9).norm() < 1e-12, "{}", l.impedance(1e-9));
+        assert!(l.cells.iter().all(|c| c.r_ohm > 0.0 && c.l_h > 0.0));
+        assert!(l.max_real_error_rel < 1e-2, "{}", l.max_real_error_rel);
+        // Reactance is positive (an R–L network) and its X/ω falls with frequency.
+        assert!(l.internal_inductance_h[0] > l.internal_inductance_h[1]);
+        // L0 gives back about the ladder's internal inductance (tens of nH here), a fraction of L0.
+        assert!(l.l0_h < m.l0_h && l.l0_h > 0.99 * m.l0_h, "{}", l.l0_h);
+    }
+}
