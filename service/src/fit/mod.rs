@@ -55,7 +55,8 @@ pub struct FitOptions {
     /// Rational fits: most pole relocations per order.
     pub rational_max_relocations: u64,
     /// Rational fits: passivity enforcement may raise the weighted RMS error by at most this fraction
-    /// (0.1 = 10 %); a model that cannot be made passive within it is not returned.
+    /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`); a model that cannot be made passive
+    /// within it is not returned.
     pub passivity_rms_allowance: f64,
 }
 

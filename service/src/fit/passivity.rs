@@ -189,6 +189,23 @@ pub(crate) fn crossings(poles: &Poles, coef: &Coefficients) -> Vec<f64> {
         .filter(|x| x.re > 0.0 && x.im.abs() <= 1e-6 * x.norm())
         .map(|x| x.re.sqrt())
         .collect();
+    // Polish each crossing by bisection where Re Z changes sign around it, so band edges sit on zeros.
+    for w in out.iter_mut() {
+        let f = |w: f64| re_z(w, poles, coef).0;
+        let (mut a, mut b) = (*w * (1.0 - 1e-6), *w * (1.0 + 1e-6));
+        let (fa, fb) = (f(a), f(b));
+        if fa.signum() != fb.signum() {
+            for _ in 0..60 {
+                let m = 0.5 * (a + b);
+                if f(m).signum() == fa.signum() {
+                    a = m;
+                } else {
+                    b = m;
+                }
+            }
+            *w = 0.5 * (a + b);
+        }
+    }
     out.sort_by(f64::total_cmp);
     out.dedup_by(|a, b| (*a - *b).abs() <= 1e-12 * b.abs());
     out
@@ -354,8 +371,14 @@ impl std::fmt::Display for EnforceFailure {
     }
 }
 
-/// Makes the fit passive by the least change of its weighted error; `allowance` bounds the relative
-/// increase of the weighted RMS error (0.1 = 10 %).
+/// The largest weighted RMS error enforcement may leave: `(1 + allowance)·max(before, 0.001)`. The floor
+/// (a thousandth of the stated uncertainty) lets a fit far below the noise, e.g. of exact data, move by
+/// a negligible amount when d or e must be lifted to exactly zero.
+pub fn error_bound(rms_before: f64, allowance: f64) -> f64 {
+    (1.0 + allowance) * rms_before.max(1e-3)
+}
+
+/// Makes the fit passive by the least change of its weighted error, within [`error_bound`].
 pub(crate) fn enforce(
     data: &FitData,
     poles: &Poles,
@@ -400,8 +423,6 @@ pub(crate) fn enforce(
     }
     let qr = PivotedQr::new(a.clone(), rows, nv, 1e-13);
     let rank = qr.rank();
-    let z_max = data.z.iter().fold(0.0f64, |m, z| m.max(z.norm()));
-    let margin = 1e-9 * z_max;
     // Constraints gᵀx ≥ h on the full parameter vector.
     let mut cons: Vec<(Vec<f64>, f64)> = Vec::new();
     let unit = |k: usize| {
@@ -418,12 +439,33 @@ pub(crate) fn enforce(
         let c = to_coef(&x);
         let minima = negative_minima(poles, &c, &crossings(poles, &c));
         for m in &minima {
-            let w = if m.at.is_finite() { m.at } else { 1e12 };
-            basis_at(Complex64::new(0.0, w), poles, &mut phi);
-            let mut g: Vec<f64> = phi.iter().map(|p| p.re).collect();
-            g.push(1.0);
-            g.push(0.0);
-            cons.push((g, margin));
+            // The minimum itself, and from the second round on a spread of points across the band
+            // (bounded to two decades around the minimum), so narrow dips beside a constraint are caught.
+            let mut points = vec![m.at];
+            if round > 1 {
+                let lo = m.from.max(m.at / 100.0);
+                let hi = m.to.min(m.at * 100.0);
+                if hi > lo && lo > 0.0 {
+                    let count = 4 * round.min(8);
+                    for i in 0..=count {
+                        points.push(lo * (hi / lo).powf(i as f64 / count as f64));
+                    }
+                }
+                for t in [1e-9, 1e-7, 1e-5] {
+                    points.push(m.at * (1.0 - t));
+                    points.push(m.at * (1.0 + t));
+                }
+            }
+            for w in points {
+                basis_at(Complex64::new(0.0, w), poles, &mut phi);
+                let mut g: Vec<f64> = phi.iter().map(|p| p.re).collect();
+                g.push(1.0);
+                g.push(0.0);
+                // A margin relative to the size of the terms there, so a tail that only needs to reach
+                // zero is not pushed up by a margin scaled to the whole response.
+                let margin = 1e-6 * re_z(w, poles, coef0).1;
+                cons.push((g, margin));
+            }
         }
         // Transform to y = R·z (z: pivoted, scaled coordinates of Δ = x − x₀): ‖A·Δ‖ = ‖y‖.
         let mut e_rows = Vec::with_capacity(cons.len());
@@ -451,10 +493,13 @@ pub(crate) fn enforce(
         let z = qr.back_substitute(&y);
         let delta = qr.unpermute(&z);
         x = x0.iter().zip(&delta).map(|(a, b)| a + b).collect();
+        // The bounds d ≥ 0 and e ≥ 0 are met by the programme up to roundoff: make them exact.
+        x[n] = x[n].max(0.0);
+        x[n + 1] = x[n + 1].max(0.0);
         let c = to_coef(&x);
         if passes(&c) {
             let rms_after = rms_of(&x);
-            if rms_after > rms_before * (1.0 + allowance) {
+            if rms_after > error_bound(rms_before, allowance) {
                 return Err(EnforceFailure::OverBound {
                     rms_before,
                     rms_after,

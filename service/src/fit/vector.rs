@@ -302,6 +302,146 @@ pub(crate) fn rms_weighted(data: &FitData, poles: &Poles, coef: &Coefficients) -
     (ss / (2 * data.len()) as f64).sqrt()
 }
 
+/// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
+/// fixed point minimises a linearised error, not the error itself). Steps that would move a pole into the
+/// right half-plane or change the real/pair split are rejected. Returns the refined set and the number of
+/// accepted steps.
+pub(crate) fn refine(
+    data: &FitData,
+    mut poles: Poles,
+    mut coef: Coefficients,
+    max_steps: u64,
+) -> (Poles, Coefficients, u64) {
+    let k = data.len();
+    let nr = poles.real.len();
+    let np = poles.pairs.len();
+    let n = poles.order();
+    // Parameters: real poles, (Re, Im) per pair, residues c (n), d, e.
+    let params = nr + 2 * np + n + 2;
+    let rows = 2 * k;
+    let residual = |poles: &Poles, coef: &Coefficients| -> Vec<f64> {
+        let mut r = vec![0.0; rows];
+        for i in 0..k {
+            let v = (evaluate(data.s[i], poles, coef) - data.z[i]) * data.w[i];
+            r[i] = v.re;
+            r[k + i] = v.im;
+        }
+        r
+    };
+    let cost_of = |r: &[f64]| r.iter().map(|v| v * v).sum::<f64>();
+    let mut r = residual(&poles, &coef);
+    let mut cost = cost_of(&r);
+    let mut lambda: f64 = 1e-3;
+    let mut accepted = 0;
+    let mut phi = Vec::with_capacity(n);
+    let j_unit = Complex64::new(0.0, 1.0);
+    let damping_floor: Vec<f64> = poles
+        .pairs
+        .iter()
+        .map(|p| (-p.re / p.norm()).min(1e-3))
+        .collect();
+    for _ in 0..max_steps {
+        // Jacobian, column-major.
+        let mut jac = vec![0.0; rows * params];
+        for i in 0..k {
+            let s = data.s[i];
+            let w = data.w[i];
+            let mut put = |col: usize, v: Complex64| {
+                jac[col * rows + i] = v.re * w;
+                jac[col * rows + k + i] = v.im * w;
+            };
+            for (q, &a) in poles.real.iter().enumerate() {
+                let t = (s - a).inv();
+                put(q, coef.c[q] * t * t);
+            }
+            for (q, &p) in poles.pairs.iter().enumerate() {
+                let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
+                let t1 = (s - p).inv();
+                let t2 = (s - p.conj()).inv();
+                let a1 = res * t1 * t1;
+                let a2 = res.conj() * t2 * t2;
+                put(nr + 2 * q, a1 + a2);
+                put(nr + 2 * q + 1, j_unit * (a1 - a2));
+            }
+            basis_at(s, &poles, &mut phi);
+            for (q, ph) in phi.iter().enumerate() {
+                put(nr + 2 * np + q, *ph);
+            }
+            put(nr + 2 * np + n, Complex64::new(1.0, 0.0));
+            put(nr + 2 * np + n + 1, s);
+        }
+        let norms: Vec<f64> = (0..params)
+            .map(|c| {
+                let col = &jac[c * rows..(c + 1) * rows];
+                col.iter().map(|v| v * v).sum::<f64>().sqrt().max(1e-300)
+            })
+            .collect();
+        let mut improved = false;
+        while lambda < 1e12 {
+            // [J·D⁻¹; √λ·I]·u = [−r; 0], δ = D⁻¹·u.
+            let arows = rows + params;
+            let mut a = vec![0.0; arows * params];
+            for c in 0..params {
+                for i in 0..rows {
+                    a[c * arows + i] = jac[c * rows + i] / norms[c];
+                }
+                a[c * arows + rows + c] = lambda.sqrt();
+            }
+            let mut b = vec![0.0; arows];
+            for i in 0..rows {
+                b[i] = -r[i];
+            }
+            let u = PivotedQr::new(a, arows, params, RANK_TOL).solve(&b);
+            let delta: Vec<f64> = u.iter().zip(&norms).map(|(u, d)| u / d).collect();
+            let mut trial_poles = poles.clone();
+            for (q, a) in trial_poles.real.iter_mut().enumerate() {
+                *a += delta[q];
+            }
+            for (q, p) in trial_poles.pairs.iter_mut().enumerate() {
+                *p += Complex64::new(delta[nr + 2 * q], delta[nr + 2 * q + 1]);
+                // Projected onto the damping floor.
+                let z = damping_floor[q];
+                if -p.re < z * p.norm() {
+                    p.re = -z * p.im.abs() / (1.0 - z * z).sqrt();
+                }
+            }
+            // A pole may not become sharper than it was or than Q = 500: between the sweep's points
+            // nothing would stop it drifting onto the axis to fit noise.
+            let stable = trial_poles.real.iter().all(|a| *a < 0.0)
+                && trial_poles
+                    .pairs
+                    .iter()
+                    .zip(&damping_floor)
+                    .all(|(p, z)| p.im > 0.0 && -p.re >= z * p.norm() * (1.0 - 1e-12));
+            let trial_coef = Coefficients {
+                c: (0..n).map(|q| coef.c[q] + delta[nr + 2 * np + q]).collect(),
+                d: coef.d + delta[nr + 2 * np + n],
+                e: coef.e + delta[nr + 2 * np + n + 1],
+            };
+            if stable {
+                let tr = residual(&trial_poles, &trial_coef);
+                let tc = cost_of(&tr);
+                if tc.is_finite() && tc < cost {
+                    let gain = (cost - tc) / cost.max(1e-300);
+                    poles = trial_poles;
+                    coef = trial_coef;
+                    r = tr;
+                    cost = tc;
+                    lambda = (lambda / 10.0).max(1e-12);
+                    accepted += 1;
+                    improved = gain > 1e-10;
+                    break;
+                }
+            }
+            lambda *= 10.0;
+        }
+        if !improved {
+            break;
+        }
+    }
+    (poles, coef, accepted)
+}
+
 /// Converts a normalised pole–residue set to the physical model (rad/s, Ω, H).
 pub(crate) fn to_model(omega0: f64, poles: &Poles, coef: &Coefficients) -> RationalModel {
     let o = poles.real.len();
@@ -361,6 +501,8 @@ pub struct VectorFit {
     pub rms_weighted: f64,
     /// Pole relocations run.
     pub relocations: u64,
+    /// Accepted Levenberg–Marquardt refinement steps after the relocations.
+    pub refinements: u64,
     /// True when the poles stopped moving (relative change below 1e-10) before the relocation limit.
     pub converged: bool,
     pub(crate) poles: Poles,
@@ -442,7 +584,7 @@ pub(crate) fn vector_fit_data(
             break;
         }
     }
-    let (rms, poles, coef) = match best {
+    let (_, poles, coef) = match best {
         Some(b) => b,
         None => {
             let coef = identify(data, &poles);
@@ -450,6 +592,8 @@ pub(crate) fn vector_fit_data(
             (rms, poles, coef)
         }
     };
+    let (poles, coef, refinements) = refine(data, poles, coef, 100);
+    let rms = rms_weighted(data, &poles, &coef);
     if !rms.is_finite() || coef.c.iter().any(|c| !c.is_finite()) {
         return Err(FitError::NonFinite(format!(
             "vector fitting at order {} gave a non-finite model",
@@ -460,6 +604,7 @@ pub(crate) fn vector_fit_data(
         model: to_model(data.omega0, &poles, &coef),
         rms_weighted: rms,
         relocations,
+        refinements,
         converged,
         poles,
         coef,
