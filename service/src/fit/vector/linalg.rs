@@ -69,17 +69,27 @@ impl PivotedQr {
             let t = if vtv > 0.0 { 2.0 / vtv } else { 0.0 };
             tau[k] = t;
             r_diag[k] = alpha;
-            for j in (k + 1)..cols {
-                let col = &mut tail[(j - k - 1) * rows + k..(j - k) * rows];
-                let f = t * dot(v, col);
-                axpy(-f, v, col);
-                // Downdate the remaining norm; recompute when cancellation has eaten its accuracy.
-                norms2[j] -= col[0] * col[0];
-                if norms2[j] < 1e-8 * ref_norms2[j] {
-                    norms2[j] = dot(&col[1..], &col[1..]);
-                    ref_norms2[j] = norms2[j];
-                } else {
-                    norms2[j] = norms2[j].max(0.0);
+            // Apply the reflector to the trailing columns, four at a time so v is read once per group.
+            let len = rows - k;
+            let mut chunks = tail.chunks_exact_mut(rows);
+            let mut j = k + 1;
+            loop {
+                let group: Vec<&mut [f64]> = chunks.by_ref().take(4).collect();
+                if group.is_empty() {
+                    break;
+                }
+                let mut group: Vec<&mut [f64]> = group.into_iter().map(|c| &mut c[k..]).collect();
+                reflect_group(v, t, &mut group, len);
+                for col in group.iter() {
+                    // Downdate the remaining norm; recompute when cancellation has eaten its accuracy.
+                    norms2[j] -= col[0] * col[0];
+                    if norms2[j] < 1e-8 * ref_norms2[j] {
+                        norms2[j] = dot(&col[1..], &col[1..]);
+                        ref_norms2[j] = norms2[j];
+                    } else {
+                        norms2[j] = norms2[j].max(0.0);
+                    }
+                    j += 1;
                 }
             }
         }
@@ -166,6 +176,37 @@ impl PivotedQr {
     }
 }
 
+/// cols[i] −= t·(vᵀcols[i])·v for up to four columns, reading v once per pass.
+fn reflect_group(v: &[f64], t: f64, cols: &mut [&mut [f64]], len: usize) {
+    if cols.len() == 4 {
+        let (mut s0, mut s1, mut s2, mut s3) = (0.0, 0.0, 0.0, 0.0);
+        {
+            let (c0, c1, c2, c3) = (
+                &cols[0][..len],
+                &cols[1][..len],
+                &cols[2][..len],
+                &cols[3][..len],
+            );
+            for i in 0..len {
+                let vi = v[i];
+                s0 += vi * c0[i];
+                s1 += vi * c1[i];
+                s2 += vi * c2[i];
+                s3 += vi * c3[i];
+            }
+        }
+        let f = [t * s0, t * s1, t * s2, t * s3];
+        for (c, fc) in cols.iter_mut().zip(f) {
+            axpy(-fc, v, &mut c[..len]);
+        }
+    } else {
+        for c in cols.iter_mut() {
+            let f = t * dot(v, &c[..len]);
+            axpy(-f, v, &mut c[..len]);
+        }
+    }
+}
+
 fn dot(a: &[f64], b: &[f64]) -> f64 {
     // Four accumulators let the compiler vectorise and shorten the dependency chain.
     let mut acc = [0.0; 4];
@@ -189,6 +230,10 @@ fn axpy(f: f64, x: &[f64], y: &mut [f64]) {
 }
 
 fn norm(v: &[f64]) -> f64 {
+    let direct = dot(v, v).sqrt();
+    if direct.is_finite() && direct > 1e-150 && direct < 1e150 {
+        return direct;
+    }
     let m = v.iter().fold(0.0f64, |m, x| m.max(x.abs()));
     if m == 0.0 || !m.is_finite() {
         return m;
