@@ -113,6 +113,65 @@ fn the_pole_pair_of_an_exact_parallel_rlc_sweep_is_recovered_to_1e_9() {
 }
 
 #[test]
+fn derived_figures_of_the_rational_fit_match_those_of_the_circuit() {
+    // The SRF of the parallel RLC from the fitted rational model equals the one of the circuit itself;
+    // Thomson's 1/(2π·√(L·C)) for 10 µH with 5 pF is 22.5079 MHz (TOOLBOX reference values), which the
+    // lossy circuit's SRF matches to its 6 digits.
+    let c = ParallelRlc {
+        l: 10e-6,
+        rs: 0.1,
+        cp: 5e-12,
+        rp: 20e3,
+    };
+    let band = [1e4, 1e9];
+    let sweep = exact_sweep(&c, &log_grid(band[0], band[1], 401));
+    let report = fit(&sweep, &rational_options(), &FitControl::default()).unwrap();
+    let known = henrybook::fit::derived::KnownElements::default();
+    let truth = henrybook::fit::derived::derived_figures(&c, band, &[], &known);
+    let srf = report.derived.srf_hz.unwrap();
+    assert!((srf / truth.srf_hz.unwrap() - 1.0).abs() < 1e-9, "{srf}");
+    // Im Z = 0 of (Rs + sL) ‖ Cp ‖ Rp at ω² = 1/(L·Cp) − (Rs/L)² (circuit algebra).
+    let analytic = (1.0 / (c.l * c.cp) - (c.rs / c.l).powi(2)).sqrt() / (2.0 * PI);
+    assert!((srf / analytic - 1.0).abs() < 1e-9, "{srf} vs {analytic}");
+    assert!((srf / 22.5079e6 - 1.0).abs() < 5e-6, "{srf}");
+    // dZ/ds at DC: with Y = 1/(Rs + sL) + s·Cp + 1/Rp, Z′(0) = −Y′(0)/Y(0)² =
+    // (L/Rs² − Cp)/(1/Rs + 1/Rp)² (circuit algebra).
+    let l0 = rational_of(&report).dc_inductance_h();
+    let l0_exact = (c.l / (c.rs * c.rs) - c.cp) / (1.0 / c.rs + 1.0 / c.rp).powi(2);
+    assert!((l0 / l0_exact - 1.0).abs() < 1e-9, "{l0} vs {l0_exact}");
+    assert!((rational_of(&report).dc_resistance_ohm() - c.rs * c.rp / (c.rs + c.rp)).abs() < 1e-9);
+
+    // The noisy choke: resonances of the passive fit against those of the known model.
+    let f = log_grid(1e4, 1e9, 801);
+    let sweep = noisy_sweep(&choke(), &f, 1e-3, 11);
+    let report = fit(&sweep, &rational_options(), &FitControl::default()).unwrap();
+    let truth = henrybook::fit::derived::derived_figures(&choke(), [1e4, 1e9], &[], &known);
+    let got = &report.derived;
+    assert_eq!(
+        got.parallel_resonances_hz.len(),
+        truth.parallel_resonances_hz.len(),
+        "{got:?}"
+    );
+    assert_eq!(
+        got.series_resonances_hz.len(),
+        truth.series_resonances_hz.len(),
+        "{got:?}"
+    );
+    for (a, b) in got
+        .parallel_resonances_hz
+        .iter()
+        .zip(&truth.parallel_resonances_hz)
+        .chain(
+            got.series_resonances_hz
+                .iter()
+                .zip(&truth.series_resonances_hz),
+        )
+    {
+        assert!((a / b - 1.0).abs() < 2e-3, "{a} vs {b}");
+    }
+}
+
+#[test]
 fn every_pole_of_an_exact_seventh_order_model_is_recovered_to_1e_9() {
     // Synthetic (no source): a known model with a real pole, three pairs, d and e.
     let known = RationalModel {

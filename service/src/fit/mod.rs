@@ -4,7 +4,12 @@
 //! The report's field names are part of the JSON contract (CLI, HTTP, database): add fields, do not
 //! rename them.
 
+pub mod derived;
+pub mod initial;
+pub mod lm;
+pub mod lumped;
 pub mod passivity;
+pub mod problem;
 pub mod vector;
 
 use crate::model::FittedModel;
@@ -229,15 +234,14 @@ pub fn fit(
     }
 }
 
-// Transient: replaced by the fitting engine on the `fit` branch.
+/// The lumped fit: starting values from the curve, LM on log-parameters per candidate structure,
+/// selection by BIC, uncertainty and derived figures (see [`lumped`]).
 pub fn fit_lumped(
-    _sweep: &crate::sweep::Sweep,
-    _options: &FitOptions,
-    _control: &FitControl,
+    sweep: &crate::sweep::Sweep,
+    options: &FitOptions,
+    control: &FitControl,
 ) -> Result<FitReport, FitError> {
-    Err(FitError::InvalidOptions(
-        "the lumped fit is not built yet".into(),
-    ))
+    lumped::fit_lumped(sweep, options, control)
 }
 
 /// Vector fitting with automatic order, passivity enforcement and the shared report; see [`vector`].

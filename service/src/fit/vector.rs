@@ -8,11 +8,9 @@
 
 pub(crate) mod linalg;
 
-use crate::fit::{
-    Candidate, Derived, FitControl, FitError, FitOptions, FitReport, Quality, Termination,
-};
+use crate::fit::{Candidate, FitControl, FitError, FitOptions, FitReport, Quality, Termination};
 use crate::model::rational::{ComplexPole, RealPole};
-use crate::model::{FittedModel, ImpedanceModel, RationalModel};
+use crate::model::{FittedModel, RationalModel};
 use crate::sweep::Sweep;
 use linalg::{PivotedQr, rational_zeros};
 use num_complex::Complex64;
@@ -862,7 +860,10 @@ pub fn fit_rational(
         .passive
         .clone()
         .expect("only passive candidates are chosen");
-    let quality = quality_of(sweep, &model, 2 * chosen_order + 2);
+    let quality = Quality {
+        parameters: 2 * chosen_order + 2,
+        ..crate::fit::derived::quality(&model, sweep)
+    };
     let termination = if timed_out {
         Termination::TimeLimit
     } else if chosen.fit.converged {
@@ -870,7 +871,22 @@ pub fn fit_rational(
     } else {
         Termination::MaxIterations
     };
-    let derived = Derived::default();
+    let band_hz = [
+        sweep.frequency_hz[0],
+        *sweep.frequency_hz.last().expect("validated non-empty"),
+    ];
+    // Resonances and L/Q come from the rational model itself; its low-frequency inductance is exact
+    // (dZ/ds at s = 0); it has no Cp or Rp element to compare with.
+    let derived = crate::fit::derived::derived_figures(
+        &model,
+        band_hz,
+        &options.report_frequencies_hz,
+        &crate::fit::derived::KnownElements {
+            l0_h: Some(model.dc_inductance_h()).filter(|l| l.is_finite() && *l > 0.0),
+            cp_f: None,
+            rp_ohm: None,
+        },
+    );
     Ok(FitReport {
         engine_version: crate::fit::ENGINE_VERSION.to_string(),
         model: FittedModel::Rational(model),
@@ -882,10 +898,7 @@ pub fn fit_rational(
         termination,
         iterations,
         candidates,
-        band_hz: [
-            sweep.frequency_hz[0],
-            *sweep.frequency_hz.last().expect("validated non-empty"),
-        ],
+        band_hz,
     })
 }
 
@@ -918,32 +931,6 @@ fn check_options(options: &FitOptions, points: usize) -> Result<(), FitError> {
         ));
     }
     Ok(())
-}
-
-fn quality_of(sweep: &Sweep, model: &RationalModel, parameters: usize) -> Quality {
-    let mut ss = 0.0;
-    let mut worst = (0.0f64, sweep.frequency_hz[0]);
-    for ((f, z), s) in sweep
-        .frequency_hz
-        .iter()
-        .zip(&sweep.impedance_ohm)
-        .zip(&sweep.sigma_ohm)
-    {
-        let r = model.impedance(*f) - z;
-        ss += (r / s).norm_sqr();
-        let rel = r.norm() / z.norm().max(f64::MIN_POSITIVE);
-        if rel > worst.0 {
-            worst = (rel, *f);
-        }
-    }
-    let n = sweep.frequency_hz.len();
-    Quality {
-        rms_weighted: (ss / (2 * n) as f64).sqrt(),
-        max_relative_error: worst.0,
-        max_relative_error_at_hz: worst.1,
-        points: n,
-        parameters,
-    }
 }
 
 #[cfg(test)]
