@@ -210,10 +210,10 @@ export function plot(spec) {
   const axes = s("g", { class: "axes" });
   axes.append(s("rect", { class: "frame", x: M.left, y: M.top, width: W - M.left - M.right, height: H - M.top - M.bottom }));
   for (const v of xa.major) {
-    axes.append(s("text", { class: "tick", x: xa.toPx(v), y: H - M.bottom + 15, "text-anchor": "middle" }, tickLabel(v, xa.unit)));
+    axes.append(s("text", { class: "tick tick-x", x: xa.toPx(v), y: H - M.bottom + 15, "text-anchor": "middle" }, tickLabel(v, xa.unit)));
   }
   for (const v of ya.major) {
-    axes.append(s("text", { class: "tick", x: M.left - 6, y: ya.toPx(v) + 4, "text-anchor": "end" }, tickLabel(v, ya.unit)));
+    axes.append(s("text", { class: "tick tick-y", x: M.left - 6, y: ya.toPx(v) + 4, "text-anchor": "end" }, tickLabel(v, ya.unit)));
   }
   axes.append(s("text", { class: "axis-title", x: (M.left + W - M.right) / 2, y: H - 6, "text-anchor": "middle" }, xa.label));
   axes.append(
