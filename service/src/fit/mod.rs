@@ -4,6 +4,12 @@
 //! The report's field names are part of the JSON contract (CLI, HTTP, database): add fields, do not
 //! rename them.
 
+pub mod derived;
+pub mod initial;
+pub mod lm;
+pub mod lumped;
+pub mod problem;
+
 use crate::model::FittedModel;
 use serde::{Deserialize, Serialize};
 use std::sync::Arc;
@@ -205,15 +211,14 @@ pub fn fit(
     }
 }
 
-// Transient: replaced by the fitting engine on the `fit` branch.
+/// The lumped fit: starting values from the curve, LM on log-parameters per candidate structure,
+/// selection by BIC, uncertainty and derived figures (see [`lumped`]).
 pub fn fit_lumped(
-    _sweep: &crate::sweep::Sweep,
-    _options: &FitOptions,
-    _control: &FitControl,
+    sweep: &crate::sweep::Sweep,
+    options: &FitOptions,
+    control: &FitControl,
 ) -> Result<FitReport, FitError> {
-    Err(FitError::InvalidOptions(
-        "the lumped fit is not built yet".into(),
-    ))
+    lumped::fit_lumped(sweep, options, control)
 }
 
 // Transient: replaced by vector fitting on the `vfit` branch.

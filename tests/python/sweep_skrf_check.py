@@ -1,0 +1,66 @@
+"""Reads Touchstone files with scikit-rf and prints the impedance each method implies, as JSON.
+
+stdin: {"files": [{"path": ..., "method": "reflection|series-thru|shunt-thru|direct"}]}
+stdout: {"skrf_version": ..., "files": [{"path", "frequency_hz", "z_real_ohm", "z_imag_ohm"}],
+         "fixture": {...}}
+
+The impedance comes from scikit-rf's own network conversions, not from henrybook's formulas:
+reflection and direct -> Network.z (s2z); series element -> ABCD B (Network.a[:, 0, 1]);
+shunt element -> 1 / ABCD C (Network.a[:, 1, 0]).
+The fixture part de-embeds scikit-rf's bundled ind.s2p with open.s2p and short.s2p
+(skrf.calibration.deembedding.OpenShort) and reports the series inductance -Im(1/Y21)/w.
+"""
+import json
+import os
+import sys
+
+import numpy as np
+import skrf
+from skrf.calibration.deembedding import OpenShort
+
+
+def impedance(path, method):
+    ntwk = skrf.Network(path)
+    if method in ("reflection", "direct"):
+        z = ntwk.z[:, 0, 0]
+    elif method == "series-thru":
+        z = ntwk.a[:, 0, 1]
+    elif method == "shunt-thru":
+        z = 1.0 / ntwk.a[:, 1, 0]
+    else:
+        raise ValueError(method)
+    return {
+        "path": path,
+        "frequency_hz": ntwk.f.tolist(),
+        "z_real_ohm": np.real(z).tolist(),
+        "z_imag_ohm": np.imag(z).tolist(),
+    }
+
+
+def fixture():
+    data = os.path.join(os.path.dirname(skrf.__file__), "data")
+    paths = {k: os.path.join(data, k + ".s2p") for k in ("ind", "open", "short")}
+    ind, op, sh = (skrf.Network(paths[k]) for k in ("ind", "open", "short"))
+    dut = OpenShort(dummy_open=op, dummy_short=sh, name="os").deembed(ind)
+    w = 2 * np.pi * dut.f
+    l_h = (-1.0 / dut.y[:, 0, 1]).imag / w
+    texts = {}
+    for k, p in paths.items():
+        with open(p, encoding="latin-1") as fh:
+            texts[k] = fh.read()
+    return {"frequency_hz": dut.f.tolist(), "l_h": l_h.tolist(), "text": texts}
+
+
+def main():
+    request = json.load(sys.stdin)
+    out = {
+        "skrf_version": skrf.__version__,
+        "files": [impedance(f["path"], f["method"]) for f in request.get("files", [])],
+    }
+    if request.get("fixture"):
+        out["fixture"] = fixture()
+    json.dump(out, sys.stdout)
+
+
+if __name__ == "__main__":
+    main()
