@@ -7,6 +7,7 @@ import { si, plain, time, unitFromName } from "./si.js";
 import { plot } from "./plot.js";
 import { partHref, fitHref, progressBar, approvalControls } from "./common.js";
 import { LIMIT_FIELDS } from "./part.js";
+import { navigate } from "./nav.js";
 
 const FINAL = new Set(["succeeded", "failed", "cancelled"]);
 const DEG = 180 / Math.PI;
@@ -130,8 +131,35 @@ function actions(d, rerender) {
       auth.atLeast("inspector") && !FINAL.has(d.status) ? h("button", { type: "button", class: "small danger", "data-do": "cancel", onclick: () => act("cancel") }, "Cancel fit") : null,
       auth.atLeast("inspector") && (d.status === "failed" || d.status === "cancelled") ? h("button", { type: "button", class: "small", "data-do": "retry", onclick: () => act("retry") }, "Retry") : null,
       approvalControls(d, rerender),
+      auth.atLeast("engineer") && d.status === "succeeded" ? refitControls(d, msg) : null,
     ),
     msg,
+  );
+}
+
+// A refit is a new revision of the same sweep with other options; the old one stays as it was.
+function refitControls(d, msg) {
+  const family = h("select", { "aria-label": "model family" }, h("option", { value: "lumped" }, "lumped"), h("option", { value: "rational" }, "rational"));
+  const sections = h("select", { "aria-label": "resonant sections" }, [0, 1, 2, 3].map((n) => h("option", { value: n, selected: n === 3 }, `≤ ${n} sections`)));
+  return h(
+    "form",
+    {
+      class: "inline-form refit",
+      onsubmit: async (ev) => {
+        ev.preventDefault();
+        msg.replaceChildren("Starting a refit…");
+        try {
+          const res = await api.post(`/fits/${encodeURIComponent(d.fit_id)}/refit`, { options: { family: family.value, max_sections: Number(sections.value) } });
+          navigate(fitHref(res.fit_id));
+        } catch (e) {
+          msg.replaceChildren(errorBox(e, "The refit was not started"));
+        }
+      },
+    },
+    h("span", { class: "label" }, "Refit as"),
+    family,
+    sections,
+    h("button", { type: "submit", class: "small" }, "Refit"),
   );
 }
 

@@ -98,6 +98,7 @@ export async function renderPart(main, [partNumber]) {
           h("tr", {}, h("th", {}, "Lots measured"), h("td", {}, (part.lots ?? []).length ? part.lots.join(", ") : "—")),
           h("tr", {}, h("th", {}, "Fits"), h("td", {}, String(fits.length))),
         )),
+        auth.atLeast("inspector") ? h("p", {}, h("a", { href: `/ui/upload?part=${encodeURIComponent(part.part_number)}`, "data-nav": "" }, "Upload a sweep of a new lot →")) : null,
         auth.atLeast("engineer") ? null : h("p", { class: "muted", id: "read-only-note" }, `Signed in as ${auth.role() ?? "reader"}: approving, rejecting and editing limits need the engineer role.`),
       ),
     ),
