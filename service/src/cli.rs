@@ -1,8 +1,8 @@
 //! The command line. `fit` and `impedance` run the numeric core on files; `serve`, `token` and `demo`
 //! belong to the service (see [`crate::server_cli`]).
 //!
-//! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational] [--json]`
-//! fits every file in one process. With `--json` it prints one JSON object per file per line; a file
+//! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational]
+//! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q). With `--json` it prints one JSON object per file per line; a file
 //! that cannot be read or fitted gives `"status": "failed"` with the error and the other files still
 //! run. Exit code 0 when every file was fitted, 1 when any failed, 2 for a usage error.
 //!
@@ -18,7 +18,7 @@ use std::process::ExitCode;
 const USAGE: &str = "\
 usage:
   henrybook fit FILE... [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--dcr OHM]
-                        [--family lumped|rational] [--json]
+                        [--family lumped|rational] [--at HZ[,HZ...]] [--json]
   henrybook impedance FILE [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--json]
   henrybook serve | token create | demo";
 
@@ -39,6 +39,7 @@ struct Flags {
     files: Vec<String>,
     read: ReadOptions,
     dcr_ohm: Option<f64>,
+    at_hz: Vec<f64>,
     family: ModelFamily,
     json: bool,
 }
@@ -72,6 +73,17 @@ fn parse_flags(args: &[String]) -> Result<Flags, String> {
             "--method" => f.read.method = Some(parse_method(it.next())?),
             "--z0" => f.read.z0_ohm = Some(parse_number("--z0", it.next())?),
             "--dcr" => f.dcr_ohm = Some(parse_number("--dcr", it.next())?),
+            "--at" => {
+                let list = it.next().ok_or("--at needs a value")?;
+                for part in list.split(',') {
+                    match part.trim().parse::<f64>() {
+                        Ok(x) if x.is_finite() && x > 0.0 => f.at_hz.push(x),
+                        _ => {
+                            return Err(format!("--at {part}: expected positive frequencies in Hz"));
+                        }
+                    }
+                }
+            }
             "--family" => {
                 f.family = match it.next().map(String::as_str) {
                     Some("lumped") => ModelFamily::Lumped,
@@ -156,6 +168,7 @@ fn fit_one(file: &str, flags: &Flags) -> Result<(Sweep, FitReport), String> {
             value_ohm,
             sigma_ohm: None,
         }),
+        report_frequencies_hz: flags.at_hz.clone(),
         ..FitOptions::default()
     };
     let report =
@@ -183,6 +196,7 @@ pub fn report_json(file: &str, report: &FitReport) -> Value {
         "q_peak": report.derived.q_peak,
         "q_peak_hz": report.derived.q_peak_hz,
         "core_corner_hz": report.derived.core_corner_hz,
+        "at_frequencies": report.derived.at_frequencies,
         "naive_cp_f": report.derived.naive_cp_f,
         "naive_cp_error_percent": report.derived.naive_cp_error_percent,
         "rms_weighted": report.quality.rms_weighted,
@@ -398,6 +412,7 @@ mod tests {
             ("fit a.s1p --z0", "--z0 needs a value"),
             ("fit a.s1p --dcr -3", "positive number"),
             ("fit a.s1p --bogus", "unknown option --bogus"),
+            ("fit a.s1p --at 1e6,x", "--at x"),
             ("impedance a.s1p b.s1p", "exactly one file"),
             ("frobnicate", "unknown command frobnicate"),
         ] {
