@@ -17,9 +17,9 @@ use std::process::ExitCode;
 
 const USAGE: &str = "\
 usage:
-  henrybook fit FILE... [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--dcr OHM]
+  henrybook fit FILE... [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--dcr OHM]
                         [--family lumped|rational] [--at HZ[,HZ...]] [--json]
-  henrybook impedance FILE [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--json]
+  henrybook impedance FILE [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--json]
   henrybook serve | token create | demo";
 
 pub fn main(args: Vec<String>) -> ExitCode {
@@ -57,8 +57,9 @@ fn parse_method(value: Option<&String>) -> Result<Method, String> {
         Some("reflection") => Ok(Method::Reflection),
         Some("series-thru") => Ok(Method::SeriesThru),
         Some("shunt-thru") => Ok(Method::ShuntThru),
+        Some("direct") => Ok(Method::Direct),
         Some(other) => Err(format!(
-            "--method {other}: expected reflection, series-thru or shunt-thru"
+            "--method {other}: expected reflection, series-thru, shunt-thru or direct"
         )),
         None => Err("--method needs a value".into()),
     }
@@ -79,7 +80,9 @@ fn parse_flags(args: &[String]) -> Result<Flags, String> {
                     match part.trim().parse::<f64>() {
                         Ok(x) if x.is_finite() && x > 0.0 => f.at_hz.push(x),
                         _ => {
-                            return Err(format!("--at {part}: expected positive frequencies in Hz"));
+                            return Err(format!(
+                                "--at {part}: expected positive frequencies in Hz"
+                            ));
                         }
                     }
                 }

@@ -509,18 +509,32 @@ pub fn fit_lumped(
         }
     };
 
-    // Stage A: sections, everything else present.
+    // Stage A: sections, everything else present. A structure with sections starts both from the
+    // fit with one section fewer and from the curve's own reading; the better fit is kept.
     let mut by_kinds: Vec<(Vec<SectionKind>, usize)> = Vec::new();
     for kinds in &stage_a {
         let prefix = kinds
             .split_last()
             .and_then(|(_, head)| by_kinds.iter().find(|(k, _)| k == head))
-            .map(|(_, i)| fits[*i].model())
-            .unwrap_or_else(|| guess.base.clone());
-        let start = start_for(kinds, &prefix, &guess);
-        let structure = Structure::of(&start);
-        if let Some(i) = run(&structure, &start, &mut fits)? {
-            by_kinds.push((kinds.clone(), i));
+            .map(|(_, i)| fits[*i].model());
+        let mut starts = vec![start_for(kinds, &guess.base, &guess)];
+        if let Some(p) = &prefix {
+            starts.push(start_for(kinds, p, &guess));
+        }
+        let structure = Structure::of(&starts[0]);
+        let mut best: Option<StructureFit> = None;
+        for start in &starts {
+            let mut one = Vec::new();
+            if run(&structure, start, &mut one)?.is_some() {
+                let f = one.pop().expect("just fitted");
+                if best.as_ref().is_none_or(|b| f.cost < b.cost) {
+                    best = Some(f);
+                }
+            }
+        }
+        if let Some(f) = best {
+            fits.push(f);
+            by_kinds.push((kinds.clone(), fits.len() - 1));
         }
         done += 1;
         report_progress(done);
