@@ -2,15 +2,20 @@
 //!
 //! Model selection. Stage A fits every assignment of section kinds (series branch or parallel tank) to
 //! the first 0..=`max_sections` resonance pairs the curve shows, with all of rp, k_ac and ls present;
-//! a structure with n sections starts from the solution with its first n − 1. Stage B takes the best
+//! a structure with n sections is started both from the solution with its first n − 1 and from the
+//! curve's own reading, and the better of the two is kept. Stage B takes the best
 //! section assignment and tries every subset of {rp, k_ac, ls}, starting from the stage-A solution.
 //! The criterion is BIC with the noise scale estimated from the fit,
 //! `M·ln(χ²/M) + k·ln(M)` (M residuals, k parameters), so a sweep whose stated σ is off by a constant
 //! factor still selects the same model; every candidate is recorded.
 //!
 //! DCR reading: a prior residual `(rdc − reading)/σ_reading` in the least-squares problem (not a fixed
-//! value), so rdc keeps the reading's uncertainty and a reading that contradicts the sweep shows up
-//! in the residuals instead of distorting the other parameters silently.
+//! value; σ_reading defaults to 0.5 % + 1 mΩ), so rdc carries the reading's uncertainty combined with
+//! what the sweep says, and a reading that contradicts the sweep is weighed against it instead of
+//! being imposed exactly. The prior counts in each candidate's cost; `quality` is from the sweep alone.
+//!
+//! Each structure is fitted on log-parameters by [`fit_structure`]: LM first on a thinned copy of a
+//! long sweep, then on all points (the result is the full-data optimum).
 //!
 //! Uncertainty: the covariance of θ = ln p is `s²·(JᵀJ)⁻¹` at the solution, computed from the symmetric
 //! eigen-decomposition of the column-scaled JᵀJ (no explicit inverse of an ill-conditioned matrix),
