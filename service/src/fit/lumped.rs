@@ -405,6 +405,62 @@ pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     }
 }
 
+/// Candidates further than this in BIC from the best carry no weight in the selection spread
+/// (weight e^(−ΔBIC/2) < 5e-5).
+const SELECTION_BIC_WINDOW: f64 = 20.0;
+
+/// Adds the spread that comes from the choice of model: the data often support two structures
+/// almost equally (say rp versus k_ac), and the shared parameters differ between them by more than
+/// either fit's own σ. With BIC weights wᵢ = e^(−ΔBICᵢ/2) (normalised over the candidates that have
+/// the parameter), the unconditional variance of θ = ln p about the chosen value is
+/// Σ wᵢ (σᵢ² + (θᵢ − θ_chosen)²) — the model-averaged variance of Burnham & Anderson, *Model Selection
+/// and Multimodel Inference* (2002), §4.3 (from memory). Candidates where the parameter is not
+/// identifiable are left out; a total above the identifiability limit makes it not identifiable.
+fn include_selection_spread(
+    sp: &mut Spread,
+    fits: &[StructureFit],
+    bics: &[f64],
+    chosen: usize,
+    residuals: usize,
+) {
+    let best = bics[chosen];
+    let params = fits[chosen].structure.params();
+    let others: Vec<(usize, Spread)> = (0..fits.len())
+        .filter(|&i| i != chosen && bics[i] - best < SELECTION_BIC_WINDOW)
+        .map(|i| (i, spread(&fits[i], residuals)))
+        .collect();
+    if others.is_empty() {
+        return;
+    }
+    for (k, param) in params.iter().enumerate() {
+        let Some(own) = sp.sigma_theta[k] else {
+            continue;
+        };
+        let theta_c = fits[chosen].theta[k];
+        let mut weight = 1.0;
+        let mut var = own * own;
+        for (i, other) in &others {
+            let Some(j) = fits[*i].structure.index(*param) else {
+                continue;
+            };
+            let Some(s) = other.sigma_theta[j] else {
+                continue;
+            };
+            let w = (-(bics[*i] - best) / 2.0).exp();
+            let d = fits[*i].theta[j] - theta_c;
+            weight += w;
+            var += w * (s * s + d * d);
+        }
+        let total = (var / weight).sqrt();
+        if total > NOT_IDENTIFIABLE_RELATIVE_SIGMA {
+            sp.sigma_theta[k] = None;
+            sp.not_identifiable.push(param.name());
+        } else {
+            sp.sigma_theta[k] = Some(total);
+        }
+    }
+}
+
 fn uncertainty_of(fit: &StructureFit, spread: &Spread) -> LumpedUncertainty {
     let m = fit.model();
     let s = &fit.structure;
@@ -584,7 +640,8 @@ pub fn fit_lumped(
         .expect("at least one fit");
     let fit = &fits[chosen];
     let model = fit.model();
-    let sp = spread(fit, residuals);
+    let mut sp = spread(fit, residuals);
+    include_selection_spread(&mut sp, &fits, &bics, chosen, residuals);
     let uncertainty = uncertainty_of(fit, &sp);
     let band_hz = [
         sweep.frequency_hz[0],
