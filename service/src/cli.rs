@@ -269,6 +269,11 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
             srf,
             format!("{:.3}", report.quality.rms_weighted),
             structure,
+            if report.not_identifiable.is_empty() {
+                "-".into()
+            } else {
+                report.not_identifiable.join(",")
+            },
         ],
         FittedModel::Rational(_) => vec![
             file.into(),
@@ -280,13 +285,23 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
             srf,
             format!("{:.3}", report.quality.rms_weighted),
             structure,
+            "-".into(),
         ],
     }
 }
 
 fn print_table(rows: &[Vec<String>], out: &mut dyn Write) {
     let header: Vec<String> = [
-        "file", "status", "L0", "Rdc", "Cp", "Rp", "SRF", "rms_w", "model",
+        "file",
+        "status",
+        "L0",
+        "Rdc",
+        "Cp",
+        "Rp",
+        "SRF",
+        "rms_w",
+        "model",
+        "not identifiable",
     ]
     .iter()
     .map(|s| s.to_string())
@@ -330,7 +345,7 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
                     );
                 } else {
                     let mut r = vec![file.clone(), "failed".into()];
-                    r.extend(std::iter::repeat_n("-".to_string(), 7));
+                    r.extend(std::iter::repeat_n("-".to_string(), 8));
                     rows.push(r);
                     failures.push(e);
                 }

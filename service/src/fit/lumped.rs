@@ -23,7 +23,9 @@
 //! widened to match them; when they are smaller the stated σ is trusted (no shrinking). 1σ of p is
 //! `p·σ_θ`. A parameter is *not identifiable* when its relative 1σ exceeds
 //! [`NOT_IDENTIFIABLE_RELATIVE_SIGMA`] or it takes part (|eigenvector component| > 0.3) in a direction
-//! whose eigenvalue is below 1e-12 of the largest; its uncertainty is then `None`.
+//! whose eigenvalue is below 1e-12 of the largest; its uncertainty is then `None`. The reported 1σ
+//! also carries the spread from the choice among nearly equal models (see
+//! [`include_selection_spread`]); the correlation matrix is that of the chosen model alone.
 
 use super::derived::{self, KnownElements};
 use super::initial::{self, Guess};
