@@ -161,9 +161,15 @@ fn fit_prints_one_json_line_per_file_and_a_bad_file_fails_alone() {
     );
     assert_recovered(&lines[2], &power_choke(), [1e3, 200e6]);
 
-    // All good → exit code 0.
-    let (code, _, _) = run(&["fit", choke.to_str().unwrap(), "--json"]);
+    // All good → exit code 0; --at gives effective L and Q there.
+    let (code, out, _) = run(&["fit", choke.to_str().unwrap(), "--at", "1e5,1e6", "--json"]);
     assert_eq!(code, 0);
+    let line: Value = serde_json::from_str(out.trim()).unwrap();
+    let at = line["at_frequencies"].as_array().unwrap();
+    assert_eq!(at.len(), 2);
+    assert_eq!(at[1]["frequency_hz"], 1e6);
+    let l_eff = at[0]["l_eff_h"].as_f64().unwrap();
+    assert!(rel(l_eff, power_choke().l0_h) < 0.01, "{l_eff}");
     std::fs::remove_dir_all(dir).ok();
 }
 

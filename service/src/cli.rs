@@ -1,8 +1,8 @@
 //! The command line. `fit` and `impedance` run the numeric core on files; `serve`, `token` and `demo`
 //! belong to the service (see [`crate::server_cli`]).
 //!
-//! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational] [--json]`
-//! fits every file in one process. With `--json` it prints one JSON object per file per line; a file
+//! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational]
+//! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q). With `--json` it prints one JSON object per file per line; a file
 //! that cannot be read or fitted gives `"status": "failed"` with the error and the other files still
 //! run. Exit code 0 when every file was fitted, 1 when any failed, 2 for a usage error.
 //!
@@ -17,9 +17,9 @@ use std::process::ExitCode;
 
 const USAGE: &str = "\
 usage:
-  henrybook fit FILE... [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--dcr OHM]
-                        [--family lumped|rational] [--json]
-  henrybook impedance FILE [--method reflection|series-thru|shunt-thru] [--z0 OHM] [--json]
+  henrybook fit FILE... [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--dcr OHM]
+                        [--family lumped|rational] [--at HZ[,HZ...]] [--json]
+  henrybook impedance FILE [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--json]
   henrybook serve | token create | demo";
 
 pub fn main(args: Vec<String>) -> ExitCode {
@@ -39,6 +39,7 @@ struct Flags {
     files: Vec<String>,
     read: ReadOptions,
     dcr_ohm: Option<f64>,
+    at_hz: Vec<f64>,
     family: ModelFamily,
     json: bool,
 }
@@ -56,8 +57,9 @@ fn parse_method(value: Option<&String>) -> Result<Method, String> {
         Some("reflection") => Ok(Method::Reflection),
         Some("series-thru") => Ok(Method::SeriesThru),
         Some("shunt-thru") => Ok(Method::ShuntThru),
+        Some("direct") => Ok(Method::Direct),
         Some(other) => Err(format!(
-            "--method {other}: expected reflection, series-thru or shunt-thru"
+            "--method {other}: expected reflection, series-thru, shunt-thru or direct"
         )),
         None => Err("--method needs a value".into()),
     }
@@ -72,6 +74,19 @@ fn parse_flags(args: &[String]) -> Result<Flags, String> {
             "--method" => f.read.method = Some(parse_method(it.next())?),
             "--z0" => f.read.z0_ohm = Some(parse_number("--z0", it.next())?),
             "--dcr" => f.dcr_ohm = Some(parse_number("--dcr", it.next())?),
+            "--at" => {
+                let list = it.next().ok_or("--at needs a value")?;
+                for part in list.split(',') {
+                    match part.trim().parse::<f64>() {
+                        Ok(x) if x.is_finite() && x > 0.0 => f.at_hz.push(x),
+                        _ => {
+                            return Err(format!(
+                                "--at {part}: expected positive frequencies in Hz"
+                            ));
+                        }
+                    }
+                }
+            }
             "--family" => {
                 f.family = match it.next().map(String::as_str) {
                     Some("lumped") => ModelFamily::Lumped,
@@ -156,6 +171,7 @@ fn fit_one(file: &str, flags: &Flags) -> Result<(Sweep, FitReport), String> {
             value_ohm,
             sigma_ohm: None,
         }),
+        report_frequencies_hz: flags.at_hz.clone(),
         ..FitOptions::default()
     };
     let report =
@@ -183,6 +199,7 @@ pub fn report_json(file: &str, report: &FitReport) -> Value {
         "q_peak": report.derived.q_peak,
         "q_peak_hz": report.derived.q_peak_hz,
         "core_corner_hz": report.derived.core_corner_hz,
+        "at_frequencies": report.derived.at_frequencies,
         "naive_cp_f": report.derived.naive_cp_f,
         "naive_cp_error_percent": report.derived.naive_cp_error_percent,
         "rms_weighted": report.quality.rms_weighted,
@@ -252,6 +269,11 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
             srf,
             format!("{:.3}", report.quality.rms_weighted),
             structure,
+            if report.not_identifiable.is_empty() {
+                "-".into()
+            } else {
+                report.not_identifiable.join(",")
+            },
         ],
         FittedModel::Rational(_) => vec![
             file.into(),
@@ -263,13 +285,23 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
             srf,
             format!("{:.3}", report.quality.rms_weighted),
             structure,
+            "-".into(),
         ],
     }
 }
 
 fn print_table(rows: &[Vec<String>], out: &mut dyn Write) {
     let header: Vec<String> = [
-        "file", "status", "L0", "Rdc", "Cp", "Rp", "SRF", "rms_w", "model",
+        "file",
+        "status",
+        "L0",
+        "Rdc",
+        "Cp",
+        "Rp",
+        "SRF",
+        "rms_w",
+        "model",
+        "not identifiable",
     ]
     .iter()
     .map(|s| s.to_string())
@@ -313,7 +345,7 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
                     );
                 } else {
                     let mut r = vec![file.clone(), "failed".into()];
-                    r.extend(std::iter::repeat_n("-".to_string(), 7));
+                    r.extend(std::iter::repeat_n("-".to_string(), 8));
                     rows.push(r);
                     failures.push(e);
                 }
@@ -398,6 +430,7 @@ mod tests {
             ("fit a.s1p --z0", "--z0 needs a value"),
             ("fit a.s1p --dcr -3", "positive number"),
             ("fit a.s1p --bogus", "unknown option --bogus"),
+            ("fit a.s1p --at 1e6,x", "--at x"),
             ("impedance a.s1p b.s1p", "exactly one file"),
             ("frobnicate", "unknown command frobnicate"),
         ] {

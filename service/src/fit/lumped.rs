@@ -2,15 +2,20 @@
 //!
 //! Model selection. Stage A fits every assignment of section kinds (series branch or parallel tank) to
 //! the first 0..=`max_sections` resonance pairs the curve shows, with all of rp, k_ac and ls present;
-//! a structure with n sections starts from the solution with its first n − 1. Stage B takes the best
+//! a structure with n sections is started both from the solution with its first n − 1 and from the
+//! curve's own reading, and the better of the two is kept. Stage B takes the best
 //! section assignment and tries every subset of {rp, k_ac, ls}, starting from the stage-A solution.
 //! The criterion is BIC with the noise scale estimated from the fit,
 //! `M·ln(χ²/M) + k·ln(M)` (M residuals, k parameters), so a sweep whose stated σ is off by a constant
 //! factor still selects the same model; every candidate is recorded.
 //!
 //! DCR reading: a prior residual `(rdc − reading)/σ_reading` in the least-squares problem (not a fixed
-//! value), so rdc keeps the reading's uncertainty and a reading that contradicts the sweep shows up
-//! in the residuals instead of distorting the other parameters silently.
+//! value; σ_reading defaults to 0.5 % + 1 mΩ), so rdc carries the reading's uncertainty combined with
+//! what the sweep says, and a reading that contradicts the sweep is weighed against it instead of
+//! being imposed exactly. The prior counts in each candidate's cost; `quality` is from the sweep alone.
+//!
+//! Each structure is fitted on log-parameters by [`fit_structure`]: LM first on a thinned copy of a
+//! long sweep, then on all points (the result is the full-data optimum).
 //!
 //! Uncertainty: the covariance of θ = ln p is `s²·(JᵀJ)⁻¹` at the solution, computed from the symmetric
 //! eigen-decomposition of the column-scaled JᵀJ (no explicit inverse of an ill-conditioned matrix),
@@ -18,7 +23,9 @@
 //! widened to match them; when they are smaller the stated σ is trusted (no shrinking). 1σ of p is
 //! `p·σ_θ`. A parameter is *not identifiable* when its relative 1σ exceeds
 //! [`NOT_IDENTIFIABLE_RELATIVE_SIGMA`] or it takes part (|eigenvector component| > 0.3) in a direction
-//! whose eigenvalue is below 1e-12 of the largest; its uncertainty is then `None`.
+//! whose eigenvalue is below 1e-12 of the largest; its uncertainty is then `None`. The reported 1σ
+//! also carries the spread from the choice among nearly equal models (see
+//! [`include_selection_spread`]); the correlation matrix is that of the chosen model alone.
 
 use super::derived::{self, KnownElements};
 use super::initial::{self, Guess};
@@ -400,6 +407,62 @@ pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     }
 }
 
+/// Candidates further than this in BIC from the best carry no weight in the selection spread
+/// (weight e^(−ΔBIC/2) < 5e-5).
+const SELECTION_BIC_WINDOW: f64 = 20.0;
+
+/// Adds the spread that comes from the choice of model: the data often support two structures
+/// almost equally (say rp versus k_ac), and the shared parameters differ between them by more than
+/// either fit's own σ. With BIC weights wᵢ = e^(−ΔBICᵢ/2) (normalised over the candidates that have
+/// the parameter), the unconditional variance of θ = ln p about the chosen value is
+/// Σ wᵢ (σᵢ² + (θᵢ − θ_chosen)²) — the model-averaged variance of Burnham & Anderson, *Model Selection
+/// and Multimodel Inference* (2002), §4.3 (from memory). Candidates where the parameter is not
+/// identifiable are left out; a total above the identifiability limit makes it not identifiable.
+fn include_selection_spread(
+    sp: &mut Spread,
+    fits: &[StructureFit],
+    bics: &[f64],
+    chosen: usize,
+    residuals: usize,
+) {
+    let best = bics[chosen];
+    let params = fits[chosen].structure.params();
+    let others: Vec<(usize, Spread)> = (0..fits.len())
+        .filter(|&i| i != chosen && bics[i] - best < SELECTION_BIC_WINDOW)
+        .map(|i| (i, spread(&fits[i], residuals)))
+        .collect();
+    if others.is_empty() {
+        return;
+    }
+    for (k, param) in params.iter().enumerate() {
+        let Some(own) = sp.sigma_theta[k] else {
+            continue;
+        };
+        let theta_c = fits[chosen].theta[k];
+        let mut weight = 1.0;
+        let mut var = own * own;
+        for (i, other) in &others {
+            let Some(j) = fits[*i].structure.index(*param) else {
+                continue;
+            };
+            let Some(s) = other.sigma_theta[j] else {
+                continue;
+            };
+            let w = (-(bics[*i] - best) / 2.0).exp();
+            let d = fits[*i].theta[j] - theta_c;
+            weight += w;
+            var += w * (s * s + d * d);
+        }
+        let total = (var / weight).sqrt();
+        if total > NOT_IDENTIFIABLE_RELATIVE_SIGMA {
+            sp.sigma_theta[k] = None;
+            sp.not_identifiable.push(param.name());
+        } else {
+            sp.sigma_theta[k] = Some(total);
+        }
+    }
+}
+
 fn uncertainty_of(fit: &StructureFit, spread: &Spread) -> LumpedUncertainty {
     let m = fit.model();
     let s = &fit.structure;
@@ -509,18 +572,32 @@ pub fn fit_lumped(
         }
     };
 
-    // Stage A: sections, everything else present.
+    // Stage A: sections, everything else present. A structure with sections starts both from the
+    // fit with one section fewer and from the curve's own reading; the better fit is kept.
     let mut by_kinds: Vec<(Vec<SectionKind>, usize)> = Vec::new();
     for kinds in &stage_a {
         let prefix = kinds
             .split_last()
             .and_then(|(_, head)| by_kinds.iter().find(|(k, _)| k == head))
-            .map(|(_, i)| fits[*i].model())
-            .unwrap_or_else(|| guess.base.clone());
-        let start = start_for(kinds, &prefix, &guess);
-        let structure = Structure::of(&start);
-        if let Some(i) = run(&structure, &start, &mut fits)? {
-            by_kinds.push((kinds.clone(), i));
+            .map(|(_, i)| fits[*i].model());
+        let mut starts = vec![start_for(kinds, &guess.base, &guess)];
+        if let Some(p) = &prefix {
+            starts.push(start_for(kinds, p, &guess));
+        }
+        let structure = Structure::of(&starts[0]);
+        let mut best: Option<StructureFit> = None;
+        for start in &starts {
+            let mut one = Vec::new();
+            if run(&structure, start, &mut one)?.is_some() {
+                let f = one.pop().expect("just fitted");
+                if best.as_ref().is_none_or(|b| f.cost < b.cost) {
+                    best = Some(f);
+                }
+            }
+        }
+        if let Some(f) = best {
+            fits.push(f);
+            by_kinds.push((kinds.clone(), fits.len() - 1));
         }
         done += 1;
         report_progress(done);
@@ -565,7 +642,8 @@ pub fn fit_lumped(
         .expect("at least one fit");
     let fit = &fits[chosen];
     let model = fit.model();
-    let sp = spread(fit, residuals);
+    let mut sp = spread(fit, residuals);
+    include_selection_spread(&mut sp, &fits, &bics, chosen, residuals);
     let uncertainty = uncertainty_of(fit, &sp);
     let band_hz = [
         sweep.frequency_hz[0],
