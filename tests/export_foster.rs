@@ -297,3 +297,21 @@ fn a_passive_model_with_a_non_positive_real_term_is_refused_as_unrealisable() {
         "{e}"
     );
 }
+
+#[test]
+fn element_values_beyond_the_floating_point_range_are_an_error_not_a_panic() {
+    let model = RationalModel {
+        d_ohm: 1.0,
+        e_h: 0.0,
+        real_poles: vec![RealPole {
+            pole_rad_per_s: -1e-300,
+            residue_ohm_rad_per_s: 1e-320,
+        }],
+        complex_poles: vec![],
+    };
+    let e = foster_realisation(&model).unwrap_err();
+    assert!(
+        matches!(&e, ExportError::NotRealisable(m) if m.contains("floating-point")),
+        "{e}"
+    );
+}

@@ -207,6 +207,26 @@ pub fn foster_realisation(m: &RationalModel) -> Result<FosterRealisation, Export
             "the model is identically zero (a short circuit)".to_string(),
         ));
     }
+    for (i, cell) in cells.iter().enumerate() {
+        let values = match *cell {
+            FosterCell::Resistor { r_ohm } => vec![r_ohm],
+            FosterCell::Inductor { l_h } => vec![l_h],
+            FosterCell::Capacitor { c_f } => vec![c_f],
+            FosterCell::RParallelC { r_ohm, c_f } => vec![r_ohm, c_f],
+            FosterCell::RParallelL { r_ohm, l_h } => vec![r_ohm, l_h],
+            FosterCell::Resonator {
+                c_f,
+                rp_ohm,
+                rs_ohm,
+                l_h,
+            } => vec![c_f, l_h, rp_ohm.unwrap_or(1.0), rs_ohm.unwrap_or(1.0)],
+        };
+        if values.iter().any(|v| !(v.is_finite() && *v > 0.0)) {
+            return Err(ExportError::NotRealisable(format!(
+                "cell {i} ({cell:?}) would need an element value outside the floating-point range"
+            )));
+        }
+    }
     Ok(FosterRealisation { cells })
 }
 
