@@ -221,6 +221,26 @@ fn the_valid_files_read() {
         let sweep =
             read_sweep(name, text.as_bytes(), &options).unwrap_or_else(|e| panic!("{name}: {e}"));
         assert_eq!(sweep.frequency_hz.len(), 30, "{name}");
+        // The mutations can leave a file valid (so the property test sees both outcomes): dropping
+        // the last data line still reads, with one point fewer.
+        let lines: Vec<&str> = text.split('\n').collect();
+        let last_data = lines
+            .iter()
+            .rposition(|l| l.starts_with(|c: char| c.is_ascii_digit()))
+            .unwrap();
+        let fewer = apply(&text, &Mutation::DeleteLine(last_data));
+        let fewer_text = String::from_utf8(fewer.clone()).unwrap();
+        let result = read_sweep(name, &fewer, &options);
+        if fewer_text.contains("[Number of Frequencies]") {
+            // Version 2 counts its frequencies: the same deletion is a clear error there.
+            let err = result.unwrap_err();
+            assert!(
+                err.message.contains("Number of Frequencies"),
+                "{name}: {err}"
+            );
+        } else {
+            assert_eq!(result.unwrap().frequency_hz.len(), 29, "{name}");
+        }
     }
 }
 

@@ -5,7 +5,7 @@
 
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::sweep::convert::{s_from_z, two_port_s};
-use henrybook::sweep::fixture::deembed_open_short_two_port;
+use henrybook::sweep::fixture::{Topology, compensate_point, deembed_open_short_two_port};
 use henrybook::sweep::{
     DataFormat, Method, Network, Parameter, ReadOptions, TouchstoneVersion, TwoPortOrder,
     parse_touchstone, read_sweep, write_touchstone,
@@ -299,4 +299,71 @@ fn open_short_deembedding_of_the_scikit_rf_inductor_gives_one_nanohenry() {
     let raw = henrybook::sweep::convert::z_from_s(Method::SeriesThru, ind.data[0][2], 50.0);
     let raw_l = raw.im / (2.0 * std::f64::consts::PI * ind.frequency_hz[0]);
     assert!(raw_l > 1.1e-9, "{raw_l}");
+}
+
+#[test]
+fn the_exact_l_fixture_forms_undo_a_fixture_that_scikit_rf_cascades() {
+    // Source: scikit-rf (PyPI) cascades a series element (ABCD B = Zs) and a shunt element
+    // (ABCD C = Yo) into an L-shaped fixture and terminates it with the DUT, an open and a short; the
+    // exact compensation must return the DUT. The fixture values are invented for this check.
+    let (f, zdut) = truth();
+    let (f, zdut): (Vec<f64>, Vec<Complex64>) = f
+        .iter()
+        .zip(&zdut)
+        .filter(|(f, _)| **f >= 1e5)
+        .map(|(f, z)| (*f, *z))
+        .unzip();
+    let w = |f: f64| 2.0 * std::f64::consts::PI * f;
+    let zs: Vec<Complex64> = f
+        .iter()
+        .map(|&f| Complex64::new(0.02, w(f) * 8e-9))
+        .collect();
+    let yo: Vec<Complex64> = f
+        .iter()
+        .map(|&f| Complex64::new(1e-7, w(f) * 1.5e-12))
+        .collect();
+    let parts =
+        |v: &[Complex64]| -> (Vec<f64>, Vec<f64>) { v.iter().map(|c| (c.re, c.im)).unzip() };
+    let ((zsr, zsi), (yor, yoi), (zdr, zdi)) = (parts(&zs), parts(&yo), parts(&zdut));
+    let answer = run_reference_script(
+        "sweep_skrf_check.py",
+        &[],
+        &serde_json::json!({ "embedded": {
+            "frequency_hz": f, "zs_real_ohm": zsr, "zs_imag_ohm": zsi, "yo_real_s": yor,
+            "yo_imag_s": yoi, "zdut_real_ohm": zdr, "zdut_imag_ohm": zdi,
+        }})
+        .to_string(),
+    );
+    let get = |topology: &str, load: &str, k: usize| {
+        let v = &answer["embedded"][topology][load];
+        Complex64::new(v["re"][k].as_f64().unwrap(), v["im"][k].as_f64().unwrap())
+    };
+    let mut worst_exact: f64 = 0.0;
+    let mut worst_approx: f64 = 0.0;
+    for (name, topology) in [
+        ("series-then-shunt", Topology::SeriesThenShunt),
+        ("shunt-then-series", Topology::ShuntThenSeries),
+    ] {
+        for k in 0..f.len() {
+            let (zx, zo, zsm) = (
+                get(name, "dut", k),
+                get(name, "open", k),
+                get(name, "short", k),
+            );
+            let exact = compensate_point(topology, zx, zo, zsm);
+            let rel = (exact - zdut[k]).norm() / zdut[k].norm();
+            worst_exact = worst_exact.max(rel);
+            assert!(rel < 1e-9, "{name} at {} Hz: {exact} vs {}", f[k], zdut[k]);
+            let approx = compensate_point(Topology::Approximate, zx, zo, zsm);
+            worst_approx = worst_approx.max((approx - zdut[k]).norm() / zdut[k].norm());
+        }
+    }
+    // The usual approximation is not exact for these fixtures: the exact forms earn their keep.
+    assert!(
+        worst_approx > 100.0 * worst_exact,
+        "{worst_approx} vs {worst_exact}"
+    );
+    eprintln!(
+        "L-fixture: exact forms worst {worst_exact:.2e}, approximation worst {worst_approx:.2e}"
+    );
 }

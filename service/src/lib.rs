@@ -15,6 +15,7 @@
 pub mod cli;
 pub mod export;
 pub mod fit;
+pub mod http;
 pub mod model;
 pub mod server_cli;
 pub mod sweep;

@@ -51,6 +51,40 @@ def fixture():
     return {"frequency_hz": dut.f.tolist(), "l_h": l_h.tolist(), "text": texts}
 
 
+def embedded(request):
+    """Measured impedances of a DUT, an open and a short seen through an L-shaped fixture, computed by
+    cascading scikit-rf networks: a series element (ABCD [[1, Zs], [0, 1]]) and a shunt element
+    (ABCD [[1, 0], [Yo, 1]]) in either order, terminated by the load."""
+    f = np.array(request["frequency_hz"])
+    zs = np.array(request["zs_real_ohm"]) + 1j * np.array(request["zs_imag_ohm"])
+    yo = np.array(request["yo_real_s"]) + 1j * np.array(request["yo_imag_s"])
+    zdut = np.array(request["zdut_real_ohm"]) + 1j * np.array(request["zdut_imag_ohm"])
+    freq = skrf.Frequency.from_f(f, unit="hz")
+    n = len(f)
+    one, zero = np.ones(n, dtype=complex), np.zeros(n, dtype=complex)
+    series_a = np.stack([np.stack([one, zs], -1), np.stack([zero, one], -1)], -2)
+    shunt_a = np.stack([np.stack([one, zero], -1), np.stack([yo, one], -1)], -2)
+    series = skrf.Network(frequency=freq, s=skrf.network.a2s(series_a, 50.0), z0=50.0)
+    shunt = skrf.Network(frequency=freq, s=skrf.network.a2s(shunt_a, 50.0), z0=50.0)
+
+    def load(s11):
+        return skrf.Network(frequency=freq, s=s11.reshape(-1, 1, 1), z0=50.0)
+
+    loads = {
+        "dut": load(skrf.network.z2s(zdut.reshape(-1, 1, 1), 50.0).reshape(-1)),
+        "open": load(one.copy()),
+        "short": load(-one),
+    }
+    out = {}
+    for name, first, second in (("series-then-shunt", series, shunt), ("shunt-then-series", shunt, series)):
+        fixture = first ** second
+        out[name] = {}
+        for k, l in loads.items():
+            z = (fixture ** l).z[:, 0, 0]
+            out[name][k] = {"re": np.real(z).tolist(), "im": np.imag(z).tolist()}
+    return out
+
+
 def main():
     request = json.load(sys.stdin)
     out = {
@@ -59,6 +93,8 @@ def main():
     }
     if request.get("fixture"):
         out["fixture"] = fixture()
+    if request.get("embedded"):
+        out["embedded"] = embedded(request["embedded"])
     json.dump(out, sys.stdout)
 
 

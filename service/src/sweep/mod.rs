@@ -24,7 +24,7 @@ pub mod uncertainty;
 
 pub use touchstone::{
     DataFormat, Network, Parameter, TouchstoneVersion, TwoPortOrder, parse_touchstone,
-    write_touchstone,
+    write_touchstone, write_touchstone_with_digits,
 };
 pub use uncertainty::NoiseModel;
 
@@ -86,6 +86,57 @@ pub struct Sweep {
     pub sigma_ohm: Vec<f64>,
     pub method: Method,
     pub z0_ohm: f64,
+}
+
+impl Sweep {
+    /// Checks a sweep that did not come from the readers (e.g. deserialised): equal lengths, at least
+    /// [`MIN_POINTS`] points, a finite strictly increasing grid above 0 Hz, finite impedances and
+    /// positive finite uncertainties. The error's `line` is the 1-based point number.
+    pub fn validate(&self) -> Result<(), SweepError> {
+        let n = self.frequency_hz.len();
+        if self.impedance_ohm.len() != n || self.sigma_ohm.len() != n {
+            return Err(SweepError::file(format!(
+                "the sweep has {n} frequencies, {} impedances and {} uncertainties",
+                self.impedance_ohm.len(),
+                self.sigma_ohm.len()
+            )));
+        }
+        check_min_points(n)?;
+        let points: Vec<usize> = (1..=n).collect();
+        check_grid(&self.frequency_hz, &points)?;
+        for k in 0..n {
+            let (f, z, s) = (
+                self.frequency_hz[k],
+                self.impedance_ohm[k],
+                self.sigma_ohm[k],
+            );
+            if f <= 0.0 {
+                return Err(SweepError::at(
+                    k + 1,
+                    format!("frequency {f} Hz is not above 0"),
+                ));
+            }
+            if !(z.re.is_finite() && z.im.is_finite()) {
+                return Err(SweepError::at(
+                    k + 1,
+                    format!("impedance {z} is not finite"),
+                ));
+            }
+            if !(s.is_finite() && s > 0.0) {
+                return Err(SweepError::at(
+                    k + 1,
+                    format!("uncertainty {s} Ω must be finite and positive"),
+                ));
+            }
+        }
+        if !(self.z0_ohm.is_finite() && self.z0_ohm > 0.0) {
+            return Err(SweepError::file(format!(
+                "z0_ohm {} must be finite and positive",
+                self.z0_ohm
+            )));
+        }
+        Ok(())
+    }
 }
 
 /// How to read a file: the measurement method (required for 2-port files) and overrides.
@@ -225,6 +276,18 @@ pub fn detect_kind(file_name: &str, text: &str) -> Result<FileKind, SweepError> 
         ));
     }
     Err(SweepError::file(format!("'{file_name}' is empty")))
+}
+
+/// Parses a Touchstone file into its network (frequencies, matrices, format), before any method is
+/// applied and without the minimum-points rule: for fixture dummies, checks and tools.
+pub fn read_network(file_name: &str, bytes: &[u8]) -> Result<Network, SweepError> {
+    let text = decode(bytes);
+    match detect_kind(file_name, &text)? {
+        FileKind::Touchstone(ports) => parse_touchstone(&text, ports),
+        FileKind::Csv => Err(SweepError::file(format!(
+            "'{file_name}' is a CSV impedance file, not a Touchstone network"
+        ))),
+    }
 }
 
 /// Reads a Touchstone or CSV file (chosen by extension and content) into a sweep.
@@ -518,6 +581,25 @@ mod tests {
         let open = "# MHz S RI\n1 1 0\n";
         let err = read_sweep("o.s1p", open.as_bytes(), &ReadOptions::default()).unwrap_err();
         assert_eq!(err.line, Some(2), "{err}");
+    }
+
+    #[test]
+    fn a_0_hz_point_is_skipped_and_the_result_validates() {
+        let (text, _) = synthetic(Method::Reflection, "# Hz S RI R 50", 25);
+        let text = text.replacen("# Hz S RI R 50\n", "# Hz S RI R 50\n0 -0.99 0\n", 1);
+        let sweep = read_sweep("a.s1p", text.as_bytes(), &ReadOptions::default()).unwrap();
+        assert_eq!(sweep.frequency_hz.len(), 25);
+        assert_eq!(sweep.frequency_hz[0], 1e5);
+        sweep.validate().unwrap();
+        let mut bad = sweep.clone();
+        bad.sigma_ohm[4] = 0.0;
+        assert_eq!(bad.validate().unwrap_err().line, Some(5));
+        let mut bad = sweep.clone();
+        bad.impedance_ohm.pop();
+        assert!(bad.validate().is_err());
+        let net = read_network("a.s1p", text.as_bytes()).unwrap();
+        assert_eq!(net.frequency_hz.len(), 26);
+        assert!(read_network("a.csv", b"frequency_hz,z_real_ohm,z_imag_ohm\n").is_err());
     }
 
     #[test]

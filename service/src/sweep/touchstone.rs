@@ -94,6 +94,8 @@ struct OptionLine {
     parameter: Parameter,
     format: DataFormat,
     r_ohm: f64,
+    /// A second reference resistance (`R 50 50`: one per port, as some writers of 2-port files do).
+    r_port2_ohm: Option<f64>,
     line: usize,
 }
 
@@ -103,6 +105,7 @@ impl OptionLine {
             && self.parameter == o.parameter
             && self.format == o.format
             && self.r_ohm == o.r_ohm
+            && self.r_port2_ohm == o.r_port2_ohm
     }
 }
 
@@ -112,9 +115,10 @@ fn parse_option_line(rest: &str, line: usize) -> Result<OptionLine, SweepError> 
         parameter: Parameter::S,
         format: DataFormat::MagnitudeAngle,
         r_ohm: 50.0,
+        r_port2_ohm: None,
         line,
     };
-    let mut tokens = rest.split_whitespace();
+    let mut tokens = rest.split_whitespace().peekable();
     while let Some(tok) = tokens.next() {
         match tok.to_ascii_lowercase().as_str() {
             "hz" => opt.unit_hz = 1.0,
@@ -147,6 +151,16 @@ fn parse_option_line(rest: &str, line: usize) -> Result<OptionLine, SweepError> 
                     ));
                 }
                 opt.r_ohm = r;
+                if let Some(r2) = tokens.peek().and_then(|t| t.parse::<f64>().ok()) {
+                    tokens.next();
+                    if !(r2.is_finite() && r2 > 0.0) {
+                        return Err(SweepError::at(
+                            line,
+                            format!("reference resistance {r2} must be finite and positive"),
+                        ));
+                    }
+                    opt.r_port2_ohm = Some(r2);
+                }
             }
             _ => {
                 return Err(SweepError::at(
@@ -531,7 +545,25 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
             ));
         }
     } else {
-        reference = vec![opt.r_ohm; n];
+        reference = match (n, opt.r_port2_ohm) {
+            (2, Some(r2)) => vec![opt.r_ohm, r2],
+            (_, Some(_)) => {
+                return Err(SweepError::at(
+                    opt.line,
+                    format!("the option line gives two reference resistances for a {n}-port file"),
+                ));
+            }
+            _ => vec![opt.r_ohm; n],
+        };
+    }
+    if version == TouchstoneVersion::V1
+        && opt.parameter != Parameter::S
+        && reference.iter().any(|&r| r != opt.r_ohm)
+    {
+        return Err(SweepError::at(
+            opt.line,
+            "version 1 Z or Y data normalised by different resistances per port are not supported",
+        ));
     }
     let order = if n == 2 {
         Some(order.unwrap_or(TwoPortOrder::N21First))
@@ -597,6 +629,16 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
 /// states), in the network's unit, parameter and format. Numbers are written in the shortest form that
 /// reads back to the same `f64`. `comments` become `!` lines at the top.
 pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
+    write_touchstone_with_digits(net, comments, None)
+}
+
+/// As [`write_touchstone`], with data values rounded to `significant_digits` (as instruments write
+/// them); frequencies keep full precision.
+pub fn write_touchstone_with_digits(
+    net: &Network,
+    comments: &[&str],
+    significant_digits: Option<usize>,
+) -> String {
     use std::fmt::Write;
     let mut out = String::new();
     for c in comments {
@@ -655,7 +697,7 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
         } else {
             m.clone()
         };
-        let _ = write!(out, "{:e}", f / unit_hz);
+        out.push_str(&frequency_text(*f, unit_hz));
         for c in entries {
             let c = c * scale;
             let (a, b) = match net.format {
@@ -663,7 +705,15 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
                 DataFormat::MagnitudeAngle => (c.norm(), c.arg().to_degrees()),
                 DataFormat::DecibelAngle => (20.0 * c.norm().log10(), c.arg().to_degrees()),
             };
-            let _ = write!(out, " {a:e} {b:e}");
+            match significant_digits {
+                Some(d) => {
+                    let p = d.clamp(1, 17) - 1;
+                    let _ = write!(out, " {a:.p$e} {b:.p$e}");
+                }
+                None => {
+                    let _ = write!(out, " {a:e} {b:e}");
+                }
+            }
         }
         out.push('\n');
     }
@@ -671,6 +721,22 @@ pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
         out.push_str("[End]\n");
     }
     out
+}
+
+/// The shortest decimal of `f / unit_hz` that reads back (times the unit) to `f` within two ulps (the
+/// product itself rounds, so exactly `f` is not always reachable).
+fn frequency_text(f: f64, unit_hz: f64) -> String {
+    let v = f / unit_hz;
+    for p in 0..17 {
+        let text = format!("{v:.p$e}");
+        if text
+            .parse::<f64>()
+            .is_ok_and(|x| (x * unit_hz - f).abs() <= 2.0 * f64::EPSILON * f.abs())
+        {
+            return text;
+        }
+    }
+    format!("{v:e}")
 }
 
 fn expected_len(ports: Option<usize>, matrix: MatrixFormat) -> usize {
@@ -877,6 +943,14 @@ mod tests {
     }
 
     #[test]
+    fn one_reference_resistance_per_port_on_the_option_line() {
+        let net = parse_touchstone("# MHz S RI R 50 50\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert_eq!(net.reference_ohm, vec![50.0, 50.0]);
+        let net = parse_touchstone("# MHz S RI R 50 75\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert!(net.common_reference_ohm().is_err());
+    }
+
+    #[test]
     fn lower_matrix_format_fills_the_symmetric_entry() {
         let net = parse_touchstone(
             "[Version] 2.0\n# Hz Z RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
@@ -907,6 +981,8 @@ mod tests {
             ("# MHz S RI\n-1 0 0\n", Some(1), 2, "negative"),
             ("# MHz S RI\n1 0 0 0 0\n", None, 2, "first data line"),
             ("# MHz S RI\n1 0 0\n", Some(0), 2, "not supported"),
+            ("# MHz S RI R 50 75\n1 0 0\n", Some(1), 1, "two reference"),
+            ("# MHz S RI R 50 0\n1 0 0\n", Some(1), 1, "positive"),
             ("# MHz S RI\n1 0 0\n", Some(4), 2, "not supported"),
         ];
         for (text, hint, line, needle) in cases {
