@@ -4,7 +4,7 @@
 #[path = "mna/mod.rs"]
 mod mna;
 
-use henrybook::export::foster::{foster_realisation, rational_subcircuit};
+use henrybook::export::foster::{FosterForm, foster_realisation, rational_subcircuit};
 use henrybook::export::spice::ERROR_BOUND_KEY;
 use henrybook::export::{ExportContext, ExportError};
 use henrybook::model::rational::{ComplexPole, RealPole};
@@ -296,4 +296,69 @@ fn a_passive_model_with_a_non_positive_real_term_is_refused_as_unrealisable() {
         ),
         "{e}"
     );
+}
+
+#[test]
+fn element_values_beyond_the_floating_point_range_are_an_error_not_a_panic() {
+    let model = RationalModel {
+        d_ohm: 1.0,
+        e_h: 0.0,
+        real_poles: vec![RealPole {
+            pole_rad_per_s: -1e-300,
+            residue_ohm_rad_per_s: 1e-320,
+        }],
+        complex_poles: vec![],
+    };
+    let e = foster_realisation(&model).unwrap_err();
+    assert!(
+        matches!(&e, ExportError::NotRealisable(m) if m.contains("floating-point")),
+        "{e}"
+    );
+}
+
+/// R0 + s·Ls + R ‖ (Rs + sL + 1/(sC)): a lossy series-resonant notch shunted by R. By hand:
+/// R ‖ (…) = R − (R²/L)·s / (s² + s(R + Rs)/L + 1/(LC)), so d = R0 + R, e = Ls and one pole pair
+/// whose residue has a negative real part: no series Foster cell holds it.
+fn notch_model(r0: f64, ls: f64, r: f64, rs: f64, l: f64, c: f64) -> RationalModel {
+    let a1 = (r + rs) / l;
+    let a0 = 1.0 / (l * c);
+    let p = Complex64::new(-a1 / 2.0, (a0 - a1 * a1 / 4.0).sqrt());
+    let residue = -(r * r / l) * p / (p - p.conj());
+    RationalModel {
+        d_ohm: r0 + r,
+        e_h: ls,
+        real_poles: vec![],
+        complex_poles: vec![ComplexPole {
+            pole_rad_per_s: p,
+            residue_ohm_rad_per_s: residue,
+        }],
+    }
+}
+
+#[test]
+fn a_notch_goes_to_a_parallel_form_and_matches() {
+    for (name, m) in [
+        ("notch", notch_model(0.2, 0.0, 500.0, 2.0, 1e-6, 10e-12)),
+        (
+            "notch + series L",
+            notch_model(0.2, 5e-9, 500.0, 2.0, 1e-6, 10e-12),
+        ),
+        (
+            "sharp notch + series L",
+            notch_model(0.05, 1e-9, 200.0, 0.1, 0.2e-6, 2e-12),
+        ),
+    ] {
+        assert!(m.complex_poles[0].residue_ohm_rad_per_s.re < 0.0);
+        let real = foster_realisation(&m).unwrap();
+        println!("{name}: {:?}", real.form);
+        assert_ne!(real.form, FosterForm::Series, "{name}");
+        let net = check_against_mna(name, &m);
+        assert!(
+            net.comments
+                .iter()
+                .any(|c| c.starts_with("parallel Foster form")
+                    || c.contains("parallel Foster block")),
+            "{name}"
+        );
+    }
 }

@@ -220,3 +220,27 @@ fn ngspice_reproduces_a_foster_netlist() {
     let dc = 0.05 + 0.1 * 20e3 / (0.1 + 20e3) + 2.0 * 3e3 / (2.0 + 3e3);
     check("foster", &text, &m, band, dc);
 }
+
+#[test]
+#[ignore = "needs ngspice: apt-get install -y ngspice"]
+fn ngspice_reproduces_a_parallel_block_netlist() {
+    // R0 + s·Ls + R ‖ (Rs + sL + 1/(sC)) (see export_foster.rs notch_model): its pole pair's residue
+    // has a negative real part, so the export uses a series chain with a parallel block.
+    let (r0, ls, r, rs, l, c) = (0.05, 1e-9, 200.0, 0.1, 0.2e-6, 2e-12);
+    let a1 = (r + rs) / l;
+    let a0 = 1.0 / (l * c);
+    let p = Complex64::new(-a1 / 2.0, (a0 - a1 * a1 / 4.0).sqrt());
+    let m = RationalModel {
+        d_ohm: r0 + r,
+        e_h: ls,
+        real_poles: vec![],
+        complex_poles: vec![ComplexPole {
+            pole_rad_per_s: p,
+            residue_ohm_rad_per_s: -(r * r / l) * p / (p - p.conj()),
+        }],
+    };
+    let band = [1e3, 1e9];
+    let text = rational_subcircuit(&m, &ExportContext::for_band(band[0], band[1])).unwrap();
+    assert!(text.contains("parallel Foster block"), "{text}");
+    check("notch (mixed form)", &text, &m, band, r0 + r);
+}

@@ -376,3 +376,30 @@ fn models_that_are_not_passive_or_not_finite_are_refused() {
         assert!(e.to_string().contains("invalid"), "{e}");
     }
 }
+
+#[test]
+fn absurd_but_finite_values_give_an_error_or_a_netlist_never_a_panic() {
+    for m in [
+        LumpedModel {
+            l0_h: 1e300,
+            ..choke()
+        },
+        LumpedModel {
+            l0_h: 1e-300,
+            ..choke()
+        },
+        LumpedModel {
+            k_ac_ohm_per_sqrt_hz: 1e300,
+            ..choke()
+        },
+        LumpedModel {
+            cp_f: 1e300,
+            ..choke()
+        },
+    ] {
+        match lumped_subcircuit(&m, &ctx(1e3, 1e8)) {
+            Ok(text) => assert!(mna::parse(&text).is_ok()),
+            Err(e) => assert!(!e.to_string().is_empty()),
+        }
+    }
+}

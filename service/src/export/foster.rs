@@ -1,6 +1,6 @@
-//! The rational model `Z(s) = d + s·e + Σ r/(s − p)` as a series Foster realisation of R, L, C.
+//! The rational model `Z(s) = d + s·e + Σ r/(s − p)` as a Foster realisation of R, L, C.
 //!
-//! Each term becomes one cell in series between the pins:
+//! Series form: each term becomes one cell in series between the pins:
 //! - a real pole p = −σ < 0 with residue r > 0: R‖C with C = 1/r, R = r/σ;
 //! - a real pole with r < 0: `r/(s+σ) = r/σ + (−r/σ)·s/(s+σ)`, an R‖L cell with R = −r/σ, L = −r/σ²,
 //!   whose constant r/σ is taken from `d_ohm` (so `d + Σ r/σ` over these poles must be ≥ 0);
@@ -16,10 +16,18 @@
 //!   needed — the case a tank alone cannot realise;
 //! - d as a resistor, e as an inductor.
 //!
+//! A passive model whose terms are not each positive-real (a notch gives a pole pair whose residue has
+//! a negative real part, covered by d) gets, in this order:
+//! 1. the parallel Foster form: Y = 1/Z expanded the same way (Y's poles are Z's zeros, the
+//!    eigenvalues of the state-space zero matrix polished by Newton steps), each term a branch across
+//!    the pins, written as the dual of the cell above;
+//! 2. a series chain of Z's positive-real terms in series with one parallel-form block holding the
+//!    other pole pairs plus the share of d that makes them positive-real together.
+//!
 //! A model that is not passive (Re Z < 0 somewhere, a pole in the right half-plane, e < 0) is refused
-//! with [`ExportError::NotPassive`]; a passive model whose terms are not each positive-real (possible
-//! when one term's negative real part is covered by another's) is refused with
-//! [`ExportError::NotRealisable`], since this series form cannot hold it with positive elements.
+//! with [`ExportError::NotPassive`]; a passive model none of these forms holds with positive elements
+//! (e.g. a pair whose real part turns negative at high frequency, b0 > a1·b1, which needs a
+//! Bott–Duffin-type network) is refused with [`ExportError::NotRealisable`], naming why each failed.
 
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
 use super::spice::ERROR_BOUND_KEY;
@@ -27,6 +35,7 @@ use super::{
     ExportContext, ExportError, grid_with_resonances, log_grid, provenance_lines, resonances,
     stated_bound,
 };
+use crate::model::rational::{ComplexPole, RealPole};
 use crate::model::{ImpedanceModel, RationalModel};
 use num_complex::Complex64;
 use serde::Serialize;
@@ -89,25 +98,195 @@ impl FosterCell {
     }
 }
 
-/// The series chain realising a rational model.
+/// Which Foster form a realisation takes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum FosterForm {
+    /// Cells of Z's partial fractions in series between the pins.
+    Series,
+    /// Cells of Y = 1/Z's partial fractions as branches in parallel across the pins. Each cell is
+    /// stored as the impedance cell of the same algebra and written as its dual network (series ↔
+    /// parallel, L ↔ C of equal value, R ↔ a resistor of conductance R).
+    Parallel,
+    /// The positive-real terms of Z as a series chain (`cells`), in series with one parallel-form
+    /// block (`block`) realising the remaining terms plus the share of `d_ohm` that makes them
+    /// positive-real together.
+    Mixed,
+}
+
+/// A Foster realisation of a rational model.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct FosterRealisation {
+    pub form: FosterForm,
     pub cells: Vec<FosterCell>,
+    /// The parallel-form block of a [`FosterForm::Mixed`] realisation (Y-cells), else empty.
+    pub block: Vec<FosterCell>,
 }
 
 impl ImpedanceModel for FosterRealisation {
     fn impedance(&self, frequency_hz: f64) -> Complex64 {
-        self.cells.iter().map(|c| c.impedance(frequency_hz)).sum()
+        let sum: Complex64 = self.cells.iter().map(|c| c.impedance(frequency_hz)).sum();
+        match self.form {
+            FosterForm::Series => sum,
+            FosterForm::Parallel => sum.inv(),
+            FosterForm::Mixed => {
+                let y: Complex64 = self.block.iter().map(|c| c.impedance(frequency_hz)).sum();
+                sum + y.inv()
+            }
+        }
     }
 }
 
 /// Relative tolerance for a term that sits on the boundary of positive-realness (rounding in the fit).
 const EDGE_TOL: f64 = 1e-9;
 
-/// Checks passivity and builds the series Foster chain.
+/// Checks passivity and builds the series Foster chain of Z's partial fractions; when one of Z's terms
+/// is not positive-real on its own (a notch, for instance, gives a pole pair with a negative residue),
+/// the parallel form from Y = 1/Z's partial fractions instead.
 pub fn foster_realisation(m: &RationalModel) -> Result<FosterRealisation, ExportError> {
     check_finite(m)?;
     check_passive(m)?;
+    let series_err = match terms_to_cells(m) {
+        Ok(cells) => {
+            return Ok(FosterRealisation {
+                form: FosterForm::Series,
+                cells,
+                block: Vec::new(),
+            });
+        }
+        Err(ExportError::NotRealisable(e)) => e,
+        Err(e) => return Err(e),
+    };
+    let parallel_err = match admittance_expansion(m).and_then(|y| {
+        terms_to_cells(&y).map_err(|e| match e {
+            ExportError::NotRealisable(s) => s,
+            other => other.to_string(),
+        })
+    }) {
+        Ok(cells) => {
+            return Ok(FosterRealisation {
+                form: FosterForm::Parallel,
+                cells,
+                block: Vec::new(),
+            });
+        }
+        Err(e) => e,
+    };
+    mixed_realisation(m).map_err(|mixed_err| {
+        ExportError::NotRealisable(format!(
+            "series form: {series_err}; parallel form (from Y = 1/Z): {parallel_err}; \
+             series chain with a parallel block: {mixed_err}"
+        ))
+    })
+}
+
+/// The pole pairs of Z that are not positive-real alone, with just enough of `d_ohm` to make them
+/// positive-real together, realised in parallel form; everything else in series form.
+fn mixed_realisation(m: &RationalModel) -> Result<FosterRealisation, String> {
+    let failing: Vec<usize> = (0..m.complex_poles.len())
+        .filter(|&i| {
+            let one = RationalModel {
+                d_ohm: 0.0,
+                e_h: 0.0,
+                real_poles: vec![],
+                complex_poles: vec![m.complex_poles[i]],
+            };
+            terms_to_cells(&one).is_err()
+        })
+        .collect();
+    if failing.is_empty() {
+        return Err("no pole pair to move into a parallel block".to_string());
+    }
+    let mut rest = RationalModel {
+        d_ohm: 0.0,
+        e_h: 0.0,
+        real_poles: vec![],
+        complex_poles: failing.iter().map(|&i| m.complex_poles[i]).collect(),
+    };
+    let min_re = min_real_part(&rest);
+    let y_of = |rest: &RationalModel| -> Result<Vec<FosterCell>, String> {
+        let y = admittance_expansion(rest)?;
+        terms_to_cells(&y).map_err(|e| e.to_string())
+    };
+    let mut last_err = String::new();
+    // The share of d moved into the block: what makes the block positive-real plus a part of the
+    // spare resistance (it costs nothing, the sum stays d, and it keeps Y's poles — Z's zeros — off
+    // the jω axis, where they would be lossless and hard to locate).
+    let need = (-min_re).max(0.0);
+    let spare = (m.d_ohm - need).max(0.0);
+    for t in [0.5, 0.1, 1e-2, 1e-4, 1e-6] {
+        rest.d_ohm = need + t * spare;
+        let series = RationalModel {
+            d_ohm: m.d_ohm - rest.d_ohm,
+            e_h: m.e_h,
+            real_poles: m.real_poles.clone(),
+            complex_poles: (0..m.complex_poles.len())
+                .filter(|i| !failing.contains(i))
+                .map(|i| m.complex_poles[i])
+                .collect(),
+        };
+        let cells = match terms_to_cells(&series) {
+            Ok(c) => c,
+            Err(e) => {
+                last_err = e.to_string();
+                continue;
+            }
+        };
+        match y_of(&rest) {
+            Ok(block) => {
+                return Ok(if cells.is_empty() {
+                    FosterRealisation {
+                        form: FosterForm::Parallel,
+                        cells: block,
+                        block: Vec::new(),
+                    }
+                } else {
+                    FosterRealisation {
+                        form: FosterForm::Mixed,
+                        cells,
+                        block,
+                    }
+                });
+            }
+            Err(e) => last_err = e,
+        }
+    }
+    Err(last_err)
+}
+
+/// min over ω of Re Z(jω), on a dense grid spanning the poles and resolving each resonance.
+fn min_real_part(m: &RationalModel) -> f64 {
+    let mags: Vec<f64> = m
+        .real_poles
+        .iter()
+        .map(|p| p.pole_rad_per_s.abs())
+        .chain(m.complex_poles.iter().map(|p| p.pole_rad_per_s.norm()))
+        .filter(|&w| w > 0.0)
+        .map(|w| w / (2.0 * PI))
+        .collect();
+    let lo = mags.iter().copied().fold(f64::INFINITY, f64::min) / 1e3;
+    let hi = mags.iter().copied().fold(0.0f64, f64::max) * 1e3;
+    if !(lo.is_finite() && hi > lo) {
+        return 0.0;
+    }
+    let mut grid = log_grid(lo, hi, ((hi / lo).log10() * 200.0).ceil() as usize + 2);
+    for p in &m.complex_poles {
+        let fr = p.pole_rad_per_s.im / (2.0 * PI);
+        let width = -p.pole_rad_per_s.re / (2.0 * PI);
+        for k in -400..=400 {
+            let f = fr + width * k as f64 / 50.0;
+            if f > 0.0 {
+                grid.push(f);
+            }
+        }
+    }
+    grid.iter()
+        .map(|&f| m.impedance(f).re)
+        .fold(f64::INFINITY, f64::min)
+}
+
+/// Each partial-fraction term of `m` (read as an impedance) as a positive-element cell.
+fn terms_to_cells(m: &RationalModel) -> Result<Vec<FosterCell>, ExportError> {
     let mut cells = Vec::new();
     let mut d = m.d_ohm;
     let mut d_scale = m.d_ohm.abs();
@@ -207,7 +386,165 @@ pub fn foster_realisation(m: &RationalModel) -> Result<FosterRealisation, Export
             "the model is identically zero (a short circuit)".to_string(),
         ));
     }
-    Ok(FosterRealisation { cells })
+    for (i, cell) in cells.iter().enumerate() {
+        let values = match *cell {
+            FosterCell::Resistor { r_ohm } => vec![r_ohm],
+            FosterCell::Inductor { l_h } => vec![l_h],
+            FosterCell::Capacitor { c_f } => vec![c_f],
+            FosterCell::RParallelC { r_ohm, c_f } => vec![r_ohm, c_f],
+            FosterCell::RParallelL { r_ohm, l_h } => vec![r_ohm, l_h],
+            FosterCell::Resonator {
+                c_f,
+                rp_ohm,
+                rs_ohm,
+                l_h,
+            } => vec![c_f, l_h, rp_ohm.unwrap_or(1.0), rs_ohm.unwrap_or(1.0)],
+        };
+        if values.iter().any(|v| !(v.is_finite() && *v > 0.0)) {
+            return Err(ExportError::NotRealisable(format!(
+                "cell {i} ({cell:?}) would need an element value outside the floating-point range"
+            )));
+        }
+    }
+    Ok(cells)
+}
+
+/// Y = 1/Z in the same pole-residue form: Y's poles are Z's zeros, found as the eigenvalues of the
+/// state-space zero matrix (A − B·C/d, or its pencil forms when d = 0 or e > 0), polished by Newton
+/// steps on Z itself; residues 1/Z'(z).
+fn admittance_expansion(m: &RationalModel) -> Result<RationalModel, String> {
+    use nalgebra::DMatrix;
+    let mut poles: Vec<Complex64> = Vec::new();
+    let mut residues: Vec<Complex64> = Vec::new();
+    for p in &m.real_poles {
+        poles.push(p.pole_rad_per_s.into());
+        residues.push(p.residue_ohm_rad_per_s.into());
+    }
+    for p in &m.complex_poles {
+        poles.push(p.pole_rad_per_s);
+        residues.push(p.residue_ohm_rad_per_s);
+        poles.push(p.pole_rad_per_s.conj());
+        residues.push(p.residue_ohm_rad_per_s.conj());
+    }
+    let n = poles.len();
+    let z_of = |s: Complex64| -> Complex64 {
+        let mut z = m.d_ohm + s * m.e_h;
+        for (p, r) in poles.iter().zip(&residues) {
+            z += r / (s - p);
+        }
+        z
+    };
+    let dz_of = |s: Complex64| -> Complex64 {
+        let mut dz = Complex64::new(m.e_h, 0.0);
+        for (p, r) in poles.iter().zip(&residues) {
+            dz -= r / ((s - p) * (s - p));
+        }
+        dz
+    };
+    let m1: Complex64 = residues.iter().sum();
+    let m2: Complex64 = poles.iter().zip(&residues).map(|(p, r)| p * r).sum();
+    let scale = poles
+        .iter()
+        .map(|p| p.norm())
+        .fold(0.0f64, f64::max)
+        .max(f64::MIN_POSITIVE);
+    let zero = Complex64::new(0.0, 0.0);
+    let (mut zeros, d_y, e_y): (Vec<Complex64>, f64, f64) = if m.e_h > 0.0 {
+        // Pencil [[A, B], [C, d]] − s·diag(I, −e): eig of [[A, B], [−C/e, −d/e]].
+        let mat = DMatrix::from_fn(n + 1, n + 1, |i, j| match (i < n, j < n) {
+            (true, true) => {
+                if i == j {
+                    poles[i]
+                } else {
+                    zero
+                }
+            }
+            (true, false) => Complex64::new(1.0, 0.0),
+            (false, true) => -residues[j] / m.e_h,
+            (false, false) => Complex64::new(-m.d_ohm / m.e_h, 0.0),
+        });
+        (eigenvalues(mat)?, 0.0, 0.0)
+    } else if m.d_ohm > 0.0 {
+        let mat = DMatrix::from_fn(n, n, |i, j| {
+            let diag = if i == j { poles[i] } else { zero };
+            diag - residues[j] / m.d_ohm
+        });
+        (eigenvalues(mat)?, 1.0 / m.d_ohm, 0.0)
+    } else {
+        if m1.re.is_nan() || m1.re <= 0.0 {
+            return Err("Z vanishes at infinity without a positive sum of residues".to_string());
+        }
+        // (I − B·(CB)⁻¹·C)·A has the n − 1 zeros and one spurious eigenvalue at 0.
+        let mat = DMatrix::from_fn(n, n, |i, j| {
+            let proj = if i == j { 1.0.into() } else { zero } - residues[j] / m1;
+            proj * poles[j]
+        });
+        let mut ev = eigenvalues(mat)?;
+        let k = (0..ev.len())
+            .min_by(|&a, &b| ev[a].norm().total_cmp(&ev[b].norm()))
+            .ok_or("no zeros")?;
+        ev.remove(k);
+        (ev, (-m2 / (m1 * m1)).re, 1.0 / m1.re)
+    };
+    for z in zeros.iter_mut() {
+        for _ in 0..30 {
+            let step = z_of(*z) / dz_of(*z);
+            if !(step.re.is_finite() && step.im.is_finite()) {
+                break;
+            }
+            let next = *z - step;
+            if z_of(next).norm() >= z_of(*z).norm() {
+                break;
+            }
+            *z = next;
+        }
+        if z.norm() < 1e-12 * scale {
+            *z = zero;
+        }
+    }
+    let mut real_poles = Vec::new();
+    let mut complex_poles = Vec::new();
+    let mut n_upper = 0;
+    let mut n_lower = 0;
+    for &z in &zeros {
+        if z.re > 1e-6 * scale.max(z.norm()) {
+            return Err(format!("Z has a zero in the right half-plane at {z} rad/s"));
+        }
+        let rho = dz_of(z).inv();
+        if z.im.abs() <= 1e-9 * z.norm().max(f64::MIN_POSITIVE) {
+            real_poles.push(RealPole {
+                pole_rad_per_s: z.re.min(0.0),
+                residue_ohm_rad_per_s: rho.re,
+            });
+        } else if z.im > 0.0 {
+            n_upper += 1;
+            complex_poles.push(ComplexPole {
+                pole_rad_per_s: Complex64::new(z.re.min(0.0), z.im),
+                residue_ohm_rad_per_s: rho,
+            });
+        } else {
+            n_lower += 1;
+        }
+    }
+    if n_upper != n_lower {
+        return Err("the zeros of Z do not come in conjugate pairs (numerically lost)".to_string());
+    }
+    Ok(RationalModel {
+        d_ohm: d_y,
+        e_h: e_y,
+        real_poles,
+        complex_poles,
+    })
+}
+
+fn eigenvalues(mat: nalgebra::DMatrix<Complex64>) -> Result<Vec<Complex64>, String> {
+    if mat.nrows() == 0 {
+        return Ok(Vec::new());
+    }
+    mat.schur()
+        .eigenvalues()
+        .map(|v| v.iter().copied().collect())
+        .ok_or_else(|| "the eigenvalue solve for Z's zeros did not converge".to_string())
 }
 
 fn check_finite(m: &RationalModel) -> Result<(), ExportError> {
@@ -346,19 +683,33 @@ pub fn rational_subcircuit(
         if z_model.norm() == 0.0 || !z_model.norm().is_finite() {
             return Err(ExportError::NotFinite { frequency_hz: f });
         }
-        let smallest = real
-            .cells
-            .iter()
-            .flat_map(|c| {
-                let rs = match c {
-                    FosterCell::Resonator {
-                        rs_ohm: Some(rs), ..
-                    } => *rs,
-                    _ => f64::INFINITY,
-                };
-                [c.impedance(f).norm(), rs]
-            })
-            .fold(f64::INFINITY, f64::min);
+        let smallest = match real.form {
+            FosterForm::Series => real
+                .cells
+                .iter()
+                .flat_map(|c| {
+                    let rs = match c {
+                        FosterCell::Resonator {
+                            rs_ohm: Some(rs), ..
+                        } => *rs,
+                        _ => f64::INFINITY,
+                    };
+                    [c.impedance(f).norm(), rs]
+                })
+                .fold(f64::INFINITY, f64::min),
+            // Parallel branches: the cell formula gives each branch's admittance.
+            FosterForm::Parallel => real
+                .cells
+                .iter()
+                .map(|c| 1.0 / c.impedance(f).norm())
+                .fold(f64::INFINITY, f64::min),
+            FosterForm::Mixed => real
+                .cells
+                .iter()
+                .map(|c| c.impedance(f).norm())
+                .chain(real.block.iter().map(|c| 1.0 / c.impedance(f).norm()))
+                .fold(f64::INFINITY, f64::min),
+        };
         spread = spread.max(z_model.norm() / smallest);
         let e = (real.impedance(f) - z_model).norm() / z_model.norm();
         if e > max_err {
@@ -380,10 +731,31 @@ pub fn rational_subcircuit(
         model.real_poles.len(),
         model.complex_poles.len()
     ));
-    net.comment(
-        "cells in series: RD = d (less the R||L cells' constants), LE = e, RAn||CAn and RBn||LBn per real pole,",
-    );
-    net.comment("  CZn per pole at s = 0, CQn || RQPn || (RQSn + LQn) per complex pole pair");
+    match real.form {
+        FosterForm::Series => {
+            net.comment(
+                "series Foster form of Z: RD = d (less the R||L cells' constants), LE = e, RAn||CAn and RBn||LBn per real pole,",
+            );
+            net.comment(
+                "  CZn per pole at s = 0, CQn || RQPn || (RQSn + LQn) per complex pole pair",
+            );
+        }
+        FosterForm::Parallel => {
+            net.comment(
+                "parallel Foster form of Y = 1/Z (a term of Z alone was not positive-real): branches across the pins,",
+            );
+            parallel_legend(&mut net);
+        }
+        FosterForm::Mixed => {
+            net.comment(
+                "series Foster chain of Z's positive-real terms (RD, LE, RAn||CAn, RBn||LBn, CZn, CQn || RQPn || (RQSn + LQn)),",
+            );
+            net.comment(
+                "  in series with a parallel Foster block of Y for the pole pairs that are not positive-real alone:",
+            );
+            parallel_legend(&mut net);
+        }
+    }
     net.comment(format!(
         "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
         check.len(),
@@ -396,11 +768,31 @@ pub fn rational_subcircuit(
     net.comment("pins: 1 and 2; values in ohm, henry, farad");
     net.comment("");
 
-    let n_cells = real.cells.len();
-    let mut at = PIN_A;
+    match real.form {
+        FosterForm::Series => write_series(&mut net, &real.cells, PIN_A, PIN_B),
+        FosterForm::Parallel => write_parallel(&mut net, &real.cells, PIN_A, PIN_B),
+        FosterForm::Mixed => {
+            let x = net.node();
+            write_series(&mut net, &real.cells, PIN_A, x);
+            write_parallel(&mut net, &real.block, x, PIN_B);
+        }
+    }
+    Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
+}
+
+fn parallel_legend(net: &mut Netlist) {
+    net.comment(
+        "  RYG = 1/Y(inf), CYE, RYAn+LYAn and RYBn+CYBn per real pole of Y, LYZn per pole of Y at s = 0,",
+    );
+    net.comment("  LYQn + RYQPn + (CYQn || RYQSn) per complex pole pair of Y (the zeros of Z)");
+}
+
+fn write_series(net: &mut Netlist, cells: &[FosterCell], from: u32, to: u32) {
+    let n_cells = cells.len();
+    let mut at = from;
     let (mut n_rc, mut n_rl, mut n_c, mut n_q) = (0, 0, 0, 0);
-    for (i, cell) in real.cells.iter().enumerate() {
-        let next = if i + 1 == n_cells { PIN_B } else { net.node() };
+    for (i, cell) in cells.iter().enumerate() {
+        let next = if i + 1 == n_cells { to } else { net.node() };
         match *cell {
             FosterCell::Resistor { r_ohm } => net.element("RD", at, next, r_ohm),
             FosterCell::Inductor { l_h } => net.element("LE", at, next, l_h),
@@ -441,5 +833,52 @@ pub fn rational_subcircuit(
         }
         at = next;
     }
-    Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
+}
+
+/// The dual of each cell as a branch across the pins: series ↔ parallel, an impedance-cell
+/// capacitor of c farad becomes an inductor of c henry (and L → C), a resistor of r ohm becomes a
+/// resistor of 1/r ohm.
+fn write_parallel(net: &mut Netlist, cells: &[FosterCell], a: u32, b: u32) {
+    let (mut n_rc, mut n_rl, mut n_c, mut n_q) = (0, 0, 0, 0);
+    for cell in cells {
+        match *cell {
+            FosterCell::Resistor { r_ohm } => net.element("RYG", a, b, 1.0 / r_ohm),
+            FosterCell::Inductor { l_h } => net.element("CYE", a, b, l_h),
+            FosterCell::Capacitor { c_f } => {
+                n_c += 1;
+                net.element(&format!("LYZ{n_c}"), a, b, c_f);
+            }
+            FosterCell::RParallelC { r_ohm, c_f } => {
+                n_rc += 1;
+                let mid = net.node();
+                net.element(&format!("RYA{n_rc}"), a, mid, 1.0 / r_ohm);
+                net.element(&format!("LYA{n_rc}"), mid, b, c_f);
+            }
+            FosterCell::RParallelL { r_ohm, l_h } => {
+                n_rl += 1;
+                let mid = net.node();
+                net.element(&format!("RYB{n_rl}"), a, mid, 1.0 / r_ohm);
+                net.element(&format!("CYB{n_rl}"), mid, b, l_h);
+            }
+            FosterCell::Resonator {
+                c_f,
+                rp_ohm,
+                rs_ohm,
+                l_h,
+            } => {
+                n_q += 1;
+                let mut at = net.node();
+                net.element(&format!("LYQ{n_q}"), a, at, c_f);
+                if let Some(rp) = rp_ohm {
+                    let next = net.node();
+                    net.element(&format!("RYQP{n_q}"), at, next, 1.0 / rp);
+                    at = next;
+                }
+                net.element(&format!("CYQ{n_q}"), at, b, l_h);
+                if let Some(rs) = rs_ohm {
+                    net.element(&format!("RYQS{n_q}"), at, b, 1.0 / rs);
+                }
+            }
+        }
+    }
 }

@@ -157,6 +157,13 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         b[3 * i + 1] = gt.re;
         b[3 * i + 2] = gt.im;
     }
+    if !(a.iter().all(|v| v.is_finite()) && b.iter().all(|v| v.is_finite())) {
+        return Err(ExportError::InvalidParameter {
+            name: "k_ac_ohm_per_sqrt_hz".to_string(),
+            value: k,
+            reason: "the model's impedance overflows over the band; no ladder can be designed",
+        });
+    }
     // Lawson's iteratively reweighted least squares pushes the solution towards the minimax one: the
     // rows of the points with the largest error gain weight each round.
     let npts = grid.len();
@@ -225,7 +232,10 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         })
         .collect();
     let l0_h = m.l0_h - (value(n) - value(n + 1));
-    if cells.is_empty() || l0_h.is_nan() || l0_h <= 0.0 {
+    let finite = cells
+        .iter()
+        .all(|c| c.r_ohm.is_finite() && c.l_h.is_finite() && c.l_h > 0.0);
+    if cells.is_empty() || !finite || !l0_h.is_finite() || l0_h <= 0.0 {
         return Err(ExportError::InvalidParameter {
             name: "k_ac_ohm_per_sqrt_hz".to_string(),
             value: k,

@@ -8,6 +8,9 @@ use nalgebra::{DMatrix, DVector};
 pub(crate) fn nnls(a: &DMatrix<f64>, b: &DVector<f64>) -> DVector<f64> {
     let n = a.ncols();
     let mut x = DVector::<f64>::zeros(n);
+    if !(a.iter().all(|v| v.is_finite()) && b.iter().all(|v| v.is_finite())) {
+        return x;
+    }
     let mut passive = vec![false; n];
     let scale = a.norm() * b.norm().max(f64::MIN_POSITIVE);
     let tol = 1e-13 * scale;

@@ -50,6 +50,9 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         spread =
             spread.max(z_model.norm() / smallest_series_impedance(model, ladder.as_ref(), l0_h, f));
         let e = (realised(f) - z_model).norm() / z_model.norm();
+        if !e.is_finite() {
+            return Err(ExportError::NotFinite { frequency_hz: f });
+        }
         if e > max_err {
             max_err = e;
             max_err_at = f;
