@@ -398,8 +398,16 @@ pub(crate) fn refine(
         let rank = qr.rank();
         let mut qtr = r.clone();
         qr.apply_qt(&mut qtr);
+        // The undamped (Gauss–Newton) step could lower the cost by at most ‖(Qᵀr)₁‖²: when that is
+        // negligible the fit is at its minimum.
+        let predicted: f64 = qtr[..rank].iter().map(|v| v * v).sum();
+        if predicted <= 1e-7 * cost {
+            break;
+        }
         let mut improved = false;
-        while lambda < 1e12 {
+        let mut trials = 0;
+        while lambda < 1e12 && trials < 8 {
+            trials += 1;
             let arows = rank + params;
             let mut a = vec![0.0; arows * params];
             for c in 0..params {
