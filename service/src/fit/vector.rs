@@ -591,11 +591,11 @@ pub(crate) fn vector_fit_data(
             break;
         };
         relocations += 1;
-        let change = pole_change(&poles, &next);
+        let change = pole_change(&poles, &next, w_lo);
         poles = next;
-        // Early relocations move the poles far; the residues (for the error and the best iterate) are only
-        // worth identifying once the poles are within 1 % of settling, or at the last relocation.
-        if change > 1e-2 && relocations < settings.max_relocations {
+        // The first relocations move the poles far from the starting set; the residues (for the error and
+        // the best iterate) are only worth identifying from the third on, or once the poles settle.
+        if relocations < 3 && change > 1e-2 && relocations < settings.max_relocations {
             continue;
         }
         let coef = identify(data, &poles);
@@ -607,7 +607,7 @@ pub(crate) fn vector_fit_data(
                 .is_some_and(|(b, _, _)| (rms - *b).abs() <= 1e-6 * *b);
             let improved = best
                 .as_ref()
-                .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-9));
+                .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-3));
             if improved {
                 stalls = 0;
             } else {
@@ -624,7 +624,7 @@ pub(crate) fn vector_fit_data(
         }
         // Noisy data keep the poles wandering at the noise level: stop once the error has not improved
         // for several relocations.
-        if stalls >= 4 {
+        if stalls >= 3 {
             converged = true;
             break;
         }
@@ -663,17 +663,19 @@ fn cancelled(control: &FitControl) -> bool {
         .is_some_and(|c| c.load(Ordering::Relaxed))
 }
 
-/// Largest relative move of any pole, or ∞ when the real/pair split changed.
-fn pole_change(old: &Poles, new: &Poles) -> f64 {
+/// Largest relative move of any pole, or ∞ when the real/pair split changed. Moves are measured against
+/// the pole's magnitude but at least `floor` (the bottom of the band): a real pole far below the band may
+/// wander by a large fraction of itself without changing the fit.
+fn pole_change(old: &Poles, new: &Poles, floor: f64) -> f64 {
     if old.real.len() != new.real.len() || old.pairs.len() != new.pairs.len() {
         return f64::INFINITY;
     }
     let mut worst = 0.0f64;
     for (a, b) in old.real.iter().zip(&new.real) {
-        worst = worst.max((a - b).abs() / b.abs().max(1e-300));
+        worst = worst.max((a - b).abs() / b.abs().max(floor).max(1e-300));
     }
     for (a, b) in old.pairs.iter().zip(&new.pairs) {
-        worst = worst.max((a - b).norm() / b.norm().max(1e-300));
+        worst = worst.max((a - b).norm() / b.norm().max(floor).max(1e-300));
     }
     worst
 }
