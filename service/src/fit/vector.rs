@@ -109,9 +109,6 @@ pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
     Poles { real, pairs }
 }
 
-/// One pole relocation: solve the relaxed linearised problem
-/// `w·[Σ cₙφₙ + d + s·e − Z·(Σ c̃ₙφₙ + d̃)] ≈ 0` with the relaxation row `Re Σₖ σ(sₖ) = K`, and return the
-/// zeros of σ, with unstable ones flipped into the left half-plane.
 /// The relaxed relocation system, column-major `(2K + 1) × (2N + 3)`, columns [c…, d, e, c̃…, d̃], and its
 /// right-hand side.
 fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
@@ -160,6 +157,9 @@ fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
     (a, b)
 }
 
+/// One pole relocation: solve the relaxed linearised problem
+/// `w·[Σ cₙφₙ + d + s·e − Z·(Σ c̃ₙφₙ + d̃)] ≈ 0` with the relaxation row `Re Σₖ σ(sₖ) = K`, and return the
+/// zeros of σ, with unstable ones flipped into the left half-plane.
 pub(crate) fn relocate(data: &FitData, poles: &Poles) -> Option<Poles> {
     let k = data.len();
     let n = poles.order();
@@ -786,6 +786,9 @@ pub fn fit_rational(
         .map(|e| (to_model(data.omega0, &fit.poles, &e.coef), e.rms_after))
         .map_err(|e| e.to_string());
         let rms = passive.as_ref().map_or(f64::INFINITY, |p| p.1);
+        // Progress is judged on the fit before enforcement: an order that cannot be made passive within
+        // the bound may be followed by one that can.
+        let naive_rms = fit.rms_weighted;
         tried.push(Tried {
             order,
             fit,
@@ -797,13 +800,14 @@ pub fn fit_rational(
         if rms <= options.rational_target_rms_weighted {
             break;
         }
-        if rms < best_rms * 0.98 {
+        if naive_rms < best_rms * 0.98 {
             no_gain = 0;
         } else {
             no_gain += 1;
         }
-        best_rms = best_rms.min(rms);
-        if no_gain >= 2 {
+        best_rms = best_rms.min(naive_rms);
+        let any_passive = tried.iter().any(|t| t.passive.is_ok());
+        if (no_gain >= 2 && any_passive) || no_gain >= 4 {
             break;
         }
     }
@@ -841,7 +845,8 @@ pub fn fit_rational(
         .iter()
         .map(|t| {
             let parameters = 2 * t.order + 2;
-            let rms = rms_of(t).min(f64::MAX);
+            // A candidate that could not be made passive is listed with its error before enforcement.
+            let rms = t.passive.as_ref().map_or(t.fit.rms_weighted, |p| p.1);
             let cost = rms * rms * n_data as f64;
             Candidate {
                 label: format!(
