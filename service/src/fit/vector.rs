@@ -401,7 +401,7 @@ pub(crate) fn refine(
         // The undamped (Gauss–Newton) step could lower the cost by at most ‖(Qᵀr)₁‖²: when that is
         // negligible the fit is at its minimum.
         let predicted: f64 = qtr[..rank].iter().map(|v| v * v).sum();
-        if predicted <= 1e-7 * cost {
+        if predicted <= 1e-5 * cost {
             break;
         }
         let mut improved = false;
@@ -464,7 +464,7 @@ pub(crate) fn refine(
                     cost = tc;
                     lambda = (lambda / 10.0).max(1e-12);
                     accepted += 1;
-                    improved = gain > 1e-7;
+                    improved = gain > 1e-5;
                     break;
                 }
             }
