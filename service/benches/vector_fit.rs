@@ -116,11 +116,13 @@ fn main() {
     let mut t_vf = Vec::new();
     let mut vf_model = None;
     let mut relocations = 0;
+    let mut refinements = 0;
     for _ in 0..repeat {
         let t0 = Instant::now();
         let r = vector_fit(&sweep, settings, &ctl).expect("vector fit");
         t_vf.push(t0.elapsed().as_secs_f64());
         relocations = r.relocations;
+        refinements = r.refinements;
         vf_model = Some(r.model);
     }
     let options = FitOptions {
@@ -147,6 +149,7 @@ fn main() {
         "order": order,
         "repeat": repeat,
         "relocations": relocations,
+        "refinements": refinements,
         "vector_fit_best_s": vf_best,
         "vector_fit_median_s": vf_median,
         "vector_fit_rms_ohm": rms_ohm(&sweep, &vf_model.expect("ran")),
