@@ -196,7 +196,7 @@ fn run_lm(
     time_limit: Duration,
     control: &FitControl,
 ) -> Result<LmRun, FitError> {
-    let problem = LumpedProblem { data, structure };
+    let problem = LumpedProblem::new(data, structure);
     let mut exec = Executor::new(problem, solver)
         .configure(|s| s.param(DVector::from_vec(theta0)).max_iters(max_iterations))
         .timeout(time_limit);

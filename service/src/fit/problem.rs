@@ -5,10 +5,12 @@
 //! `(rdc − reading)/σ_reading`. So χ² = Σ r² is the cost a scipy `least_squares` with the same residual
 //! vector would report as 2·cost.
 
+use super::lm::RecycleJacobian;
 use crate::model::lumped::{self, MAX_PARAMETERS, Structure, Values};
 use argmin::core::{Error, Jacobian, Operator};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
+use std::cell::RefCell;
 
 /// The sweep prepared once for many fits: √f and 1/σ precomputed.
 #[derive(Debug, Clone)]
@@ -30,6 +32,24 @@ impl FitData {
 pub struct LumpedProblem<'a> {
     pub data: &'a FitData,
     pub structure: &'a Structure,
+    /// A Jacobian the solver handed back, refilled by the next [`Jacobian::jacobian`] call.
+    pub spare: RefCell<Option<DMatrix<f64>>>,
+}
+
+impl<'a> LumpedProblem<'a> {
+    pub fn new(data: &'a FitData, structure: &'a Structure) -> Self {
+        LumpedProblem {
+            data,
+            structure,
+            spare: RefCell::new(None),
+        }
+    }
+}
+
+impl RecycleJacobian for LumpedProblem<'_> {
+    fn recycle_jacobian(&self, jacobian: DMatrix<f64>) {
+        *self.spare.borrow_mut() = Some(jacobian);
+    }
 }
 
 impl LumpedProblem<'_> {
@@ -96,7 +116,12 @@ impl Jacobian for LumpedProblem<'_> {
     type Param = DVector<f64>;
     type Jacobian = DMatrix<f64>;
     fn jacobian(&self, theta: &DVector<f64>) -> Result<DMatrix<f64>, Error> {
-        let mut j = DMatrix::zeros(self.data.residual_count(), self.structure.len());
+        let shape = (self.data.residual_count(), self.structure.len());
+        // jacobian_into writes every entry, so a recycled matrix needs no zeroing.
+        let mut j = match self.spare.borrow_mut().take() {
+            Some(j) if j.shape() == shape => j,
+            _ => DMatrix::zeros(shape.0, shape.1),
+        };
         self.jacobian_into(theta.as_slice(), &mut j);
         Ok(j)
     }
