@@ -66,10 +66,7 @@ fn bench(c: &mut Criterion) {
 
     let mut g = c.benchmark_group("fit_1601");
     g.sample_size(30);
-    let problem = henrybook::fit::problem::LumpedProblem {
-        data: &data,
-        structure: &structure,
-    };
+    let problem = henrybook::fit::problem::LumpedProblem::new(&data, &structure);
     let theta = structure.pack(&start);
     let mut r = vec![0.0; data.residual_count()];
     let mut j = nalgebra::DMatrix::zeros(data.residual_count(), structure.len());

@@ -112,10 +112,17 @@ fn non_finite(what: &str) -> Error {
     Error::msg(format!("the {what} is not finite at the starting point"))
 }
 
+/// A least-squares problem may take back a Jacobian the solver no longer needs, to fill it again
+/// instead of allocating and zeroing a new one (a 3202×6 matrix is 150 kB per iteration).
+pub trait RecycleJacobian {
+    fn recycle_jacobian(&self, _jacobian: DMatrix<f64>) {}
+}
+
 impl<O> Solver<O, LmState> for LevenbergMarquardt
 where
     O: Operator<Param = DVector<f64>, Output = DVector<f64>>
-        + Jacobian<Param = DVector<f64>, Jacobian = DMatrix<f64>>,
+        + Jacobian<Param = DVector<f64>, Jacobian = DMatrix<f64>>
+        + RecycleJacobian,
 {
     fn name(&self) -> &str {
         "Levenberg-Marquardt"
@@ -206,6 +213,10 @@ where
                     col.norm_squared().is_finite()
                 });
                 if finite {
+                    problem.problem("recycle_count", |p| {
+                        p.recycle_jacobian(j);
+                        Ok(())
+                    })?;
                     self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
                     self.lambda = self.lambda.max(1e-15);
                     self.nu = 2.0;
@@ -271,6 +282,8 @@ mod tests {
             ))
         }
     }
+
+    impl RecycleJacobian for Decay {}
 
     impl Jacobian for Decay {
         type Param = DVector<f64>;

@@ -188,15 +188,14 @@ struct LmRun {
 }
 
 fn run_lm(
-    data: &FitData,
-    structure: &Structure,
+    problem: LumpedProblem<'_>,
     solver: LevenbergMarquardt,
     theta0: Vec<f64>,
     max_iterations: u64,
     time_limit: Duration,
     control: &FitControl,
 ) -> Result<LmRun, FitError> {
-    let problem = LumpedProblem { data, structure };
+    let structure = problem.structure;
     let mut exec = Executor::new(problem, solver)
         .configure(|s| s.param(DVector::from_vec(theta0)).max_iters(max_iterations))
         .timeout(time_limit);
@@ -274,8 +273,7 @@ pub fn fit_structure(
         // Only a starting point: a loose tolerance is enough.
         let solver = LevenbergMarquardt::default().with_tolerances(1e-6, 1e-6);
         match run_lm(
-            &coarse,
-            structure,
+            LumpedProblem::new(&coarse, structure),
             solver,
             theta.clone(),
             max_iterations,
@@ -297,9 +295,9 @@ pub fn fit_structure(
     } else {
         LevenbergMarquardt::default()
     };
+    // Near the answer nearly every step is accepted: evaluate residuals and Jacobian together.
     let fine = run_lm(
-        data,
-        structure,
+        LumpedProblem::new(data, structure).with_combined(iterations > 0),
         solver,
         theta,
         max_iterations.saturating_sub(iterations).max(1),
