@@ -68,6 +68,8 @@ impl ImpedanceModel for LumpedModel {
     }
 }
 
+pub mod construction;
+pub mod lumped;
 pub mod rational;
 pub use rational::RationalModel;
 

@@ -1,0 +1,318 @@
+//! The lumped model as a SPICE subcircuit of R, L and C only.
+//!
+//! Topology (pin 1 to pin 2): `ls_h` in series; then, between two nodes, the winding branch
+//! (`rdc_ohm`, the skin-effect ladder, `l0_h` ‖ `rp_ohm` in series) in parallel with `cp_f` and every
+//! series-kind section (an R–L–C chain); then every parallel-kind section (an R‖L‖C tank) in series.
+//! Absent elements (zero `ls_h`, `cp_f`, `rdc_ohm`, `k_ac_ohm_per_sqrt_hz`, a zero section R or L,
+//! `rp_ohm = None`) are left out rather than written as zero-valued elements.
+
+use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_skin};
+use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
+use super::{
+    ExportContext, ExportError, check_param, grid_with_resonances, provenance_lines, resonances,
+    stated_bound,
+};
+use crate::model::{ImpedanceModel, LumpedModel, SectionKind};
+use num_complex::Complex64;
+
+/// The machine-readable comment line carrying the stated error of every netlist.
+pub const ERROR_BOUND_KEY: &str = "max_relative_error_bound:";
+
+/// Writes `model` as a `.SUBCKT` whose impedance between its two pins matches the model's within the
+/// error stated in its comments over `ctx.band_hz`.
+pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<String, ExportError> {
+    let band = ctx.checked_band()?;
+    validate(model)?;
+    let ladder = if model.k_ac_ohm_per_sqrt_hz > 0.0 {
+        Some(design_skin_ladder(model, band)?)
+    } else {
+        None
+    };
+    let l0_h = ladder.as_ref().map_or(model.l0_h, |l| l.l0_h);
+    let realised = |f: f64| {
+        let skin = ladder
+            .as_ref()
+            .map_or(Complex64::new(0.0, 0.0), |l| l.impedance(f));
+        impedance_with_skin(model, skin, l0_h, f)
+    };
+    let [lo, hi] = band;
+    let model_z = |f: f64| model.impedance(f);
+    let res = resonances(&model_z, lo, hi);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
+    let mut max_err = 0.0f64;
+    let mut max_err_at = lo;
+    let mut spread = 1.0f64;
+    for &f in &check {
+        let z_model = model.impedance(f);
+        if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
+            return Err(ExportError::NotFinite { frequency_hz: f });
+        }
+        spread =
+            spread.max(z_model.norm() / smallest_series_impedance(model, ladder.as_ref(), l0_h, f));
+        let e = (realised(f) - z_model).norm() / z_model.norm();
+        if e > max_err {
+            max_err = e;
+            max_err_at = f;
+        }
+    }
+    let bound = stated_bound(max_err, spread);
+
+    let mut net = Netlist::new();
+    net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
+    for line in provenance_lines(ctx) {
+        net.comment(line);
+    }
+    net.comment(format!(
+        "model: l0_h={:e} rdc_ohm={:e} k_ac_ohm_per_sqrt_hz={:e} rp_ohm={} cp_f={:e} ls_h={:e} sections={}",
+        model.l0_h,
+        model.rdc_ohm,
+        model.k_ac_ohm_per_sqrt_hz,
+        model.rp_ohm.map_or("none".to_string(), |r| format!("{r:e}")),
+        model.cp_f,
+        model.ls_h,
+        model.sections.len()
+    ));
+    if let Some(l) = &ladder {
+        ladder_comments(&mut net, l, model);
+    }
+    net.comment(format!(
+        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
+        check.len(),
+        res.len()
+    ));
+    net.comment(format!(
+        "stated error = 1.25 x that maximum + 2e-15 x max |Z|/|z_series| (= {spread:.3e}: a simulator's rounding, z_series the smallest element impedance in series) + 1e-9"
+    ));
+    net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
+    net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
+    net.comment("");
+
+    let a = if model.ls_h > 0.0 {
+        let a = net.node();
+        net.element("LS", PIN_A, a, model.ls_h);
+        a
+    } else {
+        PIN_A
+    };
+    let has_tanks = model
+        .sections
+        .iter()
+        .any(|s| s.kind == SectionKind::Parallel);
+    let b = if has_tanks { net.node() } else { PIN_B };
+
+    // Winding branch: rdc, ladder cells, core, in series from a to b.
+    let mut at = a;
+    if model.rdc_ohm > 0.0 {
+        let next = net.node();
+        net.element("RDC", at, next, model.rdc_ohm);
+        at = next;
+    }
+    if let Some(l) = &ladder {
+        for (i, cell) in l.cells.iter().enumerate() {
+            let next = net.node();
+            net.element(&format!("RSK{}", i + 1), at, next, cell.r_ohm);
+            net.element(&format!("LSK{}", i + 1), at, next, cell.l_h);
+            at = next;
+        }
+    }
+    net.element("L0", at, b, l0_h);
+    if let Some(rp) = model.rp_ohm {
+        net.element("RP", at, b, rp);
+    }
+    if model.cp_f > 0.0 {
+        net.element("CP", a, b, model.cp_f);
+    }
+
+    let mut n_series = 0;
+    let mut n_tank = 0;
+    let mut tank_at = b;
+    let n_tanks_total = model
+        .sections
+        .iter()
+        .filter(|s| s.kind == SectionKind::Parallel)
+        .count();
+    for s in &model.sections {
+        match s.kind {
+            SectionKind::Series => {
+                n_series += 1;
+                let mut at = a;
+                if s.r_ohm > 0.0 {
+                    let next = net.node();
+                    net.element(&format!("RSER{n_series}"), at, next, s.r_ohm);
+                    at = next;
+                }
+                if s.l_h > 0.0 {
+                    let next = net.node();
+                    net.element(&format!("LSER{n_series}"), at, next, s.l_h);
+                    at = next;
+                }
+                net.element(&format!("CSER{n_series}"), at, b, s.c_f);
+            }
+            SectionKind::Parallel => {
+                n_tank += 1;
+                let next = if n_tank == n_tanks_total {
+                    PIN_B
+                } else {
+                    net.node()
+                };
+                net.element(&format!("RTNK{n_tank}"), tank_at, next, s.r_ohm);
+                net.element(&format!("LTNK{n_tank}"), tank_at, next, s.l_h);
+                if s.c_f > 0.0 {
+                    net.element(&format!("CTNK{n_tank}"), tank_at, next, s.c_f);
+                }
+                tank_at = next;
+            }
+        }
+    }
+    Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
+}
+
+fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {
+    let fc = |c: &super::ladder::LadderCell| c.r_ohm / (2.0 * std::f64::consts::PI * c.l_h);
+    let (fmin, fmax) = l.cells.iter().fold((f64::INFINITY, 0.0f64), |(a, b), c| {
+        (a.min(fc(c)), b.max(fc(c)))
+    });
+    net.comment(format!(
+        "skin-effect term k_ac*sqrt(f) realised as {} R||L cells in series (RSKn||LSKn, corners {fmin:.3e} Hz to {fmax:.3e} Hz; zero at DC)",
+        l.cells.len()
+    ));
+    net.comment(format!(
+        "  real part: max |Re Z_ladder - k*sqrt(f)| / (rdc + k*sqrt(f)) = {:.3e} over the band",
+        l.max_real_error_rel
+    ));
+    net.comment(format!(
+        "  added reactance: up to {:.3e} ohm; X/omega (internal inductance) {:.3e} H at the lower band edge, {:.3e} H at the upper",
+        l.max_reactance_ohm, l.internal_inductance_h[0], l.internal_inductance_h[1]
+    ));
+    net.comment(format!(
+        "  complex: max |Z_ladder - k*sqrt(f)| / (rdc + k*sqrt(f)) = {:.3e} (reactance included)",
+        l.max_complex_error_rel
+    ));
+    net.comment(
+        "  (a resistance rising as sqrt(f) in a causal network always brings a reactance of about the same size;",
+    );
+    net.comment(
+        "   relative to |Z| that reactance sets the floor of the whole-subcircuit error below)",
+    );
+    net.comment(format!(
+        "  L0 written as {:e} H: the fitted {:e} H less {:.3e} H of the ladder's mean internal inductance",
+        l.l0_h,
+        model.l0_h,
+        model.l0_h - l.l0_h
+    ));
+}
+
+/// The smallest impedance among the elements (or R‖L cells) in series with the pins at `f`.
+fn smallest_series_impedance(
+    m: &LumpedModel,
+    ladder: Option<&SkinLadder>,
+    l0_h: f64,
+    f: f64,
+) -> f64 {
+    let w = 2.0 * std::f64::consts::PI * f;
+    let mut z = f64::INFINITY;
+    let mut take = |v: f64| {
+        if v > 0.0 {
+            z = z.min(v);
+        }
+    };
+    take(m.rdc_ohm);
+    take(w * m.ls_h);
+    let core = Complex64::new(0.0, w * l0_h);
+    take(match m.rp_ohm {
+        Some(rp) => (core * rp / (core + rp)).norm(),
+        None => core.norm(),
+    });
+    for c in ladder.map_or(&[][..], |l| &l.cells[..]) {
+        take(c.impedance(f).norm());
+    }
+    for s in &m.sections {
+        if s.kind == SectionKind::Parallel {
+            let jw = Complex64::new(0.0, w);
+            let mut y = 1.0 / s.r_ohm + (jw * s.l_h).inv();
+            if s.c_f > 0.0 {
+                y += jw * s.c_f;
+            }
+            take(y.inv().norm());
+        }
+    }
+    z
+}
+
+fn validate(m: &LumpedModel) -> Result<(), ExportError> {
+    check_param("l0_h", m.l0_h, true)?;
+    check_param("rdc_ohm", m.rdc_ohm, false)?;
+    check_param("k_ac_ohm_per_sqrt_hz", m.k_ac_ohm_per_sqrt_hz, false)?;
+    if let Some(rp) = m.rp_ohm {
+        check_param("rp_ohm", rp, true)?;
+    }
+    check_param("cp_f", m.cp_f, false)?;
+    check_param("ls_h", m.ls_h, false)?;
+    for (i, s) in m.sections.iter().enumerate() {
+        let name = |field: &str| format!("sections[{i}].{field}");
+        match s.kind {
+            SectionKind::Series => {
+                check_param(&name("r_ohm"), s.r_ohm, false)?;
+                check_param(&name("l_h"), s.l_h, false)?;
+                check_param(&name("c_f"), s.c_f, true)?;
+            }
+            SectionKind::Parallel => {
+                check_param(&name("r_ohm"), s.r_ohm, true)?;
+                check_param(&name("l_h"), s.l_h, true)?;
+                check_param(&name("c_f"), s.c_f, false)?;
+            }
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::Section;
+
+    fn choke() -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.02,
+            k_ac_ohm_per_sqrt_hz: 2e-5,
+            rp_ohm: Some(50e3),
+            cp_f: 5e-12,
+            ls_h: 2e-9,
+            sections: vec![Section {
+                kind: SectionKind::Series,
+                r_ohm: 3.0,
+                l_h: 40e-9,
+                c_f: 1e-12,
+            }],
+        }
+    }
+
+    #[test]
+    fn a_negative_element_is_refused_with_its_name() {
+        let mut m = choke();
+        m.cp_f = -1e-12;
+        let e = lumped_subcircuit(&m, &ExportContext::for_band(1e3, 1e8)).unwrap_err();
+        assert!(e.to_string().contains("cp_f"), "{e}");
+    }
+
+    #[test]
+    fn an_inverted_band_is_refused() {
+        let e = lumped_subcircuit(&choke(), &ExportContext::for_band(1e8, 1e3)).unwrap_err();
+        assert!(matches!(e, ExportError::InvalidBand(_)), "{e}");
+    }
+
+    #[test]
+    fn the_netlist_states_a_small_error() {
+        let text = lumped_subcircuit(&choke(), &ExportContext::for_band(1e3, 1e8)).unwrap();
+        let bound: f64 = text
+            .lines()
+            .find_map(|l| l.strip_prefix("* ")?.strip_prefix(ERROR_BOUND_KEY))
+            .unwrap()
+            .trim()
+            .parse()
+            .unwrap();
+        println!("{text}");
+        assert!(bound < 1e-2, "{bound}");
+    }
+}

@@ -1,0 +1,385 @@
+//! Figures derived from a fitted model, for any [`ImpedanceModel`] (lumped or rational): resonances by
+//! root finding of Im Z, the Q peak, effective L and Q at chosen frequencies, the naive Cp estimate, the
+//! core corner, and the fit quality against the sweep.
+//!
+//! Resonances come from a fine logarithmic scan of Im Z over the band (at least
+//! [`SCAN_POINTS_PER_DECADE`] points per decade) followed by bisection on ln f inside every bracket
+//! where Im Z changes sign; a pair of crossings closer together than one scan step (a section with a
+//! relative bandwidth below about 0.1 %) can be missed, which is why the step is this fine.
+
+use super::{Derived, PointFigures, Quality};
+use crate::model::ImpedanceModel;
+use crate::sweep::Sweep;
+use std::f64::consts::PI;
+
+/// Density of the resonance scan.
+pub const SCAN_POINTS_PER_DECADE: usize = 2000;
+
+/// Element values a model family knows exactly; what is `None` is estimated (L0) or left out.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct KnownElements {
+    /// Low-frequency inductance; when `None`, Im Z/ω at the bottom of the band is used.
+    pub l0_h: Option<f64>,
+    /// Fitted interwinding capacitance, for the naive-Cp comparison.
+    pub cp_f: Option<f64>,
+    /// Core-loss parallel resistance, for the core corner.
+    pub rp_ohm: Option<f64>,
+}
+
+/// Zero crossings of Im Z inside a band.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Resonances {
+    /// Im Z from + to − (|Z| maxima), increasing.
+    pub parallel_hz: Vec<f64>,
+    /// Im Z from − to + (|Z| minima), increasing.
+    pub series_hz: Vec<f64>,
+}
+
+fn scan_grid(band_hz: [f64; 2]) -> Vec<f64> {
+    let (lo, hi) = (band_hz[0].ln(), band_hz[1].ln());
+    let decades = (hi - lo) / std::f64::consts::LN_10;
+    let n = ((decades * SCAN_POINTS_PER_DECADE as f64).ceil() as usize).max(2000);
+    (0..=n)
+        .map(|i| (lo + (hi - lo) * i as f64 / n as f64).exp())
+        .collect()
+}
+
+fn valid_band(band_hz: [f64; 2]) -> bool {
+    band_hz[0].is_finite() && band_hz[1].is_finite() && band_hz[0] > 0.0 && band_hz[1] > band_hz[0]
+}
+
+/// Bisection on ln f for a sign change of `g` between `a` and `b` (g(a) > 0 ≥ g(b) or the reverse).
+fn bisect(g: &dyn Fn(f64) -> f64, mut a: f64, mut b: f64) -> f64 {
+    let ga_positive = g(a) > 0.0;
+    for _ in 0..200 {
+        let m = (a.ln() * 0.5 + b.ln() * 0.5).exp();
+        if m <= a || m >= b || (b / a - 1.0) < 1e-14 {
+            break;
+        }
+        if (g(m) > 0.0) == ga_positive {
+            a = m;
+        } else {
+            b = m;
+        }
+    }
+    (a.ln() * 0.5 + b.ln() * 0.5).exp()
+}
+
+/// Every sign change of Im Z in the band, refined by bisection.
+pub fn resonances(model: &dyn ImpedanceModel, band_hz: [f64; 2]) -> Resonances {
+    let mut out = Resonances::default();
+    if !valid_band(band_hz) {
+        return out;
+    }
+    let grid = scan_grid(band_hz);
+    let im = |f: f64| model.impedance(f).im;
+    let mut prev_f = grid[0];
+    let mut prev = im(prev_f);
+    for &f in &grid[1..] {
+        let cur = im(f);
+        if prev.is_finite() && cur.is_finite() {
+            if prev > 0.0 && cur <= 0.0 {
+                out.parallel_hz.push(bisect(&im, prev_f, f));
+            } else if prev <= 0.0 && cur > 0.0 {
+                out.series_hz.push(bisect(&im, prev_f, f));
+            }
+        }
+        prev = cur;
+        prev_f = f;
+    }
+    out
+}
+
+/// The self-resonant frequency (first parallel resonance in the band) or, when there is none, the
+/// frequency it lies above (the top of the band): `(srf_hz, srf_above_hz)`.
+pub fn srf(model: &dyn ImpedanceModel, band_hz: [f64; 2]) -> (Option<f64>, Option<f64>) {
+    match resonances(model, band_hz).parallel_hz.first() {
+        Some(&f) => (Some(f), None),
+        None => (None, Some(band_hz[1])),
+    }
+}
+
+/// Effective inductance Im Z/ω, Q = Im Z/Re Z and |Z| at one frequency.
+pub fn point_figures(model: &dyn ImpedanceModel, frequency_hz: f64) -> PointFigures {
+    let z = model.impedance(frequency_hz);
+    PointFigures {
+        frequency_hz,
+        l_eff_h: z.im / (2.0 * PI * frequency_hz),
+        q: z.im / z.re,
+        z_mag_ohm: z.norm(),
+    }
+}
+
+/// The largest Q = Im Z/Re Z in the inductive part of the band below the SRF (or the whole band when the
+/// SRF is above it): `(q, frequency_hz)`. `None` when Q is nowhere positive and finite.
+pub fn q_peak(model: &dyn ImpedanceModel, band_hz: [f64; 2]) -> Option<(f64, f64)> {
+    if !valid_band(band_hz) {
+        return None;
+    }
+    let top = srf(model, band_hz).0.unwrap_or(band_hz[1]);
+    let q = |f: f64| {
+        let z = model.impedance(f);
+        if z.re > 0.0 && z.im > 0.0 && (z.im / z.re).is_finite() {
+            z.im / z.re
+        } else {
+            f64::NEG_INFINITY
+        }
+    };
+    let grid: Vec<f64> = scan_grid([band_hz[0], top.max(band_hz[0] * (1.0 + 1e-9))]);
+    let (mut best_i, mut best_q) = (0usize, f64::NEG_INFINITY);
+    for (i, &f) in grid.iter().enumerate() {
+        let v = q(f);
+        if v > best_q {
+            best_q = v;
+            best_i = i;
+        }
+    }
+    if !best_q.is_finite() {
+        return None;
+    }
+    // Golden-section refinement on ln f between the neighbours of the best grid point.
+    let mut a = grid[best_i.saturating_sub(1)].ln();
+    let mut b = grid[(best_i + 1).min(grid.len() - 1)].ln();
+    let gr = (5f64.sqrt() - 1.0) / 2.0;
+    let mut c = b - gr * (b - a);
+    let mut d = a + gr * (b - a);
+    for _ in 0..80 {
+        if q(c.exp()) > q(d.exp()) {
+            b = d;
+        } else {
+            a = c;
+        }
+        c = b - gr * (b - a);
+        d = a + gr * (b - a);
+    }
+    let f = ((a + b) / 2.0).exp();
+    let qf = q(f);
+    if qf >= best_q {
+        Some((qf, f))
+    } else {
+        Some((best_q, grid[best_i]))
+    }
+}
+
+/// 1/((2π·SRF)²·L0): the one-line Cp estimate from the SRF and the low-frequency inductance.
+pub fn naive_cp_f(srf_hz: f64, l0_h: f64) -> f64 {
+    1.0 / ((2.0 * PI * srf_hz).powi(2) * l0_h)
+}
+
+/// rp/(2π·L0): the corner of the single-pole permeability roll-off that `rp_ohm` is equivalent to.
+pub fn core_corner_hz(rp_ohm: f64, l0_h: f64) -> f64 {
+    rp_ohm / (2.0 * PI * l0_h)
+}
+
+/// All derived figures of a model over its band.
+pub fn derived_figures(
+    model: &dyn ImpedanceModel,
+    band_hz: [f64; 2],
+    report_frequencies_hz: &[f64],
+    known: &KnownElements,
+) -> Derived {
+    let res = resonances(model, band_hz);
+    let srf_hz = res.parallel_hz.first().copied();
+    let l0_h = known
+        .l0_h
+        .or_else(|| Some(point_figures(model, band_hz[0]).l_eff_h))
+        .filter(|l| l.is_finite() && *l > 0.0);
+    let naive_cp = match (srf_hz, l0_h) {
+        (Some(f), Some(l)) => Some(naive_cp_f(f, l)),
+        _ => None,
+    };
+    let naive_cp_error_percent = match (naive_cp, known.cp_f) {
+        (Some(n), Some(c)) if c > 0.0 => Some((n - c) / c * 100.0),
+        _ => None,
+    };
+    let core_corner = match (known.rp_ohm, l0_h) {
+        (Some(rp), Some(l)) => Some(core_corner_hz(rp, l)),
+        _ => None,
+    };
+    let qp = q_peak(model, band_hz);
+    Derived {
+        srf_hz,
+        srf_above_hz: if srf_hz.is_none() {
+            Some(band_hz[1])
+        } else {
+            None
+        },
+        series_resonances_hz: res.series_hz,
+        parallel_resonances_hz: res.parallel_hz,
+        q_peak: qp.map(|p| p.0),
+        q_peak_hz: qp.map(|p| p.1),
+        naive_cp_f: naive_cp,
+        naive_cp_error_percent,
+        core_corner_hz: core_corner,
+        at_frequencies: report_frequencies_hz
+            .iter()
+            .map(|&f| point_figures(model, f))
+            .collect(),
+    }
+}
+
+/// How well a model reproduces a sweep. `parameters` is left 0: the caller knows its parameter count.
+pub fn quality(model: &dyn ImpedanceModel, sweep: &Sweep) -> Quality {
+    let mut chi2 = 0.0;
+    let mut max_rel = 0.0;
+    let mut max_rel_at = sweep.frequency_hz.first().copied().unwrap_or(0.0);
+    for ((&f, &zm), &s) in sweep
+        .frequency_hz
+        .iter()
+        .zip(&sweep.impedance_ohm)
+        .zip(&sweep.sigma_ohm)
+    {
+        let d = model.impedance(f) - zm;
+        chi2 += d.norm_sqr() / (s * s);
+        let rel = d.norm() / zm.norm();
+        if rel > max_rel || !rel.is_finite() {
+            max_rel = rel;
+            max_rel_at = f;
+        }
+    }
+    let n = sweep.frequency_hz.len();
+    Quality {
+        rms_weighted: if n > 0 {
+            (chi2 / (2 * n) as f64).sqrt()
+        } else {
+            0.0
+        },
+        max_relative_error: max_rel,
+        max_relative_error_at_hz: max_rel_at,
+        points: n,
+        parameters: 0,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::LumpedModel;
+    use crate::sweep::Method;
+    use num_complex::Complex64;
+
+    fn ideal_lc(l0_h: f64, cp_f: f64) -> LumpedModel {
+        LumpedModel {
+            l0_h,
+            rdc_ohm: 0.0,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: None,
+            cp_f,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn srf_of_an_ideal_l_parallel_c_matches_thomson() {
+        // Source: Thomson formula f = 1/(2π√(LC)); 10 µH with 5 pF → 22.5079 MHz (shared/TOOLBOX.md).
+        // A tiny Rdc keeps Im Z finite at resonance without moving it measurably.
+        let mut m = ideal_lc(10e-6, 5e-12);
+        m.rdc_ohm = 1e-6;
+        let (srf_hz, above) = srf(&m, [1e3, 1e9]);
+        let srf_hz = srf_hz.expect("resonance inside the band");
+        assert!(above.is_none());
+        assert!(
+            (srf_hz / 22.5079e6 - 1.0).abs() < 5e-6,
+            "srf {srf_hz} Hz vs 22.5079 MHz"
+        );
+        let naive = naive_cp_f(srf_hz, 10e-6);
+        assert!((naive / 5e-12 - 1.0).abs() < 1e-5);
+    }
+
+    #[test]
+    fn srf_above_the_band_is_reported_as_a_lower_bound() {
+        let m = ideal_lc(10e-6, 5e-12);
+        let (srf_hz, above) = srf(&m, [1e3, 10e6]);
+        assert_eq!(srf_hz, None);
+        assert_eq!(above, Some(10e6));
+    }
+
+    #[test]
+    fn a_series_section_gives_a_series_and_a_second_parallel_resonance() {
+        let mut m = ideal_lc(10e-6, 5e-12);
+        m.rdc_ohm = 0.05;
+        m.sections.push(crate::model::Section {
+            kind: crate::model::SectionKind::Series,
+            r_ohm: 2.0,
+            l_h: 50e-9,
+            c_f: 2e-12,
+        });
+        let res = resonances(&m, [1e3, 3e9]);
+        // Series branch alone resonates at 1/(2π√(50 nH·2 pF)) = 503.3 MHz (Thomson).
+        assert_eq!(res.series_hz.len(), 1, "{res:?}");
+        assert!((res.series_hz[0] / 503.29e6 - 1.0).abs() < 0.01, "{res:?}");
+        assert_eq!(res.parallel_hz.len(), 2, "{res:?}");
+        assert!(res.parallel_hz[0] < res.series_hz[0] && res.series_hz[0] < res.parallel_hz[1]);
+    }
+
+    #[test]
+    fn q_peak_of_an_l_with_series_and_parallel_loss_is_at_the_analytic_optimum() {
+        // L with series R and parallel Rp (no Cp): Q = ωL/R for ωL ≪ Rp, and Rp/(ωL) for ωL ≫ Rp;
+        // for small R the peak is at ω = √(R·Rp)/L with Q ≈ ½√(Rp/R) (from the two asymptotes, common
+        // practice, no source). Checked here against Z = R + jωL‖Rp directly.
+        let m = LumpedModel {
+            l0_h: 1e-6,
+            rdc_ohm: 0.01,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: Some(1e4),
+            cp_f: 0.0,
+            ls_h: 0.0,
+            sections: vec![],
+        };
+        let (q, f) = q_peak(&m, [1e3, 1e9]).unwrap();
+        let f_expected = (0.01f64 * 1e4).sqrt() / 1e-6 / (2.0 * PI);
+        assert!((f / f_expected - 1.0).abs() < 0.01, "{f} vs {f_expected}");
+        assert!(
+            (q / (0.5 * (1e4f64 / 0.01).sqrt()) - 1.0).abs() < 0.01,
+            "{q}"
+        );
+    }
+
+    #[test]
+    fn derived_figures_report_core_corner_and_naive_cp_error() {
+        let mut m = ideal_lc(10e-6, 5e-12);
+        m.rdc_ohm = 0.1;
+        m.ls_h = 2e-9;
+        let d = derived_figures(
+            &m,
+            [1e3, 1e9],
+            &[1e6],
+            &KnownElements {
+                l0_h: Some(10e-6),
+                cp_f: Some(5e-12),
+                rp_ohm: Some(1e5),
+            },
+        );
+        assert!(d.srf_hz.is_some());
+        assert!(d.naive_cp_error_percent.unwrap().abs() < 0.1);
+        assert!((d.core_corner_hz.unwrap() - 1e5 / (2.0 * PI * 10e-6)).abs() < 1e-6);
+        // ls with cp: series resonance at 1/(2π√(2 nH·5 pF)) ≈ 1.59 GHz is above the band.
+        assert!(d.series_resonances_hz.is_empty());
+        assert_eq!(d.at_frequencies.len(), 1);
+        let p = d.at_frequencies[0];
+        let z = m.impedance(1e6);
+        assert!((p.l_eff_h - z.im / (2.0 * PI * 1e6)).abs() < 1e-18);
+    }
+
+    #[test]
+    fn quality_of_an_exact_model_is_zero_and_counts_points() {
+        let m = ideal_lc(1e-6, 1e-12);
+        let f: Vec<f64> = (0..30).map(|i| 1e5 * 1.2f64.powi(i)).collect();
+        let z: Vec<Complex64> = f.iter().map(|&f| m.impedance(f)).collect();
+        let mut sweep = Sweep {
+            sigma_ohm: vec![0.01; f.len()],
+            frequency_hz: f,
+            impedance_ohm: z,
+            method: Method::Direct,
+            z0_ohm: 50.0,
+        };
+        let q = quality(&m, &sweep);
+        assert_eq!(q.points, 30);
+        assert!(q.rms_weighted < 1e-9);
+        sweep.impedance_ohm[3] += Complex64::new(0.02, 0.0);
+        let q = quality(&m, &sweep);
+        assert!((q.rms_weighted - (4.0f64 / 60.0).sqrt()).abs() < 1e-9);
+        assert_eq!(q.max_relative_error_at_hz, sweep.frequency_hz[3]);
+    }
+}

@@ -1,0 +1,315 @@
+//! Levenberg–Marquardt as an argmin [`Solver`] (argmin 0.11 has none).
+//!
+//! Works on any problem that gives residuals r(x) ([`Operator`]) and their Jacobian J(x)
+//! ([`Jacobian`]); the cost is χ² = Σ r². Each iteration solves the damped normal equations
+//! `(JᵀJ + λ·D) δ = −Jᵀr` by Cholesky (never an explicit inverse), where D is the running maximum of
+//! diag(JᵀJ) (Marquardt's scaling as in MINPACK, so the step does not depend on parameter units), and
+//! updates λ by Nielsen's rule from the gain ratio. A step that would make the cost non-finite is
+//! rejected like any other bad step, so the state never holds a NaN.
+//!
+//! One argmin iteration is one accepted step; rejected trial steps happen inside it.
+
+use argmin::core::{
+    Error, IterState, Jacobian, KV, Operator, Problem, Solver, State, TerminationReason,
+    TerminationStatus,
+};
+use nalgebra::{DMatrix, DVector};
+
+/// The state the solver runs on: parameters, Jacobian, residuals, cost.
+pub type LmState = IterState<DVector<f64>, (), DMatrix<f64>, (), DVector<f64>, f64>;
+
+/// The message of [`TerminationReason::SolverExit`] when damping grew without any cost decrease.
+pub const NO_PROGRESS: &str = "no further progress";
+
+#[derive(Debug, Clone)]
+pub struct LevenbergMarquardt {
+    /// Converged when a step lowers the cost by less than `ftol`·cost.
+    pub ftol: f64,
+    /// Converged when ‖δ‖ < `xtol`·(‖x‖ + `xtol`).
+    pub xtol: f64,
+    /// Converged when every |gᵢ| / (‖Jᵢ‖·‖r‖) < `gtol` (cosine between residual and a column).
+    pub gtol: f64,
+    /// Largest change of any parameter in one step (the step is shortened to it); for log-parameters
+    /// 5 means a factor e⁵ ≈ 150.
+    pub max_step: f64,
+    /// Trial steps tried per iteration before giving up.
+    pub max_trials: usize,
+    lambda: f64,
+    nu: f64,
+    scale: Option<DVector<f64>>,
+    stop: Option<TerminationReason>,
+}
+
+impl Default for LevenbergMarquardt {
+    fn default() -> Self {
+        LevenbergMarquardt {
+            ftol: 1e-9,
+            xtol: 1e-10,
+            gtol: 1e-10,
+            max_step: 5.0,
+            max_trials: 40,
+            lambda: 1e-3,
+            nu: 2.0,
+            scale: None,
+            stop: None,
+        }
+    }
+}
+
+impl LevenbergMarquardt {
+    /// Starts with damping `lambda` (relative to diag(JᵀJ)); small when the start is near the answer.
+    pub fn with_initial_damping(mut self, lambda: f64) -> Self {
+        self.lambda = lambda;
+        self
+    }
+
+    /// Converges when a step lowers the cost by less than `ftol`·cost or moves less than `xtol`.
+    pub fn with_tolerances(mut self, ftol: f64, xtol: f64) -> Self {
+        self.ftol = ftol;
+        self.xtol = xtol;
+        self
+    }
+}
+
+/// x·y with four accumulators, so the compiler can vectorise it.
+#[inline]
+fn dot(x: &[f64], y: &[f64]) -> f64 {
+    let mut acc = [0.0; 4];
+    let (xc, yc) = (x.chunks_exact(4), y.chunks_exact(4));
+    let tail: f64 = xc
+        .remainder()
+        .iter()
+        .zip(yc.remainder())
+        .map(|(a, b)| a * b)
+        .sum();
+    for (a, b) in xc.zip(yc) {
+        for i in 0..4 {
+            acc[i] += a[i] * b[i];
+        }
+    }
+    acc[0] + acc[1] + acc[2] + acc[3] + tail
+}
+
+/// JᵀJ and Jᵀr from the contiguous columns of J.
+pub fn normal_equations(j: &DMatrix<f64>, r: &DVector<f64>) -> (DMatrix<f64>, DVector<f64>) {
+    let (m, n) = j.shape();
+    let data = j.as_slice();
+    let col = |c: usize| &data[c * m..(c + 1) * m];
+    let mut jtj = DMatrix::zeros(n, n);
+    let mut g = DVector::zeros(n);
+    for a in 0..n {
+        g[a] = dot(col(a), r.as_slice());
+        for b in 0..=a {
+            let v = dot(col(a), col(b));
+            jtj[(a, b)] = v;
+            jtj[(b, a)] = v;
+        }
+    }
+    (jtj, g)
+}
+
+fn non_finite(what: &str) -> Error {
+    Error::msg(format!("the {what} is not finite at the starting point"))
+}
+
+impl<O> Solver<O, LmState> for LevenbergMarquardt
+where
+    O: Operator<Param = DVector<f64>, Output = DVector<f64>>
+        + Jacobian<Param = DVector<f64>, Jacobian = DMatrix<f64>>,
+{
+    fn name(&self) -> &str {
+        "Levenberg-Marquardt"
+    }
+
+    fn init(
+        &mut self,
+        problem: &mut Problem<O>,
+        state: LmState,
+    ) -> Result<(LmState, Option<KV>), Error> {
+        let x = state
+            .get_param()
+            .cloned()
+            .ok_or_else(|| Error::msg("Levenberg-Marquardt needs a starting point"))?;
+        let r = problem.apply(&x)?;
+        let cost = r.norm_squared();
+        if !cost.is_finite() {
+            return Err(non_finite("cost"));
+        }
+        let j = problem.jacobian(&x)?;
+        if j.iter().any(|v| !v.is_finite()) {
+            return Err(non_finite("Jacobian"));
+        }
+        self.scale = None;
+        self.stop = None;
+        self.nu = 2.0;
+        Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None))
+    }
+
+    fn next_iter(
+        &mut self,
+        problem: &mut Problem<O>,
+        mut state: LmState,
+    ) -> Result<(LmState, Option<KV>), Error> {
+        let x = state.take_param().expect("init sets the parameters");
+        let r = state.take_residuals().expect("init sets the residuals");
+        let j = state.take_jacobian().expect("init sets the Jacobian");
+        let cost = state.get_cost();
+        let n = x.len();
+
+        let (jtj, g) = normal_equations(&j, &r);
+        let scale = self.scale.get_or_insert_with(|| DVector::zeros(n));
+        for i in 0..n {
+            scale[i] = scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
+        }
+        let r_norm = cost.sqrt();
+        let g_cos = (0..n)
+            .map(|i| g[i].abs() / (jtj[(i, i)].sqrt() * r_norm).max(f64::MIN_POSITIVE))
+            .fold(0.0, f64::max);
+        if cost == 0.0 || g_cos < self.gtol {
+            self.stop = Some(TerminationReason::SolverConverged);
+            return Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None));
+        }
+
+        let neg_g = -&g;
+        let mut a = jtj.clone();
+        for _ in 0..self.max_trials {
+            a.copy_from(&jtj);
+            for i in 0..n {
+                a[(i, i)] += self.lambda * scale[i];
+            }
+            let Some(chol) = a.clone().cholesky() else {
+                self.lambda *= self.nu;
+                self.nu *= 2.0;
+                continue;
+            };
+            let mut delta = chol.solve(&neg_g);
+            let biggest = delta.amax();
+            if !biggest.is_finite() {
+                self.lambda *= self.nu;
+                self.nu *= 2.0;
+                continue;
+            }
+            if biggest > self.max_step {
+                delta *= self.max_step / biggest;
+            }
+            // Predicted decrease of χ² from the linear model: −(2δᵀg + δᵀJᵀJδ).
+            let predicted = -(2.0 * delta.dot(&g) + delta.dot(&(&jtj * &delta)));
+            let x_new = &x + &delta;
+            let r_new = problem.apply(&x_new)?;
+            let cost_new = r_new.norm_squared();
+            let rho = (cost - cost_new) / predicted;
+            if cost_new.is_finite() && cost_new < cost && predicted > 0.0 && rho > 1e-4 {
+                let j_new = problem.jacobian(&x_new)?;
+                // A non-finite entry makes its column's squared norm non-finite.
+                let finite = (0..n).all(|c| {
+                    let col = j_new.column(c);
+                    col.norm_squared().is_finite()
+                });
+                if finite {
+                    self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
+                    self.lambda = self.lambda.max(1e-15);
+                    self.nu = 2.0;
+                    if cost - cost_new <= self.ftol * cost
+                        || delta.norm() <= self.xtol * (x.norm() + self.xtol)
+                    {
+                        self.stop = Some(TerminationReason::SolverConverged);
+                    }
+                    return Ok((
+                        state
+                            .param(x_new)
+                            .residuals(r_new)
+                            .jacobian(j_new)
+                            .cost(cost_new),
+                        None,
+                    ));
+                }
+            }
+            self.lambda *= self.nu;
+            self.nu *= 2.0;
+            if self.lambda > 1e30 {
+                break;
+            }
+        }
+        // Damping exhausted: at a minimum to rounding when the gradient is orthogonal to the residual.
+        self.stop = Some(if g_cos < 1e-6 {
+            TerminationReason::SolverConverged
+        } else {
+            TerminationReason::SolverExit(NO_PROGRESS.into())
+        });
+        Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None))
+    }
+
+    fn terminate(&mut self, _state: &LmState) -> TerminationStatus {
+        match &self.stop {
+            Some(reason) => TerminationStatus::Terminated(reason.clone()),
+            None => TerminationStatus::NotTerminated,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use argmin::core::Executor;
+
+    /// y = a·exp(−b·t) sampled without noise: the solver must find (a, b) exactly.
+    struct Decay {
+        t: Vec<f64>,
+        y: Vec<f64>,
+    }
+
+    impl Operator for Decay {
+        type Param = DVector<f64>;
+        type Output = DVector<f64>;
+        fn apply(&self, p: &DVector<f64>) -> Result<DVector<f64>, Error> {
+            Ok(DVector::from_iterator(
+                self.t.len(),
+                self.t
+                    .iter()
+                    .zip(&self.y)
+                    .map(|(t, y)| p[0] * (-p[1] * t).exp() - y),
+            ))
+        }
+    }
+
+    impl Jacobian for Decay {
+        type Param = DVector<f64>;
+        type Jacobian = DMatrix<f64>;
+        fn jacobian(&self, p: &DVector<f64>) -> Result<DMatrix<f64>, Error> {
+            Ok(DMatrix::from_fn(self.t.len(), 2, |i, k| {
+                let e = (-p[1] * self.t[i]).exp();
+                if k == 0 { e } else { -p[0] * self.t[i] * e }
+            }))
+        }
+    }
+
+    #[test]
+    fn recovers_an_exponential_decay_from_a_poor_start() {
+        let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
+        let y = t.iter().map(|t| 3.0 * (-1.7 * t).exp()).collect();
+        let res = Executor::new(Decay { t, y }, LevenbergMarquardt::default())
+            .configure(|s| s.param(DVector::from_vec(vec![1.0, 0.1])).max_iters(200))
+            .run()
+            .unwrap();
+        let p = res.state().get_best_param().unwrap();
+        assert!(
+            (p[0] - 3.0).abs() < 1e-9 && (p[1] - 1.7).abs() < 1e-9,
+            "{p}"
+        );
+        assert!(res.state().get_best_cost() < 1e-18);
+        assert!(matches!(
+            res.state().get_termination_reason(),
+            Some(TerminationReason::SolverConverged)
+        ));
+    }
+
+    #[test]
+    fn a_start_where_the_cost_is_not_finite_is_an_error_not_a_nan() {
+        let t = vec![0.0, 1.0, 2.0];
+        let y = vec![1.0, 0.5, 0.25];
+        let res = Executor::new(Decay { t, y }, LevenbergMarquardt::default())
+            .configure(|s| s.param(DVector::from_vec(vec![1.0, -1e6])).max_iters(10))
+            .run();
+        assert!(res.is_err());
+    }
+}

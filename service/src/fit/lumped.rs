@@ -1,0 +1,810 @@
+//! The lumped fit: starting values, LM per candidate structure, model selection, uncertainty, report.
+//!
+//! Model selection. Stage A fits every assignment of section kinds (series branch or parallel tank) to
+//! the first 0..=`max_sections` resonance pairs the curve shows, with all of rp, k_ac and ls present;
+//! a structure with n sections starts from the solution with its first n − 1. Stage B takes the best
+//! section assignment and tries every subset of {rp, k_ac, ls}, starting from the stage-A solution.
+//! The criterion is BIC with the noise scale estimated from the fit,
+//! `M·ln(χ²/M) + k·ln(M)` (M residuals, k parameters), so a sweep whose stated σ is off by a constant
+//! factor still selects the same model; every candidate is recorded.
+//!
+//! DCR reading: a prior residual `(rdc − reading)/σ_reading` in the least-squares problem (not a fixed
+//! value), so rdc keeps the reading's uncertainty and a reading that contradicts the sweep shows up
+//! in the residuals instead of distorting the other parameters silently.
+//!
+//! Uncertainty: the covariance of θ = ln p is `s²·(JᵀJ)⁻¹` at the solution, computed from the symmetric
+//! eigen-decomposition of the column-scaled JᵀJ (no explicit inverse of an ill-conditioned matrix),
+//! with `s² = max(1, χ²/(M − k))`: when the residuals are larger than the stated σ the spread is
+//! widened to match them; when they are smaller the stated σ is trusted (no shrinking). 1σ of p is
+//! `p·σ_θ`. A parameter is *not identifiable* when its relative 1σ exceeds
+//! [`NOT_IDENTIFIABLE_RELATIVE_SIGMA`] or it takes part (|eigenvector component| > 0.3) in a direction
+//! whose eigenvalue is below 1e-12 of the largest; its uncertainty is then `None`.
+
+use super::derived::{self, KnownElements};
+use super::initial::{self, Guess};
+use super::lm::{LevenbergMarquardt, LmState, NO_PROGRESS};
+use super::problem::{FitData, LumpedProblem};
+use super::{
+    Candidate, Correlation, FitControl, FitError, FitOptions, FitReport, LumpedUncertainty,
+    SectionUncertainty, Termination,
+};
+use crate::model::lumped::{Param, Structure};
+use crate::model::{FittedModel, LumpedModel, SectionKind};
+use crate::sweep::Sweep;
+use argmin::core::observers::{Observe, ObserverMode};
+use argmin::core::{Error, Executor, KV, State, TerminationReason};
+use nalgebra::{DMatrix, DVector, SymmetricEigen};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+/// Relative 1σ above which a parameter is reported as not identifiable.
+pub const NOT_IDENTIFIABLE_RELATIVE_SIGMA: f64 = 0.5;
+
+/// Result of fitting one structure.
+#[derive(Debug, Clone)]
+pub struct StructureFit {
+    pub structure: Structure,
+    pub theta: Vec<f64>,
+    /// χ² = Σ r² (weighted residuals, with the DCR prior when given).
+    pub cost: f64,
+    pub iterations: u64,
+    pub termination: Termination,
+    pub jacobian: DMatrix<f64>,
+}
+
+impl StructureFit {
+    pub fn model(&self) -> LumpedModel {
+        self.structure.unpack(&self.theta)
+    }
+}
+
+struct CancelObserver(Arc<AtomicBool>);
+
+impl Observe<LmState> for CancelObserver {
+    fn observe_iter(&mut self, _state: &LmState, _kv: &KV) -> Result<(), Error> {
+        if self.0.load(Ordering::Relaxed) {
+            Err(Error::msg("cancelled"))
+        } else {
+            Ok(())
+        }
+    }
+}
+
+fn cancelled(control: &FitControl) -> bool {
+    control
+        .cancel
+        .as_ref()
+        .is_some_and(|c| c.load(Ordering::Relaxed))
+}
+
+/// Checks the sweep and options and prepares the data every candidate shares.
+pub fn prepare(sweep: &Sweep, options: &FitOptions) -> Result<FitData, FitError> {
+    let n = sweep.frequency_hz.len();
+    if n < 20 {
+        return Err(FitError::TooFewPoints(n));
+    }
+    if sweep.impedance_ohm.len() != n || sweep.sigma_ohm.len() != n {
+        return Err(FitError::InvalidOptions(format!(
+            "the sweep has {n} frequencies but {} impedances and {} uncertainties",
+            sweep.impedance_ohm.len(),
+            sweep.sigma_ohm.len()
+        )));
+    }
+    for k in 0..n {
+        let f = sweep.frequency_hz[k];
+        if !(f.is_finite() && f > 0.0) || (k > 0 && f <= sweep.frequency_hz[k - 1]) {
+            return Err(FitError::InvalidOptions(format!(
+                "frequency {k} ({f} Hz) is not positive, finite and increasing"
+            )));
+        }
+        let z = sweep.impedance_ohm[k];
+        if !(z.re.is_finite() && z.im.is_finite()) {
+            return Err(FitError::NonFinite(format!(
+                "the impedance at {f} Hz is not finite"
+            )));
+        }
+        let s = sweep.sigma_ohm[k];
+        if !(s.is_finite() && s > 0.0) {
+            return Err(FitError::InvalidOptions(format!(
+                "the uncertainty at {f} Hz is {s} ohm; it must be positive and finite"
+            )));
+        }
+    }
+    if options.max_sections > 3 {
+        return Err(FitError::InvalidOptions(format!(
+            "max_sections is {}; at most 3",
+            options.max_sections
+        )));
+    }
+    if options.max_iterations == 0 || options.time_limit_s.is_nan() || options.time_limit_s <= 0.0 {
+        return Err(FitError::InvalidOptions(
+            "max_iterations and time_limit_s must be positive".into(),
+        ));
+    }
+    let dcr_prior = match options.dcr {
+        Some(d) => {
+            let sigma = d.sigma_ohm.unwrap_or(0.005 * d.value_ohm + 1e-3);
+            if !(d.value_ohm.is_finite() && d.value_ohm > 0.0 && sigma.is_finite() && sigma > 0.0) {
+                return Err(FitError::InvalidOptions(format!(
+                    "the DCR reading {} ohm (σ {sigma} ohm) must be positive and finite",
+                    d.value_ohm
+                )));
+            }
+            Some((d.value_ohm, sigma))
+        }
+        None => None,
+    };
+    // An inductor is inductive at the bottom of its band.
+    let low = (n / 20).max(3);
+    let inductive = sweep.impedance_ohm[..low]
+        .iter()
+        .filter(|z| z.im > 0.0)
+        .count();
+    if inductive * 2 <= low {
+        return Err(FitError::NotAnInductor(format!(
+            "Im Z is not positive over the lowest {low} points (from {} Hz)",
+            sweep.frequency_hz[0]
+        )));
+    }
+    Ok(FitData {
+        frequency_hz: sweep.frequency_hz.clone(),
+        sqrt_f: sweep.frequency_hz.iter().map(|f| f.sqrt()).collect(),
+        z: sweep.impedance_ohm.clone(),
+        inv_sigma: sweep.sigma_ohm.iter().map(|s| 1.0 / s).collect(),
+        dcr_prior,
+    })
+}
+
+fn termination_of(reason: Option<&TerminationReason>) -> Termination {
+    match reason {
+        Some(TerminationReason::MaxItersReached) => Termination::MaxIterations,
+        Some(TerminationReason::Timeout) => Termination::TimeLimit,
+        Some(TerminationReason::SolverExit(m)) if m == NO_PROGRESS => {
+            Termination::NoFurtherProgress
+        }
+        _ => Termination::Converged,
+    }
+}
+
+/// Points above which [`fit_structure`] first converges on a thinned copy of the sweep.
+pub const COARSE_ABOVE_POINTS: usize = 600;
+/// Points of the thinned copy.
+pub const COARSE_POINTS: usize = 200;
+
+struct LmRun {
+    theta: Vec<f64>,
+    cost: f64,
+    iterations: u64,
+    termination: Termination,
+    jacobian: DMatrix<f64>,
+}
+
+fn run_lm(
+    data: &FitData,
+    structure: &Structure,
+    solver: LevenbergMarquardt,
+    theta0: Vec<f64>,
+    max_iterations: u64,
+    time_limit: Duration,
+    control: &FitControl,
+) -> Result<LmRun, FitError> {
+    let problem = LumpedProblem { data, structure };
+    let mut exec = Executor::new(problem, solver)
+        .configure(|s| s.param(DVector::from_vec(theta0)).max_iters(max_iterations))
+        .timeout(time_limit);
+    if let Some(flag) = &control.cancel {
+        exec = exec.add_observer(CancelObserver(flag.clone()), ObserverMode::Always);
+    }
+    let res = exec.run().map_err(|e| {
+        if cancelled(control) {
+            FitError::Cancelled
+        } else {
+            FitError::NonFinite(format!("{}: {e}", structure.label()))
+        }
+    })?;
+    let mut state = res.state;
+    let termination = termination_of(state.get_termination_reason());
+    let iterations = state.get_iter();
+    let cost = state.get_cost();
+    // The solver only accepts steps that lower the cost, so the current point is the best one and
+    // its Jacobian is in the state.
+    let (Some(theta), Some(jacobian)) = (state.take_param(), state.take_jacobian()) else {
+        return Err(FitError::NonFinite(
+            "the solver returned no parameters".into(),
+        ));
+    };
+    if !cost.is_finite() || !jacobian.norm_squared().is_finite() {
+        return Err(FitError::NonFinite(structure.label()));
+    }
+    Ok(LmRun {
+        theta: theta.as_slice().to_vec(),
+        cost,
+        iterations,
+        termination,
+        jacobian,
+    })
+}
+
+/// Every `stride`-th point of the sweep (the DCR prior kept): a cheap problem with nearly the same
+/// optimum, used to get close before the full-data iterations.
+fn thinned(data: &FitData, stride: usize) -> FitData {
+    let pick = |v: &Vec<f64>| v.iter().step_by(stride).copied().collect::<Vec<_>>();
+    FitData {
+        frequency_hz: pick(&data.frequency_hz),
+        sqrt_f: pick(&data.sqrt_f),
+        z: data.z.iter().step_by(stride).copied().collect(),
+        inv_sigma: pick(&data.inv_sigma),
+        dcr_prior: data.dcr_prior,
+    }
+}
+
+/// Fits one structure from a starting model (which must have every element the structure has).
+///
+/// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
+/// evenly picked points; LM then continues on the full sweep from there, so the result is the
+/// full-data optimum (the thinning only saves iterations on the full data).
+pub fn fit_structure(
+    data: &FitData,
+    structure: &Structure,
+    start: &LumpedModel,
+    max_iterations: u64,
+    time_limit: Duration,
+    control: &FitControl,
+) -> Result<StructureFit, FitError> {
+    let started = Instant::now();
+    let mut theta = structure.pack(start);
+    if theta.iter().any(|t| !t.is_finite()) {
+        return Err(FitError::NonFinite(format!(
+            "the starting values of {} are not all positive",
+            structure.label()
+        )));
+    }
+    let n = data.frequency_hz.len();
+    let mut iterations = 0;
+    if n > COARSE_ABOVE_POINTS {
+        let coarse = thinned(data, n.div_ceil(COARSE_POINTS));
+        // Only a starting point: a loose tolerance is enough.
+        let solver = LevenbergMarquardt::default().with_tolerances(1e-6, 1e-6);
+        match run_lm(
+            &coarse,
+            structure,
+            solver,
+            theta.clone(),
+            max_iterations,
+            time_limit,
+            control,
+        ) {
+            Ok(r) => {
+                theta = r.theta;
+                iterations = r.iterations;
+            }
+            Err(FitError::Cancelled) => return Err(FitError::Cancelled),
+            Err(_) => {}
+        }
+    }
+    let remaining = time_limit.saturating_sub(started.elapsed());
+    // After the coarse stage the start is close: begin nearly Gauss–Newton.
+    let solver = if iterations > 0 {
+        LevenbergMarquardt::default().with_initial_damping(1e-8)
+    } else {
+        LevenbergMarquardt::default()
+    };
+    let fine = run_lm(
+        data,
+        structure,
+        solver,
+        theta,
+        max_iterations.saturating_sub(iterations).max(1),
+        remaining.max(Duration::from_millis(1)),
+        control,
+    )?;
+    Ok(StructureFit {
+        structure: structure.clone(),
+        theta: fine.theta,
+        cost: fine.cost,
+        iterations: iterations + fine.iterations,
+        termination: fine.termination,
+        jacobian: fine.jacobian,
+    })
+}
+
+fn bic(cost: f64, residuals: usize, parameters: usize) -> f64 {
+    let m = residuals as f64;
+    m * (cost.max(f64::MIN_POSITIVE) / m).ln() + parameters as f64 * m.ln()
+}
+
+/// The starting model for a structure: `prefix` (a fitted model with fewer sections, or the guess),
+/// plus sections placed on the curve's resonance pairs.
+fn start_for(kinds: &[SectionKind], prefix: &LumpedModel, guess: &Guess) -> LumpedModel {
+    let mut m = prefix.clone();
+    m.sections.truncate(kinds.len());
+    for (i, &kind) in kinds.iter().enumerate().skip(m.sections.len()) {
+        let (section, cp_f) = initial::section_for(kind, guess.pairs[i], m.cp_f);
+        m.sections.push(section);
+        m.cp_f = cp_f;
+    }
+    m
+}
+
+/// Uncertainty, identifiability and correlation of a structure fit.
+pub struct Spread {
+    pub sigma_theta: Vec<Option<f64>>,
+    pub not_identifiable: Vec<String>,
+    pub correlation: Correlation,
+}
+
+pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
+    let n = fit.structure.len();
+    let params = fit.structure.params();
+    let jtj = super::lm::normal_equations(&fit.jacobian, &DVector::zeros(fit.jacobian.nrows())).0;
+    let d: Vec<f64> = (0..n)
+        .map(|i| jtj[(i, i)].sqrt().max(f64::MIN_POSITIVE))
+        .collect();
+    let scaled = DMatrix::from_fn(n, n, |i, j| jtj[(i, j)] / (d[i] * d[j]));
+    let eig = SymmetricEigen::new(scaled);
+    let lmax = eig.eigenvalues.amax();
+    let dof = residuals.saturating_sub(n).max(1) as f64;
+    let s2 = (fit.cost / dof).max(1.0);
+    let mut singular = vec![false; n];
+    let mut cov = DMatrix::zeros(n, n);
+    for k in 0..n {
+        let lambda = eig.eigenvalues[k];
+        let v = eig.eigenvectors.column(k);
+        if lambda.is_nan() || lambda <= 1e-12 * lmax {
+            for i in 0..n {
+                if v[i].abs() > 0.3 {
+                    singular[i] = true;
+                }
+            }
+            continue;
+        }
+        cov += (v * v.transpose()) / lambda;
+    }
+    let mut sigma_theta = vec![None; n];
+    let mut not_identifiable = Vec::new();
+    for i in 0..n {
+        let var = cov[(i, i)] * s2 / (d[i] * d[i]);
+        let s = var.sqrt();
+        if singular[i] || !s.is_finite() || s > NOT_IDENTIFIABLE_RELATIVE_SIGMA {
+            not_identifiable.push(params[i].name());
+        } else {
+            sigma_theta[i] = Some(s);
+        }
+    }
+    let matrix = (0..n)
+        .map(|i| {
+            (0..n)
+                .map(|j| {
+                    if i == j {
+                        return 1.0;
+                    }
+                    let den = (cov[(i, i)] * cov[(j, j)]).sqrt();
+                    let c = cov[(i, j)] / den;
+                    if c.is_finite() {
+                        c.clamp(-1.0, 1.0)
+                    } else {
+                        0.0
+                    }
+                })
+                .collect()
+        })
+        .collect();
+    Spread {
+        sigma_theta,
+        not_identifiable,
+        correlation: Correlation {
+            names: params.iter().map(Param::name).collect(),
+            matrix,
+        },
+    }
+}
+
+fn uncertainty_of(fit: &StructureFit, spread: &Spread) -> LumpedUncertainty {
+    let m = fit.model();
+    let s = &fit.structure;
+    let get = |p: Param, value: f64| {
+        s.index(p)
+            .and_then(|i| spread.sigma_theta[i])
+            .map(|st| st * value)
+    };
+    LumpedUncertainty {
+        l0_h: get(Param::L0, m.l0_h),
+        rdc_ohm: get(Param::Rdc, m.rdc_ohm),
+        k_ac_ohm_per_sqrt_hz: get(Param::KAc, m.k_ac_ohm_per_sqrt_hz),
+        rp_ohm: m.rp_ohm.and_then(|rp| get(Param::Rp, rp)),
+        cp_f: get(Param::Cp, m.cp_f),
+        ls_h: get(Param::Ls, m.ls_h),
+        sections: m
+            .sections
+            .iter()
+            .enumerate()
+            .map(|(i, sec)| SectionUncertainty {
+                r_ohm: get(Param::SectionR(i), sec.r_ohm),
+                l_h: get(Param::SectionL(i), sec.l_h),
+                c_f: get(Param::SectionC(i), sec.c_f),
+            })
+            .collect(),
+    }
+}
+
+/// Every assignment of kinds to `n` sections.
+fn kind_assignments(n: usize) -> Vec<Vec<SectionKind>> {
+    (0..1usize << n)
+        .map(|bits| {
+            (0..n)
+                .map(|i| {
+                    if bits >> i & 1 == 0 {
+                        SectionKind::Series
+                    } else {
+                        SectionKind::Parallel
+                    }
+                })
+                .collect()
+        })
+        .collect()
+}
+
+/// The whole lumped fit of one sweep.
+pub fn fit_lumped(
+    sweep: &Sweep,
+    options: &FitOptions,
+    control: &FitControl,
+) -> Result<FitReport, FitError> {
+    let started = Instant::now();
+    let deadline = started + Duration::from_secs_f64(options.time_limit_s.min(1e6));
+    let data = prepare(sweep, options)?;
+    let guess = initial::guess(&data);
+    let residuals = data.residual_count();
+    let max_sec = options.max_sections.min(guess.pairs.len());
+
+    let stage_a: Vec<Vec<SectionKind>> = (0..=max_sec).flat_map(kind_assignments).collect();
+    let total = (stage_a.len() + 7) as f64;
+    let mut done = 0usize;
+    let report_progress = |done: usize| {
+        if let Some(p) = &control.progress {
+            p((done as f64 / total).min(1.0));
+        }
+    };
+
+    let mut fits: Vec<StructureFit> = Vec::new();
+    let mut ran_out_of_time = false;
+    let mut last_error = None;
+    let mut run = |structure: &Structure,
+                   start: &LumpedModel,
+                   fits: &mut Vec<StructureFit>|
+     -> Result<Option<usize>, FitError> {
+        if cancelled(control) {
+            return Err(FitError::Cancelled);
+        }
+        let now = Instant::now();
+        // Out of time: skip the remaining candidates, but always fit the first one (for at least a
+        // millisecond) so the caller gets a model whose termination says TimeLimit.
+        if now >= deadline {
+            ran_out_of_time = true;
+            if !fits.is_empty() {
+                return Ok(None);
+            }
+        }
+        let budget = deadline
+            .saturating_duration_since(now)
+            .max(Duration::from_millis(1));
+        match fit_structure(
+            &data,
+            structure,
+            start,
+            options.max_iterations,
+            budget,
+            control,
+        ) {
+            Ok(f) => {
+                fits.push(f);
+                Ok(Some(fits.len() - 1))
+            }
+            Err(FitError::Cancelled) => Err(FitError::Cancelled),
+            Err(e) => {
+                last_error = Some(e);
+                Ok(None)
+            }
+        }
+    };
+
+    // Stage A: sections, everything else present.
+    let mut by_kinds: Vec<(Vec<SectionKind>, usize)> = Vec::new();
+    for kinds in &stage_a {
+        let prefix = kinds
+            .split_last()
+            .and_then(|(_, head)| by_kinds.iter().find(|(k, _)| k == head))
+            .map(|(_, i)| fits[*i].model())
+            .unwrap_or_else(|| guess.base.clone());
+        let start = start_for(kinds, &prefix, &guess);
+        let structure = Structure::of(&start);
+        if let Some(i) = run(&structure, &start, &mut fits)? {
+            by_kinds.push((kinds.clone(), i));
+        }
+        done += 1;
+        report_progress(done);
+    }
+    let best_a = (0..fits.len()).min_by(|&a, &b| {
+        bic(fits[a].cost, residuals, fits[a].structure.len()).total_cmp(&bic(
+            fits[b].cost,
+            residuals,
+            fits[b].structure.len(),
+        ))
+    });
+    // Stage B: subsets of {rp, k_ac, ls} on the best section assignment.
+    if let Some(ia) = best_a {
+        let full = fits[ia].model();
+        for mask in 0..7u8 {
+            let mut start = full.clone();
+            if mask & 1 == 0 {
+                start.rp_ohm = None;
+            }
+            if mask & 2 == 0 {
+                start.k_ac_ohm_per_sqrt_hz = 0.0;
+            }
+            if mask & 4 == 0 {
+                start.ls_h = 0.0;
+            }
+            let structure = Structure::of(&start);
+            run(&structure, &start, &mut fits)?;
+            done += 1;
+            report_progress(done);
+        }
+    }
+    if fits.is_empty() {
+        return Err(last_error
+            .unwrap_or_else(|| FitError::NonFinite("no candidate model could be fitted".into())));
+    }
+    let bics: Vec<f64> = fits
+        .iter()
+        .map(|f| bic(f.cost, residuals, f.structure.len()))
+        .collect();
+    let chosen = (0..fits.len())
+        .min_by(|&a, &b| bics[a].total_cmp(&bics[b]))
+        .expect("at least one fit");
+    let fit = &fits[chosen];
+    let model = fit.model();
+    let sp = spread(fit, residuals);
+    let uncertainty = uncertainty_of(fit, &sp);
+    let band_hz = [
+        sweep.frequency_hz[0],
+        *sweep.frequency_hz.last().expect("checked length"),
+    ];
+    let derived = derived::derived_figures(
+        &model,
+        band_hz,
+        &options.report_frequencies_hz,
+        &KnownElements {
+            l0_h: Some(model.l0_h),
+            cp_f: Some(model.cp_f),
+            rp_ohm: model.rp_ohm,
+        },
+    );
+    let mut quality = derived::quality(&model, sweep);
+    quality.parameters = fit.structure.len();
+    let termination = if ran_out_of_time && fit.termination != Termination::MaxIterations {
+        Termination::TimeLimit
+    } else {
+        fit.termination
+    };
+    let candidates = fits
+        .iter()
+        .zip(&bics)
+        .enumerate()
+        .map(|(i, (f, &b))| Candidate {
+            label: f.structure.label(),
+            parameters: f.structure.len(),
+            cost: f.cost,
+            bic: b,
+            chosen: i == chosen,
+        })
+        .collect();
+    let iterations = fit.iterations;
+    if let Some(p) = &control.progress {
+        p(1.0);
+    }
+    Ok(FitReport {
+        engine_version: super::ENGINE_VERSION.to_string(),
+        model: FittedModel::Lumped(model),
+        uncertainty: Some(uncertainty),
+        not_identifiable: sp.not_identifiable,
+        correlation: Some(sp.correlation),
+        derived,
+        quality,
+        termination,
+        iterations,
+        candidates,
+        band_hz,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::ImpedanceModel;
+    use crate::sweep::Method;
+    use num_complex::Complex64;
+
+    /// Synthetic sweep from an invented model with deterministic pseudo-random noise of σ per point.
+    pub(crate) fn synthetic(
+        model: &LumpedModel,
+        f_lo: f64,
+        f_hi: f64,
+        n: usize,
+        seed: u64,
+    ) -> Sweep {
+        let mut state = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
+        let mut uniform = move || {
+            state ^= state << 13;
+            state ^= state >> 7;
+            state ^= state << 17;
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let mut gauss = move || {
+            let (u1, u2) = (uniform().max(1e-300), uniform());
+            (-2.0 * u1.ln()).sqrt() * (2.0 * std::f64::consts::PI * u2).cos()
+        };
+        let frequency_hz: Vec<f64> = (0..n)
+            .map(|i| f_lo * (f_hi / f_lo).powf(i as f64 / (n - 1) as f64))
+            .collect();
+        let mut z = Vec::new();
+        let mut sigma = Vec::new();
+        for &f in &frequency_hz {
+            let z0 = model.impedance(f);
+            let s = 2e-3 * z0.norm() + 1e-3;
+            z.push(z0 + Complex64::new(s * gauss(), s * gauss()));
+            sigma.push(s);
+        }
+        Sweep {
+            frequency_hz,
+            impedance_ohm: z,
+            sigma_ohm: sigma,
+            method: Method::Direct,
+            z0_ohm: 50.0,
+        }
+    }
+
+    fn choke() -> LumpedModel {
+        LumpedModel {
+            l0_h: 47e-6,
+            rdc_ohm: 0.12,
+            k_ac_ohm_per_sqrt_hz: 3e-4,
+            rp_ohm: Some(60e3),
+            cp_f: 4.2e-12,
+            ls_h: 3e-9,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn fits_a_synthetic_choke() {
+        let truth = choke();
+        let sweep = synthetic(&truth, 1e3, 200e6, 801, 7);
+        let rep = fit_lumped(&sweep, &FitOptions::default(), &FitControl::default()).unwrap();
+        let FittedModel::Lumped(m) = &rep.model else {
+            panic!()
+        };
+        assert!((m.l0_h / truth.l0_h - 1.0).abs() < 5e-3);
+        assert!((m.cp_f / truth.cp_f - 1.0).abs() < 1e-2);
+        assert_eq!(rep.termination, Termination::Converged);
+        assert!(rep.candidates.iter().any(|c| c.chosen));
+    }
+}
+
+#[cfg(test)]
+mod control_tests {
+    use super::tests::synthetic;
+    use super::*;
+    use std::sync::Mutex;
+
+    fn choke() -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.05,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: Some(20e3),
+            cp_f: 3e-12,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn a_set_cancel_flag_cancels() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 1);
+        let flag = Arc::new(AtomicBool::new(true));
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: None,
+        };
+        assert_eq!(
+            fit_lumped(&sweep, &FitOptions::default(), &control),
+            Err(FitError::Cancelled)
+        );
+    }
+
+    #[test]
+    fn cancelling_from_the_progress_hook_stops_the_remaining_candidates() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 2);
+        let flag = Arc::new(AtomicBool::new(false));
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let (f2, s2) = (flag.clone(), seen.clone());
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: Some(Arc::new(move |p| {
+                s2.lock().unwrap().push(p);
+                f2.store(true, Ordering::Relaxed);
+            })),
+        };
+        let r = fit_lumped(&sweep, &FitOptions::default(), &control);
+        assert_eq!(r, Err(FitError::Cancelled));
+        assert_eq!(seen.lock().unwrap().len(), 1);
+    }
+
+    #[test]
+    fn progress_rises_to_one() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 3);
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let s2 = seen.clone();
+        let control = FitControl {
+            cancel: None,
+            progress: Some(Arc::new(move |p| s2.lock().unwrap().push(p))),
+        };
+        fit_lumped(&sweep, &FitOptions::default(), &control).unwrap();
+        let seen = seen.lock().unwrap();
+        assert!(seen.windows(2).all(|w| w[0] <= w[1]), "{seen:?}");
+        assert_eq!(*seen.last().unwrap(), 1.0);
+    }
+
+    #[test]
+    fn an_exhausted_time_limit_gives_a_model_marked_time_limit() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 4);
+        let options = FitOptions {
+            time_limit_s: 1e-9,
+            ..FitOptions::default()
+        };
+        let r = fit_lumped(&sweep, &options, &FitControl::default()).unwrap();
+        assert_eq!(r.termination, Termination::TimeLimit);
+        assert_eq!(r.candidates.len(), 1);
+        let FittedModel::Lumped(m) = &r.model else {
+            panic!()
+        };
+        assert!(m.l0_h.is_finite() && m.l0_h > 0.0);
+    }
+
+    #[test]
+    fn bad_sweeps_and_options_are_clear_errors() {
+        let good = synthetic(&choke(), 1e3, 200e6, 50, 5);
+        let mut short = good.clone();
+        short.frequency_hz.truncate(10);
+        short.impedance_ohm.truncate(10);
+        short.sigma_ohm.truncate(10);
+        assert_eq!(
+            fit_lumped(&short, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::TooFewPoints(10))
+        );
+        let mut zero_sigma = good.clone();
+        zero_sigma.sigma_ohm[7] = 0.0;
+        assert!(matches!(
+            fit_lumped(&zero_sigma, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::InvalidOptions(m)) if m.contains("uncertainty")
+        ));
+        let mut capacitor = good.clone();
+        for z in &mut capacitor.impedance_ohm {
+            z.im = -z.im.abs() - 1.0;
+        }
+        assert!(matches!(
+            fit_lumped(&capacitor, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::NotAnInductor(_))
+        ));
+        let options = FitOptions {
+            max_sections: 4,
+            ..FitOptions::default()
+        };
+        assert!(matches!(
+            fit_lumped(&good, &options, &FitControl::default()),
+            Err(FitError::InvalidOptions(_))
+        ));
+    }
+}

@@ -1,0 +1,1048 @@
+//! Touchstone 1.x and 2.x (IBIS Open Forum, Touchstone File Format Specification 2.0, 2009), 1- and
+//! 2-port, into a [`Network`]: frequencies in Hz and one n×n matrix per frequency in physical units.
+//!
+//! Read as the specification says: comments (`!` to the end of the line) anywhere; keywords, option
+//! tokens and units case-insensitive; option line `# <unit> <parameter> <format> R <n>` with the
+//! defaults GHz S MA R 50; version 1 two-port order N11 N21 N12 N22, version 2 as
+//! `[Two-Port Data Order]` states; version 1 Z and Y data normalised by R, version 2 not; noise data
+//! skipped (version 1: the block that starts with a frequency not above the last network frequency;
+//! version 2: after `[Noise Data]`).
+//!
+//! Decisions beyond the specification:
+//! - A second option line that agrees with the first is ignored, as the specification says. One that
+//!   states other units, parameter, format or R is an error ("mixed units"): reading it either way
+//!   would be a guess.
+//! - A frequency's numbers may continue on the next lines (version 2 allows it), but must end at the
+//!   end of a line; otherwise the column count is wrong and the error names the line.
+//! - Only 1- and 2-port data; G and H parameters and mixed-mode files are refused with a clear error.
+
+use super::{SweepError, check_grid};
+use num_complex::Complex64;
+use serde::{Deserialize, Serialize};
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum TouchstoneVersion {
+    V1,
+    V2,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum Parameter {
+    S,
+    Y,
+    Z,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum DataFormat {
+    /// `RI`: real, imaginary.
+    RealImaginary,
+    /// `MA`: magnitude, angle in degrees.
+    MagnitudeAngle,
+    /// `DB`: 20·log10 magnitude, angle in degrees.
+    DecibelAngle,
+}
+
+/// Order of the two off-diagonal entries of a 2-port line.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum TwoPortOrder {
+    /// N11 N21 N12 N22: version 1, and version 2 with `21_12`.
+    N21First,
+    /// N11 N12 N21 N22: version 2 with `12_21`.
+    N12First,
+}
+
+/// A parsed Touchstone file, before any measurement method is applied.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Network {
+    pub version: TouchstoneVersion,
+    pub ports: usize,
+    pub parameter: Parameter,
+    pub format: DataFormat,
+    /// Hz per unit of the file's frequency column (1, 1e3, 1e6 or 1e9).
+    pub frequency_unit_hz: f64,
+    /// Reference resistance of each port: `[Reference]` in version 2, else R of the option line.
+    pub reference_ohm: Vec<f64>,
+    /// `None` for 1-port files.
+    pub two_port_order: Option<TwoPortOrder>,
+    pub frequency_hz: Vec<f64>,
+    /// Per frequency the n×n matrix, row-major (`data[k][i·n + j]` is N(i+1)(j+1)), in physical units:
+    /// S unitless, Z in ohm, Y in siemens (version 1 Z and Y already multiplied out of R).
+    pub data: Vec<Vec<Complex64>>,
+    /// The 1-based line on which each frequency's data starts.
+    pub line: Vec<usize>,
+}
+
+impl Network {
+    /// The single reference resistance of all ports; an error when the ports differ, because the
+    /// thru formulas assume one Z0.
+    pub fn common_reference_ohm(&self) -> Result<f64, SweepError> {
+        let r0 = self.reference_ohm.first().copied().unwrap_or(50.0);
+        if self.reference_ohm.iter().any(|&r| r != r0) {
+            return Err(SweepError::file(format!(
+                "the ports have different reference resistances {:?} Ω; henrybook needs one Z0",
+                self.reference_ohm
+            )));
+        }
+        Ok(r0)
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct OptionLine {
+    unit_hz: f64,
+    parameter: Parameter,
+    format: DataFormat,
+    r_ohm: f64,
+    /// A second reference resistance (`R 50 50`: one per port, as some writers of 2-port files do).
+    r_port2_ohm: Option<f64>,
+    line: usize,
+}
+
+impl OptionLine {
+    fn same_as(&self, o: &OptionLine) -> bool {
+        self.unit_hz == o.unit_hz
+            && self.parameter == o.parameter
+            && self.format == o.format
+            && self.r_ohm == o.r_ohm
+            && self.r_port2_ohm == o.r_port2_ohm
+    }
+}
+
+fn parse_option_line(rest: &str, line: usize) -> Result<OptionLine, SweepError> {
+    let mut opt = OptionLine {
+        unit_hz: 1e9,
+        parameter: Parameter::S,
+        format: DataFormat::MagnitudeAngle,
+        r_ohm: 50.0,
+        r_port2_ohm: None,
+        line,
+    };
+    let mut tokens = rest.split_whitespace().peekable();
+    while let Some(tok) = tokens.next() {
+        match tok.to_ascii_lowercase().as_str() {
+            "hz" => opt.unit_hz = 1.0,
+            "khz" => opt.unit_hz = 1e3,
+            "mhz" => opt.unit_hz = 1e6,
+            "ghz" => opt.unit_hz = 1e9,
+            "s" => opt.parameter = Parameter::S,
+            "y" => opt.parameter = Parameter::Y,
+            "z" => opt.parameter = Parameter::Z,
+            "g" | "h" => {
+                return Err(SweepError::at(
+                    line,
+                    format!("{tok}-parameters are not supported: use S, Y or Z"),
+                ));
+            }
+            "ri" => opt.format = DataFormat::RealImaginary,
+            "ma" => opt.format = DataFormat::MagnitudeAngle,
+            "db" => opt.format = DataFormat::DecibelAngle,
+            "r" => {
+                let v = tokens.next().ok_or_else(|| {
+                    SweepError::at(line, "option R needs a reference resistance after it")
+                })?;
+                let r: f64 = v.parse().map_err(|_| {
+                    SweepError::at(line, format!("reference resistance '{v}' is not a number"))
+                })?;
+                if !(r.is_finite() && r > 0.0) {
+                    return Err(SweepError::at(
+                        line,
+                        format!("reference resistance {v} must be finite and positive"),
+                    ));
+                }
+                opt.r_ohm = r;
+                if let Some(r2) = tokens.peek().and_then(|t| t.parse::<f64>().ok()) {
+                    tokens.next();
+                    if !(r2.is_finite() && r2 > 0.0) {
+                        return Err(SweepError::at(
+                            line,
+                            format!("reference resistance {r2} must be finite and positive"),
+                        ));
+                    }
+                    opt.r_port2_ohm = Some(r2);
+                }
+            }
+            _ => {
+                return Err(SweepError::at(
+                    line,
+                    format!(
+                        "unknown option '{tok}' on the option line: expected a unit (Hz, kHz, MHz, GHz), \
+                         a parameter (S, Y, Z), a format (RI, MA, DB) or R <ohm>"
+                    ),
+                ));
+            }
+        }
+    }
+    Ok(opt)
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum MatrixFormat {
+    Full,
+    Lower,
+    Upper,
+}
+
+#[derive(Debug, PartialEq)]
+enum State {
+    /// Version 1 body, or version 2 before `[Network Data]`.
+    Header,
+    NetworkData,
+    /// Skipping noise data (to the end in version 1, to `[End]` in version 2).
+    Noise,
+    Information,
+    End,
+}
+
+struct Record {
+    start_line: usize,
+    values: Vec<f64>,
+}
+
+/// Parses Touchstone text. `ports_hint` is the port count the file name states (`.s2p` → 2); version 2
+/// files state their own, and a version 1 file without a hint is 1- or 2-port by its column count.
+pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network, SweepError> {
+    let mut version = TouchstoneVersion::V1;
+    let mut option: Option<OptionLine> = None;
+    let mut ports: Option<usize> = None;
+    let mut order: Option<TwoPortOrder> = None;
+    let mut n_freq: Option<(usize, usize)> = None; // (count, line)
+    let mut reference: Vec<f64> = Vec::new();
+    let mut reference_line: Option<usize> = None;
+    let mut collecting_reference = false;
+    let mut matrix = MatrixFormat::Full;
+    let mut state = State::Header;
+    let mut saw_content = false;
+    let mut saw_network_data = false;
+
+    let mut records: Vec<Record> = Vec::new();
+    let mut current: Option<Record> = None;
+    let mut last_line = 0;
+
+    for (idx, raw) in text.split('\n').enumerate() {
+        let ln = idx + 1;
+        last_line = ln;
+        let body = raw.split('!').next().unwrap_or("").trim();
+        if body.is_empty() {
+            continue;
+        }
+        let first_content = !saw_content;
+        saw_content = true;
+
+        if state == State::End {
+            return Err(SweepError::at(ln, "content after [End]"));
+        }
+
+        if let Some(rest) = body.strip_prefix('[') {
+            let (name, value) = match rest.split_once(']') {
+                Some((n, v)) => (n, v.trim()),
+                None => {
+                    return Err(SweepError::at(ln, "a keyword '[' has no closing ']'"));
+                }
+            };
+            let key = name
+                .split_whitespace()
+                .collect::<Vec<_>>()
+                .join(" ")
+                .to_ascii_lowercase();
+            if let Some(rec) = &current {
+                return Err(incomplete(rec, expected_len(ports, matrix)));
+            }
+            if state == State::Information {
+                if key == "end information" {
+                    state = State::Header;
+                }
+                continue;
+            }
+            if state == State::Noise && key != "end" {
+                continue;
+            }
+            if key == "version" {
+                if !first_content {
+                    return Err(SweepError::at(
+                        ln,
+                        "[Version] must come before everything else except comments",
+                    ));
+                }
+                match value.trim() {
+                    v if v.starts_with("2.") => version = TouchstoneVersion::V2,
+                    v if v.starts_with("1.") => version = TouchstoneVersion::V1,
+                    v => {
+                        return Err(SweepError::at(
+                            ln,
+                            format!("unsupported Touchstone version '{v}': expected 1.x or 2.x"),
+                        ));
+                    }
+                }
+                continue;
+            }
+            if version == TouchstoneVersion::V1 {
+                return Err(SweepError::at(
+                    ln,
+                    format!(
+                        "keyword [{name}] in a version 1 file (a version 2 file starts with [Version] 2.0)"
+                    ),
+                ));
+            }
+            collecting_reference = false;
+            match key.as_str() {
+                "number of ports" => {
+                    let n: usize = value.parse().map_err(|_| {
+                        SweepError::at(
+                            ln,
+                            format!("[Number of Ports] '{value}' is not a whole number"),
+                        )
+                    })?;
+                    if n == 0 {
+                        return Err(SweepError::at(ln, "[Number of Ports] must be at least 1"));
+                    }
+                    ports = Some(n);
+                }
+                "two-port data order" => {
+                    order = Some(match value.to_ascii_lowercase().as_str() {
+                        "12_21" => TwoPortOrder::N12First,
+                        "21_12" => TwoPortOrder::N21First,
+                        _ => {
+                            return Err(SweepError::at(
+                                ln,
+                                format!("[Two-Port Data Order] '{value}': expected 12_21 or 21_12"),
+                            ));
+                        }
+                    });
+                }
+                "number of frequencies" => {
+                    let n: usize = value.parse().map_err(|_| {
+                        SweepError::at(
+                            ln,
+                            format!("[Number of Frequencies] '{value}' is not a whole number"),
+                        )
+                    })?;
+                    n_freq = Some((n, ln));
+                }
+                "number of noise frequencies" => {}
+                "reference" => {
+                    reference.clear();
+                    push_reference(&mut reference, value, ln)?;
+                    reference_line = Some(ln);
+                    collecting_reference = true;
+                }
+                "matrix format" => {
+                    matrix = match value.to_ascii_lowercase().as_str() {
+                        "full" => MatrixFormat::Full,
+                        "lower" => MatrixFormat::Lower,
+                        "upper" => MatrixFormat::Upper,
+                        _ => {
+                            return Err(SweepError::at(
+                                ln,
+                                format!("[Matrix Format] '{value}': expected Full, Lower or Upper"),
+                            ));
+                        }
+                    };
+                }
+                "mixed-mode order" => {
+                    return Err(SweepError::at(
+                        ln,
+                        "mixed-mode (differential) data are not supported",
+                    ));
+                }
+                "begin information" => state = State::Information,
+                "network data" => {
+                    if option.is_none() {
+                        return Err(SweepError::at(
+                            ln,
+                            "[Network Data] before the option line ('# <unit> <parameter> <format> R <ohm>')",
+                        ));
+                    }
+                    let n = ports.ok_or_else(|| {
+                        SweepError::at(ln, "[Network Data] before [Number of Ports]")
+                    })?;
+                    if n_freq.is_none() {
+                        return Err(SweepError::at(
+                            ln,
+                            "[Network Data] before [Number of Frequencies]",
+                        ));
+                    }
+                    if n == 2 && order.is_none() {
+                        return Err(SweepError::at(
+                            ln,
+                            "a 2-port version 2 file needs [Two-Port Data Order] before [Network Data]",
+                        ));
+                    }
+                    state = State::NetworkData;
+                    saw_network_data = true;
+                }
+                "noise data" => state = State::Noise,
+                "end" => state = State::End,
+                _ => {
+                    return Err(SweepError::at(ln, format!("unknown keyword [{name}]")));
+                }
+            }
+            continue;
+        }
+
+        if state == State::Information || state == State::Noise {
+            continue;
+        }
+
+        if let Some(rest) = body.strip_prefix('#') {
+            let opt = parse_option_line(rest, ln)?;
+            match &option {
+                None => option = Some(opt),
+                Some(first) if first.same_as(&opt) => {}
+                Some(first) => {
+                    return Err(SweepError::at(
+                        ln,
+                        format!(
+                            "mixed units: this option line disagrees with the one on line {}; \
+                             the file would read differently depending on which one is meant",
+                            first.line
+                        ),
+                    ));
+                }
+            }
+            continue;
+        }
+
+        // A line of numbers: reference continuation, network data, or noise data.
+        if collecting_reference {
+            if reference.len() < ports.unwrap_or(1) && state == State::Header {
+                push_reference(&mut reference, body, ln)?;
+                continue;
+            }
+            collecting_reference = false;
+        }
+        if version == TouchstoneVersion::V2 && state != State::NetworkData {
+            return Err(SweepError::at(
+                ln,
+                "numbers before [Network Data] in a version 2 file",
+            ));
+        }
+        let opt = option.ok_or_else(|| {
+            SweepError::at(
+                ln,
+                "data before the option line ('# <unit> <parameter> <format> R <ohm>')",
+            )
+        })?;
+        let values = parse_numbers(body, ln)?;
+
+        if current.is_none() {
+            // Version 1 2-port noise block: a 5-number line whose frequency is not above the last.
+            if version == TouchstoneVersion::V1
+                && ports.or(ports_hint) == Some(2)
+                && values.len() == 5
+                && records
+                    .last()
+                    .is_some_and(|r| values[0] * opt.unit_hz <= r.values[0] * opt.unit_hz)
+            {
+                state = State::Noise;
+                continue;
+            }
+            if version == TouchstoneVersion::V2
+                && let Some((n, _)) = n_freq
+                && records.len() >= n
+            {
+                return Err(SweepError::at(
+                    ln,
+                    format!("more frequencies than [Number of Frequencies] = {n}"),
+                ));
+            }
+            if ports.is_none() {
+                ports = Some(match ports_hint {
+                    Some(n) => n,
+                    None => match values.len() {
+                        3 => 1,
+                        9 => 2,
+                        c => {
+                            return Err(SweepError::at(
+                                ln,
+                                format!(
+                                    "{c} numbers on the first data line: a 1-port line has 3 \
+                                     (frequency and one pair), a 2-port line 9"
+                                ),
+                            ));
+                        }
+                    },
+                });
+            }
+            if !(1..=2).contains(&ports.unwrap_or(1)) {
+                return Err(SweepError::at(
+                    ln,
+                    format!(
+                        "{}-port data are not supported: an inductor is measured as a 1-port or a 2-port",
+                        ports.unwrap_or(0)
+                    ),
+                ));
+            }
+            current = Some(Record {
+                start_line: ln,
+                values: Vec::new(),
+            });
+        }
+        let want = expected_len(ports, matrix);
+        let rec = current.as_mut().expect("a record is open");
+        rec.values.extend_from_slice(&values);
+        if rec.values.len() > want {
+            return Err(SweepError::at(
+                ln,
+                format!(
+                    "wrong column count: a {}-port frequency has {want} numbers (frequency and {} pairs), \
+                     this one has {}{}",
+                    ports.unwrap_or(1),
+                    (want - 1) / 2,
+                    rec.values.len(),
+                    if rec.start_line == ln {
+                        String::new()
+                    } else {
+                        format!(" counting from line {}", rec.start_line)
+                    }
+                ),
+            ));
+        }
+        if rec.values.len() == want {
+            records.push(current.take().expect("a record is open"));
+        }
+    }
+
+    if let Some(rec) = &current {
+        return Err(incomplete(rec, expected_len(ports, matrix)));
+    }
+    if state == State::Information {
+        return Err(SweepError::at(
+            last_line,
+            "[Begin Information] without [End Information]",
+        ));
+    }
+    let opt = option.ok_or_else(|| {
+        SweepError::file(
+            "no option line ('# <unit> <parameter> <format> R <ohm>'): not a Touchstone file",
+        )
+    })?;
+    if version == TouchstoneVersion::V2 {
+        if !saw_network_data {
+            return Err(SweepError::file("a version 2 file needs [Network Data]"));
+        }
+        if let Some((n, line)) = n_freq
+            && records.len() != n
+        {
+            return Err(SweepError::at(
+                line,
+                format!(
+                    "[Number of Frequencies] says {n} but the file holds {}",
+                    records.len()
+                ),
+            ));
+        }
+    }
+    if records.is_empty() {
+        return Err(SweepError::file("the file holds no data points"));
+    }
+    let n = ports.unwrap_or(1);
+    if version == TouchstoneVersion::V2 && !reference.is_empty() {
+        if reference.len() != n {
+            return Err(SweepError::at(
+                reference_line.unwrap_or(last_line),
+                format!("[Reference] gives {} values for {n} ports", reference.len()),
+            ));
+        }
+    } else {
+        reference = match (n, opt.r_port2_ohm) {
+            (2, Some(r2)) => vec![opt.r_ohm, r2],
+            (_, Some(_)) => {
+                return Err(SweepError::at(
+                    opt.line,
+                    format!("the option line gives two reference resistances for a {n}-port file"),
+                ));
+            }
+            _ => vec![opt.r_ohm; n],
+        };
+    }
+    if version == TouchstoneVersion::V1
+        && opt.parameter != Parameter::S
+        && reference.iter().any(|&r| r != opt.r_ohm)
+    {
+        return Err(SweepError::at(
+            opt.line,
+            "version 1 Z or Y data normalised by different resistances per port are not supported",
+        ));
+    }
+    let order = if n == 2 {
+        Some(order.unwrap_or(TwoPortOrder::N21First))
+    } else {
+        None
+    };
+
+    let mut net = Network {
+        version,
+        ports: n,
+        parameter: opt.parameter,
+        format: opt.format,
+        frequency_unit_hz: opt.unit_hz,
+        reference_ohm: reference,
+        two_port_order: order,
+        frequency_hz: Vec::with_capacity(records.len()),
+        data: Vec::with_capacity(records.len()),
+        line: Vec::with_capacity(records.len()),
+    };
+    // Version 1 Z and Y are normalised by R (spec 2.0, "Option line"); version 2 data are not.
+    let denorm = match (version, opt.parameter) {
+        (TouchstoneVersion::V1, Parameter::Z) => opt.r_ohm,
+        (TouchstoneVersion::V1, Parameter::Y) => 1.0 / opt.r_ohm,
+        _ => 1.0,
+    };
+    for rec in records {
+        let f = rec.values[0] * opt.unit_hz;
+        let pairs: Vec<Complex64> = rec.values[1..]
+            .chunks_exact(2)
+            .map(|p| to_complex(opt.format, p[0], p[1]) * denorm)
+            .collect();
+        if let Some(bad) = pairs
+            .iter()
+            .find(|c| !(c.re.is_finite() && c.im.is_finite()))
+        {
+            return Err(SweepError::at(
+                rec.start_line,
+                format!("value {bad} overflows (a dB magnitude too large?)"),
+            ));
+        }
+        let m = match (n, matrix) {
+            (1, _) => pairs,
+            (2, MatrixFormat::Full) => match order {
+                Some(TwoPortOrder::N12First) => pairs,
+                _ => vec![pairs[0], pairs[2], pairs[1], pairs[3]],
+            },
+            // Lower lists N11 N21 N22, upper N11 N12 N22: either way the off-diagonal is shared.
+            (2, MatrixFormat::Lower | MatrixFormat::Upper) => {
+                vec![pairs[0], pairs[1], pairs[1], pairs[2]]
+            }
+            _ => unreachable!("ports above 2 are refused earlier"),
+        };
+        net.frequency_hz.push(f);
+        net.data.push(m);
+        net.line.push(rec.start_line);
+    }
+    check_grid(&net.frequency_hz, &net.line)?;
+    Ok(net)
+}
+
+/// Writes a network as Touchstone text: version 1 (Z and Y normalised by R, two-port order N11 N21
+/// N12 N22) or version 2 (values in ohm/siemens, the keywords, `[Two-Port Data Order]` as the network
+/// states), in the network's unit, parameter and format. Numbers are written in the shortest form that
+/// reads back to the same `f64`. `comments` become `!` lines at the top.
+pub fn write_touchstone(net: &Network, comments: &[&str]) -> String {
+    write_touchstone_with_digits(net, comments, None)
+}
+
+/// As [`write_touchstone`], with data values rounded to `significant_digits` (as instruments write
+/// them); frequencies keep full precision.
+pub fn write_touchstone_with_digits(
+    net: &Network,
+    comments: &[&str],
+    significant_digits: Option<usize>,
+) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    for c in comments {
+        for line in c.lines() {
+            let _ = writeln!(out, "! {line}");
+        }
+    }
+    let (unit, unit_hz) = [("kHz", 1e3), ("MHz", 1e6), ("GHz", 1e9)]
+        .into_iter()
+        .find(|&(_, u)| u == net.frequency_unit_hz)
+        .unwrap_or(("Hz", 1.0));
+    let parameter = match net.parameter {
+        Parameter::S => "S",
+        Parameter::Y => "Y",
+        Parameter::Z => "Z",
+    };
+    let format = match net.format {
+        DataFormat::RealImaginary => "RI",
+        DataFormat::MagnitudeAngle => "MA",
+        DataFormat::DecibelAngle => "DB",
+    };
+    let r = net.reference_ohm.first().copied().unwrap_or(50.0);
+    let n = net.ports;
+    let order = net.two_port_order.unwrap_or(TwoPortOrder::N21First);
+    if net.version == TouchstoneVersion::V2 {
+        let _ = writeln!(out, "[Version] 2.0");
+        let _ = writeln!(out, "# {unit} {parameter} {format} R {r}");
+        let _ = writeln!(out, "[Number of Ports] {n}");
+        if n == 2 {
+            let o = match order {
+                TwoPortOrder::N12First => "12_21",
+                TwoPortOrder::N21First => "21_12",
+            };
+            let _ = writeln!(out, "[Two-Port Data Order] {o}");
+        }
+        let _ = writeln!(out, "[Number of Frequencies] {}", net.frequency_hz.len());
+        let refs: Vec<String> = net.reference_ohm.iter().map(|r| r.to_string()).collect();
+        if !refs.is_empty() {
+            let _ = writeln!(out, "[Reference] {}", refs.join(" "));
+        }
+        let _ = writeln!(out, "[Network Data]");
+    } else {
+        let _ = writeln!(out, "# {unit} {parameter} {format} R {r}");
+    }
+    let scale = match (net.version, net.parameter) {
+        (TouchstoneVersion::V1, Parameter::Z) => 1.0 / r,
+        (TouchstoneVersion::V1, Parameter::Y) => r,
+        _ => 1.0,
+    };
+    for (f, m) in net.frequency_hz.iter().zip(&net.data) {
+        let entries: Vec<Complex64> = if n == 2 && m.len() == 4 {
+            match (net.version, order) {
+                (TouchstoneVersion::V2, TwoPortOrder::N12First) => m.clone(),
+                _ => vec![m[0], m[2], m[1], m[3]],
+            }
+        } else {
+            m.clone()
+        };
+        out.push_str(&frequency_text(*f, unit_hz));
+        for c in entries {
+            let c = c * scale;
+            let (a, b) = match net.format {
+                DataFormat::RealImaginary => (c.re, c.im),
+                DataFormat::MagnitudeAngle => (c.norm(), c.arg().to_degrees()),
+                DataFormat::DecibelAngle => (20.0 * c.norm().log10(), c.arg().to_degrees()),
+            };
+            match significant_digits {
+                Some(d) => {
+                    let p = d.clamp(1, 17) - 1;
+                    let _ = write!(out, " {a:.p$e} {b:.p$e}");
+                }
+                None => {
+                    let _ = write!(out, " {a:e} {b:e}");
+                }
+            }
+        }
+        out.push('\n');
+    }
+    if net.version == TouchstoneVersion::V2 {
+        out.push_str("[End]\n");
+    }
+    out
+}
+
+/// The shortest decimal of `f / unit_hz` that reads back (times the unit) to `f` within two ulps (the
+/// product itself rounds, so exactly `f` is not always reachable).
+fn frequency_text(f: f64, unit_hz: f64) -> String {
+    let v = f / unit_hz;
+    for p in 0..17 {
+        let text = format!("{v:.p$e}");
+        if text
+            .parse::<f64>()
+            .is_ok_and(|x| (x * unit_hz - f).abs() <= 2.0 * f64::EPSILON * f.abs())
+        {
+            return text;
+        }
+    }
+    format!("{v:e}")
+}
+
+fn expected_len(ports: Option<usize>, matrix: MatrixFormat) -> usize {
+    let n = ports.unwrap_or(1);
+    let entries = match matrix {
+        MatrixFormat::Full => n * n,
+        _ => n * (n + 1) / 2,
+    };
+    1 + 2 * entries
+}
+
+fn incomplete(rec: &Record, want: usize) -> SweepError {
+    SweepError::at(
+        rec.start_line,
+        format!(
+            "wrong column count: this frequency has {} of the {want} numbers it needs",
+            rec.values.len()
+        ),
+    )
+}
+
+fn push_reference(reference: &mut Vec<f64>, text: &str, ln: usize) -> Result<(), SweepError> {
+    for tok in text.split_whitespace() {
+        let r: f64 = tok.parse().map_err(|_| {
+            SweepError::at(ln, format!("[Reference] value '{tok}' is not a number"))
+        })?;
+        if !(r.is_finite() && r > 0.0) {
+            return Err(SweepError::at(
+                ln,
+                format!("[Reference] value {tok} must be finite and positive"),
+            ));
+        }
+        reference.push(r);
+    }
+    Ok(())
+}
+
+fn parse_numbers(body: &str, ln: usize) -> Result<Vec<f64>, SweepError> {
+    body.split_whitespace()
+        .map(|tok| {
+            let v: f64 = tok
+                .parse()
+                .map_err(|_| SweepError::at(ln, format!("'{tok}' is not a number")))?;
+            if v.is_finite() {
+                Ok(v)
+            } else {
+                Err(SweepError::at(ln, format!("value '{tok}' is not finite")))
+            }
+        })
+        .collect()
+}
+
+fn to_complex(format: DataFormat, a: f64, b: f64) -> Complex64 {
+    match format {
+        DataFormat::RealImaginary => Complex64::new(a, b),
+        DataFormat::MagnitudeAngle => Complex64::from_polar(a, b.to_radians()),
+        DataFormat::DecibelAngle => Complex64::from_polar(10f64.powf(a / 20.0), b.to_radians()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn c(re: f64, im: f64) -> Complex64 {
+        Complex64::new(re, im)
+    }
+
+    fn close(a: Complex64, b: Complex64) -> bool {
+        (a - b).norm() < 1e-9 * (1.0 + b.norm())
+    }
+
+    #[test]
+    fn version_1_one_port_with_defaults_and_comments() {
+        let text =
+            "! a comment\n# ghz s ma r 50 ! trailing comment\n1 0.5 90\n! between\n2 0.25 -90\n";
+        let net = parse_touchstone(text, None).unwrap();
+        assert_eq!(net.version, TouchstoneVersion::V1);
+        assert_eq!(net.ports, 1);
+        assert_eq!(net.frequency_hz, vec![1e9, 2e9]);
+        assert!(close(net.data[0][0], c(0.0, 0.5)));
+        assert!(close(net.data[1][0], c(0.0, -0.25)));
+        assert_eq!(net.line, vec![3, 5]);
+    }
+
+    #[test]
+    fn option_line_defaults_are_ghz_s_ma_50() {
+        // Source: Touchstone File Format Specification 2.0 (IBIS Open Forum, 2009), option line
+        // defaults: GHz, S, MA, R 50.
+        let net = parse_touchstone("#\n1 1 0\n", Some(1)).unwrap();
+        assert_eq!(net.frequency_unit_hz, 1e9);
+        assert_eq!(net.parameter, Parameter::S);
+        assert_eq!(net.format, DataFormat::MagnitudeAngle);
+        assert_eq!(net.reference_ohm, vec![50.0]);
+    }
+
+    #[test]
+    fn formats_ri_ma_db_agree() {
+        let ri = parse_touchstone("# Hz S RI\n1 0.3 0.4\n", None).unwrap();
+        let ma = parse_touchstone("# Hz S MA\n1 0.5 53.13010235415598\n", None).unwrap();
+        let db = parse_touchstone(
+            &format!("# Hz S DB\n1 {} 53.13010235415598\n", 20.0 * 0.5f64.log10()),
+            None,
+        )
+        .unwrap();
+        assert!(close(ma.data[0][0], ri.data[0][0]));
+        assert!(close(db.data[0][0], ri.data[0][0]));
+    }
+
+    #[test]
+    fn version_1_two_port_order_is_n11_n21_n12_n22() {
+        // Source: Touchstone 2.0 specification (IBIS Open Forum, 2009): version 1 two-port data are
+        // written N11 N21 N12 N22.
+        let net = parse_touchstone("# MHz S RI\n1 11 0 21 0 12 0 22 0\n", Some(2)).unwrap();
+        assert_eq!(
+            net.data[0],
+            vec![c(11.0, 0.0), c(12.0, 0.0), c(21.0, 0.0), c(22.0, 0.0)]
+        );
+        assert_eq!(net.frequency_hz, vec![1e6]);
+    }
+
+    #[test]
+    fn version_2_states_the_two_port_order() {
+        let body = "[Version] 2.0\n# MHz S RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
+                    [Number of Frequencies] 1\n[Network Data]\n1 11 0 12 0 21 0 22 0\n[End]\n";
+        let net = parse_touchstone(body, None).unwrap();
+        assert_eq!(
+            net.data[0],
+            vec![c(11.0, 0.0), c(12.0, 0.0), c(21.0, 0.0), c(22.0, 0.0)]
+        );
+        let body = body.replace("12_21", "21_12");
+        let net = parse_touchstone(&body, None).unwrap();
+        assert_eq!(
+            net.data[0],
+            vec![c(11.0, 0.0), c(21.0, 0.0), c(12.0, 0.0), c(22.0, 0.0)]
+        );
+    }
+
+    #[test]
+    fn version_1_z_is_normalised_and_version_2_is_not() {
+        // Source: Touchstone File Format Specification 2.0 (IBIS Open Forum, 2009): the version 1
+        // example with "# GHz Z MA R 75" lists normalised values (0.99 ∠ −4 …) while its version 2
+        // twin lists ohms (74.25 ∠ −4 …).
+        let v1 = parse_touchstone("# GHz Z MA R 75\n2 0.99 -4\n", Some(1)).unwrap();
+        let v2 = parse_touchstone(
+            "[Version] 2.0\n# GHz Z MA R 75\n[Number of Ports] 1\n[Number of Frequencies] 1\n\
+             [Reference] 75\n[Network Data]\n2 74.25 -4\n[End]\n",
+            None,
+        )
+        .unwrap();
+        assert!(
+            close(v1.data[0][0], v2.data[0][0]),
+            "{} vs {}",
+            v1.data[0][0],
+            v2.data[0][0]
+        );
+        assert!((v1.data[0][0].norm() - 74.25).abs() < 1e-12);
+        let y1 = parse_touchstone("# GHz Y RI R 25\n2 2 0\n", Some(1)).unwrap();
+        assert!(close(y1.data[0][0], c(0.08, 0.0)));
+    }
+
+    #[test]
+    fn noise_blocks_are_skipped() {
+        let v1 = "# GHz S MA\n1 1 0 0.1 0 0.1 0 1 0\n2 1 0 0.1 0 0.1 0 1 0\n! noise\n1 2.0 0.5 30 0.3\n2 2.1 0.5 35 0.3\n";
+        let net = parse_touchstone(v1, Some(2)).unwrap();
+        assert_eq!(net.frequency_hz.len(), 2);
+        let v2 = "[Version] 2.0\n# GHz S MA\n[Number of Ports] 2\n[Two-Port Data Order] 21_12\n\
+                  [Number of Frequencies] 1\n[Number of Noise Frequencies] 1\n[Network Data]\n\
+                  1 1 0 0.1 0 0.1 0 1 0\n[Noise Data]\n1 2.0 0.5 30 0.3\n[End]\n";
+        assert_eq!(parse_touchstone(v2, None).unwrap().frequency_hz.len(), 1);
+    }
+
+    #[test]
+    fn a_second_option_line_is_ignored_when_it_agrees_and_refused_when_not() {
+        let same = parse_touchstone("# MHz S RI\n1 0 0\n# mhz s ri r 50\n2 0 0\n", None).unwrap();
+        assert_eq!(same.frequency_hz, vec![1e6, 2e6]);
+        let err = parse_touchstone("# MHz S RI\n1 0 0\n# GHz S RI\n2 0 0\n", None).unwrap_err();
+        assert_eq!(err.line, Some(3));
+        assert!(err.message.contains("mixed units"), "{err}");
+    }
+
+    #[test]
+    fn data_may_continue_on_the_next_line() {
+        let net = parse_touchstone(
+            "# MHz S RI\n1 11 0 21 0\n 12 0 22 0\n2 1 0 2 0 3 0 4 0\n",
+            Some(2),
+        )
+        .unwrap();
+        assert_eq!(net.line, vec![2, 4]);
+        assert_eq!(net.data[0][1], c(12.0, 0.0));
+    }
+
+    #[test]
+    fn information_blocks_and_reference_continuations() {
+        let net = parse_touchstone(
+            "[Version] 2.1\n# Hz S RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
+             [Number of Frequencies] 1\n[Reference] 75\n 75\n[Begin Information]\nanything\n\
+             [End Information]\n[Network Data]\n1 1 0 2 0 3 0 4 0\n[End]\n",
+            None,
+        )
+        .unwrap();
+        assert_eq!(net.reference_ohm, vec![75.0, 75.0]);
+        assert_eq!(net.common_reference_ohm().unwrap(), 75.0);
+    }
+
+    #[test]
+    fn one_reference_resistance_per_port_on_the_option_line() {
+        let net = parse_touchstone("# MHz S RI R 50 50\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert_eq!(net.reference_ohm, vec![50.0, 50.0]);
+        let net = parse_touchstone("# MHz S RI R 50 75\n1 1 0 2 0 3 0 4 0\n", Some(2)).unwrap();
+        assert!(net.common_reference_ohm().is_err());
+    }
+
+    #[test]
+    fn lower_matrix_format_fills_the_symmetric_entry() {
+        let net = parse_touchstone(
+            "[Version] 2.0\n# Hz Z RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
+             [Number of Frequencies] 1\n[Matrix Format] Lower\n[Network Data]\n1 1 0 2 0 3 0\n[End]\n",
+            None,
+        )
+        .unwrap();
+        assert_eq!(
+            net.data[0],
+            vec![c(1.0, 0.0), c(2.0, 0.0), c(2.0, 0.0), c(3.0, 0.0)]
+        );
+    }
+
+    #[test]
+    fn errors_name_the_line() {
+        let cases: &[(&str, Option<usize>, usize, &str)] = &[
+            ("# MHz S RI\n1 0 0\n2 0 0 0\n", Some(1), 3, "column count"),
+            ("# MHz S RI\n1 0 0\n2 0\n", Some(1), 3, "column count"),
+            ("# MHz S RI\n1 0 0\n1 0 0\n", Some(1), 3, "duplicate"),
+            ("# MHz S RI\n2 0 0\n1 0 0\n", Some(1), 3, "increase"),
+            ("# MHz S RI\n1 nan 0\n", Some(1), 2, "not finite"),
+            ("# MHz S RI\n1 inf 0\n", Some(1), 2, "not finite"),
+            ("# MHz S RI\n1 x 0\n", Some(1), 2, "not a number"),
+            ("# MHz S RI Q\n", Some(1), 1, "unknown option"),
+            ("1 0 0\n", Some(1), 1, "before the option line"),
+            ("# MHz S RI\n[Number of Ports] 1\n", None, 2, "version 1"),
+            ("\n[Version] 3.0\n", None, 2, "version"),
+            ("# MHz S RI\n-1 0 0\n", Some(1), 2, "negative"),
+            ("# MHz S RI\n1 0 0 0 0\n", None, 2, "first data line"),
+            ("# MHz S RI\n1 0 0\n", Some(0), 2, "not supported"),
+            ("# MHz S RI R 50 75\n1 0 0\n", Some(1), 1, "two reference"),
+            ("# MHz S RI R 50 0\n1 0 0\n", Some(1), 1, "positive"),
+            ("# MHz S RI\n1 0 0\n", Some(4), 2, "not supported"),
+        ];
+        for (text, hint, line, needle) in cases {
+            let err = parse_touchstone(text, *hint).unwrap_err();
+            assert_eq!(err.line, Some(*line), "{text:?}: {err}");
+            assert!(err.message.contains(needle), "{text:?}: {err}");
+        }
+        let err = parse_touchstone("! only a comment\n# MHz S RI\n", Some(1)).unwrap_err();
+        assert!(err.message.contains("no data"), "{err}");
+    }
+
+    #[test]
+    fn written_files_read_back() {
+        for version in [TouchstoneVersion::V1, TouchstoneVersion::V2] {
+            for parameter in [Parameter::S, Parameter::Z, Parameter::Y] {
+                for format in [
+                    DataFormat::RealImaginary,
+                    DataFormat::MagnitudeAngle,
+                    DataFormat::DecibelAngle,
+                ] {
+                    for order in [TwoPortOrder::N12First, TwoPortOrder::N21First] {
+                        let net = Network {
+                            version,
+                            ports: 2,
+                            parameter,
+                            format,
+                            frequency_unit_hz: 1e6,
+                            reference_ohm: vec![75.0, 75.0],
+                            two_port_order: Some(order),
+                            frequency_hz: vec![1e6, 2.5e6],
+                            data: vec![
+                                vec![c(0.1, 0.2), c(0.3, -0.4), c(-0.5, 0.6), c(0.7, 0.8)],
+                                vec![c(1.1, 0.2), c(1.3, -0.4), c(-1.5, 0.6), c(1.7, 0.8)],
+                            ],
+                            line: vec![0, 0],
+                        };
+                        let text = write_touchstone(&net, &["a comment"]);
+                        let back = parse_touchstone(&text, Some(2)).unwrap();
+                        assert_eq!(back.frequency_hz, net.frequency_hz);
+                        for (a, b) in back.data.iter().flatten().zip(net.data.iter().flatten()) {
+                            assert!(
+                                close(*a, *b),
+                                "{version:?} {parameter:?} {format:?}: {a} vs {b}"
+                            );
+                        }
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn version_2_counts_are_checked() {
+        let head = "[Version] 2.0\n# Hz S RI\n[Number of Ports] 1\n[Number of Frequencies] 2\n[Network Data]\n";
+        let err = parse_touchstone(&format!("{head}1 0 0\n[End]\n"), None).unwrap_err();
+        assert_eq!(err.line, Some(4));
+        let err = parse_touchstone(&format!("{head}1 0 0\n2 0 0\n3 0 0\n"), None).unwrap_err();
+        assert_eq!(err.line, Some(8));
+        let err =
+            parse_touchstone(&format!("{head}1 0 0\n2 0 0\n[End]\n4 0 0\n"), None).unwrap_err();
+        assert!(err.message.contains("after [End]"), "{err}");
+    }
+}
