@@ -120,7 +120,9 @@ impl Application {
             shutdown.await;
             let _ = stop_tx.send(true);
         });
-        let pool = tokio::spawn(self.pool.run(stop_rx.clone()));
+        // Dropping `run` (as an aborted task does) stops the pool too: its running fits are then
+        // abandoned with their leases, exactly as in a crash.
+        let mut pool = AbortOnDrop(Some(tokio::spawn(self.pool.run(stop_rx.clone()))));
         let store = self.state.store.clone();
         let router = crate::http::router(self.state);
         let mut http_stop = stop_rx;
@@ -131,10 +133,22 @@ impl Application {
             })
             .await
             .context("the HTTP server stopped")?;
-        pool.await.context("the worker pool stopped")?;
+        if let Some(handle) = pool.0.take() {
+            handle.await.context("the worker pool stopped")?;
+        }
         store.close().await;
         tracing::info!("henrybook stopped");
         Ok(())
+    }
+}
+
+struct AbortOnDrop(Option<tokio::task::JoinHandle<()>>);
+
+impl Drop for AbortOnDrop {
+    fn drop(&mut self) {
+        if let Some(h) = &self.0 {
+            h.abort();
+        }
     }
 }
 

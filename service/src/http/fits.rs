@@ -106,6 +106,7 @@ async fn curves(
         let read = ReadOptions {
             method: parse_method(&input.method),
             z0_ohm: input.z0_ohm,
+            ..ReadOptions::default()
         };
         let sweep = engine
             .read_sweep(&input.file.name, &input.file.bytes, &read)
@@ -292,38 +293,91 @@ async fn model_json(
     ))
 }
 
-/// The model as a SPICE subcircuit (needs the export module).
+fn export_context(
+    report: &crate::fit::FitReport,
+    detail: &FitDetail,
+) -> crate::export::ExportContext {
+    let mut ctx = crate::export::ExportContext::for_report(report);
+    ctx.part_number = Some(detail.summary.part_number.clone());
+    ctx.fit_id = Some(detail.summary.fit_id.to_string());
+    ctx.revision = u64::try_from(detail.summary.revision).ok();
+    ctx.sweep_sha256 = Some(detail.sha256.clone());
+    ctx
+}
+
+fn text_download(name: String, text: String) -> axum::response::Response {
+    (
+        [
+            (
+                header::CONTENT_TYPE,
+                "text/plain; charset=utf-8".to_string(),
+            ),
+            (
+                header::CONTENT_DISPOSITION,
+                format!("attachment; filename=\"{}\"", safe_file_name(&name)),
+            ),
+        ],
+        text,
+    )
+        .into_response()
+}
+
+fn export_problem(e: crate::export::ExportError) -> Problem {
+    Problem::new(
+        Kind::Conflict,
+        format!("this model cannot be exported: {e}"),
+    )
+}
+
+/// The model as a passive SPICE subcircuit.
 #[utoipa::path(get, path = "/api/v1/fits/{fit_id}/netlist.cir", tag = "exports", params(("fit_id" = i64, Path)),
     responses((status = 200, content_type = "text/plain", body = String),
-        (status = 501, body = super::problem::ProblemBody)),
+        (status = 409, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn netlist(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
 ) -> ApiResult<axum::response::Response> {
-    let _report = succeeded_report(&state, fit_id).await?;
-    Err(Problem::new(
-        Kind::NotImplemented,
-        "SPICE export is not part of this build yet",
-    ))
+    let report = succeeded_report(&state, fit_id).await?;
+    let detail = state.store.fit_detail(fit_id).await?;
+    let ctx = export_context(&report, &detail);
+    let text = tokio::task::spawn_blocking(move || crate::export::subcircuit(&report.model, &ctx))
+        .await
+        .map_err(Problem::internal)?
+        .map_err(export_problem)?;
+    Ok(text_download(format!("fit-{fit_id}.cir"), text))
 }
 
-/// The model as a Touchstone 1-port (needs the export module).
+/// Points of the Touchstone export, log-spaced over the sweep band.
+const TOUCHSTONE_POINTS: usize = 401;
+
+/// The model as a Touchstone 1-port over the sweep band (reference impedance: the sweep's, or 50 Ω).
 #[utoipa::path(get, path = "/api/v1/fits/{fit_id}/model.s1p", tag = "exports", params(("fit_id" = i64, Path)),
     responses((status = 200, content_type = "text/plain", body = String),
-        (status = 501, body = super::problem::ProblemBody)),
+        (status = 409, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn touchstone(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
 ) -> ApiResult<axum::response::Response> {
-    let _report = succeeded_report(&state, fit_id).await?;
-    Err(Problem::new(
-        Kind::NotImplemented,
-        "Touchstone export is not part of this build yet",
-    ))
+    let report = succeeded_report(&state, fit_id).await?;
+    let detail = state.store.fit_detail(fit_id).await?;
+    let ctx = export_context(&report, &detail);
+    let z0 = detail.z0_ohm.unwrap_or(50.0);
+    let text = tokio::task::spawn_blocking(move || {
+        let grid = crate::export::log_frequency_grid(
+            report.band_hz[0],
+            report.band_hz[1],
+            TOUCHSTONE_POINTS,
+        )?;
+        crate::export::touchstone::touchstone_1port(&report.model, &grid, z0, &ctx)
+    })
+    .await
+    .map_err(Problem::internal)?
+    .map_err(export_problem)?;
+    Ok(text_download(format!("fit-{fit_id}.s1p"), text))
 }
 
 pub fn router() -> OpenApiRouter<AppState> {

@@ -209,7 +209,11 @@ async fn upload(
     let options = effective_options(parse_options(get("options"))?, dcr_ohm);
 
     let engine = state.engine.clone();
-    let read = ReadOptions { method, z0_ohm };
+    let read = ReadOptions {
+        method,
+        z0_ohm,
+        ..ReadOptions::default()
+    };
     let (name, bytes) = (file.name.clone(), file.bytes.clone());
     let sweep = tokio::task::spawn_blocking(move || engine.read_sweep(&name, &bytes, &read))
         .await

@@ -333,6 +333,7 @@ fn run_engine(
     let read = ReadOptions {
         method: Some(method),
         z0_ohm: input.z0_ohm,
+        ..ReadOptions::default()
     };
     let sweep = match engine.read_sweep(&input.file.name, &input.file.bytes, &read) {
         Ok(s) => s,
