@@ -1,4 +1,6 @@
-//! Shared helpers for the integration tests and reference checks.
+//! Shared helpers for the integration tests and reference checks; [`service`] starts the real service.
+
+pub mod service;
 
 use std::path::PathBuf;
 use std::process::Command;

@@ -1,0 +1,301 @@
+//! `henrybook demo`: the service on a local demo database, loaded through its own HTTP API with the
+//! invented parts and sweeps of `demo-data/manifest.json` (format in CONTRACT.md), then a table of
+//! results and verdicts, a band query, and tokens to explore with; serves until Ctrl-C.
+//! Running it again reuses the database: existing parts and identical uploads are recognised.
+
+use crate::app::Application;
+use crate::settings::Settings;
+use crate::store::tokens::Role;
+use anyhow::{Context, bail};
+use serde_json::{Value, json};
+use std::net::SocketAddr;
+use std::path::PathBuf;
+use std::time::{Duration, Instant};
+
+#[derive(Debug, clap::Args)]
+pub struct DemoArgs {
+    /// Folder for the demo database (created when missing).
+    #[arg(long, default_value = ".henrybook-demo")]
+    pub folder: PathBuf,
+    /// The demo data folder holding manifest.json.
+    #[arg(long, default_value = "demo-data")]
+    pub data: PathBuf,
+    /// Address to serve on.
+    #[arg(long, env = "HENRYBOOK_LISTEN", default_value = "127.0.0.1:8480")]
+    pub listen: SocketAddr,
+    /// Load, print, and stop instead of serving until Ctrl-C.
+    #[arg(long)]
+    pub no_serve: bool,
+}
+
+struct Client {
+    http: reqwest::Client,
+    base: String,
+}
+
+impl Client {
+    async fn json(&self, req: reqwest::RequestBuilder) -> anyhow::Result<(u16, Value)> {
+        let r = req
+            .send()
+            .await
+            .context("the demo cannot reach its own service")?;
+        let status = r.status().as_u16();
+        let body = r.json::<Value>().await.unwrap_or(Value::Null);
+        Ok((status, body))
+    }
+    async fn get(&self, path: &str, token: &str) -> anyhow::Result<Value> {
+        let (status, body) = self
+            .json(
+                self.http
+                    .get(format!("{}{path}", self.base))
+                    .bearer_auth(token),
+            )
+            .await?;
+        if status != 200 {
+            bail!("GET {path}: {status} {body}");
+        }
+        Ok(body)
+    }
+}
+
+fn field(v: &Value) -> Option<String> {
+    match v {
+        Value::Null => None,
+        Value::String(s) => Some(s.clone()),
+        other => Some(other.to_string()),
+    }
+}
+
+fn fmt_scaled(v: Option<f64>, scale: f64, unit: &str) -> String {
+    v.map_or("-".to_string(), |x| format!("{:.4} {unit}", x / scale))
+}
+
+pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
+    super::init_tracing(crate::settings::LogFormat::Text);
+    let manifest_path = args.data.join("manifest.json");
+    let manifest: Value =
+        serde_json::from_slice(&std::fs::read(&manifest_path).with_context(|| {
+            format!(
+                "cannot read {} (run the demo from the repository root)",
+                manifest_path.display()
+            )
+        })?)
+        .with_context(|| format!("{} is not JSON", manifest_path.display()))?;
+
+    let mut settings = Settings::new(args.folder.join("henrybook-demo.db"));
+    settings.listen = args.listen;
+    let app = Application::build(settings).await?;
+    let base = format!("http://{}", app.address());
+    let store = app.store().clone();
+    let mut tokens = Vec::new();
+    for role in Role::ALL {
+        tokens.push(
+            store
+                .create_token(role, Some(&format!("demo-{}", role.as_str())))
+                .await?
+                .1,
+        );
+    }
+    let (reader, inspector, engineer) = (&tokens[0], &tokens[1], &tokens[2]);
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let serve_forever = !args.no_serve;
+    let server = tokio::spawn(app.run(async move {
+        if serve_forever {
+            tokio::select! {
+                _ = tokio::signal::ctrl_c() => {},
+                _ = stop_rx => {},
+            }
+        } else {
+            let _ = stop_rx.await;
+        }
+    }));
+    let c = Client {
+        http: reqwest::Client::new(),
+        base: base.clone(),
+    };
+
+    if let Some(s) = manifest["scenario"].as_str() {
+        println!("\n{s}\n");
+    }
+    let parts = manifest["parts"].as_array().cloned().unwrap_or_default();
+    // (part, lot, fit_id)
+    let mut fits: Vec<(String, String, i64)> = Vec::new();
+    for p in &parts {
+        let part_number = p["part_number"].as_str().unwrap_or_default().to_string();
+        let (status, body) = c
+            .json(
+                c.http
+                    .post(format!("{base}/api/v1/parts"))
+                    .bearer_auth(engineer)
+                    .json(
+                        &json!({"part_number": part_number, "description": p["description"],
+                                  "limits": p["limits"]}),
+                    ),
+            )
+            .await?;
+        if status != 201 && status != 409 {
+            bail!("creating part {part_number}: {status} {body}");
+        }
+        for s in p["sweeps"].as_array().cloned().unwrap_or_default() {
+            let rel = s["file"].as_str().unwrap_or_default();
+            let path = args.data.join(rel);
+            let bytes =
+                std::fs::read(&path).with_context(|| format!("cannot read {}", path.display()))?;
+            let file_name = path
+                .file_name()
+                .map(|n| n.to_string_lossy().to_string())
+                .unwrap_or_else(|| rel.to_string());
+            let lot = field(&s["lot"]).unwrap_or_default();
+            let mut form = reqwest::multipart::Form::new()
+                .part(
+                    "file",
+                    reqwest::multipart::Part::bytes(bytes).file_name(file_name),
+                )
+                .text("part_number", part_number.clone())
+                .text("lot", lot.clone());
+            for key in ["method", "z0_ohm", "dcr_ohm", "temperature_c", "operator"] {
+                if let Some(v) = field(&s[key]) {
+                    form = form.text(key, v);
+                }
+            }
+            let (status, body) = c
+                .json(
+                    c.http
+                        .post(format!("{base}/api/v1/sweeps"))
+                        .bearer_auth(inspector)
+                        .multipart(form),
+                )
+                .await?;
+            if status != 202 {
+                bail!("uploading {rel}: {status} {body}");
+            }
+            fits.push((
+                part_number.clone(),
+                lot,
+                body["fit_id"].as_i64().unwrap_or_default(),
+            ));
+        }
+    }
+
+    println!(
+        "uploaded {} sweeps of {} parts through {base}/api/v1/sweeps; fitting…",
+        fits.len(),
+        parts.len()
+    );
+    let started = Instant::now();
+    for (_, _, id) in &fits {
+        loop {
+            let f = c.get(&format!("/api/v1/fits/{id}"), reader).await?;
+            let st = f["status"].as_str().unwrap_or_default();
+            if st != "queued" && st != "running" {
+                break;
+            }
+            if started.elapsed() > Duration::from_secs(300) {
+                bail!("the fits did not finish within 5 minutes");
+            }
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+
+    // The first lot of each part with several becomes its approved baseline, so the next shows drift.
+    let mut baseline_done = std::collections::HashSet::new();
+    for (part, _, id) in &fits {
+        let several = fits.iter().filter(|f| &f.0 == part).count() > 1;
+        if several && baseline_done.insert(part.clone()) {
+            let part_now = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
+            if part_now["baseline_fit_id"].is_null() {
+                let (status, body) = c
+                    .json(
+                        c.http
+                            .post(format!("{base}/api/v1/fits/{id}/approve"))
+                            .bearer_auth(engineer)
+                            .json(&json!({"reason": "demo: the first lot is the qualification baseline"})),
+                    )
+                    .await?;
+                if status != 200 {
+                    println!(
+                        "  (could not approve fit {id} of {part}: {status} {})",
+                        body["detail"]
+                    );
+                }
+            }
+        }
+    }
+
+    println!(
+        "\n{:<14} {:<7} {:>4} {:<10} {:>14} {:>12} {:>12} {:<7} {:>9}  failed limits",
+        "part", "lot", "fit", "status", "SRF", "L0", "Rdc", "verdict", "drift σ"
+    );
+    for (part, lot, id) in &fits {
+        let f = c.get(&format!("/api/v1/fits/{id}"), reader).await?;
+        let model = &f["report"]["model"];
+        let failed: Vec<String> = f["verdict_checks"]
+            .as_array()
+            .cloned()
+            .unwrap_or_default()
+            .iter()
+            .filter(|k| k["pass"] == false)
+            .map(|k| k["limit"].as_str().unwrap_or_default().to_string())
+            .collect();
+        let drift = f["drift"]["parameters"].as_array().and_then(|ps| {
+            ps.iter()
+                .filter_map(|p| p["sigma"].as_f64())
+                .map(f64::abs)
+                .reduce(f64::max)
+        });
+        let status = f["status"].as_str().unwrap_or_default();
+        println!(
+            "{:<14} {:<7} {:>4} {:<10} {:>14} {:>12} {:>12} {:<7} {:>9}  {}",
+            part,
+            lot,
+            id,
+            status,
+            fmt_scaled(f["srf_hz"].as_f64(), 1e6, "MHz"),
+            fmt_scaled(model["l0_h"].as_f64(), 1e-6, "µH"),
+            fmt_scaled(model["rdc_ohm"].as_f64(), 1e-3, "mΩ"),
+            f["verdict"].as_str().unwrap_or("-"),
+            drift.map_or("-".to_string(), |d| format!("{d:.1}")),
+            if status == "failed" {
+                f["error"].as_str().unwrap_or_default().to_string()
+            } else {
+                failed.join(", ")
+            }
+        );
+    }
+
+    let query = "/api/v1/parts?srf_min_hz=1e7&srf_max_hz=1e8&sort=srf_hz";
+    let band = c.get(query, reader).await?;
+    println!("\nParts whose self-resonant frequency lies in 10–100 MHz (GET {query}):");
+    let items = band["items"].as_array().cloned().unwrap_or_default();
+    if items.is_empty() {
+        println!("  none");
+    }
+    for p in items {
+        println!(
+            "  {:<14} SRF {:>12}   {}",
+            p["part_number"].as_str().unwrap_or_default(),
+            fmt_scaled(p["srf_hz"].as_f64(), 1e6, "MHz"),
+            p["description"].as_str().unwrap_or_default()
+        );
+    }
+
+    println!("\nThe API is at {base}/api/v1 (description: api/openapi.yaml). Tokens for this run:");
+    println!("  reader:    {reader}");
+    println!("  inspector: {inspector}");
+    println!("  engineer:  {engineer}");
+    println!("e.g. curl -H 'Authorization: Bearer {reader}' '{base}{query}'");
+    println!(
+        "Caution: measuring energised power parts or parts at high voltage is hazardous; follow local \
+         codes and licensed practice. The demo data is invented."
+    );
+    if serve_forever {
+        println!(
+            "\nServing until Ctrl-C (database: {}).",
+            args.folder.display()
+        );
+    } else {
+        let _ = stop_tx.send(());
+    }
+    server.await.context("the demo server stopped")??;
+    Ok(())
+}

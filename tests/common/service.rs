@@ -1,0 +1,243 @@
+//! `spawn_app()`: the real service on 127.0.0.1 with a free port and its own temporary database, with
+//! one token per role and a request helper per endpoint.
+
+use henrybook::app::Application;
+use henrybook::jobs::{CoreEngine, Engine};
+use henrybook::model::{ImpedanceModel, LumpedModel};
+use henrybook::settings::Settings;
+use henrybook::store::Store;
+use henrybook::store::tokens::Role;
+use serde_json::Value;
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Duration;
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+
+pub struct TestApp {
+    pub base_url: String,
+    pub client: reqwest::Client,
+    pub reader: String,
+    pub inspector: String,
+    pub engineer: String,
+    /// A second handle on the database, for checks that look under the API.
+    pub store: Store,
+    pub database_path: PathBuf,
+    stop: Option<oneshot::Sender<()>>,
+    server: Option<JoinHandle<anyhow::Result<()>>>,
+    /// Keeps the temporary folder (and database) alive; shared with a restarted app.
+    pub dir: Arc<tempfile::TempDir>,
+}
+
+/// Test settings: a short lease and poll so restarts are quick.
+pub fn test_settings(path: PathBuf) -> Settings {
+    let mut s = Settings::new(path);
+    s.workers = 2;
+    s.lease = Duration::from_millis(600);
+    s.poll_interval = Duration::from_millis(50);
+    s.shutdown_grace = Duration::from_secs(10);
+    s
+}
+
+pub async fn spawn_app() -> TestApp {
+    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
+    let settings = test_settings(dir.path().join("henrybook.db"));
+    spawn_app_with(dir, settings, Arc::new(CoreEngine), None).await
+}
+
+/// Starts an application on `settings` (its database may already hold data and tokens).
+pub async fn spawn_app_with(
+    dir: Arc<tempfile::TempDir>,
+    settings: Settings,
+    engine: Arc<dyn Engine>,
+    tokens: Option<[String; 3]>,
+) -> TestApp {
+    let database_path = settings.database_path.clone();
+    let app = Application::build_with_engine(settings, engine)
+        .await
+        .expect("the application builds");
+    let base_url = format!("http://127.0.0.1:{}", app.port());
+    let store = Store::open(&database_path)
+        .await
+        .expect("second store handle");
+    let [reader, inspector, engineer] = match tokens {
+        Some(t) => t,
+        None => {
+            let mut t = Vec::new();
+            for role in Role::ALL {
+                t.push(store.create_token(role, None).await.unwrap().1);
+            }
+            [t[0].clone(), t[1].clone(), t[2].clone()]
+        }
+    };
+    let (tx, rx) = oneshot::channel::<()>();
+    let server = tokio::spawn(app.run(async move {
+        let _ = rx.await;
+    }));
+    TestApp {
+        base_url,
+        client: reqwest::Client::new(),
+        reader,
+        inspector,
+        engineer,
+        store,
+        database_path,
+        stop: Some(tx),
+        server: Some(server),
+        dir,
+    }
+}
+
+impl TestApp {
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{}", self.base_url, path)
+    }
+
+    pub fn tokens(&self) -> [String; 3] {
+        [
+            self.reader.clone(),
+            self.inspector.clone(),
+            self.engineer.clone(),
+        ]
+    }
+
+    /// Graceful shutdown; waits for the server to stop.
+    pub async fn stop(mut self) {
+        if let Some(tx) = self.stop.take() {
+            let _ = tx.send(());
+        }
+        if let Some(s) = self.server.take() {
+            s.await.expect("server task").expect("server stops cleanly");
+        }
+    }
+
+    /// Stops without any shutdown work, as a crash would: the server task is aborted, leases stay.
+    pub async fn crash(mut self) {
+        self.stop.take();
+        if let Some(s) = self.server.take() {
+            s.abort();
+            let _ = s.await;
+        }
+    }
+
+    pub async fn get(&self, path: &str, token: &str) -> reqwest::Response {
+        self.client
+            .get(self.url(path))
+            .bearer_auth(token)
+            .send()
+            .await
+            .expect("request")
+    }
+
+    pub async fn get_json(&self, path: &str, token: &str) -> Value {
+        let r = self.get(path, token).await;
+        let status = r.status();
+        let body: Value = r.json().await.expect("JSON body");
+        assert!(status.is_success(), "GET {path}: {status} {body}");
+        body
+    }
+
+    pub async fn post_json(&self, path: &str, token: &str, body: &Value) -> reqwest::Response {
+        self.client
+            .post(self.url(path))
+            .bearer_auth(token)
+            .json(body)
+            .send()
+            .await
+            .expect("request")
+    }
+
+    pub async fn put_json(&self, path: &str, token: &str, body: &Value) -> reqwest::Response {
+        self.client
+            .put(self.url(path))
+            .bearer_auth(token)
+            .json(body)
+            .send()
+            .await
+            .expect("request")
+    }
+
+    /// Creates a part (as engineer) and checks the 201.
+    pub async fn create_part(&self, part_number: &str, limits: Value) {
+        let r = self
+            .post_json(
+                "/api/v1/parts",
+                &self.engineer,
+                &serde_json::json!({"part_number": part_number, "description": "test part", "limits": limits}),
+            )
+            .await;
+        assert_eq!(r.status(), 201, "{}", r.text().await.unwrap_or_default());
+    }
+
+    /// Uploads a sweep (as inspector) with the given text fields.
+    pub async fn upload(
+        &self,
+        file_name: &str,
+        bytes: Vec<u8>,
+        fields: &[(&str, &str)],
+    ) -> reqwest::Response {
+        let mut form = reqwest::multipart::Form::new().part(
+            "file",
+            reqwest::multipart::Part::bytes(bytes).file_name(file_name.to_string()),
+        );
+        for (k, v) in fields {
+            form = form.text(k.to_string(), v.to_string());
+        }
+        self.client
+            .post(self.url("/api/v1/sweeps"))
+            .bearer_auth(&self.inspector)
+            .multipart(form)
+            .send()
+            .await
+            .expect("request")
+    }
+
+    /// Polls a fit until it leaves queued/running (at most `timeout`).
+    pub async fn wait_for_fit(&self, fit_id: i64, timeout: Duration) -> Value {
+        let deadline = tokio::time::Instant::now() + timeout;
+        loop {
+            let fit = self
+                .get_json(&format!("/api/v1/fits/{fit_id}"), &self.reader)
+                .await;
+            let status = fit["status"].as_str().unwrap_or_default().to_string();
+            if status != "queued" && status != "running" {
+                return fit;
+            }
+            assert!(
+                tokio::time::Instant::now() < deadline,
+                "fit {fit_id} still {status} after {timeout:?}"
+            );
+            tokio::time::sleep(Duration::from_millis(25)).await;
+        }
+    }
+}
+
+/// An impedance CSV of a known lumped model, noise-free, on a log grid, with σ = 0.2 % of |Z| per
+/// point (a synthetic sweep from a known model, for recovery and query tests).
+pub fn synthetic_csv(model: &LumpedModel, f_min_hz: f64, f_max_hz: f64, points: usize) -> Vec<u8> {
+    let mut out = String::from("frequency_hz,z_real_ohm,z_imag_ohm,sigma_ohm\n");
+    for i in 0..points {
+        let f = f_min_hz * (f_max_hz / f_min_hz).powf(i as f64 / (points - 1) as f64);
+        let z = model.impedance(f);
+        out.push_str(&format!(
+            "{f:.9e},{:.12e},{:.12e},{:.6e}\n",
+            z.re,
+            z.im,
+            2e-3 * z.norm()
+        ));
+    }
+    out.into_bytes()
+}
+
+/// A simple lumped model: L0, Rdc, Cp, no other elements.
+pub fn simple_model(l0_h: f64, rdc_ohm: f64, cp_f: f64) -> LumpedModel {
+    LumpedModel {
+        l0_h,
+        rdc_ohm,
+        k_ac_ohm_per_sqrt_hz: 0.0,
+        rp_ohm: None,
+        cp_f,
+        ls_h: 0.0,
+        sections: vec![],
+    }
+}

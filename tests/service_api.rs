@@ -1,0 +1,704 @@
+//! The registry service over real HTTP: a real server on a random loopback port with its own
+//! temporary database. Sweeps here are the invented demo files or synthetic sweeps made from a known
+//! model (marked where used).
+
+use henrybook::model::{Section, SectionKind};
+use henrybook_tests::repo_root;
+use henrybook_tests::service::{
+    TestApp, simple_model, spawn_app, spawn_app_with, synthetic_csv, test_settings,
+};
+use serde_json::{Value, json};
+use std::sync::Arc;
+use std::time::Duration;
+
+const FIT_TIMEOUT: Duration = Duration::from_secs(60);
+
+fn demo_file(rel: &str) -> Vec<u8> {
+    std::fs::read(repo_root().join("demo-data").join(rel)).expect("demo file")
+}
+
+async fn upload_synthetic(app: &TestApp, part: &str, lot: &str, csv: Vec<u8>) -> i64 {
+    let r = app
+        .upload(
+            &format!("{part}-{lot}.csv"),
+            csv,
+            &[("part_number", part), ("lot", lot), ("method", "direct")],
+        )
+        .await;
+    assert_eq!(r.status(), 202, "{}", r.text().await.unwrap_or_default());
+    let body: Value = r.json().await.unwrap();
+    body["fit_id"].as_i64().unwrap()
+}
+
+fn numbers(v: &Value) -> Vec<String> {
+    v["items"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p["part_number"].as_str().unwrap().to_string())
+        .collect()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_uploaded_sweep_is_fitted_and_its_result_can_be_polled_and_downloaded() {
+    // Arrange
+    let app = spawn_app().await;
+    app.create_part(
+        "OMW-L10U-BK",
+        json!({"l_nominal_h": 1e-5, "l_test_frequency_hz": 1e5, "l_tolerance_percent": 20,
+               "dcr_max_ohm": 0.018, "srf_min_hz": 1.2e7}),
+    )
+    .await;
+    let bytes = demo_file("OMW-L10U-BK/lot-2611A_shunt-thru.s2p");
+    let fields = [
+        ("part_number", "OMW-L10U-BK"),
+        ("lot", "2611A"),
+        ("method", "shunt-thru"),
+        ("z0_ohm", "50"),
+        ("dcr_ohm", "0.0119"),
+        ("temperature_c", "23"),
+        ("operator", "A. Marsh"),
+    ];
+
+    // Act
+    let r = app
+        .upload("lot-2611A_shunt-thru.s2p", bytes.clone(), &fields)
+        .await;
+
+    // Assert
+    assert_eq!(r.status(), 202);
+    let accepted: Value = r.json().await.unwrap();
+    assert_eq!(accepted["duplicate"], false);
+    let fit_id = accepted["fit_id"].as_i64().unwrap();
+    assert_eq!(accepted["status_url"], format!("/api/v1/fits/{fit_id}"));
+    let fit = app.wait_for_fit(fit_id, FIT_TIMEOUT).await;
+    assert_eq!(fit["status"], "succeeded", "{fit}");
+    assert_eq!(fit["progress"], 1.0);
+    assert_eq!(fit["revision"], 1);
+    assert_eq!(fit["method"], "shunt-thru");
+    assert!(fit["report"]["model"].is_object());
+    assert!(fit["srf_hz"].as_f64().unwrap() > 1e6);
+    assert_eq!(fit["verdict_checks"].as_array().unwrap().len(), 3);
+    assert!(fit["verdict"] == "pass" || fit["verdict"] == "fail");
+    assert_eq!(fit["options"]["dcr"]["value_ohm"], 0.0119);
+    // The stored file is the uploaded one, byte for byte, with its SHA-256.
+    let sweep_id = fit["sweep_id"].as_i64().unwrap();
+    let stored = app
+        .get(&format!("/api/v1/sweeps/{sweep_id}/file"), &app.reader)
+        .await
+        .bytes()
+        .await
+        .unwrap();
+    assert_eq!(stored.as_ref(), bytes.as_slice());
+    assert_eq!(fit["sha256"], henrybook::store::sha256_hex(&bytes));
+    // Curves: measured and model on the same grid.
+    let c = app
+        .get_json(&format!("/api/v1/fits/{fit_id}/curves"), &app.reader)
+        .await;
+    let n = c["frequency_hz"].as_array().unwrap().len();
+    assert!(n > 100);
+    for k in [
+        "measured_z_real_ohm",
+        "measured_z_imag_ohm",
+        "sigma_ohm",
+        "model_z_real_ohm",
+        "model_z_imag_ohm",
+    ] {
+        assert_eq!(c[k].as_array().unwrap().len(), n, "{k}");
+    }
+    // Downloads.
+    let model = app
+        .get_json(&format!("/api/v1/fits/{fit_id}/model.json"), &app.reader)
+        .await;
+    assert_eq!(model["kind"], "lumped");
+    let netlist = app
+        .get(&format!("/api/v1/fits/{fit_id}/netlist.cir"), &app.reader)
+        .await;
+    assert_eq!(netlist.status(), 200);
+    assert!(
+        netlist
+            .text()
+            .await
+            .unwrap()
+            .to_lowercase()
+            .contains(".subckt")
+    );
+    let s1p = app
+        .get(&format!("/api/v1/fits/{fit_id}/model.s1p"), &app.reader)
+        .await;
+    assert_eq!(s1p.status(), 200);
+    assert!(s1p.text().await.unwrap().contains('#'));
+    // The same file with the same options again: recognised, not fitted twice.
+    let again: Value = app
+        .upload("lot-2611A_shunt-thru.s2p", bytes, &fields)
+        .await
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(again["duplicate"], true);
+    assert_eq!(again["fit_id"], fit_id);
+    let q = app.get_json("/api/v1/queue", &app.reader).await;
+    assert_eq!(q["succeeded"], 1);
+    assert_eq!(q["queued"], 0);
+    // Status list with filters.
+    let list = app
+        .get_json(
+            "/api/v1/fits?status=succeeded&part_number=OMW-L10U-BK&lot=2611A",
+            &app.reader,
+        )
+        .await;
+    assert_eq!(list["items"].as_array().unwrap().len(), 1);
+    let none = app
+        .get_json("/api/v1/fits?since=2999-01-01T00:00:00Z", &app.reader)
+        .await;
+    assert!(none["items"].as_array().unwrap().is_empty());
+    app.stop().await;
+}
+
+/// (method, path, least role); `None` = no token needed.
+fn routes() -> Vec<(&'static str, String, Option<usize>)> {
+    let (r, i, e) = (Some(0), Some(1), Some(2));
+    vec![
+        ("GET", "/api/v1/whoami".into(), r),
+        ("GET", "/api/v1/queue".into(), r),
+        ("GET", "/api/v1/fits".into(), r),
+        ("GET", "/api/v1/fits/1".into(), r),
+        ("GET", "/api/v1/fits/1/curves".into(), r),
+        ("POST", "/api/v1/fits/1/cancel".into(), i),
+        ("POST", "/api/v1/fits/1/retry".into(), i),
+        ("POST", "/api/v1/fits/1/refit".into(), e),
+        ("POST", "/api/v1/fits/1/approve".into(), e),
+        ("POST", "/api/v1/fits/1/reject".into(), e),
+        ("GET", "/api/v1/fits/1/model.json".into(), r),
+        ("GET", "/api/v1/fits/1/netlist.cir".into(), r),
+        ("GET", "/api/v1/fits/1/model.s1p".into(), r),
+        ("GET", "/api/v1/sweeps/1/file".into(), r),
+        ("POST", "/api/v1/sweeps".into(), i),
+        ("GET", "/api/v1/parts".into(), r),
+        ("POST", "/api/v1/parts".into(), e),
+        ("GET", "/api/v1/parts/P-1".into(), r),
+        ("PUT", "/api/v1/parts/P-1/limits".into(), e),
+    ]
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_route_admits_exactly_its_roles_and_refuses_no_token() {
+    let app = spawn_app().await;
+    let tokens = app.tokens();
+    for (method, path, least) in routes() {
+        let least = least.unwrap();
+        let send = |token: Option<&str>| {
+            let m = reqwest::Method::from_bytes(method.as_bytes()).unwrap();
+            let mut req = app.client.request(m, app.url(&path));
+            if let Some(t) = token {
+                req = req.bearer_auth(t);
+            }
+            req.send()
+        };
+        let r = send(None).await.unwrap();
+        assert_eq!(r.status(), 401, "{method} {path} without a token");
+        assert_eq!(
+            r.headers()["content-type"],
+            "application/problem+json",
+            "{method} {path}"
+        );
+        let body: Value = r.json().await.unwrap();
+        assert_eq!(body["type"], "urn:henrybook:problem:unauthorized");
+        let bad = send(Some("hbk_not-a-token")).await.unwrap();
+        assert_eq!(bad.status(), 401, "{method} {path} with an unknown token");
+        for (role, token) in tokens.iter().enumerate() {
+            let r = send(Some(token)).await.unwrap();
+            let status = r.status().as_u16();
+            if role < least {
+                assert_eq!(status, 403, "{method} {path} as role {role}");
+                let body: Value = r.json().await.unwrap();
+                assert_eq!(body["type"], "urn:henrybook:problem:forbidden");
+            } else {
+                assert!(
+                    status != 401 && status != 403,
+                    "{method} {path} as role {role} gave {status}"
+                );
+            }
+        }
+    }
+    for path in ["/healthz", "/readyz", "/metrics"] {
+        let r = app.client.get(app.url(path)).send().await.unwrap();
+        assert_eq!(r.status(), 200, "{path} needs no token");
+    }
+    let who = app.get_json("/api/v1/whoami", &app.engineer).await;
+    assert_eq!(who["role"], "engineer");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.max_body_bytes = 64 * 1024;
+    let app = spawn_app_with(dir, settings, Arc::new(henrybook::jobs::CoreEngine), None).await;
+    app.create_part("P-1", json!({})).await;
+    let good = demo_file("OMW-L47U-GD/lot-2618A_analyser.csv");
+    let ok = [("part_number", "P-1"), ("lot", "L1"), ("method", "direct")];
+    let junk_line_3 = b"# comment\nfrequency_hz,z_real_ohm,z_imag_ohm\n1000,abc,2\n".to_vec();
+    type Case<'a> = (
+        &'a str,
+        &'a str,
+        Vec<u8>,
+        Vec<(&'a str, &'a str)>,
+        u16,
+        &'a str,
+    );
+    let cases: Vec<Case> = vec![
+        (
+            "empty file",
+            "a.csv",
+            vec![],
+            ok.to_vec(),
+            422,
+            "bad-sweep-file",
+        ),
+        (
+            "junk on line 3",
+            "a.csv",
+            junk_line_3,
+            ok.to_vec(),
+            422,
+            "bad-sweep-file",
+        ),
+        (
+            "binary junk",
+            "a.s1p",
+            vec![0xff, 0x00, 0x13, 0x37],
+            ok.to_vec(),
+            422,
+            "bad-sweep-file",
+        ),
+        (
+            "unknown part",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "NOPE"), ("lot", "L1"), ("method", "direct")],
+            422,
+            "validation",
+        ),
+        (
+            "bad part number",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "has space"), ("lot", "L1")],
+            422,
+            "validation",
+        ),
+        (
+            "missing lot",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "P-1")],
+            422,
+            "validation",
+        ),
+        (
+            "unknown method",
+            "a.csv",
+            good.clone(),
+            vec![
+                ("part_number", "P-1"),
+                ("lot", "L1"),
+                ("method", "sideways"),
+            ],
+            422,
+            "validation",
+        ),
+        (
+            "negative z0",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "P-1"), ("lot", "L1"), ("z0_ohm", "-50")],
+            422,
+            "validation",
+        ),
+        (
+            "text dcr",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "P-1"), ("lot", "L1"), ("dcr_ohm", "low")],
+            422,
+            "validation",
+        ),
+        (
+            "impossible temperature",
+            "a.csv",
+            good.clone(),
+            vec![
+                ("part_number", "P-1"),
+                ("lot", "L1"),
+                ("temperature_c", "-300"),
+            ],
+            422,
+            "validation",
+        ),
+        (
+            "options not JSON",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "P-1"), ("lot", "L1"), ("options", "{")],
+            422,
+            "validation",
+        ),
+        (
+            "unknown option",
+            "a.csv",
+            good.clone(),
+            vec![
+                ("part_number", "P-1"),
+                ("lot", "L1"),
+                ("options", "{\"speed\": 3}"),
+            ],
+            422,
+            "validation",
+        ),
+        (
+            "unknown field",
+            "a.csv",
+            good.clone(),
+            vec![("part_number", "P-1"), ("lot", "L1"), ("colour", "red")],
+            422,
+            "validation",
+        ),
+        (
+            "too large",
+            "a.csv",
+            vec![b'1'; 100 * 1024],
+            ok.to_vec(),
+            413,
+            "payload-too-large",
+        ),
+    ];
+    for (what, name, bytes, fields, status, kind) in cases {
+        let r = app.upload(name, bytes, &fields).await;
+        assert_eq!(r.status().as_u16(), status, "{what}");
+        assert_eq!(
+            r.headers()["content-type"],
+            "application/problem+json",
+            "{what}"
+        );
+        let body: Value = r.json().await.unwrap();
+        assert_eq!(
+            body["type"],
+            format!("urn:henrybook:problem:{kind}"),
+            "{what}: {body}"
+        );
+        assert_eq!(body["status"], status, "{what}");
+        if what == "junk on line 3" {
+            assert_eq!(body["line"], 3, "{body}");
+        }
+    }
+    // A multipart body without a file at all.
+    let r = app
+        .client
+        .post(app.url("/api/v1/sweeps"))
+        .bearer_auth(&app.inspector)
+        .multipart(reqwest::multipart::Form::new().text("part_number", "P-1"))
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(r.status(), 422);
+    // Nothing stored: no sweep, no fit, no lot.
+    let q = app.get_json("/api/v1/queue", &app.reader).await;
+    assert_eq!(
+        q,
+        json!({"queued": 0, "running": 0, "succeeded": 0, "failed": 0, "cancelled": 0})
+    );
+    let part = app.get_json("/api/v1/parts/P-1", &app.reader).await;
+    assert!(part["lots"].as_array().unwrap().is_empty());
+    assert!(part["fits"].as_array().unwrap().is_empty());
+    // Bad JSON elsewhere is a problem too, and a good upload still works afterwards.
+    let r = app
+        .client
+        .post(app.url("/api/v1/parts"))
+        .bearer_auth(&app.engineer)
+        .body("{not json")
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(r.status(), 422);
+    let r = app.upload("a.csv", good, &ok).await;
+    assert_eq!(r.status(), 202);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn behavioural_queries_are_answered_from_stored_figures() {
+    // Arrange: synthetic sweeps of known models (invented for this test).
+    // Thomson f = 1/(2π√(LC)): Q-A 10 µH ‖ 5 pF → 22.508 MHz (TOOLBOX reference value);
+    // Q-B 1 µH ‖ 2 pF → 112.54 MHz; Q-C 100 µH ‖ 10 pF → 5.033 MHz (computed by hand).
+    let app = spawn_app().await;
+    for p in ["Q-A", "Q-B", "Q-C", "Q-D"] {
+        app.create_part(p, json!({})).await;
+    }
+    let a = upload_synthetic(
+        &app,
+        "Q-A",
+        "1",
+        synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 401),
+    )
+    .await;
+    let b = upload_synthetic(
+        &app,
+        "Q-B",
+        "1",
+        synthetic_csv(&simple_model(1e-6, 0.01, 2e-12), 1e5, 1e9, 401),
+    )
+    .await;
+    let c = upload_synthetic(
+        &app,
+        "Q-C",
+        "1",
+        synthetic_csv(&simple_model(1e-4, 0.3, 1e-11), 1e3, 5e7, 401),
+    )
+    .await;
+    // Q-D: 10 µH, 5 pF and a series R–L–C branch (2 Ω, 50 nH, 2 pF): a |Z| notch near 500 MHz.
+    let mut d_model = simple_model(1e-5, 0.05, 5e-12);
+    d_model.sections.push(Section {
+        kind: SectionKind::Series,
+        r_ohm: 2.0,
+        l_h: 5e-8,
+        c_f: 2e-12,
+    });
+    let d = upload_synthetic(&app, "Q-D", "1", synthetic_csv(&d_model, 1e4, 1e9, 801)).await;
+    for id in [a, b, c, d] {
+        let f = app.wait_for_fit(id, FIT_TIMEOUT).await;
+        assert_eq!(f["status"], "succeeded", "{f}");
+    }
+    let r = &app;
+    let srf = |id: i64| async move {
+        r.get_json(&format!("/api/v1/fits/{id}"), &r.reader).await["srf_hz"]
+            .as_f64()
+            .unwrap()
+    };
+    assert!((srf(a).await / 22.5079e6 - 1.0).abs() < 1e-3);
+    assert!((srf(b).await / 112.54e6 - 1.0).abs() < 1e-3);
+    assert!((srf(c).await / 5.0329e6 - 1.0).abs() < 1e-3);
+    let q = |query: &str| {
+        let path = format!("/api/v1/parts?{query}");
+        async move { r.get_json(&path, &r.reader).await }
+    };
+
+    // SRF band.
+    assert_eq!(numbers(&q("srf_min_hz=2e7&srf_max_hz=3e7").await), ["Q-A"]);
+    assert_eq!(numbers(&q("srf_min_hz=1e8").await), ["Q-B"]);
+    // Series resonance band: only Q-D has a |Z| notch, near 1/(2π√(50 nH · 2 pF)) = 503 MHz.
+    let notch = q("series_resonance_min_hz=3e8&series_resonance_max_hz=8e8").await;
+    assert_eq!(numbers(&notch), ["Q-D"], "{notch}");
+    // Effective L at 100 kHz in 9..11 µH: Q-A and Q-D (10.0002 µH), not Q-B (1 µH) or Q-C (100 µH).
+    let l = q("l_at_hz=1e5&l_min_h=9e-6&l_max_h=1.1e-5").await;
+    assert_eq!(numbers(&l), ["Q-A", "Q-D"]);
+    assert!((l["items"][0]["l_eff_h"].as_f64().unwrap() / 1e-5 - 1.0).abs() < 1e-3);
+    // DCR at most 20 mΩ: Q-B (10 mΩ).
+    assert_eq!(numbers(&q("dcr_max_ohm=0.02").await), ["Q-B"]);
+    // |Z| ≥ 500 Ω over 1–2 MHz: only Q-C (|Z(1 MHz)| = 2π·1e6·1e-4/(1 − (1/5.033)²) ≈ 654 Ω);
+    // Q-A and Q-D are about 63 Ω there, Q-B about 6.3 Ω.
+    let z = q("z_min_ohm=500&z_band_min_hz=1e6&z_band_max_hz=2e6").await;
+    assert_eq!(numbers(&z), ["Q-C"]);
+    assert!((z["items"][0]["z_min_ohm"].as_f64().unwrap() - 654.0).abs() < 5.0);
+    // A band outside a part's sweep does not count as passing: Q-C stops at 50 MHz.
+    assert!(
+        numbers(&q("z_min_ohm=1&z_band_min_hz=6e8&z_band_max_hz=9e8").await)
+            .iter()
+            .all(|p| p == "Q-B" || p == "Q-D")
+    );
+    // Sorted by SRF, descending, two per page.
+    let p1 = q("sort=-srf_hz&limit=2").await;
+    assert_eq!(numbers(&p1), ["Q-B", "Q-A"]);
+    let cursor = p1["next_cursor"].as_str().unwrap().to_string();
+    let p2 = q(&format!("sort=-srf_hz&limit=2&cursor={cursor}")).await;
+    assert_eq!(numbers(&p2), ["Q-D", "Q-C"]);
+    assert!(p2["next_cursor"].is_null());
+    // Approved only: nothing until an engineer approves Q-A's fit.
+    assert!(numbers(&q("approved_only=true").await).is_empty());
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{a}/approve"),
+            &app.engineer,
+            &json!({"reason": "first lot"}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let approved = q("approved_only=true&srf_min_hz=1e6").await;
+    assert_eq!(numbers(&approved), ["Q-A"]);
+    assert_eq!(approved["items"][0]["approved_fit_id"], a);
+    // Bad queries are problems.
+    for bad in [
+        "l_min_h=1e-6",
+        "z_min_ohm=3",
+        "srf_min_hz=-1",
+        "sort=colour",
+        "cursor=zz",
+        "limit=0",
+        "l_at_hz=1",
+    ] {
+        let r = app.get(&format!("/api/v1/parts?{bad}"), &app.reader).await;
+        assert_eq!(r.status(), 422, "{bad}");
+    }
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn verdicts_drift_approvals_and_refits_are_recorded() {
+    // Synthetic sweeps (invented): lot 1 10 µH, lot 2 10.5 µH (+5 %), both 50 mΩ, 5 pF.
+    let app = spawn_app().await;
+    app.create_part(
+        "V-1",
+        json!({"l_nominal_h": 1e-5, "l_test_frequency_hz": 1e5, "l_tolerance_percent": 20,
+               "dcr_max_ohm": 0.04, "srf_min_hz": 1.5e7}),
+    )
+    .await;
+    let f1 = upload_synthetic(
+        &app,
+        "V-1",
+        "1",
+        synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 401),
+    )
+    .await;
+    let f2 = upload_synthetic(
+        &app,
+        "V-1",
+        "2",
+        synthetic_csv(&simple_model(1.05e-5, 0.05, 5e-12), 1e4, 1e8, 401),
+    )
+    .await;
+    let d1 = app.wait_for_fit(f1, FIT_TIMEOUT).await;
+    app.wait_for_fit(f2, FIT_TIMEOUT).await;
+    // DCR 50 mΩ against at most 40 mΩ: fails by 10 mΩ; L and SRF pass.
+    assert_eq!(d1["verdict"], "fail");
+    let checks = d1["verdict_checks"].as_array().unwrap();
+    let dcr = checks.iter().find(|c| c["limit"] == "dcr_max").unwrap();
+    assert_eq!(dcr["pass"], false);
+    assert!((dcr["margin"].as_f64().unwrap() + 0.01).abs() < 1e-4);
+    assert!(
+        checks
+            .iter()
+            .filter(|c| c["limit"] != "dcr_max")
+            .all(|c| c["pass"] == true)
+    );
+    // Relaxing the limit re-judges the stored fits.
+    let r = app
+        .put_json(
+            "/api/v1/parts/V-1/limits",
+            &app.engineer,
+            &json!({"limits": {"dcr_max_ohm": 0.06}}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    assert_eq!(
+        app.get_json(&format!("/api/v1/fits/{f1}"), &app.reader)
+            .await["verdict"],
+        "pass"
+    );
+    // A rejection needs a reason; approval makes the baseline and drift appears on the other lot.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/reject"),
+            &app.engineer,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 422);
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/approve"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 403);
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/approve"),
+            &app.engineer,
+            &json!({"reason": "golden lot"}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let d2 = app
+        .get_json(&format!("/api/v1/fits/{f2}"), &app.reader)
+        .await;
+    assert_eq!(d2["drift"]["baseline_fit_id"], f1);
+    let l0 = d2["drift"]["parameters"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|p| p["name"] == "l0_h")
+        .unwrap()
+        .clone();
+    assert!((l0["percent"].as_f64().unwrap() - 5.0).abs() < 0.05, "{l0}");
+    let parts = app.get_json("/api/v1/parts?q=V-1", &app.reader).await;
+    assert_eq!(parts["items"][0]["approved_fit_id"], f1);
+    assert_eq!(parts["items"][0]["latest_fit_id"], f2);
+    // Reject lot 2 with a reason; refit lot 1 as a new revision, leaving revision 1 as it was.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f2}/reject"),
+            &app.engineer,
+            &json!({"reason": "L drifted 5 %"}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/refit"),
+            &app.engineer,
+            &json!({"options": {"max_sections": 0}}),
+        )
+        .await;
+    assert_eq!(r.status(), 202);
+    let f3 = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
+    let d3 = app.wait_for_fit(f3, FIT_TIMEOUT).await;
+    assert_eq!(d3["revision"], 2);
+    assert_eq!(d3["sweep_id"], d1["sweep_id"]);
+    assert_eq!(d3["options"]["max_sections"], 0);
+    let d1_again = app
+        .get_json(&format!("/api/v1/fits/{f1}"), &app.reader)
+        .await;
+    assert_eq!(d1_again["report"], d1["report"]);
+    assert_eq!(d1_again["approval"], "approved");
+    // The audit trail names who did what and why.
+    let part = app.get_json("/api/v1/parts/V-1", &app.reader).await;
+    let audit = part["audit"].as_array().unwrap();
+    let find = |action: &str| {
+        audit
+            .iter()
+            .find(|a| a["action"] == action)
+            .cloned()
+            .unwrap_or(Value::Null)
+    };
+    assert_eq!(find("fit-approved")["reason"], "golden lot");
+    assert_eq!(find("fit-rejected")["reason"], "L drifted 5 %");
+    assert!(
+        find("fit-rejected")["actor"]
+            .as_str()
+            .unwrap()
+            .starts_with("engineer-")
+    );
+    assert!(find("limits-changed").is_object());
+    assert_eq!(part["lots"], json!(["1", "2"]));
+    assert_eq!(part["baseline_fit_id"], f1);
+    // Cancel and retry follow the state machine.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/cancel"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 409);
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/retry"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 409);
+    app.stop().await;
+}

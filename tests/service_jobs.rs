@@ -1,0 +1,211 @@
+//! The job machinery across restarts: a crash leaves leases that expire and are re-run; a graceful
+//! shutdown gives running jobs back; every fit finishes once and its result is written once.
+//! The engine is the real one, wrapped so that a fit takes long enough to be interrupted.
+
+use henrybook::fit::{FitControl, FitError, FitOptions, FitReport};
+use henrybook::jobs::{CoreEngine, Engine};
+use henrybook::sweep::{ReadOptions, Sweep, SweepError};
+use henrybook_tests::service::{
+    TestApp, simple_model, spawn_app_with, synthetic_csv, test_settings,
+};
+use serde_json::{Value, json};
+use std::collections::HashMap;
+use std::sync::Arc;
+use std::sync::atomic::Ordering;
+use std::time::{Duration, Instant};
+
+/// The real engine, holding each fit back for `delay` first (and honouring cancellation meanwhile).
+struct SlowEngine {
+    delay: Duration,
+}
+
+impl Engine for SlowEngine {
+    fn read_sweep(&self, name: &str, bytes: &[u8], o: &ReadOptions) -> Result<Sweep, SweepError> {
+        CoreEngine.read_sweep(name, bytes, o)
+    }
+    fn fit(&self, s: &Sweep, o: &FitOptions, c: &FitControl) -> Result<FitReport, FitError> {
+        let start = Instant::now();
+        while start.elapsed() < self.delay {
+            if c.cancel.as_ref().is_some_and(|f| f.load(Ordering::SeqCst)) {
+                return Err(FitError::Cancelled);
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        CoreEngine.fit(s, o, c)
+    }
+}
+
+async fn upload_n(app: &TestApp, n: usize) -> Vec<i64> {
+    app.create_part("R-1", json!({})).await;
+    let mut ids = Vec::new();
+    for i in 0..n {
+        // Synthetic sweeps of known models (invented), all different so none is a duplicate.
+        let csv = synthetic_csv(
+            &simple_model(1e-5 * (1.0 + i as f64 / 10.0), 0.05, 5e-12),
+            1e4,
+            1e8,
+            201,
+        );
+        let r = app
+            .upload(
+                &format!("s{i}.csv"),
+                csv,
+                &[("part_number", "R-1"), ("lot", "L")],
+            )
+            .await;
+        assert_eq!(r.status(), 202);
+        ids.push(r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap());
+    }
+    ids
+}
+
+async fn wait_for_running(app: &TestApp) {
+    let deadline = Instant::now() + Duration::from_secs(20);
+    loop {
+        let q = app.get_json("/api/v1/queue", &app.reader).await;
+        if q["running"].as_i64().unwrap() > 0 {
+            return;
+        }
+        assert!(Instant::now() < deadline, "no fit started: {q}");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+}
+
+/// Counts "fit-succeeded" audit entries per fit.
+async fn successes(app: &TestApp) -> HashMap<i64, usize> {
+    let part = app.get_json("/api/v1/parts/R-1", &app.reader).await;
+    let mut n = HashMap::new();
+    for a in part["audit"].as_array().unwrap() {
+        if a["action"] == "fit-succeeded" {
+            *n.entry(a["fit_id"].as_i64().unwrap()).or_insert(0) += 1;
+        }
+    }
+    n
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn after_a_crash_queued_and_running_jobs_all_finish_and_none_twice() {
+    // Arrange: a slow pool with jobs queued and running, then a crash (no shutdown work at all).
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let settings = test_settings(dir.path().join("h.db"));
+    let app = spawn_app_with(
+        dir.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(3),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 6).await;
+    wait_for_running(&app).await;
+    let before = app.get_json("/api/v1/queue", &app.reader).await;
+    assert!(
+        before["running"].as_i64().unwrap() >= 1 && before["queued"].as_i64().unwrap() >= 1,
+        "{before}"
+    );
+    let tokens = app.tokens();
+    app.crash().await;
+
+    // Act: start again on the same database.
+    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+
+    // Assert: every fit succeeds, each result is written exactly once.
+    let mut reruns = 0;
+    for id in &ids {
+        let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
+        assert_eq!(f["status"], "succeeded", "{f}");
+        if f["attempts"].as_i64().unwrap() > 1 {
+            reruns += 1;
+        }
+    }
+    assert!(reruns >= 1, "the jobs that were running were run again");
+    let n = successes(&app).await;
+    assert_eq!(n.len(), ids.len());
+    assert!(n.values().all(|&c| c == 1), "{n:?}");
+    let q = app.get_json("/api/v1/queue", &app.reader).await;
+    assert_eq!(q["succeeded"], ids.len() as i64);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_graceful_shutdown_gives_unfinished_jobs_back_and_the_next_start_runs_them() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.shutdown_grace = Duration::from_millis(200);
+    let app = spawn_app_with(
+        dir.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(30),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 3).await;
+    wait_for_running(&app).await;
+    let tokens = app.tokens();
+    let started = Instant::now();
+    app.stop().await;
+    assert!(
+        started.elapsed() < Duration::from_secs(10),
+        "shutdown waited for the 30 s fits"
+    );
+
+    // Nothing is left running or failed: the interrupted jobs are queued again, attempts not counted.
+    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    for id in &ids {
+        let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
+        assert_eq!(f["status"], "succeeded", "{f}");
+        assert_eq!(
+            f["attempts"], 1,
+            "a released job's attempt is not counted: {f}"
+        );
+    }
+    assert!(successes(&app).await.values().all(|&c| c == 1));
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_running_fit_can_be_cancelled_and_retried() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(2),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 2).await;
+    wait_for_running(&app).await;
+    // The first is running, the second queued: cancel both.
+    for id in &ids {
+        let r = app
+            .post_json(
+                &format!("/api/v1/fits/{id}/cancel"),
+                &app.inspector,
+                &json!({}),
+            )
+            .await;
+        assert_eq!(r.status(), 200);
+    }
+    for id in &ids {
+        let f = app.wait_for_fit(*id, Duration::from_secs(20)).await;
+        assert_eq!(f["status"], "cancelled", "{f}");
+    }
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/retry", ids[0]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let f = app.wait_for_fit(ids[0], Duration::from_secs(30)).await;
+    assert_eq!(f["status"], "succeeded", "{f}");
+    app.stop().await;
+}

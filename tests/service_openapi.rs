@@ -1,0 +1,53 @@
+//! `api/openapi.yaml` is generated from the code: this test fails when the committed file differs
+//! from what the routes generate. Regenerate with `HENRYBOOK_WRITE_OPENAPI=1 cargo test -p
+//! henrybook-tests --test service_openapi`.
+
+use henrybook_tests::repo_root;
+
+#[test]
+fn the_committed_openapi_description_matches_the_code() {
+    let generated = henrybook::http::openapi_yaml();
+    let path = repo_root().join("api/openapi.yaml");
+    if std::env::var_os("HENRYBOOK_WRITE_OPENAPI").is_some() {
+        std::fs::write(&path, &generated).expect("write api/openapi.yaml");
+    }
+    let committed = std::fs::read_to_string(&path).unwrap_or_default();
+    assert!(
+        committed == generated,
+        "api/openapi.yaml is out of date; regenerate it with HENRYBOOK_WRITE_OPENAPI=1 cargo test -p henrybook-tests --test service_openapi"
+    );
+}
+
+#[test]
+fn the_description_covers_every_route_of_the_contract() {
+    let api = henrybook::http::openapi();
+    let paths: Vec<&String> = api.paths.paths.keys().collect();
+    for p in [
+        "/healthz",
+        "/readyz",
+        "/metrics",
+        "/api/v1/whoami",
+        "/api/v1/queue",
+        "/api/v1/fits",
+        "/api/v1/fits/{fit_id}",
+        "/api/v1/fits/{fit_id}/curves",
+        "/api/v1/fits/{fit_id}/cancel",
+        "/api/v1/fits/{fit_id}/retry",
+        "/api/v1/fits/{fit_id}/refit",
+        "/api/v1/fits/{fit_id}/approve",
+        "/api/v1/fits/{fit_id}/reject",
+        "/api/v1/fits/{fit_id}/model.json",
+        "/api/v1/fits/{fit_id}/netlist.cir",
+        "/api/v1/fits/{fit_id}/model.s1p",
+        "/api/v1/sweeps",
+        "/api/v1/sweeps/{sweep_id}/file",
+        "/api/v1/parts",
+        "/api/v1/parts/{part_number}",
+        "/api/v1/parts/{part_number}/limits",
+    ] {
+        assert!(
+            paths.iter().any(|k| k.as_str() == p),
+            "{p} is missing from the description"
+        );
+    }
+}
