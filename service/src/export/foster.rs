@@ -145,6 +145,8 @@ const EDGE_TOL: f64 = 1e-9;
 /// the parallel form from Y = 1/Z's partial fractions instead.
 pub fn foster_realisation(m: &RationalModel) -> Result<FosterRealisation, ExportError> {
     check_finite(m)?;
+    let cleaned = without_negligible_terms(m);
+    let m = &cleaned;
     check_passive(m)?;
     let series_err = match terms_to_cells(m) {
         Ok(cells) => {
@@ -283,6 +285,36 @@ fn min_real_part(m: &RationalModel) -> f64 {
     grid.iter()
         .map(|&f| m.impedance(f).re)
         .fold(f64::INFINITY, f64::min)
+}
+
+/// `d_ohm` and `e_h` below 1e-12 of the model's impedance scale (a vector fit leaves such residue-level
+/// values, 1e-20 Ω or 1e-22 H) are set to zero: written as elements they would change nothing but make
+/// a simulator's matrix needlessly ill-conditioned. The error stated is measured after this.
+fn without_negligible_terms(m: &RationalModel) -> RationalModel {
+    let w_max = m
+        .real_poles
+        .iter()
+        .map(|p| p.pole_rad_per_s.abs())
+        .chain(m.complex_poles.iter().map(|p| p.pole_rad_per_s.norm()))
+        .fold(0.0f64, f64::max);
+    let z_scale = m
+        .real_poles
+        .iter()
+        .map(|p| p.pole_rad_per_s.abs())
+        .chain(m.complex_poles.iter().map(|p| p.pole_rad_per_s.norm()))
+        .map(|w| m.impedance(w / (2.0 * PI)).norm())
+        .filter(|z| z.is_finite())
+        .fold(0.0f64, f64::max);
+    let mut out = m.clone();
+    if z_scale > 0.0 {
+        if out.d_ohm.abs() < 1e-12 * z_scale {
+            out.d_ohm = 0.0;
+        }
+        if out.e_h.abs() * w_max < 1e-12 * z_scale {
+            out.e_h = 0.0;
+        }
+    }
+    out
 }
 
 /// Each partial-fraction term of `m` (read as an impedance) as a positive-element cell.
@@ -672,6 +704,16 @@ pub fn rational_subcircuit(
 ) -> Result<String, ExportError> {
     let [lo, hi] = ctx.checked_band()?;
     let real = foster_realisation(model)?;
+    let mut net = Netlist::new();
+    match real.form {
+        FosterForm::Series => write_series(&mut net, &real.cells, PIN_A, PIN_B),
+        FosterForm::Parallel => write_parallel(&mut net, &real.cells, PIN_A, PIN_B),
+        FosterForm::Mixed => {
+            let x = net.node();
+            write_series(&mut net, &real.cells, PIN_A, x);
+            write_parallel(&mut net, &real.block, x, PIN_B);
+        }
+    }
     let model_z = |f: f64| model.impedance(f);
     let res = resonances(&model_z, lo, hi);
     let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
@@ -683,34 +725,7 @@ pub fn rational_subcircuit(
         if z_model.norm() == 0.0 || !z_model.norm().is_finite() {
             return Err(ExportError::NotFinite { frequency_hz: f });
         }
-        let smallest = match real.form {
-            FosterForm::Series => real
-                .cells
-                .iter()
-                .flat_map(|c| {
-                    let rs = match c {
-                        FosterCell::Resonator {
-                            rs_ohm: Some(rs), ..
-                        } => *rs,
-                        _ => f64::INFINITY,
-                    };
-                    [c.impedance(f).norm(), rs]
-                })
-                .fold(f64::INFINITY, f64::min),
-            // Parallel branches: the cell formula gives each branch's admittance.
-            FosterForm::Parallel => real
-                .cells
-                .iter()
-                .map(|c| 1.0 / c.impedance(f).norm())
-                .fold(f64::INFINITY, f64::min),
-            FosterForm::Mixed => real
-                .cells
-                .iter()
-                .map(|c| c.impedance(f).norm())
-                .chain(real.block.iter().map(|c| 1.0 / c.impedance(f).norm()))
-                .fold(f64::INFINITY, f64::min),
-        };
-        spread = spread.max(z_model.norm() / smallest);
+        spread = spread.max(z_model.norm() / net.min_element_impedance(f));
         let e = (real.impedance(f) - z_model).norm() / z_model.norm();
         if e > max_err {
             max_err = e;
@@ -719,8 +734,9 @@ pub fn rational_subcircuit(
     }
     let bound = stated_bound(max_err, spread);
 
-    let mut net = Netlist::new();
-    net.comment("henrybook rational (pole-residue) model as a passive series Foster subcircuit (R, L, C only)");
+    net.comment(
+        "henrybook rational (pole-residue) model as a passive Foster subcircuit (R, L, C only)",
+    );
     for line in provenance_lines(ctx) {
         net.comment(line);
     }
@@ -762,21 +778,12 @@ pub fn rational_subcircuit(
         res.len()
     ));
     net.comment(format!(
-        "stated error = 1.25 x that maximum + 2e-15 x max |Z|/|z_series| (= {spread:.3e}: a simulator's rounding, z_series the smallest cell impedance in series) + 1e-9"
+        "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
     ));
     net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
     net.comment("pins: 1 and 2; values in ohm, henry, farad");
     net.comment("");
 
-    match real.form {
-        FosterForm::Series => write_series(&mut net, &real.cells, PIN_A, PIN_B),
-        FosterForm::Parallel => write_parallel(&mut net, &real.cells, PIN_A, PIN_B),
-        FosterForm::Mixed => {
-            let x = net.node();
-            write_series(&mut net, &real.cells, PIN_A, x);
-            write_parallel(&mut net, &real.block, x, PIN_B);
-        }
-    }
     Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
 }
 

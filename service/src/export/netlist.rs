@@ -10,6 +10,7 @@ pub(crate) const PIN_B: u32 = 2;
 pub(crate) struct Netlist {
     comments: Vec<String>,
     elements: Vec<String>,
+    values: Vec<(char, f64)>,
     names: HashSet<String>,
     next_node: u32,
 }
@@ -19,6 +20,7 @@ impl Netlist {
         Netlist {
             comments: Vec::new(),
             elements: Vec::new(),
+            values: Vec::new(),
             names: HashSet::new(),
             next_node: 3,
         }
@@ -50,6 +52,21 @@ impl Netlist {
             "duplicate element name {name}"
         );
         self.elements.push(format!("{name} {a} {b} {value:e}"));
+        self.values.push((kind.unwrap_or('R'), value));
+    }
+
+    /// The smallest |impedance| of any single element at `frequency_hz`: with the largest |Z| it sets
+    /// how many digits a nodal solve loses (see `export::stated_bound`).
+    pub(crate) fn min_element_impedance(&self, frequency_hz: f64) -> f64 {
+        let w = 2.0 * std::f64::consts::PI * frequency_hz;
+        self.values
+            .iter()
+            .map(|&(kind, v)| match kind {
+                'L' => w * v,
+                'C' => 1.0 / (w * v),
+                _ => v,
+            })
+            .fold(f64::INFINITY, f64::min)
     }
 
     pub(crate) fn render(&self, subckt: &str) -> String {

@@ -35,61 +35,7 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
             .map_or(Complex64::new(0.0, 0.0), |l| l.impedance(f));
         impedance_with_skin(model, skin, l0_h, f)
     };
-    let [lo, hi] = band;
-    let model_z = |f: f64| model.impedance(f);
-    let res = resonances(&model_z, lo, hi);
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
-    let mut max_err = 0.0f64;
-    let mut max_err_at = lo;
-    let mut spread = 1.0f64;
-    for &f in &check {
-        let z_model = model.impedance(f);
-        if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
-            return Err(ExportError::NotFinite { frequency_hz: f });
-        }
-        spread =
-            spread.max(z_model.norm() / smallest_series_impedance(model, ladder.as_ref(), l0_h, f));
-        let e = (realised(f) - z_model).norm() / z_model.norm();
-        if !e.is_finite() {
-            return Err(ExportError::NotFinite { frequency_hz: f });
-        }
-        if e > max_err {
-            max_err = e;
-            max_err_at = f;
-        }
-    }
-    let bound = stated_bound(max_err, spread);
-
     let mut net = Netlist::new();
-    net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
-    for line in provenance_lines(ctx) {
-        net.comment(line);
-    }
-    net.comment(format!(
-        "model: l0_h={:e} rdc_ohm={:e} k_ac_ohm_per_sqrt_hz={:e} rp_ohm={} cp_f={:e} ls_h={:e} sections={}",
-        model.l0_h,
-        model.rdc_ohm,
-        model.k_ac_ohm_per_sqrt_hz,
-        model.rp_ohm.map_or("none".to_string(), |r| format!("{r:e}")),
-        model.cp_f,
-        model.ls_h,
-        model.sections.len()
-    ));
-    if let Some(l) = &ladder {
-        ladder_comments(&mut net, l, model);
-    }
-    net.comment(format!(
-        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
-        check.len(),
-        res.len()
-    ));
-    net.comment(format!(
-        "stated error = 1.25 x that maximum + 2e-15 x max |Z|/|z_series| (= {spread:.3e}: a simulator's rounding, z_series the smallest element impedance in series) + 1e-9"
-    ));
-    net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
-    net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
-    net.comment("");
-
     let a = if model.ls_h > 0.0 {
         let a = net.node();
         net.element("LS", PIN_A, a, model.ls_h);
@@ -167,6 +113,59 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
             }
         }
     }
+    let [lo, hi] = band;
+    let model_z = |f: f64| model.impedance(f);
+    let res = resonances(&model_z, lo, hi);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
+    let mut max_err = 0.0f64;
+    let mut max_err_at = lo;
+    let mut spread = 1.0f64;
+    for &f in &check {
+        let z_model = model.impedance(f);
+        if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
+            return Err(ExportError::NotFinite { frequency_hz: f });
+        }
+        spread = spread.max(z_model.norm() / net.min_element_impedance(f));
+        let e = (realised(f) - z_model).norm() / z_model.norm();
+        if !e.is_finite() {
+            return Err(ExportError::NotFinite { frequency_hz: f });
+        }
+        if e > max_err {
+            max_err = e;
+            max_err_at = f;
+        }
+    }
+    let bound = stated_bound(max_err, spread);
+
+    net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
+    for line in provenance_lines(ctx) {
+        net.comment(line);
+    }
+    net.comment(format!(
+        "model: l0_h={:e} rdc_ohm={:e} k_ac_ohm_per_sqrt_hz={:e} rp_ohm={} cp_f={:e} ls_h={:e} sections={}",
+        model.l0_h,
+        model.rdc_ohm,
+        model.k_ac_ohm_per_sqrt_hz,
+        model.rp_ohm.map_or("none".to_string(), |r| format!("{r:e}")),
+        model.cp_f,
+        model.ls_h,
+        model.sections.len()
+    ));
+    if let Some(l) = &ladder {
+        ladder_comments(&mut net, l, model);
+    }
+    net.comment(format!(
+        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
+        check.len(),
+        res.len()
+    ));
+    net.comment(format!(
+        "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
+    ));
+    net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
+    net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
+    net.comment("");
+
     Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
 }
 
@@ -203,43 +202,6 @@ fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {
         model.l0_h,
         model.l0_h - l.l0_h
     ));
-}
-
-/// The smallest impedance among the elements (or R‖L cells) in series with the pins at `f`.
-fn smallest_series_impedance(
-    m: &LumpedModel,
-    ladder: Option<&SkinLadder>,
-    l0_h: f64,
-    f: f64,
-) -> f64 {
-    let w = 2.0 * std::f64::consts::PI * f;
-    let mut z = f64::INFINITY;
-    let mut take = |v: f64| {
-        if v > 0.0 {
-            z = z.min(v);
-        }
-    };
-    take(m.rdc_ohm);
-    take(w * m.ls_h);
-    let core = Complex64::new(0.0, w * l0_h);
-    take(match m.rp_ohm {
-        Some(rp) => (core * rp / (core + rp)).norm(),
-        None => core.norm(),
-    });
-    for c in ladder.map_or(&[][..], |l| &l.cells[..]) {
-        take(c.impedance(f).norm());
-    }
-    for s in &m.sections {
-        if s.kind == SectionKind::Parallel {
-            let jw = Complex64::new(0.0, w);
-            let mut y = 1.0 / s.r_ohm + (jw * s.l_h).inv();
-            if s.c_f > 0.0 {
-                y += jw * s.c_f;
-            }
-            take(y.inv().norm());
-        }
-    }
-    z
 }
 
 fn validate(m: &LumpedModel) -> Result<(), ExportError> {
