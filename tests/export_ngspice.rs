@@ -1,8 +1,7 @@
 //! The exported netlists in a real SPICE simulator: ngspice (Debian package `ngspice`) runs AC, DC
 //! operating point and transient analyses of every subcircuit, and its AC impedance must match the
-//! model within the error the netlist states. Ignored by default because ngspice is a system package
-//! (`apt-get install -y ngspice`); run with `cargo test -p henrybook-tests --test export_ngspice --
-//! --ignored`.
+//! model within the error the netlist states. ngspice is a Debian package that `.ci/setup` installs;
+//! without it these tests fail with the command that starts it.
 
 use henrybook::export::ExportContext;
 use henrybook::export::foster::rational_subcircuit;
@@ -175,7 +174,6 @@ fn choke() -> LumpedModel {
 }
 
 #[test]
-#[ignore = "needs ngspice: apt-get install -y ngspice"]
 fn ngspice_reproduces_lumped_netlists() {
     let band = [1e3, 1e8];
     let ctx = ExportContext::for_band(band[0], band[1]);
@@ -196,7 +194,6 @@ fn ngspice_reproduces_lumped_netlists() {
 }
 
 #[test]
-#[ignore = "needs ngspice: apt-get install -y ngspice"]
 fn ngspice_reproduces_a_foster_netlist() {
     // (Rs + sL) ‖ C ‖ Rp with the check values, plus a second resonator and series R and L.
     let pair = |rs: f64, l: f64, c: f64, rp: f64| {
@@ -222,7 +219,6 @@ fn ngspice_reproduces_a_foster_netlist() {
 }
 
 #[test]
-#[ignore = "needs ngspice: apt-get install -y ngspice"]
 fn ngspice_reproduces_a_parallel_block_netlist() {
     // R0 + s·Ls + R ‖ (Rs + sL + 1/(sC)) (see export_foster.rs notch_model): its pole pair's residue
     // has a negative real part, so the export uses a series chain with a parallel block.
