@@ -9,7 +9,10 @@
 //! [`fit_rational`].
 //!
 //! Everything runs on a normalised frequency s′ = s/ω₀ (ω₀ = 2π·f_max) so the columns of the least-squares
-//! systems are of similar size; every system is solved by Householder QR with column pivoting.
+//! systems are of similar size. Every tall system is first compressed to its triangle by Householder QR
+//! taken one cache-sized block of rows at a time, and the triangle solved by QR with column pivoting (which
+//! decides the numerical rank). One factorisation per relocation serves twice: its leading block is the
+//! residue system of the current poles, so their residues and error come with it.
 
 pub(crate) mod linalg;
 
@@ -17,7 +20,7 @@ use crate::fit::{Candidate, FitControl, FitError, FitOptions, FitReport, Quality
 use crate::model::rational::{ComplexPole, RealPole};
 use crate::model::{FittedModel, RationalModel};
 use crate::sweep::Sweep;
-use linalg::{PivotedQr, rational_zeros};
+use linalg::{PivotedQr, rational_zeros, tall_qr};
 use num_complex::Complex64;
 use std::f64::consts::PI;
 use std::sync::atomic::Ordering;
@@ -163,16 +166,52 @@ fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
 }
 
 /// One pole relocation: solve the relaxed linearised problem
-/// `w·[Σ cₙφₙ + d + s·e − Z·(Σ c̃ₙφₙ + d̃)] ≈ 0` with the relaxation row `Re Σₖ σ(sₖ) = K`, and return the
+/// `w·[Σ cₙφₙ + d + s·e − Z·(Σ c̃ₙφₙ + d̃)] ≈ 0` with the relaxation row `Re Σₖ σ(sₖ) = K`, and returns the
 /// zeros of σ, with unstable ones flipped into the left half-plane.
-pub(crate) fn relocate(data: &FitData, poles: &Poles) -> Option<Poles> {
+/// Also returns the residues, d and e of the poles given (what [`identify`] returns), from the same
+/// factorisation: the first N + 2 columns of the relocation system are the weighted residue system of
+/// those poles, so the leading block of its triangle (with the data as a second right-hand side) is the
+/// triangle [`identify`] would compute.
+pub(crate) fn relocate_and_identify(
+    data: &FitData,
+    poles: &Poles,
+) -> (Option<Poles>, Coefficients) {
     let k = data.len();
     let n = poles.order();
     let cols = 2 * n + 3;
     let rows = 2 * k + 1;
     let (a, b) = relocation_system(data, poles);
-    let qr = PivotedQr::new(a, rows, cols, RANK_TOL);
-    let x = qr.solve(&b);
+    let mut wz = vec![0.0; rows];
+    for i in 0..k {
+        wz[i] = data.w[i] * data.z[i].re;
+        wz[k + i] = data.w[i] * data.z[i].im;
+    }
+    let (r, qtb) = linalg::compress(&a, rows, cols, &[&b, &wz]);
+    let mut r11 = vec![0.0; (n + 2) * (n + 2)];
+    for j in 0..n + 2 {
+        r11[j * (n + 2)..(j + 1) * (n + 2)].copy_from_slice(&r[j * cols..j * cols + n + 2]);
+    }
+    let x = PivotedQr::new(r11, n + 2, n + 2, RANK_TOL).solve(&qtb[1][..n + 2]);
+    let coef = Coefficients {
+        c: x[..n].to_vec(),
+        d: x[n],
+        e: x[n + 1],
+    };
+    (relocate_from_triangle(data, poles, r, &qtb[0]), coef)
+}
+
+/// The relocation once its system is compressed to the triangle `r` and `qtb` = (Qᵀb)[..2N + 3].
+fn relocate_from_triangle(
+    data: &FitData,
+    poles: &Poles,
+    r: Vec<f64>,
+    qtb: &[f64],
+) -> Option<Poles> {
+    let k = data.len();
+    let n = poles.order();
+    let cols = 2 * n + 3;
+    let rows = 2 * k + 1;
+    let x = PivotedQr::new(r, cols, cols, RANK_TOL).solve(qtb);
     let mut c_sigma = x[n + 2..2 * n + 2].to_vec();
     let mut d_sigma = x[2 * n + 2];
 
@@ -195,8 +234,8 @@ pub(crate) fn relocate(data: &FitData, poles: &Poles) -> Option<Poles> {
         for i in 0..rows2 {
             b2[i] = -fixed * keep[(2 * n + 2) * rows + i];
         }
-        let qr2 = PivotedQr::new(a2, rows2, cols2, RANK_TOL);
-        let x2 = qr2.solve(&b2);
+        let (qr2, qtb2) = tall_qr(&a2, rows2, cols2, &b2, RANK_TOL);
+        let x2 = qr2.solve(&qtb2);
         c_sigma = x2[n + 2..2 * n + 2].to_vec();
         d_sigma = fixed;
     }
@@ -286,8 +325,8 @@ pub(crate) fn linear_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64
 pub(crate) fn identify(data: &FitData, poles: &Poles) -> Coefficients {
     let n = poles.order();
     let (a, b) = linear_system(data, poles);
-    let qr = PivotedQr::new(a, 2 * data.len(), n + 2, RANK_TOL);
-    let x = qr.solve(&b);
+    let (qr, qtb) = tall_qr(&a, 2 * data.len(), n + 2, &b, RANK_TOL);
+    let x = qr.solve(&qtb);
     Coefficients {
         c: x[..n].to_vec(),
         d: x[n],
@@ -399,9 +438,10 @@ pub(crate) fn refine(
                 .iter_mut()
                 .for_each(|v| *v /= norms[c]);
         }
-        let qr = PivotedQr::new(scaled, rows, params, RANK_TOL);
+        // The tall Jacobian is first compressed to its triangle (with Q₁ᵀr); the pivoted QR of that
+        // triangle then acts as one of the Jacobian: Qᵀr = Q₂ᵀ·(Q₁ᵀr).
+        let (qr, mut qtr) = tall_qr(&scaled, rows, params, &r, RANK_TOL);
         let rank = qr.rank();
-        let mut qtr = r.clone();
         qr.apply_qt(&mut qtr);
         // The undamped (Gauss–Newton) step could lower the cost by at most ‖(Qᵀr)₁‖²: when that is
         // negligible the fit is at its minimum.
@@ -585,54 +625,67 @@ pub(crate) fn vector_fit_data(
     let mut relocations = 0;
     let mut converged = false;
     let mut stalls = 0;
-    while relocations < settings.max_relocations {
+    // Each pass factors the relocation system of the current poles once: its leading block gives their
+    // residues (for the error and the best iterate), the whole gives the next poles. The poles reached by
+    // a relocation are therefore judged at the start of the next pass.
+    let mut last_change: Option<f64> = None;
+    loop {
         if cancelled(control) {
             return Err(FitError::Cancelled);
         }
         if deadline.is_some_and(|d| Instant::now() > d) {
             break;
         }
-        let Some(next) = relocate(data, &poles) else {
+        // The first relocations move the poles far from the starting set; the residues are only worth
+        // judging from the third relocation on, or once the poles settle.
+        let judge = last_change.is_some_and(|change| {
+            relocations >= 3 || change <= 1e-2 || relocations >= settings.max_relocations
+        });
+        if !judge && relocations >= settings.max_relocations {
+            break;
+        }
+        let (next, coef) = relocate_and_identify(data, &poles);
+        if judge {
+            let change = last_change.expect("judged after a relocation");
+            let rms = rms_weighted(data, &poles, &coef);
+            let mut flat = false;
+            if rms.is_finite() {
+                flat = best
+                    .as_ref()
+                    .is_some_and(|(b, _, _)| (rms - *b).abs() <= 1e-6 * *b);
+                let improved = best
+                    .as_ref()
+                    .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-3));
+                if improved {
+                    stalls = 0;
+                } else {
+                    stalls += 1;
+                }
+                if best.as_ref().is_none_or(|(b, _, _)| rms <= *b) {
+                    best = Some((rms, poles.clone(), coef));
+                }
+            }
+            // Poles fixed to 1e-10, or settled to 1e-6 with the error no longer changing (noisy data).
+            if change < 1e-10 || (change < 1e-6 && flat) {
+                converged = true;
+                break;
+            }
+            // Noisy data keep the poles wandering at the noise level: stop once the error has not
+            // improved for several relocations.
+            if stalls >= 3 {
+                converged = true;
+                break;
+            }
+        }
+        if relocations >= settings.max_relocations {
+            break;
+        }
+        let Some(next) = next else {
             break;
         };
         relocations += 1;
-        let change = pole_change(&poles, &next, w_lo);
+        last_change = Some(pole_change(&poles, &next, w_lo));
         poles = next;
-        // The first relocations move the poles far from the starting set; the residues (for the error and
-        // the best iterate) are only worth identifying from the third on, or once the poles settle.
-        if relocations < 3 && change > 1e-2 && relocations < settings.max_relocations {
-            continue;
-        }
-        let coef = identify(data, &poles);
-        let rms = rms_weighted(data, &poles, &coef);
-        let mut flat = false;
-        if rms.is_finite() {
-            flat = best
-                .as_ref()
-                .is_some_and(|(b, _, _)| (rms - *b).abs() <= 1e-6 * *b);
-            let improved = best
-                .as_ref()
-                .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-3));
-            if improved {
-                stalls = 0;
-            } else {
-                stalls += 1;
-            }
-            if best.as_ref().is_none_or(|(b, _, _)| rms <= *b) {
-                best = Some((rms, poles.clone(), coef));
-            }
-        }
-        // Poles fixed to 1e-10, or settled to 1e-6 with the error no longer changing (noisy data).
-        if change < 1e-10 || (change < 1e-6 && flat) {
-            converged = true;
-            break;
-        }
-        // Noisy data keep the poles wandering at the noise level: stop once the error has not improved
-        // for several relocations.
-        if stalls >= 3 {
-            converged = true;
-            break;
-        }
     }
     let (_, poles, coef) = match best {
         Some(b) => b,
