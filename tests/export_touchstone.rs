@@ -132,3 +132,24 @@ fn bad_grids_and_references_are_refused_with_the_position() {
     assert!(log_frequency_grid(1e3, 1e2, 10).is_err());
     assert!(log_frequency_grid(1e3, 1e6, 1).is_err());
 }
+
+#[test]
+fn henrybook_reads_its_own_exports_back_as_sweeps() {
+    use henrybook::sweep::{ReadOptions, read_sweep};
+    let grid = log_frequency_grid(1e3, 1e8, 101).unwrap();
+    let model = choke();
+    let csv = impedance_csv(&model, &grid).unwrap();
+    let ts = touchstone_1port(&model, &grid, 50.0, &ctx()).unwrap();
+    for (name, text, tol) in [("model.csv", &csv, 1e-15), ("model.s1p", &ts, 1e-9)] {
+        let sweep = read_sweep(name, text.as_bytes(), &ReadOptions::default())
+            .unwrap_or_else(|e| panic!("{name}: {e}"));
+        assert_eq!(sweep.frequency_hz, grid, "{name}");
+        for (z, &f) in sweep.impedance_ohm.iter().zip(&grid) {
+            let expect = model.impedance(f);
+            assert!(
+                (z - expect).norm() <= tol * expect.norm(),
+                "{name} {f}: {z} vs {expect}"
+            );
+        }
+    }
+}

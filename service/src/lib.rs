@@ -10,12 +10,26 @@
 //!   figures, giving a [`fit::FitReport`].
 //! - [`export`]: a fitted model as a SPICE subcircuit, Touchstone or CSV text.
 //!
+//! The service shell around it (async, I/O; the core never imports it):
+//! - [`store`]: SQLite through sqlx: parts, lots, sweeps, fits and revisions, the job table, query
+//!   figures, tokens, the audit trail.
+//! - [`jobs`]: the worker pool that claims jobs with a lease and runs the engine off the runtime.
+//! - [`http`]: axum routes per resource, bearer-token roles, problem+json errors.
+//! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
+//!   the baseline, the fixed grid for queries) and the API's JSON shapes.
+//! - [`app`] builds and runs the whole service; [`settings`] holds its typed settings.
+//!
 //! The command line lives in [`cli`]; `main.rs` only hands it the arguments.
 
+pub mod app;
 pub mod cli;
 pub mod export;
 pub mod fit;
 pub mod http;
+pub mod jobs;
 pub mod model;
+pub mod registry;
 pub mod server_cli;
+pub mod settings;
+pub mod store;
 pub mod sweep;

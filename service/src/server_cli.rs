@@ -1,9 +1,123 @@
 //! `henrybook serve`, `henrybook token create`, `henrybook demo`.
 
+use crate::settings::{DatabaseArgs, LogFormat, ServeArgs, Settings};
+use crate::store::Store;
+use crate::store::tokens::Role;
+use clap::{Parser, Subcommand};
 use std::process::ExitCode;
 
-// Transient: replaced by the service on the `service` branch.
+#[derive(Debug, Parser)]
+#[command(name = "henrybook", about = "The henrybook registry service")]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Serve the HTTP API and run fits.
+    Serve(ServeArgs),
+    /// Manage bearer tokens.
+    Token {
+        #[command(subcommand)]
+        command: TokenCommand,
+    },
+    /// Start the service on a local demo database, load the demo parts and sweeps through the API,
+    /// print the results, and keep serving until Ctrl-C.
+    Demo(crate::server_cli::demo::DemoArgs),
+}
+
+#[derive(Debug, Subcommand)]
+enum TokenCommand {
+    /// Create a token and print it once (only its hash is stored).
+    Create {
+        #[arg(long, value_parser = parse_role)]
+        role: Role,
+        /// Who the token is for (named in the audit trail).
+        #[arg(long)]
+        label: Option<String>,
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
+}
+
+fn parse_role(text: &str) -> Result<Role, String> {
+    Role::parse(text)
+        .ok_or_else(|| format!("role must be reader, inspector or engineer, not {text:?}"))
+}
+
+pub mod demo;
+
+/// Installs the tracing subscriber (text or JSON lines; filter from `RUST_LOG`, default info).
+pub fn init_tracing(format: LogFormat) {
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter);
+    let _ = match format {
+        LogFormat::Json => builder.json().try_init(),
+        LogFormat::Text => builder.try_init(),
+    };
+}
+
 pub fn main(args: Vec<String>) -> ExitCode {
-    eprintln!("henrybook {}: the service is not built yet", args[0]);
-    ExitCode::FAILURE
+    let cli = match Cli::try_parse_from(std::iter::once("henrybook".to_string()).chain(args)) {
+        Ok(c) => c,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() {
+                ExitCode::from(2)
+            } else {
+                ExitCode::SUCCESS
+            };
+        }
+    };
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("henrybook: cannot start the async runtime: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    let result = runtime.block_on(async move {
+        match cli.command {
+            Command::Serve(args) => {
+                init_tracing(args.log_format);
+                let settings = Settings::try_from(&args)?;
+                crate::app::Application::build(settings)
+                    .await?
+                    .run_until_stopped()
+                    .await
+            }
+            Command::Token {
+                command:
+                    TokenCommand::Create {
+                        role,
+                        label,
+                        database,
+                    },
+            } => {
+                let store = Store::open(&database.path).await?;
+                let (id, token) = store.create_token(role, label.as_deref()).await?;
+                store.close().await;
+                eprintln!(
+                    "token {id} ({}) created in {}; it is shown only now:",
+                    role.as_str(),
+                    database.path.display()
+                );
+                println!("{token}");
+                Ok(())
+            }
+            Command::Demo(args) => demo::run(args).await,
+        }
+    });
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("henrybook: {e:#}");
+            ExitCode::FAILURE
+        }
+    }
 }

@@ -25,6 +25,7 @@ use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
 use super::spice::ERROR_BOUND_KEY;
 use super::{
     ExportContext, ExportError, grid_with_resonances, log_grid, provenance_lines, resonances,
+    stated_bound,
 };
 use crate::model::{ImpedanceModel, RationalModel};
 use num_complex::Complex64;
@@ -336,21 +337,36 @@ pub fn rational_subcircuit(
     let real = foster_realisation(model)?;
     let model_z = |f: f64| model.impedance(f);
     let res = resonances(&model_z, lo, hi);
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
     let mut max_err = 0.0f64;
     let mut max_err_at = lo;
+    let mut spread = 1.0f64;
     for &f in &check {
         let z_model = model.impedance(f);
         if z_model.norm() == 0.0 || !z_model.norm().is_finite() {
             return Err(ExportError::NotFinite { frequency_hz: f });
         }
+        let smallest = real
+            .cells
+            .iter()
+            .flat_map(|c| {
+                let rs = match c {
+                    FosterCell::Resonator {
+                        rs_ohm: Some(rs), ..
+                    } => *rs,
+                    _ => f64::INFINITY,
+                };
+                [c.impedance(f).norm(), rs]
+            })
+            .fold(f64::INFINITY, f64::min);
+        spread = spread.max(z_model.norm() / smallest);
         let e = (real.impedance(f) - z_model).norm() / z_model.norm();
         if e > max_err {
             max_err = e;
             max_err_at = f;
         }
     }
-    let bound = 1.25 * max_err + 1e-8;
+    let bound = stated_bound(max_err, spread);
 
     let mut net = Netlist::new();
     net.comment("henrybook rational (pole-residue) model as a passive series Foster subcircuit (R, L, C only)");
@@ -372,6 +388,9 @@ pub fn rational_subcircuit(
         "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
         check.len(),
         res.len()
+    ));
+    net.comment(format!(
+        "stated error = 1.25 x that maximum + 2e-15 x max |Z|/|z_series| (= {spread:.3e}: a simulator's rounding, z_series the smallest cell impedance in series) + 1e-9"
     ));
     net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
     net.comment("pins: 1 and 2; values in ohm, henry, farad");

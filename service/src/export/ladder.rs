@@ -115,7 +115,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
     let k = m.k_ac_ohm_per_sqrt_hz;
     let model_z = |f: f64| impedance_with_skin(m, Complex64::new(k * f.sqrt(), 0.0), m.l0_h, f);
     let res = resonances(&model_z, lo, hi);
-    let grid = grid_with_resonances(lo, hi, 25.0, 100, 500, &res, 12);
+    let grid = grid_with_resonances(lo, hi, 25.0, 100, 500, &res, 30);
     let n_corner = ((hi / lo).log10() + 2.0) * CORNERS_PER_DECADE;
     let corners_hz = log_grid(lo / 10.0, hi * 10.0, n_corner.ceil() as usize + 1);
     let n = corners_hz.len();
@@ -240,7 +240,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         max_reactance_ohm: 0.0,
         internal_inductance_h: [0.0; 2],
     };
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
     for &f in &check {
         let z = ladder.impedance(f);
         let target = k * f.sqrt();
@@ -258,4 +258,34 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         ladder.impedance(hi).im / (2.0 * PI * hi),
     ];
     Ok(ladder)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn winding_only(k: f64) -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.02,
+            k_ac_ohm_per_sqrt_hz: k,
+            rp_ohm: None,
+            cp_f: 0.0,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn the_ladder_is_zero_at_dc_and_follows_sqrt_f_in_band() {
+        let m = winding_only(2e-5);
+        let l = design_skin_ladder(&m, [1e3, 1e8]).unwrap();
+        assert!(l.impedance(1e-9).norm() < 1e-12, "{}", l.impedance(1e-9));
+        assert!(l.cells.iter().all(|c| c.r_ohm > 0.0 && c.l_h > 0.0));
+        assert!(l.max_real_error_rel < 1e-2, "{}", l.max_real_error_rel);
+        // Reactance is positive (an R–L network) and its X/ω falls with frequency.
+        assert!(l.internal_inductance_h[0] > l.internal_inductance_h[1]);
+        // L0 gives back about the ladder's internal inductance (tens of nH here), a fraction of L0.
+        assert!(l.l0_h < m.l0_h && l.l0_h > 0.99 * m.l0_h, "{}", l.l0_h);
+    }
 }

@@ -44,6 +44,11 @@ impl ExportContext {
         }
     }
 
+    /// A context for a fit report: its band of validity (the sweep's), nothing else yet.
+    pub fn for_report(report: &crate::fit::FitReport) -> Self {
+        Self::for_band(report.band_hz[0], report.band_hz[1])
+    }
+
     pub(crate) fn checked_band(&self) -> Result<[f64; 2], ExportError> {
         let [lo, hi] = self.band_hz;
         if !(lo.is_finite() && hi.is_finite() && lo > 0.0 && hi > lo) {
@@ -75,7 +80,10 @@ pub enum ExportError {
     InvalidGrid(String),
     #[error("invalid reference impedance z0_ohm = {0}: need a finite value > 0")]
     InvalidReference(f64),
-    #[error("the model's impedance is not finite at {frequency_hz} Hz")]
+    #[error(
+        "the model's impedance is not finite (or is zero) at {frequency_hz} Hz: a lossless resonance \
+         cannot be stated to a relative error; give the model a loss (e.g. rdc_ohm or rp_ohm)"
+    )]
     NotFinite { frequency_hz: f64 },
 }
 
@@ -173,7 +181,7 @@ pub(crate) fn resonances(z: &dyn Fn(f64) -> num_complex::Complex64, lo: f64, hi:
 }
 
 /// A log grid over `[lo, hi]` with `per_decade` points, plus `per_side` points on each side of every
-/// resonance, geometrically from 1e-9 to 3 % away (so a resonance of any Q is resolved), sorted.
+/// resonance, geometrically from 1e-10 to 3 % away (so a resonance of any Q is resolved), sorted.
 pub(crate) fn grid_with_resonances(
     lo: f64,
     hi: f64,
@@ -186,7 +194,7 @@ pub(crate) fn grid_with_resonances(
     let mut g = log_grid(lo, hi, grid_points(lo, hi, per_decade, min, max));
     for &fr in resonances_hz {
         g.push(fr);
-        for t in log_grid(1e-9, 0.03, per_side) {
+        for t in log_grid(1e-10, 0.03, per_side) {
             for f in [fr * (1.0 + t), fr / (1.0 + t)] {
                 if f > lo && f < hi {
                     g.push(f);
@@ -238,4 +246,28 @@ pub fn log_frequency_grid(
         )));
     }
     Ok(log_grid(f_min_hz, f_max_hz, points))
+}
+
+/// The passive subcircuit of either model family: [`spice::lumped_subcircuit`] or
+/// [`foster::rational_subcircuit`].
+pub fn subcircuit(
+    model: &crate::model::FittedModel,
+    ctx: &ExportContext,
+) -> Result<String, ExportError> {
+    match model {
+        crate::model::FittedModel::Lumped(m) => spice::lumped_subcircuit(m, ctx),
+        crate::model::FittedModel::Rational(m) => foster::rational_subcircuit(m, ctx),
+    }
+}
+
+/// The error a netlist states: the measured maximum with a 25 % margin for points between the check
+/// grid's, plus the floating-point floor of a simulator's nodal solve. Eliminating a node between a
+/// small series impedance z and the rest of a chain of impedance Z computes the chain's admittance as
+/// a difference of admittances about |Z|/|z| times larger, so about 2e-15 · max over f of
+/// |Z(f)| / min|z(f)| (z over the elements in series) is lost however the simulator orders its
+/// elimination. `spread` is that maximum ratio. (Measured here: a 1 mH part whose ladder holds 20 µΩ
+/// resistors loses 1.3e-5 at 100 MHz in both the test solver and plain nodal analysis, against an
+/// estimate of 3e-6 · 4; and up to 5e-11 on Foster chains with no small element, hence the 1e-9.)
+pub(crate) fn stated_bound(max_err: f64, spread: f64) -> f64 {
+    1.25 * max_err + 2e-15 * spread + 1e-9
 }

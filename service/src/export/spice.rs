@@ -10,6 +10,7 @@ use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_skin};
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
 use super::{
     ExportContext, ExportError, check_param, grid_with_resonances, provenance_lines, resonances,
+    stated_bound,
 };
 use crate::model::{ImpedanceModel, LumpedModel, SectionKind};
 use num_complex::Complex64;
@@ -37,22 +38,24 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
     let [lo, hi] = band;
     let model_z = |f: f64| model.impedance(f);
     let res = resonances(&model_z, lo, hi);
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 40);
+    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
     let mut max_err = 0.0f64;
     let mut max_err_at = lo;
+    let mut spread = 1.0f64;
     for &f in &check {
         let z_model = model.impedance(f);
         if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
             return Err(ExportError::NotFinite { frequency_hz: f });
         }
+        spread =
+            spread.max(z_model.norm() / smallest_series_impedance(model, ladder.as_ref(), l0_h, f));
         let e = (realised(f) - z_model).norm() / z_model.norm();
         if e > max_err {
             max_err = e;
             max_err_at = f;
         }
     }
-    // 1e-8 covers a simulator's own rounding at a resonance of Q up to ~1e5.
-    let bound = 1.25 * max_err + 1e-8;
+    let bound = stated_bound(max_err, spread);
 
     let mut net = Netlist::new();
     net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
@@ -76,6 +79,9 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
         check.len(),
         res.len()
+    ));
+    net.comment(format!(
+        "stated error = 1.25 x that maximum + 2e-15 x max |Z|/|z_series| (= {spread:.3e}: a simulator's rounding, z_series the smallest element impedance in series) + 1e-9"
     ));
     net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
     net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
@@ -194,6 +200,43 @@ fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {
         model.l0_h,
         model.l0_h - l.l0_h
     ));
+}
+
+/// The smallest impedance among the elements (or R‖L cells) in series with the pins at `f`.
+fn smallest_series_impedance(
+    m: &LumpedModel,
+    ladder: Option<&SkinLadder>,
+    l0_h: f64,
+    f: f64,
+) -> f64 {
+    let w = 2.0 * std::f64::consts::PI * f;
+    let mut z = f64::INFINITY;
+    let mut take = |v: f64| {
+        if v > 0.0 {
+            z = z.min(v);
+        }
+    };
+    take(m.rdc_ohm);
+    take(w * m.ls_h);
+    let core = Complex64::new(0.0, w * l0_h);
+    take(match m.rp_ohm {
+        Some(rp) => (core * rp / (core + rp)).norm(),
+        None => core.norm(),
+    });
+    for c in ladder.map_or(&[][..], |l| &l.cells[..]) {
+        take(c.impedance(f).norm());
+    }
+    for s in &m.sections {
+        if s.kind == SectionKind::Parallel {
+            let jw = Complex64::new(0.0, w);
+            let mut y = 1.0 / s.r_ohm + (jw * s.l_h).inv();
+            if s.c_f > 0.0 {
+                y += jw * s.c_f;
+            }
+            take(y.inv().norm());
+        }
+    }
+    z
 }
 
 fn validate(m: &LumpedModel) -> Result<(), ExportError> {

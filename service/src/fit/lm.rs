@@ -43,7 +43,7 @@ pub struct LevenbergMarquardt {
 impl Default for LevenbergMarquardt {
     fn default() -> Self {
         LevenbergMarquardt {
-            ftol: 1e-10,
+            ftol: 1e-9,
             xtol: 1e-10,
             gtol: 1e-10,
             max_step: 5.0,
@@ -54,6 +54,58 @@ impl Default for LevenbergMarquardt {
             stop: None,
         }
     }
+}
+
+impl LevenbergMarquardt {
+    /// Starts with damping `lambda` (relative to diag(JᵀJ)); small when the start is near the answer.
+    pub fn with_initial_damping(mut self, lambda: f64) -> Self {
+        self.lambda = lambda;
+        self
+    }
+
+    /// Converges when a step lowers the cost by less than `ftol`·cost or moves less than `xtol`.
+    pub fn with_tolerances(mut self, ftol: f64, xtol: f64) -> Self {
+        self.ftol = ftol;
+        self.xtol = xtol;
+        self
+    }
+}
+
+/// x·y with four accumulators, so the compiler can vectorise it.
+#[inline]
+fn dot(x: &[f64], y: &[f64]) -> f64 {
+    let mut acc = [0.0; 4];
+    let (xc, yc) = (x.chunks_exact(4), y.chunks_exact(4));
+    let tail: f64 = xc
+        .remainder()
+        .iter()
+        .zip(yc.remainder())
+        .map(|(a, b)| a * b)
+        .sum();
+    for (a, b) in xc.zip(yc) {
+        for i in 0..4 {
+            acc[i] += a[i] * b[i];
+        }
+    }
+    acc[0] + acc[1] + acc[2] + acc[3] + tail
+}
+
+/// JᵀJ and Jᵀr from the contiguous columns of J.
+pub fn normal_equations(j: &DMatrix<f64>, r: &DVector<f64>) -> (DMatrix<f64>, DVector<f64>) {
+    let (m, n) = j.shape();
+    let data = j.as_slice();
+    let col = |c: usize| &data[c * m..(c + 1) * m];
+    let mut jtj = DMatrix::zeros(n, n);
+    let mut g = DVector::zeros(n);
+    for a in 0..n {
+        g[a] = dot(col(a), r.as_slice());
+        for b in 0..=a {
+            let v = dot(col(a), col(b));
+            jtj[(a, b)] = v;
+            jtj[(b, a)] = v;
+        }
+    }
+    (jtj, g)
 }
 
 fn non_finite(what: &str) -> Error {
@@ -104,8 +156,7 @@ where
         let cost = state.get_cost();
         let n = x.len();
 
-        let jtj = j.tr_mul(&j);
-        let g = j.tr_mul(&r);
+        let (jtj, g) = normal_equations(&j, &r);
         let scale = self.scale.get_or_insert_with(|| DVector::zeros(n));
         for i in 0..n {
             scale[i] = scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
@@ -149,7 +200,12 @@ where
             let rho = (cost - cost_new) / predicted;
             if cost_new.is_finite() && cost_new < cost && predicted > 0.0 && rho > 1e-4 {
                 let j_new = problem.jacobian(&x_new)?;
-                if j_new.iter().all(|v| v.is_finite()) {
+                // A non-finite entry makes its column's squared norm non-finite.
+                let finite = (0..n).all(|c| {
+                    let col = j_new.column(c);
+                    col.norm_squared().is_finite()
+                });
+                if finite {
                     self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
                     self.lambda = self.lambda.max(1e-15);
                     self.nu = 2.0;

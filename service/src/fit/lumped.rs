@@ -167,25 +167,31 @@ fn termination_of(reason: Option<&TerminationReason>) -> Termination {
     }
 }
 
-/// Fits one structure from a starting model (which must have every element the structure has).
-pub fn fit_structure(
+/// Points above which [`fit_structure`] first converges on a thinned copy of the sweep.
+pub const COARSE_ABOVE_POINTS: usize = 600;
+/// Points of the thinned copy.
+pub const COARSE_POINTS: usize = 200;
+
+struct LmRun {
+    theta: Vec<f64>,
+    cost: f64,
+    iterations: u64,
+    termination: Termination,
+    jacobian: DMatrix<f64>,
+}
+
+fn run_lm(
     data: &FitData,
     structure: &Structure,
-    start: &LumpedModel,
+    solver: LevenbergMarquardt,
+    theta0: Vec<f64>,
     max_iterations: u64,
     time_limit: Duration,
     control: &FitControl,
-) -> Result<StructureFit, FitError> {
-    let theta0 = DVector::from_vec(structure.pack(start));
-    if theta0.iter().any(|t| !t.is_finite()) {
-        return Err(FitError::NonFinite(format!(
-            "the starting values of {} are not all positive",
-            structure.label()
-        )));
-    }
+) -> Result<LmRun, FitError> {
     let problem = LumpedProblem { data, structure };
-    let mut exec = Executor::new(problem, LevenbergMarquardt::default())
-        .configure(|s| s.param(theta0).max_iters(max_iterations))
+    let mut exec = Executor::new(problem, solver)
+        .configure(|s| s.param(DVector::from_vec(theta0)).max_iters(max_iterations))
         .timeout(time_limit);
     if let Some(flag) = &control.cancel {
         exec = exec.add_observer(CancelObserver(flag.clone()), ObserverMode::Always);
@@ -197,28 +203,109 @@ pub fn fit_structure(
             FitError::NonFinite(format!("{}: {e}", structure.label()))
         }
     })?;
-    let state = res.state();
-    let theta = state
-        .get_best_param()
-        .or(state.get_param())
-        .ok_or_else(|| FitError::NonFinite("the solver returned no parameters".into()))?
-        .clone();
-    let problem = LumpedProblem { data, structure };
-    let mut r = vec![0.0; data.residual_count()];
-    problem.residuals_into(theta.as_slice(), &mut r);
-    let cost: f64 = r.iter().map(|x| x * x).sum();
-    let mut jacobian = DMatrix::zeros(data.residual_count(), structure.len());
-    problem.jacobian_into(theta.as_slice(), &mut jacobian);
-    if !cost.is_finite() || jacobian.iter().any(|v| !v.is_finite()) {
+    let mut state = res.state;
+    let termination = termination_of(state.get_termination_reason());
+    let iterations = state.get_iter();
+    let cost = state.get_cost();
+    // The solver only accepts steps that lower the cost, so the current point is the best one and
+    // its Jacobian is in the state.
+    let (Some(theta), Some(jacobian)) = (state.take_param(), state.take_jacobian()) else {
+        return Err(FitError::NonFinite(
+            "the solver returned no parameters".into(),
+        ));
+    };
+    if !cost.is_finite() || !jacobian.norm_squared().is_finite() {
         return Err(FitError::NonFinite(structure.label()));
     }
-    Ok(StructureFit {
-        structure: structure.clone(),
+    Ok(LmRun {
         theta: theta.as_slice().to_vec(),
         cost,
-        iterations: state.get_iter(),
-        termination: termination_of(state.get_termination_reason()),
+        iterations,
+        termination,
         jacobian,
+    })
+}
+
+/// Every `stride`-th point of the sweep (the DCR prior kept): a cheap problem with nearly the same
+/// optimum, used to get close before the full-data iterations.
+fn thinned(data: &FitData, stride: usize) -> FitData {
+    let pick = |v: &Vec<f64>| v.iter().step_by(stride).copied().collect::<Vec<_>>();
+    FitData {
+        frequency_hz: pick(&data.frequency_hz),
+        sqrt_f: pick(&data.sqrt_f),
+        z: data.z.iter().step_by(stride).copied().collect(),
+        inv_sigma: pick(&data.inv_sigma),
+        dcr_prior: data.dcr_prior,
+    }
+}
+
+/// Fits one structure from a starting model (which must have every element the structure has).
+///
+/// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
+/// evenly picked points; LM then continues on the full sweep from there, so the result is the
+/// full-data optimum (the thinning only saves iterations on the full data).
+pub fn fit_structure(
+    data: &FitData,
+    structure: &Structure,
+    start: &LumpedModel,
+    max_iterations: u64,
+    time_limit: Duration,
+    control: &FitControl,
+) -> Result<StructureFit, FitError> {
+    let started = Instant::now();
+    let mut theta = structure.pack(start);
+    if theta.iter().any(|t| !t.is_finite()) {
+        return Err(FitError::NonFinite(format!(
+            "the starting values of {} are not all positive",
+            structure.label()
+        )));
+    }
+    let n = data.frequency_hz.len();
+    let mut iterations = 0;
+    if n > COARSE_ABOVE_POINTS {
+        let coarse = thinned(data, n.div_ceil(COARSE_POINTS));
+        // Only a starting point: a loose tolerance is enough.
+        let solver = LevenbergMarquardt::default().with_tolerances(1e-6, 1e-6);
+        match run_lm(
+            &coarse,
+            structure,
+            solver,
+            theta.clone(),
+            max_iterations,
+            time_limit,
+            control,
+        ) {
+            Ok(r) => {
+                theta = r.theta;
+                iterations = r.iterations;
+            }
+            Err(FitError::Cancelled) => return Err(FitError::Cancelled),
+            Err(_) => {}
+        }
+    }
+    let remaining = time_limit.saturating_sub(started.elapsed());
+    // After the coarse stage the start is close: begin nearly Gauss–Newton.
+    let solver = if iterations > 0 {
+        LevenbergMarquardt::default().with_initial_damping(1e-8)
+    } else {
+        LevenbergMarquardt::default()
+    };
+    let fine = run_lm(
+        data,
+        structure,
+        solver,
+        theta,
+        max_iterations.saturating_sub(iterations).max(1),
+        remaining.max(Duration::from_millis(1)),
+        control,
+    )?;
+    Ok(StructureFit {
+        structure: structure.clone(),
+        theta: fine.theta,
+        cost: fine.cost,
+        iterations: iterations + fine.iterations,
+        termination: fine.termination,
+        jacobian: fine.jacobian,
     })
 }
 
@@ -250,7 +337,7 @@ pub struct Spread {
 pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     let n = fit.structure.len();
     let params = fit.structure.params();
-    let jtj = fit.jacobian.tr_mul(&fit.jacobian);
+    let jtj = super::lm::normal_equations(&fit.jacobian, &DVector::zeros(fit.jacobian.nrows())).0;
     let d: Vec<f64> = (0..n)
         .map(|i| jtj[(i, i)].sqrt().max(f64::MIN_POSITIVE))
         .collect();
@@ -391,16 +478,23 @@ pub fn fit_lumped(
             return Err(FitError::Cancelled);
         }
         let now = Instant::now();
+        // Out of time: skip the remaining candidates, but always fit the first one (for at least a
+        // millisecond) so the caller gets a model whose termination says TimeLimit.
         if now >= deadline {
             ran_out_of_time = true;
-            return Ok(None);
+            if !fits.is_empty() {
+                return Ok(None);
+            }
         }
+        let budget = deadline
+            .saturating_duration_since(now)
+            .max(Duration::from_millis(1));
         match fit_structure(
             &data,
             structure,
             start,
             options.max_iterations,
-            deadline - now,
+            budget,
             control,
         ) {
             Ok(f) => {
@@ -489,7 +583,7 @@ pub fn fit_lumped(
     );
     let mut quality = derived::quality(&model, sweep);
     quality.parameters = fit.structure.len();
-    let termination = if ran_out_of_time && fit.termination == Termination::Converged {
+    let termination = if ran_out_of_time && fit.termination != Termination::MaxIterations {
         Termination::TimeLimit
     } else {
         fit.termination
@@ -507,6 +601,9 @@ pub fn fit_lumped(
         })
         .collect();
     let iterations = fit.iterations;
+    if let Some(p) = &control.progress {
+        p(1.0);
+    }
     Ok(FitReport {
         engine_version: super::ENGINE_VERSION.to_string(),
         model: FittedModel::Lumped(model),
@@ -525,7 +622,7 @@ pub fn fit_lumped(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::{ImpedanceModel, Section};
+    use crate::model::ImpedanceModel;
     use crate::sweep::Method;
     use num_complex::Complex64;
 
@@ -588,15 +685,126 @@ mod tests {
         let FittedModel::Lumped(m) = &rep.model else {
             panic!()
         };
-        eprintln!("{:#?}", rep.candidates);
-        eprintln!("{m:#?} {:?} {:?}", rep.termination, rep.not_identifiable);
         assert!((m.l0_h / truth.l0_h - 1.0).abs() < 5e-3);
         assert!((m.cp_f / truth.cp_f - 1.0).abs() < 1e-2);
-        let _ = Section {
-            kind: SectionKind::Series,
-            r_ohm: 1.0,
-            l_h: 1.0,
-            c_f: 1.0,
+        assert_eq!(rep.termination, Termination::Converged);
+        assert!(rep.candidates.iter().any(|c| c.chosen));
+    }
+}
+
+#[cfg(test)]
+mod control_tests {
+    use super::tests::synthetic;
+    use super::*;
+    use std::sync::Mutex;
+
+    fn choke() -> LumpedModel {
+        LumpedModel {
+            l0_h: 10e-6,
+            rdc_ohm: 0.05,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: Some(20e3),
+            cp_f: 3e-12,
+            ls_h: 0.0,
+            sections: vec![],
+        }
+    }
+
+    #[test]
+    fn a_set_cancel_flag_cancels() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 1);
+        let flag = Arc::new(AtomicBool::new(true));
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: None,
         };
+        assert_eq!(
+            fit_lumped(&sweep, &FitOptions::default(), &control),
+            Err(FitError::Cancelled)
+        );
+    }
+
+    #[test]
+    fn cancelling_from_the_progress_hook_stops_the_remaining_candidates() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 2);
+        let flag = Arc::new(AtomicBool::new(false));
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let (f2, s2) = (flag.clone(), seen.clone());
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: Some(Arc::new(move |p| {
+                s2.lock().unwrap().push(p);
+                f2.store(true, Ordering::Relaxed);
+            })),
+        };
+        let r = fit_lumped(&sweep, &FitOptions::default(), &control);
+        assert_eq!(r, Err(FitError::Cancelled));
+        assert_eq!(seen.lock().unwrap().len(), 1);
+    }
+
+    #[test]
+    fn progress_rises_to_one() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 3);
+        let seen = Arc::new(Mutex::new(Vec::new()));
+        let s2 = seen.clone();
+        let control = FitControl {
+            cancel: None,
+            progress: Some(Arc::new(move |p| s2.lock().unwrap().push(p))),
+        };
+        fit_lumped(&sweep, &FitOptions::default(), &control).unwrap();
+        let seen = seen.lock().unwrap();
+        assert!(seen.windows(2).all(|w| w[0] <= w[1]), "{seen:?}");
+        assert_eq!(*seen.last().unwrap(), 1.0);
+    }
+
+    #[test]
+    fn an_exhausted_time_limit_gives_a_model_marked_time_limit() {
+        let sweep = synthetic(&choke(), 1e3, 200e6, 201, 4);
+        let options = FitOptions {
+            time_limit_s: 1e-9,
+            ..FitOptions::default()
+        };
+        let r = fit_lumped(&sweep, &options, &FitControl::default()).unwrap();
+        assert_eq!(r.termination, Termination::TimeLimit);
+        assert_eq!(r.candidates.len(), 1);
+        let FittedModel::Lumped(m) = &r.model else {
+            panic!()
+        };
+        assert!(m.l0_h.is_finite() && m.l0_h > 0.0);
+    }
+
+    #[test]
+    fn bad_sweeps_and_options_are_clear_errors() {
+        let good = synthetic(&choke(), 1e3, 200e6, 50, 5);
+        let mut short = good.clone();
+        short.frequency_hz.truncate(10);
+        short.impedance_ohm.truncate(10);
+        short.sigma_ohm.truncate(10);
+        assert_eq!(
+            fit_lumped(&short, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::TooFewPoints(10))
+        );
+        let mut zero_sigma = good.clone();
+        zero_sigma.sigma_ohm[7] = 0.0;
+        assert!(matches!(
+            fit_lumped(&zero_sigma, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::InvalidOptions(m)) if m.contains("uncertainty")
+        ));
+        let mut capacitor = good.clone();
+        for z in &mut capacitor.impedance_ohm {
+            z.im = -z.im.abs() - 1.0;
+        }
+        assert!(matches!(
+            fit_lumped(&capacitor, &FitOptions::default(), &FitControl::default()),
+            Err(FitError::NotAnInductor(_))
+        ));
+        let options = FitOptions {
+            max_sections: 4,
+            ..FitOptions::default()
+        };
+        assert!(matches!(
+            fit_lumped(&good, &options, &FitControl::default()),
+            Err(FitError::InvalidOptions(_))
+        ));
     }
 }

@@ -8,7 +8,9 @@ pub mod derived;
 pub mod initial;
 pub mod lm;
 pub mod lumped;
+pub mod passivity;
 pub mod problem;
+pub mod vector;
 
 use crate::model::FittedModel;
 use serde::{Deserialize, Serialize};
@@ -47,6 +49,20 @@ pub struct FitOptions {
     pub time_limit_s: f64,
     /// Frequencies at which the report gives effective L and Q.
     pub report_frequencies_hz: Vec<f64>,
+    /// Rational fits: a fixed number of poles (real poles count one, complex pairs two); `None` grows the
+    /// order automatically.
+    pub rational_order: Option<usize>,
+    /// Rational fits: the highest order automatic selection tries.
+    pub rational_max_order: usize,
+    /// Rational fits: automatic selection stops at the first order whose weighted RMS error
+    /// (1 = residuals at the stated uncertainty) is at or below this.
+    pub rational_target_rms_weighted: f64,
+    /// Rational fits: most pole relocations per order.
+    pub rational_max_relocations: u64,
+    /// Rational fits: passivity enforcement may raise the weighted RMS error by at most this fraction
+    /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`); a model that cannot be made passive
+    /// within it is not returned.
+    pub passivity_rms_allowance: f64,
 }
 
 impl Default for FitOptions {
@@ -58,6 +74,11 @@ impl Default for FitOptions {
             max_iterations: 200,
             time_limit_s: 10.0,
             report_frequencies_hz: Vec::new(),
+            rational_order: None,
+            rational_max_order: 30,
+            rational_target_rms_weighted: 1.0,
+            rational_max_relocations: 30,
+            passivity_rms_allowance: 0.1,
         }
     }
 }
@@ -197,6 +218,8 @@ pub enum FitError {
     Cancelled,
     #[error("the fit did not produce a finite model: {0}")]
     NonFinite(String),
+    #[error("no passive model within the error bound: {0}")]
+    NotPassive(String),
 }
 
 /// Fits the family the options ask for.
@@ -221,13 +244,11 @@ pub fn fit_lumped(
     lumped::fit_lumped(sweep, options, control)
 }
 
-// Transient: replaced by vector fitting on the `vfit` branch.
+/// Vector fitting with automatic order, passivity enforcement and the shared report; see [`vector`].
 pub fn fit_rational(
-    _sweep: &crate::sweep::Sweep,
-    _options: &FitOptions,
-    _control: &FitControl,
+    sweep: &crate::sweep::Sweep,
+    options: &FitOptions,
+    control: &FitControl,
 ) -> Result<FitReport, FitError> {
-    Err(FitError::InvalidOptions(
-        "the rational fit is not built yet".into(),
-    ))
+    vector::fit_rational(sweep, options, control)
 }

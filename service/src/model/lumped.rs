@@ -231,9 +231,16 @@ impl Values {
     }
 }
 
+/// 1/z with one division.
+#[inline(always)]
+fn inv(z: Complex64) -> Complex64 {
+    let s = 1.0 / z.norm_sqr();
+    Complex64::new(z.re * s, -z.im * s)
+}
+
 /// Z at one frequency and, when `dz` is given (length = number of parameters), ∂Z/∂θ_k for θ = ln p.
 /// `sqrt_f` is √f, passed in so a fit computes it once per point.
-#[inline]
+#[inline(always)]
 pub fn eval(
     structure: &Structure,
     v: &Values,
@@ -245,24 +252,19 @@ pub fn eval(
     let jw = Complex64::new(0.0, w);
     let p = &v.p;
     let (l0, rdc, cp) = (p[0], p[1], p[2]);
-    let a = jw * l0;
-    let (core, dcore_dl0, dcore_drp) = match v.rp {
+    let a = Complex64::new(0.0, w * l0);
+    let (core, inv_den) = match v.rp {
         Some(i) => {
             let rp = p[i];
-            let den = a + rp;
-            let inv_den2 = (den * den).inv();
-            (
-                a * rp / den,
-                a * (rp * rp) * inv_den2,
-                a * a * rp * inv_den2,
-            )
+            let id = inv(a + rp);
+            (a * (rp * id), id)
         }
-        None => (a, a, Complex64::new(0.0, 0.0)),
+        None => (a, Complex64::new(0.0, 0.0)),
     };
     let k_term = v.k_ac.map_or(0.0, |i| p[i] * sqrt_f);
     let zw = rdc + k_term + core;
-    let yw = zw.inv();
-    let jwcp = jw * cp;
+    let yw = inv(zw);
+    let jwcp = Complex64::new(0.0, w * cp);
     let mut y = yw + jwcp;
     let mut z_tanks = Complex64::new(0.0, 0.0);
     // Section admittances (series) or impedances (tanks) are needed twice; keep them on the stack.
@@ -272,18 +274,18 @@ pub fn eval(
         let (r, l, c) = (p[b], p[b + 1], p[b + 2]);
         match kind {
             SectionKind::Series => {
-                let ys = (r + jw * l + (jw * c).inv()).inv();
+                let ys = inv(Complex64::new(r, w * l - 1.0 / (w * c)));
                 sec[k] = ys;
                 y += ys;
             }
             SectionKind::Parallel => {
-                let zt = (1.0 / r + (jw * l).inv() + jw * c).inv();
+                let zt = inv(Complex64::new(1.0 / r, w * c - 1.0 / (w * l)));
                 sec[k] = zt;
                 z_tanks += zt;
             }
         }
     }
-    let zy = y.inv();
+    let zy = inv(y);
     let jwls = v.ls.map_or(Complex64::new(0.0, 0.0), |i| jw * p[i]);
     let z = jwls + zy + z_tanks;
     if let Some(dz) = dz {
@@ -291,12 +293,18 @@ pub fn eval(
         let g_y = -(zy * zy);
         let yr = yw * zy;
         let g_w = yr * yr;
-        dz[0] = g_w * dcore_dl0;
+        match v.rp {
+            Some(i) => {
+                // Zc = a·rp/(a + rp): dZc/dln l0 = a·rp²/(a+rp)², dZc/dln rp = a²·rp/(a+rp)².
+                let rp = p[i];
+                let g = g_w * (inv_den * inv_den) * (a * rp);
+                dz[0] = g * rp;
+                dz[i] = g * a;
+            }
+            None => dz[0] = g_w * a,
+        }
         dz[1] = g_w * rdc;
         dz[2] = g_y * jwcp;
-        if let Some(i) = v.rp {
-            dz[i] = g_w * dcore_drp;
-        }
         if let Some(i) = v.k_ac {
             dz[i] = g_w * k_term;
         }
@@ -308,18 +316,18 @@ pub fn eval(
             let (r, l, c) = (p[b], p[b + 1], p[b + 2]);
             match kind {
                 SectionKind::Series => {
-                    // dY/dZs = −Ys²; dZs/dln r = r, dln l = jωl, dln c = −1/(jωc).
+                    // dY/dZs = −Ys²; dZs/dln r = r, dln l = jωl, dln c = −1/(jωc) = j/(ωc).
                     let g = -(g_y * sec[k] * sec[k]);
                     dz[b] = g * r;
-                    dz[b + 1] = g * (jw * l);
-                    dz[b + 2] = -(g * (jw * c).inv());
+                    dz[b + 1] = g * Complex64::new(0.0, w * l);
+                    dz[b + 2] = g * Complex64::new(0.0, 1.0 / (w * c));
                 }
                 SectionKind::Parallel => {
-                    // dZt/dYt = −Zt²; dYt/dln r = −1/r, dln l = −1/(jωl), dln c = jωc.
+                    // dZt/dYt = −Zt²; dYt/dln r = −1/r, dln l = −1/(jωl) = j/(ωl), dln c = jωc.
                     let g = -(sec[k] * sec[k]);
-                    dz[b] = -(g / r);
-                    dz[b + 1] = -(g * (jw * l).inv());
-                    dz[b + 2] = g * (jw * c);
+                    dz[b] = g * (-1.0 / r);
+                    dz[b + 1] = g * Complex64::new(0.0, 1.0 / (w * l));
+                    dz[b + 2] = g * Complex64::new(0.0, w * c);
                 }
             }
         }

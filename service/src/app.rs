@@ -1,0 +1,160 @@
+//! The whole service: open the store, bind the listener, run HTTP and the worker pool, shut down
+//! gracefully (HTTP drains, running fits finish or give their jobs back).
+
+use crate::jobs::{CoreEngine, Engine, JobsHandle, Pool, PoolSettings};
+use crate::settings::Settings;
+use crate::store::Store;
+use anyhow::Context;
+use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
+use std::future::Future;
+use std::net::SocketAddr;
+use std::sync::{Arc, OnceLock};
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+
+/// What every handler reads through axum's `State`.
+#[derive(Clone)]
+pub struct AppState {
+    pub store: Store,
+    pub jobs: JobsHandle,
+    pub engine: Arc<dyn Engine>,
+    pub settings: Arc<Settings>,
+    pub metrics: PrometheusHandle,
+}
+
+/// The process-wide Prometheus recorder (installed once, shared by every application in a process).
+pub fn metrics_handle() -> PrometheusHandle {
+    static HANDLE: OnceLock<PrometheusHandle> = OnceLock::new();
+    HANDLE
+        .get_or_init(|| {
+            let builder = PrometheusBuilder::new()
+                .set_buckets_for_metric(
+                    Matcher::Full("henrybook_fit_duration_seconds".into()),
+                    &[
+                        0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0, 5.0, 10.0,
+                    ],
+                )
+                .and_then(|b| {
+                    b.set_buckets_for_metric(
+                        Matcher::Full("henrybook_http_request_duration_seconds".into()),
+                        &[
+                            0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.5, 1.0, 5.0,
+                        ],
+                    )
+                })
+                .expect("bucket lists are not empty");
+            let recorder = builder.build_recorder();
+            let handle = recorder.handle();
+            // Another recorder may already be installed (e.g. by a test harness); then this handle
+            // renders empty text, which /metrics reports honestly.
+            let _ = metrics::set_global_recorder(recorder);
+            handle
+        })
+        .clone()
+}
+
+pub struct Application {
+    listener: TcpListener,
+    address: SocketAddr,
+    state: AppState,
+    pool: Pool,
+}
+
+impl Application {
+    /// Opens the database (applying migrations) and binds the listener; nothing runs until
+    /// [`Application::run`].
+    pub async fn build(settings: Settings) -> anyhow::Result<Application> {
+        Application::build_with_engine(settings, Arc::new(CoreEngine)).await
+    }
+
+    /// As [`Application::build`], with another engine (tests wrap the real one).
+    pub async fn build_with_engine(
+        settings: Settings,
+        engine: Arc<dyn Engine>,
+    ) -> anyhow::Result<Application> {
+        let store = Store::open(&settings.database_path).await?;
+        let listener = TcpListener::bind(settings.listen)
+            .await
+            .with_context(|| format!("cannot listen on {}", settings.listen))?;
+        let address = listener.local_addr()?;
+        let pool = Pool::new(store.clone(), engine.clone(), PoolSettings::from(&settings));
+        let state = AppState {
+            store,
+            jobs: pool.handle(),
+            engine,
+            settings: Arc::new(settings),
+            metrics: metrics_handle(),
+        };
+        Ok(Application {
+            listener,
+            address,
+            state,
+            pool,
+        })
+    }
+
+    pub fn address(&self) -> SocketAddr {
+        self.address
+    }
+
+    pub fn port(&self) -> u16 {
+        self.address.port()
+    }
+
+    pub fn store(&self) -> &Store {
+        &self.state.store
+    }
+
+    /// Serves until Ctrl-C or SIGTERM.
+    pub async fn run_until_stopped(self) -> anyhow::Result<()> {
+        self.run(shutdown_signal()).await
+    }
+
+    /// Serves until `shutdown` completes, then drains HTTP and the worker pool and closes the store.
+    pub async fn run(
+        self,
+        shutdown: impl Future<Output = ()> + Send + 'static,
+    ) -> anyhow::Result<()> {
+        let (stop_tx, stop_rx) = watch::channel(false);
+        tokio::spawn(async move {
+            shutdown.await;
+            let _ = stop_tx.send(true);
+        });
+        let pool = tokio::spawn(self.pool.run(stop_rx.clone()));
+        let store = self.state.store.clone();
+        let router = crate::http::router(self.state);
+        let mut http_stop = stop_rx;
+        tracing::info!(address = %self.address, "henrybook is serving");
+        axum::serve(self.listener, router)
+            .with_graceful_shutdown(async move {
+                let _ = http_stop.wait_for(|s| *s).await;
+            })
+            .await
+            .context("the HTTP server stopped")?;
+        pool.await.context("the worker pool stopped")?;
+        store.close().await;
+        tracing::info!("henrybook stopped");
+        Ok(())
+    }
+}
+
+async fn shutdown_signal() {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        _ = ctrl_c => {},
+        _ = term => {},
+    }
+}

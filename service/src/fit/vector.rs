@@ -1,0 +1,980 @@
+//! Vector fitting of a scalar impedance (Gustavsen & Semlyen, IEEE Trans. Power Delivery 14(3), 1999) in its
+//! relaxed form (Gustavsen, IEEE Trans. Power Delivery 21(3), 2006): poles relocated as the zeros of a
+//! weighted scaling function σ(s), then residues, constant and proportional terms identified by linear least
+//! squares. Order selection, passivity enforcement and the report are in [`fit_rational`].
+//!
+//! Everything runs on a normalised frequency s′ = s/ω₀ (ω₀ = 2π·f_max) so the columns of the least-squares
+//! systems are of similar size; every system is solved by Householder QR with column pivoting.
+
+pub(crate) mod linalg;
+
+use crate::fit::{Candidate, FitControl, FitError, FitOptions, FitReport, Quality, Termination};
+use crate::model::rational::{ComplexPole, RealPole};
+use crate::model::{FittedModel, RationalModel};
+use crate::sweep::Sweep;
+use linalg::{PivotedQr, rational_zeros};
+use num_complex::Complex64;
+use std::f64::consts::PI;
+use std::sync::atomic::Ordering;
+use std::time::Instant;
+
+/// Relative pivot below which a least-squares column is taken as beyond the numerical rank.
+const RANK_TOL: f64 = 1e-13;
+
+/// Poles on the normalised frequency axis: real poles, and complex pairs by their member with Im > 0.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct Poles {
+    pub real: Vec<f64>,
+    pub pairs: Vec<Complex64>,
+}
+
+impl Poles {
+    pub(crate) fn order(&self) -> usize {
+        self.real.len() + 2 * self.pairs.len()
+    }
+}
+
+/// The linear part on the normalised axis: residues (real poles first, then Re, Im per pair), d and e.
+#[derive(Debug, Clone, PartialEq)]
+pub(crate) struct Coefficients {
+    pub c: Vec<f64>,
+    pub d: f64,
+    pub e: f64,
+}
+
+/// A sweep prepared for fitting: normalised s′, data, weights 1/σ.
+#[derive(Debug, Clone)]
+pub(crate) struct FitData {
+    pub omega0: f64,
+    pub s: Vec<Complex64>,
+    pub z: Vec<Complex64>,
+    pub w: Vec<f64>,
+}
+
+impl FitData {
+    pub(crate) fn new(frequency_hz: &[f64], z: &[Complex64], sigma: &[f64]) -> FitData {
+        let f_max = frequency_hz.iter().fold(0.0f64, |m, f| m.max(*f));
+        let omega0 = 2.0 * PI * f_max;
+        FitData {
+            omega0,
+            s: frequency_hz
+                .iter()
+                .map(|f| Complex64::new(0.0, 2.0 * PI * f / omega0))
+                .collect(),
+            z: z.to_vec(),
+            w: sigma.iter().map(|s| 1.0 / s).collect(),
+        }
+    }
+
+    fn len(&self) -> usize {
+        self.s.len()
+    }
+}
+
+/// Values of the partial-fraction basis at s, in the coefficient order of [`Coefficients::c`]:
+/// 1/(s − a) for a real pole; 1/(s − p) + 1/(s − p̄) and j/(s − p) − j/(s − p̄) for a pair.
+pub(crate) fn basis_at(s: Complex64, poles: &Poles, out: &mut Vec<Complex64>) {
+    out.clear();
+    for &a in &poles.real {
+        out.push((s - a).inv());
+    }
+    let j = Complex64::new(0.0, 1.0);
+    for &p in &poles.pairs {
+        let t1 = (s - p).inv();
+        let t2 = (s - p.conj()).inv();
+        out.push(t1 + t2);
+        out.push(j * (t1 - t2));
+    }
+}
+
+/// Log-spaced complex starting pairs across the band with Re = −Im/100 (Gustavsen & Semlyen 1999, §IV),
+/// and for an odd order one real pole at the geometric centre of the band.
+pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
+    let n_pairs = order / 2;
+    let mut pairs = Vec::with_capacity(n_pairs);
+    for k in 0..n_pairs {
+        let t = if n_pairs == 1 {
+            0.5
+        } else {
+            k as f64 / (n_pairs - 1) as f64
+        };
+        let im = w_lo * (w_hi / w_lo).powf(t);
+        pairs.push(Complex64::new(-im / 100.0, im));
+    }
+    let real = if order % 2 == 1 {
+        vec![-(w_lo * w_hi).sqrt()]
+    } else {
+        Vec::new()
+    };
+    Poles { real, pairs }
+}
+
+/// One pole relocation: solve the relaxed linearised problem
+/// `w·[Σ cₙφₙ + d + s·e − Z·(Σ c̃ₙφₙ + d̃)] ≈ 0` with the relaxation row `Re Σₖ σ(sₖ) = K`, and return the
+/// zeros of σ, with unstable ones flipped into the left half-plane.
+/// The relaxed relocation system, column-major `(2K + 1) × (2N + 3)`, columns [c…, d, e, c̃…, d̃], and its
+/// right-hand side.
+fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
+    let k = data.len();
+    let n = poles.order();
+    let cols = 2 * n + 3;
+    let rows = 2 * k + 1;
+    let mut a = vec![0.0; rows * cols];
+    let mut phi = Vec::with_capacity(n);
+    let mut phi_sum = vec![0.0; n];
+    let scale = {
+        let ss: f64 = data
+            .z
+            .iter()
+            .zip(&data.w)
+            .map(|(z, w)| (z * w).norm_sqr())
+            .sum();
+        ss.sqrt() / k as f64
+    };
+    for i in 0..k {
+        let s = data.s[i];
+        let w = data.w[i];
+        let wz = data.z[i] * w;
+        basis_at(s, poles, &mut phi);
+        for (j, ph) in phi.iter().enumerate() {
+            let v = ph * w;
+            a[j * rows + i] = v.re;
+            a[j * rows + k + i] = v.im;
+            let u = -wz * ph;
+            a[(n + 2 + j) * rows + i] = u.re;
+            a[(n + 2 + j) * rows + k + i] = u.im;
+            phi_sum[j] += ph.re;
+        }
+        a[n * rows + i] = w;
+        a[(n + 1) * rows + k + i] = w * s.im;
+        a[(2 * n + 2) * rows + i] = -wz.re;
+        a[(2 * n + 2) * rows + k + i] = -wz.im;
+    }
+    for j in 0..n {
+        a[(n + 2 + j) * rows + 2 * k] = scale * phi_sum[j];
+    }
+    a[(2 * n + 2) * rows + 2 * k] = scale * k as f64;
+    let mut b = vec![0.0; rows];
+    b[2 * k] = scale * k as f64;
+
+    (a, b)
+}
+
+pub(crate) fn relocate(data: &FitData, poles: &Poles) -> Option<Poles> {
+    let k = data.len();
+    let n = poles.order();
+    let cols = 2 * n + 3;
+    let rows = 2 * k + 1;
+    let (a, b) = relocation_system(data, poles);
+    let qr = PivotedQr::new(a, rows, cols, RANK_TOL);
+    let x = qr.solve(&b);
+    let mut c_sigma = x[n + 2..2 * n + 2].to_vec();
+    let mut d_sigma = x[2 * n + 2];
+
+    // Gustavsen (2006) §III: when d̃ comes out tiny (or huge) the relaxed solution is unreliable: fix d̃ and
+    // solve again without the relaxation row.
+    if !(d_sigma.is_finite() && (1e-8..=1e8).contains(&d_sigma.abs())) {
+        let fixed = if d_sigma == 0.0 || !d_sigma.is_finite() {
+            1.0
+        } else {
+            d_sigma.signum() * d_sigma.abs().clamp(1e-8, 1e8)
+        };
+        let (keep, _) = relocation_system(data, poles);
+        let rows2 = 2 * k;
+        let cols2 = 2 * n + 2;
+        let mut a2 = vec![0.0; rows2 * cols2];
+        let mut b2 = vec![0.0; rows2];
+        for j in 0..cols2 {
+            a2[j * rows2..(j + 1) * rows2].copy_from_slice(&keep[j * rows..j * rows + rows2]);
+        }
+        for i in 0..rows2 {
+            b2[i] = -fixed * keep[(2 * n + 2) * rows + i];
+        }
+        let qr2 = PivotedQr::new(a2, rows2, cols2, RANK_TOL);
+        let x2 = qr2.solve(&b2);
+        c_sigma = x2[n + 2..2 * n + 2].to_vec();
+        d_sigma = fixed;
+    }
+    if c_sigma.iter().any(|v| !v.is_finite()) {
+        return None;
+    }
+    let real: Vec<(f64, f64)> = poles
+        .real
+        .iter()
+        .zip(&c_sigma)
+        .map(|(&a, &c)| (a, c))
+        .collect();
+    let pairs: Vec<(Complex64, Complex64)> = poles
+        .pairs
+        .iter()
+        .enumerate()
+        .map(|(i, &p)| {
+            let o = poles.real.len() + 2 * i;
+            (p, Complex64::new(c_sigma[o], c_sigma[o + 1]))
+        })
+        .collect();
+    let zeros = rational_zeros(d_sigma, &real, &pairs)?;
+    Some(poles_from_eigenvalues(&zeros))
+}
+
+/// Sorts eigenvalues into real poles and pairs (keeping the member with Im > 0), flipping unstable ones.
+pub(crate) fn poles_from_eigenvalues(eig: &[Complex64]) -> Poles {
+    let scale = eig.iter().fold(0.0f64, |m, z| m.max(z.norm())).max(1e-300);
+    let mut real = Vec::new();
+    let mut pairs = Vec::new();
+    let mut neg_im = 0usize;
+    for &z in eig {
+        let stable_re = |re: f64| {
+            if re < 0.0 {
+                re
+            } else if re > 0.0 {
+                -re
+            } else {
+                // A pole on the axis would make Z infinite there: nudge it into the left half-plane.
+                -1e-9 * scale
+            }
+        };
+        if z.im.abs() <= 1e-12 * z.norm().max(1e-300) {
+            real.push(stable_re(z.re));
+        } else if z.im > 0.0 {
+            pairs.push(Complex64::new(stable_re(z.re), z.im));
+        } else {
+            neg_im += 1;
+        }
+    }
+    // Schur gives exact conjugates; if one ever went missing, keep the order by adding it back as real.
+    while neg_im > pairs.len() {
+        real.push(-scale * 1e-3);
+        neg_im -= 1;
+    }
+    real.sort_by(|a, b| b.total_cmp(a));
+    pairs.sort_by(|a, b| a.im.total_cmp(&b.im));
+    Poles { real, pairs }
+}
+
+/// The weighted least-squares matrix of the linear part for fixed poles: rows Re then Im, columns
+/// [residues…, d, e]. Column-major, `2K × (N + 2)`.
+pub(crate) fn linear_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
+    let k = data.len();
+    let n = poles.order();
+    let cols = n + 2;
+    let rows = 2 * k;
+    let mut a = vec![0.0; rows * cols];
+    let mut b = vec![0.0; rows];
+    let mut phi = Vec::with_capacity(n);
+    for i in 0..k {
+        let w = data.w[i];
+        basis_at(data.s[i], poles, &mut phi);
+        for (j, ph) in phi.iter().enumerate() {
+            a[j * rows + i] = ph.re * w;
+            a[j * rows + k + i] = ph.im * w;
+        }
+        a[n * rows + i] = w;
+        a[(n + 1) * rows + k + i] = w * data.s[i].im;
+        b[i] = w * data.z[i].re;
+        b[k + i] = w * data.z[i].im;
+    }
+    (a, b)
+}
+
+/// Residues, d and e for fixed poles by weighted linear least squares.
+pub(crate) fn identify(data: &FitData, poles: &Poles) -> Coefficients {
+    let n = poles.order();
+    let (a, b) = linear_system(data, poles);
+    let qr = PivotedQr::new(a, 2 * data.len(), n + 2, RANK_TOL);
+    let x = qr.solve(&b);
+    Coefficients {
+        c: x[..n].to_vec(),
+        d: x[n],
+        e: x[n + 1],
+    }
+}
+
+/// Z at normalised s′.
+pub(crate) fn evaluate(s: Complex64, poles: &Poles, coef: &Coefficients) -> Complex64 {
+    let mut z = Complex64::new(coef.d, 0.0) + s * coef.e;
+    for (&a, &c) in poles.real.iter().zip(&coef.c) {
+        z += c / (s - a);
+    }
+    let o = poles.real.len();
+    for (i, &p) in poles.pairs.iter().enumerate() {
+        let r = Complex64::new(coef.c[o + 2 * i], coef.c[o + 2 * i + 1]);
+        z += r / (s - p) + r.conj() / (s - p.conj());
+    }
+    z
+}
+
+/// sqrt(Σ |w·(Z_fit − Z)|² / 2K): 1 when the residuals match the stated uncertainty.
+pub(crate) fn rms_weighted(data: &FitData, poles: &Poles, coef: &Coefficients) -> f64 {
+    let ss: f64 = (0..data.len())
+        .map(|i| ((evaluate(data.s[i], poles, coef) - data.z[i]) * data.w[i]).norm_sqr())
+        .sum();
+    (ss / (2 * data.len()) as f64).sqrt()
+}
+
+/// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
+/// fixed point minimises a linearised error, not the error itself). Steps that would move a pole into the
+/// right half-plane or change the real/pair split are rejected. Returns the refined set and the number of
+/// accepted steps.
+pub(crate) fn refine(
+    data: &FitData,
+    mut poles: Poles,
+    mut coef: Coefficients,
+    max_steps: u64,
+) -> (Poles, Coefficients, u64) {
+    let k = data.len();
+    let nr = poles.real.len();
+    let np = poles.pairs.len();
+    let n = poles.order();
+    // Parameters: real poles, (Re, Im) per pair, residues c (n), d, e.
+    let params = nr + 2 * np + n + 2;
+    let rows = 2 * k;
+    let residual = |poles: &Poles, coef: &Coefficients| -> Vec<f64> {
+        let mut r = vec![0.0; rows];
+        for i in 0..k {
+            let v = (evaluate(data.s[i], poles, coef) - data.z[i]) * data.w[i];
+            r[i] = v.re;
+            r[k + i] = v.im;
+        }
+        r
+    };
+    let cost_of = |r: &[f64]| r.iter().map(|v| v * v).sum::<f64>();
+    let mut r = residual(&poles, &coef);
+    let mut cost = cost_of(&r);
+    let mut lambda: f64 = 1e-3;
+    let mut accepted = 0;
+    let mut phi = Vec::with_capacity(n);
+    let j_unit = Complex64::new(0.0, 1.0);
+    let damping_floor: Vec<f64> = poles
+        .pairs
+        .iter()
+        .map(|p| (-p.re / p.norm()).min(1e-3))
+        .collect();
+    for _ in 0..max_steps {
+        // Jacobian, column-major.
+        let mut jac = vec![0.0; rows * params];
+        for i in 0..k {
+            let s = data.s[i];
+            let w = data.w[i];
+            let mut put = |col: usize, v: Complex64| {
+                jac[col * rows + i] = v.re * w;
+                jac[col * rows + k + i] = v.im * w;
+            };
+            for (q, &a) in poles.real.iter().enumerate() {
+                let t = (s - a).inv();
+                put(q, coef.c[q] * t * t);
+            }
+            for (q, &p) in poles.pairs.iter().enumerate() {
+                let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
+                let t1 = (s - p).inv();
+                let t2 = (s - p.conj()).inv();
+                let a1 = res * t1 * t1;
+                let a2 = res.conj() * t2 * t2;
+                put(nr + 2 * q, a1 + a2);
+                put(nr + 2 * q + 1, j_unit * (a1 - a2));
+            }
+            basis_at(s, &poles, &mut phi);
+            for (q, ph) in phi.iter().enumerate() {
+                put(nr + 2 * np + q, *ph);
+            }
+            put(nr + 2 * np + n, Complex64::new(1.0, 0.0));
+            put(nr + 2 * np + n + 1, s);
+        }
+        let norms: Vec<f64> = (0..params)
+            .map(|c| {
+                let col = &jac[c * rows..(c + 1) * rows];
+                col.iter().map(|v| v * v).sum::<f64>().sqrt().max(1e-300)
+            })
+            .collect();
+        // One QR of the scaled Jacobian per step; each damping trial then solves only the small system
+        // [R; √λ·I]·v = [−Qᵀr; 0] (v = Pᵀ·u, u = D·δ).
+        let mut scaled = jac;
+        for c in 0..params {
+            scaled[c * rows..(c + 1) * rows]
+                .iter_mut()
+                .for_each(|v| *v /= norms[c]);
+        }
+        let qr = PivotedQr::new(scaled, rows, params, RANK_TOL);
+        let rank = qr.rank();
+        let mut qtr = r.clone();
+        qr.apply_qt(&mut qtr);
+        let mut improved = false;
+        while lambda < 1e12 {
+            let arows = rank + params;
+            let mut a = vec![0.0; arows * params];
+            for c in 0..params {
+                for i in 0..rank.min(c + 1) {
+                    a[c * arows + i] = qr.r(i, c);
+                }
+                a[c * arows + rank + c] = lambda.sqrt();
+            }
+            let mut b = vec![0.0; arows];
+            for i in 0..rank {
+                b[i] = -qtr[i];
+            }
+            let v = PivotedQr::new(a, arows, params, RANK_TOL).solve(&b);
+            // Undo the pivoting (and the QR's own, near-unit, column scaling).
+            let mut u = vec![0.0; params];
+            for (k, vk) in v.iter().enumerate() {
+                let (j, sc) = qr.column_at(k);
+                u[j] = vk * sc;
+            }
+            let delta: Vec<f64> = u.iter().zip(&norms).map(|(u, d)| u / d).collect();
+            let mut trial_poles = poles.clone();
+            for (q, a) in trial_poles.real.iter_mut().enumerate() {
+                *a += delta[q];
+            }
+            for (q, p) in trial_poles.pairs.iter_mut().enumerate() {
+                *p += Complex64::new(delta[nr + 2 * q], delta[nr + 2 * q + 1]);
+                // Projected onto the damping floor.
+                let z = damping_floor[q];
+                if -p.re < z * p.norm() {
+                    p.re = -z * p.im.abs() / (1.0 - z * z).sqrt();
+                }
+            }
+            // A pole may not become sharper than it was or than Q = 500: between the sweep's points
+            // nothing would stop it drifting onto the axis to fit noise.
+            let stable = trial_poles.real.iter().all(|a| *a < 0.0)
+                && trial_poles
+                    .pairs
+                    .iter()
+                    .zip(&damping_floor)
+                    .all(|(p, z)| p.im > 0.0 && -p.re >= z * p.norm() * (1.0 - 1e-12));
+            let trial_coef = Coefficients {
+                c: (0..n).map(|q| coef.c[q] + delta[nr + 2 * np + q]).collect(),
+                d: coef.d + delta[nr + 2 * np + n],
+                e: coef.e + delta[nr + 2 * np + n + 1],
+            };
+            if stable {
+                let tr = residual(&trial_poles, &trial_coef);
+                let tc = cost_of(&tr);
+                if tc.is_finite() && tc < cost {
+                    let gain = (cost - tc) / cost.max(1e-300);
+                    poles = trial_poles;
+                    coef = trial_coef;
+                    r = tr;
+                    cost = tc;
+                    lambda = (lambda / 10.0).max(1e-12);
+                    accepted += 1;
+                    improved = gain > 1e-7;
+                    break;
+                }
+            }
+            lambda *= 10.0;
+        }
+        if !improved {
+            break;
+        }
+    }
+    (poles, coef, accepted)
+}
+
+/// Converts a normalised pole–residue set to the physical model (rad/s, Ω, H).
+pub(crate) fn to_model(omega0: f64, poles: &Poles, coef: &Coefficients) -> RationalModel {
+    let o = poles.real.len();
+    RationalModel {
+        d_ohm: coef.d,
+        e_h: coef.e / omega0,
+        real_poles: poles
+            .real
+            .iter()
+            .zip(&coef.c)
+            .map(|(&a, &c)| RealPole {
+                pole_rad_per_s: a * omega0,
+                residue_ohm_rad_per_s: c * omega0,
+            })
+            .collect(),
+        complex_poles: poles
+            .pairs
+            .iter()
+            .enumerate()
+            .map(|(i, &p)| ComplexPole {
+                pole_rad_per_s: p * omega0,
+                residue_ohm_rad_per_s: Complex64::new(coef.c[o + 2 * i], coef.c[o + 2 * i + 1])
+                    * omega0,
+            })
+            .collect(),
+    }
+}
+
+/// Converts a physical model to the normalised axis of `omega0`.
+pub(crate) fn from_model(omega0: f64, model: &RationalModel) -> (Poles, Coefficients) {
+    let mut c = Vec::new();
+    let mut real = Vec::new();
+    for p in &model.real_poles {
+        real.push(p.pole_rad_per_s / omega0);
+        c.push(p.residue_ohm_rad_per_s / omega0);
+    }
+    let mut pairs = Vec::new();
+    for p in &model.complex_poles {
+        pairs.push(p.pole_rad_per_s / omega0);
+        c.push(p.residue_ohm_rad_per_s.re / omega0);
+        c.push(p.residue_ohm_rad_per_s.im / omega0);
+    }
+    (
+        Poles { real, pairs },
+        Coefficients {
+            c,
+            d: model.d_ohm,
+            e: model.e_h * omega0,
+        },
+    )
+}
+
+/// The result of vector fitting at one order, before passivity enforcement.
+#[derive(Debug, Clone)]
+pub struct VectorFit {
+    pub model: RationalModel,
+    pub rms_weighted: f64,
+    /// Pole relocations run.
+    pub relocations: u64,
+    /// Accepted Levenberg–Marquardt refinement steps after the relocations.
+    pub refinements: u64,
+    /// True when the poles stopped moving (relative change below 1e-10) before the relocation limit.
+    pub converged: bool,
+    pub(crate) poles: Poles,
+    pub(crate) coef: Coefficients,
+}
+
+/// Settings of one fixed-order vector fit.
+#[derive(Debug, Clone, Copy)]
+pub struct VectorFitSettings {
+    /// Number of poles (real poles count one, complex pairs two).
+    pub order: usize,
+    pub max_relocations: u64,
+}
+
+/// Vector fitting at a fixed order. Keeps the best (lowest weighted error) of the relocation iterates.
+pub fn vector_fit(
+    sweep: &Sweep,
+    settings: VectorFitSettings,
+    control: &FitControl,
+) -> Result<VectorFit, FitError> {
+    validate(sweep)?;
+    let data = FitData::new(&sweep.frequency_hz, &sweep.impedance_ohm, &sweep.sigma_ohm);
+    vector_fit_data(&data, settings, control, None)
+}
+
+pub(crate) fn vector_fit_data(
+    data: &FitData,
+    settings: VectorFitSettings,
+    control: &FitControl,
+    deadline: Option<Instant>,
+) -> Result<VectorFit, FitError> {
+    let w_lo = data
+        .s
+        .iter()
+        .fold(f64::INFINITY, |m, s| m.min(s.im))
+        .max(1e-9);
+    let w_hi = data.s.iter().fold(0.0f64, |m, s| m.max(s.im));
+    let mut poles = starting_poles(settings.order, w_lo, w_hi);
+    let mut best: Option<(f64, Poles, Coefficients)> = None;
+    let mut relocations = 0;
+    let mut converged = false;
+    let mut stalls = 0;
+    while relocations < settings.max_relocations {
+        if cancelled(control) {
+            return Err(FitError::Cancelled);
+        }
+        if deadline.is_some_and(|d| Instant::now() > d) {
+            break;
+        }
+        let Some(next) = relocate(data, &poles) else {
+            break;
+        };
+        relocations += 1;
+        let change = pole_change(&poles, &next);
+        poles = next;
+        // Early relocations move the poles far; the residues (for the error and the best iterate) are only
+        // worth identifying once the poles are within 1 % of settling, or at the last relocation.
+        if change > 1e-2 && relocations < settings.max_relocations {
+            continue;
+        }
+        let coef = identify(data, &poles);
+        let rms = rms_weighted(data, &poles, &coef);
+        let mut flat = false;
+        if rms.is_finite() {
+            flat = best
+                .as_ref()
+                .is_some_and(|(b, _, _)| (rms - *b).abs() <= 1e-6 * *b);
+            let improved = best
+                .as_ref()
+                .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-9));
+            if improved {
+                stalls = 0;
+            } else {
+                stalls += 1;
+            }
+            if best.as_ref().is_none_or(|(b, _, _)| rms <= *b) {
+                best = Some((rms, poles.clone(), coef));
+            }
+        }
+        // Poles fixed to 1e-10, or settled to 1e-6 with the error no longer changing (noisy data).
+        if change < 1e-10 || (change < 1e-6 && flat) {
+            converged = true;
+            break;
+        }
+        // Noisy data keep the poles wandering at the noise level: stop once the error has not improved
+        // for several relocations.
+        if stalls >= 4 {
+            converged = true;
+            break;
+        }
+    }
+    let (_, poles, coef) = match best {
+        Some(b) => b,
+        None => {
+            let coef = identify(data, &poles);
+            let rms = rms_weighted(data, &poles, &coef);
+            (rms, poles, coef)
+        }
+    };
+    let (poles, coef, refinements) = refine(data, poles, coef, 40);
+    let rms = rms_weighted(data, &poles, &coef);
+    if !rms.is_finite() || coef.c.iter().any(|c| !c.is_finite()) {
+        return Err(FitError::NonFinite(format!(
+            "vector fitting at order {} gave a non-finite model",
+            settings.order
+        )));
+    }
+    Ok(VectorFit {
+        model: to_model(data.omega0, &poles, &coef),
+        rms_weighted: rms,
+        relocations,
+        refinements,
+        converged,
+        poles,
+        coef,
+    })
+}
+
+fn cancelled(control: &FitControl) -> bool {
+    control
+        .cancel
+        .as_ref()
+        .is_some_and(|c| c.load(Ordering::Relaxed))
+}
+
+/// Largest relative move of any pole, or ∞ when the real/pair split changed.
+fn pole_change(old: &Poles, new: &Poles) -> f64 {
+    if old.real.len() != new.real.len() || old.pairs.len() != new.pairs.len() {
+        return f64::INFINITY;
+    }
+    let mut worst = 0.0f64;
+    for (a, b) in old.real.iter().zip(&new.real) {
+        worst = worst.max((a - b).abs() / b.abs().max(1e-300));
+    }
+    for (a, b) in old.pairs.iter().zip(&new.pairs) {
+        worst = worst.max((a - b).norm() / b.norm().max(1e-300));
+    }
+    worst
+}
+
+fn validate(sweep: &Sweep) -> Result<(), FitError> {
+    let n = sweep.frequency_hz.len();
+    if n < 20 {
+        return Err(FitError::TooFewPoints(n));
+    }
+    if sweep.impedance_ohm.len() != n || sweep.sigma_ohm.len() != n {
+        return Err(FitError::InvalidOptions(format!(
+            "the sweep has {n} frequencies but {} impedances and {} uncertainties",
+            sweep.impedance_ohm.len(),
+            sweep.sigma_ohm.len()
+        )));
+    }
+    for (i, f) in sweep.frequency_hz.iter().enumerate() {
+        if !(f.is_finite() && *f >= 0.0) {
+            return Err(FitError::InvalidOptions(format!(
+                "frequency {i} is {f}: frequencies must be finite and not negative"
+            )));
+        }
+        if i > 0 && *f <= sweep.frequency_hz[i - 1] {
+            return Err(FitError::InvalidOptions(format!(
+                "frequency {i} ({f} Hz) does not increase"
+            )));
+        }
+    }
+    if let Some(i) = sweep
+        .impedance_ohm
+        .iter()
+        .position(|z| !(z.re.is_finite() && z.im.is_finite()))
+    {
+        return Err(FitError::InvalidOptions(format!(
+            "impedance point {i} is not finite"
+        )));
+    }
+    if let Some(i) = sweep
+        .sigma_ohm
+        .iter()
+        .position(|s| !(s.is_finite() && *s > 0.0))
+    {
+        return Err(FitError::InvalidOptions(format!(
+            "uncertainty of point {i} is {}: it must be finite and positive",
+            sweep.sigma_ohm[i]
+        )));
+    }
+    Ok(())
+}
+
+/// One order tried by [`fit_rational`].
+struct Tried {
+    order: usize,
+    fit: VectorFit,
+    /// The passive model and its weighted error, or why enforcement failed.
+    passive: Result<(RationalModel, f64), String>,
+}
+
+/// Vector fitting with automatic order selection and passivity enforcement, giving the shared report.
+///
+/// Orders grow by one complex pair (2, 4, 6, …) until the passive model's weighted RMS error reaches
+/// `rational_target_rms_weighted`, stops improving (less than 2 % better than the best for two orders in a
+/// row), or `rational_max_order` / the time limit is reached. The chosen order is the lowest that meets
+/// the target, otherwise the lowest within 5 % of the best error. Every candidate is made passive by
+/// [`passivity`](crate::fit::passivity); one that cannot be within the allowance is not chosen, and when
+/// none can, the fit fails with [`FitError::NotPassive`].
+pub fn fit_rational(
+    sweep: &Sweep,
+    options: &FitOptions,
+    control: &FitControl,
+) -> Result<FitReport, FitError> {
+    validate(sweep)?;
+    check_options(options, sweep.frequency_hz.len())?;
+    let started = Instant::now();
+    let deadline = started + std::time::Duration::from_secs_f64(options.time_limit_s);
+    let data = FitData::new(&sweep.frequency_hz, &sweep.impedance_ohm, &sweep.sigma_ohm);
+    let orders: Vec<usize> = match options.rational_order {
+        Some(n) => vec![n],
+        None => (2..=options.rational_max_order).step_by(2).collect(),
+    };
+    let mut tried: Vec<Tried> = Vec::new();
+    let mut iterations = 0u64;
+    let mut timed_out = false;
+    let mut best_rms = f64::INFINITY;
+    let mut no_gain = 0;
+    for (idx, &order) in orders.iter().enumerate() {
+        if Instant::now() > deadline {
+            timed_out = true;
+            break;
+        }
+        let settings = VectorFitSettings {
+            order,
+            max_relocations: options.rational_max_relocations,
+        };
+        let fit = match vector_fit_data(&data, settings, control, Some(deadline)) {
+            Ok(f) => f,
+            Err(FitError::Cancelled) => return Err(FitError::Cancelled),
+            Err(e) if tried.is_empty() && idx + 1 == orders.len() => return Err(e),
+            Err(_) => continue,
+        };
+        iterations += fit.relocations;
+        let passive = crate::fit::passivity::enforce(
+            &data,
+            &fit.poles,
+            &fit.coef,
+            options.passivity_rms_allowance,
+        )
+        .map(|e| (to_model(data.omega0, &fit.poles, &e.coef), e.rms_after))
+        .map_err(|e| e.to_string());
+        let rms = passive.as_ref().map_or(f64::INFINITY, |p| p.1);
+        tried.push(Tried {
+            order,
+            fit,
+            passive,
+        });
+        if let Some(p) = &control.progress {
+            p((idx + 1) as f64 / orders.len() as f64);
+        }
+        if rms <= options.rational_target_rms_weighted {
+            break;
+        }
+        if rms < best_rms * 0.98 {
+            no_gain = 0;
+        } else {
+            no_gain += 1;
+        }
+        best_rms = best_rms.min(rms);
+        if no_gain >= 2 {
+            break;
+        }
+    }
+    let passive: Vec<&Tried> = tried.iter().filter(|t| t.passive.is_ok()).collect();
+    let rms_of = |t: &Tried| t.passive.as_ref().map_or(f64::INFINITY, |p| p.1);
+    let best = passive
+        .iter()
+        .map(|t| rms_of(t))
+        .fold(f64::INFINITY, f64::min);
+    let chosen = passive
+        .iter()
+        .find(|t| rms_of(t) <= options.rational_target_rms_weighted)
+        .or_else(|| passive.iter().find(|t| rms_of(t) <= best * 1.05))
+        .map(|t| t.order);
+    let Some(chosen_order) = chosen else {
+        let reasons: Vec<String> = tried
+            .iter()
+            .map(|t| {
+                format!(
+                    "order {}: {}",
+                    t.order,
+                    t.passive.as_ref().err().map_or("", |s| s.as_str())
+                )
+            })
+            .collect();
+        if tried.is_empty() {
+            return Err(FitError::NonFinite(
+                "vector fitting produced no model at any order".into(),
+            ));
+        }
+        return Err(FitError::NotPassive(reasons.join("; ")));
+    };
+    let n_data = 2 * sweep.frequency_hz.len();
+    let candidates = tried
+        .iter()
+        .map(|t| {
+            let parameters = 2 * t.order + 2;
+            let rms = rms_of(t).min(f64::MAX);
+            let cost = rms * rms * n_data as f64;
+            Candidate {
+                label: format!(
+                    "rational order {} ({} real, {} pairs){}",
+                    t.order,
+                    t.fit.poles.real.len(),
+                    t.fit.poles.pairs.len(),
+                    if t.passive.is_ok() {
+                        ""
+                    } else {
+                        ", not passive"
+                    }
+                ),
+                parameters,
+                cost,
+                bic: cost + parameters as f64 * (n_data as f64).ln(),
+                chosen: t.order == chosen_order,
+            }
+        })
+        .collect();
+    let chosen = tried
+        .iter()
+        .find(|t| t.order == chosen_order)
+        .expect("the chosen order was tried");
+    let (model, _) = chosen
+        .passive
+        .clone()
+        .expect("only passive candidates are chosen");
+    let quality = Quality {
+        parameters: 2 * chosen_order + 2,
+        ..crate::fit::derived::quality(&model, sweep)
+    };
+    let termination = if timed_out {
+        Termination::TimeLimit
+    } else if chosen.fit.converged {
+        Termination::Converged
+    } else {
+        Termination::MaxIterations
+    };
+    let band_hz = [
+        sweep.frequency_hz[0],
+        *sweep.frequency_hz.last().expect("validated non-empty"),
+    ];
+    // Resonances and L/Q come from the rational model itself; its low-frequency inductance is exact
+    // (dZ/ds at s = 0); it has no Cp or Rp element to compare with.
+    let derived = crate::fit::derived::derived_figures(
+        &model,
+        band_hz,
+        &options.report_frequencies_hz,
+        &crate::fit::derived::KnownElements {
+            l0_h: Some(model.dc_inductance_h()).filter(|l| l.is_finite() && *l > 0.0),
+            cp_f: None,
+            rp_ohm: None,
+        },
+    );
+    Ok(FitReport {
+        engine_version: crate::fit::ENGINE_VERSION.to_string(),
+        model: FittedModel::Rational(model),
+        uncertainty: None,
+        not_identifiable: Vec::new(),
+        correlation: None,
+        derived,
+        quality,
+        termination,
+        iterations,
+        candidates,
+        band_hz,
+    })
+}
+
+fn check_options(options: &FitOptions, points: usize) -> Result<(), FitError> {
+    let max_order = options.rational_order.unwrap_or(options.rational_max_order);
+    if max_order == 0 {
+        return Err(FitError::InvalidOptions(
+            "the rational order must be at least 1".into(),
+        ));
+    }
+    // 2K real equations must exceed the 2N + 3 unknowns of the relocation system.
+    if 2 * max_order + 3 > 2 * points {
+        return Err(FitError::InvalidOptions(format!(
+            "a rational model of order {max_order} needs more than {points} points"
+        )));
+    }
+    if !(options.time_limit_s.is_finite() && options.time_limit_s > 0.0) {
+        return Err(FitError::InvalidOptions(
+            "time_limit_s must be positive".into(),
+        ));
+    }
+    if !(options.passivity_rms_allowance.is_finite() && options.passivity_rms_allowance >= 0.0) {
+        return Err(FitError::InvalidOptions(
+            "passivity_rms_allowance must be a non-negative fraction".into(),
+        ));
+    }
+    if options.rational_max_relocations == 0 {
+        return Err(FitError::InvalidOptions(
+            "rational_max_relocations must be at least 1".into(),
+        ));
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn exact_sweep() -> Sweep {
+        // Synthetic (no source): (Rs + sL) ‖ Cp ‖ Rp, a rational function with one pole pair.
+        let (l, rs, cp, rp) = (10e-6, 0.1, 5e-12, 20e3);
+        let f: Vec<f64> = (0..401)
+            .map(|i| 1e4 * (1e9f64 / 1e4).powf(i as f64 / 400.0))
+            .collect();
+        let z: Vec<Complex64> = f
+            .iter()
+            .map(|f| {
+                let s = Complex64::new(0.0, 2.0 * PI * f);
+                (1.0 / (rs + s * l) + s * cp + 1.0 / rp).inv()
+            })
+            .collect();
+        let sigma = z.iter().map(|z| 1e-3 * z.norm()).collect();
+        Sweep {
+            frequency_hz: f,
+            impedance_ohm: z,
+            sigma_ohm: sigma,
+            method: crate::sweep::Method::Direct,
+            z0_ohm: 50.0,
+        }
+    }
+
+    #[test]
+    fn exact_second_order_data_give_their_pole_pair() {
+        let fit = vector_fit(
+            &exact_sweep(),
+            VectorFitSettings {
+                order: 2,
+                max_relocations: 30,
+            },
+            &FitControl::default(),
+        )
+        .unwrap();
+        assert_eq!(fit.model.complex_poles.len(), 1);
+        let p = fit.model.complex_poles[0].pole_rad_per_s / (2.0 * PI);
+        assert!((p.re + 0.79657e6).abs() < 0.00001e6, "{p}");
+        assert!((p.im - 22.49386e6).abs() < 0.00001e6, "{p}");
+        assert!(fit.rms_weighted < 1e-6, "{}", fit.rms_weighted);
+    }
+}

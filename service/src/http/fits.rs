@@ -1,0 +1,343 @@
+//! Fits: list and status (dashboard polling), detail with verdict and drift, curves, downloads,
+//! cancel/retry (inspector), refit/approve/reject (engineer).
+
+use super::auth::{Engineer, Inspector, Reader};
+use super::problem::{ApiResult, Kind, Problem, json_body};
+use super::sweeps::{parse_options_value, safe_file_name};
+use crate::app::AppState;
+use crate::jobs::{duplicate_key, parse_method};
+use crate::registry::figures::model_curve;
+use crate::registry::wire::{FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
+use crate::store::fits::FitFilter;
+use crate::store::parse_rfc3339;
+use crate::sweep::ReadOptions;
+use axum::Json;
+use axum::body::Bytes;
+use axum::extract::{Path, Query, State};
+use axum::http::{StatusCode, header};
+use axum::response::IntoResponse;
+use serde::{Deserialize, Serialize};
+use utoipa_axum::{router::OpenApiRouter, routes};
+
+#[derive(Debug, Deserialize, utoipa::IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct FitListParams {
+    /// queued, running, succeeded, failed or cancelled.
+    pub status: Option<String>,
+    pub part_number: Option<String>,
+    pub lot: Option<String>,
+    /// RFC 3339: fits created at or after.
+    pub since: Option<String>,
+    /// 1..500, default 50.
+    pub limit: Option<i64>,
+    pub cursor: Option<String>,
+}
+
+/// Fits, newest first, filtered and paginated.
+#[utoipa::path(get, path = "/api/v1/fits", tag = "fits", params(FitListParams),
+    responses((status = 200, body = FitPage), (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn list_fits(
+    _: Reader,
+    State(state): State<AppState>,
+    Query(p): Query<FitListParams>,
+) -> ApiResult<Json<FitPage>> {
+    let status = match p.status.as_deref() {
+        None | Some("") => None,
+        Some(s) => Some(FitStatus::parse(s).ok_or_else(|| {
+            Problem::validation(format!(
+                "status must be queued, running, succeeded, failed or cancelled, not {s:?}"
+            ))
+        })?),
+    };
+    let since_ms = match p.since.as_deref() {
+        None | Some("") => None,
+        Some(s) => Some(parse_rfc3339(s).ok_or_else(|| {
+            Problem::validation(format!("since must be an RFC 3339 time, not {s:?}"))
+        })?),
+    };
+    let before_fit_id = match p.cursor.as_deref() {
+        None | Some("") => None,
+        Some(c) => Some(
+            c.parse::<i64>()
+                .map_err(|_| Problem::validation("cursor is not one this service handed out"))?,
+        ),
+    };
+    let limit = p.limit.unwrap_or(50);
+    if !(1..=500).contains(&limit) {
+        return Err(Problem::validation("limit must be 1 to 500"));
+    }
+    let filter = FitFilter {
+        status,
+        part_number: p.part_number.filter(|s| !s.is_empty()),
+        lot: p.lot.filter(|s| !s.is_empty()),
+        since_ms,
+        before_fit_id,
+        limit,
+    };
+    Ok(Json(state.store.list_fits(&filter).await?))
+}
+
+/// One fit: status, report, verdict per limit, drift against the approved baseline.
+#[utoipa::path(get, path = "/api/v1/fits/{fit_id}", tag = "fits", params(("fit_id" = i64, Path)),
+    responses((status = 200, body = FitDetail), (status = 404, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn get_fit(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<Json<FitDetail>> {
+    Ok(Json(state.store.fit_detail(fit_id).await?))
+}
+
+/// Measured impedance with its uncertainty, and the model at the same frequencies.
+#[utoipa::path(get, path = "/api/v1/fits/{fit_id}/curves", tag = "fits", params(("fit_id" = i64, Path)),
+    responses((status = 200, body = FitCurves), (status = 404, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn curves(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<Json<FitCurves>> {
+    let input = state.store.job_input(fit_id).await?;
+    let report = state.store.fit_report(fit_id).await?;
+    let engine = state.engine.clone();
+    let curves = tokio::task::spawn_blocking(move || -> Result<FitCurves, String> {
+        let read = ReadOptions {
+            method: parse_method(&input.method),
+            z0_ohm: input.z0_ohm,
+            ..ReadOptions::default()
+        };
+        let sweep = engine
+            .read_sweep(&input.file.name, &input.file.bytes, &read)
+            .map_err(|e| e.to_string())?;
+        let (model_re, model_im) = match &report {
+            Some(r) => model_curve(&r.model, &sweep.frequency_hz),
+            None => (Vec::new(), Vec::new()),
+        };
+        Ok(FitCurves {
+            measured_z_real_ohm: sweep.impedance_ohm.iter().map(|z| z.re).collect(),
+            measured_z_imag_ohm: sweep.impedance_ohm.iter().map(|z| z.im).collect(),
+            sigma_ohm: sweep.sigma_ohm,
+            frequency_hz: sweep.frequency_hz,
+            model_z_real_ohm: model_re,
+            model_z_imag_ohm: model_im,
+        })
+    })
+    .await
+    .map_err(Problem::internal)?
+    .map_err(|e| Problem::internal(format!("a stored sweep no longer reads: {e}")))?;
+    Ok(Json(curves))
+}
+
+/// Cancel a queued fit, or ask a running one to stop.
+#[utoipa::path(post, path = "/api/v1/fits/{fit_id}/cancel", tag = "fits", params(("fit_id" = i64, Path)),
+    responses((status = 200, body = FitSummary), (status = 409, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn cancel(
+    Inspector(caller): Inspector,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<Json<FitSummary>> {
+    if state.store.cancel_fit(&caller.label, fit_id).await? {
+        state.jobs.cancel_local(fit_id);
+    }
+    Ok(Json(state.store.fit_summary(fit_id).await?))
+}
+
+/// Queue a failed or cancelled fit again.
+#[utoipa::path(post, path = "/api/v1/fits/{fit_id}/retry", tag = "fits", params(("fit_id" = i64, Path)),
+    responses((status = 200, body = FitSummary), (status = 409, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn retry(
+    Inspector(caller): Inspector,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<Json<FitSummary>> {
+    state.store.retry_fit(&caller.label, fit_id).await?;
+    state.jobs.wake();
+    Ok(Json(state.store.fit_summary(fit_id).await?))
+}
+
+#[derive(Debug, Deserialize, utoipa::ToSchema)]
+pub struct RefitRequest {
+    /// The engine's FitOptions (every field optional); null or absent for the defaults.
+    #[schema(value_type = Option<Object>)]
+    #[serde(default)]
+    pub options: serde_json::Value,
+}
+
+#[derive(Debug, Serialize, utoipa::ToSchema)]
+pub struct RefitAccepted {
+    /// The new revision's fit.
+    pub fit_id: i64,
+}
+
+/// Fit the same sweep again with new options (or a newer engine): a new revision.
+#[utoipa::path(post, path = "/api/v1/fits/{fit_id}/refit", tag = "fits", params(("fit_id" = i64, Path)),
+    request_body = RefitRequest,
+    responses((status = 202, body = RefitAccepted), (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn refit(
+    Engineer(caller): Engineer,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+    body: Bytes,
+) -> ApiResult<impl IntoResponse> {
+    let req: RefitRequest = if body.is_empty() {
+        RefitRequest {
+            options: serde_json::Value::Null,
+        }
+    } else {
+        json_body(&body)?
+    };
+    let detail = state.store.fit_detail(fit_id).await?;
+    let options = crate::jobs::effective_options(parse_options_value(req.options)?, detail.dcr_ohm);
+    let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
+    let key = duplicate_key(&options_json, &detail.method, detail.z0_ohm);
+    let new_id = state
+        .store
+        .refit(&caller.label, fit_id, &options_json, &key)
+        .await?;
+    state.jobs.wake();
+    Ok((StatusCode::ACCEPTED, Json(RefitAccepted { fit_id: new_id })))
+}
+
+#[derive(Debug, Default, Deserialize, utoipa::ToSchema)]
+pub struct Decision {
+    /// Why: optional for an approval, required for a rejection.
+    #[serde(default)]
+    pub reason: Option<String>,
+}
+
+fn decision(body: &Bytes) -> ApiResult<Decision> {
+    if body.is_empty() {
+        Ok(Decision::default())
+    } else {
+        json_body(body)
+    }
+}
+
+/// Approve a succeeded fit: it becomes the part's baseline.
+#[utoipa::path(post, path = "/api/v1/fits/{fit_id}/approve", tag = "fits", params(("fit_id" = i64, Path)),
+    request_body = Decision,
+    responses((status = 200, body = FitDetail), (status = 409, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn approve(
+    Engineer(caller): Engineer,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+    body: Bytes,
+) -> ApiResult<Json<FitDetail>> {
+    let d = decision(&body)?;
+    let reason = d.reason.as_deref().map(str::trim).filter(|r| !r.is_empty());
+    state
+        .store
+        .approve_fit(&caller.label, fit_id, reason)
+        .await?;
+    Ok(Json(state.store.fit_detail(fit_id).await?))
+}
+
+/// Reject a succeeded fit, with the reason.
+#[utoipa::path(post, path = "/api/v1/fits/{fit_id}/reject", tag = "fits", params(("fit_id" = i64, Path)),
+    request_body = Decision,
+    responses((status = 200, body = FitDetail), (status = 409, body = super::problem::ProblemBody),
+        (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn reject(
+    Engineer(caller): Engineer,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+    body: Bytes,
+) -> ApiResult<Json<FitDetail>> {
+    let d = decision(&body)?;
+    let reason = d
+        .reason
+        .as_deref()
+        .map(str::trim)
+        .filter(|r| !r.is_empty())
+        .ok_or_else(|| Problem::validation("a rejection needs a reason"))?;
+    state
+        .store
+        .reject_fit(&caller.label, fit_id, reason)
+        .await?;
+    Ok(Json(state.store.fit_detail(fit_id).await?))
+}
+
+async fn succeeded_report(state: &AppState, fit_id: i64) -> ApiResult<crate::fit::FitReport> {
+    state.store.fit_report(fit_id).await?.ok_or_else(|| {
+        Problem::new(
+            Kind::Conflict,
+            format!("fit {fit_id} has not succeeded: there is no model yet"),
+        )
+    })
+}
+
+/// The fitted model as JSON (the report's `model`).
+#[utoipa::path(get, path = "/api/v1/fits/{fit_id}/model.json", tag = "exports", params(("fit_id" = i64, Path)),
+    responses((status = 200, body = Object), (status = 409, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn model_json(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<impl IntoResponse> {
+    let report = succeeded_report(&state, fit_id).await?;
+    let name = format!("fit-{fit_id}-model.json");
+    Ok((
+        [(
+            header::CONTENT_DISPOSITION,
+            format!("attachment; filename=\"{}\"", safe_file_name(&name)),
+        )],
+        Json(report.model),
+    ))
+}
+
+/// The model as a SPICE subcircuit (needs the export module).
+#[utoipa::path(get, path = "/api/v1/fits/{fit_id}/netlist.cir", tag = "exports", params(("fit_id" = i64, Path)),
+    responses((status = 200, content_type = "text/plain", body = String),
+        (status = 501, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn netlist(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<axum::response::Response> {
+    let _report = succeeded_report(&state, fit_id).await?;
+    Err(Problem::new(
+        Kind::NotImplemented,
+        "SPICE export is not part of this build yet",
+    ))
+}
+
+/// The model as a Touchstone 1-port (needs the export module).
+#[utoipa::path(get, path = "/api/v1/fits/{fit_id}/model.s1p", tag = "exports", params(("fit_id" = i64, Path)),
+    responses((status = 200, content_type = "text/plain", body = String),
+        (status = 501, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn touchstone(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(fit_id): Path<i64>,
+) -> ApiResult<axum::response::Response> {
+    let _report = succeeded_report(&state, fit_id).await?;
+    Err(Problem::new(
+        Kind::NotImplemented,
+        "Touchstone export is not part of this build yet",
+    ))
+}
+
+pub fn router() -> OpenApiRouter<AppState> {
+    OpenApiRouter::new()
+        .routes(routes!(list_fits))
+        .routes(routes!(get_fit))
+        .routes(routes!(curves))
+        .routes(routes!(cancel))
+        .routes(routes!(retry))
+        .routes(routes!(refit))
+        .routes(routes!(approve))
+        .routes(routes!(reject))
+        .routes(routes!(model_json))
+        .routes(routes!(netlist))
+        .routes(routes!(touchstone))
+}

@@ -1,0 +1,166 @@
+//! Parts: behavioural queries for design tools (from stored figures), create, read, set limits.
+
+use super::auth::{Engineer, Reader};
+use super::problem::{ApiResult, Problem, json_body};
+use crate::app::AppState;
+use crate::registry::limits::Limits;
+use crate::registry::wire::{Part, PartPage};
+use crate::store::query::{Cursor, PartQuery, Sort};
+use axum::Json;
+use axum::body::Bytes;
+use axum::extract::{Path, Query, State};
+use axum::http::StatusCode;
+use axum::response::IntoResponse;
+use serde::Deserialize;
+use utoipa_axum::{router::OpenApiRouter, routes};
+
+#[derive(Debug, Deserialize, utoipa::IntoParams)]
+#[into_params(parameter_in = Query)]
+pub struct PartQueryParams {
+    /// Substring of the part number or description.
+    pub q: Option<String>,
+    /// Answer from approved baselines only (default: the newest succeeded fit of each part).
+    pub approved_only: Option<bool>,
+    pub srf_min_hz: Option<f64>,
+    pub srf_max_hz: Option<f64>,
+    /// A series resonance (|Z| minimum) lies in this band.
+    pub series_resonance_min_hz: Option<f64>,
+    pub series_resonance_max_hz: Option<f64>,
+    /// Frequency at which the effective L is held to `l_min_h..l_max_h`.
+    pub l_at_hz: Option<f64>,
+    pub l_min_h: Option<f64>,
+    pub l_max_h: Option<f64>,
+    pub dcr_max_ohm: Option<f64>,
+    /// |Z| at least this over `z_band_min_hz..z_band_max_hz`.
+    pub z_min_ohm: Option<f64>,
+    pub z_band_min_hz: Option<f64>,
+    pub z_band_max_hz: Option<f64>,
+    /// part_number (default), srf_hz, l0_h or rdc_ohm; prefix - for descending.
+    pub sort: Option<String>,
+    /// 1..500, default 50.
+    pub limit: Option<i64>,
+    pub cursor: Option<String>,
+}
+
+/// Parts by electrical behaviour, from stored figures.
+#[utoipa::path(get, path = "/api/v1/parts", tag = "parts", params(PartQueryParams),
+    responses((status = 200, body = PartPage), (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn query_parts(
+    _: Reader,
+    State(state): State<AppState>,
+    Query(p): Query<PartQueryParams>,
+) -> ApiResult<Json<PartPage>> {
+    let sort = match p.sort.as_deref() {
+        None | Some("") => Sort::parse("part_number"),
+        Some(s) => Sort::parse(s),
+    }
+    .map_err(Problem::validation)?;
+    let cursor = match p.cursor.as_deref() {
+        None | Some("") => None,
+        Some(c) => Some(Cursor::decode(c).map_err(Problem::validation)?),
+    };
+    let query = PartQuery {
+        q: p.q.filter(|s| !s.trim().is_empty()),
+        approved_only: p.approved_only.unwrap_or(false),
+        srf_min_hz: p.srf_min_hz,
+        srf_max_hz: p.srf_max_hz,
+        series_resonance_min_hz: p.series_resonance_min_hz,
+        series_resonance_max_hz: p.series_resonance_max_hz,
+        l_at_hz: p.l_at_hz,
+        l_min_h: p.l_min_h,
+        l_max_h: p.l_max_h,
+        dcr_max_ohm: p.dcr_max_ohm,
+        z_min_ohm: p.z_min_ohm,
+        z_band_min_hz: p.z_band_min_hz,
+        z_band_max_hz: p.z_band_max_hz,
+        sort,
+        limit: p.limit.unwrap_or(50),
+        cursor,
+    };
+    query.validate().map_err(Problem::validation)?;
+    Ok(Json(state.store.query_parts(&query).await?))
+}
+
+#[derive(Debug, Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct NewPart {
+    pub part_number: String,
+    #[serde(default)]
+    pub description: String,
+    #[serde(default)]
+    pub limits: Limits,
+}
+
+/// Create a part with its limits.
+#[utoipa::path(post, path = "/api/v1/parts", tag = "parts", request_body = NewPart,
+    responses((status = 201, body = Part), (status = 409, body = super::problem::ProblemBody),
+        (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn create_part(
+    Engineer(caller): Engineer,
+    State(state): State<AppState>,
+    body: Bytes,
+) -> ApiResult<impl IntoResponse> {
+    let new: NewPart = json_body(&body)?;
+    let description = new.description.trim();
+    if description.chars().count() > 500 {
+        return Err(Problem::validation(
+            "description must be at most 500 characters",
+        ));
+    }
+    state
+        .store
+        .create_part(&caller.label, &new.part_number, description, &new.limits)
+        .await?;
+    Ok((
+        StatusCode::CREATED,
+        Json(state.store.part(&new.part_number).await?),
+    ))
+}
+
+/// A part with its limits, lots, baseline, fits and audit trail.
+#[utoipa::path(get, path = "/api/v1/parts/{part_number}", tag = "parts",
+    params(("part_number" = String, Path)),
+    responses((status = 200, body = Part), (status = 404, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn get_part(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(part_number): Path<String>,
+) -> ApiResult<Json<Part>> {
+    Ok(Json(state.store.part(&part_number).await?))
+}
+
+#[derive(Debug, Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct LimitsUpdate {
+    pub limits: Limits,
+}
+
+/// Replace a part's limits; every succeeded fit of the part is judged again.
+#[utoipa::path(put, path = "/api/v1/parts/{part_number}/limits", tag = "parts",
+    params(("part_number" = String, Path)), request_body = LimitsUpdate,
+    responses((status = 200, body = Part), (status = 404, body = super::problem::ProblemBody),
+        (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn put_limits(
+    Engineer(caller): Engineer,
+    State(state): State<AppState>,
+    Path(part_number): Path<String>,
+    body: Bytes,
+) -> ApiResult<Json<Part>> {
+    let update: LimitsUpdate = json_body(&body)?;
+    state
+        .store
+        .update_limits(&caller.label, &part_number, &update.limits)
+        .await?;
+    Ok(Json(state.store.part(&part_number).await?))
+}
+
+pub fn router() -> OpenApiRouter<AppState> {
+    OpenApiRouter::new()
+        .routes(routes!(query_parts, create_part))
+        .routes(routes!(get_part))
+        .routes(routes!(put_limits))
+}

@@ -1,0 +1,304 @@
+//! `POST /api/v1/sweeps` (upload a sweep, queue its fit) and `GET /api/v1/sweeps/{sweep_id}/file`.
+//!
+//! An upload is checked completely before anything is stored: every metadata field, the options, and
+//! the file itself (read by the engine's sweep reader; its error and line number go into the problem).
+
+use super::auth::{Inspector, Reader};
+use super::problem::{ApiResult, Kind, Problem};
+use crate::app::AppState;
+use crate::fit::FitOptions;
+use crate::jobs::{duplicate_key, effective_options, parse_method};
+use crate::store::sha256_hex;
+use crate::store::sweeps::{NamedFile, NewSweep};
+use crate::sweep::ReadOptions;
+use axum::Json;
+use axum::extract::multipart::MultipartError;
+use axum::extract::{Multipart, Path, State};
+use axum::http::{StatusCode, header};
+use axum::response::IntoResponse;
+use serde::Serialize;
+use utoipa_axum::{router::OpenApiRouter, routes};
+
+#[derive(Debug, Serialize, utoipa::ToSchema)]
+pub struct Accepted {
+    pub fit_id: i64,
+    pub sweep_id: i64,
+    /// Where to poll the fit's status.
+    pub status_url: String,
+    /// True when the same file was already uploaded for the part with the same options: the answer
+    /// is the existing fit and nothing new was stored.
+    pub duplicate: bool,
+}
+
+/// The multipart form of an upload (for the API description).
+#[allow(dead_code)]
+#[derive(utoipa::ToSchema)]
+pub struct UploadForm {
+    /// The measurement file (Touchstone .s1p/.s2p or CSV).
+    #[schema(format = Binary, content_media_type = "application/octet-stream")]
+    file: String,
+    part_number: String,
+    lot: String,
+    /// reflection, series-thru, shunt-thru or direct; needed for 2-port files.
+    method: Option<String>,
+    /// Overrides the file's reference impedance.
+    z0_ohm: Option<f64>,
+    /// A separate four-wire DC resistance reading.
+    dcr_ohm: Option<f64>,
+    temperature_c: Option<f64>,
+    operator: Option<String>,
+    /// Fit options as JSON (the engine's FitOptions; every field optional).
+    options: Option<String>,
+}
+
+fn multipart_problem(e: MultipartError) -> Problem {
+    if e.status() == StatusCode::PAYLOAD_TOO_LARGE {
+        Problem::new(Kind::PayloadTooLarge, e.body_text())
+    } else {
+        Problem::validation(format!("the multipart body: {}", e.body_text()))
+    }
+}
+
+fn number(name: &str, text: &str) -> ApiResult<Option<f64>> {
+    let t = text.trim();
+    if t.is_empty() || t == "null" {
+        return Ok(None);
+    }
+    t.parse::<f64>()
+        .ok()
+        .filter(|v| v.is_finite())
+        .map(Some)
+        .ok_or_else(|| Problem::validation(format!("{name} must be a number, not {t:?}")))
+}
+
+fn positive(name: &str, v: Option<f64>) -> ApiResult<Option<f64>> {
+    match v {
+        Some(x) if x <= 0.0 => Err(Problem::validation(format!(
+            "{name} must be above zero (got {x})"
+        ))),
+        other => Ok(other),
+    }
+}
+
+fn short_text(name: &str, text: &str, max: usize, required: bool) -> ApiResult<String> {
+    let t = text.trim();
+    if required && t.is_empty() {
+        return Err(Problem::validation(format!("{name} is required")));
+    }
+    if t.chars().count() > max || t.chars().any(char::is_control) {
+        return Err(Problem::validation(format!(
+            "{name} must be at most {max} characters without control characters"
+        )));
+    }
+    Ok(t.to_string())
+}
+
+/// Parses fit options, refusing keys the engine does not know (they would be silently ignored).
+pub fn parse_options(text: &str) -> ApiResult<FitOptions> {
+    if text.trim().is_empty() {
+        return Ok(FitOptions::default());
+    }
+    let value: serde_json::Value = serde_json::from_str(text)
+        .map_err(|e| Problem::validation(format!("options is not JSON: {e}")))?;
+    parse_options_value(value)
+}
+
+pub fn parse_options_value(value: serde_json::Value) -> ApiResult<FitOptions> {
+    if value.is_null() {
+        return Ok(FitOptions::default());
+    }
+    let Some(given) = value.as_object() else {
+        return Err(Problem::validation("options must be a JSON object"));
+    };
+    let options: FitOptions = serde_json::from_value(value.clone())
+        .map_err(|e| Problem::validation(format!("options: {e}")))?;
+    let known = serde_json::to_value(&options).map_err(Problem::internal)?;
+    if let Some(unknown) = given.keys().find(|k| known.get(k.as_str()).is_none()) {
+        return Err(Problem::validation(format!(
+            "options: unknown field {unknown:?}"
+        )));
+    }
+    Ok(options)
+}
+
+/// Upload a sweep: the file and its metadata; queues a fit.
+#[utoipa::path(post, path = "/api/v1/sweeps", tag = "sweeps",
+    request_body(content = UploadForm, content_type = "multipart/form-data"),
+    responses(
+        (status = 202, body = Accepted),
+        (status = 401, body = super::problem::ProblemBody),
+        (status = 403, body = super::problem::ProblemBody),
+        (status = 413, body = super::problem::ProblemBody),
+        (status = 422, description = "bad metadata or a file the reader refuses (with its line)", body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn upload(
+    Inspector(caller): Inspector,
+    State(state): State<AppState>,
+    mut form: Multipart,
+) -> ApiResult<impl IntoResponse> {
+    let mut file: Option<NamedFile> = None;
+    let mut fields = std::collections::HashMap::<String, String>::new();
+    while let Some(field) = form.next_field().await.map_err(multipart_problem)? {
+        let name = field.name().unwrap_or_default().to_string();
+        match name.as_str() {
+            "file" => {
+                let file_name = field.file_name().map(str::to_string).ok_or_else(|| {
+                    Problem::validation(
+                        "the file field needs a file name (its extension tells the format)",
+                    )
+                })?;
+                let bytes = field.bytes().await.map_err(multipart_problem)?;
+                file = Some(NamedFile {
+                    name: short_text("file name", &file_name, 255, true)?,
+                    bytes: bytes.to_vec(),
+                });
+            }
+            "fixture_open" | "fixture_short" => {
+                return Err(Problem::validation(format!(
+                    "{name}: fixture compensation is not supported by this engine yet; \
+                     upload the compensated sweep instead"
+                )));
+            }
+            "part_number" | "lot" | "method" | "z0_ohm" | "dcr_ohm" | "temperature_c"
+            | "operator" | "options" => {
+                if fields.contains_key(&name) {
+                    return Err(Problem::validation(format!(
+                        "the field {name} is given twice"
+                    )));
+                }
+                let text = field.text().await.map_err(multipart_problem)?;
+                fields.insert(name, text);
+            }
+            other => {
+                return Err(Problem::validation(format!(
+                    "unknown multipart field {other:?}"
+                )));
+            }
+        }
+    }
+    let get = |n: &str| fields.get(n).map(String::as_str).unwrap_or("");
+    let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
+    if file.bytes.is_empty() {
+        return Err(Problem::new(
+            Kind::BadSweepFile,
+            format!("{} is empty", file.name),
+        ));
+    }
+    let part_number = short_text("part_number", get("part_number"), 64, true)?;
+    crate::store::parts::validate_part_number(&part_number).map_err(Problem::validation)?;
+    let lot = short_text("lot", get("lot"), 64, true)?;
+    let method = match get("method").trim() {
+        "" => None,
+        m => Some(parse_method(m).ok_or_else(|| {
+            Problem::validation(format!(
+                "method must be reflection, series-thru, shunt-thru or direct, not {m:?}"
+            ))
+        })?),
+    };
+    let z0_ohm = positive("z0_ohm", number("z0_ohm", get("z0_ohm"))?)?;
+    let dcr_ohm = positive("dcr_ohm", number("dcr_ohm", get("dcr_ohm"))?)?;
+    let temperature_c = number("temperature_c", get("temperature_c"))?;
+    if let Some(t) = temperature_c
+        && !(-273.15..=1000.0).contains(&t)
+    {
+        return Err(Problem::validation(format!(
+            "temperature_c must lie in -273.15..1000 (got {t})"
+        )));
+    }
+    let operator = short_text("operator", get("operator"), 128, false)?;
+    let options = effective_options(parse_options(get("options"))?, dcr_ohm);
+
+    let engine = state.engine.clone();
+    let read = ReadOptions {
+        method,
+        z0_ohm,
+        ..ReadOptions::default()
+    };
+    let (name, bytes) = (file.name.clone(), file.bytes.clone());
+    let sweep = tokio::task::spawn_blocking(move || engine.read_sweep(&name, &bytes, &read))
+        .await
+        .map_err(Problem::internal)?
+        .map_err(|e| Problem {
+            kind: Kind::BadSweepFile,
+            detail: format!("{}: {}", file.name, e.message),
+            line: e.line,
+        })?;
+
+    let method_text = serde_json::to_value(sweep.method)
+        .ok()
+        .and_then(|v| v.as_str().map(str::to_string))
+        .unwrap_or_default();
+    let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
+    let new = NewSweep {
+        part_number,
+        lot,
+        sha256: sha256_hex(&file.bytes),
+        file,
+        options_key: duplicate_key(&options_json, &method_text, z0_ohm),
+        method: method_text,
+        z0_ohm,
+        dcr_ohm,
+        temperature_c,
+        operator,
+        fixture_open: None,
+        fixture_short: None,
+        points: sweep.frequency_hz.len(),
+        options_json,
+    };
+    let up = state.store.upload(&caller.label, &new).await?;
+    if !up.duplicate {
+        state.jobs.wake();
+    }
+    Ok((
+        StatusCode::ACCEPTED,
+        Json(Accepted {
+            fit_id: up.fit_id,
+            sweep_id: up.sweep_id,
+            status_url: format!("/api/v1/fits/{}", up.fit_id),
+            duplicate: up.duplicate,
+        }),
+    ))
+}
+
+/// The uploaded file, byte for byte.
+#[utoipa::path(get, path = "/api/v1/sweeps/{sweep_id}/file", tag = "sweeps",
+    params(("sweep_id" = i64, Path)),
+    responses((status = 200, content_type = "application/octet-stream", body = Vec<u8>),
+        (status = 404, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn sweep_file(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(sweep_id): Path<i64>,
+) -> ApiResult<impl IntoResponse> {
+    let f = state.store.sweep_file(sweep_id).await?;
+    Ok((
+        [
+            (header::CONTENT_TYPE, "application/octet-stream".to_string()),
+            (
+                header::CONTENT_DISPOSITION,
+                format!("attachment; filename=\"{}\"", safe_file_name(&f.name)),
+            ),
+        ],
+        f.bytes,
+    ))
+}
+
+/// A file name safe inside a quoted header parameter.
+pub fn safe_file_name(name: &str) -> String {
+    name.chars()
+        .map(|c| {
+            if c.is_ascii_graphic() && c != '"' && c != '\\' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect()
+}
+
+pub fn router() -> OpenApiRouter<AppState> {
+    OpenApiRouter::new()
+        .routes(routes!(upload))
+        .routes(routes!(sweep_file))
+}

@@ -1,0 +1,350 @@
+//! The worker pool: claim a job from the durable table, run the engine off the async runtime
+//! (`spawn_blocking`, at most `workers` at once under a semaphore), renew the lease while it runs, and
+//! write the outcome only while the claim still holds.
+//!
+//! On shutdown the pool stops claiming, lets running fits finish for a grace period, then cancels the
+//! rest and gives their jobs back to the queue (the next start runs them). A worker that dies without
+//! shutting down leaves its lease to expire; the next claim after expiry re-runs the job.
+
+pub mod engine;
+
+pub use engine::{CoreEngine, Engine};
+
+use crate::fit::{DcrReading, FitControl, FitError, FitOptions};
+use crate::registry::figures;
+use crate::settings::Settings;
+use crate::store::jobs::{Claim, Renewal};
+use crate::store::{Store, sha256_hex};
+use crate::sweep::{Method, ReadOptions};
+use std::collections::HashMap;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+use tokio::sync::{Notify, Semaphore, watch};
+use tokio::task::JoinSet;
+use tracing::Instrument;
+
+/// Parses a measurement method as the API spells it.
+pub fn parse_method(text: &str) -> Option<Method> {
+    serde_json::from_value(serde_json::Value::String(text.to_string())).ok()
+}
+
+/// The options the engine runs with: the caller's options, with the upload's DC resistance reading
+/// when the options do not carry one.
+pub fn effective_options(mut options: FitOptions, dcr_ohm: Option<f64>) -> FitOptions {
+    if options.dcr.is_none()
+        && let Some(value_ohm) = dcr_ohm
+    {
+        options.dcr = Some(DcrReading {
+            value_ohm,
+            sigma_ohm: None,
+        });
+    }
+    options
+}
+
+/// Identifies "the same fit of the same file" together with the file's SHA-256 and the part: the
+/// canonical effective options and how the file is read (method, Z0).
+pub fn duplicate_key(options_json: &str, method: &str, z0_ohm: Option<f64>) -> String {
+    let text = serde_json::json!({ "options": options_json, "method": method, "z0_ohm": z0_ohm });
+    sha256_hex(text.to_string().as_bytes())
+}
+
+/// Knobs of the pool, from [`Settings`].
+#[derive(Debug, Clone)]
+pub struct PoolSettings {
+    pub workers: usize,
+    pub lease: Duration,
+    pub max_attempts: i64,
+    pub poll_interval: Duration,
+    pub shutdown_grace: Duration,
+}
+
+impl From<&Settings> for PoolSettings {
+    fn from(s: &Settings) -> Self {
+        PoolSettings {
+            workers: s.workers,
+            lease: s.lease,
+            max_attempts: s.max_attempts,
+            poll_interval: s.poll_interval,
+            shutdown_grace: s.shutdown_grace,
+        }
+    }
+}
+
+/// A cheap handle the HTTP layer uses to wake the pool and to cancel a fit running here.
+#[derive(Clone)]
+pub struct JobsHandle {
+    notify: Arc<Notify>,
+    running: Arc<Mutex<HashMap<i64, Arc<AtomicBool>>>>,
+}
+
+impl JobsHandle {
+    /// New work was queued.
+    pub fn wake(&self) {
+        self.notify.notify_one();
+    }
+
+    /// Flips the cancel flag of a fit running in this process (a fit running elsewhere sees the
+    /// stored request at its next lease renewal).
+    pub fn cancel_local(&self, fit_id: i64) {
+        if let Some(flag) = self.running.lock().expect("running map").get(&fit_id) {
+            flag.store(true, Ordering::SeqCst);
+        }
+    }
+}
+
+pub struct Pool {
+    store: Store,
+    engine: Arc<dyn Engine>,
+    settings: PoolSettings,
+    handle: JobsHandle,
+}
+
+impl Pool {
+    pub fn new(store: Store, engine: Arc<dyn Engine>, settings: PoolSettings) -> Pool {
+        Pool {
+            store,
+            engine,
+            settings,
+            handle: JobsHandle {
+                notify: Arc::new(Notify::new()),
+                running: Arc::new(Mutex::new(HashMap::new())),
+            },
+        }
+    }
+
+    pub fn handle(&self) -> JobsHandle {
+        self.handle.clone()
+    }
+
+    /// Runs until `stop` turns true, then drains (see the module docs).
+    pub async fn run(self, mut stop: watch::Receiver<bool>) {
+        let permits = Arc::new(Semaphore::new(self.settings.workers));
+        let (release_tx, release_rx) = watch::channel(false);
+        let mut tasks = JoinSet::new();
+        loop {
+            if *stop.borrow() {
+                break;
+            }
+            let permit = tokio::select! {
+                p = permits.clone().acquire_owned() => p.expect("semaphore is never closed"),
+                _ = stop.changed() => break,
+            };
+            while tasks.try_join_next().is_some() {}
+            match self
+                .store
+                .claim_job(self.settings.lease, self.settings.max_attempts)
+                .await
+            {
+                Ok(Some(claim)) => {
+                    let job = RunningJob {
+                        store: self.store.clone(),
+                        engine: self.engine.clone(),
+                        settings: self.settings.clone(),
+                        handle: self.handle.clone(),
+                        release: release_rx.clone(),
+                    };
+                    let span =
+                        tracing::info_span!("fit", fit_id = claim.fit_id, attempt = claim.attempt);
+                    tasks.spawn(
+                        async move {
+                            job.run(claim).await;
+                            drop(permit);
+                        }
+                        .instrument(span),
+                    );
+                }
+                Ok(None) => {
+                    drop(permit);
+                    tokio::select! {
+                        _ = self.handle.notify.notified() => {}
+                        _ = tokio::time::sleep(self.settings.poll_interval) => {}
+                        _ = stop.changed() => break,
+                    }
+                }
+                Err(e) => {
+                    drop(permit);
+                    tracing::error!(error = %e, "cannot claim a job");
+                    tokio::time::sleep(self.settings.poll_interval).await;
+                }
+            }
+        }
+        let running = tasks.len();
+        if running > 0 {
+            tracing::info!(running, "waiting for running fits before shutdown");
+        }
+        let drained = tokio::time::timeout(self.settings.shutdown_grace, async {
+            while tasks.join_next().await.is_some() {}
+        })
+        .await;
+        if drained.is_err() {
+            tracing::warn!(
+                running = tasks.len(),
+                "fits still running after the grace period: releasing their jobs"
+            );
+            let _ = release_tx.send(true);
+            while tasks.join_next().await.is_some() {}
+        }
+    }
+}
+
+struct RunningJob {
+    store: Store,
+    engine: Arc<dyn Engine>,
+    settings: PoolSettings,
+    handle: JobsHandle,
+    release: watch::Receiver<bool>,
+}
+
+enum Outcome {
+    Report(Box<crate::fit::FitReport>),
+    Fit(FitError),
+    Sweep(String),
+    Panic,
+}
+
+impl RunningJob {
+    async fn run(mut self, claim: Claim) {
+        let started = Instant::now();
+        let fit_id = claim.fit_id;
+        let input = match self.store.job_input(fit_id).await {
+            Ok(i) => i,
+            Err(e) => {
+                tracing::error!(error = %e, "cannot load the job's sweep");
+                return;
+            }
+        };
+        let cancel = Arc::new(AtomicBool::new(false));
+        let progress = Arc::new(AtomicU64::new(0f64.to_bits()));
+        self.handle
+            .running
+            .lock()
+            .expect("running map")
+            .insert(fit_id, cancel.clone());
+
+        let engine = self.engine.clone();
+        let control = FitControl {
+            cancel: Some(cancel.clone()),
+            progress: Some({
+                let progress = progress.clone();
+                Arc::new(move |p: f64| progress.store(p.to_bits(), Ordering::Relaxed))
+            }),
+        };
+        let span = tracing::Span::current();
+        let mut work = tokio::task::spawn_blocking(move || {
+            let _entered = span.enter();
+            run_engine(engine.as_ref(), &input, &control)
+        });
+
+        let mut ticker =
+            tokio::time::interval((self.settings.lease / 3).max(Duration::from_millis(50)));
+        ticker.tick().await;
+        let mut lost = false;
+        let mut releasing = *self.release.borrow();
+        if releasing {
+            cancel.store(true, Ordering::SeqCst);
+        }
+        let joined = loop {
+            tokio::select! {
+                r = &mut work => break r,
+                _ = ticker.tick() => {
+                    let p = f64::from_bits(progress.load(Ordering::Relaxed));
+                    match self.store.renew_lease(&claim, self.settings.lease, p).await {
+                        Ok(Renewal::Held { cancel_requested: true }) => cancel.store(true, Ordering::SeqCst),
+                        Ok(Renewal::Held { .. }) => {}
+                        Ok(Renewal::Lost) => {
+                            tracing::warn!("lease lost to another worker: stopping without writing");
+                            lost = true;
+                            cancel.store(true, Ordering::SeqCst);
+                        }
+                        Err(e) => tracing::warn!(error = %e, "cannot renew the lease"),
+                    }
+                }
+                _ = self.release.changed(), if !releasing => {
+                    releasing = true;
+                    cancel.store(true, Ordering::SeqCst);
+                }
+            }
+        };
+        self.handle
+            .running
+            .lock()
+            .expect("running map")
+            .remove(&fit_id);
+        let outcome = joined.unwrap_or(Outcome::Panic);
+        let seconds = started.elapsed().as_secs_f64();
+        if lost {
+            metrics::counter!("henrybook_fits_total", "outcome" => "lease_lost").increment(1);
+            return;
+        }
+        let written = match outcome {
+            Outcome::Report(report) => {
+                let figs = figures::from_report(&report);
+                metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
+                metrics::counter!("henrybook_fits_total", "outcome" => "succeeded").increment(1);
+                self.store.complete_succeeded(&claim, &report, &figs).await
+            }
+            Outcome::Fit(FitError::Cancelled) if releasing => {
+                metrics::counter!("henrybook_fits_total", "outcome" => "released").increment(1);
+                self.store.release_job(&claim).await
+            }
+            Outcome::Fit(FitError::Cancelled) => {
+                metrics::counter!("henrybook_fits_total", "outcome" => "cancelled").increment(1);
+                self.store
+                    .complete_unsuccessful(&claim, true, "cancelled on request")
+                    .await
+            }
+            Outcome::Fit(e) => {
+                metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
+                metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
+                self.store
+                    .complete_unsuccessful(&claim, false, &e.to_string())
+                    .await
+            }
+            Outcome::Sweep(text) => {
+                metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
+                self.store.complete_unsuccessful(&claim, false, &text).await
+            }
+            Outcome::Panic => {
+                tracing::error!("the engine panicked");
+                metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
+                self.store
+                    .complete_unsuccessful(&claim, false, "the fit stopped on an internal error")
+                    .await
+            }
+        };
+        match written {
+            Ok(true) => tracing::debug!(seconds, "fit finished"),
+            Ok(false) => tracing::warn!("the claim was taken over before the result was written"),
+            Err(e) => tracing::error!(error = %e, "cannot write the fit's outcome"),
+        }
+    }
+}
+
+fn run_engine(
+    engine: &dyn Engine,
+    input: &crate::store::sweeps::JobInput,
+    control: &FitControl,
+) -> Outcome {
+    let Some(method) = parse_method(&input.method) else {
+        return Outcome::Sweep(format!("unknown measurement method {}", input.method));
+    };
+    let read = ReadOptions {
+        method: Some(method),
+        z0_ohm: input.z0_ohm,
+        ..ReadOptions::default()
+    };
+    let sweep = match engine.read_sweep(&input.file.name, &input.file.bytes, &read) {
+        Ok(s) => s,
+        Err(e) => return Outcome::Sweep(format!("the sweep file cannot be read: {e}")),
+    };
+    let options: FitOptions = match serde_json::from_str(&input.options_json) {
+        Ok(o) => o,
+        Err(e) => return Outcome::Fit(FitError::InvalidOptions(e.to_string())),
+    };
+    match engine.fit(&sweep, &options, control) {
+        Ok(r) => Outcome::Report(Box::new(r)),
+        Err(e) => Outcome::Fit(e),
+    }
+}

@@ -1,0 +1,132 @@
+//! A fit against the part's approved baseline: for each parameter both have, the change in percent of
+//! the baseline and in combined standard uncertainties σ = (current − baseline)/√(u_c² + u_b²).
+
+use crate::fit::FitReport;
+use crate::model::FittedModel;
+use serde::{Deserialize, Serialize};
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct ParameterDrift {
+    pub name: String,
+    pub baseline: f64,
+    pub current: f64,
+    /// (current − baseline)/|baseline| in percent; `None` when the baseline is 0.
+    pub percent: Option<f64>,
+    /// Change in combined standard uncertainties; `None` when either uncertainty is unknown.
+    pub sigma: Option<f64>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct Drift {
+    pub baseline_fit_id: i64,
+    pub parameters: Vec<ParameterDrift>,
+}
+
+impl Drift {
+    /// Largest |σ| over the parameters that have one.
+    pub fn max_sigma(&self) -> Option<f64> {
+        self.parameters
+            .iter()
+            .filter_map(|p| p.sigma.map(f64::abs))
+            .fold(None, |m, s| Some(m.map_or(s, |m: f64| m.max(s))))
+    }
+}
+
+type Named = Vec<(&'static str, f64, Option<f64>)>;
+
+fn lumped_values(report: &FitReport) -> Named {
+    let FittedModel::Lumped(m) = &report.model else {
+        return Vec::new();
+    };
+    let u = report.uncertainty.clone().unwrap_or_default();
+    let mut v: Named = vec![
+        ("l0_h", m.l0_h, u.l0_h),
+        ("rdc_ohm", m.rdc_ohm, u.rdc_ohm),
+        (
+            "k_ac_ohm_per_sqrt_hz",
+            m.k_ac_ohm_per_sqrt_hz,
+            u.k_ac_ohm_per_sqrt_hz,
+        ),
+        ("cp_f", m.cp_f, u.cp_f),
+        ("ls_h", m.ls_h, u.ls_h),
+    ];
+    if let Some(rp) = m.rp_ohm {
+        v.push(("rp_ohm", rp, u.rp_ohm));
+    }
+    v
+}
+
+/// Drift of `current` from `baseline`; parameters absent from either model are left out, and so are
+/// those that are zero in both (elements the model selection did not use).
+pub fn drift(baseline_fit_id: i64, baseline: &FitReport, current: &FitReport) -> Drift {
+    let base = lumped_values(baseline);
+    let cur = lumped_values(current);
+    let mut parameters = Vec::new();
+    for (name, c, uc) in &cur {
+        let Some((_, b, ub)) = base.iter().find(|(n, _, _)| n == name) else {
+            continue;
+        };
+        if *b == 0.0 && *c == 0.0 {
+            continue;
+        }
+        parameters.push(change(name, *b, *c, *ub, *uc));
+    }
+    if let (Some(b), Some(c)) = (baseline.derived.srf_hz, current.derived.srf_hz) {
+        parameters.push(change("srf_hz", b, c, None, None));
+    }
+    Drift {
+        baseline_fit_id,
+        parameters,
+    }
+}
+
+fn change(name: &str, b: f64, c: f64, ub: Option<f64>, uc: Option<f64>) -> ParameterDrift {
+    let percent = (b != 0.0).then(|| (c - b) / b.abs() * 100.0);
+    let sigma = match (ub, uc) {
+        (Some(ub), Some(uc)) if ub.is_finite() && uc.is_finite() && ub * ub + uc * uc > 0.0 => {
+            Some((c - b) / (ub * ub + uc * uc).sqrt())
+        }
+        _ => None,
+    };
+    ParameterDrift {
+        name: name.into(),
+        baseline: b,
+        current: c,
+        percent,
+        sigma,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::fit::LumpedUncertainty;
+    use crate::registry::verdict::tests::report;
+
+    #[test]
+    fn drift_is_given_in_percent_and_in_combined_sigma() {
+        let mut base = report(1.0e-5, 0.050, 5e-12, Some(22.5e6));
+        let mut cur = report(1.1e-5, 0.050, 5e-12, Some(21.5e6));
+        base.uncertainty = Some(LumpedUncertainty {
+            l0_h: Some(3e-8),
+            ..Default::default()
+        });
+        cur.uncertainty = Some(LumpedUncertainty {
+            l0_h: Some(4e-8),
+            ..Default::default()
+        });
+        let d = drift(7, &base, &cur);
+        assert_eq!(d.baseline_fit_id, 7);
+        let l0 = d.parameters.iter().find(|p| p.name == "l0_h").unwrap();
+        assert!((l0.percent.unwrap() - 10.0).abs() < 1e-9);
+        // 1 µH over √(0.03² + 0.04²) µH = 0.05 µH → 20 σ.
+        assert!((l0.sigma.unwrap() - 20.0).abs() < 1e-9);
+        let rdc = d.parameters.iter().find(|p| p.name == "rdc_ohm").unwrap();
+        assert_eq!(rdc.percent, Some(0.0));
+        assert_eq!(rdc.sigma, None);
+        assert!(d.parameters.iter().all(|p| p.name != "ls_h"));
+        let srf = d.parameters.iter().find(|p| p.name == "srf_hz").unwrap();
+        assert!((srf.percent.unwrap() + 4.444_444).abs() < 1e-5);
+        assert!((d.max_sigma().unwrap() - 20.0).abs() < 1e-9);
+    }
+}

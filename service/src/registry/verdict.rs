@@ -1,0 +1,315 @@
+//! A fit against its part's limits: one check per limit that is set, each with the measured value, the
+//! limit it was held to, the margin (positive = inside the limit, in the unit of the measured value) and
+//! pass/fail. Measured values come from the engine's report or from its fitted model at the limit's
+//! test frequency; a test frequency outside the sweep band cannot be judged and fails with a note.
+
+use super::limits::Limits;
+use crate::fit::FitReport;
+use crate::model::{FittedModel, ImpedanceModel};
+use serde::{Deserialize, Serialize};
+use std::f64::consts::PI;
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct Check {
+    /// `inductance`, `dcr_max`, `srf_min`, `q_min` or `z_min_band`.
+    pub limit: String,
+    pub measured: Option<f64>,
+    pub limit_value: f64,
+    /// `H`, `ohm`, `Hz` or `1`.
+    pub unit: String,
+    pub margin: Option<f64>,
+    pub pass: bool,
+    /// Why a check could not be judged, or what the measured value stands for.
+    pub note: Option<String>,
+}
+
+/// Points per decade used to scan |Z| over a limit band (a scan of the fitted model).
+const BAND_SCAN_PER_DECADE: f64 = 50.0;
+
+fn in_band(report: &FitReport, f: f64) -> bool {
+    // A relative tolerance: the band ends are the sweep's first and last frequency.
+    f >= report.band_hz[0] * (1.0 - 1e-9) && f <= report.band_hz[1] * (1.0 + 1e-9)
+}
+
+fn out_of_band_note(report: &FitReport, f: f64) -> String {
+    format!(
+        "{f} Hz lies outside the swept band {}..{} Hz",
+        report.band_hz[0], report.band_hz[1]
+    )
+}
+
+fn check(limit: &str, unit: &str, limit_value: f64, measured: f64, margin: f64) -> Check {
+    Check {
+        limit: limit.into(),
+        measured: Some(measured),
+        limit_value,
+        unit: unit.into(),
+        margin: Some(margin),
+        pass: margin >= 0.0,
+        note: None,
+    }
+}
+
+fn unjudged(limit: &str, unit: &str, limit_value: f64, note: String) -> Check {
+    Check {
+        limit: limit.into(),
+        measured: None,
+        limit_value,
+        unit: unit.into(),
+        margin: None,
+        pass: false,
+        note: Some(note),
+    }
+}
+
+/// DC resistance of the model: the lumped model's `rdc_ohm`, or Re Z of the rational model at DC.
+pub fn model_dcr_ohm(model: &FittedModel) -> Option<f64> {
+    match model {
+        FittedModel::Lumped(m) => Some(m.rdc_ohm),
+        FittedModel::Rational(_) => Some(model.impedance(0.0).re).filter(|r| r.is_finite()),
+    }
+}
+
+/// All checks for the limits that are set, in a fixed order.
+pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
+    let model = &report.model;
+    let mut out = Vec::new();
+    if let (Some(nominal), Some(f), Some(tol)) = (
+        limits.l_nominal_h,
+        limits.l_test_frequency_hz,
+        limits.l_tolerance_percent,
+    ) {
+        let lo = nominal * (1.0 - tol / 100.0);
+        let hi = nominal * (1.0 + tol / 100.0);
+        if in_band(report, f) {
+            let l = model.impedance(f).im / (2.0 * PI * f);
+            let (bound, margin) = if l - lo < hi - l {
+                (lo, l - lo)
+            } else {
+                (hi, hi - l)
+            };
+            let mut c = check("inductance", "H", bound, l, margin);
+            c.note = Some(format!(
+                "effective L at {f} Hz against {nominal} H ± {tol} %"
+            ));
+            out.push(c);
+        } else {
+            out.push(unjudged(
+                "inductance",
+                "H",
+                nominal,
+                out_of_band_note(report, f),
+            ));
+        }
+    }
+    if let Some(max) = limits.dcr_max_ohm {
+        match model_dcr_ohm(model) {
+            Some(r) => out.push(check("dcr_max", "ohm", max, r, max - r)),
+            None => out.push(unjudged(
+                "dcr_max",
+                "ohm",
+                max,
+                "the model gives no DC resistance".into(),
+            )),
+        }
+    }
+    if let Some(min) = limits.srf_min_hz {
+        match (report.derived.srf_hz, report.derived.srf_above_hz) {
+            (Some(srf), _) => out.push(check("srf_min", "Hz", min, srf, srf - min)),
+            (None, Some(above)) if above >= min => {
+                let mut c = check("srf_min", "Hz", min, above, above - min);
+                c.note = Some(format!(
+                    "no resonance inside the sweep: the SRF lies above {above} Hz"
+                ));
+                out.push(c);
+            }
+            (None, above) => out.push(unjudged(
+                "srf_min",
+                "Hz",
+                min,
+                match above {
+                    Some(a) => format!(
+                        "no resonance below {a} Hz, the top of the sweep, which is below the limit"
+                    ),
+                    None => "the report gives no SRF".into(),
+                },
+            )),
+        }
+    }
+    if let (Some(min), Some(f)) = (limits.q_min, limits.q_test_frequency_hz) {
+        if in_band(report, f) {
+            let z = model.impedance(f);
+            let q = z.im / z.re;
+            let mut c = check("q_min", "1", min, q, q - min);
+            c.note = Some(format!("Q at {f} Hz"));
+            out.push(c);
+        } else {
+            out.push(unjudged("q_min", "1", min, out_of_band_note(report, f)));
+        }
+    }
+    if let (Some(min), Some(a), Some(b)) =
+        (limits.z_min_ohm, limits.z_band_min_hz, limits.z_band_max_hz)
+    {
+        if in_band(report, a) && in_band(report, b) {
+            let (z, at) = min_abs_z(model, a, b);
+            let mut c = check("z_min_band", "ohm", min, z, z - min);
+            c.note = Some(format!("lowest |Z| in {a}..{b} Hz, at {at} Hz"));
+            out.push(c);
+        } else {
+            out.push(unjudged(
+                "z_min_band",
+                "ohm",
+                min,
+                format!(
+                    "the band {a}..{b} Hz is not inside the swept band {}..{} Hz",
+                    report.band_hz[0], report.band_hz[1]
+                ),
+            ));
+        }
+    }
+    out
+}
+
+/// Lowest |Z| of the model on a dense log scan of `[a, b]` (ends included) and where it occurs.
+fn min_abs_z(model: &FittedModel, a: f64, b: f64) -> (f64, f64) {
+    let n = ((b / a).log10() * BAND_SCAN_PER_DECADE).ceil().max(1.0) as usize;
+    (0..=n)
+        .map(|i| {
+            let f = a * (b / a).powf(i as f64 / n as f64);
+            (model.impedance(f).norm(), f)
+        })
+        .fold(
+            (f64::INFINITY, a),
+            |best, x| if x.0 < best.0 { x } else { best },
+        )
+}
+
+/// The overall verdict: `None` without limits, else pass only when every check passes.
+pub fn overall(checks: &[Check]) -> Option<&'static str> {
+    if checks.is_empty() {
+        None
+    } else if checks.iter().all(|c| c.pass) {
+        Some("pass")
+    } else {
+        Some("fail")
+    }
+}
+
+#[cfg(test)]
+pub(crate) mod tests {
+    use super::*;
+    use crate::fit::{Derived, Quality, Termination};
+    use crate::model::LumpedModel;
+
+    /// A report around a known model (invented for the test: 10 µH, 50 mΩ, 5 pF).
+    pub(crate) fn report(l0_h: f64, rdc_ohm: f64, cp_f: f64, srf_hz: Option<f64>) -> FitReport {
+        FitReport {
+            engine_version: "test".into(),
+            model: FittedModel::Lumped(LumpedModel {
+                l0_h,
+                rdc_ohm,
+                k_ac_ohm_per_sqrt_hz: 0.0,
+                rp_ohm: None,
+                cp_f,
+                ls_h: 0.0,
+                sections: vec![],
+            }),
+            uncertainty: None,
+            not_identifiable: vec![],
+            correlation: None,
+            derived: Derived {
+                srf_hz,
+                srf_above_hz: if srf_hz.is_none() { Some(1e7) } else { None },
+                ..Derived::default()
+            },
+            quality: Quality::default(),
+            termination: Termination::Converged,
+            iterations: 1,
+            candidates: vec![],
+            band_hz: [1e3, 1e8],
+        }
+    }
+
+    #[test]
+    fn no_limits_give_no_verdict() {
+        let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
+        assert!(checks(&Limits::default(), &r).is_empty());
+        assert_eq!(overall(&[]), None);
+    }
+
+    #[test]
+    fn each_limit_reports_measured_value_and_margin() {
+        // Thomson: 10 µH with 5 pF resonates at 22.5079 MHz (TOOLBOX reference value).
+        let r = report(1e-5, 0.05, 5e-12, Some(22.5079e6));
+        let limits = Limits {
+            l_nominal_h: Some(1e-5),
+            l_test_frequency_hz: Some(1e5),
+            l_tolerance_percent: Some(20.0),
+            dcr_max_ohm: Some(0.04),
+            srf_min_hz: Some(1.5e7),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        assert_eq!(c.len(), 3);
+        // Effective L at 100 kHz: L0 / (1 − ω² L0 Cp) ≈ 10.0002 µH, 1.9998 µH inside the upper bound.
+        assert_eq!(c[0].limit, "inductance");
+        assert!(c[0].pass);
+        assert!((c[0].limit_value - 1.2e-5).abs() < 1e-12);
+        assert!((c[0].margin.unwrap() - 1.998e-6).abs() < 1e-8);
+        assert_eq!(c[1].limit, "dcr_max");
+        assert!(!c[1].pass);
+        assert!((c[1].margin.unwrap() + 0.01).abs() < 1e-12);
+        assert_eq!(c[2].limit, "srf_min");
+        assert!(c[2].pass);
+        assert_eq!(overall(&c), Some("fail"));
+    }
+
+    #[test]
+    fn a_test_frequency_outside_the_sweep_fails_with_a_note() {
+        let r = report(1e-5, 0.05, 5e-12, Some(22.5e6));
+        let limits = Limits {
+            q_min: Some(10.0),
+            q_test_frequency_hz: Some(1e9),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        assert!(!c[0].pass);
+        assert!(c[0].measured.is_none());
+        assert!(
+            c[0].note
+                .as_deref()
+                .unwrap()
+                .contains("outside the swept band")
+        );
+    }
+
+    #[test]
+    fn an_srf_above_the_sweep_passes_when_the_sweep_top_clears_the_limit() {
+        let r = report(1e-6, 0.01, 1e-13, None);
+        let ok = Limits {
+            srf_min_hz: Some(5e6),
+            ..Limits::default()
+        };
+        assert!(checks(&ok, &r)[0].pass);
+        let too_high = Limits {
+            srf_min_hz: Some(5e7),
+            ..Limits::default()
+        };
+        assert!(!checks(&too_high, &r)[0].pass);
+    }
+
+    #[test]
+    fn the_lowest_impedance_over_a_band_is_at_its_low_end_for_an_inductor_below_srf() {
+        let r = report(1e-5, 0.05, 5e-12, Some(22.5e6));
+        let limits = Limits {
+            z_min_ohm: Some(100.0),
+            z_band_min_hz: Some(1e6),
+            z_band_max_hz: Some(1e7),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        // |Z(1 MHz)| ≈ ωL/(1 − ω²LC) = 62.83/(1 − 0.001974) ≈ 62.96 Ω < 100 Ω.
+        assert!(!c[0].pass);
+        assert!((c[0].measured.unwrap() - 62.955).abs() < 0.01);
+    }
+}

@@ -1,0 +1,163 @@
+//! The JSON shapes of the HTTP API (see CONTRACT.md). Numbers carry SI units in their names;
+//! timestamps are RFC 3339 text.
+
+use super::drift::Drift;
+use super::limits::Limits;
+use super::verdict::Check;
+use serde::{Deserialize, Serialize};
+
+/// The state of a fit's job.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum FitStatus {
+    Queued,
+    Running,
+    Succeeded,
+    Failed,
+    Cancelled,
+}
+
+impl FitStatus {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FitStatus::Queued => "queued",
+            FitStatus::Running => "running",
+            FitStatus::Succeeded => "succeeded",
+            FitStatus::Failed => "failed",
+            FitStatus::Cancelled => "cancelled",
+        }
+    }
+    pub fn parse(text: &str) -> Option<FitStatus> {
+        Some(match text {
+            "queued" => FitStatus::Queued,
+            "running" => FitStatus::Running,
+            "succeeded" => FitStatus::Succeeded,
+            "failed" => FitStatus::Failed,
+            "cancelled" => FitStatus::Cancelled,
+            _ => return None,
+        })
+    }
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct FitSummary {
+    pub fit_id: i64,
+    /// 1 for the first fit of a sweep; each refit adds one.
+    pub revision: i64,
+    pub sweep_id: i64,
+    pub part_number: String,
+    pub lot: String,
+    pub status: FitStatus,
+    /// 0..1.
+    pub progress: f64,
+    pub error: Option<String>,
+    pub created_at: String,
+    pub started_at: Option<String>,
+    pub finished_at: Option<String>,
+    pub srf_hz: Option<f64>,
+    /// `pass`, `fail`, or null (no limits, or not succeeded).
+    pub verdict: Option<String>,
+    /// `approved`, `rejected`, or null.
+    pub approval: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct FitDetail {
+    #[serde(flatten)]
+    pub summary: FitSummary,
+    /// The engine's FitReport, or null until the fit succeeded.
+    #[schema(value_type = Option<Object>)]
+    pub report: Option<serde_json::Value>,
+    pub verdict_checks: Vec<Check>,
+    pub drift: Option<Drift>,
+    /// The fit options the engine ran with.
+    #[schema(value_type = Object)]
+    pub options: serde_json::Value,
+    pub method: String,
+    pub z0_ohm: Option<f64>,
+    pub dcr_ohm: Option<f64>,
+    pub temperature_c: Option<f64>,
+    pub operator: String,
+    pub file_name: String,
+    pub sha256: String,
+    pub engine_version: Option<String>,
+    pub attempts: i64,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct FitCurves {
+    pub frequency_hz: Vec<f64>,
+    pub measured_z_real_ohm: Vec<f64>,
+    pub measured_z_imag_ohm: Vec<f64>,
+    pub sigma_ohm: Vec<f64>,
+    pub model_z_real_ohm: Vec<f64>,
+    pub model_z_imag_ohm: Vec<f64>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct AuditEntry {
+    pub at: String,
+    pub actor: String,
+    pub action: String,
+    pub fit_id: Option<i64>,
+    pub reason: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct Part {
+    pub part_number: String,
+    pub description: String,
+    pub limits: Limits,
+    pub lots: Vec<String>,
+    pub baseline_fit_id: Option<i64>,
+    /// Newest first (at most 500).
+    pub fits: Vec<FitSummary>,
+    /// Oldest first (the newest 500).
+    pub audit: Vec<AuditEntry>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct PartSummary {
+    pub part_number: String,
+    pub description: String,
+    pub approved_fit_id: Option<i64>,
+    /// The newest succeeded fit.
+    pub latest_fit_id: Option<i64>,
+    pub latest_verdict: Option<String>,
+    /// Largest |drift| of the newest fit against the approved baseline, in σ.
+    pub drift_max_sigma: Option<f64>,
+    /// Figures of the fit the query answered from (the approved one with `approved_only`, else the
+    /// newest succeeded one).
+    pub srf_hz: Option<f64>,
+    pub series_resonances_hz: Vec<f64>,
+    pub l0_h: Option<f64>,
+    pub rdc_ohm: Option<f64>,
+    /// With `l_at_hz`: the effective L there, interpolated on the stored grid.
+    pub l_eff_h: Option<f64>,
+    /// With a `z_band_*` query: the lowest stored |Z| in the band.
+    pub z_min_ohm: Option<f64>,
+    pub answered_from_fit_id: Option<i64>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct QueueCounts {
+    pub queued: i64,
+    pub running: i64,
+    pub succeeded: i64,
+    pub failed: i64,
+    pub cancelled: i64,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct FitPage {
+    pub items: Vec<FitSummary>,
+    /// Pass as `cursor` for the next page; null on the last page.
+    pub next_cursor: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
+pub struct PartPage {
+    pub items: Vec<PartSummary>,
+    /// Pass as `cursor` for the next page; null on the last page.
+    pub next_cursor: Option<String>,
+}

@@ -1,0 +1,454 @@
+//! Fits: status for the dashboard, details, revisions (refit), cancel/retry, approval and rejection.
+
+use super::{Store, StoreError, StoreResult, audit, now_ms, rfc3339};
+use crate::fit::FitReport;
+use crate::registry::drift;
+use crate::registry::wire::{FitDetail, FitPage, FitStatus, FitSummary, QueueCounts};
+use sqlx::sqlite::SqliteRow;
+use sqlx::{QueryBuilder, Row, Sqlite, SqliteConnection};
+
+const SUMMARY_SELECT: &str = "SELECT f.fit_id, f.revision, f.sweep_id, p.part_number, l.lot, \
+    f.status, f.progress, f.error, f.created_at_ms, f.started_at_ms, f.finished_at_ms, f.srf_hz, \
+    f.verdict, f.approval FROM fits f JOIN parts p ON p.part_id = f.part_id \
+    JOIN lots l ON l.lot_id = f.lot_id";
+
+fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
+    let status: String = row.try_get("status")?;
+    Ok(FitSummary {
+        fit_id: row.try_get("fit_id")?,
+        revision: row.try_get("revision")?,
+        sweep_id: row.try_get("sweep_id")?,
+        part_number: row.try_get("part_number")?,
+        lot: row.try_get("lot")?,
+        status: FitStatus::parse(&status).ok_or_else(|| sqlx::Error::ColumnDecode {
+            index: "status".into(),
+            source: format!("unknown status {status}").into(),
+        })?,
+        progress: row.try_get("progress")?,
+        error: row.try_get("error")?,
+        created_at: rfc3339(row.try_get("created_at_ms")?),
+        started_at: row.try_get::<Option<i64>, _>("started_at_ms")?.map(rfc3339),
+        finished_at: row
+            .try_get::<Option<i64>, _>("finished_at_ms")?
+            .map(rfc3339),
+        srf_hz: row.try_get("srf_hz")?,
+        verdict: row.try_get("verdict")?,
+        approval: row.try_get("approval")?,
+    })
+}
+
+/// Filters of the fit list.
+#[derive(Debug, Clone, Default)]
+pub struct FitFilter {
+    pub status: Option<FitStatus>,
+    pub part_number: Option<String>,
+    pub lot: Option<String>,
+    pub since_ms: Option<i64>,
+    /// Fits older than this id (the cursor of the previous page).
+    pub before_fit_id: Option<i64>,
+    pub limit: i64,
+}
+
+impl Store {
+    pub async fn fit_summary(&self, fit_id: i64) -> StoreResult<FitSummary> {
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "{SUMMARY_SELECT} WHERE f.fit_id = ?"
+        )))
+        .bind(fit_id)
+        .fetch_optional(&self.reader)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        Ok(summary_from_row(&row)?)
+    }
+
+    pub async fn fit_detail(&self, fit_id: i64) -> StoreResult<FitDetail> {
+        let row = sqlx::query(
+            "SELECT f.report_json, f.verdict_json, f.drift_json, f.options_json, f.engine_version, \
+             s.method, s.z0_ohm, s.dcr_ohm, s.temperature_c, s.operator, s.file_name, s.sha256, \
+             j.attempts FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
+             JOIN jobs j ON j.fit_id = f.fit_id WHERE f.fit_id = ?",
+        )
+        .bind(fit_id)
+        .fetch_optional(&self.reader)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        let summary = self.fit_summary(fit_id).await?;
+        let parse = |col: &str| -> StoreResult<Option<serde_json::Value>> {
+            let text: Option<String> = row.try_get(col)?;
+            Ok(text.map(|t| serde_json::from_str(&t)).transpose()?)
+        };
+        let verdict_checks = match row.try_get::<Option<String>, _>("verdict_json")? {
+            Some(t) => serde_json::from_str(&t)?,
+            None => Vec::new(),
+        };
+        let drift = match row.try_get::<Option<String>, _>("drift_json")? {
+            Some(t) => Some(serde_json::from_str(&t)?),
+            None => None,
+        };
+        Ok(FitDetail {
+            summary,
+            report: parse("report_json")?,
+            verdict_checks,
+            drift,
+            options: parse("options_json")?.unwrap_or(serde_json::Value::Null),
+            method: row.try_get("method")?,
+            z0_ohm: row.try_get("z0_ohm")?,
+            dcr_ohm: row.try_get("dcr_ohm")?,
+            temperature_c: row.try_get("temperature_c")?,
+            operator: row.try_get("operator")?,
+            file_name: row.try_get("file_name")?,
+            sha256: row.try_get("sha256")?,
+            engine_version: row.try_get("engine_version")?,
+            attempts: row.try_get("attempts")?,
+        })
+    }
+
+    /// The stored report of a succeeded fit.
+    pub async fn fit_report(&self, fit_id: i64) -> StoreResult<Option<FitReport>> {
+        let text: Option<Option<String>> =
+            sqlx::query_scalar("SELECT report_json FROM fits WHERE fit_id = ?")
+                .bind(fit_id)
+                .fetch_optional(&self.reader)
+                .await?;
+        match text {
+            None => Err(StoreError::NotFound(format!("no fit {fit_id}"))),
+            Some(None) => Ok(None),
+            Some(Some(t)) => Ok(Some(serde_json::from_str(&t)?)),
+        }
+    }
+
+    /// The sweep a fit belongs to.
+    pub async fn fit_sweep_id(&self, fit_id: i64) -> StoreResult<i64> {
+        sqlx::query_scalar("SELECT sweep_id FROM fits WHERE fit_id = ?")
+            .bind(fit_id)
+            .fetch_optional(&self.reader)
+            .await?
+            .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))
+    }
+
+    /// Newest first, filtered, one page.
+    pub async fn list_fits(&self, filter: &FitFilter) -> StoreResult<FitPage> {
+        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(SUMMARY_SELECT);
+        q.push(" WHERE 1 = 1");
+        if let Some(s) = filter.status {
+            q.push(" AND f.status = ").push_bind(s.as_str());
+        }
+        if let Some(p) = &filter.part_number {
+            q.push(" AND p.part_number = ").push_bind(p.clone());
+        }
+        if let Some(l) = &filter.lot {
+            q.push(" AND l.lot = ").push_bind(l.clone());
+        }
+        if let Some(t) = filter.since_ms {
+            q.push(" AND f.created_at_ms >= ").push_bind(t);
+        }
+        if let Some(c) = filter.before_fit_id {
+            q.push(" AND f.fit_id < ").push_bind(c);
+        }
+        q.push(" ORDER BY f.fit_id DESC LIMIT ")
+            .push_bind(filter.limit + 1);
+        let rows = q.build().fetch_all(&self.reader).await?;
+        let mut items = rows
+            .iter()
+            .map(summary_from_row)
+            .collect::<Result<Vec<_>, _>>()?;
+        let next_cursor = if items.len() as i64 > filter.limit {
+            items.truncate(filter.limit as usize);
+            items.last().map(|f| f.fit_id.to_string())
+        } else {
+            None
+        };
+        Ok(FitPage { items, next_cursor })
+    }
+
+    pub(crate) async fn fits_of_part(
+        &self,
+        part_id: i64,
+        limit: i64,
+    ) -> StoreResult<Vec<FitSummary>> {
+        let rows = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "{SUMMARY_SELECT} WHERE f.part_id = ? ORDER BY f.fit_id DESC LIMIT ?"
+        )))
+        .bind(part_id)
+        .bind(limit)
+        .fetch_all(&self.reader)
+        .await?;
+        Ok(rows
+            .iter()
+            .map(summary_from_row)
+            .collect::<Result<Vec<_>, _>>()?)
+    }
+
+    pub async fn queue_counts(&self) -> StoreResult<QueueCounts> {
+        let rows: Vec<(String, i64)> =
+            sqlx::query_as("SELECT status, COUNT(*) FROM fits GROUP BY status")
+                .fetch_all(&self.reader)
+                .await?;
+        let get = |s: &str| rows.iter().find(|r| r.0 == s).map_or(0, |r| r.1);
+        Ok(QueueCounts {
+            queued: get("queued"),
+            running: get("running"),
+            succeeded: get("succeeded"),
+            failed: get("failed"),
+            cancelled: get("cancelled"),
+        })
+    }
+
+    /// Cancels a queued fit at once; asks a running one to stop (its worker sees the request at the
+    /// next lease renewal). Returns whether the fit was running.
+    pub async fn cancel_fit(&self, actor: &str, fit_id: i64) -> StoreResult<bool> {
+        let mut tx = self.write().await?;
+        let (status, part_id) = status_of(&mut tx, fit_id).await?;
+        let running = match status.as_str() {
+            "queued" => {
+                sqlx::query(
+                    "UPDATE fits SET status = 'cancelled', finished_at_ms = ? WHERE fit_id = ?",
+                )
+                .bind(now_ms())
+                .bind(fit_id)
+                .execute(&mut *tx)
+                .await?;
+                sqlx::query(
+                    "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
+                     WHERE fit_id = ?",
+                )
+                .bind(fit_id)
+                .execute(&mut *tx)
+                .await?;
+                false
+            }
+            "running" => {
+                sqlx::query("UPDATE jobs SET cancel_requested = 1 WHERE fit_id = ?")
+                    .bind(fit_id)
+                    .execute(&mut *tx)
+                    .await?;
+                true
+            }
+            other => {
+                return Err(StoreError::Conflict(format!(
+                    "fit {fit_id} is {other}: only queued or running fits can be cancelled"
+                )));
+            }
+        };
+        audit(
+            &mut tx,
+            actor,
+            "fit-cancelled",
+            Some(part_id),
+            Some(fit_id),
+            None,
+        )
+        .await?;
+        tx.commit().await?;
+        Ok(running)
+    }
+
+    /// Queues a failed or cancelled fit again (same revision: its result was never written).
+    pub async fn retry_fit(&self, actor: &str, fit_id: i64) -> StoreResult<()> {
+        let mut tx = self.write().await?;
+        let (status, part_id) = status_of(&mut tx, fit_id).await?;
+        if status != "failed" && status != "cancelled" {
+            return Err(StoreError::Conflict(format!(
+                "fit {fit_id} is {status}: only failed or cancelled fits can be retried"
+            )));
+        }
+        sqlx::query(
+            "UPDATE fits SET status = 'queued', progress = 0, error = NULL, started_at_ms = NULL, \
+             finished_at_ms = NULL WHERE fit_id = ?",
+        )
+        .bind(fit_id)
+        .execute(&mut *tx)
+        .await?;
+        sqlx::query(
+            "UPDATE jobs SET state = 'queued', claim_token = NULL, lease_until_ms = NULL, \
+             attempts = 0, cancel_requested = 0, enqueued_at_ms = ? WHERE fit_id = ?",
+        )
+        .bind(now_ms())
+        .bind(fit_id)
+        .execute(&mut *tx)
+        .await?;
+        audit(
+            &mut tx,
+            actor,
+            "fit-retried",
+            Some(part_id),
+            Some(fit_id),
+            None,
+        )
+        .await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    /// Queues a new revision of the fit's sweep with new options; the old revision stays as it is.
+    pub async fn refit(
+        &self,
+        actor: &str,
+        fit_id: i64,
+        options_json: &str,
+        options_key: &str,
+    ) -> StoreResult<i64> {
+        let mut tx = self.write().await?;
+        let row: Option<(i64, i64, i64)> =
+            sqlx::query_as("SELECT sweep_id, part_id, lot_id FROM fits WHERE fit_id = ?")
+                .bind(fit_id)
+                .fetch_optional(&mut *tx)
+                .await?;
+        let (sweep_id, part_id, lot_id) =
+            row.ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        let revision: i64 =
+            sqlx::query_scalar("SELECT MAX(revision) + 1 FROM fits WHERE sweep_id = ?")
+                .bind(sweep_id)
+                .fetch_one(&mut *tx)
+                .await?;
+        let new_id = super::sweeps::insert_fit(
+            &mut tx,
+            sweep_id,
+            part_id,
+            lot_id,
+            revision,
+            options_json,
+            options_key,
+        )
+        .await?;
+        audit(
+            &mut tx,
+            actor,
+            "refit-requested",
+            Some(part_id),
+            Some(new_id),
+            Some(&format!(
+                "revision {revision} of the sweep fitted by fit {fit_id}"
+            )),
+        )
+        .await?;
+        tx.commit().await?;
+        Ok(new_id)
+    }
+
+    /// Approves a succeeded fit: it becomes the part's baseline, and every other fit of the part is
+    /// compared against it.
+    pub async fn approve_fit(
+        &self,
+        actor: &str,
+        fit_id: i64,
+        reason: Option<&str>,
+    ) -> StoreResult<()> {
+        let mut tx = self.write().await?;
+        let (status, part_id) = status_of(&mut tx, fit_id).await?;
+        if status != "succeeded" {
+            return Err(StoreError::Conflict(format!(
+                "fit {fit_id} is {status}: only succeeded fits can be approved"
+            )));
+        }
+        sqlx::query("UPDATE fits SET approval = 'approved' WHERE fit_id = ?")
+            .bind(fit_id)
+            .execute(&mut *tx)
+            .await?;
+        sqlx::query("UPDATE parts SET baseline_fit_id = ? WHERE part_id = ?")
+            .bind(fit_id)
+            .bind(part_id)
+            .execute(&mut *tx)
+            .await?;
+        audit(
+            &mut tx,
+            actor,
+            "fit-approved",
+            Some(part_id),
+            Some(fit_id),
+            reason,
+        )
+        .await?;
+        refresh_drift(&mut tx, part_id).await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    /// Rejects a succeeded fit; a rejected baseline stops being the baseline.
+    pub async fn reject_fit(&self, actor: &str, fit_id: i64, reason: &str) -> StoreResult<()> {
+        let mut tx = self.write().await?;
+        let (status, part_id) = status_of(&mut tx, fit_id).await?;
+        if status != "succeeded" {
+            return Err(StoreError::Conflict(format!(
+                "fit {fit_id} is {status}: only succeeded fits can be rejected"
+            )));
+        }
+        sqlx::query("UPDATE fits SET approval = 'rejected' WHERE fit_id = ?")
+            .bind(fit_id)
+            .execute(&mut *tx)
+            .await?;
+        sqlx::query(
+            "UPDATE parts SET baseline_fit_id = NULL WHERE part_id = ? AND baseline_fit_id = ?",
+        )
+        .bind(part_id)
+        .bind(fit_id)
+        .execute(&mut *tx)
+        .await?;
+        audit(
+            &mut tx,
+            actor,
+            "fit-rejected",
+            Some(part_id),
+            Some(fit_id),
+            Some(reason),
+        )
+        .await?;
+        refresh_drift(&mut tx, part_id).await?;
+        tx.commit().await?;
+        Ok(())
+    }
+}
+
+async fn status_of(tx: &mut SqliteConnection, fit_id: i64) -> StoreResult<(String, i64)> {
+    sqlx::query_as("SELECT status, part_id FROM fits WHERE fit_id = ?")
+        .bind(fit_id)
+        .fetch_optional(tx)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))
+}
+
+/// The baseline's report of a part, if it has one.
+pub(crate) async fn baseline_report(
+    tx: &mut SqliteConnection,
+    part_id: i64,
+) -> StoreResult<Option<(i64, FitReport)>> {
+    let row: Option<(i64, String)> = sqlx::query_as(
+        "SELECT f.fit_id, f.report_json FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id \
+         WHERE p.part_id = ? AND f.report_json IS NOT NULL",
+    )
+    .bind(part_id)
+    .fetch_optional(tx)
+    .await?;
+    Ok(match row {
+        Some((id, json)) => Some((id, serde_json::from_str(&json)?)),
+        None => None,
+    })
+}
+
+/// Recomputes the stored drift of every succeeded fit of a part against its current baseline.
+async fn refresh_drift(tx: &mut SqliteConnection, part_id: i64) -> StoreResult<()> {
+    let baseline = baseline_report(tx, part_id).await?;
+    let fits: Vec<(i64, String)> = sqlx::query_as(
+        "SELECT fit_id, report_json FROM fits WHERE part_id = ? AND status = 'succeeded'",
+    )
+    .bind(part_id)
+    .fetch_all(&mut *tx)
+    .await?;
+    for (fit_id, json) in fits {
+        let (json_out, max) = match &baseline {
+            Some((bid, b)) if *bid != fit_id => {
+                let report: FitReport = serde_json::from_str(&json)?;
+                let d = drift::drift(*bid, b, &report);
+                (Some(serde_json::to_string(&d)?), d.max_sigma())
+            }
+            _ => (None, None),
+        };
+        sqlx::query("UPDATE fits SET drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?")
+            .bind(json_out)
+            .bind(max)
+            .bind(fit_id)
+            .execute(&mut *tx)
+            .await?;
+    }
+    Ok(())
+}

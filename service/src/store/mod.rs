@@ -1,0 +1,211 @@
+//! Storage on SQLite through sqlx: parts, lots, sweeps, fits and their revisions, the job table,
+//! query figures, tokens and the audit trail (schema in `migrations/`).
+//!
+//! Writes go through a single-connection writer pool, so write transactions never race each other into
+//! SQLITE_BUSY_SNAPSHOT; reads use a separate pool of WAL readers. The store translates between rows and
+//! the wire types in [`crate::registry::wire`]; it computes nothing beyond calling the pure
+//! [`crate::registry`] functions when a stored verdict or drift must follow a change of limits or
+//! baseline.
+
+pub mod fits;
+pub mod jobs;
+pub mod parts;
+pub mod query;
+pub mod sweeps;
+pub mod tokens;
+
+use anyhow::Context;
+use sqlx::SqlitePool;
+use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
+use std::path::Path;
+use std::time::Duration;
+
+pub static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../migrations");
+
+/// Errors the HTTP layer maps to problems; anything else is an internal error (logged, not shown).
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("{0}")]
+    NotFound(String),
+    #[error("{0}")]
+    Conflict(String),
+    #[error("{0}")]
+    Invalid(String),
+    #[error(transparent)]
+    Database(#[from] sqlx::Error),
+    #[error(transparent)]
+    Json(#[from] serde_json::Error),
+}
+
+pub type StoreResult<T> = Result<T, StoreError>;
+
+#[derive(Clone, Debug)]
+pub struct Store {
+    /// One connection: every write transaction is serialised here.
+    pub(crate) writer: SqlitePool,
+    pub(crate) reader: SqlitePool,
+}
+
+impl Store {
+    /// Opens (creating when missing) the database file and applies the migrations.
+    pub async fn open(path: &Path) -> anyhow::Result<Store> {
+        if let Some(dir) = path.parent()
+            && !dir.as_os_str().is_empty()
+        {
+            std::fs::create_dir_all(dir)
+                .with_context(|| format!("cannot create the folder {}", dir.display()))?;
+        }
+        let options = SqliteConnectOptions::new()
+            .filename(path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Normal)
+            .busy_timeout(Duration::from_secs(10))
+            .foreign_keys(true);
+        let writer = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(options.clone())
+            .await
+            .with_context(|| format!("cannot open the database {}", path.display()))?;
+        MIGRATOR
+            .run(&writer)
+            .await
+            .context("cannot apply the database migrations")?;
+        let reader = SqlitePoolOptions::new()
+            .max_connections(8)
+            .connect_with(options.read_only(true))
+            .await
+            .with_context(|| format!("cannot open the database {}", path.display()))?;
+        Ok(Store { writer, reader })
+    }
+
+    /// Readiness: the database answers and every embedded migration is applied.
+    pub async fn readiness(&self) -> (bool, bool) {
+        let database = sqlx::query_scalar::<_, i64>("SELECT 1")
+            .fetch_one(&self.reader)
+            .await
+            .is_ok();
+        let applied: Result<Vec<i64>, _> = sqlx::query_scalar(
+            "SELECT version FROM _sqlx_migrations WHERE success = 1 ORDER BY version",
+        )
+        .fetch_all(&self.reader)
+        .await;
+        let migrations = match applied {
+            Ok(v) => MIGRATOR.iter().all(|m| v.contains(&m.version)),
+            Err(_) => false,
+        };
+        (database, migrations)
+    }
+
+    pub async fn close(&self) {
+        self.reader.close().await;
+        self.writer.close().await;
+    }
+
+    /// Starts a write transaction on the writer connection.
+    pub(crate) async fn write(&self) -> StoreResult<sqlx::Transaction<'static, sqlx::Sqlite>> {
+        Ok(self.writer.begin().await?)
+    }
+}
+
+/// Milliseconds since the Unix epoch.
+pub fn now_ms() -> i64 {
+    time::OffsetDateTime::now_utc().unix_timestamp_nanos() as i64 / 1_000_000
+}
+
+/// RFC 3339 text of a millisecond timestamp.
+pub fn rfc3339(ms: i64) -> String {
+    use time::format_description::well_known::Rfc3339;
+    time::OffsetDateTime::from_unix_timestamp_nanos(ms as i128 * 1_000_000)
+        .ok()
+        .and_then(|t| t.format(&Rfc3339).ok())
+        .unwrap_or_default()
+}
+
+/// Parses an RFC 3339 timestamp into milliseconds.
+pub fn parse_rfc3339(text: &str) -> Option<i64> {
+    use time::format_description::well_known::Rfc3339;
+    time::OffsetDateTime::parse(text, &Rfc3339)
+        .ok()
+        .map(|t| (t.unix_timestamp_nanos() / 1_000_000) as i64)
+}
+
+/// Lowercase hex SHA-256.
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    use sha2::Digest;
+    hex::encode(sha2::Sha256::digest(bytes))
+}
+
+/// Records one audit entry inside a write transaction.
+pub(crate) async fn audit(
+    tx: &mut sqlx::SqliteConnection,
+    actor: &str,
+    action: &str,
+    part_id: Option<i64>,
+    fit_id: Option<i64>,
+    reason: Option<&str>,
+) -> StoreResult<()> {
+    sqlx::query(
+        "INSERT INTO audit (at_ms, actor, action, part_id, fit_id, reason) VALUES (?, ?, ?, ?, ?, ?)",
+    )
+    .bind(now_ms())
+    .bind(actor)
+    .bind(action)
+    .bind(part_id)
+    .bind(fit_id)
+    .bind(reason)
+    .execute(tx)
+    .await?;
+    Ok(())
+}
+
+#[cfg(test)]
+pub(crate) mod testing {
+    use super::*;
+
+    /// A store on a fresh database file in its own temporary folder (kept alive by the guard).
+    pub(crate) async fn temp_store() -> (Store, tempfile::TempDir) {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let store = Store::open(&dir.path().join("test.db"))
+            .await
+            .expect("open");
+        (store, dir)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[tokio::test]
+    async fn a_new_database_is_migrated_and_ready() {
+        let (store, _dir) = testing::temp_store().await;
+        assert_eq!(store.readiness().await, (true, true));
+    }
+
+    #[test]
+    fn timestamps_round_trip_through_rfc3339() {
+        let ms = 1_764_547_200_123;
+        let text = rfc3339(ms);
+        assert_eq!(text, "2025-12-01T00:00:00.123Z");
+        assert_eq!(parse_rfc3339(&text), Some(ms));
+    }
+
+    #[tokio::test]
+    async fn the_audit_trail_refuses_updates_and_deletes() {
+        let (store, _dir) = testing::temp_store().await;
+        let mut tx = store.write().await.unwrap();
+        audit(&mut tx, "test", "created", None, None, None)
+            .await
+            .unwrap();
+        tx.commit().await.unwrap();
+        let upd = sqlx::query("UPDATE audit SET actor = 'x'")
+            .execute(&store.writer)
+            .await;
+        assert!(upd.unwrap_err().to_string().contains("append-only"));
+        let del = sqlx::query("DELETE FROM audit")
+            .execute(&store.writer)
+            .await;
+        assert!(del.unwrap_err().to_string().contains("append-only"));
+    }
+}

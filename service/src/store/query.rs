@@ -1,0 +1,401 @@
+//! Behavioural queries for design tools, answered from stored figures through indexes: SRF band,
+//! series-resonance band, effective L at a frequency (interpolated on the stored grid), DCR at most,
+//! |Z| at least over a band; approved baselines only or the newest succeeded fit of every part; sorted,
+//! keyset-paginated.
+
+use super::{Store, StoreError, StoreResult};
+use crate::registry::grid;
+use crate::registry::wire::{PartPage, PartSummary};
+use sqlx::{QueryBuilder, Row, Sqlite};
+
+/// Sort keys; `descending` reverses the figure order (part numbers break ties ascending).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SortKey {
+    PartNumber,
+    SrfHz,
+    L0H,
+    RdcOhm,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Sort {
+    pub key: SortKey,
+    pub descending: bool,
+}
+
+impl Sort {
+    /// `part_number`, `srf_hz`, `l0_h`, `rdc_ohm`, each optionally prefixed by `-` for descending.
+    pub fn parse(text: &str) -> Result<Sort, String> {
+        let (descending, name) = match text.strip_prefix('-') {
+            Some(rest) => (true, rest),
+            None => (false, text),
+        };
+        let key = match name {
+            "part_number" => SortKey::PartNumber,
+            "srf_hz" => SortKey::SrfHz,
+            "l0_h" => SortKey::L0H,
+            "rdc_ohm" => SortKey::RdcOhm,
+            _ => {
+                return Err(format!(
+                    "sort must be one of part_number, srf_hz, l0_h, rdc_ohm (with - for descending), not {text:?}"
+                ));
+            }
+        };
+        Ok(Sort { key, descending })
+    }
+
+    fn column(self) -> Option<&'static str> {
+        match self.key {
+            SortKey::PartNumber => None,
+            SortKey::SrfHz => Some("f.srf_hz"),
+            SortKey::L0H => Some("f.l0_h"),
+            SortKey::RdcOhm => Some("f.rdc_ohm"),
+        }
+    }
+}
+
+/// Where the previous page ended.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Cursor {
+    /// Sort value of the last item (absent when sorting by part number).
+    pub v: Option<f64>,
+    pub p: String,
+}
+
+impl Cursor {
+    pub fn encode(&self) -> String {
+        hex::encode(serde_json::to_vec(self).unwrap_or_default())
+    }
+    pub fn decode(text: &str) -> Result<Cursor, String> {
+        hex::decode(text)
+            .ok()
+            .and_then(|b| serde_json::from_slice(&b).ok())
+            .ok_or_else(|| "cursor is not one this service handed out".to_string())
+    }
+}
+
+/// A validated query (see [`PartQuery::validate`]).
+#[derive(Debug, Clone)]
+pub struct PartQuery {
+    /// Substring of part number or description.
+    pub q: Option<String>,
+    pub approved_only: bool,
+    pub srf_min_hz: Option<f64>,
+    pub srf_max_hz: Option<f64>,
+    pub series_resonance_min_hz: Option<f64>,
+    pub series_resonance_max_hz: Option<f64>,
+    pub l_at_hz: Option<f64>,
+    pub l_min_h: Option<f64>,
+    pub l_max_h: Option<f64>,
+    pub dcr_max_ohm: Option<f64>,
+    pub z_min_ohm: Option<f64>,
+    pub z_band_min_hz: Option<f64>,
+    pub z_band_max_hz: Option<f64>,
+    pub sort: Sort,
+    pub limit: i64,
+    pub cursor: Option<Cursor>,
+}
+
+impl PartQuery {
+    pub fn validate(&self) -> Result<(), String> {
+        let positive = [
+            ("srf_min_hz", self.srf_min_hz),
+            ("srf_max_hz", self.srf_max_hz),
+            ("series_resonance_min_hz", self.series_resonance_min_hz),
+            ("series_resonance_max_hz", self.series_resonance_max_hz),
+            ("l_at_hz", self.l_at_hz),
+            ("l_min_h", self.l_min_h),
+            ("l_max_h", self.l_max_h),
+            ("dcr_max_ohm", self.dcr_max_ohm),
+            ("z_min_ohm", self.z_min_ohm),
+            ("z_band_min_hz", self.z_band_min_hz),
+            ("z_band_max_hz", self.z_band_max_hz),
+        ];
+        for (name, v) in positive {
+            if let Some(v) = v
+                && !(v.is_finite() && v > 0.0)
+            {
+                return Err(format!("{name} must be a finite number above zero"));
+            }
+        }
+        if (self.l_min_h.is_some() || self.l_max_h.is_some()) && self.l_at_hz.is_none() {
+            return Err("l_min_h and l_max_h need l_at_hz".into());
+        }
+        if let Some(f) = self.l_at_hz
+            && grid::bracket(f).is_none()
+        {
+            return Err(format!(
+                "l_at_hz must lie in {}..{} Hz, the stored grid",
+                grid::frequency_hz(0),
+                grid::frequency_hz(grid::LAST_K)
+            ));
+        }
+        if self.z_band_min_hz.is_some() != self.z_band_max_hz.is_some() {
+            return Err("z_band_min_hz and z_band_max_hz come together".into());
+        }
+        if self.z_min_ohm.is_some() && self.z_band_min_hz.is_none() {
+            return Err("z_min_ohm needs z_band_min_hz and z_band_max_hz".into());
+        }
+        if let (Some(a), Some(b)) = (self.z_band_min_hz, self.z_band_max_hz)
+            && grid::index_range(a, b).is_none()
+        {
+            return Err(format!(
+                "the band {a}..{b} Hz holds no point of the stored grid ({} points per decade, {}..{} Hz)",
+                grid::POINTS_PER_DECADE,
+                grid::frequency_hz(0),
+                grid::frequency_hz(grid::LAST_K)
+            ));
+        }
+        for (lo, hi, what) in [
+            (self.srf_min_hz, self.srf_max_hz, "srf"),
+            (
+                self.series_resonance_min_hz,
+                self.series_resonance_max_hz,
+                "series_resonance",
+            ),
+            (self.l_min_h, self.l_max_h, "l"),
+        ] {
+            if let (Some(lo), Some(hi)) = (lo, hi)
+                && lo > hi
+            {
+                return Err(format!("{what} minimum is above its maximum"));
+            }
+        }
+        if !(1..=500).contains(&self.limit) {
+            return Err("limit must be 1 to 500".into());
+        }
+        Ok(())
+    }
+}
+
+impl Store {
+    pub async fn query_parts(&self, query: &PartQuery) -> StoreResult<PartPage> {
+        query.validate().map_err(StoreError::Invalid)?;
+        let sort_col = query.sort.column();
+        let sort_expr = sort_col.map(|c| {
+            let fill = if query.sort.descending {
+                "-1e308"
+            } else {
+                "1e308"
+            };
+            format!("COALESCE({c}, {fill})")
+        });
+        let l_bracket = query.l_at_hz.and_then(grid::bracket);
+        let z_range = match (query.z_band_min_hz, query.z_band_max_hz) {
+            (Some(a), Some(b)) => grid::index_range(a, b),
+            _ => None,
+        };
+
+        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
+             lf.verdict AS latest_verdict, lf.drift_max_sigma AS drift_max_sigma, \
+             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm",
+        );
+        match l_bracket {
+            Some((_, w)) if w > 0.0 => {
+                q.push(", (g1.l_eff_h * (1 - ")
+                    .push_bind(w)
+                    .push(") + g2.l_eff_h * ")
+                    .push_bind(w)
+                    .push(") AS l_eff_h");
+            }
+            Some(_) => {
+                q.push(", g1.l_eff_h AS l_eff_h");
+            }
+            None => {
+                q.push(", NULL AS l_eff_h");
+            }
+        }
+        match z_range {
+            Some((a, b)) => {
+                q.push(", (SELECT MIN(g.z_mag_ohm) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
+                    .push_bind(a)
+                    .push(" AND ")
+                    .push_bind(b)
+                    .push(") AS z_min_ohm");
+            }
+            None => {
+                q.push(", NULL AS z_min_ohm");
+            }
+        }
+        match &sort_expr {
+            Some(e) => q.push(format!(", {e} AS sort_value")),
+            None => q.push(", NULL AS sort_value"),
+        };
+        q.push(if query.approved_only {
+            " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id"
+        } else {
+            " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id"
+        });
+        q.push(" LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id");
+        if let Some((k, w)) = l_bracket {
+            q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
+                .push_bind(k);
+            if w > 0.0 {
+                q.push(" JOIN fit_grid g2 ON g2.fit_id = f.fit_id AND g2.k = ")
+                    .push_bind(k + 1);
+            }
+        }
+        q.push(" WHERE 1 = 1");
+        if let Some(text) = &query.q {
+            let like = format!(
+                "%{}%",
+                text.replace('\\', "\\\\")
+                    .replace('%', "\\%")
+                    .replace('_', "\\_")
+            );
+            q.push(" AND (p.part_number LIKE ")
+                .push_bind(like.clone())
+                .push(" ESCAPE '\\' OR p.description LIKE ")
+                .push_bind(like)
+                .push(" ESCAPE '\\')");
+        }
+        match (query.srf_min_hz, query.srf_max_hz) {
+            (Some(lo), Some(hi)) => {
+                q.push(" AND f.srf_hz BETWEEN ")
+                    .push_bind(lo)
+                    .push(" AND ")
+                    .push_bind(hi);
+            }
+            (Some(lo), None) => {
+                // An SRF above the sweep counts when the sweep's top already clears the minimum.
+                q.push(" AND (f.srf_hz >= ")
+                    .push_bind(lo)
+                    .push(" OR (f.srf_hz IS NULL AND f.srf_above_hz >= ")
+                    .push_bind(lo)
+                    .push("))");
+            }
+            (None, Some(hi)) => {
+                q.push(" AND f.srf_hz <= ").push_bind(hi);
+            }
+            (None, None) => {}
+        }
+        if query.series_resonance_min_hz.is_some() || query.series_resonance_max_hz.is_some() {
+            q.push(
+                " AND EXISTS (SELECT 1 FROM fit_resonances r WHERE r.fit_id = f.fit_id \
+                 AND r.kind = 'series' AND r.frequency_hz BETWEEN ",
+            )
+            .push_bind(query.series_resonance_min_hz.unwrap_or(0.0))
+            .push(" AND ")
+            .push_bind(query.series_resonance_max_hz.unwrap_or(f64::MAX))
+            .push(")");
+        }
+        if let Some(max) = query.dcr_max_ohm {
+            q.push(" AND f.rdc_ohm <= ").push_bind(max);
+        }
+        if l_bracket.is_some() {
+            let expr = match l_bracket {
+                Some((_, w)) if w > 0.0 => {
+                    format!("(g1.l_eff_h * (1 - {w:e}) + g2.l_eff_h * {w:e})")
+                }
+                _ => "g1.l_eff_h".to_string(),
+            };
+            if let Some(lo) = query.l_min_h {
+                q.push(format!(" AND {expr} >= ")).push_bind(lo);
+            }
+            if let Some(hi) = query.l_max_h {
+                q.push(format!(" AND {expr} <= ")).push_bind(hi);
+            }
+        }
+        if let Some((a, b)) = z_range {
+            // The whole band must lie inside the fit's sweep (every grid point present).
+            q.push(
+                " AND (SELECT COUNT(*) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ",
+            )
+            .push_bind(a)
+            .push(" AND ")
+            .push_bind(b)
+            .push(") = ")
+            .push_bind(b - a + 1);
+            if let Some(zmin) = query.z_min_ohm {
+                q.push(" AND NOT EXISTS (SELECT 1 FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
+                    .push_bind(a)
+                    .push(" AND ")
+                    .push_bind(b)
+                    .push(" AND g.z_mag_ohm < ")
+                    .push_bind(zmin)
+                    .push(")");
+            }
+        }
+        if let Some(c) = &query.cursor {
+            match (&sort_expr, c.v) {
+                (Some(e), Some(v)) => {
+                    let cmp = if query.sort.descending { "<" } else { ">" };
+                    q.push(format!(" AND ({e} {cmp} "))
+                        .push_bind(v)
+                        .push(format!(" OR ({e} = "))
+                        .push_bind(v)
+                        .push(" AND p.part_number > ")
+                        .push_bind(c.p.clone())
+                        .push("))");
+                }
+                _ => {
+                    q.push(" AND p.part_number > ").push_bind(c.p.clone());
+                }
+            }
+        }
+        match &sort_expr {
+            Some(e) => {
+                let dir = if query.sort.descending { "DESC" } else { "ASC" };
+                q.push(format!(" ORDER BY {e} {dir}, p.part_number ASC"));
+            }
+            None => {
+                q.push(" ORDER BY p.part_number ASC");
+            }
+        }
+        q.push(" LIMIT ").push_bind(query.limit + 1);
+
+        let rows = q.build().fetch_all(&self.reader).await?;
+        let mut items = Vec::with_capacity(rows.len());
+        let mut sort_values = Vec::with_capacity(rows.len());
+        for row in &rows {
+            sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
+            items.push(PartSummary {
+                part_number: row.try_get("part_number")?,
+                description: row.try_get("description")?,
+                approved_fit_id: row.try_get("baseline_fit_id")?,
+                latest_fit_id: row.try_get("latest_fit_id")?,
+                latest_verdict: row.try_get("latest_verdict")?,
+                drift_max_sigma: row.try_get("drift_max_sigma")?,
+                srf_hz: row.try_get("srf_hz")?,
+                series_resonances_hz: Vec::new(),
+                l0_h: row.try_get("l0_h")?,
+                rdc_ohm: row.try_get("rdc_ohm")?,
+                l_eff_h: row.try_get("l_eff_h")?,
+                z_min_ohm: row.try_get("z_min_ohm")?,
+                answered_from_fit_id: row.try_get("answered")?,
+            });
+        }
+        let next_cursor = if items.len() as i64 > query.limit {
+            items.truncate(query.limit as usize);
+            items.last().map(|last| {
+                Cursor {
+                    v: sort_values[query.limit as usize - 1],
+                    p: last.part_number.clone(),
+                }
+                .encode()
+            })
+        } else {
+            None
+        };
+        if !items.is_empty() {
+            let mut r: QueryBuilder<Sqlite> = QueryBuilder::new(
+                "SELECT fit_id, frequency_hz FROM fit_resonances WHERE kind = 'series' AND fit_id IN (",
+            );
+            let mut sep = r.separated(", ");
+            for it in &items {
+                sep.push_bind(it.answered_from_fit_id);
+            }
+            r.push(") ORDER BY frequency_hz");
+            let res: Vec<(i64, f64)> = r.build_query_as().fetch_all(&self.reader).await?;
+            for it in &mut items {
+                it.series_resonances_hz = res
+                    .iter()
+                    .filter(|(id, _)| Some(*id) == it.answered_from_fit_id)
+                    .map(|(_, f)| *f)
+                    .collect();
+            }
+        }
+        Ok(PartPage { items, next_cursor })
+    }
+}

@@ -1,0 +1,243 @@
+//! Uploaded sweeps (kept byte-for-byte with their SHA-256) and the first fit each upload queues.
+
+use super::{Store, StoreError, StoreResult, audit, now_ms};
+use sqlx::Row;
+
+/// A named file: its name as uploaded and its bytes.
+#[derive(Debug, Clone)]
+pub struct NamedFile {
+    pub name: String,
+    pub bytes: Vec<u8>,
+}
+
+/// An upload whose file the engine has already read successfully.
+#[derive(Debug, Clone)]
+pub struct NewSweep {
+    pub part_number: String,
+    pub lot: String,
+    pub file: NamedFile,
+    pub sha256: String,
+    pub method: String,
+    pub z0_ohm: Option<f64>,
+    pub dcr_ohm: Option<f64>,
+    pub temperature_c: Option<f64>,
+    pub operator: String,
+    pub fixture_open: Option<NamedFile>,
+    pub fixture_short: Option<NamedFile>,
+    pub points: usize,
+    /// The effective fit options as canonical JSON.
+    pub options_json: String,
+    /// Identifies "the same fit of the same file": see [`crate::jobs::duplicate_key`].
+    pub options_key: String,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Uploaded {
+    pub fit_id: i64,
+    pub sweep_id: i64,
+    /// True when the same file was already uploaded for this part with the same options: nothing new
+    /// was stored and the answer points at the existing fit.
+    pub duplicate: bool,
+}
+
+/// What a worker needs to run a fit.
+#[derive(Debug, Clone)]
+pub struct JobInput {
+    pub fit_id: i64,
+    pub part_id: i64,
+    pub file: NamedFile,
+    pub method: String,
+    pub z0_ohm: Option<f64>,
+    pub fixture_open: Option<NamedFile>,
+    pub fixture_short: Option<NamedFile>,
+    pub options_json: String,
+}
+
+fn named(name: Option<String>, bytes: Option<Vec<u8>>) -> Option<NamedFile> {
+    match (name, bytes) {
+        (Some(name), Some(bytes)) => Some(NamedFile { name, bytes }),
+        _ => None,
+    }
+}
+
+impl Store {
+    /// Stores the sweep, queues its first fit and records the upload, all in one transaction; or
+    /// returns the existing fit for a duplicate.
+    pub async fn upload(&self, actor: &str, new: &NewSweep) -> StoreResult<Uploaded> {
+        let mut tx = self.write().await?;
+        let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
+            .bind(&new.part_number)
+            .fetch_optional(&mut *tx)
+            .await?
+            .ok_or_else(|| {
+                StoreError::Invalid(format!(
+                    "no part {}: an engineer creates the part before sweeps are uploaded",
+                    new.part_number
+                ))
+            })?;
+        let existing: Option<(i64, i64)> = sqlx::query_as(
+            "SELECT f.fit_id, f.sweep_id FROM sweeps s JOIN fits f ON f.sweep_id = s.sweep_id \
+             WHERE s.part_id = ? AND s.sha256 = ? AND f.options_key = ? \
+             ORDER BY f.fit_id DESC LIMIT 1",
+        )
+        .bind(part_id)
+        .bind(&new.sha256)
+        .bind(&new.options_key)
+        .fetch_optional(&mut *tx)
+        .await?;
+        if let Some((fit_id, sweep_id)) = existing {
+            tx.rollback().await?;
+            return Ok(Uploaded {
+                fit_id,
+                sweep_id,
+                duplicate: true,
+            });
+        }
+        let now = now_ms();
+        let lot_id: i64 = sqlx::query_scalar(
+            "INSERT INTO lots (part_id, lot) VALUES (?, ?) \
+             ON CONFLICT (part_id, lot) DO UPDATE SET lot = excluded.lot RETURNING lot_id",
+        )
+        .bind(part_id)
+        .bind(&new.lot)
+        .fetch_one(&mut *tx)
+        .await?;
+        let (open_name, open_bytes) = new
+            .fixture_open
+            .as_ref()
+            .map(|f| (f.name.clone(), f.bytes.clone()))
+            .unzip();
+        let (short_name, short_bytes) = new
+            .fixture_short
+            .as_ref()
+            .map(|f| (f.name.clone(), f.bytes.clone()))
+            .unzip();
+        let sweep_id: i64 = sqlx::query_scalar(
+            "INSERT INTO sweeps (part_id, lot_id, file_name, file_bytes, sha256, method, z0_ohm, \
+             dcr_ohm, temperature_c, operator, fixture_open_name, fixture_open_bytes, \
+             fixture_short_name, fixture_short_bytes, points, uploaded_by, uploaded_at_ms) \
+             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING sweep_id",
+        )
+        .bind(part_id)
+        .bind(lot_id)
+        .bind(&new.file.name)
+        .bind(&new.file.bytes)
+        .bind(&new.sha256)
+        .bind(&new.method)
+        .bind(new.z0_ohm)
+        .bind(new.dcr_ohm)
+        .bind(new.temperature_c)
+        .bind(&new.operator)
+        .bind(open_name)
+        .bind(open_bytes)
+        .bind(short_name)
+        .bind(short_bytes)
+        .bind(new.points as i64)
+        .bind(actor)
+        .bind(now)
+        .fetch_one(&mut *tx)
+        .await?;
+        let fit_id = insert_fit(
+            &mut tx,
+            sweep_id,
+            part_id,
+            lot_id,
+            1,
+            &new.options_json,
+            &new.options_key,
+        )
+        .await?;
+        audit(
+            &mut tx,
+            actor,
+            "sweep-uploaded",
+            Some(part_id),
+            Some(fit_id),
+            Some(&format!("{} (lot {})", new.file.name, new.lot)),
+        )
+        .await?;
+        tx.commit().await?;
+        Ok(Uploaded {
+            fit_id,
+            sweep_id,
+            duplicate: false,
+        })
+    }
+
+    /// The uploaded file of a sweep, as uploaded.
+    pub async fn sweep_file(&self, sweep_id: i64) -> StoreResult<NamedFile> {
+        let row: Option<(String, Vec<u8>)> =
+            sqlx::query_as("SELECT file_name, file_bytes FROM sweeps WHERE sweep_id = ?")
+                .bind(sweep_id)
+                .fetch_optional(&self.reader)
+                .await?;
+        row.map(|(name, bytes)| NamedFile { name, bytes })
+            .ok_or_else(|| StoreError::NotFound(format!("no sweep {sweep_id}")))
+    }
+
+    /// Everything a worker needs for one fit.
+    pub async fn job_input(&self, fit_id: i64) -> StoreResult<JobInput> {
+        let row = sqlx::query(
+            "SELECT f.fit_id, f.part_id, f.options_json, s.file_name, s.file_bytes, s.method, \
+             s.z0_ohm, s.fixture_open_name, s.fixture_open_bytes, s.fixture_short_name, \
+             s.fixture_short_bytes FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
+             WHERE f.fit_id = ?",
+        )
+        .bind(fit_id)
+        .fetch_optional(&self.reader)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        Ok(JobInput {
+            fit_id: row.try_get("fit_id")?,
+            part_id: row.try_get("part_id")?,
+            file: NamedFile {
+                name: row.try_get("file_name")?,
+                bytes: row.try_get("file_bytes")?,
+            },
+            method: row.try_get("method")?,
+            z0_ohm: row.try_get("z0_ohm")?,
+            fixture_open: named(
+                row.try_get("fixture_open_name")?,
+                row.try_get("fixture_open_bytes")?,
+            ),
+            fixture_short: named(
+                row.try_get("fixture_short_name")?,
+                row.try_get("fixture_short_bytes")?,
+            ),
+            options_json: row.try_get("options_json")?,
+        })
+    }
+}
+
+/// Inserts a queued fit and its job row.
+pub(crate) async fn insert_fit(
+    tx: &mut sqlx::SqliteConnection,
+    sweep_id: i64,
+    part_id: i64,
+    lot_id: i64,
+    revision: i64,
+    options_json: &str,
+    options_key: &str,
+) -> StoreResult<i64> {
+    let now = now_ms();
+    let fit_id: i64 = sqlx::query(
+        "INSERT INTO fits (sweep_id, part_id, lot_id, revision, status, options_json, options_key, \
+         created_at_ms) VALUES (?, ?, ?, ?, 'queued', ?, ?, ?) RETURNING fit_id",
+    )
+    .bind(sweep_id)
+    .bind(part_id)
+    .bind(lot_id)
+    .bind(revision)
+    .bind(options_json)
+    .bind(options_key)
+    .bind(now)
+    .fetch_one(&mut *tx)
+    .await?
+    .try_get(0)?;
+    sqlx::query("INSERT INTO jobs (fit_id, state, enqueued_at_ms) VALUES (?, 'queued', ?)")
+        .bind(fit_id)
+        .bind(now)
+        .execute(&mut *tx)
+        .await?;
+    Ok(fit_id)
+}

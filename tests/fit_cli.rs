@@ -1,0 +1,251 @@
+//! The command line end to end: files on disk → sweep readers → fit → JSON lines or a table.
+//! The files are synthetic (invented models, noise drawn at the reader's own uncertainty model) written
+//! as Touchstone 1.x (1-port reflection, 2-port series-thru) and impedance CSV.
+
+#[path = "fit_synth.rs"]
+mod fit_synth;
+
+use fit_synth::*;
+use henrybook::cli;
+use henrybook::fit::derived;
+use henrybook::model::{ImpedanceModel, LumpedModel};
+use henrybook::sweep::NoiseModel;
+use num_complex::Complex64;
+use serde_json::Value;
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("henrybook-fit-cli-{}-{name}", std::process::id()));
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+/// A 1-port reflection Touchstone 1.x file (RI) of `model`, S11 noise at the reader's default model.
+fn write_s1p(path: &Path, model: &LumpedModel, band: [f64; 2], n: usize, seed: u64) {
+    let z0 = 50.0;
+    let nm = NoiseModel::default();
+    let mut noise = Noise::new(seed);
+    let mut text =
+        String::from("! synthetic sweep of an invented part (test data)\n# Hz S RI R 50\n");
+    for f in log_grid(band[0], band[1], n) {
+        let z = model.impedance(f);
+        let s = (z - z0) / (z + z0);
+        let sig = nm.sigma_s(s);
+        let s = s + Complex64::new(sig * noise.normal(), sig * noise.normal());
+        writeln!(text, "{f:.6} {:.12e} {:.12e}", s.re, s.im).unwrap();
+    }
+    std::fs::write(path, text).unwrap();
+}
+
+/// A 2-port series-thru Touchstone 1.x file (MA, v1 order N11 N21 N12 N22) of `model`.
+fn write_s2p_series(path: &Path, model: &LumpedModel, band: [f64; 2], n: usize, seed: u64) {
+    let z0 = 50.0;
+    let nm = NoiseModel::default();
+    let mut noise = Noise::new(seed);
+    let mut text = String::from("# MHz S MA R 50\n");
+    for f in log_grid(band[0], band[1], n) {
+        let z = model.impedance(f);
+        let s11 = z / (z + 2.0 * z0);
+        let sig = nm.sigma_s(2.0 * z0 / (z + 2.0 * z0));
+        let s21 =
+            2.0 * z0 / (z + 2.0 * z0) + Complex64::new(sig * noise.normal(), sig * noise.normal());
+        let ma = |c: Complex64| format!("{:.12e} {:.10}", c.norm(), c.arg().to_degrees());
+        writeln!(
+            text,
+            "{:.9} {} {} {} {}",
+            f / 1e6,
+            ma(s11),
+            ma(s21),
+            ma(s21),
+            ma(s11)
+        )
+        .unwrap();
+    }
+    std::fs::write(path, text).unwrap();
+}
+
+/// An impedance CSV with 0.2 % relative noise (the reader's floor for directly measured Z).
+fn write_csv(path: &Path, model: &LumpedModel, band: [f64; 2], n: usize, seed: u64) {
+    let mut noise = Noise::new(seed);
+    let mut text = String::from("frequency_hz,z_real_ohm,z_imag_ohm\n");
+    for f in log_grid(band[0], band[1], n) {
+        let z = model.impedance(f);
+        let s = 2e-3 * z.norm();
+        writeln!(
+            text,
+            "{f},{:.12e},{:.12e}",
+            z.re + s * noise.normal(),
+            z.im + s * noise.normal()
+        )
+        .unwrap();
+    }
+    std::fs::write(path, text).unwrap();
+}
+
+fn run(args: &[&str]) -> (u8, String, String) {
+    let args: Vec<String> = args.iter().map(|s| s.to_string()).collect();
+    let (mut out, mut err) = (Vec::new(), Vec::new());
+    let code = cli::run(&args, &mut out, &mut err);
+    (
+        code,
+        String::from_utf8(out).unwrap(),
+        String::from_utf8(err).unwrap(),
+    )
+}
+
+fn rel(a: f64, b: f64) -> f64 {
+    (a / b - 1.0).abs()
+}
+
+fn assert_recovered(line: &Value, truth: &LumpedModel, band: [f64; 2]) {
+    assert_eq!(line["status"], "ok", "{line}");
+    let m = &line["model"];
+    for key in [
+        "l0_h",
+        "rdc_ohm",
+        "k_ac_ohm_per_sqrt_hz",
+        "rp_ohm",
+        "cp_f",
+        "ls_h",
+        "sections",
+    ] {
+        assert!(m.get(key).is_some(), "model lacks {key}: {m}");
+        assert!(
+            line["uncertainty"].get(key).is_some(),
+            "uncertainty lacks {key}"
+        );
+    }
+    assert!(rel(m["l0_h"].as_f64().unwrap(), truth.l0_h) < 5e-3, "{m}");
+    assert!(rel(m["cp_f"].as_f64().unwrap(), truth.cp_f) < 1e-2, "{m}");
+    let srf = derived::srf(truth, band).0.unwrap();
+    assert!(rel(line["srf_hz"].as_f64().unwrap(), srf) < 2e-3, "{line}");
+    assert!(line["series_resonances_hz"].is_array());
+    assert!(
+        line["rms_weighted"].as_f64().unwrap() < 1.5,
+        "{}",
+        line["rms_weighted"]
+    );
+    assert!(line["termination"].is_string());
+}
+
+#[test]
+fn fit_prints_one_json_line_per_file_and_a_bad_file_fails_alone() {
+    let dir = temp_dir("json");
+    let rf = dir.join("rf_inductor.s1p");
+    let choke = dir.join("power_choke.csv");
+    let junk = dir.join("junk.s1p");
+    write_s1p(&rf, &rf_inductor(), [1e6, 3e9], 401, 1);
+    write_csv(&choke, &power_choke(), [1e3, 200e6], 401, 2);
+    std::fs::write(&junk, "# Hz S RI R 50\n1e6 0.1 0.2\n2e6 0.1\n").unwrap();
+    let (code, out, _) = run(&[
+        "fit",
+        rf.to_str().unwrap(),
+        junk.to_str().unwrap(),
+        choke.to_str().unwrap(),
+        "--json",
+    ]);
+    assert_eq!(code, 1, "one file failed: {out}");
+    let lines: Vec<Value> = out
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    assert_eq!(lines.len(), 3);
+    assert_eq!(lines[0]["file"], rf.to_str().unwrap());
+    assert_recovered(&lines[0], &rf_inductor(), [1e6, 3e9]);
+    assert_eq!(lines[1]["status"], "failed");
+    assert!(
+        lines[1]["error"].as_str().unwrap().contains("line 3"),
+        "{}",
+        lines[1]
+    );
+    assert_recovered(&lines[2], &power_choke(), [1e3, 200e6]);
+
+    // All good → exit code 0.
+    let (code, _, _) = run(&["fit", choke.to_str().unwrap(), "--json"]);
+    assert_eq!(code, 0);
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn a_two_port_file_needs_the_method_and_fits_with_it() {
+    let dir = temp_dir("s2p");
+    let emi = dir.join("emi_choke.s2p");
+    write_s2p_series(&emi, &emi_choke(), [100.0, 200e6], 601, 3);
+    let (code, out, _) = run(&["fit", emi.to_str().unwrap(), "--json"]);
+    assert_eq!(code, 1);
+    let line: Value = serde_json::from_str(out.trim()).unwrap();
+    assert_eq!(line["status"], "failed");
+    assert!(
+        line["error"]
+            .as_str()
+            .unwrap()
+            .to_lowercase()
+            .contains("method"),
+        "{line}"
+    );
+
+    let (code, out, _) = run(&[
+        "fit",
+        emi.to_str().unwrap(),
+        "--method",
+        "series-thru",
+        "--dcr",
+        "0.35",
+        "--json",
+    ]);
+    assert_eq!(code, 0, "{out}");
+    let line: Value = serde_json::from_str(out.trim()).unwrap();
+    assert_recovered(&line, &emi_choke(), [100.0, 200e6]);
+    assert_eq!(
+        line["model"]["sections"].as_array().unwrap().len(),
+        1,
+        "{line}"
+    );
+    // The DCR reading (σ 0.5 % + 1 mΩ) pins rdc.
+    assert!((line["model"]["rdc_ohm"].as_f64().unwrap() - 0.35).abs() < 0.01);
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn without_json_fit_prints_a_table() {
+    let dir = temp_dir("table");
+    let choke = dir.join("choke.csv");
+    write_csv(&choke, &power_choke(), [1e3, 200e6], 201, 4);
+    let (code, out, _) = run(&["fit", choke.to_str().unwrap()]);
+    assert_eq!(code, 0);
+    let mut lines = out.lines();
+    let header = lines.next().unwrap();
+    for col in ["file", "status", "L0", "Rdc", "Cp", "SRF", "rms_w"] {
+        assert!(header.contains(col), "{header}");
+    }
+    let row = lines.next().unwrap();
+    assert!(
+        row.contains("choke.csv") && row.contains(" ok ") && row.contains("µH"),
+        "{row}"
+    );
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn impedance_prints_the_arrays_the_file_implies() {
+    let dir = temp_dir("imp");
+    let rf = dir.join("rf.s1p");
+    let truth = rf_inductor();
+    write_s1p(&rf, &truth, [1e6, 3e9], 101, 5);
+    let (code, out, _) = run(&["impedance", rf.to_str().unwrap(), "--json"]);
+    assert_eq!(code, 0);
+    let v: Value = serde_json::from_str(out.trim()).unwrap();
+    let f = v["frequency_hz"].as_array().unwrap();
+    let re = v["z_real_ohm"].as_array().unwrap();
+    let im = v["z_imag_ohm"].as_array().unwrap();
+    let sg = v["sigma_ohm"].as_array().unwrap();
+    assert_eq!(f.len(), 101);
+    assert!(re.len() == 101 && im.len() == 101 && sg.len() == 101);
+    for k in 0..101 {
+        let z = truth.impedance(f[k].as_f64().unwrap());
+        let d = Complex64::new(re[k].as_f64().unwrap(), im[k].as_f64().unwrap()) - z;
+        assert!(d.norm() < 6.0 * sg[k].as_f64().unwrap(), "point {k}: {d}");
+    }
+    std::fs::remove_dir_all(dir).ok();
+}
