@@ -201,9 +201,14 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
         facts["fit_downloads"]
     );
     assert!(
-        int(&facts["netlist_download_bytes"]) > 0,
-        "the SPICE download delivers bytes: {}",
-        facts["netlist_download_problem"]
+        int(&facts["model_download_bytes"]) > 0,
+        "the model JSON download delivers bytes: {}",
+        facts["model_download_problem"]
+    );
+    assert!(
+        facts["model_download_kind"].is_string(),
+        "the downloaded model JSON names its kind: {}",
+        facts["model_download_kind"]
     );
     if let Some(text) = facts["failed_fit_text"].as_str() {
         assert_eq!(Some(text), facts["failed_fit_api_error"].as_str());

@@ -164,8 +164,8 @@ def main():
         facts["queue_first"] = snapshots[0]
         facts["queue_final"] = snapshots[-1]
         facts["queue_saw_unfinished"] = any(s["queued"] + s["running"] > 0 for s in snapshots)
-        facts["queue_polls"] = sum(1 for u in requests if u.endswith("/api/v1/queue"))
         page.wait_for_timeout(2500)  # one more poll so the tables match the counts
+        facts["queue_polls"] = sum(1 for u in requests if u.endswith("/api/v1/queue"))
         facts["queue_rows"] = page.eval_on_selector_all("#recent tr[data-fit-id]", "els => els.map(e => ({id: e.dataset.fitId, status: e.dataset.status}))")
         facts["queue_error_rows"] = page.eval_on_selector_all("#recent tr.error-row", "els => els.map(e => e.textContent)")
         page.screenshot(path=f"{SHOTS}/queue.png", full_page=True)
@@ -200,12 +200,14 @@ def main():
         facts["fit_readout"] = page.text_content("#plot-mag .readout")
         try:
             with page.expect_download(timeout=20000) as dl:
-                page.click(f'[data-download="/fits/{fit_id}/netlist.cir"]')
+                page.click(f'[data-download="/fits/{fit_id}/model.json"]')
             with open(dl.value.path(), "rb") as fh:
-                facts["netlist_download_bytes"] = len(fh.read())
+                body = fh.read()
+            facts["model_download_bytes"] = len(body)
+            facts["model_download_kind"] = json.loads(body).get("kind")
         except Exception as e:  # reported, and failed on, by the Rust test
-            facts["netlist_download_bytes"] = 0
-            facts["netlist_download_problem"] = f"{e}; page says: {page.text_content('#fit-actions .form-status')}"
+            facts["model_download_bytes"] = 0
+            facts["model_download_problem"] = f"{e}; page says: {page.text_content('#fit-actions .form-status')}"
         page.screenshot(path=f"{SHOTS}/fit.png", full_page=True)
 
         if failed:
