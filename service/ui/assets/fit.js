@@ -380,10 +380,20 @@ function derivedTable(r) {
   );
 }
 
+const CHECK_LABELS = {
+  inductance: "Inductance within tolerance",
+  dcr_max: "DC resistance at most",
+  srf_min: "SRF at least",
+  q_min: "Q at least",
+  z_min_band: "|Z| at least over the band",
+};
+
 function limitLabel(name) {
   const found = LIMIT_FIELDS.find(([k]) => k === name);
-  return found ? found[1] : String(name).replaceAll("_", " ");
+  return CHECK_LABELS[name] ?? (found ? found[1] : String(name).replaceAll("_", " "));
 }
+
+const checkUnit = (u) => (u === "1" ? "" : u);
 
 function verdictTable(d) {
   const checks = d.verdict_checks ?? [];
@@ -396,7 +406,7 @@ function verdictTable(d) {
           "table",
           { class: "checks" },
           h("thead", {}, h("tr", {}, ["Limit", "Measured", "Limit value", "Margin", "Result"].map((t) => h("th", {}, t)))),
-          h("tbody", {}, checks.map((c) => h("tr", { "data-check": c.limit, class: c.pass ? "pass" : "fail" }, h("th", {}, limitLabel(c.limit)), h("td", { class: "num" }, si(c.measured, c.unit)), h("td", { class: "num" }, si(c.limit_value, c.unit)), h("td", { class: "num" }, c.margin == null ? "—" : si(c.margin, c.unit)), h("td", {}, badge(c.pass ? "pass" : "fail"))))),
+          h("tbody", {}, checks.map((c) => h("tr", { "data-check": c.limit, class: c.pass ? "pass" : "fail" }, h("th", {}, limitLabel(c.limit), c.note ? h("div", { class: "pname" }, c.note) : null), h("td", { class: "num" }, si(c.measured, checkUnit(c.unit))), h("td", { class: "num" }, si(c.limit_value, checkUnit(c.unit))), h("td", { class: "num" }, c.margin == null ? "—" : si(c.margin, checkUnit(c.unit))), h("td", {}, badge(c.pass ? "pass" : "fail"))))),
         )
       : h("p", { class: "muted" }, d.status === "succeeded" ? "The part has no limits set, so there is nothing to check." : "No verdict: the fit did not succeed."),
   );

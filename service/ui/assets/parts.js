@@ -31,13 +31,18 @@ export function renderParts(main, _params, search) {
   const inputs = Object.fromEntries(
     RANGE_FIELDS.map(([key, , unit, ph]) => [key, h("input", { type: "text", id: `f-${key}`, name: key, placeholder: ph, value: state[key] != null ? si(Number(state[key]), unit) : "", "data-unit": unit, autocomplete: "off" })]),
   );
+  const sort = h(
+    "select",
+    { id: "part-sort", name: "sort" },
+    [["", "part number"], ["srf_hz", "SRF, lowest first"], ["-srf_hz", "SRF, highest first"], ["l0_h", "L0, lowest first"], ["-l0_h", "L0, highest first"], ["rdc_ohm", "DCR, lowest first"]].map(([v, t]) => h("option", { value: v, selected: (state.sort ?? "") === v }, t)),
+  );
   const formMsg = h("div", { class: "form-status" });
   const body = h("tbody", {});
   const pager = h("div", { class: "pager" });
   const summary = h("span", { class: "muted", id: "parts-summary" });
 
   function params() {
-    const p = { q: q.value.trim(), approved_only: approved.checked ? "true" : "" };
+    const p = { q: q.value.trim(), approved_only: approved.checked ? "true" : "", sort: sort.value };
     for (const [key, , unit] of RANGE_FIELDS) {
       const v = parseSI(inputs[key].value, unit);
       if (v !== null && !(v > 0)) throw new Error(`${key}: the value must be positive`);
@@ -82,14 +87,15 @@ export function renderParts(main, _params, search) {
   };
   q.addEventListener("input", changed);
   approved.addEventListener("change", changed);
+  sort.addEventListener("change", changed);
   for (const el of Object.values(inputs)) el.addEventListener("change", changed);
 
   const form = h(
     "form",
     { class: "filters card", id: "part-filters", onsubmit: (ev) => { ev.preventDefault(); cursors.length = 0; cursor = null; load(); } },
-    h("div", { class: "filter-row" }, h("label", { class: "grow" }, "Search ", q), h("label", { class: "check" }, approved, " approved parts only")),
+    h("div", { class: "filter-row" }, h("label", { class: "grow" }, "Search ", q), h("label", {}, h("span", {}, "Sort by"), sort), h("label", { class: "check" }, approved, " approved parts only")),
     h("div", { class: "filter-grid" }, RANGE_FIELDS.map(([key, label]) => h("label", {}, h("span", {}, label), inputs[key]))),
-    h("div", { class: "actions" }, h("button", { type: "submit", class: "primary" }, "Apply"), h("button", { type: "button", class: "link", onclick: () => { q.value = ""; approved.checked = false; for (const el of Object.values(inputs)) el.value = ""; changed(); } }, "clear filters")),
+    h("div", { class: "actions" }, h("button", { type: "submit", class: "primary" }, "Apply"), h("button", { type: "button", class: "link", onclick: () => { q.value = ""; approved.checked = false; for (const el of Object.values(inputs)) el.value = ""; sort.value = ""; changed(); } }, "clear filters")),
     formMsg,
   );
 
@@ -119,7 +125,7 @@ function row(p) {
     { "data-part": p.part_number },
     h("td", {}, link(partHref(p.part_number), p.part_number)),
     h("td", { class: "desc" }, p.description ?? ""),
-    h("td", { class: "num" }, si(p.l0_h, "H")),
+    h("td", { class: "num" }, si(p.l0_h, "H"), p.l_eff_h != null ? h("div", { class: "pname" }, `L_eff ${si(p.l_eff_h, "H")}`) : null),
     h("td", { class: "num" }, si(p.rdc_ohm, "Ω")),
     h("td", { class: "num" }, si(p.srf_hz, "Hz")),
     h("td", { class: "num" }, (p.series_resonances_hz ?? []).length ? p.series_resonances_hz.map((f) => si(f, "Hz", 3)).join(", ") : "—"),

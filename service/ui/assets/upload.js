@@ -6,6 +6,7 @@ import { parseSI } from "./si.js";
 import { fitHref, partHref, progressBar } from "./common.js";
 
 const METHODS = [
+  ["", "From the file (1-port S data: reflection; 2-port files need a method)"],
   ["direct", "Impedance analyser (Z or R+jX directly)"],
   ["reflection", "Network analyser, reflection (S11)"],
   ["series-thru", "Network analyser, series-thru (S21, part in series)"],
@@ -124,7 +125,7 @@ export function renderUpload(main, _params, search) {
           if (t !== null && !Number.isFinite(t)) throw new Error(`temperature: “${temp.value}” is not a number of °C`);
           fd.append("part_number", partInput.value.trim());
           fd.append("lot", lot.value.trim());
-          fd.append("method", method.value);
+          if (method.value) fd.append("method", method.value);
           if (z0v != null) fd.append("z0_ohm", String(z0v));
           if (dcrv != null) fd.append("dcr_ohm", String(dcrv));
           if (t != null) fd.append("temperature_c", String(t));
