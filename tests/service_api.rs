@@ -139,6 +139,36 @@ async fn an_uploaded_sweep_is_fitted_and_its_result_can_be_polled_and_downloaded
     assert_eq!(again["fit_id"], fit_id);
     let q = app.get_json("/api/v1/queue", &app.reader).await;
     assert_eq!(q["succeeded"], 1);
+    // Ops: readiness and the Prometheus text with queue depth, fits, fit time and HTTP latency.
+    let ready: Value = app
+        .client
+        .get(app.url("/readyz"))
+        .send()
+        .await
+        .unwrap()
+        .json()
+        .await
+        .unwrap();
+    assert_eq!(ready, json!({"database": true, "migrations": true}));
+    let metrics = app
+        .client
+        .get(app.url("/metrics"))
+        .send()
+        .await
+        .unwrap()
+        .text()
+        .await
+        .unwrap();
+    for name in [
+        "henrybook_queue_depth",
+        "henrybook_fits_total",
+        "henrybook_fit_duration_seconds_bucket",
+        "henrybook_http_request_duration_seconds_bucket",
+    ] {
+        assert!(metrics.contains(name), "{name} missing from /metrics");
+    }
+    let r = app.get("/api/v1/queue", &app.reader).await;
+    assert!(r.headers().contains_key("x-request-id"));
     assert_eq!(q["queued"], 0);
     // Status list with filters.
     let list = app

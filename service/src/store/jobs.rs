@@ -322,3 +322,112 @@ async fn settle(
     )
     .await
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::registry::figures;
+    use crate::registry::limits::Limits;
+    use crate::registry::verdict::tests::report;
+    use crate::store::sweeps::{NamedFile, NewSweep};
+    use crate::store::testing::temp_store;
+
+    async fn queue_one(store: &Store, i: usize) -> i64 {
+        let new = NewSweep {
+            part_number: "J-1".into(),
+            lot: "L".into(),
+            file: NamedFile {
+                name: format!("{i}.csv"),
+                bytes: format!("bytes {i}").into_bytes(),
+            },
+            sha256: crate::store::sha256_hex(format!("bytes {i}").as_bytes()),
+            method: "direct".into(),
+            z0_ohm: None,
+            dcr_ohm: None,
+            temperature_c: None,
+            operator: String::new(),
+            fixture_open: None,
+            fixture_short: None,
+            points: 3,
+            options_json: "{}".into(),
+            options_key: "k".into(),
+        };
+        store.upload("test", &new).await.unwrap().fit_id
+    }
+
+    #[tokio::test]
+    async fn an_expired_lease_is_claimed_again_and_only_the_current_claim_writes() {
+        let (store, _dir) = temp_store().await;
+        store
+            .create_part("test", "J-1", "", &Limits::default())
+            .await
+            .unwrap();
+        let a = queue_one(&store, 0).await;
+        let b = queue_one(&store, 1).await;
+        let lease = Duration::from_millis(30);
+
+        // Oldest first; nothing left once both are held.
+        let first = store.claim_job(lease, 3).await.unwrap().unwrap();
+        assert_eq!((first.fit_id, first.attempt), (a, 1));
+        let second = store.claim_job(lease, 3).await.unwrap().unwrap();
+        assert_eq!(second.fit_id, b);
+        assert_eq!(store.claim_job(lease, 3).await.unwrap(), None);
+
+        // The first worker stops renewing; after expiry another claim takes the job over.
+        tokio::time::sleep(Duration::from_millis(60)).await;
+        assert!(matches!(
+            store
+                .renew_lease(&second, Duration::from_secs(30), 0.5)
+                .await
+                .unwrap(),
+            Renewal::Held {
+                cancel_requested: false
+            }
+        ));
+        let again = store.claim_job(lease, 3).await.unwrap().unwrap();
+        assert_eq!((again.fit_id, again.attempt), (a, 2));
+        assert_ne!(again.token, first.token);
+        assert_eq!(
+            store.renew_lease(&first, lease, 0.5).await.unwrap(),
+            Renewal::Lost
+        );
+
+        // The stale claim writes nothing; the current one writes once; a repeat writes nothing.
+        let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
+        let figs = figures::from_report(&r);
+        assert!(!store.complete_succeeded(&first, &r, &figs).await.unwrap());
+        assert!(store.complete_succeeded(&again, &r, &figs).await.unwrap());
+        assert!(!store.complete_succeeded(&again, &r, &figs).await.unwrap());
+        let summary = store.fit_summary(a).await.unwrap();
+        assert_eq!(summary.status.as_str(), "succeeded");
+        // And the database itself refuses a second result.
+        let rewrite = sqlx::query("UPDATE fits SET report_json = '{}' WHERE fit_id = ?")
+            .bind(a)
+            .execute(&store.writer)
+            .await;
+        assert!(rewrite.unwrap_err().to_string().contains("written once"));
+    }
+
+    #[tokio::test]
+    async fn a_job_that_never_finishes_fails_after_its_attempts_and_a_release_is_not_counted() {
+        let (store, _dir) = temp_store().await;
+        store
+            .create_part("test", "J-1", "", &Limits::default())
+            .await
+            .unwrap();
+        let a = queue_one(&store, 0).await;
+        let lease = Duration::from_millis(10);
+        let c = store.claim_job(lease, 2).await.unwrap().unwrap();
+        assert!(store.release_job(&c).await.unwrap());
+        let c = store.claim_job(lease, 2).await.unwrap().unwrap();
+        assert_eq!(c.attempt, 1, "the released attempt was not counted");
+        tokio::time::sleep(Duration::from_millis(30)).await;
+        let c = store.claim_job(lease, 2).await.unwrap().unwrap();
+        assert_eq!(c.attempt, 2);
+        tokio::time::sleep(Duration::from_millis(30)).await;
+        assert_eq!(store.claim_job(lease, 2).await.unwrap(), None);
+        let s = store.fit_summary(a).await.unwrap();
+        assert_eq!(s.status.as_str(), "failed");
+        assert!(s.error.unwrap().contains("started 2 times"));
+    }
+}
