@@ -137,11 +137,11 @@ impl PartQuery {
             return Err("z_min_ohm needs z_band_min_hz and z_band_max_hz".into());
         }
         if let (Some(a), Some(b)) = (self.z_band_min_hz, self.z_band_max_hz)
-            && grid::index_range(a, b).is_none()
+            && grid::cover_range(a, b).is_none()
         {
             return Err(format!(
-                "the band {a}..{b} Hz holds no point of the stored grid ({} points per decade, {}..{} Hz)",
-                grid::POINTS_PER_DECADE,
+                "the band {a}..{b} Hz must have z_band_min_hz < z_band_max_hz inside the stored grid \
+                 ({}..{} Hz)",
                 grid::frequency_hz(0),
                 grid::frequency_hz(grid::LAST_K)
             ));
@@ -181,8 +181,8 @@ impl Store {
             format!("COALESCE({c}, {fill})")
         });
         let l_bracket = query.l_at_hz.and_then(grid::bracket);
-        let z_range = match (query.z_band_min_hz, query.z_band_max_hz) {
-            (Some(a), Some(b)) => grid::index_range(a, b),
+        let z_band = match (query.z_band_min_hz, query.z_band_max_hz) {
+            (Some(a), Some(b)) => Some((a, b)),
             _ => None,
         };
 
@@ -206,13 +206,11 @@ impl Store {
                 q.push(", NULL AS l_eff_h");
             }
         }
-        match z_range {
-            Some((a, b)) => {
-                q.push(", (SELECT MIN(g.z_mag_ohm) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
-                    .push_bind(a)
-                    .push(" AND ")
-                    .push_bind(b)
-                    .push(") AS z_min_ohm");
+        match z_band {
+            Some((lo, hi)) => {
+                q.push(", ");
+                push_z_min(&mut q, lo, hi);
+                q.push(" AS z_min_ohm");
             }
             None => {
                 q.push(", NULL AS z_min_ohm");
@@ -297,24 +295,16 @@ impl Store {
                 q.push(format!(" AND {expr} <= ")).push_bind(hi);
             }
         }
-        if let Some((a, b)) = z_range {
-            // The whole band must lie inside the fit's sweep (every grid point present).
-            q.push(
-                " AND (SELECT COUNT(*) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ",
-            )
-            .push_bind(a)
-            .push(" AND ")
-            .push_bind(b)
-            .push(") = ")
-            .push_bind(b - a + 1);
+        if let Some((lo, hi)) = z_band {
+            // The whole band must lie inside the fit's sweep.
+            q.push(" AND f.band_min_hz <= ")
+                .push_bind(lo * (1.0 + 1e-9))
+                .push(" AND f.band_max_hz >= ")
+                .push_bind(hi * (1.0 - 1e-9));
             if let Some(zmin) = query.z_min_ohm {
-                q.push(" AND NOT EXISTS (SELECT 1 FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
-                    .push_bind(a)
-                    .push(" AND ")
-                    .push_bind(b)
-                    .push(" AND g.z_mag_ohm < ")
-                    .push_bind(zmin)
-                    .push(")");
+                q.push(" AND ");
+                push_z_min(&mut q, lo, hi);
+                q.push(" >= ").push_bind(zmin);
             }
         }
         if let Some(c) = &query.cursor {
@@ -398,4 +388,57 @@ impl Store {
         }
         Ok(PartPage { items, next_cursor })
     }
+}
+
+/// Pushes the SQL for the lowest |Z| of the fit `f` over `[lo, hi]`, from its grid rows (see
+/// `registry::grid`): the stored floor of every grid interval touching the band whose lowest point lies
+/// inside the band, the grid points inside the band, and |Z| at the band's ends interpolated linearly
+/// (in log f) between their neighbouring grid points. Caller checks `grid::cover_range(lo, hi)`.
+fn push_z_min(q: &mut QueryBuilder<Sqlite>, lo: f64, hi: f64) {
+    const NONE: f64 = 1e308;
+    let (kl, kh) = grid::cover_range(lo, hi).unwrap_or((0, -1));
+    q.push("NULLIF(MIN(COALESCE((SELECT MIN(CASE WHEN g.z_floor_at_hz BETWEEN ")
+        .push_bind(lo)
+        .push(" AND ")
+        .push_bind(hi)
+        .push(" THEN g.z_mag_floor_ohm");
+    if let Some((a, b)) = grid::index_range(lo, hi) {
+        q.push(" WHEN g.k BETWEEN ")
+            .push_bind(a)
+            .push(" AND ")
+            .push_bind(b)
+            .push(" THEN g.z_mag_ohm");
+    }
+    q.push(" END) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
+        .push_bind(kl)
+        .push(" AND ")
+        .push_bind(kh)
+        .push("), ")
+        .push_bind(NONE)
+        .push(")");
+    for end in [lo, hi] {
+        q.push(", ");
+        match grid::bracket(end) {
+            Some((k, w)) if w > 0.0 => {
+                q.push(
+                    "COALESCE((SELECT e1.z_mag_ohm * (1 - ",
+                )
+                .push_bind(w)
+                .push(") + e2.z_mag_ohm * ")
+                .push_bind(w)
+                .push(
+                    " FROM fit_grid e1 JOIN fit_grid e2 ON e2.fit_id = e1.fit_id AND e2.k = e1.k + 1 \
+                     WHERE e1.fit_id = f.fit_id AND e1.k = ",
+                )
+                .push_bind(k)
+                .push("), ")
+                .push_bind(NONE)
+                .push(")");
+            }
+            _ => {
+                q.push_bind(NONE);
+            }
+        }
+    }
+    q.push("), ").push_bind(NONE).push(")");
 }
