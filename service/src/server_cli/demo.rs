@@ -101,15 +101,22 @@ fn print_fit_row(part: &str, f: &Value) {
         .filter(|k| k["pass"] == false)
         .map(|k| k["limit"].as_str().unwrap_or_default().to_string())
         .collect();
-    // The parameter that moved most against the baseline, in percent and in its combined σ.
+    // The parameter that moved most against the baseline in units of its combined σ, with its
+    // change in percent.
     let drift = f["drift"]["parameters"].as_array().and_then(|ps| {
         ps.iter()
-            .filter_map(|p| Some((p["percent"].as_f64()?, p["sigma"].as_f64())))
-            .max_by(|a, b| a.0.abs().total_cmp(&b.0.abs()))
+            .filter_map(|p| {
+                Some((
+                    p["name"].as_str()?.to_string(),
+                    p["percent"].as_f64()?,
+                    p["sigma"].as_f64()?,
+                ))
+            })
+            .max_by(|a, b| a.2.abs().total_cmp(&b.2.abs()))
     });
     let status = f["status"].as_str().unwrap_or_default();
     println!(
-        "{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:>15}  {}",
+        "{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} {}",
         part,
         f["lot"].as_str().unwrap_or_default(),
         f["fit_id"],
@@ -123,10 +130,9 @@ fn print_fit_row(part: &str, f: &Value) {
             .as_f64()
             .map_or("-".to_string(), |r| format!("{r:.2}")),
         f["verdict"].as_str().unwrap_or("-"),
-        drift.map_or("-".to_string(), |(pct, sigma)| match sigma {
-            Some(s) => format!("{pct:+.2} % {s:+.1}σ"),
-            None => format!("{pct:+.2} %"),
-        }),
+        drift.map_or("-".to_string(), |(name, pct, sigma)| format!(
+            "{name} {pct:+.1} % ({sigma:+.0}σ)"
+        )),
         if status == "failed" {
             f["error"].as_str().unwrap_or_default().to_string()
         } else {
@@ -301,7 +307,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     }
 
     println!(
-        "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:>15}  failed limits",
+        "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} failed limits",
         "part",
         "lot",
         "fit",
@@ -313,7 +319,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         "Rdc",
         "RMS/σ",
         "verdict",
-        "drift (max)"
+        "largest drift vs baseline"
     );
     let mut seen_parts = Vec::new();
     for (part, _, _) in &fits {
