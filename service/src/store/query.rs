@@ -186,10 +186,15 @@ impl Store {
             _ => None,
         };
 
+        // Two steps in one statement: the inner query filters, sorts and cuts the page carrying only
+        // keys and the computed figures (so the sort over thousands of matches stays small), the outer
+        // one fetches the page's rows.
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
             "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
              lf.verdict AS latest_verdict, lf.drift_max_sigma AS drift_max_sigma, \
-             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm",
+             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, \
+             k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
+             SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
         );
         match l_bracket {
             Some((_, w)) if w > 0.0 => {
@@ -225,7 +230,6 @@ impl Store {
         } else {
             " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id"
         });
-        q.push(" LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id");
         if let Some((k, w)) = l_bracket {
             q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
                 .push_bind(k);
@@ -334,6 +338,19 @@ impl Store {
             }
         }
         q.push(" LIMIT ").push_bind(query.limit + 1);
+        q.push(
+            ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
+             LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
+        );
+        match &sort_expr {
+            Some(_) => {
+                let dir = if query.sort.descending { "DESC" } else { "ASC" };
+                q.push(format!(" ORDER BY k.sort_value {dir}, k.part_number ASC"));
+            }
+            None => {
+                q.push(" ORDER BY k.part_number ASC");
+            }
+        }
 
         let rows = q.build().fetch_all(&self.reader).await?;
         let mut items = Vec::with_capacity(rows.len());
