@@ -3,13 +3,21 @@
 //! bad arguments are INVALID_ARGUMENT naming the field. The sweeps are synthetic, made from known
 //! lumped models (invented for these tests).
 
+use henrybook::fit::{FitControl, FitError, FitOptions, FitReport};
 use henrybook::grpc::proto;
 use henrybook::grpc::proto::fit_registry_client::FitRegistryClient;
 use henrybook::grpc::proto::part_registry_client::PartRegistryClient;
+use henrybook::jobs::{CoreEngine, Engine};
 use henrybook::model::{Section, SectionKind};
-use henrybook_tests::service::{TestApp, grpc_request, simple_model, spawn_app, synthetic_csv};
+use henrybook::sweep::{ReadOptions, Sweep, SweepError};
+use henrybook_tests::service::{
+    TestApp, grpc_request, simple_model, spawn_app, spawn_app_with, synthetic_csv, test_settings,
+};
 use serde_json::{Value, json};
+use std::sync::Arc;
+use std::sync::atomic::Ordering;
 use std::time::Duration;
+use std::time::Instant;
 use tonic::Code;
 use tonic::transport::Channel;
 
@@ -1285,4 +1293,99 @@ async fn bad_arguments_are_invalid_argument_naming_the_field_and_store_nothing()
         }
     }
     app.stop().await;
+}
+
+// ---- the watch stream against cancellation and shutdown ----
+
+/// The real engine, holding each fit back for `delay` first (and honouring cancellation meanwhile).
+struct SlowEngine {
+    delay: Duration,
+}
+
+impl Engine for SlowEngine {
+    fn read_sweep(&self, name: &str, bytes: &[u8], o: &ReadOptions) -> Result<Sweep, SweepError> {
+        CoreEngine.read_sweep(name, bytes, o)
+    }
+    fn fit(&self, s: &Sweep, o: &FitOptions, c: &FitControl) -> Result<FitReport, FitError> {
+        let start = Instant::now();
+        while start.elapsed() < self.delay {
+            if c.cancel.as_ref().is_some_and(|f| f.load(Ordering::SeqCst)) {
+                return Err(FitError::Cancelled);
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        CoreEngine.fit(s, o, c)
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_watch_ends_with_a_cancelled_fit_and_with_unavailable_when_the_service_stops() {
+    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
+    let settings = test_settings(dir.path().join("henrybook.db"));
+    let engine = Arc::new(SlowEngine {
+        delay: Duration::from_secs(4),
+    });
+    let app = spawn_app_with(dir, settings, engine, None).await;
+    let mut c = clients(&app).await;
+    app.create_part("W-1", json!({})).await;
+    let model = simple_model(1e-5, 0.05, 5e-12);
+
+    // Cancelled over HTTP while watched over gRPC: the stream's last status is cancelled.
+    let f1 = upload_http(&app, "W-1", "1", synthetic_csv(&model, 1e4, 1e8, 201)).await;
+    let mut stream = c
+        .fits
+        .watch_fit(grpc_request(proto::FitRef { fit_id: f1 }, &app.reader))
+        .await
+        .unwrap()
+        .into_inner();
+    let first = stream.message().await.unwrap().expect("the current status");
+    assert!(
+        ["queued", "running"].contains(&state_name(first.state)),
+        "{first:?}"
+    );
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f1}/cancel"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let mut last = first;
+    while let Some(s) = tokio::time::timeout(Duration::from_secs(20), stream.message())
+        .await
+        .expect("the stream moves on")
+        .expect("no error")
+    {
+        last = s;
+    }
+    assert_eq!(state_name(last.state), "cancelled", "{last:?}");
+
+    // Still watched when the service stops: the stream ends with UNAVAILABLE, the stop completes.
+    let f2 = upload_http(&app, "W-1", "2", synthetic_csv(&model, 1e4, 1e8, 203)).await;
+    let mut stream = c
+        .fits
+        .watch_fit(grpc_request(proto::FitRef { fit_id: f2 }, &app.reader))
+        .await
+        .unwrap()
+        .into_inner();
+    let first = stream.message().await.unwrap().expect("the current status");
+    assert!(["queued", "running"].contains(&state_name(first.state)));
+    let stopping = tokio::spawn(app.stop());
+    let end = tokio::time::timeout(Duration::from_secs(20), async {
+        loop {
+            match stream.message().await {
+                Ok(Some(_)) => continue,
+                Ok(None) => return None,
+                Err(s) => return Some(s),
+            }
+        }
+    })
+    .await
+    .expect("the stream ends at shutdown");
+    assert_eq!(end.map(|s| s.code()), Some(Code::Unavailable));
+    tokio::time::timeout(Duration::from_secs(30), stopping)
+        .await
+        .expect("the service stops")
+        .expect("the stop task");
 }
