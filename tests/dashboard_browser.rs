@@ -210,6 +210,24 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
         "the downloaded model JSON names its kind: {}",
         facts["model_download_kind"]
     );
+    // The SPICE download is a subcircuit of resistors, inductors and capacitors only (the export's
+    // promise; SPICE netlist syntax: element letter first, .SUBCKT … .ENDS).
+    assert!(
+        facts["netlist_subckt"].is_string(),
+        "the netlist download holds a .SUBCKT line: {}",
+        facts["netlist_problem"]
+    );
+    assert_eq!(facts["netlist_ends"], true);
+    let letters: Vec<&str> = facts["netlist_element_letters"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(|v| v.as_str())
+        .collect();
+    assert!(
+        !letters.is_empty() && letters.iter().all(|l| ["R", "L", "C"].contains(l)),
+        "{letters:?}"
+    );
     if let Some(text) = facts["failed_fit_text"].as_str() {
         assert_eq!(Some(text), facts["failed_fit_api_error"].as_str());
     }

@@ -208,6 +208,18 @@ def main():
         except Exception as e:  # reported, and failed on, by the Rust test
             facts["model_download_bytes"] = 0
             facts["model_download_problem"] = f"{e}; page says: {page.text_content('#fit-actions .form-status')}"
+        try:
+            with page.expect_download(timeout=20000) as dl:
+                page.click(f'[data-download="/fits/{fit_id}/netlist.cir"]')
+            with open(dl.value.path(), "r", encoding="utf-8") as fh:
+                text = fh.read()
+            lines = [ln.strip() for ln in text.splitlines() if ln.strip() and not ln.strip().startswith("*")]
+            facts["netlist_subckt"] = next((ln for ln in lines if ln.upper().startswith(".SUBCKT")), None)
+            facts["netlist_ends"] = any(ln.upper().startswith(".ENDS") for ln in lines)
+            facts["netlist_element_letters"] = sorted({ln[0].upper() for ln in lines if not ln.startswith(".")})
+        except Exception as e:  # reported, and failed on, by the Rust test
+            facts["netlist_subckt"] = None
+            facts["netlist_problem"] = f"{e}; page says: {page.text_content('#fit-actions .form-status')}"
         page.screenshot(path=f"{SHOTS}/fit.png", full_page=True)
 
         if failed:

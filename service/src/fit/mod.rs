@@ -63,6 +63,11 @@ pub struct FitOptions {
     /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`); a model that cannot be made passive
     /// within it is not returned.
     pub passivity_rms_allowance: f64,
+    /// For the service: when a lumped fit's weighted RMS error ends above this (the chosen model misses
+    /// the data by more than its stated uncertainty explains), the service queues a rational fit of the
+    /// same sweep as the next revision, so both are stored. `None` never does. The engine itself
+    /// ignores it.
+    pub rational_fallback_above_rms_weighted: Option<f64>,
 }
 
 impl Default for FitOptions {
@@ -79,6 +84,7 @@ impl Default for FitOptions {
             rational_target_rms_weighted: 1.0,
             rational_max_relocations: 30,
             passivity_rms_allowance: 0.1,
+            rational_fallback_above_rms_weighted: Some(3.0),
         }
     }
 }

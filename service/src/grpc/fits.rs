@@ -215,6 +215,8 @@ impl FitRegistry for Fits {
             temperature_c: r.temperature_c,
             operator: r.operator.unwrap_or_default(),
             options: r.options_json.unwrap_or_default(),
+            // Fixture compensation is not offered over gRPC yet: upload it through HTTP.
+            ..UploadInput::default()
         };
         let accepted = accept_upload(&self.state, &who.label, input)
             .await

@@ -5,12 +5,10 @@ use super::auth::{Engineer, Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem, json_body};
 use super::sweeps::{parse_options_value, safe_file_name};
 use crate::app::AppState;
-use crate::jobs::{duplicate_key, parse_method};
 use crate::registry::figures::model_curve;
 use crate::registry::wire::{FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
 use crate::store::fits::FitFilter;
 use crate::store::parse_rfc3339;
-use crate::sweep::ReadOptions;
 use axum::Json;
 use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
@@ -108,14 +106,7 @@ async fn curves(
     let report = state.store.fit_report(fit_id).await?;
     let engine = state.engine.clone();
     let curves = tokio::task::spawn_blocking(move || -> Result<FitCurves, String> {
-        let read = ReadOptions {
-            method: parse_method(&input.method),
-            z0_ohm: input.z0_ohm,
-            ..ReadOptions::default()
-        };
-        let sweep = engine
-            .read_sweep(&input.file.name, &input.file.bytes, &read)
-            .map_err(|e| e.to_string())?;
+        let sweep = crate::jobs::job_sweep(engine.as_ref(), &input)?;
         let (model_re, model_im) = match &report {
             Some(r) => model_curve(&r.model, &sweep.frequency_hz),
             None => (Vec::new(), Vec::new()),
@@ -199,7 +190,7 @@ async fn refit(
     let detail = state.store.fit_detail(fit_id).await?;
     let options = crate::jobs::effective_options(parse_options_value(req.options)?, detail.dcr_ohm);
     let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
-    let key = duplicate_key(&options_json, &detail.method, detail.z0_ohm);
+    let key = crate::jobs::job_key(&state.store.job_input(fit_id).await?, &options_json);
     let new_id = state
         .store
         .refit(&caller.label, fit_id, &options_json, &key)

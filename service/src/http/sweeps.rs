@@ -7,7 +7,8 @@ use super::auth::{Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem};
 use crate::app::AppState;
 use crate::fit::FitOptions;
-use crate::jobs::{duplicate_key, effective_options, parse_method};
+use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputFile, read_input};
+use crate::jobs::{duplicate_key_with_fixture, effective_options, parse_method};
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
 use crate::sweep::ReadOptions;
@@ -49,6 +50,15 @@ pub struct UploadForm {
     operator: Option<String>,
     /// Fit options as JSON (the engine's FitOptions; every field optional).
     options: Option<String>,
+    /// Fixture compensation: the open dummy measured on the DUT's frequency grid (with fixture_short).
+    #[schema(format = Binary, content_media_type = "application/octet-stream")]
+    fixture_open: Option<String>,
+    /// Fixture compensation: the short dummy measured on the DUT's frequency grid (with fixture_open).
+    #[schema(format = Binary, content_media_type = "application/octet-stream")]
+    fixture_short: Option<String>,
+    /// approximate (default), series-then-shunt, shunt-then-series (exact L-shaped fixtures) or
+    /// two-port (matrix de-embedding of three 2-port files).
+    fixture_topology: Option<String>,
 }
 
 fn multipart_problem(e: MultipartError) -> Problem {
@@ -121,6 +131,13 @@ pub fn parse_options_value(value: serde_json::Value) -> ApiResult<FitOptions> {
     Ok(options)
 }
 
+fn input_file(f: &NamedFile) -> InputFile<'_> {
+    InputFile {
+        name: &f.name,
+        bytes: &f.bytes,
+    }
+}
+
 /// Upload a sweep: the file and its metadata; queues a fit.
 #[utoipa::path(post, path = "/api/v1/sweeps", tag = "sweeps",
     request_body(content = UploadForm, content_type = "multipart/form-data"),
@@ -137,30 +154,37 @@ async fn upload(
     mut form: Multipart,
 ) -> ApiResult<impl IntoResponse> {
     let mut file: Option<NamedFile> = None;
+    let mut fixture_open: Option<NamedFile> = None;
+    let mut fixture_short: Option<NamedFile> = None;
     let mut fields = std::collections::HashMap::<String, String>::new();
     while let Some(field) = form.next_field().await.map_err(multipart_problem)? {
         let name = field.name().unwrap_or_default().to_string();
         match name.as_str() {
-            "file" => {
+            "file" | "fixture_open" | "fixture_short" => {
                 let file_name = field.file_name().map(str::to_string).ok_or_else(|| {
-                    Problem::validation(
-                        "the file field needs a file name (its extension tells the format)",
-                    )
+                    Problem::validation(format!(
+                        "the {name} field needs a file name (its extension tells the format)"
+                    ))
                 })?;
                 let bytes = field.bytes().await.map_err(multipart_problem)?;
-                file = Some(NamedFile {
+                let named = NamedFile {
                     name: file_name,
                     bytes: bytes.to_vec(),
-                });
-            }
-            "fixture_open" | "fixture_short" => {
-                return Err(Problem::validation(format!(
-                    "{name}: fixture compensation is not supported by this engine yet; \
-                     upload the compensated sweep instead"
-                )));
+                };
+                let slot = match name.as_str() {
+                    "file" => &mut file,
+                    "fixture_open" => &mut fixture_open,
+                    _ => &mut fixture_short,
+                };
+                if slot.is_some() {
+                    return Err(Problem::validation(format!(
+                        "the field {name} is given twice"
+                    )));
+                }
+                *slot = Some(named);
             }
             "part_number" | "lot" | "method" | "z0_ohm" | "dcr_ohm" | "temperature_c"
-            | "operator" | "options" => {
+            | "operator" | "options" | "fixture_topology" => {
                 if fields.contains_key(&name) {
                     return Err(Problem::validation(format!(
                         "the field {name} is given twice"
@@ -179,6 +203,9 @@ async fn upload(
     let get = |n: &str| fields.get(n).map(String::as_str).unwrap_or("");
     let input = UploadInput {
         file,
+        fixture_open,
+        fixture_short,
+        fixture_topology: get("fixture_topology").to_string(),
         part_number: get("part_number").to_string(),
         lot: get("lot").to_string(),
         method: get("method").to_string(),
@@ -196,6 +223,10 @@ async fn upload(
 #[derive(Debug, Clone, Default)]
 pub struct UploadInput {
     pub file: Option<NamedFile>,
+    pub fixture_open: Option<NamedFile>,
+    pub fixture_short: Option<NamedFile>,
+    /// Empty for the default topology (only with both fixture files).
+    pub fixture_topology: String,
     pub part_number: String,
     pub lot: String,
     pub method: String,
@@ -216,26 +247,56 @@ fn finite(name: &str, v: Option<f64>) -> ApiResult<Option<f64>> {
     }
 }
 
-/// Checks an upload completely (metadata, options, the file through the engine's reader), stores it
+/// Checks a named file as uploaded: a short name without control characters, and some bytes.
+fn checked_file(f: NamedFile) -> ApiResult<NamedFile> {
+    let named = NamedFile {
+        name: short_text("file name", &f.name, 255, true)?,
+        bytes: f.bytes,
+    };
+    if named.bytes.is_empty() {
+        return Err(Problem::new(
+            Kind::BadSweepFile,
+            format!("{} is empty", named.name),
+        ));
+    }
+    Ok(named)
+}
+
+/// Checks an upload completely (metadata, options, the files through the engine's reader), stores it
 /// and queues its fit; nothing is stored when any check fails. Shared by the HTTP and gRPC interfaces.
 pub async fn accept_upload(
     state: &AppState,
     actor: &str,
     input: UploadInput,
 ) -> ApiResult<Accepted> {
-    let file = input
-        .file
-        .ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
-    let file = NamedFile {
-        name: short_text("file name", &file.name, 255, true)?,
-        bytes: file.bytes,
+    let file = input.file.clone().map(checked_file).transpose()?;
+    let fixture_open = input.fixture_open.clone().map(checked_file).transpose()?;
+    let fixture_short = input.fixture_short.clone().map(checked_file).transpose()?;
+    let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
+    let topology = match (fixture_open.is_some(), fixture_short.is_some()) {
+        (false, false) => {
+            if !input.fixture_topology.trim().is_empty() {
+                return Err(Problem::validation(
+                    "fixture_topology is given without the fixture_open and fixture_short files",
+                ));
+            }
+            None
+        }
+        (true, true) => Some(match input.fixture_topology.trim() {
+            "" => FixtureTopology::Approximate,
+            t => FixtureTopology::parse(t).ok_or_else(|| {
+                Problem::validation(format!(
+                    "fixture_topology must be one of {}, not {t:?}",
+                    FixtureTopology::ALL.map(FixtureTopology::as_str).join(", ")
+                ))
+            })?,
+        }),
+        _ => {
+            return Err(Problem::validation(
+                "fixture compensation needs both fixture_open and fixture_short files",
+            ));
+        }
     };
-    if file.bytes.is_empty() {
-        return Err(Problem::new(
-            Kind::BadSweepFile,
-            format!("{} is empty", file.name),
-        ));
-    }
     let part_number = short_text("part_number", &input.part_number, 64, true)?;
     crate::store::parts::validate_part_number(&part_number).map_err(Problem::validation)?;
     let lot = short_text("lot", &input.lot, 64, true)?;
@@ -266,15 +327,26 @@ pub async fn accept_upload(
         z0_ohm,
         ..ReadOptions::default()
     };
-    let (name, bytes) = (file.name.clone(), file.bytes.clone());
-    let sweep = tokio::task::spawn_blocking(move || engine.read_sweep(&name, &bytes, &read))
-        .await
-        .map_err(Problem::internal)?
-        .map_err(|e| Problem {
-            kind: Kind::BadSweepFile,
-            detail: format!("{}: {}", file.name, e.message),
-            line: e.line,
-        })?;
+    let files = (file.clone(), fixture_open.clone(), fixture_short.clone());
+    let sweep = tokio::task::spawn_blocking(move || {
+        let (file, open, short) = &files;
+        let fixture =
+            topology
+                .zip(open.as_ref().zip(short.as_ref()))
+                .map(|(topology, (open, short))| FixtureFiles {
+                    open: input_file(open),
+                    short: input_file(short),
+                    topology,
+                });
+        read_input(engine.as_ref(), input_file(file), fixture, &read)
+    })
+    .await
+    .map_err(Problem::internal)?
+    .map_err(|e| Problem {
+        kind: Kind::BadSweepFile,
+        detail: format!("{}: {}", e.file_name, e.error.message),
+        line: e.error.line,
+    })?;
 
     let method_text = serde_json::to_value(sweep.method)
         .ok()
@@ -286,14 +358,27 @@ pub async fn accept_upload(
         lot,
         sha256: sha256_hex(&file.bytes),
         file,
-        options_key: duplicate_key(&options_json, &method_text, z0_ohm),
+        options_key: duplicate_key_with_fixture(
+            &options_json,
+            &method_text,
+            z0_ohm,
+            topology
+                .zip(fixture_open.as_ref().zip(fixture_short.as_ref()))
+                .map(|(topology, (open, short))| FixtureFiles {
+                    open: input_file(open),
+                    short: input_file(short),
+                    topology,
+                })
+                .as_ref(),
+        ),
         method: method_text,
         z0_ohm,
         dcr_ohm,
         temperature_c,
         operator,
-        fixture_open: None,
-        fixture_short: None,
+        fixture_topology: topology.map(|t| t.as_str().to_string()),
+        fixture_open,
+        fixture_short,
         points: sweep.frequency_hz.len(),
         options_json,
     };

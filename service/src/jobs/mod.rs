@@ -50,6 +50,26 @@ pub fn duplicate_key(options_json: &str, method: &str, z0_ohm: Option<f64>) -> S
     sha256_hex(text.to_string().as_bytes())
 }
 
+/// [`duplicate_key`] of an upload with fixture sweeps: the fixture files' SHA-256 and the topology
+/// take part too (the same DUT file compensated differently is a different fit).
+pub fn duplicate_key_with_fixture(
+    options_json: &str,
+    method: &str,
+    z0_ohm: Option<f64>,
+    fixture: Option<&engine::FixtureFiles<'_>>,
+) -> String {
+    let Some(fx) = fixture else {
+        return duplicate_key(options_json, method, z0_ohm);
+    };
+    let text = serde_json::json!({
+        "options": options_json, "method": method, "z0_ohm": z0_ohm,
+        "fixture_open_sha256": sha256_hex(fx.open.bytes),
+        "fixture_short_sha256": sha256_hex(fx.short.bytes),
+        "fixture_topology": fx.topology.as_str(),
+    });
+    sha256_hex(text.to_string().as_bytes())
+}
+
 /// Knobs of the pool, from [`Settings`].
 #[derive(Debug, Clone)]
 pub struct PoolSettings {
@@ -231,6 +251,7 @@ impl RunningJob {
                 Arc::new(move |p: f64| progress.store(p.to_bits(), Ordering::Relaxed))
             }),
         };
+        let follow_up = rational_follow_up(&input);
         let span = tracing::Span::current();
         let mut work = tokio::task::spawn_blocking(move || {
             let _entered = span.enter();
@@ -283,7 +304,27 @@ impl RunningJob {
                 let figs = figures::from_report(&report);
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "succeeded").increment(1);
-                self.store.complete_succeeded(&claim, &report, &figs).await
+                let written = self.store.complete_succeeded(&claim, &report, &figs).await;
+                if let (Ok(true), Some((limit, options_json, key))) = (&written, &follow_up)
+                    && report.quality.rms_weighted > *limit
+                {
+                    match self
+                        .store
+                        .refit(AUTOMATIC_ACTOR, fit_id, options_json, key)
+                        .await
+                    {
+                        Ok(next) => {
+                            tracing::info!(
+                                next_fit_id = next,
+                                rms_weighted = report.quality.rms_weighted,
+                                "the lumped model misses the data: a rational fit is queued"
+                            );
+                            self.handle.wake();
+                        }
+                        Err(e) => tracing::error!(error = %e, "cannot queue the rational fit"),
+                    }
+                }
+                written
             }
             Outcome::Fit(FitError::Cancelled) if releasing => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "released").increment(1);
@@ -322,22 +363,86 @@ impl RunningJob {
     }
 }
 
-fn run_engine(
+/// Who the audit trail names for work the service queues by itself.
+pub const AUTOMATIC_ACTOR: &str = "henrybook (automatic)";
+
+/// For a lumped fit whose options ask for a rational fallback: the weighted-RMS limit, and the options
+/// (JSON) and duplicate key of the rational fit to queue when the lumped result exceeds it.
+fn rational_follow_up(input: &crate::store::sweeps::JobInput) -> Option<(f64, String, String)> {
+    let mut options: FitOptions = serde_json::from_str(&input.options_json).ok()?;
+    let limit = options.rational_fallback_above_rms_weighted?;
+    if options.family != crate::fit::ModelFamily::Lumped || !limit.is_finite() {
+        return None;
+    }
+    options.family = crate::fit::ModelFamily::Rational;
+    options.rational_fallback_above_rms_weighted = None;
+    let json = serde_json::to_string(&options).ok()?;
+    let key = job_key(input, &json);
+    Some((limit, json, key))
+}
+
+/// The stored fixture sweeps of a job, as the engine reads them.
+fn stored_fixture(
+    input: &crate::store::sweeps::JobInput,
+) -> Result<Option<engine::FixtureFiles<'_>>, String> {
+    match (&input.fixture_open, &input.fixture_short) {
+        (None, None) => Ok(None),
+        (Some(open), Some(short)) => {
+            let text = input.fixture_topology.as_deref().unwrap_or("approximate");
+            let topology = engine::FixtureTopology::parse(text)
+                .ok_or_else(|| format!("unknown fixture topology {text}"))?;
+            Ok(Some(engine::FixtureFiles {
+                open: engine::InputFile {
+                    name: &open.name,
+                    bytes: &open.bytes,
+                },
+                short: engine::InputFile {
+                    name: &short.name,
+                    bytes: &short.bytes,
+                },
+                topology,
+            }))
+        }
+        _ => Err("the sweep has only one of its two fixture files".to_string()),
+    }
+}
+
+/// The DUT sweep a stored job implies: its file read by its method, compensated by its fixture sweeps
+/// when it has them. The error text names the file (and line) that cannot be used.
+pub fn job_sweep(
     engine: &dyn Engine,
     input: &crate::store::sweeps::JobInput,
-    control: &FitControl,
-) -> Outcome {
-    let Some(method) = parse_method(&input.method) else {
-        return Outcome::Sweep(format!("unknown measurement method {}", input.method));
-    };
+) -> Result<crate::sweep::Sweep, String> {
+    let method = parse_method(&input.method)
+        .ok_or_else(|| format!("unknown measurement method {}", input.method))?;
     let read = ReadOptions {
         method: Some(method),
         z0_ohm: input.z0_ohm,
         ..ReadOptions::default()
     };
-    let sweep = match engine.read_sweep(&input.file.name, &input.file.bytes, &read) {
+    let fixture = stored_fixture(input)?;
+    let file = engine::InputFile {
+        name: &input.file.name,
+        bytes: &input.file.bytes,
+    };
+    engine::read_input(engine, file, fixture, &read)
+        .map_err(|e| format!("the sweep cannot be read: {e}"))
+}
+
+/// [`duplicate_key_with_fixture`] of a stored job with other options (a refit).
+pub fn job_key(input: &crate::store::sweeps::JobInput, options_json: &str) -> String {
+    let fixture = stored_fixture(input).ok().flatten();
+    duplicate_key_with_fixture(options_json, &input.method, input.z0_ohm, fixture.as_ref())
+}
+
+fn run_engine(
+    engine: &dyn Engine,
+    input: &crate::store::sweeps::JobInput,
+    control: &FitControl,
+) -> Outcome {
+    let sweep = match job_sweep(engine, input) {
         Ok(s) => s,
-        Err(e) => return Outcome::Sweep(format!("the sweep file cannot be read: {e}")),
+        Err(text) => return Outcome::Sweep(text),
     };
     let options: FitOptions = match serde_json::from_str(&input.options_json) {
         Ok(o) => o,

@@ -29,6 +29,19 @@ pub fn index_range(lo_hz: f64, hi_hz: f64) -> Option<(i64, i64)> {
     (a <= b).then_some((a, b))
 }
 
+/// The grid rows whose intervals `[f_k, f_(k+1)]` touch `[lo, hi]`: from the point at or below `lo`
+/// to the last point below `hi`, clipped to the grid. `None` unless `lo < hi` inside the grid.
+pub fn cover_range(lo_hz: f64, hi_hz: f64) -> Option<(i64, i64)> {
+    const TOL: f64 = 1e-9;
+    let (pa, pb) = (position(lo_hz), position(hi_hz));
+    if !(pa.is_finite() && pb.is_finite() && pa < pb && pa > -TOL && pb < LAST_K as f64 + TOL) {
+        return None;
+    }
+    let a = (pa + TOL).floor().max(0.0) as i64;
+    let b = ((pb - TOL).ceil() as i64 - 1).clamp(a, LAST_K);
+    Some((a, b))
+}
+
 /// Where a frequency sits between two grid points: `(k, w)` with `f` at `k + w`, `0 <= w < 1`.
 /// `None` outside the grid.
 pub fn bracket(frequency_hz: f64) -> Option<(i64, f64)> {
@@ -56,6 +69,76 @@ pub struct GridPoint {
     pub z_mag_ohm: f64,
     /// Im Z / ω.
     pub l_eff_h: f64,
+    /// Lowest |Z| from this grid point up to the next one (or the band's upper end): see
+    /// [`min_abs_z`].
+    pub z_mag_floor_ohm: f64,
+    /// Where that lowest |Z| is.
+    pub z_floor_at_hz: f64,
+}
+
+/// Samples per decade of the scan in [`min_abs_z`] before refinement.
+const SCAN_PER_DECADE: f64 = 60.0;
+
+/// Lowest |Z| of the model on `[a_hz, b_hz]` and where it occurs: a log-spaced scan (ends included,
+/// at least 8 intervals), then a golden-section search in log f around every sampled local minimum,
+/// so a narrow series-resonance notch between samples is found to its bottom rather than missed.
+pub fn min_abs_z(model: &FittedModel, a_hz: f64, b_hz: f64) -> (f64, f64) {
+    let mag = |f: f64| {
+        let m = model.impedance(f).norm();
+        if m.is_finite() { m } else { f64::INFINITY }
+    };
+    if !(a_hz > 0.0 && b_hz > a_hz) {
+        return (mag(a_hz), a_hz);
+    }
+    let (la, lb) = (a_hz.ln(), b_hz.ln());
+    let n = (((lb - la) / std::f64::consts::LN_10) * SCAN_PER_DECADE)
+        .ceil()
+        .max(8.0) as usize;
+    let x: Vec<f64> = (0..=n)
+        .map(|i| la + (lb - la) * i as f64 / n as f64)
+        .collect();
+    let y: Vec<f64> = x.iter().map(|&l| mag(l.exp())).collect();
+    let mut best = (y[0], a_hz);
+    for (i, &yi) in y.iter().enumerate() {
+        if yi < best.0 {
+            best = (yi, x[i].exp());
+        }
+        let left = i == 0 || yi <= y[i - 1];
+        let right = i == n || yi <= y[i + 1];
+        if !(left && right) || i == 0 || i == n {
+            continue;
+        }
+        // Golden-section search on [x[i-1], x[i+1]] (|Z| is smooth and unimodal there).
+        const INV_PHI: f64 = 0.618_033_988_749_894_8;
+        let (mut lo, mut hi) = (x[i - 1], x[i + 1]);
+        let mut c = hi - INV_PHI * (hi - lo);
+        let mut d = lo + INV_PHI * (hi - lo);
+        let (mut fc, mut fd) = (mag(c.exp()), mag(d.exp()));
+        for _ in 0..60 {
+            if hi - lo < 1e-10 {
+                break;
+            }
+            if fc < fd {
+                hi = d;
+                d = c;
+                fd = fc;
+                c = hi - INV_PHI * (hi - lo);
+                fc = mag(c.exp());
+            } else {
+                lo = c;
+                c = d;
+                fc = fd;
+                d = lo + INV_PHI * (hi - lo);
+                fd = mag(d.exp());
+            }
+        }
+        for (v, l) in [(fc, c), (fd, d)] {
+            if v < best.0 {
+                best = (v, l.exp());
+            }
+        }
+    }
+    best
 }
 
 /// The model at the grid points inside the band `[band_min_hz, band_max_hz]` where it is valid.
@@ -68,12 +151,21 @@ pub fn evaluate(model: &FittedModel, band_min_hz: f64, band_max_hz: f64) -> Vec<
         .filter_map(|k| {
             let f = frequency_hz(k);
             let z = model.impedance(f);
+            let upper = frequency_hz(k + 1).min(band_max_hz);
+            let (z_mag_floor_ohm, z_floor_at_hz) = if upper > f {
+                min_abs_z(model, f, upper)
+            } else {
+                (z.norm(), f)
+            };
             let p = GridPoint {
                 k,
                 z_mag_ohm: z.norm(),
                 l_eff_h: z.im / (2.0 * PI * f),
+                z_mag_floor_ohm,
+                z_floor_at_hz,
             };
-            (p.z_mag_ohm.is_finite() && p.l_eff_h.is_finite()).then_some(p)
+            (p.z_mag_ohm.is_finite() && p.l_eff_h.is_finite() && p.z_mag_floor_ohm.is_finite())
+                .then_some(p)
         })
         .collect()
 }
@@ -119,5 +211,51 @@ mod tests {
         // Well below the SRF (22.5 MHz for 10 µH with 5 pF) the effective L is L0 within 0.3 %.
         let at_10k = rows.iter().find(|r| r.k == 40).unwrap();
         assert!((at_10k.l_eff_h / 1e-5 - 1.0).abs() < 3e-3);
+    }
+
+    /// A choke with a narrow series-resonance notch (invented values): 10 µH, 5 pF across, and a
+    /// series section 0.2 Ω / 100 nH / 22.54 pF resonating at 1/(2π√(LC)) = 106.0 MHz (Thomson's
+    /// formula), where |Z| drops to about the section's 0.2 Ω between the grid points at 100 MHz and
+    /// 112.2 MHz.
+    fn notched() -> FittedModel {
+        FittedModel::Lumped(LumpedModel {
+            l0_h: 1e-5,
+            rdc_ohm: 0.05,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: None,
+            cp_f: 5e-12,
+            ls_h: 0.0,
+            sections: vec![crate::model::Section {
+                kind: crate::model::SectionKind::Series,
+                r_ohm: 0.2,
+                l_h: 100e-9,
+                c_f: 22.54e-12,
+            }],
+        })
+    }
+
+    #[test]
+    fn the_band_minimum_finds_a_notch_between_samples() {
+        let m = notched();
+        let f0 = 1.0 / (2.0 * PI * (100e-9f64 * 22.54e-12).sqrt());
+        let (z, at) = min_abs_z(&m, 50e6, 200e6);
+        // At the section's resonance its impedance is r_ohm; the tank around it barely changes that.
+        assert!(z < 0.21, "lowest |Z| {z}");
+        assert!(
+            (at / f0 - 1.0).abs() < 2e-3,
+            "at {at} Hz, resonance {f0} Hz"
+        );
+        // The grid points on either side see far more than the notch.
+        let rows = evaluate(&m, 1e6, 1e9);
+        let k = bracket(f0).unwrap().0;
+        let row = rows.iter().find(|r| r.k == k).unwrap();
+        let next = rows.iter().find(|r| r.k == k + 1).unwrap();
+        assert!(
+            row.z_mag_ohm > 3.0 && next.z_mag_ohm > 3.0,
+            "{row:?} {next:?}"
+        );
+        assert!(row.z_mag_floor_ohm < 0.21, "floor {}", row.z_mag_floor_ohm);
+        assert!((row.z_floor_at_hz / f0 - 1.0).abs() < 2e-3);
+        assert!(next.z_mag_floor_ohm > 3.0);
     }
 }

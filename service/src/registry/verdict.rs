@@ -23,9 +23,6 @@ pub struct Check {
     pub note: Option<String>,
 }
 
-/// Points per decade used to scan |Z| over a limit band (a scan of the fitted model).
-const BAND_SCAN_PER_DECADE: f64 = 50.0;
-
 fn in_band(report: &FitReport, f: f64) -> bool {
     // A relative tolerance: the band ends are the sweep's first and last frequency.
     f >= report.band_hz[0] * (1.0 - 1e-9) && f <= report.band_hz[1] * (1.0 + 1e-9)
@@ -151,7 +148,7 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
         (limits.z_min_ohm, limits.z_band_min_hz, limits.z_band_max_hz)
     {
         if in_band(report, a) && in_band(report, b) {
-            let (z, at) = min_abs_z(model, a, b);
+            let (z, at) = super::grid::min_abs_z(model, a, b);
             let mut c = check("z_min_band", "ohm", min, z, z - min);
             c.note = Some(format!("lowest |Z| in {a}..{b} Hz, at {at} Hz"));
             out.push(c);
@@ -168,20 +165,6 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
         }
     }
     out
-}
-
-/// Lowest |Z| of the model on a dense log scan of `[a, b]` (ends included) and where it occurs.
-fn min_abs_z(model: &FittedModel, a: f64, b: f64) -> (f64, f64) {
-    let n = ((b / a).log10() * BAND_SCAN_PER_DECADE).ceil().max(1.0) as usize;
-    (0..=n)
-        .map(|i| {
-            let f = a * (b / a).powf(i as f64 / n as f64);
-            (model.impedance(f).norm(), f)
-        })
-        .fold(
-            (f64::INFINITY, a),
-            |best, x| if x.0 < best.0 { x } else { best },
-        )
 }
 
 /// The overall verdict: `None` without limits, else pass only when every check passes.

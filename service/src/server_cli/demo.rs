@@ -69,8 +69,79 @@ fn field(v: &Value) -> Option<String> {
     }
 }
 
-fn fmt_scaled(v: Option<f64>, scale: f64, unit: &str) -> String {
-    v.map_or("-".to_string(), |x| format!("{:.4} {unit}", x / scale))
+/// A value with an SI prefix chosen for it: 4.7e-5 H → "47.00 µH".
+fn fmt_si(v: Option<f64>, unit: &str) -> String {
+    let Some(x) = v.filter(|x| x.is_finite()) else {
+        return "-".to_string();
+    };
+    const PREFIXES: [(f64, &str); 9] = [
+        (1e9, "G"),
+        (1e6, "M"),
+        (1e3, "k"),
+        (1.0, ""),
+        (1e-3, "m"),
+        (1e-6, "µ"),
+        (1e-9, "n"),
+        (1e-12, "p"),
+        (1e-15, "f"),
+    ];
+    let (scale, prefix) = PREFIXES
+        .iter()
+        .copied()
+        .find(|(scale, _)| x.abs() >= *scale)
+        .unwrap_or((1e-15, "f"));
+    format!("{:.2} {prefix}{unit}", x / scale)
+}
+
+/// One line of the demo's result table: a fit with its model, verdict and largest drift.
+fn print_fit_row(part: &str, f: &Value) {
+    let model = &f["report"]["model"];
+    let failed: Vec<String> = f["verdict_checks"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default()
+        .iter()
+        .filter(|k| k["pass"] == false)
+        .map(|k| k["limit"].as_str().unwrap_or_default().to_string())
+        .collect();
+    // The parameter that moved most against the baseline in units of its combined σ, with its
+    // change in percent.
+    let drift = f["drift"]["parameters"].as_array().and_then(|ps| {
+        ps.iter()
+            .filter_map(|p| {
+                Some((
+                    p["name"].as_str()?.to_string(),
+                    p["percent"].as_f64()?,
+                    p["sigma"].as_f64()?,
+                ))
+            })
+            .max_by(|a, b| a.2.abs().total_cmp(&b.2.abs()))
+    });
+    let status = f["status"].as_str().unwrap_or_default();
+    println!(
+        "{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} {}",
+        part,
+        f["lot"].as_str().unwrap_or_default(),
+        f["fit_id"],
+        f["revision"],
+        model["kind"].as_str().unwrap_or("-"),
+        status,
+        fmt_si(f["srf_hz"].as_f64(), "Hz"),
+        fmt_si(model["l0_h"].as_f64(), "H"),
+        fmt_si(model["rdc_ohm"].as_f64(), "Ω"),
+        f["report"]["quality"]["rms_weighted"]
+            .as_f64()
+            .map_or("-".to_string(), |r| format!("{r:.2}")),
+        f["verdict"].as_str().unwrap_or("-"),
+        drift.map_or("-".to_string(), |(name, pct, sigma)| format!(
+            "{name} {pct:+.1} % ({sigma:+.0}σ)"
+        )),
+        if status == "failed" {
+            f["error"].as_str().unwrap_or_default().to_string()
+        } else {
+            failed.join(", ")
+        }
+    );
 }
 
 pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
@@ -227,45 +298,54 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         }
     }
 
+    // Lumped fits that miss their data queue a rational revision: wait for those too.
+    loop {
+        let q = c.get("/api/v1/queue", reader).await?;
+        let busy = q["queued"].as_i64().unwrap_or(0) + q["running"].as_i64().unwrap_or(0);
+        if busy == 0 {
+            break;
+        }
+        if started.elapsed() > Duration::from_secs(300) {
+            bail!("the fits did not finish within 5 minutes");
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+
     println!(
-        "\n{:<14} {:<7} {:>4} {:<10} {:>14} {:>12} {:>12} {:<7} {:>9}  failed limits",
-        "part", "lot", "fit", "status", "SRF", "L0", "Rdc", "verdict", "drift σ"
+        "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} failed limits",
+        "part",
+        "lot",
+        "fit",
+        "rev",
+        "model",
+        "status",
+        "SRF",
+        "L0",
+        "Rdc",
+        "RMS/σ",
+        "verdict",
+        "largest drift vs baseline"
     );
-    for (part, lot, id) in &fits {
-        let f = c.get(&format!("/api/v1/fits/{id}"), reader).await?;
-        let model = &f["report"]["model"];
-        let failed: Vec<String> = f["verdict_checks"]
+    let mut seen_parts = Vec::new();
+    for (part, _, _) in &fits {
+        if !seen_parts.contains(part) {
+            seen_parts.push(part.clone());
+        }
+    }
+    for part in &seen_parts {
+        let p = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
+        let mut ids: Vec<i64> = p["fits"]
             .as_array()
             .cloned()
             .unwrap_or_default()
             .iter()
-            .filter(|k| k["pass"] == false)
-            .map(|k| k["limit"].as_str().unwrap_or_default().to_string())
+            .filter_map(|f| f["fit_id"].as_i64())
             .collect();
-        let drift = f["drift"]["parameters"].as_array().and_then(|ps| {
-            ps.iter()
-                .filter_map(|p| p["sigma"].as_f64())
-                .map(f64::abs)
-                .reduce(f64::max)
-        });
-        let status = f["status"].as_str().unwrap_or_default();
-        println!(
-            "{:<14} {:<7} {:>4} {:<10} {:>14} {:>12} {:>12} {:<7} {:>9}  {}",
-            part,
-            lot,
-            id,
-            status,
-            fmt_scaled(f["srf_hz"].as_f64(), 1e6, "MHz"),
-            fmt_scaled(model["l0_h"].as_f64(), 1e-6, "µH"),
-            fmt_scaled(model["rdc_ohm"].as_f64(), 1e-3, "mΩ"),
-            f["verdict"].as_str().unwrap_or("-"),
-            drift.map_or("-".to_string(), |d| format!("{d:.1}")),
-            if status == "failed" {
-                f["error"].as_str().unwrap_or_default().to_string()
-            } else {
-                failed.join(", ")
-            }
-        );
+        ids.sort_unstable();
+        for id in ids {
+            let f = c.get(&format!("/api/v1/fits/{id}"), reader).await?;
+            print_fit_row(part, &f);
+        }
     }
 
     let query = "/api/v1/parts?srf_min_hz=1e7&srf_max_hz=1e8&sort=srf_hz";
@@ -279,7 +359,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         println!(
             "  {:<14} SRF {:>12}   {}",
             p["part_number"].as_str().unwrap_or_default(),
-            fmt_scaled(p["srf_hz"].as_f64(), 1e6, "MHz"),
+            fmt_si(p["srf_hz"].as_f64(), "Hz"),
             p["description"].as_str().unwrap_or_default()
         );
     }

@@ -208,13 +208,18 @@ impl Store {
             }
         }
         for p in &figures.grid {
-            sqlx::query("INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h) VALUES (?, ?, ?, ?)")
-                .bind(claim.fit_id)
-                .bind(p.k)
-                .bind(p.z_mag_ohm)
-                .bind(p.l_eff_h)
-                .execute(&mut *tx)
-                .await?;
+            sqlx::query(
+                "INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h, z_mag_floor_ohm, \
+                 z_floor_at_hz) VALUES (?, ?, ?, ?, ?, ?)",
+            )
+            .bind(claim.fit_id)
+            .bind(p.k)
+            .bind(p.z_mag_ohm)
+            .bind(p.l_eff_h)
+            .bind(p.z_mag_floor_ohm)
+            .bind(p.z_floor_at_hz)
+            .execute(&mut *tx)
+            .await?;
         }
         sqlx::query(
             "UPDATE parts SET latest_fit_id = ? WHERE part_id = ? \
@@ -348,6 +353,7 @@ mod tests {
             operator: String::new(),
             fixture_open: None,
             fixture_short: None,
+            fixture_topology: None,
             points: 3,
             options_json: "{}".into(),
             options_key: "k".into(),

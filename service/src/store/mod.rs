@@ -61,7 +61,11 @@ impl Store {
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(SqliteSynchronous::Normal)
             .busy_timeout(Duration::from_secs(10))
-            .foreign_keys(true);
+            .foreign_keys(true)
+            // Reads go through a shared memory map of the file (one copy in the page cache for all
+            // connections, no read() per page); sorts and temporary B-trees stay in memory.
+            .pragma("mmap_size", "268435456")
+            .pragma("temp_store", "memory");
         let writer = SqlitePoolOptions::new()
             .max_connections(1)
             .connect_with(options.clone())

@@ -137,11 +137,11 @@ impl PartQuery {
             return Err("z_min_ohm needs z_band_min_hz and z_band_max_hz".into());
         }
         if let (Some(a), Some(b)) = (self.z_band_min_hz, self.z_band_max_hz)
-            && grid::index_range(a, b).is_none()
+            && grid::cover_range(a, b).is_none()
         {
             return Err(format!(
-                "the band {a}..{b} Hz holds no point of the stored grid ({} points per decade, {}..{} Hz)",
-                grid::POINTS_PER_DECADE,
+                "the band {a}..{b} Hz must have z_band_min_hz < z_band_max_hz inside the stored grid \
+                 ({}..{} Hz)",
                 grid::frequency_hz(0),
                 grid::frequency_hz(grid::LAST_K)
             ));
@@ -181,15 +181,20 @@ impl Store {
             format!("COALESCE({c}, {fill})")
         });
         let l_bracket = query.l_at_hz.and_then(grid::bracket);
-        let z_range = match (query.z_band_min_hz, query.z_band_max_hz) {
-            (Some(a), Some(b)) => grid::index_range(a, b),
+        let z_band = match (query.z_band_min_hz, query.z_band_max_hz) {
+            (Some(a), Some(b)) => Some((a, b)),
             _ => None,
         };
 
+        // Two steps in one statement: the inner query filters, sorts and cuts the page carrying only
+        // keys and the computed figures (so the sort over thousands of matches stays small), the outer
+        // one fetches the page's rows.
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
             "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
              lf.verdict AS latest_verdict, lf.drift_max_sigma AS drift_max_sigma, \
-             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm",
+             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, \
+             k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
+             SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
         );
         match l_bracket {
             Some((_, w)) if w > 0.0 => {
@@ -206,13 +211,11 @@ impl Store {
                 q.push(", NULL AS l_eff_h");
             }
         }
-        match z_range {
-            Some((a, b)) => {
-                q.push(", (SELECT MIN(g.z_mag_ohm) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
-                    .push_bind(a)
-                    .push(" AND ")
-                    .push_bind(b)
-                    .push(") AS z_min_ohm");
+        match z_band {
+            Some((lo, hi)) => {
+                q.push(", ");
+                push_z_min(&mut q, lo, hi);
+                q.push(" AS z_min_ohm");
             }
             None => {
                 q.push(", NULL AS z_min_ohm");
@@ -227,7 +230,6 @@ impl Store {
         } else {
             " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id"
         });
-        q.push(" LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id");
         if let Some((k, w)) = l_bracket {
             q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
                 .push_bind(k);
@@ -297,24 +299,16 @@ impl Store {
                 q.push(format!(" AND {expr} <= ")).push_bind(hi);
             }
         }
-        if let Some((a, b)) = z_range {
-            // The whole band must lie inside the fit's sweep (every grid point present).
-            q.push(
-                " AND (SELECT COUNT(*) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ",
-            )
-            .push_bind(a)
-            .push(" AND ")
-            .push_bind(b)
-            .push(") = ")
-            .push_bind(b - a + 1);
+        if let Some((lo, hi)) = z_band {
+            // The whole band must lie inside the fit's sweep.
+            q.push(" AND f.band_min_hz <= ")
+                .push_bind(lo * (1.0 + 1e-9))
+                .push(" AND f.band_max_hz >= ")
+                .push_bind(hi * (1.0 - 1e-9));
             if let Some(zmin) = query.z_min_ohm {
-                q.push(" AND NOT EXISTS (SELECT 1 FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
-                    .push_bind(a)
-                    .push(" AND ")
-                    .push_bind(b)
-                    .push(" AND g.z_mag_ohm < ")
-                    .push_bind(zmin)
-                    .push(")");
+                q.push(" AND ");
+                push_z_min(&mut q, lo, hi);
+                q.push(" >= ").push_bind(zmin);
             }
         }
         if let Some(c) = &query.cursor {
@@ -344,6 +338,19 @@ impl Store {
             }
         }
         q.push(" LIMIT ").push_bind(query.limit + 1);
+        q.push(
+            ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
+             LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
+        );
+        match &sort_expr {
+            Some(_) => {
+                let dir = if query.sort.descending { "DESC" } else { "ASC" };
+                q.push(format!(" ORDER BY k.sort_value {dir}, k.part_number ASC"));
+            }
+            None => {
+                q.push(" ORDER BY k.part_number ASC");
+            }
+        }
 
         let rows = q.build().fetch_all(&self.reader).await?;
         let mut items = Vec::with_capacity(rows.len());
@@ -398,4 +405,57 @@ impl Store {
         }
         Ok(PartPage { items, next_cursor })
     }
+}
+
+/// Pushes the SQL for the lowest |Z| of the fit `f` over `[lo, hi]`, from its grid rows (see
+/// `registry::grid`): the stored floor of every grid interval touching the band whose lowest point lies
+/// inside the band, the grid points inside the band, and |Z| at the band's ends interpolated linearly
+/// (in log f) between their neighbouring grid points. Caller checks `grid::cover_range(lo, hi)`.
+fn push_z_min(q: &mut QueryBuilder<Sqlite>, lo: f64, hi: f64) {
+    const NONE: f64 = 1e308;
+    let (kl, kh) = grid::cover_range(lo, hi).unwrap_or((0, -1));
+    q.push("NULLIF(MIN(COALESCE((SELECT MIN(CASE WHEN g.z_floor_at_hz BETWEEN ")
+        .push_bind(lo)
+        .push(" AND ")
+        .push_bind(hi)
+        .push(" THEN g.z_mag_floor_ohm");
+    if let Some((a, b)) = grid::index_range(lo, hi) {
+        q.push(" WHEN g.k BETWEEN ")
+            .push_bind(a)
+            .push(" AND ")
+            .push_bind(b)
+            .push(" THEN g.z_mag_ohm");
+    }
+    q.push(" END) FROM fit_grid g WHERE g.fit_id = f.fit_id AND g.k BETWEEN ")
+        .push_bind(kl)
+        .push(" AND ")
+        .push_bind(kh)
+        .push("), ")
+        .push_bind(NONE)
+        .push(")");
+    for end in [lo, hi] {
+        q.push(", ");
+        match grid::bracket(end) {
+            Some((k, w)) if w > 0.0 => {
+                q.push(
+                    "COALESCE((SELECT e1.z_mag_ohm * (1 - ",
+                )
+                .push_bind(w)
+                .push(") + e2.z_mag_ohm * ")
+                .push_bind(w)
+                .push(
+                    " FROM fit_grid e1 JOIN fit_grid e2 ON e2.fit_id = e1.fit_id AND e2.k = e1.k + 1 \
+                     WHERE e1.fit_id = f.fit_id AND e1.k = ",
+                )
+                .push_bind(k)
+                .push("), ")
+                .push_bind(NONE)
+                .push(")");
+            }
+            _ => {
+                q.push_bind(NONE);
+            }
+        }
+    }
+    q.push("), ").push_bind(NONE).push(")");
 }

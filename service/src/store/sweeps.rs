@@ -24,6 +24,9 @@ pub struct NewSweep {
     pub operator: String,
     pub fixture_open: Option<NamedFile>,
     pub fixture_short: Option<NamedFile>,
+    /// How the fixture sweeps are applied (`crate::jobs::engine::FixtureTopology::as_str`); `Some`
+    /// exactly when both fixture files are.
+    pub fixture_topology: Option<String>,
     pub points: usize,
     /// The effective fit options as canonical JSON.
     pub options_json: String,
@@ -50,6 +53,7 @@ pub struct JobInput {
     pub z0_ohm: Option<f64>,
     pub fixture_open: Option<NamedFile>,
     pub fixture_short: Option<NamedFile>,
+    pub fixture_topology: Option<String>,
     pub options_json: String,
 }
 
@@ -115,8 +119,9 @@ impl Store {
         let sweep_id: i64 = sqlx::query_scalar(
             "INSERT INTO sweeps (part_id, lot_id, file_name, file_bytes, sha256, method, z0_ohm, \
              dcr_ohm, temperature_c, operator, fixture_open_name, fixture_open_bytes, \
-             fixture_short_name, fixture_short_bytes, points, uploaded_by, uploaded_at_ms) \
-             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING sweep_id",
+             fixture_short_name, fixture_short_bytes, fixture_topology, points, uploaded_by, \
+             uploaded_at_ms) \
+             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING sweep_id",
         )
         .bind(part_id)
         .bind(lot_id)
@@ -132,6 +137,7 @@ impl Store {
         .bind(open_bytes)
         .bind(short_name)
         .bind(short_bytes)
+        .bind(&new.fixture_topology)
         .bind(new.points as i64)
         .bind(actor)
         .bind(now)
@@ -180,7 +186,7 @@ impl Store {
         let row = sqlx::query(
             "SELECT f.fit_id, f.part_id, f.options_json, s.file_name, s.file_bytes, s.method, \
              s.z0_ohm, s.fixture_open_name, s.fixture_open_bytes, s.fixture_short_name, \
-             s.fixture_short_bytes FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
+             s.fixture_short_bytes, s.fixture_topology FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
              WHERE f.fit_id = ?",
         )
         .bind(fit_id)
@@ -204,6 +210,7 @@ impl Store {
                 row.try_get("fixture_short_name")?,
                 row.try_get("fixture_short_bytes")?,
             ),
+            fixture_topology: row.try_get("fixture_topology")?,
             options_json: row.try_get("options_json")?,
         })
     }

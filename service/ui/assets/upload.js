@@ -102,6 +102,16 @@ export function renderUpload(main, _params, search) {
   const dcr = field("up-dcr", { placeholder: "optional four-wire reading, e.g. 12.5 m" });
   const temp = field("up-temp", { placeholder: "e.g. 23" });
   const operator = field("up-operator", { placeholder: "who measured" });
+  const fixOpen = h("input", { type: "file", id: "up-fixture-open", accept: ".s1p,.s2p,.snp,.ts,.csv,.txt" });
+  const fixShort = h("input", { type: "file", id: "up-fixture-short", accept: ".s1p,.s2p,.snp,.ts,.csv,.txt" });
+  const fixTopology = h(
+    "select",
+    { id: "up-fixture-topology" },
+    h("option", { value: "approximate" }, "open/short, the usual form"),
+    h("option", { value: "series-then-shunt" }, "L-shaped fixture, series part on the instrument side (exact)"),
+    h("option", { value: "shunt-then-series" }, "L-shaped fixture, shunt part on the instrument side (exact)"),
+    h("option", { value: "two-port" }, "two-port de-embedding (three 2-port files)"),
+  );
   const family = h("select", { id: "up-family" }, h("option", { value: "lumped" }, "lumped circuit (L0, DCR, skin, core loss, C, leads, resonant sections)"), h("option", { value: "rational" }, "rational (vector fitting, wideband)"));
   const sections = h("select", { id: "up-sections" }, [0, 1, 2, 3].map((n) => h("option", { value: n, selected: n === 3 }, `up to ${n} extra resonant section${n === 1 ? "" : "s"}`)));
 
@@ -132,6 +142,12 @@ export function renderUpload(main, _params, search) {
           if (operator.value.trim()) fd.append("operator", operator.value.trim());
           fd.append("options", JSON.stringify({ family: family.value, max_sections: Number(sections.value) }));
           fd.append("file", file.files[0], file.files[0].name);
+          if (fixOpen.files[0] || fixShort.files[0]) {
+            if (!(fixOpen.files[0] && fixShort.files[0])) throw new Error("fixture compensation needs both the open and the short sweep");
+            fd.append("fixture_open", fixOpen.files[0], fixOpen.files[0].name);
+            fd.append("fixture_short", fixShort.files[0], fixShort.files[0].name);
+            fd.append("fixture_topology", fixTopology.value);
+          }
         } catch (e) {
           result.replaceChildren(h("div", { class: "error", role: "alert" }, e.message));
           return;
@@ -161,6 +177,17 @@ export function renderUpload(main, _params, search) {
         h("label", {}, h("span", {}, "DC resistance (Ω)"), dcr),
         h("label", {}, h("span", {}, "Temperature (°C)"), temp),
         h("label", {}, h("span", {}, "Operator"), operator),
+      ),
+    ),
+    h(
+      "fieldset",
+      {},
+      h("legend", {}, "Fixture compensation (optional)"),
+      h("p", { class: "hint" }, "The open and short dummies measured in the same fixture on the same frequency points as the part."),
+      h("div", { class: "filter-grid" },
+        h("label", {}, h("span", {}, "Open sweep"), fixOpen),
+        h("label", {}, h("span", {}, "Short sweep"), fixShort),
+        h("label", { class: "wide" }, h("span", {}, "Fixture"), fixTopology),
       ),
     ),
     h("fieldset", {}, h("legend", {}, "4 · Model"), h("div", { class: "filter-grid" }, h("label", { class: "wide" }, h("span", {}, "Family"), family), h("label", { class: "wide" }, h("span", {}, "Resonant sections"), sections))),
