@@ -1,5 +1,5 @@
-//! The whole service: open the store, bind the listener, run HTTP and the worker pool, shut down
-//! gracefully (HTTP drains, running fits finish or give their jobs back).
+//! The whole service: open the store, bind the listeners, run HTTP, gRPC and the worker pool, shut
+//! down gracefully (HTTP and gRPC drain, running fits finish or give their jobs back).
 
 use crate::jobs::{CoreEngine, Engine, JobsHandle, Pool, PoolSettings};
 use crate::settings::Settings;
@@ -56,6 +56,8 @@ pub fn metrics_handle() -> PrometheusHandle {
 pub struct Application {
     listener: TcpListener,
     address: SocketAddr,
+    grpc_listener: TcpListener,
+    grpc_address: SocketAddr,
     state: AppState,
     pool: Pool,
 }
@@ -77,6 +79,10 @@ impl Application {
             .await
             .with_context(|| format!("cannot listen on {}", settings.listen))?;
         let address = listener.local_addr()?;
+        let grpc_listener = TcpListener::bind(settings.grpc_listen)
+            .await
+            .with_context(|| format!("cannot listen for gRPC on {}", settings.grpc_listen))?;
+        let grpc_address = grpc_listener.local_addr()?;
         let pool = Pool::new(store.clone(), engine.clone(), PoolSettings::from(&settings));
         let state = AppState {
             store,
@@ -88,6 +94,8 @@ impl Application {
         Ok(Application {
             listener,
             address,
+            grpc_listener,
+            grpc_address,
             state,
             pool,
         })
@@ -101,6 +109,11 @@ impl Application {
         self.address.port()
     }
 
+    /// Where the gRPC interface listens (its port is known once built, also for port 0).
+    pub fn grpc_address(&self) -> SocketAddr {
+        self.grpc_address
+    }
+
     pub fn store(&self) -> &Store {
         &self.state.store
     }
@@ -110,7 +123,8 @@ impl Application {
         self.run(shutdown_signal()).await
     }
 
-    /// Serves until `shutdown` completes, then drains HTTP and the worker pool and closes the store.
+    /// Serves until `shutdown` completes, then drains HTTP, gRPC and the worker pool and closes the
+    /// store.
     pub async fn run(
         self,
         shutdown: impl Future<Output = ()> + Send + 'static,
@@ -124,15 +138,27 @@ impl Application {
         // abandoned with their leases, exactly as in a crash.
         let mut pool = AbortOnDrop(Some(tokio::spawn(self.pool.run(stop_rx.clone()))));
         let store = self.state.store.clone();
+        let mut grpc = AbortOnGrpcDrop(Some(tokio::spawn(crate::grpc::serve(
+            self.grpc_listener,
+            self.state.clone(),
+            stop_rx.clone(),
+        ))));
         let router = crate::http::router(self.state);
         let mut http_stop = stop_rx;
-        tracing::info!(address = %self.address, "henrybook is serving");
+        tracing::info!(address = %self.address, grpc_address = %self.grpc_address, "henrybook is serving");
         axum::serve(self.listener, router)
             .with_graceful_shutdown(async move {
                 let _ = http_stop.wait_for(|s| *s).await;
             })
             .await
             .context("the HTTP server stopped")?;
+        // An HTTP failure above returns at once: dropping the guard aborts gRPC.
+        if let Some(handle) = grpc.0.take() {
+            handle
+                .await
+                .context("the gRPC server task")?
+                .context("the gRPC server stopped")?;
+        }
         if let Some(handle) = pool.0.take() {
             handle.await.context("the worker pool stopped")?;
         }
@@ -143,6 +169,16 @@ impl Application {
 }
 
 struct AbortOnDrop(Option<tokio::task::JoinHandle<()>>);
+
+struct AbortOnGrpcDrop(Option<tokio::task::JoinHandle<Result<(), tonic::transport::Error>>>);
+
+impl Drop for AbortOnGrpcDrop {
+    fn drop(&mut self) {
+        if let Some(h) = &self.0 {
+            h.abort();
+        }
+    }
+}
 
 impl Drop for AbortOnDrop {
     fn drop(&mut self) {

@@ -15,6 +15,8 @@
 //!   figures, tokens, the audit trail.
 //! - [`jobs`]: the worker pool that claims jobs with a lease and runs the engine off the runtime.
 //! - [`http`]: axum routes per resource, bearer-token roles, problem+json errors.
+//! - [`grpc`]: the tonic services of `api/henrybook.proto` over the same store, jobs and helpers as
+//!   HTTP, with the same tokens and roles.
 //! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
 //!   the baseline, the fixed grid for queries) and the API's JSON shapes.
 //! - [`app`] builds and runs the whole service; [`settings`] holds its typed settings.
@@ -25,6 +27,7 @@ pub mod app;
 pub mod cli;
 pub mod export;
 pub mod fit;
+pub mod grpc;
 pub mod http;
 pub mod jobs;
 pub mod model;

@@ -15,7 +15,7 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
-    /// Serve the HTTP API and run fits.
+    /// Serve the HTTP API and the gRPC interface, and run fits.
     Serve(ServeArgs),
     /// Manage bearer tokens.
     Token {

@@ -16,6 +16,9 @@ pub struct ServeArgs {
     /// Address to listen on (loopback by default; port 0 picks a free port).
     #[arg(long, env = "HENRYBOOK_LISTEN", default_value = "127.0.0.1:8480")]
     pub listen: SocketAddr,
+    /// Address of the gRPC interface (loopback by default; port 0 picks a free port).
+    #[arg(long, env = "HENRYBOOK_GRPC_LISTEN", default_value = "127.0.0.1:8481")]
+    pub grpc_listen: SocketAddr,
     #[command(flatten)]
     pub database: DatabaseArgs,
     /// Fits run at the same time (default: the number of CPUs).
@@ -56,6 +59,8 @@ pub struct DatabaseArgs {
 #[derive(Debug, Clone)]
 pub struct Settings {
     pub listen: SocketAddr,
+    /// Where the gRPC interface listens.
+    pub grpc_listen: SocketAddr,
     pub database_path: PathBuf,
     pub workers: usize,
     pub max_body_bytes: usize,
@@ -68,10 +73,11 @@ pub struct Settings {
 }
 
 impl Settings {
-    /// Defaults for a database file: loopback, a free port, one worker per CPU.
+    /// Defaults for a database file: loopback, free ports (HTTP and gRPC), one worker per CPU.
     pub fn new(database_path: impl Into<PathBuf>) -> Settings {
         Settings {
             listen: SocketAddr::from(([127, 0, 0, 1], 0)),
+            grpc_listen: SocketAddr::from(([127, 0, 0, 1], 0)),
             database_path: database_path.into(),
             workers: default_workers(),
             max_body_bytes: 32 * 1024 * 1024,
@@ -109,6 +115,7 @@ impl TryFrom<&ServeArgs> for Settings {
         let lease = seconds("--lease-s", a.lease_s)?;
         Ok(Settings {
             listen: a.listen,
+            grpc_listen: a.grpc_listen,
             database_path: a.database.path.clone(),
             workers,
             max_body_bytes: a.max_body_bytes,

@@ -16,6 +16,8 @@ use tokio::task::JoinHandle;
 
 pub struct TestApp {
     pub base_url: String,
+    /// The gRPC listener, as `http://127.0.0.1:<port>`.
+    pub grpc_url: String,
     pub client: reqwest::Client,
     pub reader: String,
     pub inspector: String,
@@ -57,6 +59,7 @@ pub async fn spawn_app_with(
         .await
         .expect("the application builds");
     let base_url = format!("http://127.0.0.1:{}", app.port());
+    let grpc_url = format!("http://{}", app.grpc_address());
     let store = Store::open(&database_path)
         .await
         .expect("second store handle");
@@ -76,6 +79,7 @@ pub async fn spawn_app_with(
     }));
     TestApp {
         base_url,
+        grpc_url,
         client: reqwest::Client::new(),
         reader,
         inspector,
@@ -192,6 +196,15 @@ impl TestApp {
             .expect("request")
     }
 
+    /// A gRPC channel to the application's gRPC listener.
+    pub async fn grpc_channel(&self) -> tonic::transport::Channel {
+        tonic::transport::Endpoint::from_shared(self.grpc_url.clone())
+            .expect("the gRPC URL is valid")
+            .connect()
+            .await
+            .expect("the gRPC listener accepts")
+    }
+
     /// Polls a fit until it leaves queued/running (at most `timeout`).
     pub async fn wait_for_fit(&self, fit_id: i64, timeout: Duration) -> Value {
         let deadline = tokio::time::Instant::now() + timeout;
@@ -240,4 +253,16 @@ pub fn simple_model(l0_h: f64, rdc_ohm: f64, cp_f: f64) -> LumpedModel {
         ls_h: 0.0,
         sections: vec![],
     }
+}
+
+/// `message` with `authorization: Bearer <token>` metadata.
+pub fn grpc_request<T>(message: T, token: &str) -> tonic::Request<T> {
+    let mut r = tonic::Request::new(message);
+    r.metadata_mut().insert(
+        "authorization",
+        format!("Bearer {token}")
+            .parse()
+            .expect("a token is visible ASCII"),
+    );
+    r
 }

@@ -12,11 +12,22 @@ async fn caller(parts: &Parts, state: &AppState, needed: Role) -> Result<Caller,
     let header = parts
         .headers
         .get(header::AUTHORIZATION)
+        .map(|h| h.to_str().unwrap_or(""));
+    authorize(&state.store, header, needed).await
+}
+
+/// The caller behind an `Authorization` value (HTTP header or gRPC metadata), if its role is at
+/// least `needed`: absent, malformed or unknown → [`Kind::Unauthorized`]; too low → [`Kind::Forbidden`].
+/// A value that is not visible ASCII is passed as `""`.
+pub async fn authorize(
+    store: &crate::store::Store,
+    authorization: Option<&str>,
+    needed: Role,
+) -> Result<Caller, Problem> {
+    let header = authorization
         .ok_or_else(|| Problem::new(Kind::Unauthorized, "send Authorization: Bearer <token>"))?;
     let token = header
-        .to_str()
-        .ok()
-        .and_then(|h| h.strip_prefix("Bearer "))
+        .strip_prefix("Bearer ")
         .map(str::trim)
         .filter(|t| !t.is_empty())
         .ok_or_else(|| {
@@ -25,8 +36,7 @@ async fn caller(parts: &Parts, state: &AppState, needed: Role) -> Result<Caller,
                 "the Authorization header must be Bearer <token>",
             )
         })?;
-    let caller = state
-        .store
+    let caller = store
         .authenticate(token)
         .await
         .map_err(Problem::from)?

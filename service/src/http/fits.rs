@@ -17,7 +17,7 @@ use axum::response::IntoResponse;
 use serde::{Deserialize, Serialize};
 use utoipa_axum::{router::OpenApiRouter, routes};
 
-#[derive(Debug, Deserialize, utoipa::IntoParams)]
+#[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct FitListParams {
     /// queued, running, succeeded, failed or cancelled.
@@ -31,15 +31,8 @@ pub struct FitListParams {
     pub cursor: Option<String>,
 }
 
-/// Fits, newest first, filtered and paginated.
-#[utoipa::path(get, path = "/api/v1/fits", tag = "fits", params(FitListParams),
-    responses((status = 200, body = FitPage), (status = 422, body = super::problem::ProblemBody)),
-    security(("bearer" = [])))]
-async fn list_fits(
-    _: Reader,
-    State(state): State<AppState>,
-    Query(p): Query<FitListParams>,
-) -> ApiResult<Json<FitPage>> {
+/// The validated store filter for these parameters (shared by the HTTP and gRPC interfaces).
+pub fn fit_filter(p: FitListParams) -> ApiResult<FitFilter> {
     let status = match p.status.as_deref() {
         None | Some("") => None,
         Some(s) => Some(FitStatus::parse(s).ok_or_else(|| {
@@ -65,14 +58,26 @@ async fn list_fits(
     if !(1..=500).contains(&limit) {
         return Err(Problem::validation("limit must be 1 to 500"));
     }
-    let filter = FitFilter {
+    Ok(FitFilter {
         status,
         part_number: p.part_number.filter(|s| !s.is_empty()),
         lot: p.lot.filter(|s| !s.is_empty()),
         since_ms,
         before_fit_id,
         limit,
-    };
+    })
+}
+
+/// Fits, newest first, filtered and paginated.
+#[utoipa::path(get, path = "/api/v1/fits", tag = "fits", params(FitListParams),
+    responses((status = 200, body = FitPage), (status = 422, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn list_fits(
+    _: Reader,
+    State(state): State<AppState>,
+    Query(p): Query<FitListParams>,
+) -> ApiResult<Json<FitPage>> {
+    let filter = fit_filter(p)?;
     Ok(Json(state.store.list_fits(&filter).await?))
 }
 
@@ -320,6 +325,50 @@ fn export_problem(e: crate::export::ExportError) -> Problem {
     )
 }
 
+/// Points of the Touchstone export, log-spaced over the sweep band.
+const TOUCHSTONE_POINTS: usize = 401;
+
+/// The text exports of a fitted model.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum TextExport {
+    /// A passive SPICE subcircuit.
+    Subcircuit,
+    /// A Touchstone 1-port over the sweep band (reference impedance: the sweep's, or 50 Ω).
+    Touchstone,
+}
+
+/// A succeeded fit's model as export text, with the file name offered for it (shared by the HTTP
+/// and gRPC interfaces). A fit without a model is a conflict; so is a model the exporter refuses.
+pub async fn export_text(
+    state: &AppState,
+    fit_id: i64,
+    export: TextExport,
+) -> ApiResult<(String, String)> {
+    let report = succeeded_report(state, fit_id).await?;
+    let detail = state.store.fit_detail(fit_id).await?;
+    let ctx = export_context(&report, &detail);
+    let z0 = detail.z0_ohm.unwrap_or(50.0);
+    let text = tokio::task::spawn_blocking(move || match export {
+        TextExport::Subcircuit => crate::export::subcircuit(&report.model, &ctx),
+        TextExport::Touchstone => {
+            let grid = crate::export::log_frequency_grid(
+                report.band_hz[0],
+                report.band_hz[1],
+                TOUCHSTONE_POINTS,
+            )?;
+            crate::export::touchstone::touchstone_1port(&report.model, &grid, z0, &ctx)
+        }
+    })
+    .await
+    .map_err(Problem::internal)?
+    .map_err(export_problem)?;
+    let name = match export {
+        TextExport::Subcircuit => format!("fit-{fit_id}.cir"),
+        TextExport::Touchstone => format!("fit-{fit_id}.s1p"),
+    };
+    Ok((name, text))
+}
+
 /// The model as a passive SPICE subcircuit.
 #[utoipa::path(get, path = "/api/v1/fits/{fit_id}/netlist.cir", tag = "exports", params(("fit_id" = i64, Path)),
     responses((status = 200, content_type = "text/plain", body = String),
@@ -330,18 +379,9 @@ async fn netlist(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
 ) -> ApiResult<axum::response::Response> {
-    let report = succeeded_report(&state, fit_id).await?;
-    let detail = state.store.fit_detail(fit_id).await?;
-    let ctx = export_context(&report, &detail);
-    let text = tokio::task::spawn_blocking(move || crate::export::subcircuit(&report.model, &ctx))
-        .await
-        .map_err(Problem::internal)?
-        .map_err(export_problem)?;
-    Ok(text_download(format!("fit-{fit_id}.cir"), text))
+    let (name, text) = export_text(&state, fit_id, TextExport::Subcircuit).await?;
+    Ok(text_download(name, text))
 }
-
-/// Points of the Touchstone export, log-spaced over the sweep band.
-const TOUCHSTONE_POINTS: usize = 401;
 
 /// The model as a Touchstone 1-port over the sweep band (reference impedance: the sweep's, or 50 Ω).
 #[utoipa::path(get, path = "/api/v1/fits/{fit_id}/model.s1p", tag = "exports", params(("fit_id" = i64, Path)),
@@ -353,22 +393,8 @@ async fn touchstone(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
 ) -> ApiResult<axum::response::Response> {
-    let report = succeeded_report(&state, fit_id).await?;
-    let detail = state.store.fit_detail(fit_id).await?;
-    let ctx = export_context(&report, &detail);
-    let z0 = detail.z0_ohm.unwrap_or(50.0);
-    let text = tokio::task::spawn_blocking(move || {
-        let grid = crate::export::log_frequency_grid(
-            report.band_hz[0],
-            report.band_hz[1],
-            TOUCHSTONE_POINTS,
-        )?;
-        crate::export::touchstone::touchstone_1port(&report.model, &grid, z0, &ctx)
-    })
-    .await
-    .map_err(Problem::internal)?
-    .map_err(export_problem)?;
-    Ok(text_download(format!("fit-{fit_id}.s1p"), text))
+    let (name, text) = export_text(&state, fit_id, TextExport::Touchstone).await?;
+    Ok(text_download(name, text))
 }
 
 pub fn router() -> OpenApiRouter<AppState> {

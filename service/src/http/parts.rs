@@ -14,7 +14,7 @@ use axum::response::IntoResponse;
 use serde::Deserialize;
 use utoipa_axum::{router::OpenApiRouter, routes};
 
-#[derive(Debug, Deserialize, utoipa::IntoParams)]
+#[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct PartQueryParams {
     /// Substring of the part number or description.
@@ -51,6 +51,12 @@ async fn query_parts(
     State(state): State<AppState>,
     Query(p): Query<PartQueryParams>,
 ) -> ApiResult<Json<PartPage>> {
+    let query = part_query(p)?;
+    Ok(Json(state.store.query_parts(&query).await?))
+}
+
+/// The validated store query for these parameters (shared by the HTTP and gRPC interfaces).
+pub fn part_query(p: PartQueryParams) -> ApiResult<PartQuery> {
     let sort = match p.sort.as_deref() {
         None | Some("") => Sort::parse("part_number"),
         Some(s) => Sort::parse(s),
@@ -79,7 +85,7 @@ async fn query_parts(
         cursor,
     };
     query.validate().map_err(Problem::validation)?;
-    Ok(Json(state.store.query_parts(&query).await?))
+    Ok(query)
 }
 
 #[derive(Debug, Deserialize, utoipa::ToSchema)]

@@ -168,15 +168,9 @@ async fn upload(
                 })?;
                 let bytes = field.bytes().await.map_err(multipart_problem)?;
                 let named = NamedFile {
-                    name: short_text("file name", &file_name, 255, true)?,
+                    name: file_name,
                     bytes: bytes.to_vec(),
                 };
-                if named.bytes.is_empty() {
-                    return Err(Problem::new(
-                        Kind::BadSweepFile,
-                        format!("{} is empty", named.name),
-                    ));
-                }
                 let slot = match name.as_str() {
                     "file" => &mut file,
                     "fixture_open" => &mut fixture_open,
@@ -207,17 +201,88 @@ async fn upload(
         }
     }
     let get = |n: &str| fields.get(n).map(String::as_str).unwrap_or("");
+    let input = UploadInput {
+        file,
+        fixture_open,
+        fixture_short,
+        fixture_topology: get("fixture_topology").to_string(),
+        part_number: get("part_number").to_string(),
+        lot: get("lot").to_string(),
+        method: get("method").to_string(),
+        z0_ohm: number("z0_ohm", get("z0_ohm"))?,
+        dcr_ohm: number("dcr_ohm", get("dcr_ohm"))?,
+        temperature_c: number("temperature_c", get("temperature_c"))?,
+        operator: get("operator").to_string(),
+        options: get("options").to_string(),
+    };
+    let accepted = accept_upload(&state, &caller.label, input).await?;
+    Ok((StatusCode::ACCEPTED, Json(accepted)))
+}
+
+/// An upload as given (multipart text fields or a gRPC message), before any check.
+#[derive(Debug, Clone, Default)]
+pub struct UploadInput {
+    pub file: Option<NamedFile>,
+    pub fixture_open: Option<NamedFile>,
+    pub fixture_short: Option<NamedFile>,
+    /// Empty for the default topology (only with both fixture files).
+    pub fixture_topology: String,
+    pub part_number: String,
+    pub lot: String,
+    pub method: String,
+    pub z0_ohm: Option<f64>,
+    pub dcr_ohm: Option<f64>,
+    pub temperature_c: Option<f64>,
+    pub operator: String,
+    /// Fit options as JSON text; empty for the defaults.
+    pub options: String,
+}
+
+fn finite(name: &str, v: Option<f64>) -> ApiResult<Option<f64>> {
+    match v {
+        Some(x) if !x.is_finite() => Err(Problem::validation(format!(
+            "{name} must be a finite number (got {x})"
+        ))),
+        other => Ok(other),
+    }
+}
+
+/// Checks a named file as uploaded: a short name without control characters, and some bytes.
+fn checked_file(f: NamedFile) -> ApiResult<NamedFile> {
+    let named = NamedFile {
+        name: short_text("file name", &f.name, 255, true)?,
+        bytes: f.bytes,
+    };
+    if named.bytes.is_empty() {
+        return Err(Problem::new(
+            Kind::BadSweepFile,
+            format!("{} is empty", named.name),
+        ));
+    }
+    Ok(named)
+}
+
+/// Checks an upload completely (metadata, options, the files through the engine's reader), stores it
+/// and queues its fit; nothing is stored when any check fails. Shared by the HTTP and gRPC interfaces.
+pub async fn accept_upload(
+    state: &AppState,
+    actor: &str,
+    input: UploadInput,
+) -> ApiResult<Accepted> {
+    let file = input.file.clone().map(checked_file).transpose()?;
+    let fixture_open = input.fixture_open.clone().map(checked_file).transpose()?;
+    let fixture_short = input.fixture_short.clone().map(checked_file).transpose()?;
     let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
     let topology = match (fixture_open.is_some(), fixture_short.is_some()) {
         (false, false) => {
-            if !get("fixture_topology").trim().is_empty() {
+            if !input.fixture_topology.trim().is_empty() {
                 return Err(Problem::validation(
                     "fixture_topology is given without the fixture_open and fixture_short files",
                 ));
             }
             None
         }
-        (true, true) => Some(match get("fixture_topology").trim() {
+        (true, true) => Some(match input.fixture_topology.trim() {
             "" => FixtureTopology::Approximate,
             t => FixtureTopology::parse(t).ok_or_else(|| {
                 Problem::validation(format!(
@@ -232,10 +297,10 @@ async fn upload(
             ));
         }
     };
-    let part_number = short_text("part_number", get("part_number"), 64, true)?;
+    let part_number = short_text("part_number", &input.part_number, 64, true)?;
     crate::store::parts::validate_part_number(&part_number).map_err(Problem::validation)?;
-    let lot = short_text("lot", get("lot"), 64, true)?;
-    let method = match get("method").trim() {
+    let lot = short_text("lot", &input.lot, 64, true)?;
+    let method = match input.method.trim() {
         "" => None,
         m => Some(parse_method(m).ok_or_else(|| {
             Problem::validation(format!(
@@ -243,9 +308,9 @@ async fn upload(
             ))
         })?),
     };
-    let z0_ohm = positive("z0_ohm", number("z0_ohm", get("z0_ohm"))?)?;
-    let dcr_ohm = positive("dcr_ohm", number("dcr_ohm", get("dcr_ohm"))?)?;
-    let temperature_c = number("temperature_c", get("temperature_c"))?;
+    let z0_ohm = positive("z0_ohm", finite("z0_ohm", input.z0_ohm)?)?;
+    let dcr_ohm = positive("dcr_ohm", finite("dcr_ohm", input.dcr_ohm)?)?;
+    let temperature_c = finite("temperature_c", input.temperature_c)?;
     if let Some(t) = temperature_c
         && !(-273.15..=1000.0).contains(&t)
     {
@@ -253,8 +318,8 @@ async fn upload(
             "temperature_c must lie in -273.15..1000 (got {t})"
         )));
     }
-    let operator = short_text("operator", get("operator"), 128, false)?;
-    let options = effective_options(parse_options(get("options"))?, dcr_ohm);
+    let operator = short_text("operator", &input.operator, 128, false)?;
+    let options = effective_options(parse_options(&input.options)?, dcr_ohm);
 
     let engine = state.engine.clone();
     let read = ReadOptions {
@@ -317,19 +382,16 @@ async fn upload(
         points: sweep.frequency_hz.len(),
         options_json,
     };
-    let up = state.store.upload(&caller.label, &new).await?;
+    let up = state.store.upload(actor, &new).await?;
     if !up.duplicate {
         state.jobs.wake();
     }
-    Ok((
-        StatusCode::ACCEPTED,
-        Json(Accepted {
-            fit_id: up.fit_id,
-            sweep_id: up.sweep_id,
-            status_url: format!("/api/v1/fits/{}", up.fit_id),
-            duplicate: up.duplicate,
-        }),
-    ))
+    Ok(Accepted {
+        fit_id: up.fit_id,
+        sweep_id: up.sweep_id,
+        status_url: format!("/api/v1/fits/{}", up.fit_id),
+        duplicate: up.duplicate,
+    })
 }
 
 /// The uploaded file, byte for byte.

@@ -23,6 +23,9 @@ pub struct DemoArgs {
     /// Address to serve on.
     #[arg(long, env = "HENRYBOOK_LISTEN", default_value = "127.0.0.1:8480")]
     pub listen: SocketAddr,
+    /// Address of the gRPC interface.
+    #[arg(long, env = "HENRYBOOK_GRPC_LISTEN", default_value = "127.0.0.1:8481")]
+    pub grpc_listen: SocketAddr,
     /// Load, print, and stop instead of serving until Ctrl-C.
     #[arg(long)]
     pub no_serve: bool,
@@ -155,8 +158,10 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
 
     let mut settings = Settings::new(args.folder.join("henrybook-demo.db"));
     settings.listen = args.listen;
+    settings.grpc_listen = args.grpc_listen;
     let app = Application::build(settings).await?;
     let base = format!("http://{}", app.address());
+    let grpc_address = app.grpc_address();
     let store = app.store().clone();
     let mut tokens = Vec::new();
     for role in Role::ALL {
@@ -364,6 +369,10 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     println!("  inspector: {inspector}");
     println!("  engineer:  {engineer}");
     println!("e.g. curl -H 'Authorization: Bearer {reader}' '{base}{query}'");
+    println!(
+        "gRPC (api/henrybook.proto, package henrybook.v1) is at {grpc_address}; the same tokens go \
+         in `authorization: Bearer <token>` metadata."
+    );
     println!(
         "Caution: measuring energised power parts or parts at high voltage is hazardous; follow local \
          codes and licensed practice. The demo data is invented."

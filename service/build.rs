@@ -1,0 +1,11 @@
+//! Generates the gRPC messages and services from `api/henrybook.proto` with protox (pure Rust, so no
+//! `protoc` is needed) and tonic-prost-build.
+
+fn main() -> Result<(), Box<dyn std::error::Error>> {
+    let api = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../api");
+    let proto = api.join("henrybook.proto");
+    println!("cargo:rerun-if-changed={}", proto.display());
+    let descriptors = protox::compile([&proto], [&api])?;
+    tonic_prost_build::configure().compile_fds(descriptors)?;
+    Ok(())
+}

@@ -1,0 +1,230 @@
+//! `FitRegistry`: fit status (one, a filtered page, counts, a watch stream), results, text exports
+//! and uploads, each with the role of its HTTP twin.
+
+use super::proto::fit_registry_server::FitRegistry;
+use super::proto::{self, CountFitsRequest, ExportFitRequest, FitRef, ListFitsRequest};
+use super::{caller, convert, fit_id, status, store_status};
+use crate::app::AppState;
+use crate::http::fits::{FitListParams, TextExport, export_text, fit_filter};
+use crate::http::problem::Problem;
+use crate::http::sweeps::{UploadInput, accept_upload};
+use crate::registry::wire::FitStatus;
+use crate::store::sweeps::NamedFile;
+use crate::store::tokens::Role;
+use std::time::Duration;
+use tokio::sync::{mpsc, watch};
+use tokio_stream::wrappers::ReceiverStream;
+use tonic::{Request, Response, Status};
+
+/// How often a watch looks at the fit's status (a dashboard needs no finer steps).
+const WATCH_POLL: Duration = Duration::from_millis(100);
+
+pub struct Fits {
+    pub state: AppState,
+    /// Turns true when the service shuts down: open watch streams end then.
+    pub stop: watch::Receiver<bool>,
+}
+
+fn terminal(s: FitStatus) -> bool {
+    matches!(
+        s,
+        FitStatus::Succeeded | FitStatus::Failed | FitStatus::Cancelled
+    )
+}
+
+#[tonic::async_trait]
+impl FitRegistry for Fits {
+    async fn get_fit_status(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<proto::FitSummary>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        let s = self
+            .state
+            .store
+            .fit_summary(id)
+            .await
+            .map_err(store_status)?;
+        Ok(Response::new(convert::fit_summary(s)))
+    }
+
+    async fn list_fits(
+        &self,
+        request: Request<ListFitsRequest>,
+    ) -> Result<Response<proto::FitPage>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let r = request.into_inner();
+        let state = proto::FitState::try_from(r.state).map_err(|_| {
+            Status::invalid_argument(format!("state {} is not a FitState", r.state))
+        })?;
+        let filter = fit_filter(FitListParams {
+            status: convert::fit_status(state).map(|s| s.as_str().to_string()),
+            part_number: r.part_number,
+            lot: r.lot,
+            since: r.since,
+            limit: r.limit,
+            cursor: r.cursor,
+        })
+        .map_err(status)?;
+        let page = self
+            .state
+            .store
+            .list_fits(&filter)
+            .await
+            .map_err(store_status)?;
+        Ok(Response::new(convert::fit_page(page)))
+    }
+
+    async fn count_fits(
+        &self,
+        request: Request<CountFitsRequest>,
+    ) -> Result<Response<proto::FitCounts>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let c = self
+            .state
+            .store
+            .queue_counts()
+            .await
+            .map_err(store_status)?;
+        Ok(Response::new(convert::fit_counts(c)))
+    }
+
+    type WatchFitStream = ReceiverStream<Result<proto::FitSummary, Status>>;
+
+    async fn watch_fit(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<Self::WatchFitStream>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        // An unknown fit is NOT_FOUND before any stream starts.
+        let first = self
+            .state
+            .store
+            .fit_summary(id)
+            .await
+            .map_err(store_status)?;
+        let (tx, rx) = mpsc::channel(4);
+        let store = self.state.store.clone();
+        let mut stop = self.stop.clone();
+        tokio::spawn(async move {
+            let mut last = first;
+            if tx
+                .send(Ok(convert::fit_summary(last.clone())))
+                .await
+                .is_err()
+                || terminal(last.status)
+            {
+                return;
+            }
+            loop {
+                tokio::select! {
+                    _ = async { stop.wait_for(|s| *s).await.map(|_| ()) } => {
+                        let _ = tx
+                            .send(Err(Status::unavailable("the service is shutting down")))
+                            .await;
+                        return;
+                    }
+                    _ = tx.closed() => return,
+                    _ = tokio::time::sleep(WATCH_POLL) => {}
+                }
+                match store.fit_summary(id).await {
+                    Ok(now) if now == last => {}
+                    Ok(now) => {
+                        let done = terminal(now.status);
+                        if tx
+                            .send(Ok(convert::fit_summary(now.clone())))
+                            .await
+                            .is_err()
+                            || done
+                        {
+                            return;
+                        }
+                        last = now;
+                    }
+                    Err(e) => {
+                        let _ = tx.send(Err(store_status(e))).await;
+                        return;
+                    }
+                }
+            }
+        });
+        Ok(Response::new(ReceiverStream::new(rx)))
+    }
+
+    async fn get_fit_result(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<proto::FitResult>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        let detail = self
+            .state
+            .store
+            .fit_detail(id)
+            .await
+            .map_err(store_status)?;
+        let report = detail
+            .report
+            .clone()
+            .map(serde_json::from_value)
+            .transpose()
+            .map_err(|e| status(Problem::internal(format!("fit {id}: stored report: {e}"))))?;
+        let result = convert::fit_result(detail, report)
+            .map_err(|e| status(Problem::internal(format!("fit {id}: {e}"))))?;
+        Ok(Response::new(result))
+    }
+
+    async fn export_fit(
+        &self,
+        request: Request<ExportFitRequest>,
+    ) -> Result<Response<proto::ExportedText>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let r = request.into_inner();
+        let id = fit_id(r.fit_id)?;
+        let export = match proto::ExportFormat::try_from(r.format) {
+            Ok(proto::ExportFormat::SpiceSubcircuit) => TextExport::Subcircuit,
+            Ok(proto::ExportFormat::Touchstone1port) => TextExport::Touchstone,
+            _ => {
+                return Err(Status::invalid_argument(
+                    "format must be EXPORT_FORMAT_SPICE_SUBCIRCUIT or EXPORT_FORMAT_TOUCHSTONE_1PORT",
+                ));
+            }
+        };
+        let (file_name, text) = export_text(&self.state, id, export).await.map_err(status)?;
+        Ok(Response::new(proto::ExportedText { file_name, text }))
+    }
+
+    async fn upload_sweep(
+        &self,
+        request: Request<proto::UploadSweepRequest>,
+    ) -> Result<Response<proto::UploadAccepted>, Status> {
+        let who = caller(&self.state, &request, Role::Inspector).await?;
+        let r = request.into_inner();
+        let input = UploadInput {
+            file: Some(NamedFile {
+                name: r.file_name,
+                bytes: r.file,
+            }),
+            part_number: r.part_number,
+            lot: r.lot,
+            method: r.method.unwrap_or_default(),
+            z0_ohm: r.z0_ohm,
+            dcr_ohm: r.dcr_ohm,
+            temperature_c: r.temperature_c,
+            operator: r.operator.unwrap_or_default(),
+            options: r.options_json.unwrap_or_default(),
+            // Fixture compensation is not offered over gRPC yet: upload it through HTTP.
+            ..UploadInput::default()
+        };
+        let accepted = accept_upload(&self.state, &who.label, input)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(proto::UploadAccepted {
+            fit_id: accepted.fit_id,
+            sweep_id: accepted.sweep_id,
+            duplicate: accepted.duplicate,
+        }))
+    }
+}

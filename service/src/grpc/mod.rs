@@ -1,0 +1,113 @@
+//! The gRPC interface (`api/henrybook.proto`, package `henrybook.v1`): a thin tonic shell over the
+//! same store, job and helper functions the HTTP handlers call, with the same bearer tokens and
+//! roles. Errors are the HTTP problems mapped to gRPC status codes in one place ([`status`]);
+//! internal causes go to the log, never to the client. gRPC health (`grpc.health.v1`) reports both
+//! services as serving.
+
+mod convert;
+mod fits;
+mod parts;
+
+use crate::app::AppState;
+use crate::http::auth::authorize;
+use crate::http::problem::{Kind, Problem};
+use crate::store::tokens::{Caller, Role};
+use tokio::net::TcpListener;
+use tokio::sync::watch;
+use tonic::{Request, Status};
+
+/// The messages, servers and clients generated from `api/henrybook.proto`.
+pub mod proto {
+    tonic::include_proto!("henrybook.v1");
+}
+
+/// A problem (the error type the HTTP handlers and shared helpers return) as a gRPC status.
+pub fn status(p: Problem) -> Status {
+    let code = match p.kind {
+        Kind::BadSweepFile | Kind::Validation => tonic::Code::InvalidArgument,
+        Kind::Unauthorized => tonic::Code::Unauthenticated,
+        Kind::Forbidden => tonic::Code::PermissionDenied,
+        Kind::NotFound => tonic::Code::NotFound,
+        Kind::Conflict => tonic::Code::FailedPrecondition,
+        Kind::PayloadTooLarge => tonic::Code::ResourceExhausted,
+        Kind::NotImplemented => tonic::Code::Unimplemented,
+        Kind::Unavailable => tonic::Code::Unavailable,
+        Kind::Internal => tonic::Code::Internal,
+    };
+    let mut s = Status::new(code, p.detail);
+    if let Some(line) = p.line
+        && let Ok(v) = line.to_string().parse()
+    {
+        // The 1-based line of a file error, as HTTP's problem `line`.
+        s.metadata_mut().insert("henrybook-line", v);
+    }
+    s
+}
+
+/// The caller of `req`, checked for `needed` exactly as the HTTP extractors check the header.
+async fn caller<T>(state: &AppState, req: &Request<T>, needed: Role) -> Result<Caller, Status> {
+    let value = req
+        .metadata()
+        .get("authorization")
+        .map(|v| v.to_str().unwrap_or("").to_string());
+    authorize(&state.store, value.as_deref(), needed)
+        .await
+        .map_err(status)
+}
+
+/// Serves both services and gRPC health on `listener` until `stop` turns true; a watch stream still
+/// open then ends with UNAVAILABLE so the drain does not wait on it.
+pub async fn serve(
+    listener: TcpListener,
+    state: AppState,
+    stop: watch::Receiver<bool>,
+) -> Result<(), tonic::transport::Error> {
+    use proto::fit_registry_server::FitRegistryServer;
+    use proto::part_registry_server::PartRegistryServer;
+    let max_message = state.settings.max_body_bytes;
+    let timeout = state.settings.request_timeout;
+    let (health, health_service) = tonic_health::server::health_reporter();
+    health
+        .set_serving::<PartRegistryServer<parts::Parts>>()
+        .await;
+    health.set_serving::<FitRegistryServer<fits::Fits>>().await;
+    let parts = PartRegistryServer::new(parts::Parts {
+        state: state.clone(),
+    })
+    .max_decoding_message_size(max_message);
+    let fits = FitRegistryServer::new(fits::Fits {
+        state,
+        stop: stop.clone(),
+    })
+    .max_decoding_message_size(max_message)
+    .max_encoding_message_size(max_message);
+    let mut drain = stop;
+    tonic::transport::Server::builder()
+        .timeout(timeout)
+        .trace_fn(|req| tracing::info_span!("grpc", path = %req.uri().path()))
+        .add_service(health_service)
+        .add_service(parts)
+        .add_service(fits)
+        .serve_with_incoming_shutdown(
+            tokio_stream::wrappers::TcpListenerStream::new(listener),
+            async move {
+                let _ = drain.wait_for(|s| *s).await;
+            },
+        )
+        .await
+}
+
+/// A store error as a status, through the same problem mapping HTTP uses.
+fn store_status(e: crate::store::StoreError) -> Status {
+    status(Problem::from(e))
+}
+
+/// A fit id as given: proto3's default 0 means it was not set.
+fn fit_id(id: i64) -> Result<i64, Status> {
+    if id <= 0 {
+        return Err(Status::invalid_argument(format!(
+            "fit_id must be a fit's id (a positive number), not {id}"
+        )));
+    }
+    Ok(id)
+}

@@ -1,0 +1,68 @@
+//! `PartRegistry`: behavioural part queries and one part's record (reader, as over HTTP).
+
+use super::proto::part_registry_server::PartRegistry;
+use super::proto::{self, GetPartRequest, QueryPartsRequest};
+use super::{caller, convert, status, store_status};
+use crate::app::AppState;
+use crate::http::parts::{PartQueryParams, part_query};
+use crate::store::tokens::Role;
+use tonic::{Request, Response, Status};
+
+pub struct Parts {
+    pub state: AppState,
+}
+
+#[tonic::async_trait]
+impl PartRegistry for Parts {
+    async fn query_parts(
+        &self,
+        request: Request<QueryPartsRequest>,
+    ) -> Result<Response<proto::PartPage>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let r = request.into_inner();
+        let query = part_query(PartQueryParams {
+            q: r.q,
+            approved_only: Some(r.approved_only),
+            srf_min_hz: r.srf_min_hz,
+            srf_max_hz: r.srf_max_hz,
+            series_resonance_min_hz: r.series_resonance_min_hz,
+            series_resonance_max_hz: r.series_resonance_max_hz,
+            l_at_hz: r.l_at_hz,
+            l_min_h: r.l_min_h,
+            l_max_h: r.l_max_h,
+            dcr_max_ohm: r.dcr_max_ohm,
+            z_min_ohm: r.z_min_ohm,
+            z_band_min_hz: r.z_band_min_hz,
+            z_band_max_hz: r.z_band_max_hz,
+            sort: r.sort,
+            limit: r.limit,
+            cursor: r.cursor,
+        })
+        .map_err(status)?;
+        let page = self
+            .state
+            .store
+            .query_parts(&query)
+            .await
+            .map_err(store_status)?;
+        Ok(Response::new(convert::part_page(page)))
+    }
+
+    async fn get_part(
+        &self,
+        request: Request<GetPartRequest>,
+    ) -> Result<Response<proto::Part>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let part_number = request.into_inner().part_number;
+        if part_number.trim().is_empty() {
+            return Err(Status::invalid_argument("part_number is required"));
+        }
+        let part = self
+            .state
+            .store
+            .part(&part_number)
+            .await
+            .map_err(store_status)?;
+        Ok(Response::new(convert::part(part)))
+    }
+}
