@@ -132,6 +132,8 @@ async fn main() -> anyhow::Result<()> {
             "serve",
             "--listen",
             &format!("127.0.0.1:{port}"),
+            "--grpc-listen",
+            "127.0.0.1:0",
             "--database",
         ])
         .arg(&db)
