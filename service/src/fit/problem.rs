@@ -122,8 +122,8 @@ impl<'a> LumpedProblem<'a> {
             }
             cost += dot(&r, &r);
             let mut t = 0;
-            for a in 0..n {
-                jr[a] += dot(&b.d[a], &r);
+            for (a, jr_a) in jr[..n].iter_mut().enumerate() {
+                *jr_a += dot(&b.d[a], &r);
                 for c in 0..=a {
                     tri[t] += dot(&b.d[a], &b.d[c]);
                     t += 1;
