@@ -2,6 +2,8 @@
 //! analyser-like noise, see tests/fit_synth.rs):
 //! - `fit_1601/single_structure`: LM on the structure l0+rdc+cp+rp+k_ac+ls from the curve-based
 //!   starting values — the same problem tests/bench/fit_vs_scipy.py gives scipy `least_squares`;
+//! - `fit_1601/normal_equations`: one fused pass (χ², JᵀJ, Jᵀr) over the 1601 points, the unit of
+//!   work of one LM iteration;
 //! - `fit_1601/full_selection`: the whole engine (starting values, every candidate, BIC, uncertainty,
 //!   derived figures).
 //!
@@ -75,6 +77,11 @@ fn bench(c: &mut Criterion) {
     });
     g.bench_function("jacobian", |b| {
         b.iter(|| problem.jacobian_into(black_box(&theta), &mut j))
+    });
+    let n = structure.len();
+    let (mut jtj, mut jr) = (nalgebra::DMatrix::zeros(n, n), nalgebra::DVector::zeros(n));
+    g.bench_function("normal_equations", |b| {
+        b.iter(|| problem.normal_equations_into(black_box(&theta), &mut jtj, &mut jr))
     });
     g.bench_function("single_structure", |b| {
         b.iter(|| {

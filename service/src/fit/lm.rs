@@ -1,13 +1,19 @@
 //! Levenberg–Marquardt as an argmin [`Solver`] (argmin 0.11 has none).
 //!
-//! Works on any problem that gives residuals r(x) ([`Operator`]) and their Jacobian J(x)
-//! ([`Jacobian`]); the cost is χ² = Σ r². Each iteration solves the damped normal equations
+//! Works on any problem that forms its normal equations, χ² = Σ r², JᵀJ and Jᵀr at x
+//! ([`NormalEquations`]; [`Dense`] adapts a problem that gives residuals ([`Operator`]) and a
+//! Jacobian matrix ([`Jacobian`])), so a problem with many residuals never has to store J. Each
+//! iteration solves the damped normal equations
 //! `(JᵀJ + λ·D) δ = −Jᵀr` by Cholesky (never an explicit inverse), where D is the running maximum of
 //! diag(JᵀJ) (Marquardt's scaling as in MINPACK, so the step does not depend on parameter units), and
 //! updates λ by Nielsen's rule from the gain ratio. A step that would make the cost non-finite is
 //! rejected like any other bad step, so the state never holds a NaN.
 //!
-//! One argmin iteration is one accepted step; rejected trial steps happen inside it.
+//! One argmin iteration is one accepted step; rejected trial steps happen inside it. Every trial
+//! point is evaluated once, normal equations included, so an accepted step costs one pass over the
+//! data and its JᵀJ is the one the next iteration (and the covariance) uses. The state carries x,
+//! the cost, Jᵀr in the gradient slot (half the gradient of χ²) and JᵀJ in the Hessian slot (half
+//! the Gauss–Newton Hessian). Buffers are allocated once per run, not per iteration.
 
 use argmin::core::{
     Error, IterState, Jacobian, KV, Operator, Problem, Solver, State, TerminationReason,
@@ -15,8 +21,115 @@ use argmin::core::{
 };
 use nalgebra::{DMatrix, DVector};
 
-/// The state the solver runs on: parameters, Jacobian, residuals, cost.
-pub type LmState = IterState<DVector<f64>, (), DMatrix<f64>, (), DVector<f64>, f64>;
+/// The state the solver runs on: parameters, Jᵀr (gradient slot), JᵀJ (Hessian slot), cost.
+pub type LmState = IterState<DVector<f64>, DVector<f64>, (), DMatrix<f64>, (), f64>;
+
+/// A least-squares problem that forms its own normal equations.
+pub trait NormalEquations {
+    /// Fills `jtj` (n×n) and `g` = Jᵀr (n) at `x` and returns χ² = Σ r². Non-finite values are
+    /// allowed (the solver rejects such a point).
+    fn normal_equations(
+        &self,
+        x: &[f64],
+        jtj: &mut DMatrix<f64>,
+        g: &mut DVector<f64>,
+    ) -> Result<f64, Error>;
+}
+
+/// Adapts a problem with residuals and a Jacobian matrix to [`NormalEquations`].
+pub struct Dense<O>(pub O);
+
+impl<O> NormalEquations for Dense<O>
+where
+    O: Operator<Param = DVector<f64>, Output = DVector<f64>>
+        + Jacobian<Param = DVector<f64>, Jacobian = DMatrix<f64>>
+        + RecycleJacobian,
+{
+    fn normal_equations(
+        &self,
+        x: &[f64],
+        jtj: &mut DMatrix<f64>,
+        g: &mut DVector<f64>,
+    ) -> Result<f64, Error> {
+        let x = DVector::from_column_slice(x);
+        let r = self.0.apply(&x)?;
+        let j = self.0.jacobian(&x)?;
+        let (a, b) = normal_equations(&j, &r);
+        jtj.copy_from(&a);
+        g.copy_from(&b);
+        self.0.recycle_jacobian(j);
+        Ok(r.norm_squared())
+    }
+}
+
+/// Solves A·x = b for symmetric positive definite A by Cholesky, in place: `a` is overwritten by
+/// its factor and `x` by the solution. Returns false (and leaves garbage) when A is not positive
+/// definite to working precision.
+fn cholesky_solve(a: &mut DMatrix<f64>, x: &mut DVector<f64>) -> bool {
+    let n = a.nrows();
+    for j in 0..n {
+        let mut d = a[(j, j)];
+        for k in 0..j {
+            d -= a[(j, k)] * a[(j, k)];
+        }
+        if !(d > 0.0 && d.is_finite()) {
+            return false;
+        }
+        let d = d.sqrt();
+        a[(j, j)] = d;
+        for i in j + 1..n {
+            let mut v = a[(i, j)];
+            for k in 0..j {
+                v -= a[(i, k)] * a[(j, k)];
+            }
+            a[(i, j)] = v / d;
+        }
+    }
+    for i in 0..n {
+        let mut v = x[i];
+        for k in 0..i {
+            v -= a[(i, k)] * x[k];
+        }
+        x[i] = v / a[(i, i)];
+    }
+    for i in (0..n).rev() {
+        let mut v = x[i];
+        for k in i + 1..n {
+            v -= a[(k, i)] * x[k];
+        }
+        x[i] = v / a[(i, i)];
+    }
+    true
+}
+
+/// Buffers of one run, so iterations do not allocate.
+#[derive(Debug, Clone)]
+struct Work {
+    a: DMatrix<f64>,
+    delta: DVector<f64>,
+    x_new: DVector<f64>,
+    jtj_new: DMatrix<f64>,
+    g_new: DVector<f64>,
+    scale: DVector<f64>,
+}
+
+impl Work {
+    fn new(n: usize) -> Work {
+        Work {
+            a: DMatrix::zeros(n, n),
+            delta: DVector::zeros(n),
+            x_new: DVector::zeros(n),
+            jtj_new: DMatrix::zeros(n, n),
+            g_new: DVector::zeros(n),
+            scale: DVector::zeros(n),
+        }
+    }
+}
+
+fn all_finite(jtj: &DMatrix<f64>, g: &DVector<f64>) -> bool {
+    // A non-finite entry of J makes its column's squared norm (a diagonal entry) non-finite.
+    (0..jtj.nrows()).all(|i| jtj[(i, i)].is_finite()) && g.iter().all(|v| v.is_finite())
+}
 
 /// The message of [`TerminationReason::SolverExit`] when damping grew without any cost decrease.
 pub const NO_PROGRESS: &str = "no further progress";
@@ -36,7 +149,7 @@ pub struct LevenbergMarquardt {
     pub max_trials: usize,
     lambda: f64,
     nu: f64,
-    scale: Option<DVector<f64>>,
+    work: Option<Work>,
     stop: Option<TerminationReason>,
 }
 
@@ -50,7 +163,7 @@ impl Default for LevenbergMarquardt {
             max_trials: 40,
             lambda: 1e-3,
             nu: 2.0,
-            scale: None,
+            work: None,
             stop: None,
         }
     }
@@ -118,12 +231,7 @@ pub trait RecycleJacobian {
     fn recycle_jacobian(&self, _jacobian: DMatrix<f64>) {}
 }
 
-impl<O> Solver<O, LmState> for LevenbergMarquardt
-where
-    O: Operator<Param = DVector<f64>, Output = DVector<f64>>
-        + Jacobian<Param = DVector<f64>, Jacobian = DMatrix<f64>>
-        + RecycleJacobian,
-{
+impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
     fn name(&self) -> &str {
         "Levenberg-Marquardt"
     }
@@ -137,19 +245,22 @@ where
             .get_param()
             .cloned()
             .ok_or_else(|| Error::msg("Levenberg-Marquardt needs a starting point"))?;
-        let r = problem.apply(&x)?;
-        let cost = r.norm_squared();
+        let n = x.len();
+        let mut jtj = DMatrix::zeros(n, n);
+        let mut g = DVector::zeros(n);
+        let cost = problem.problem("normal_equations", |p| {
+            p.normal_equations(x.as_slice(), &mut jtj, &mut g)
+        })?;
         if !cost.is_finite() {
             return Err(non_finite("cost"));
         }
-        let j = problem.jacobian(&x)?;
-        if j.iter().any(|v| !v.is_finite()) {
+        if !all_finite(&jtj, &g) {
             return Err(non_finite("Jacobian"));
         }
-        self.scale = None;
+        self.work = Some(Work::new(n));
         self.stop = None;
         self.nu = 2.0;
-        Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None))
+        Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None))
     }
 
     fn next_iter(
@@ -158,15 +269,14 @@ where
         mut state: LmState,
     ) -> Result<(LmState, Option<KV>), Error> {
         let x = state.take_param().expect("init sets the parameters");
-        let r = state.take_residuals().expect("init sets the residuals");
-        let j = state.take_jacobian().expect("init sets the Jacobian");
+        let g = state.take_gradient().expect("init sets Jᵀr");
+        let jtj = state.take_hessian().expect("init sets JᵀJ");
         let cost = state.get_cost();
         let n = x.len();
+        let w = self.work.get_or_insert_with(|| Work::new(n));
 
-        let (jtj, g) = normal_equations(&j, &r);
-        let scale = self.scale.get_or_insert_with(|| DVector::zeros(n));
         for i in 0..n {
-            scale[i] = scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
+            w.scale[i] = w.scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
         }
         let r_norm = cost.sqrt();
         let g_cos = (0..n)
@@ -174,66 +284,64 @@ where
             .fold(0.0, f64::max);
         if cost == 0.0 || g_cos < self.gtol {
             self.stop = Some(TerminationReason::SolverConverged);
-            return Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None));
+            return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
         }
 
-        let neg_g = -&g;
-        let mut a = jtj.clone();
         for _ in 0..self.max_trials {
-            a.copy_from(&jtj);
+            w.a.copy_from(&jtj);
             for i in 0..n {
-                a[(i, i)] += self.lambda * scale[i];
+                w.a[(i, i)] += self.lambda * w.scale[i];
+                w.delta[i] = -g[i];
             }
-            let Some(chol) = a.clone().cholesky() else {
-                self.lambda *= self.nu;
-                self.nu *= 2.0;
-                continue;
-            };
-            let mut delta = chol.solve(&neg_g);
-            let biggest = delta.amax();
-            if !biggest.is_finite() {
+            let solved = cholesky_solve(&mut w.a, &mut w.delta);
+            let biggest = w.delta.amax();
+            if !solved || !biggest.is_finite() {
                 self.lambda *= self.nu;
                 self.nu *= 2.0;
                 continue;
             }
             if biggest > self.max_step {
-                delta *= self.max_step / biggest;
+                w.delta *= self.max_step / biggest;
             }
             // Predicted decrease of χ² from the linear model: −(2δᵀg + δᵀJᵀJδ).
-            let predicted = -(2.0 * delta.dot(&g) + delta.dot(&(&jtj * &delta)));
-            let x_new = &x + &delta;
-            let r_new = problem.apply(&x_new)?;
-            let cost_new = r_new.norm_squared();
-            let rho = (cost - cost_new) / predicted;
-            if cost_new.is_finite() && cost_new < cost && predicted > 0.0 && rho > 1e-4 {
-                let j_new = problem.jacobian(&x_new)?;
-                // A non-finite entry makes its column's squared norm non-finite.
-                let finite = (0..n).all(|c| {
-                    let col = j_new.column(c);
-                    col.norm_squared().is_finite()
-                });
-                if finite {
-                    problem.problem("recycle_count", |p| {
-                        p.recycle_jacobian(j);
-                        Ok(())
-                    })?;
-                    self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
-                    self.lambda = self.lambda.max(1e-15);
-                    self.nu = 2.0;
-                    if cost - cost_new <= self.ftol * cost
-                        || delta.norm() <= self.xtol * (x.norm() + self.xtol)
-                    {
-                        self.stop = Some(TerminationReason::SolverConverged);
-                    }
-                    return Ok((
-                        state
-                            .param(x_new)
-                            .residuals(r_new)
-                            .jacobian(j_new)
-                            .cost(cost_new),
-                        None,
-                    ));
+            let mut quad = 0.0;
+            for i in 0..n {
+                let mut row = 0.0;
+                for k in 0..n {
+                    row += jtj[(i, k)] * w.delta[k];
                 }
+                quad += w.delta[i] * row;
+            }
+            let predicted = -(2.0 * w.delta.dot(&g) + quad);
+            w.x_new.copy_from(&x);
+            w.x_new += &w.delta;
+            let (x_new, jtj_new, g_new) = (&w.x_new, &mut w.jtj_new, &mut w.g_new);
+            let cost_new = problem.problem("normal_equations", |p| {
+                p.normal_equations(x_new.as_slice(), jtj_new, g_new)
+            })?;
+            let rho = (cost - cost_new) / predicted;
+            if cost_new.is_finite()
+                && cost_new < cost
+                && predicted > 0.0
+                && rho > 1e-4
+                && all_finite(&w.jtj_new, &w.g_new)
+            {
+                self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
+                self.lambda = self.lambda.max(1e-15);
+                self.nu = 2.0;
+                if cost - cost_new <= self.ftol * cost
+                    || w.delta.norm() <= self.xtol * (x.norm() + self.xtol)
+                {
+                    self.stop = Some(TerminationReason::SolverConverged);
+                }
+                // Swap the accepted point in; the old buffers become next iteration's scratch.
+                let mut x = x;
+                let mut g = g;
+                let mut jtj = jtj;
+                std::mem::swap(&mut x, &mut w.x_new);
+                std::mem::swap(&mut g, &mut w.g_new);
+                std::mem::swap(&mut jtj, &mut w.jtj_new);
+                return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
             }
             self.lambda *= self.nu;
             self.nu *= 2.0;
@@ -247,7 +355,7 @@ where
         } else {
             TerminationReason::SolverExit(NO_PROGRESS.into())
         });
-        Ok((state.param(x).residuals(r).jacobian(j).cost(cost), None))
+        Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None))
     }
 
     fn terminate(&mut self, _state: &LmState) -> TerminationStatus {
@@ -300,7 +408,7 @@ mod tests {
     fn recovers_an_exponential_decay_from_a_poor_start() {
         let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
         let y = t.iter().map(|t| 3.0 * (-1.7 * t).exp()).collect();
-        let res = Executor::new(Decay { t, y }, LevenbergMarquardt::default())
+        let res = Executor::new(Dense(Decay { t, y }), LevenbergMarquardt::default())
             .configure(|s| s.param(DVector::from_vec(vec![1.0, 0.1])).max_iters(200))
             .run()
             .unwrap();
@@ -320,7 +428,7 @@ mod tests {
     fn a_start_where_the_cost_is_not_finite_is_an_error_not_a_nan() {
         let t = vec![0.0, 1.0, 2.0];
         let y = vec![1.0, 0.5, 0.25];
-        let res = Executor::new(Decay { t, y }, LevenbergMarquardt::default())
+        let res = Executor::new(Dense(Decay { t, y }), LevenbergMarquardt::default())
             .configure(|s| s.param(DVector::from_vec(vec![1.0, -1e6])).max_iters(10))
             .run();
         assert!(res.is_err());

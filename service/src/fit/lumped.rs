@@ -57,7 +57,8 @@ pub struct StructureFit {
     pub cost: f64,
     pub iterations: u64,
     pub termination: Termination,
-    pub jacobian: DMatrix<f64>,
+    /// JᵀJ of the weighted residuals at `theta` (the covariance comes from it).
+    pub jtj: DMatrix<f64>,
 }
 
 impl StructureFit {
@@ -184,7 +185,7 @@ struct LmRun {
     cost: f64,
     iterations: u64,
     termination: Termination,
-    jacobian: DMatrix<f64>,
+    jtj: DMatrix<f64>,
 }
 
 fn run_lm(
@@ -214,13 +215,13 @@ fn run_lm(
     let iterations = state.get_iter();
     let cost = state.get_cost();
     // The solver only accepts steps that lower the cost, so the current point is the best one and
-    // its Jacobian is in the state.
-    let (Some(theta), Some(jacobian)) = (state.take_param(), state.take_jacobian()) else {
+    // its JᵀJ is in the state.
+    let (Some(theta), Some(jtj)) = (state.take_param(), state.take_hessian()) else {
         return Err(FitError::NonFinite(
             "the solver returned no parameters".into(),
         ));
     };
-    if !cost.is_finite() || !jacobian.norm_squared().is_finite() {
+    if !cost.is_finite() || !jtj.norm_squared().is_finite() {
         return Err(FitError::NonFinite(structure.label()));
     }
     Ok(LmRun {
@@ -228,7 +229,7 @@ fn run_lm(
         cost,
         iterations,
         termination,
-        jacobian,
+        jtj,
     })
 }
 
@@ -295,9 +296,8 @@ pub fn fit_structure(
     } else {
         LevenbergMarquardt::default()
     };
-    // Near the answer nearly every step is accepted: evaluate residuals and Jacobian together.
     let fine = run_lm(
-        LumpedProblem::new(data, structure).with_combined(iterations > 0),
+        LumpedProblem::new(data, structure),
         solver,
         theta,
         max_iterations.saturating_sub(iterations).max(1),
@@ -310,7 +310,7 @@ pub fn fit_structure(
         cost: fine.cost,
         iterations: iterations + fine.iterations,
         termination: fine.termination,
-        jacobian: fine.jacobian,
+        jtj: fine.jtj,
     })
 }
 
@@ -342,7 +342,7 @@ pub struct Spread {
 pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     let n = fit.structure.len();
     let params = fit.structure.params();
-    let jtj = super::lm::normal_equations(&fit.jacobian, &DVector::zeros(fit.jacobian.nrows())).0;
+    let jtj = &fit.jtj;
     let d: Vec<f64> = (0..n)
         .map(|i| jtj[(i, i)].sqrt().max(f64::MIN_POSITIVE))
         .collect();

@@ -5,8 +5,8 @@
 //! `(rdc − reading)/σ_reading`. So χ² = Σ r² is the cost a scipy `least_squares` with the same residual
 //! vector would report as 2·cost.
 
-use super::lm::RecycleJacobian;
-use crate::model::lumped::{self, MAX_PARAMETERS, Structure, Values};
+use super::lm::{NormalEquations, RecycleJacobian};
+use crate::model::lumped::{self, BLOCK, Block, MAX_PARAMETERS, Structure, Values};
 use argmin::core::{Error, Jacobian, Operator};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
@@ -34,11 +34,20 @@ pub struct LumpedProblem<'a> {
     pub structure: &'a Structure,
     /// A Jacobian the solver handed back, refilled by the next [`Jacobian::jacobian`] call.
     pub spare: RefCell<Option<DMatrix<f64>>>,
-    /// When set, every residual evaluation also fills the Jacobian in the same pass over the points
-    /// and keeps it for a following `jacobian` call at the same θ: cheaper near the optimum, where
-    /// nearly every trial step is accepted; wasted work on rejected steps.
-    pub combined: bool,
-    cached: RefCell<Option<(Vec<f64>, DMatrix<f64>)>>,
+    /// Scratch for [`LumpedProblem::normal_equations_into`], allocated once per problem.
+    block: RefCell<Box<Block>>,
+}
+
+/// x·y over one block's columns, eight accumulators so it vectorises.
+#[inline(always)]
+fn dot(x: &[f64; 2 * BLOCK], y: &[f64; 2 * BLOCK]) -> f64 {
+    let mut acc = [0.0; 8];
+    for (a, b) in x.chunks_exact(8).zip(y.chunks_exact(8)) {
+        for i in 0..8 {
+            acc[i] += a[i] * b[i];
+        }
+    }
+    (acc[0] + acc[4]) + (acc[1] + acc[5]) + (acc[2] + acc[6]) + (acc[3] + acc[7])
 }
 
 impl<'a> LumpedProblem<'a> {
@@ -47,59 +56,109 @@ impl<'a> LumpedProblem<'a> {
             data,
             structure,
             spare: RefCell::new(None),
-            combined: false,
-            cached: RefCell::new(None),
+            block: RefCell::new(Block::new_boxed()),
         }
-    }
-
-    pub fn with_combined(mut self, combined: bool) -> Self {
-        self.combined = combined;
-        self
     }
 
     fn buffer(&self) -> DMatrix<f64> {
         let shape = (self.data.residual_count(), self.structure.len());
         // The fills write every entry, so a recycled matrix needs no zeroing.
-        let recycled = self
-            .spare
-            .borrow_mut()
-            .take()
-            .or_else(|| self.cached.borrow_mut().take().map(|c| c.1));
-        match recycled {
+        match self.spare.borrow_mut().take() {
             Some(j) if j.shape() == shape => j,
             _ => DMatrix::zeros(shape.0, shape.1),
         }
     }
 
-    /// Residuals and Jacobian in one pass over the points.
-    pub fn residuals_and_jacobian_into(&self, theta: &[f64], r: &mut [f64], j: &mut DMatrix<f64>) {
+    /// χ² = Σ r², JᵀJ and Jᵀr at θ in one pass over the points, without storing J: the points go
+    /// through [`lumped::eval_block`] [`BLOCK`] at a time, and each block's weighted columns are
+    /// multiplied out while they are in L1 cache. `jtj` is n×n, `g` has n entries (n = θ's length).
+    pub fn normal_equations_into(
+        &self,
+        theta: &[f64],
+        jtj: &mut DMatrix<f64>,
+        g: &mut DVector<f64>,
+    ) -> f64 {
         let d = self.data;
         let n = self.structure.len();
+        assert!(jtj.shape() == (n, n) && g.len() == n, "JᵀJ must be {n}×{n}");
         let v = Values::new(self.structure, theta);
-        let mut dz = [Complex64::new(0.0, 0.0); MAX_PARAMETERS];
-        for (k, ((&f, &sf), (&zm, &w))) in d
-            .frequency_hz
-            .iter()
-            .zip(&d.sqrt_f)
-            .zip(d.z.iter().zip(&d.inv_sigma))
-            .enumerate()
-        {
-            let z = lumped::eval(self.structure, &v, f, sf, Some(&mut dz[..n]));
-            r[2 * k] = (z.re - zm.re) * w;
-            r[2 * k + 1] = (z.im - zm.im) * w;
-            for (p, dzp) in dz[..n].iter().enumerate() {
-                j[(2 * k, p)] = dzp.re * w;
-                j[(2 * k + 1, p)] = dzp.im * w;
+        let mut block = self.block.borrow_mut();
+        let b = &mut **block;
+        // Lower triangle of JᵀJ, packed row by row.
+        let mut tri = [0.0; MAX_PARAMETERS * (MAX_PARAMETERS + 1) / 2];
+        let mut jr = [0.0; MAX_PARAMETERS];
+        let mut cost = 0.0;
+        let mut r = [0.0; 2 * BLOCK];
+        let points = d.frequency_hz.len();
+        let mut start = 0;
+        while start < points {
+            let end = (start + BLOCK).min(points);
+            let m = end - start;
+            lumped::eval_block(
+                self.structure,
+                &v,
+                &d.frequency_hz[start..end],
+                &d.sqrt_f[start..end],
+                b,
+            );
+            let w = &d.inv_sigma[start..end];
+            let zm = &d.z[start..end];
+            for k in 0..m {
+                r[k] = (b.z[k] - zm[k].re) * w[k];
+                r[BLOCK + k] = (b.z[BLOCK + k] - zm[k].im) * w[k];
             }
+            for col in b.d[..n].iter_mut() {
+                for k in 0..m {
+                    col[k] *= w[k];
+                    col[BLOCK + k] *= w[k];
+                }
+            }
+            if m < BLOCK {
+                // The last, partial block: the unused entries must not count.
+                for row in std::iter::once(&mut r).chain(b.d[..n].iter_mut()) {
+                    row[m..BLOCK].fill(0.0);
+                    row[BLOCK + m..].fill(0.0);
+                }
+            }
+            cost += dot(&r, &r);
+            let mut t = 0;
+            for (a, jr_a) in jr[..n].iter_mut().enumerate() {
+                *jr_a += dot(&b.d[a], &r);
+                for c in 0..=a {
+                    tri[t] += dot(&b.d[a], &b.d[c]);
+                    t += 1;
+                }
+            }
+            start = end;
         }
         if let Some((value, sigma)) = d.dcr_prior {
-            let row = 2 * d.frequency_hz.len();
-            r[row] = (theta[1].exp() - value) / sigma;
-            for p in 0..n {
-                j[(row, p)] = 0.0;
-            }
-            j[(row, 1)] = theta[1].exp() / sigma;
+            let rdc = theta[1].exp();
+            let (res, der) = ((rdc - value) / sigma, rdc / sigma);
+            cost += res * res;
+            jr[1] += der * res;
+            tri[2] += der * der;
         }
+        let mut t = 0;
+        for a in 0..n {
+            g[a] = jr[a];
+            for c in 0..=a {
+                jtj[(a, c)] = tri[t];
+                jtj[(c, a)] = tri[t];
+                t += 1;
+            }
+        }
+        cost
+    }
+}
+
+impl NormalEquations for LumpedProblem<'_> {
+    fn normal_equations(
+        &self,
+        x: &[f64],
+        jtj: &mut DMatrix<f64>,
+        g: &mut DVector<f64>,
+    ) -> Result<f64, Error> {
+        Ok(self.normal_equations_into(x, jtj, g))
     }
 }
 
@@ -164,13 +223,7 @@ impl Operator for LumpedProblem<'_> {
     type Output = DVector<f64>;
     fn apply(&self, theta: &DVector<f64>) -> Result<DVector<f64>, Error> {
         let mut r = DVector::zeros(self.data.residual_count());
-        if self.combined {
-            let mut j = self.buffer();
-            self.residuals_and_jacobian_into(theta.as_slice(), r.as_mut_slice(), &mut j);
-            *self.cached.borrow_mut() = Some((theta.as_slice().to_vec(), j));
-        } else {
-            self.residuals_into(theta.as_slice(), r.as_mut_slice());
-        }
+        self.residuals_into(theta.as_slice(), r.as_mut_slice());
         Ok(r)
     }
 }
@@ -179,19 +232,6 @@ impl Jacobian for LumpedProblem<'_> {
     type Param = DVector<f64>;
     type Jacobian = DMatrix<f64>;
     fn jacobian(&self, theta: &DVector<f64>) -> Result<DMatrix<f64>, Error> {
-        let hit = {
-            let mut cached = self.cached.borrow_mut();
-            match cached.take() {
-                Some((t, j)) if t.as_slice() == theta.as_slice() => Some(j),
-                other => {
-                    *cached = other;
-                    None
-                }
-            }
-        };
-        if let Some(j) = hit {
-            return Ok(j);
-        }
         let mut j = self.buffer();
         self.jacobian_into(theta.as_slice(), &mut j);
         Ok(j)
@@ -201,11 +241,11 @@ impl Jacobian for LumpedProblem<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::fit::lm::normal_equations;
     use crate::model::{LumpedModel, Section, SectionKind};
 
-    #[test]
-    fn the_combined_pass_equals_the_separate_ones_and_the_cache_is_keyed_by_theta() {
-        let m = LumpedModel {
+    fn choke_with_sections() -> LumpedModel {
+        LumpedModel {
             l0_h: 22e-6,
             rdc_ohm: 0.08,
             k_ac_ohm_per_sqrt_hz: 2e-4,
@@ -218,35 +258,69 @@ mod tests {
                 l_h: 300e-9,
                 c_f: 1.2e-12,
             }],
-        };
-        let f: Vec<f64> = (0..50).map(|i| 1e4 * 1.25f64.powi(i)).collect();
+        }
+    }
+
+    #[test]
+    fn the_fused_normal_equations_equal_those_of_the_stored_jacobian() {
+        // 150 points: two full blocks and a partial one.
+        let f: Vec<f64> = (0..150).map(|i| 1e4 * 1.08f64.powi(i)).collect();
         let data = FitData {
             sqrt_f: f.iter().map(|x| x.sqrt()).collect(),
-            z: f.iter().map(|&x| Complex64::new(1.0, x * 1e-6)).collect(),
-            inv_sigma: vec![3.0; f.len()],
+            z: f.iter()
+                .map(|&x| Complex64::new(1.0 + 1e-7 * x, x * 1e-6))
+                .collect(),
+            inv_sigma: f.iter().map(|x| 3.0 + x.ln()).collect(),
             frequency_hz: f,
             dcr_prior: Some((0.08, 0.001)),
         };
-        let s = Structure::of(&m);
-        let theta = DVector::from_vec(s.pack(&m));
-        let plain = LumpedProblem::new(&data, &s);
-        let combined = LumpedProblem::new(&data, &s).with_combined(true);
-        let (r1, j1) = (
-            plain.apply(&theta).unwrap(),
-            plain.jacobian(&theta).unwrap(),
-        );
-        let (r2, j2) = (
-            combined.apply(&theta).unwrap(),
-            combined.jacobian(&theta).unwrap(),
-        );
-        assert_eq!(r1, r2);
-        assert_eq!(j1, j2);
-        // A Jacobian at another θ is computed afresh, not taken from the cache.
-        let other = theta.add_scalar(0.01);
-        combined.apply(&theta).unwrap();
-        assert_eq!(
-            combined.jacobian(&other).unwrap(),
-            plain.jacobian(&other).unwrap()
-        );
+        let full = choke_with_sections();
+        let mut no_sections = full.clone();
+        no_sections.sections.clear();
+        let mut bare = no_sections.clone();
+        bare.rp_ohm = None;
+        bare.ls_h = 0.0;
+        let mut only_ls = bare.clone();
+        only_ls.ls_h = 2e-9;
+        for (m, prior) in [
+            (&full, true),
+            (&no_sections, true),
+            (&no_sections, false),
+            (&bare, false),
+            (&only_ls, true),
+        ] {
+            let data = FitData {
+                dcr_prior: if prior { data.dcr_prior } else { None },
+                ..data.clone()
+            };
+            let s = Structure::of(m);
+            let n = s.len();
+            let theta = s.pack(m);
+            let p = LumpedProblem::new(&data, &s);
+            let tv = DVector::from_vec(theta.clone());
+            let (r, j) = (p.apply(&tv).unwrap(), p.jacobian(&tv).unwrap());
+            let (jtj_ref, g_ref) = normal_equations(&j, &r);
+            let mut jtj = DMatrix::zeros(n, n);
+            let mut g = DVector::zeros(n);
+            let cost = p.normal_equations_into(&theta, &mut jtj, &mut g);
+            let label = s.label();
+            assert!((cost / r.norm_squared() - 1.0).abs() < 1e-12, "{label}");
+            for a in 0..n {
+                let ga = (g[a] - g_ref[a]).abs();
+                assert!(
+                    ga <= 1e-10 * (jtj_ref[(a, a)] * cost).sqrt(),
+                    "{label} g[{a}]"
+                );
+                for c in 0..n {
+                    let scale = (jtj_ref[(a, a)] * jtj_ref[(c, c)]).sqrt();
+                    assert!(
+                        (jtj[(a, c)] - jtj_ref[(a, c)]).abs() <= 1e-10 * scale,
+                        "{label} JᵀJ[{a},{c}]: {} vs {}",
+                        jtj[(a, c)],
+                        jtj_ref[(a, c)]
+                    );
+                }
+            }
+        }
     }
 }

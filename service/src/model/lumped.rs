@@ -335,6 +335,127 @@ pub fn eval(
     z
 }
 
+/// Points one [`Block`] holds.
+pub const BLOCK: usize = 64;
+
+/// Z and ∂Z/∂θ over up to [`BLOCK`] points as plain f64 arrays (structure of arrays), so the loops
+/// over points have no complex types, branches or calls and the compiler vectorises them. Each array
+/// holds the real parts in `[..BLOCK]` and the imaginary parts in `[BLOCK..]`.
+#[derive(Clone)]
+pub struct Block {
+    pub z: [f64; 2 * BLOCK],
+    /// `d[p]` = ∂Z/∂θ_p, p in θ order.
+    pub d: [[f64; 2 * BLOCK]; MAX_PARAMETERS],
+}
+
+impl Block {
+    /// A zeroed block on the heap (it is 31 kB).
+    pub fn new_boxed() -> Box<Block> {
+        Box::new(Block {
+            z: [0.0; 2 * BLOCK],
+            d: [[0.0; 2 * BLOCK]; MAX_PARAMETERS],
+        })
+    }
+}
+
+/// Fills `out` for the points `frequency_hz` with `sqrt_f` = √f, at most [`BLOCK`] of them;
+/// entries past the last point are left as they were. Same values as [`eval`] to rounding.
+///
+/// Without sections the whole model is one rational function, evaluated with a single real
+/// reciprocal per point: with R = rdc + k_ac·√f, a = jωl0 and D = a + rp (D = 1 without rp),
+/// Z_core = R + a·rp/(a + rp) = N/D with N = R·D + a·rp (N = R + a without rp); the shunt Cp makes
+/// Z = N/M + jωls with M = D + jωcp·N. Then, with q = 1/M:
+/// ∂Z/∂ln l0 = a·rp²·q², ∂Z/∂ln rp = a²·rp·q², ∂Z/∂ln rdc = rdc·(Dq)², ∂Z/∂ln k_ac = k_ac√f·(Dq)²,
+/// ∂Z/∂ln cp = −jωcp·(Nq)², ∂Z/∂ln ls = jωls (with rp → 1 in the l0 term when rp is absent).
+/// Structures with sections take the per-point [`eval`].
+pub fn eval_block(
+    structure: &Structure,
+    v: &Values,
+    frequency_hz: &[f64],
+    sqrt_f: &[f64],
+    out: &mut Block,
+) {
+    let m = frequency_hz.len();
+    assert!(
+        m <= BLOCK && sqrt_f.len() == m,
+        "a block holds at most {BLOCK} points"
+    );
+    if !structure.sections.is_empty() {
+        let mut dz = [Complex64::new(0.0, 0.0); MAX_PARAMETERS];
+        let n = v.n;
+        for k in 0..m {
+            let z = eval(structure, v, frequency_hz[k], sqrt_f[k], Some(&mut dz[..n]));
+            out.z[k] = z.re;
+            out.z[BLOCK + k] = z.im;
+            for (col, d) in out.d.iter_mut().zip(&dz[..n]) {
+                col[k] = d.re;
+                col[BLOCK + k] = d.im;
+            }
+        }
+        return;
+    }
+    let p = &v.p;
+    let (l0, rdc, cp) = (p[0], p[1], p[2]);
+    // α = rp, β = 1 with rp; α = 1, β = 0 without: N = (R·α, a(R·β + α)), D = (α, β·a).
+    let (alpha, beta) = v.rp.map_or((1.0, 0.0), |i| (p[i], 1.0));
+    let kac = v.k_ac.map_or(0.0, |i| p[i]);
+    let ls = v.ls.map_or(0.0, |i| p[i]);
+    let alpha2 = alpha * alpha;
+    // Columns in θ order; the optional ones go to scratch rows when absent (θ has at most 6 here).
+    let z = &mut out.z;
+    let (base, rest) = out.d.split_at_mut(3);
+    let [d_l0, d_rdc, d_cp] = base else {
+        unreachable!()
+    };
+    let (opt, spare) = rest.split_at_mut(3);
+    let mut opt = opt.iter_mut();
+    let mut spare = spare.iter_mut();
+    let mut take = |present: bool| {
+        if present {
+            opt.next().expect("three optional columns")
+        } else {
+            spare.next().expect("spare columns")
+        }
+    };
+    let d_rp = take(v.rp.is_some());
+    let d_k = take(v.k_ac.is_some());
+    let d_ls = take(v.ls.is_some());
+    for k in 0..m {
+        let w = 2.0 * PI * frequency_hz[k];
+        let ai = w * l0;
+        let kt = kac * sqrt_f[k];
+        let r = rdc + kt;
+        let (n_re, n_im) = (r * alpha, ai * (r * beta + alpha));
+        let (d_re, d_im) = (alpha, beta * ai);
+        let wc = w * cp;
+        let (m_re, m_im) = (d_re - wc * n_im, d_im + wc * n_re);
+        let s = 1.0 / (m_re * m_re + m_im * m_im);
+        let (q_re, q_im) = (m_re * s, -m_im * s);
+        let (zn_re, zn_im) = (n_re * q_re - n_im * q_im, n_re * q_im + n_im * q_re);
+        let (dq_re, dq_im) = (d_re * q_re - d_im * q_im, d_re * q_im + d_im * q_re);
+        let (q2_re, q2_im) = (q_re * q_re - q_im * q_im, 2.0 * q_re * q_im);
+        let (dq2_re, dq2_im) = (dq_re * dq_re - dq_im * dq_im, 2.0 * dq_re * dq_im);
+        let (zn2_re, zn2_im) = (zn_re * zn_re - zn_im * zn_im, 2.0 * zn_re * zn_im);
+        let wls = w * ls;
+        z[k] = zn_re;
+        z[BLOCK + k] = zn_im + wls;
+        let c0 = ai * alpha2;
+        d_l0[k] = -c0 * q2_im;
+        d_l0[BLOCK + k] = c0 * q2_re;
+        d_rdc[k] = rdc * dq2_re;
+        d_rdc[BLOCK + k] = rdc * dq2_im;
+        d_cp[k] = wc * zn2_im;
+        d_cp[BLOCK + k] = -wc * zn2_re;
+        let c_rp = -ai * ai * alpha;
+        d_rp[k] = c_rp * q2_re;
+        d_rp[BLOCK + k] = c_rp * q2_im;
+        d_k[k] = kt * dq2_re;
+        d_k[BLOCK + k] = kt * dq2_im;
+        d_ls[k] = 0.0;
+        d_ls[BLOCK + k] = wls;
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
