@@ -20,7 +20,7 @@ use crate::fit::{Candidate, FitControl, FitError, FitOptions, FitReport, Quality
 use crate::model::rational::{ComplexPole, RealPole};
 use crate::model::{FittedModel, RationalModel};
 use crate::sweep::Sweep;
-use linalg::{PivotedQr, rational_zeros, tall_qr};
+use linalg::{PivotedQr, RowCompressor, padded, rational_zeros};
 use num_complex::Complex64;
 use std::f64::consts::PI;
 use std::sync::atomic::Ordering;
@@ -117,14 +117,14 @@ pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
     Poles { real, pairs }
 }
 
-/// The relaxed relocation system, column-major `(2K + 1) × (2N + 3)`, columns [c…, d, e, c̃…, d̃], and its
-/// right-hand side.
-fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
+/// Streams the relaxed relocation system into `qr`, two rows (Re, Im) per point, columns
+/// [c…, d, e, c̃…, d̃]. With `fixed_d = None` the right-hand sides are the relaxation target b (zero but in
+/// the last row, `Re Σₖ σ(sₖ) = K`, which is appended) and the weighted data (the residue system of the
+/// first N + 2 columns); with `Some(d̃)` the d̃ column moves to the only right-hand side and there is no
+/// relaxation row (Gustavsen 2006, §III).
+fn relocation_rows(data: &FitData, poles: &Poles, fixed_d: Option<f64>, qr: &mut RowCompressor) {
     let k = data.len();
     let n = poles.order();
-    let cols = 2 * n + 3;
-    let rows = 2 * k + 1;
-    let mut a = vec![0.0; rows * cols];
     let mut phi = Vec::with_capacity(n);
     let mut phi_sum = vec![0.0; n];
     let scale = {
@@ -141,28 +141,39 @@ fn relocation_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64>) {
         let w = data.w[i];
         let wz = data.z[i] * w;
         basis_at(s, poles, &mut phi);
-        for (j, ph) in phi.iter().enumerate() {
-            let v = ph * w;
-            a[j * rows + i] = v.re;
-            a[j * rows + k + i] = v.im;
-            let u = -wz * ph;
-            a[(n + 2 + j) * rows + i] = u.re;
-            a[(n + 2 + j) * rows + k + i] = u.im;
-            phi_sum[j] += ph.re;
+        let parts: [fn(Complex64) -> f64; 2] = [|v| v.re, |v| v.im];
+        for (part, take) in parts.iter().enumerate() {
+            let row = qr.row();
+            for (j, ph) in phi.iter().enumerate() {
+                row[j] = take(ph * w);
+                row[n + 2 + j] = take(-wz * ph);
+            }
+            if part == 0 {
+                row[n] = w;
+            } else {
+                row[n + 1] = w * s.im;
+            }
+            match fixed_d {
+                None => {
+                    row[2 * n + 2] = -take(wz);
+                    row[2 * n + 4] = take(wz);
+                }
+                Some(d) => row[2 * n + 2] = d * take(wz),
+            }
         }
-        a[n * rows + i] = w;
-        a[(n + 1) * rows + k + i] = w * s.im;
-        a[(2 * n + 2) * rows + i] = -wz.re;
-        a[(2 * n + 2) * rows + k + i] = -wz.im;
+        for (acc, ph) in phi_sum.iter_mut().zip(&phi) {
+            *acc += ph.re;
+        }
     }
-    for j in 0..n {
-        a[(n + 2 + j) * rows + 2 * k] = scale * phi_sum[j];
+    if fixed_d.is_none() {
+        let row = qr.row();
+        for j in 0..n {
+            row[n + 2 + j] = scale * phi_sum[j];
+        }
+        row[2 * n + 2] = scale * k as f64;
+        row[2 * n + 3] = scale * k as f64;
     }
-    a[(2 * n + 2) * rows + 2 * k] = scale * k as f64;
-    let mut b = vec![0.0; rows];
-    b[2 * k] = scale * k as f64;
-
-    (a, b)
+    qr.finish();
 }
 
 /// One pole relocation: solve the relaxed linearised problem
@@ -176,42 +187,30 @@ pub(crate) fn relocate_and_identify(
     data: &FitData,
     poles: &Poles,
 ) -> (Option<Poles>, Coefficients) {
-    let k = data.len();
     let n = poles.order();
     let cols = 2 * n + 3;
-    let rows = 2 * k + 1;
-    let (a, b) = relocation_system(data, poles);
-    let mut wz = vec![0.0; rows];
-    for i in 0..k {
-        wz[i] = data.w[i] * data.z[i].re;
-        wz[k + i] = data.w[i] * data.z[i].im;
-    }
-    let (r, qtb) = linalg::compress(&a, rows, cols, &[&b, &wz]);
-    let mut r11 = vec![0.0; (n + 2) * (n + 2)];
-    for j in 0..n + 2 {
-        r11[j * (n + 2)..(j + 1) * (n + 2)].copy_from_slice(&r[j * cols..j * cols + n + 2]);
-    }
-    let x = PivotedQr::new(r11, n + 2, n + 2, RANK_TOL).solve(&qtb[1][..n + 2]);
+    let mut qr = RowCompressor::new(cols, 2);
+    relocation_rows(data, poles, None, &mut qr);
+    let m = n + 2;
+    let x = PivotedQr::from_rows(qr.triangle(m), m, m, padded(m), RANK_TOL).solve(&qr.qtb(1)[..m]);
     let coef = Coefficients {
         c: x[..n].to_vec(),
         d: x[n],
         e: x[n + 1],
     };
-    (relocate_from_triangle(data, poles, r, &qtb[0]), coef)
+    let full = PivotedQr::from_rows(qr.triangle(cols), cols, cols, padded(cols), RANK_TOL);
+    (relocate_from_triangle(data, poles, &full, &qr.qtb(0)), coef)
 }
 
-/// The relocation once its system is compressed to the triangle `r` and `qtb` = (Qᵀb)[..2N + 3].
+/// The relocation once its system is factored: `qr` of the triangle and `qtb` = (Qᵀb)[..2N + 3].
 fn relocate_from_triangle(
     data: &FitData,
     poles: &Poles,
-    r: Vec<f64>,
+    qr: &PivotedQr,
     qtb: &[f64],
 ) -> Option<Poles> {
-    let k = data.len();
     let n = poles.order();
-    let cols = 2 * n + 3;
-    let rows = 2 * k + 1;
-    let x = PivotedQr::new(r, cols, cols, RANK_TOL).solve(qtb);
+    let x = qr.solve(qtb);
     let mut c_sigma = x[n + 2..2 * n + 2].to_vec();
     let mut d_sigma = x[2 * n + 2];
 
@@ -223,19 +222,11 @@ fn relocate_from_triangle(
         } else {
             d_sigma.signum() * d_sigma.abs().clamp(1e-8, 1e8)
         };
-        let (keep, _) = relocation_system(data, poles);
-        let rows2 = 2 * k;
         let cols2 = 2 * n + 2;
-        let mut a2 = vec![0.0; rows2 * cols2];
-        let mut b2 = vec![0.0; rows2];
-        for j in 0..cols2 {
-            a2[j * rows2..(j + 1) * rows2].copy_from_slice(&keep[j * rows..j * rows + rows2]);
-        }
-        for i in 0..rows2 {
-            b2[i] = -fixed * keep[(2 * n + 2) * rows + i];
-        }
-        let (qr2, qtb2) = tall_qr(&a2, rows2, cols2, &b2, RANK_TOL);
-        let x2 = qr2.solve(&qtb2);
+        let mut qr2 = RowCompressor::new(cols2, 1);
+        relocation_rows(data, poles, Some(fixed), &mut qr2);
+        let x2 = PivotedQr::from_rows(qr2.triangle(cols2), cols2, cols2, padded(cols2), RANK_TOL)
+            .solve(&qr2.qtb(0));
         c_sigma = x2[n + 2..2 * n + 2].to_vec();
         d_sigma = fixed;
     }
@@ -321,12 +312,31 @@ pub(crate) fn linear_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64
     (a, b)
 }
 
-/// Residues, d and e for fixed poles by weighted linear least squares.
+/// Residues, d and e for fixed poles by weighted linear least squares (the rows of [`linear_system`],
+/// streamed).
 pub(crate) fn identify(data: &FitData, poles: &Poles) -> Coefficients {
     let n = poles.order();
-    let (a, b) = linear_system(data, poles);
-    let (qr, qtb) = tall_qr(&a, 2 * data.len(), n + 2, &b, RANK_TOL);
-    let x = qr.solve(&qtb);
+    let m = n + 2;
+    let mut qr = RowCompressor::new(m, 1);
+    let mut phi = Vec::with_capacity(n);
+    for i in 0..data.len() {
+        let w = data.w[i];
+        basis_at(data.s[i], poles, &mut phi);
+        let row = qr.row();
+        for (j, ph) in phi.iter().enumerate() {
+            row[j] = ph.re * w;
+        }
+        row[n] = w;
+        row[m] = w * data.z[i].re;
+        let row = qr.row();
+        for (j, ph) in phi.iter().enumerate() {
+            row[j] = ph.im * w;
+        }
+        row[n + 1] = w * data.s[i].im;
+        row[m] = w * data.z[i].im;
+    }
+    qr.finish();
+    let x = PivotedQr::from_rows(qr.triangle(m), m, m, padded(m), RANK_TOL).solve(&qr.qtb(0));
     Coefficients {
         c: x[..n].to_vec(),
         d: x[n],
@@ -395,18 +405,16 @@ pub(crate) fn refine(
         .map(|p| (-p.re / p.norm()).min(1e-3))
         .collect();
     for _ in 0..max_steps {
-        // Jacobian, column-major.
-        let mut jac = vec![0.0; rows * params];
+        // The Jacobian streamed into its triangle with the residual as right-hand side (Q₁ᵀr), then
+        // scaled by its column norms (those of the triangle: scaling columns commutes with QR); the pivoted
+        // QR of that triangle then acts as one of the scaled Jacobian: Qᵀr = Q₂ᵀ·(Q₁ᵀr).
+        let mut tall = RowCompressor::new(params, 1);
+        let mut vals = vec![Complex64::new(0.0, 0.0); params];
         for i in 0..k {
             let s = data.s[i];
-            let w = data.w[i];
-            let mut put = |col: usize, v: Complex64| {
-                jac[col * rows + i] = v.re * w;
-                jac[col * rows + k + i] = v.im * w;
-            };
             for (q, &a) in poles.real.iter().enumerate() {
                 let t = (s - a).inv();
-                put(q, coef.c[q] * t * t);
+                vals[q] = coef.c[q] * t * t;
             }
             for (q, &p) in poles.pairs.iter().enumerate() {
                 let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
@@ -414,33 +422,44 @@ pub(crate) fn refine(
                 let t2 = (s - p.conj()).inv();
                 let a1 = res * t1 * t1;
                 let a2 = res.conj() * t2 * t2;
-                put(nr + 2 * q, a1 + a2);
-                put(nr + 2 * q + 1, j_unit * (a1 - a2));
+                vals[nr + 2 * q] = a1 + a2;
+                vals[nr + 2 * q + 1] = j_unit * (a1 - a2);
             }
             basis_at(s, &poles, &mut phi);
-            for (q, ph) in phi.iter().enumerate() {
-                put(nr + 2 * np + q, *ph);
+            vals[nr + 2 * np..nr + 2 * np + n].copy_from_slice(&phi);
+            vals[nr + 2 * np + n] = Complex64::new(1.0, 0.0);
+            vals[nr + 2 * np + n + 1] = s;
+            let w = data.w[i];
+            let row = tall.row();
+            for (x, v) in row.iter_mut().zip(&vals) {
+                *x = v.re * w;
             }
-            put(nr + 2 * np + n, Complex64::new(1.0, 0.0));
-            put(nr + 2 * np + n + 1, s);
+            row[params] = r[i];
+            let row = tall.row();
+            for (x, v) in row.iter_mut().zip(&vals) {
+                *x = v.im * w;
+            }
+            row[params] = r[k + i];
         }
+        tall.finish();
+        let sp = padded(params);
+        let mut tri = tall.triangle(params);
         let norms: Vec<f64> = (0..params)
             .map(|c| {
-                let col = &jac[c * rows..(c + 1) * rows];
-                col.iter().map(|v| v * v).sum::<f64>().sqrt().max(1e-300)
+                (0..=c)
+                    .map(|i| tri[i * sp + c] * tri[i * sp + c])
+                    .sum::<f64>()
+                    .sqrt()
+                    .max(1e-300)
             })
             .collect();
-        // One QR of the scaled Jacobian per step; each damping trial then solves only the small system
-        // [R; √λ·I]·v = [−Qᵀr; 0] (v = Pᵀ·u, u = D·δ).
-        let mut scaled = jac;
-        for c in 0..params {
-            scaled[c * rows..(c + 1) * rows]
-                .iter_mut()
-                .for_each(|v| *v /= norms[c]);
+        for row in tri.chunks_exact_mut(sp) {
+            for (x, d) in row.iter_mut().zip(&norms) {
+                *x /= d;
+            }
         }
-        // The tall Jacobian is first compressed to its triangle (with Q₁ᵀr); the pivoted QR of that
-        // triangle then acts as one of the Jacobian: Qᵀr = Q₂ᵀ·(Q₁ᵀr).
-        let (qr, mut qtr) = tall_qr(&scaled, rows, params, &r, RANK_TOL);
+        let qr = PivotedQr::from_rows(tri, params, params, sp, RANK_TOL);
+        let mut qtr = tall.qtb(0);
         let rank = qr.rank();
         qr.apply_qt(&mut qtr);
         // The undamped (Gauss–Newton) step could lower the cost by at most ‖(Qᵀr)₁‖²: when that is

@@ -1,14 +1,240 @@
 //! Small dense linear algebra for the rational fit: Householder QR with column pivoting for least squares
-//! (never the normal equations), and the zeros of a pole–residue sum as eigenvalues of a real matrix.
+//! (never the normal equations), a streaming QR that compresses a tall system to its triangle as its rows
+//! are produced, and the zeros of a pole–residue sum as eigenvalues of a real matrix.
+//!
+//! Both factorisations store matrices row-major with rows padded to a multiple of four and share one
+//! kernel, [`reflect`]: apply a Householder reflector to the trailing columns of a head row and a block of
+//! rows below it. On x86-64 with AVX2 and FMA it runs four columns per instruction with fused
+//! multiply–adds; elsewhere a scalar loop does the same arithmetic.
+
+// Index loops over rows and lanes read more plainly than iterator chains in these kernels.
+#![allow(clippy::needless_range_loop)]
 
 use nalgebra::{DMatrix, Schur};
 use num_complex::Complex64;
 
-/// A column-major `rows × cols` real matrix factored as `A·S·P = Q·R` (S: unit-norm column scaling, P: column
-/// pivoting). The Householder vectors stay in the lower part of `a`, R in the upper part.
+/// Row length of a matrix of `cols` columns: padded to whole four-lane registers.
+pub(crate) fn padded(cols: usize) -> usize {
+    cols.div_ceil(4) * 4
+}
+
+/// Applies `H = I − τ·u·uᵀ` with `u = [v0; body[·][k]]` to the columns `j > k` of the matrix formed by
+/// `head` (one row) over `body` (`nrows` rows, row-major, `stride` a multiple of 4). Columns `j ≤ k` and
+/// the reflector's own column are left as they are (that is where the caller keeps `u`). Returns the sum
+/// of squares of column `k + 1` of `body` after the update (the next reflector's norm), or 0 when
+/// `k + 1 ≥ stride`.
+pub(crate) fn reflect(
+    head: &mut [f64],
+    body: &mut [f64],
+    nrows: usize,
+    stride: usize,
+    k: usize,
+    v0: f64,
+    tau: f64,
+) -> f64 {
+    assert!(
+        stride.is_multiple_of(4)
+            && k < stride
+            && head.len() >= stride
+            && body.len() >= nrows * stride
+    );
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma") {
+        // SAFETY: the processor supports AVX2 and FMA (checked just above), and the slices hold the rows
+        // the kernel reads and writes (asserted above).
+        return unsafe { reflect_fma(head, body, nrows, stride, k, v0, tau) };
+    }
+    reflect_portable(head, body, nrows, stride, k, v0, tau)
+}
+
+fn reflect_portable(
+    head: &mut [f64],
+    body: &mut [f64],
+    nrows: usize,
+    stride: usize,
+    k: usize,
+    v0: f64,
+    tau: f64,
+) -> f64 {
+    let mut next = 0.0;
+    let mut c = k + 1;
+    while c < stride {
+        let w = (stride - c).min(8);
+        let mut d = [0.0f64; 8];
+        for l in 0..w {
+            d[l] = v0 * head[c + l];
+        }
+        for row in body[..nrows * stride].chunks_exact(stride) {
+            let x = row[k];
+            for l in 0..w {
+                d[l] += x * row[c + l];
+            }
+        }
+        for l in 0..w {
+            d[l] *= tau;
+            head[c + l] -= d[l] * v0;
+        }
+        for row in body[..nrows * stride].chunks_exact_mut(stride) {
+            let x = row[k];
+            for l in 0..w {
+                row[c + l] -= d[l] * x;
+            }
+            if c == k + 1 {
+                next += row[c] * row[c];
+            }
+        }
+        c += w;
+    }
+    next
+}
+
+/// [`reflect`] for AVX2 + FMA: the columns from the register holding column k + 1 on, in chunks of up to
+/// four registers; lanes of columns ≤ k get a zero multiplier.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn reflect_fma(
+    head: &mut [f64],
+    body: &mut [f64],
+    nrows: usize,
+    stride: usize,
+    k: usize,
+    v0: f64,
+    tau: f64,
+) -> f64 {
+    let first = (k + 1) / 4 * 4;
+    let mut next = 0.0;
+    let mut c = first;
+    let (h, b) = (head.as_mut_ptr(), body.as_mut_ptr());
+    while c < stride {
+        let w = ((stride - c) / 4).min(4);
+        // SAFETY: columns c .. c + 4w lie within the stride of every row (c + 4w ≤ stride), which the
+        // caller's slices hold.
+        let sq = unsafe {
+            match w {
+                1 => reflect_chunk::<1>(h, b, nrows, stride, k, c, v0, tau),
+                2 => reflect_chunk::<2>(h, b, nrows, stride, k, c, v0, tau),
+                3 => reflect_chunk::<3>(h, b, nrows, stride, k, c, v0, tau),
+                _ => reflect_chunk::<4>(h, b, nrows, stride, k, c, v0, tau),
+            }
+        };
+        if c == first {
+            next = sq;
+        }
+        c += 4 * w;
+    }
+    next
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+#[allow(clippy::too_many_arguments)]
+unsafe fn reflect_chunk<const W: usize>(
+    head: *mut f64,
+    body: *mut f64,
+    nrows: usize,
+    stride: usize,
+    k: usize,
+    c: usize,
+    v0: f64,
+    tau: f64,
+) -> f64 {
+    use std::arch::x86_64::*;
+    // SAFETY (whole body): every pointer is `head` or a row of `body` offset by a column below
+    // c + 4W ≤ stride, inside the slices the caller checked.
+    unsafe {
+        let vv0 = _mm256_set1_pd(v0);
+        let mut a0 = [_mm256_setzero_pd(); W];
+        let mut a1 = [_mm256_setzero_pd(); W];
+        for q in 0..W {
+            a0[q] = _mm256_mul_pd(vv0, _mm256_loadu_pd(head.add(c + 4 * q)));
+        }
+        // Two rows per pass: two independent chains per register hide the latency of the fused adds.
+        let mut i = 0;
+        while i + 1 < nrows {
+            let r0 = body.add(i * stride);
+            let r1 = r0.add(stride);
+            let x0 = _mm256_set1_pd(*r0.add(k));
+            let x1 = _mm256_set1_pd(*r1.add(k));
+            for q in 0..W {
+                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
+                a1[q] = _mm256_fmadd_pd(x1, _mm256_loadu_pd(r1.add(c + 4 * q)), a1[q]);
+            }
+            i += 2;
+        }
+        if i < nrows {
+            let r0 = body.add(i * stride);
+            let x0 = _mm256_set1_pd(*r0.add(k));
+            for q in 0..W {
+                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
+            }
+        }
+        let vt = _mm256_set1_pd(tau);
+        let mut f = [_mm256_setzero_pd(); W];
+        for q in 0..W {
+            f[q] = _mm256_mul_pd(vt, _mm256_add_pd(a0[q], a1[q]));
+        }
+        if c <= k {
+            let mut lanes = [0.0f64; 4];
+            _mm256_storeu_pd(lanes.as_mut_ptr(), f[0]);
+            for (l, v) in lanes.iter_mut().enumerate() {
+                if c + l <= k {
+                    *v = 0.0;
+                }
+            }
+            f[0] = _mm256_loadu_pd(lanes.as_ptr());
+        }
+        for q in 0..W {
+            let p = head.add(c + 4 * q);
+            _mm256_storeu_pd(p, _mm256_fnmadd_pd(f[q], vv0, _mm256_loadu_pd(p)));
+        }
+        let mut sq = _mm256_setzero_pd();
+        for i in 0..nrows {
+            let r = body.add(i * stride);
+            let x = _mm256_set1_pd(*r.add(k));
+            for q in 0..W {
+                let p = r.add(c + 4 * q);
+                let y = _mm256_fnmadd_pd(f[q], x, _mm256_loadu_pd(p));
+                _mm256_storeu_pd(p, y);
+                if q == 0 {
+                    sq = _mm256_fmadd_pd(y, y, sq);
+                }
+            }
+        }
+        if (c..c + 4).contains(&(k + 1)) {
+            let mut lanes = [0.0f64; 4];
+            _mm256_storeu_pd(lanes.as_mut_ptr(), sq);
+            lanes[k + 1 - c]
+        } else {
+            0.0
+        }
+    }
+}
+
+/// Sum of squares of column `k` over `nrows` rows of a row-major matrix.
+fn column_sq(a: &[f64], nrows: usize, stride: usize, k: usize) -> f64 {
+    let mut acc = [0.0f64; 4];
+    let quads = nrows / 4;
+    for q in 0..quads {
+        for (l, acc) in acc.iter_mut().enumerate() {
+            let x = a[(4 * q + l) * stride + k];
+            *acc += x * x;
+        }
+    }
+    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    for i in 4 * quads..nrows {
+        let x = a[i * stride + k];
+        s += x * x;
+    }
+    s
+}
+
+/// A `rows × cols` real matrix factored as `A·S·P = Q·R` (S: unit-norm column scaling, P: column
+/// pivoting). Row-major with rows padded to `stride`; the Householder vectors stay in the lower part
+/// (v₀ on the diagonal), R in the upper part and `r_diag`.
 pub(crate) struct PivotedQr {
     rows: usize,
     cols: usize,
+    stride: usize,
     a: Vec<f64>,
     /// Householder scalars: H_k = I − tau_k·v_k·v_kᵀ, v_k stored in column k from row k down.
     tau: Vec<f64>,
@@ -21,41 +247,41 @@ pub(crate) struct PivotedQr {
 }
 
 impl PivotedQr {
-    /// Factors `a` (column-major, `rows × cols`, consumed). Columns whose pivot falls below
-    /// `rel_tol · |R₀₀|` are treated as beyond the numerical rank.
+    /// Factors `a` (column-major, `rows × cols`). Columns whose pivot falls below `rel_tol · |R₀₀|` are
+    /// treated as beyond the numerical rank.
     pub(crate) fn new(a: Vec<f64>, rows: usize, cols: usize, rel_tol: f64) -> PivotedQr {
-        #[cfg(target_arch = "x86_64")]
-        if std::arch::is_x86_feature_detected!("avx2") {
-            // SAFETY: the processor supports AVX2, checked just above.
-            return unsafe { Self::factor_avx2(a, rows, cols, rel_tol) };
-        }
-        Self::factor(a, rows, cols, rel_tol)
-    }
-
-    /// [`Self::factor`] compiled for AVX2 (same arithmetic, four lanes per instruction).
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    unsafe fn factor_avx2(a: Vec<f64>, rows: usize, cols: usize, rel_tol: f64) -> PivotedQr {
-        Self::factor(a, rows, cols, rel_tol)
-    }
-
-    #[inline(always)]
-    fn factor(mut a: Vec<f64>, rows: usize, cols: usize, rel_tol: f64) -> PivotedQr {
         debug_assert_eq!(a.len(), rows * cols);
+        let stride = padded(cols);
+        let mut m = vec![0.0; rows * stride];
+        for j in 0..cols {
+            for i in 0..rows {
+                m[i * stride + j] = a[j * rows + i];
+            }
+        }
+        Self::from_rows(m, rows, cols, stride, rel_tol)
+    }
+
+    /// Factors `a` given row-major, `rows × cols` in rows of `stride` (a multiple of 4, padding zero).
+    pub(crate) fn from_rows(
+        mut a: Vec<f64>,
+        rows: usize,
+        cols: usize,
+        stride: usize,
+        rel_tol: f64,
+    ) -> PivotedQr {
+        assert!(stride.is_multiple_of(4) && stride >= cols && a.len() >= rows * stride);
         let mut scale = vec![1.0; cols];
         for (j, sc) in scale.iter_mut().enumerate() {
-            let col = &mut a[j * rows..(j + 1) * rows];
-            let n = norm(col);
+            let n = column_norm(&a, rows, stride, j);
             if n > 0.0 && n.is_finite() {
                 *sc = 1.0 / n;
-                let inv = 1.0 / n;
-                col.iter_mut().for_each(|v| *v *= inv);
+                for row in a[..rows * stride].chunks_exact_mut(stride) {
+                    row[j] *= *sc;
+                }
             }
         }
         let mut perm: Vec<usize> = (0..cols).collect();
-        let mut norms2: Vec<f64> = (0..cols)
-            .map(|j| dot(&a[j * rows..(j + 1) * rows], &a[j * rows..(j + 1) * rows]))
-            .collect();
+        let mut norms2: Vec<f64> = (0..cols).map(|j| column_sq(&a, rows, stride, j)).collect();
         let mut ref_norms2 = norms2.clone();
         let steps = rows.min(cols);
         let mut tau = vec![0.0; steps];
@@ -66,47 +292,39 @@ impl PivotedQr {
                 .max_by(|&i, &j| norms2[i].total_cmp(&norms2[j]))
                 .unwrap_or(k);
             if p != k {
-                let (left, right) = a.split_at_mut(p * rows);
-                left[k * rows..(k + 1) * rows].swap_with_slice(&mut right[..rows]);
+                for row in a[..rows * stride].chunks_exact_mut(stride) {
+                    row.swap(k, p);
+                }
                 perm.swap(k, p);
                 norms2.swap(k, p);
                 ref_norms2.swap(k, p);
             }
-            let (head, tail) = a.split_at_mut((k + 1) * rows);
-            let v = &mut head[k * rows + k..(k + 1) * rows];
-            let xnorm = norm(v);
+            let (head, body) = a.split_at_mut((k + 1) * stride);
+            let head = &mut head[k * stride..];
+            let below = column_sq(body, rows - k - 1, stride, k);
+            let x0 = head[k];
+            let xnorm = (x0 * x0 + below).sqrt();
             if xnorm == 0.0 || !xnorm.is_finite() {
                 tau[k] = 0.0;
                 r_diag[k] = 0.0;
                 continue;
             }
-            let alpha = if v[0] > 0.0 { -xnorm } else { xnorm };
-            v[0] -= alpha;
-            let vtv = dot(v, v);
+            let alpha = if x0 > 0.0 { -xnorm } else { xnorm };
+            let v0 = x0 - alpha;
+            let vtv = v0 * v0 + below;
             let t = if vtv > 0.0 { 2.0 / vtv } else { 0.0 };
             tau[k] = t;
             r_diag[k] = alpha;
-            // Apply the reflector to the trailing columns, four at a time so v is read once per group.
-            let len = rows - k;
-            let mut chunks = tail.chunks_exact_mut(rows);
-            let mut j = k + 1;
-            loop {
-                let group: Vec<&mut [f64]> = chunks.by_ref().take(4).collect();
-                if group.is_empty() {
-                    break;
-                }
-                let mut group: Vec<&mut [f64]> = group.into_iter().map(|c| &mut c[k..]).collect();
-                reflect_group_portable(v, t, &mut group, len);
-                for col in group.iter() {
-                    // Downdate the remaining norm; recompute when cancellation has eaten its accuracy.
-                    norms2[j] -= col[0] * col[0];
-                    if norms2[j] < 1e-8 * ref_norms2[j] {
-                        norms2[j] = dot(&col[1..], &col[1..]);
-                        ref_norms2[j] = norms2[j];
-                    } else {
-                        norms2[j] = norms2[j].max(0.0);
-                    }
-                    j += 1;
+            head[k] = v0;
+            reflect(head, body, rows - k - 1, stride, k, v0, t);
+            for j in k + 1..cols {
+                // Downdate the remaining norm; recompute when cancellation has eaten its accuracy.
+                norms2[j] -= head[j] * head[j];
+                if norms2[j] < 1e-8 * ref_norms2[j] {
+                    norms2[j] = column_sq(body, rows - k - 1, stride, j);
+                    ref_norms2[j] = norms2[j];
+                } else {
+                    norms2[j] = norms2[j].max(0.0);
                 }
             }
         }
@@ -118,6 +336,7 @@ impl PivotedQr {
         PivotedQr {
             rows,
             cols,
+            stride,
             a,
             tau,
             r_diag,
@@ -133,15 +352,19 @@ impl PivotedQr {
 
     /// Overwrites `b` (length `rows`) with Qᵀ·b.
     pub(crate) fn apply_qt(&self, b: &mut [f64]) {
-        let m = self.rows;
+        let (m, st) = (self.rows, self.stride);
         for k in 0..self.tau.len() {
             if self.tau[k] == 0.0 {
                 continue;
             }
-            let v = &self.a[k * m + k..(k + 1) * m];
-            let bk = &mut b[k..m];
-            let f = self.tau[k] * dot(v, bk);
-            axpy(-f, v, bk);
+            let mut s = 0.0;
+            for i in k..m {
+                s += self.a[i * st + k] * b[i];
+            }
+            let f = self.tau[k] * s;
+            for i in k..m {
+                b[i] -= f * self.a[i * st + k];
+            }
         }
     }
 
@@ -150,7 +373,7 @@ impl PivotedQr {
         if i == j {
             self.r_diag[i]
         } else {
-            self.a[j * self.rows + i]
+            self.a[i * self.stride + j]
         }
     }
 
@@ -193,16 +416,122 @@ impl PivotedQr {
     }
 }
 
-/// Rows eliminated per pass of [`compress`]: a block of this many rows and the triangle so far stay in the
-/// first-level cache (20 KB at 20 columns).
+fn column_norm(a: &[f64], rows: usize, stride: usize, j: usize) -> f64 {
+    let direct = column_sq(a, rows, stride, j).sqrt();
+    if direct.is_finite() && direct > 1e-150 && direct < 1e150 {
+        return direct;
+    }
+    let col = || a[..rows * stride].chunks_exact(stride).map(|r| r[j]);
+    let m = col().fold(0.0f64, |m, x| m.max(x.abs()));
+    if m == 0.0 || !m.is_finite() {
+        return m;
+    }
+    let s: f64 = col().map(|x| (x / m) * (x / m)).sum();
+    m * s.sqrt()
+}
+
+/// Rows eliminated per pass of [`RowCompressor`]: a block of this many rows and the triangle so far stay
+/// in the first-level cache (24 KB at 24 columns).
 const BLOCK_ROWS: usize = 128;
 
-/// Reduces the tall least-squares problem `A·x ≈ b` (column-major `rows × cols`, rows ≫ cols) to the square
-/// `R·x ≈ (Qᵀb)[..cols]`, `A = Q·R`, by unpivoted Householder QR taken one block of rows at a time: each
-/// block is eliminated against the triangle of the blocks before it, so the working set stays in cache and
-/// each element of A is read once instead of once per reflector. R has the column norms and singular values
-/// of A, so a [`PivotedQr`] of R decides the rank as one of A would, and the least-squares solutions agree
-/// (‖A·x − b‖² = ‖R·x − (Qᵀb)[..cols]‖² + a constant). Returns R (column-major `cols × cols`) and, per
+/// Reduces a tall least-squares problem `A·x ≈ b` (rows ≫ cols) to the square `R·x ≈ (Qᵀb)[..cols]`,
+/// `A = Q·R`, by unpivoted Householder QR taken one block of rows at a time, as the rows are produced:
+/// each block is eliminated against the triangle of the blocks before it, so the working set stays in
+/// cache, each element of A is read once instead of once per reflector, and A itself is never stored. R
+/// has the column norms and singular values of A, so a [`PivotedQr`] of R decides the rank as one of A
+/// would, and the least-squares solutions agree (‖A·x − b‖² = ‖R·x − (Qᵀb)[..cols]‖² + a constant).
+/// Right-hand sides are extra columns after the `cols` of A.
+pub(crate) struct RowCompressor {
+    cols: usize,
+    width: usize,
+    stride: usize,
+    /// The triangle and Qᵀb so far, row-major `cols × stride`.
+    t: Vec<f64>,
+    /// The pending block, row-major `BLOCK_ROWS × stride`.
+    blk: Vec<f64>,
+    pending: usize,
+}
+
+impl RowCompressor {
+    /// A compressor for `cols` unknowns and `nrhs` right-hand sides.
+    pub(crate) fn new(cols: usize, nrhs: usize) -> RowCompressor {
+        let width = cols + nrhs;
+        let stride = padded(width);
+        RowCompressor {
+            cols,
+            width,
+            stride,
+            t: vec![0.0; cols * stride],
+            blk: vec![0.0; BLOCK_ROWS * stride],
+            pending: 0,
+        }
+    }
+
+    /// The next row, zeroed: `cols` entries of A, then one per right-hand side.
+    pub(crate) fn row(&mut self) -> &mut [f64] {
+        if self.pending == BLOCK_ROWS {
+            self.eliminate();
+        }
+        let o = self.pending * self.stride;
+        self.pending += 1;
+        let row = &mut self.blk[o..o + self.width];
+        row.fill(0.0);
+        row
+    }
+
+    fn eliminate(&mut self) {
+        let (len, st) = (self.pending, self.stride);
+        let mut sigma = None;
+        for k in 0..self.cols {
+            let sg = sigma
+                .take()
+                .unwrap_or_else(|| column_sq(&self.blk, len, st, k));
+            if sg == 0.0 {
+                continue;
+            }
+            let head = &mut self.t[k * st..(k + 1) * st];
+            let x0 = head[k];
+            let xnorm = (x0 * x0 + sg).sqrt();
+            if !xnorm.is_finite() {
+                continue;
+            }
+            let alpha = if x0 > 0.0 { -xnorm } else { xnorm };
+            let v0 = x0 - alpha;
+            let tau = 2.0 / (v0 * v0 + sg);
+            head[k] = alpha;
+            let next = reflect(head, &mut self.blk, len, st, k, v0, tau);
+            sigma = Some(next);
+        }
+        self.pending = 0;
+    }
+
+    /// Eliminates the pending rows; then [`Self::triangle`] and [`Self::qtb`] are those of all rows so far.
+    pub(crate) fn finish(&mut self) {
+        if self.pending > 0 {
+            self.eliminate();
+        }
+    }
+
+    /// The leading `m × m` block of R, row-major in rows of `padded(m)` (for [`PivotedQr::from_rows`]).
+    pub(crate) fn triangle(&self, m: usize) -> Vec<f64> {
+        let sm = padded(m);
+        let mut r = vec![0.0; m * sm];
+        for i in 0..m {
+            r[i * sm..i * sm + m].copy_from_slice(&self.t[i * self.stride..i * self.stride + m]);
+        }
+        r
+    }
+
+    /// The first `cols` entries of Qᵀb for right-hand side `i`.
+    pub(crate) fn qtb(&self, i: usize) -> Vec<f64> {
+        (0..self.cols)
+            .map(|r| self.t[r * self.stride + self.cols + i])
+            .collect()
+    }
+}
+
+#[cfg(test)]
+/// [`RowCompressor`] over a column-major `rows × cols` matrix: R column-major `cols × cols` and, per
 /// right-hand side, the first `cols` entries of Qᵀb.
 pub(crate) fn compress(
     a: &[f64],
@@ -210,157 +539,30 @@ pub(crate) fn compress(
     cols: usize,
     rhs: &[&[f64]],
 ) -> (Vec<f64>, Vec<Vec<f64>>) {
-    #[cfg(target_arch = "x86_64")]
-    if std::arch::is_x86_feature_detected!("avx2") {
-        // SAFETY: the processor supports AVX2, checked just above.
-        return unsafe { compress_avx2(a, rows, cols, rhs) };
-    }
-    compress_portable(a, rows, cols, rhs)
-}
-
-/// [`compress`] compiled for AVX2 (same arithmetic, four lanes per instruction).
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn compress_avx2(
-    a: &[f64],
-    rows: usize,
-    cols: usize,
-    rhs: &[&[f64]],
-) -> (Vec<f64>, Vec<Vec<f64>>) {
-    compress_portable(a, rows, cols, rhs)
-}
-
-#[inline(always)]
-fn compress_portable(
-    a: &[f64],
-    rows: usize,
-    cols: usize,
-    rhs: &[&[f64]],
-) -> (Vec<f64>, Vec<Vec<f64>>) {
     debug_assert_eq!(a.len(), rows * cols);
-    let nc = cols + rhs.len();
-    // The triangle (and Qᵀb so far), column-major cols × nc; and one block of rows, column-major B × nc.
-    let mut t = vec![0.0; cols * nc];
-    let mut blk = vec![0.0; BLOCK_ROWS * nc];
-    let mut r0 = 0;
-    while r0 < rows {
-        let len = BLOCK_ROWS.min(rows - r0);
-        for j in 0..nc {
-            let src = if j < cols {
-                &a[j * rows + r0..j * rows + r0 + len]
-            } else {
-                &rhs[j - cols][r0..r0 + len]
-            };
-            blk[j * BLOCK_ROWS..j * BLOCK_ROWS + len].copy_from_slice(src);
+    let mut c = RowCompressor::new(cols, rhs.len());
+    for i in 0..rows {
+        let row = c.row();
+        for j in 0..cols {
+            row[j] = a[j * rows + i];
         }
-        for k in 0..cols {
-            // The reflector acts on row k of the triangle and the block's rows only.
-            let (head, tail) = blk.split_at_mut((k + 1) * BLOCK_ROWS);
-            let v = &head[k * BLOCK_ROWS..k * BLOCK_ROWS + len];
-            let sigma = dot(v, v);
-            if sigma == 0.0 {
-                continue;
-            }
-            let x0 = t[k * cols + k];
-            let xnorm = (x0 * x0 + sigma).sqrt();
-            if !xnorm.is_finite() {
-                continue;
-            }
-            let alpha = if x0 > 0.0 { -xnorm } else { xnorm };
-            let v0 = x0 - alpha;
-            let tau = 2.0 / (v0 * v0 + sigma);
-            t[k * cols + k] = alpha;
-            // Four columns at a time: v is read once per group and the four sums are independent chains.
-            for (g, group) in tail.chunks_mut(4 * BLOCK_ROWS).enumerate() {
-                let j0 = k + 1 + 4 * g;
-                if group.len() == 4 * BLOCK_ROWS {
-                    let (c01, c23) = group.split_at_mut(2 * BLOCK_ROWS);
-                    let (c0, c1) = c01.split_at_mut(BLOCK_ROWS);
-                    let (c2, c3) = c23.split_at_mut(BLOCK_ROWS);
-                    let mut cs = [
-                        &mut c0[..len],
-                        &mut c1[..len],
-                        &mut c2[..len],
-                        &mut c3[..len],
-                    ];
-                    let d = dot4(v, &cs);
-                    let mut f = [0.0; 4];
-                    for l in 0..4 {
-                        let tk = &mut t[(j0 + l) * cols + k];
-                        f[l] = tau * (v0 * *tk + d[l]);
-                        *tk -= f[l] * v0;
-                    }
-                    axpy4(v, f, &mut cs);
-                } else {
-                    for (l, col) in group.chunks_exact_mut(BLOCK_ROWS).enumerate() {
-                        let col = &mut col[..len];
-                        let tk = &mut t[(j0 + l) * cols + k];
-                        let f = tau * (v0 * *tk + dot(v, col));
-                        *tk -= f * v0;
-                        axpy(-f, v, col);
-                    }
-                }
-            }
-        }
-        r0 += len;
-    }
-    let r = t[..cols * cols].to_vec();
-    let qtb = (0..rhs.len())
-        .map(|i| t[(cols + i) * cols..(cols + i + 1) * cols].to_vec())
-        .collect();
-    (r, qtb)
-}
-
-/// The four sums vᵀcₗ, accumulated lane-wise (four lanes per column) so the loop vectorises and the
-/// columns form independent chains.
-#[inline(always)]
-fn dot4(v: &[f64], c: &[&mut [f64]; 4]) -> [f64; 4] {
-    let len = v.len();
-    let (c0, c1, c2, c3) = (&c[0][..len], &c[1][..len], &c[2][..len], &c[3][..len]);
-    let mut acc = [[0.0f64; 4]; 4];
-    let full = len / 4 * 4;
-    for i in (0..full).step_by(4) {
-        for l in 0..4 {
-            let vi = v[i + l];
-            acc[0][l] += vi * c0[i + l];
-            acc[1][l] += vi * c1[i + l];
-            acc[2][l] += vi * c2[i + l];
-            acc[3][l] += vi * c3[i + l];
+        for (l, b) in rhs.iter().enumerate() {
+            row[cols + l] = b[i];
         }
     }
-    let mut sums = [0.0f64; 4];
-    for (k, a) in acc.iter().enumerate() {
-        sums[k] = (a[0] + a[1]) + (a[2] + a[3]);
+    c.finish();
+    let t = c.triangle(cols);
+    let sm = padded(cols);
+    let mut r = vec![0.0; cols * cols];
+    for j in 0..cols {
+        for i in 0..cols {
+            r[j * cols + i] = t[i * sm + j];
+        }
     }
-    for i in full..len {
-        sums[0] += v[i] * c0[i];
-        sums[1] += v[i] * c1[i];
-        sums[2] += v[i] * c2[i];
-        sums[3] += v[i] * c3[i];
-    }
-    sums
+    (r, (0..rhs.len()).map(|i| c.qtb(i)).collect())
 }
 
-/// cₗ −= fₗ·v for four columns.
-#[inline(always)]
-fn axpy4(v: &[f64], f: [f64; 4], c: &mut [&mut [f64]; 4]) {
-    let len = v.len();
-    let [c0, c1, c2, c3] = c;
-    let (c0, c1, c2, c3) = (
-        &mut c0[..len],
-        &mut c1[..len],
-        &mut c2[..len],
-        &mut c3[..len],
-    );
-    for i in 0..len {
-        let vi = v[i];
-        c0[i] -= f[0] * vi;
-        c1[i] -= f[1] * vi;
-        c2[i] -= f[2] * vi;
-        c3[i] -= f[3] * vi;
-    }
-}
-
+#[cfg(test)]
 /// Least squares `A·x ≈ b` for a tall A: [`compress`], then [`PivotedQr`] of R. Returns the factorisation
 /// of R and `(Qᵀb)[..cols]` (apply [`PivotedQr::solve`] to it).
 pub(crate) fn tall_qr(
@@ -375,93 +577,6 @@ pub(crate) fn tall_qr(
         PivotedQr::new(r, cols, cols, rel_tol),
         qtb.pop().expect("one right-hand side"),
     )
-}
-
-/// cols[i] −= t·(vᵀcols[i])·v for up to four columns, reading v once per pass.
-#[inline(always)]
-fn reflect_group_portable(v: &[f64], t: f64, cols: &mut [&mut [f64]], len: usize) {
-    let v = &v[..len];
-    if let [c0, c1, c2, c3] = cols {
-        let (c0, c1, c2, c3) = (
-            &mut c0[..len],
-            &mut c1[..len],
-            &mut c2[..len],
-            &mut c3[..len],
-        );
-        // Lane-wise partial sums (four per column) so the loop vectorises without reassociation.
-        let mut acc = [[0.0f64; 4]; 4];
-        let full = len / 4 * 4;
-        for i in (0..full).step_by(4) {
-            for l in 0..4 {
-                let vi = v[i + l];
-                acc[0][l] += vi * c0[i + l];
-                acc[1][l] += vi * c1[i + l];
-                acc[2][l] += vi * c2[i + l];
-                acc[3][l] += vi * c3[i + l];
-            }
-        }
-        let mut sums = [0.0f64; 4];
-        for (k, a) in acc.iter().enumerate() {
-            sums[k] = (a[0] + a[1]) + (a[2] + a[3]);
-        }
-        for i in full..len {
-            sums[0] += v[i] * c0[i];
-            sums[1] += v[i] * c1[i];
-            sums[2] += v[i] * c2[i];
-            sums[3] += v[i] * c3[i];
-        }
-        let f = sums.map(|x| t * x);
-        for i in 0..len {
-            let vi = v[i];
-            c0[i] -= f[0] * vi;
-            c1[i] -= f[1] * vi;
-            c2[i] -= f[2] * vi;
-            c3[i] -= f[3] * vi;
-        }
-    } else {
-        for c in cols.iter_mut() {
-            let f = t * dot(v, &c[..len]);
-            axpy(-f, v, &mut c[..len]);
-        }
-    }
-}
-
-#[inline(always)]
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    // Four accumulators let the compiler vectorise and shorten the dependency chain.
-    let mut acc = [0.0; 4];
-    let chunks = a.len() / 4;
-    for c in 0..chunks {
-        for l in 0..4 {
-            acc[l] += a[4 * c + l] * b[4 * c + l];
-        }
-    }
-    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
-    for i in 4 * chunks..a.len() {
-        s += a[i] * b[i];
-    }
-    s
-}
-
-#[inline(always)]
-fn axpy(f: f64, x: &[f64], y: &mut [f64]) {
-    for (yi, xi) in y.iter_mut().zip(x) {
-        *yi += f * xi;
-    }
-}
-
-#[inline(always)]
-fn norm(v: &[f64]) -> f64 {
-    let direct = dot(v, v).sqrt();
-    if direct.is_finite() && direct > 1e-150 && direct < 1e150 {
-        return direct;
-    }
-    let m = v.iter().fold(0.0f64, |m, x| m.max(x.abs()));
-    if m == 0.0 || !m.is_finite() {
-        return m;
-    }
-    let s: f64 = v.iter().map(|x| (x / m) * (x / m)).sum();
-    m * s.sqrt()
 }
 
 /// The zeros of `d + Σ cᵢ/(s − aᵢ) + Σ [r/(s − p) + r̄/(s − p̄)]` (real poles with real residues, complex
@@ -557,9 +672,56 @@ mod tests {
         }
         let (r, _) = compress(&a, rows, cols, &[&b]);
         for j in 0..cols {
-            let na = dot(&a[j * rows..(j + 1) * rows], &a[j * rows..(j + 1) * rows]).sqrt();
-            let nr = dot(&r[j * cols..(j + 1) * cols], &r[j * cols..(j + 1) * cols]).sqrt();
+            let na = a[j * rows..(j + 1) * rows]
+                .iter()
+                .map(|v| v * v)
+                .sum::<f64>()
+                .sqrt();
+            let nr = r[j * cols..(j + 1) * cols]
+                .iter()
+                .map(|v| v * v)
+                .sum::<f64>()
+                .sqrt();
             assert!((na - nr).abs() <= 1e-12 * na, "column {j}: {na} vs {nr}");
+        }
+    }
+
+    #[test]
+    fn the_vector_kernel_agrees_with_the_scalar_one() {
+        // Synthetic (no source): one reflector applied to a 37-row block of 23 columns (stride 24) by
+        // both kernels, for every reflector column k; they differ only in rounding.
+        let (nrows, stride) = (37, 24);
+        let fill = |i: usize| ((i as f64 * 0.37).sin() + 0.1 * (i % 7) as f64) * 1e3;
+        for k in 0..23 {
+            let mut head: Vec<f64> = (0..stride)
+                .map(|j| if j < 23 { fill(j + 1000) } else { 0.0 })
+                .collect();
+            let mut body: Vec<f64> = (0..nrows * stride)
+                .map(|i| if i % stride < 23 { fill(i) } else { 0.0 })
+                .collect();
+            let (mut head2, mut body2) = (head.clone(), body.clone());
+            let before = body.clone();
+            let (v0, tau) = (0.7, 2.0 / (0.49 + column_sq(&body, nrows, stride, k)));
+            let n1 = reflect(&mut head, &mut body, nrows, stride, k, v0, tau);
+            let n2 = reflect_portable(&mut head2, &mut body2, nrows, stride, k, v0, tau);
+            assert!(
+                (n1 - n2).abs() <= 1e-12 * n2.abs().max(1.0),
+                "k {k}: {n1} vs {n2}"
+            );
+            if k + 1 < stride {
+                let direct = column_sq(&body2, nrows, stride, k + 1);
+                assert!((n2 - direct).abs() <= 1e-12 * direct.max(1.0), "k {k}");
+            }
+            for (x, y) in head.iter().zip(&head2).chain(body.iter().zip(&body2)) {
+                assert!(
+                    (x - y).abs() <= 1e-9 * y.abs().max(1.0),
+                    "k {k}: {x} vs {y}"
+                );
+            }
+            // Columns up to k are not touched.
+            for (row, old) in body.chunks_exact(stride).zip(before.chunks_exact(stride)) {
+                assert_eq!(row[..=k], old[..=k], "k {k}");
+            }
         }
     }
 
