@@ -154,6 +154,9 @@ async fn main() -> anyhow::Result<()> {
             if http.get(format!("{base}/readyz")).send().await.is_ok_and(|r| r.status() == 200) {
                 break;
             }
+            if let Some(status) = child.try_wait()? {
+                anyhow::bail!("the server exited before it was ready ({status}); is {} current?", bin.display());
+            }
             anyhow::ensure!(started.elapsed() < TIME_BOUND, "the server did not become ready");
             tokio::time::sleep(Duration::from_millis(50)).await;
         }
