@@ -192,34 +192,43 @@ impl Store {
         .bind(claim.fit_id)
         .execute(&mut *tx)
         .await?;
-        for (kind, list) in [
+        // One statement per table (not one per row): the single writer connection is the service's
+        // narrowest point, and each statement is a round trip to it.
+        let resonances: Vec<(&str, f64)> = [
             ("series", &figures.series_resonances_hz),
             ("parallel", &figures.parallel_resonances_hz),
-        ] {
-            for f in list.iter().filter(|f| f.is_finite()) {
-                sqlx::query(
-                    "INSERT INTO fit_resonances (fit_id, kind, frequency_hz) VALUES (?, ?, ?)",
-                )
-                .bind(claim.fit_id)
-                .bind(kind)
-                .bind(f)
-                .execute(&mut *tx)
-                .await?;
-            }
+        ]
+        .into_iter()
+        .flat_map(|(kind, list)| {
+            list.iter()
+                .copied()
+                .filter(|f| f.is_finite())
+                .map(move |f| (kind, f))
+        })
+        .collect();
+        if !resonances.is_empty() {
+            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                "INSERT INTO fit_resonances (fit_id, kind, frequency_hz) ",
+            );
+            q.push_values(&resonances, |mut b, (kind, f)| {
+                b.push_bind(claim.fit_id).push_bind(*kind).push_bind(*f);
+            });
+            q.build().execute(&mut *tx).await?;
         }
-        for p in &figures.grid {
-            sqlx::query(
-                "INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h, z_mag_floor_ohm, \
-                 z_floor_at_hz) VALUES (?, ?, ?, ?, ?, ?)",
-            )
-            .bind(claim.fit_id)
-            .bind(p.k)
-            .bind(p.z_mag_ohm)
-            .bind(p.l_eff_h)
-            .bind(p.z_mag_floor_ohm)
-            .bind(p.z_floor_at_hz)
-            .execute(&mut *tx)
-            .await?;
+        // At most 161 rows × 6 values, far below SQLite's limit of bound parameters.
+        if !figures.grid.is_empty() {
+            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                "INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h, z_mag_floor_ohm, z_floor_at_hz) ",
+            );
+            q.push_values(&figures.grid, |mut b, p| {
+                b.push_bind(claim.fit_id)
+                    .push_bind(p.k)
+                    .push_bind(p.z_mag_ohm)
+                    .push_bind(p.l_eff_h)
+                    .push_bind(p.z_mag_floor_ohm)
+                    .push_bind(p.z_floor_at_hz);
+            });
+            q.build().execute(&mut *tx).await?;
         }
         sqlx::query(
             "UPDATE parts SET latest_fit_id = ? WHERE part_id = ? \
