@@ -7,7 +7,7 @@ use super::auth::{Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem};
 use crate::app::AppState;
 use crate::fit::FitOptions;
-use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputFile, read_input};
+use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputError, InputFile, read_input};
 use crate::jobs::{duplicate_key_with_fixture, effective_options, parse_method};
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
@@ -269,9 +269,9 @@ pub async fn accept_upload(
     actor: &str,
     input: UploadInput,
 ) -> ApiResult<Accepted> {
-    let file = input.file.clone().map(checked_file).transpose()?;
-    let fixture_open = input.fixture_open.clone().map(checked_file).transpose()?;
-    let fixture_short = input.fixture_short.clone().map(checked_file).transpose()?;
+    let file = input.file.map(checked_file).transpose()?;
+    let fixture_open = input.fixture_open.map(checked_file).transpose()?;
+    let fixture_short = input.fixture_short.map(checked_file).transpose()?;
     let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
     let topology = match (fixture_open.is_some(), fixture_short.is_some()) {
         (false, false) => {
@@ -321,24 +321,47 @@ pub async fn accept_upload(
     let operator = short_text("operator", &input.operator, 128, false)?;
     let options = effective_options(parse_options(&input.options)?, dcr_ohm);
 
+    let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
+
+    // Reading the files, hashing them and keying the duplicate check are CPU work: off the runtime.
     let engine = state.engine.clone();
     let read = ReadOptions {
         method,
         z0_ohm,
         ..ReadOptions::default()
     };
-    let files = (file.clone(), fixture_open.clone(), fixture_short.clone());
-    let sweep = tokio::task::spawn_blocking(move || {
-        let (file, open, short) = &files;
-        let fixture =
-            topology
-                .zip(open.as_ref().zip(short.as_ref()))
-                .map(|(topology, (open, short))| FixtureFiles {
-                    open: input_file(open),
-                    short: input_file(short),
-                    topology,
-                });
-        read_input(engine.as_ref(), input_file(file), fixture, &read)
+    let new = tokio::task::spawn_blocking(move || {
+        let fixture = topology
+            .zip(fixture_open.as_ref().zip(fixture_short.as_ref()))
+            .map(|(topology, (open, short))| FixtureFiles {
+                open: input_file(open),
+                short: input_file(short),
+                topology,
+            });
+        let sweep = read_input(engine.as_ref(), input_file(&file), fixture, &read)?;
+        let method_text = serde_json::to_value(sweep.method)
+            .ok()
+            .and_then(|v| v.as_str().map(str::to_string))
+            .unwrap_or_default();
+        let options_key =
+            duplicate_key_with_fixture(&options_json, &method_text, z0_ohm, fixture.as_ref());
+        Ok::<NewSweep, InputError>(NewSweep {
+            part_number,
+            lot,
+            sha256: sha256_hex(&file.bytes),
+            file,
+            options_key,
+            method: method_text,
+            z0_ohm,
+            dcr_ohm,
+            temperature_c,
+            operator,
+            fixture_topology: topology.map(|t| t.as_str().to_string()),
+            fixture_open,
+            fixture_short,
+            points: sweep.frequency_hz.len(),
+            options_json,
+        })
     })
     .await
     .map_err(Problem::internal)?
@@ -347,41 +370,6 @@ pub async fn accept_upload(
         detail: format!("{}: {}", e.file_name, e.error.message),
         line: e.error.line,
     })?;
-
-    let method_text = serde_json::to_value(sweep.method)
-        .ok()
-        .and_then(|v| v.as_str().map(str::to_string))
-        .unwrap_or_default();
-    let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
-    let new = NewSweep {
-        part_number,
-        lot,
-        sha256: sha256_hex(&file.bytes),
-        file,
-        options_key: duplicate_key_with_fixture(
-            &options_json,
-            &method_text,
-            z0_ohm,
-            topology
-                .zip(fixture_open.as_ref().zip(fixture_short.as_ref()))
-                .map(|(topology, (open, short))| FixtureFiles {
-                    open: input_file(open),
-                    short: input_file(short),
-                    topology,
-                })
-                .as_ref(),
-        ),
-        method: method_text,
-        z0_ohm,
-        dcr_ohm,
-        temperature_c,
-        operator,
-        fixture_topology: topology.map(|t| t.as_str().to_string()),
-        fixture_open,
-        fixture_short,
-        points: sweep.frequency_hz.len(),
-        options_json,
-    };
     let up = state.store.upload(actor, &new).await?;
     if !up.duplicate {
         state.jobs.wake();
