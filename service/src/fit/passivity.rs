@@ -16,6 +16,7 @@
 
 mod nnls;
 
+use crate::fit::derived::golden_minimum;
 use crate::fit::vector::linalg::{PivotedQr, rational_zeros};
 use crate::fit::vector::{Coefficients, FitData, Poles, basis_at, from_model, linear_system};
 use crate::model::RationalModel;
@@ -285,7 +286,7 @@ pub(crate) fn negative_minima(poles: &Poles, coef: &Coefficients, cross: &[f64])
         let l = samples[imin.saturating_sub(1)];
         let r = samples[(imin + 1).min(samples.len() - 1)];
         if r > l {
-            let (wr, vr) = golden_minimum(l, r, |w| re_z(w, poles, coef).0);
+            let (wr, vr) = golden_minimum(l, r, 1e-14 * r.abs(), |w| re_z(w, poles, coef).0);
             if vr < value {
                 at = wr;
                 value = vr;
@@ -299,32 +300,6 @@ pub(crate) fn negative_minima(poles: &Poles, coef: &Coefficients, cross: &[f64])
         });
     }
     out
-}
-
-fn golden_minimum(mut a: f64, mut b: f64, f: impl Fn(f64) -> f64) -> (f64, f64) {
-    let g = (5f64.sqrt() - 1.0) / 2.0;
-    let mut c = b - g * (b - a);
-    let mut d = a + g * (b - a);
-    let (mut fc, mut fd) = (f(c), f(d));
-    for _ in 0..80 {
-        if (b - a).abs() <= 1e-14 * b.abs() {
-            break;
-        }
-        if fc < fd {
-            b = d;
-            d = c;
-            fd = fc;
-            c = b - g * (b - a);
-            fc = f(c);
-        } else {
-            a = c;
-            c = d;
-            fc = fd;
-            d = a + g * (b - a);
-            fd = f(d);
-        }
-    }
-    if fc < fd { (c, fc) } else { (d, fd) }
 }
 
 /// What enforcement did.

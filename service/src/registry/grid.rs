@@ -2,6 +2,7 @@
 //! (k = 0..=160). Every succeeded fit stores |Z| and effective L of its model at the grid points inside
 //! its sweep band; queries read those rows and interpolate L linearly in log f between neighbours.
 
+use crate::fit::derived::min_abs_z;
 use crate::model::{FittedModel, ImpedanceModel};
 use std::f64::consts::PI;
 
@@ -76,71 +77,6 @@ pub struct GridPoint {
     pub z_floor_at_hz: f64,
 }
 
-/// Samples per decade of the scan in [`min_abs_z`] before refinement.
-const SCAN_PER_DECADE: f64 = 60.0;
-
-/// Lowest |Z| of the model on `[a_hz, b_hz]` and where it occurs: a log-spaced scan (ends included,
-/// at least 8 intervals), then a golden-section search in log f around every sampled local minimum,
-/// so a narrow series-resonance notch between samples is found to its bottom rather than missed.
-pub fn min_abs_z(model: &FittedModel, a_hz: f64, b_hz: f64) -> (f64, f64) {
-    let mag = |f: f64| {
-        let m = model.impedance(f).norm();
-        if m.is_finite() { m } else { f64::INFINITY }
-    };
-    if !(a_hz > 0.0 && b_hz > a_hz) {
-        return (mag(a_hz), a_hz);
-    }
-    let (la, lb) = (a_hz.ln(), b_hz.ln());
-    let n = (((lb - la) / std::f64::consts::LN_10) * SCAN_PER_DECADE)
-        .ceil()
-        .max(8.0) as usize;
-    let x: Vec<f64> = (0..=n)
-        .map(|i| la + (lb - la) * i as f64 / n as f64)
-        .collect();
-    let y: Vec<f64> = x.iter().map(|&l| mag(l.exp())).collect();
-    let mut best = (y[0], a_hz);
-    for (i, &yi) in y.iter().enumerate() {
-        if yi < best.0 {
-            best = (yi, x[i].exp());
-        }
-        let left = i == 0 || yi <= y[i - 1];
-        let right = i == n || yi <= y[i + 1];
-        if !(left && right) || i == 0 || i == n {
-            continue;
-        }
-        // Golden-section search on [x[i-1], x[i+1]] (|Z| is smooth and unimodal there).
-        const INV_PHI: f64 = 0.618_033_988_749_894_8;
-        let (mut lo, mut hi) = (x[i - 1], x[i + 1]);
-        let mut c = hi - INV_PHI * (hi - lo);
-        let mut d = lo + INV_PHI * (hi - lo);
-        let (mut fc, mut fd) = (mag(c.exp()), mag(d.exp()));
-        for _ in 0..60 {
-            if hi - lo < 1e-10 {
-                break;
-            }
-            if fc < fd {
-                hi = d;
-                d = c;
-                fd = fc;
-                c = hi - INV_PHI * (hi - lo);
-                fc = mag(c.exp());
-            } else {
-                lo = c;
-                c = d;
-                fc = fd;
-                d = lo + INV_PHI * (hi - lo);
-                fd = mag(d.exp());
-            }
-        }
-        for (v, l) in [(fc, c), (fd, d)] {
-            if v < best.0 {
-                best = (v, l.exp());
-            }
-        }
-    }
-    best
-}
-
 /// The model at the grid points inside the band `[band_min_hz, band_max_hz]` where it is valid.
 /// Non-finite values (a model evaluated at a pole) are left out.
 pub fn evaluate(model: &FittedModel, band_min_hz: f64, band_max_hz: f64) -> Vec<GridPoint> {
@@ -213,38 +149,10 @@ mod tests {
         assert!((at_10k.l_eff_h / 1e-5 - 1.0).abs() < 3e-3);
     }
 
-    /// A choke with a narrow series-resonance notch (invented values): 10 µH, 5 pF across, and a
-    /// series section 0.2 Ω / 100 nH / 22.54 pF resonating at 1/(2π√(LC)) = 106.0 MHz (Thomson's
-    /// formula), where |Z| drops to about the section's 0.2 Ω between the grid points at 100 MHz and
-    /// 112.2 MHz.
-    fn notched() -> FittedModel {
-        FittedModel::Lumped(LumpedModel {
-            l0_h: 1e-5,
-            rdc_ohm: 0.05,
-            k_ac_ohm_per_sqrt_hz: 0.0,
-            rp_ohm: None,
-            cp_f: 5e-12,
-            ls_h: 0.0,
-            sections: vec![crate::model::Section {
-                kind: crate::model::SectionKind::Series,
-                r_ohm: 0.2,
-                l_h: 100e-9,
-                c_f: 22.54e-12,
-            }],
-        })
-    }
-
     #[test]
-    fn the_band_minimum_finds_a_notch_between_samples() {
-        let m = notched();
+    fn a_grid_row_carries_the_notch_between_it_and_the_next_point() {
+        let m = FittedModel::Lumped(crate::fit::derived::tests::notched());
         let f0 = 1.0 / (2.0 * PI * (100e-9f64 * 22.54e-12).sqrt());
-        let (z, at) = min_abs_z(&m, 50e6, 200e6);
-        // At the section's resonance its impedance is r_ohm; the tank around it barely changes that.
-        assert!(z < 0.21, "lowest |Z| {z}");
-        assert!(
-            (at / f0 - 1.0).abs() < 2e-3,
-            "at {at} Hz, resonance {f0} Hz"
-        );
         // The grid points on either side see far more than the notch.
         let rows = evaluate(&m, 1e6, 1e9);
         let k = bracket(f0).unwrap().0;

@@ -148,7 +148,7 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
         (limits.z_min_ohm, limits.z_band_min_hz, limits.z_band_max_hz)
     {
         if in_band(report, a) && in_band(report, b) {
-            let (z, at) = super::grid::min_abs_z(model, a, b);
+            let (z, at) = crate::fit::derived::min_abs_z(model, a, b);
             let mut c = check("z_min_band", "ohm", min, z, z - min);
             c.note = Some(format!("lowest |Z| in {a}..{b} Hz, at {at} Hz"));
             out.push(c);
