@@ -11,7 +11,7 @@ pub mod engine;
 pub use engine::{CoreEngine, Engine};
 
 use crate::fit::{DcrReading, FitControl, FitError, FitOptions};
-use crate::registry::figures;
+use crate::registry::assessment;
 use crate::settings::Settings;
 use crate::store::jobs::{Claim, Renewal};
 use crate::store::{Store, sha256_hex};
@@ -301,12 +301,12 @@ impl RunningJob {
         }
         let written = match outcome {
             Outcome::Report(report) => {
-                let figs = figures::from_report(&report);
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "succeeded").increment(1);
-                let written = self.store.complete_succeeded(&claim, &report, &figs).await;
+                let rms_weighted = report.quality.rms_weighted;
+                let written = self.write_report(&claim, report).await;
                 if let (Ok(true), Some((limit, options_json, key))) = (&written, &follow_up)
-                    && report.quality.rms_weighted > *limit
+                    && rms_weighted > *limit
                 {
                     match self
                         .store
@@ -316,7 +316,7 @@ impl RunningJob {
                         Ok(next) => {
                             tracing::info!(
                                 next_fit_id = next,
-                                rms_weighted = report.quality.rms_weighted,
+                                rms_weighted,
                                 "the lumped model misses the data: a rational fit is queued"
                             );
                             self.handle.wake();
@@ -359,6 +359,33 @@ impl RunningJob {
             Ok(true) => tracing::debug!(seconds, "fit finished"),
             Ok(false) => tracing::warn!("the claim was taken over before the result was written"),
             Err(e) => tracing::error!(error = %e, "cannot write the fit's outcome"),
+        }
+    }
+}
+
+impl RunningJob {
+    /// Assesses a succeeded report (figures, grid, verdict, drift, JSON) off the async runtime, then
+    /// writes it; the writer only stores what is already computed.
+    async fn write_report(
+        &self,
+        claim: &Claim,
+        report: Box<crate::fit::FitReport>,
+    ) -> crate::store::StoreResult<bool> {
+        let (basis, baseline_json) = self.store.assessment_basis(claim.fit_id).await?;
+        let assessed = tokio::task::spawn_blocking(move || {
+            let a = assessment::assess(&report, basis, baseline_json.as_deref());
+            a.map(|a| (report, a))
+        })
+        .await;
+        match assessed {
+            Ok(Ok((report, a))) => self.store.complete_succeeded(claim, &report, &a).await,
+            Ok(Err(e)) => Err(e.into()),
+            Err(e) => {
+                tracing::error!(error = %e, "the assessment of a succeeded fit panicked");
+                self.store
+                    .complete_unsuccessful(claim, false, "the fit stopped on an internal error")
+                    .await
+            }
         }
     }
 }

@@ -6,11 +6,13 @@
 //! - [`verdict`]: a fit report against a part's limits (pass/fail per limit, measured value, margin).
 //! - [`drift`]: a fit report against the approved baseline (per parameter, in percent and in σ).
 //! - [`figures`]: the figures copied from a report into indexed columns.
+//! - [`assessment`]: all of the above for one succeeded fit, computed before the store writes it.
 //! - [`wire`]: the JSON shapes of the HTTP API (CONTRACT.md), shared by the store and the routes.
 //!
 //! Everything numeric here is a comparison of figures the engine produced, or an evaluation of the
 //! engine's own fitted model ([`crate::model::ImpedanceModel`]); nothing is estimated here.
 
+pub mod assessment;
 pub mod drift;
 pub mod figures;
 pub mod grid;

@@ -5,9 +5,9 @@
 
 use super::{Store, StoreResult, audit, now_ms};
 use crate::fit::FitReport;
-use crate::registry::{drift, figures::StoredFigures, verdict};
+use crate::registry::assessment::{Assessment, Basis, judge};
 use rand::RngCore;
-use sqlx::SqliteConnection;
+use sqlx::{Row, SqliteConnection};
 use std::time::Duration;
 
 /// The actor the audit trail names for what workers do.
@@ -141,35 +141,72 @@ impl Store {
         })
     }
 
+    /// What a succeeded fit of `fit_id` will be judged against: its part's limits and approved
+    /// baseline (with the baseline's stored report). Read without the writer, before the result is
+    /// written; [`Store::complete_succeeded`] checks it still holds.
+    pub async fn assessment_basis(&self, fit_id: i64) -> StoreResult<(Basis, Option<String>)> {
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "SELECT baseline_fit_id, {} FROM parts \
+             WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
+            super::parts::LIMIT_COLUMNS
+        )))
+        .bind(fit_id)
+        .fetch_one(&self.reader)
+        .await?;
+        let basis = Basis {
+            limits: super::parts::limits_from_row(&row)?,
+            baseline_fit_id: row.try_get("baseline_fit_id")?,
+        };
+        let baseline_json = match basis.baseline_fit_id {
+            Some(id) => sqlx::query_scalar::<_, Option<String>>(
+                "SELECT report_json FROM fits WHERE fit_id = ?",
+            )
+            .bind(id)
+            .fetch_optional(&self.reader)
+            .await?
+            .flatten(),
+            None => None,
+        };
+        Ok((basis, baseline_json))
+    }
+
     /// Writes a succeeded fit with its figures, verdict and drift, if the claim still holds.
-    /// Returns false (and writes nothing) when it does not.
+    /// Returns false (and writes nothing) when it does not. The assessment was computed before the
+    /// writer was taken; when the part's limits or baseline changed since, the verdict and drift are
+    /// judged again here against the current ones.
     pub async fn complete_succeeded(
         &self,
         claim: &Claim,
         report: &FitReport,
-        figures: &StoredFigures,
+        assessment: &Assessment,
     ) -> StoreResult<bool> {
         let now = now_ms();
         let mut tx = self.write().await?;
         if !release_claim(&mut tx, claim).await? {
             return Ok(false);
         }
-        let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM fits WHERE fit_id = ?")
-            .bind(claim.fit_id)
-            .fetch_one(&mut *tx)
-            .await?;
-        let limits_row = sqlx::query(sqlx::AssertSqlSafe(format!(
-            "SELECT {} FROM parts WHERE part_id = ?",
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "SELECT part_id, baseline_fit_id, {} FROM parts \
+             WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
             super::parts::LIMIT_COLUMNS
         )))
-        .bind(part_id)
+        .bind(claim.fit_id)
         .fetch_one(&mut *tx)
         .await?;
-        let limits = super::parts::limits_from_row(&limits_row)?;
-        let checks = verdict::checks(&limits, report);
-        let drift = super::fits::baseline_report(&mut tx, part_id)
-            .await?
-            .map(|(bid, b)| drift::drift(bid, &b, report));
+        let part_id: i64 = row.try_get("part_id")?;
+        let current = Basis {
+            limits: super::parts::limits_from_row(&row)?,
+            baseline_fit_id: row.try_get("baseline_fit_id")?,
+        };
+        let rejudged;
+        let judgement = if current == assessment.judgement.basis {
+            &assessment.judgement
+        } else {
+            let baseline = super::fits::baseline_report(&mut tx, part_id).await?;
+            rejudged = judge(current, baseline.as_ref().map(|(_, r)| r), report)?;
+            &rejudged
+        };
+        let figures = &assessment.figures;
         sqlx::query(
             "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
              report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
@@ -177,7 +214,7 @@ impl Store {
              drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?",
         )
         .bind(&report.engine_version)
-        .bind(serde_json::to_string(report)?)
+        .bind(&assessment.report_json)
         .bind(now)
         .bind(figures.srf_hz)
         .bind(figures.srf_above_hz)
@@ -185,10 +222,10 @@ impl Store {
         .bind(figures.rdc_ohm)
         .bind(figures.band_min_hz)
         .bind(figures.band_max_hz)
-        .bind(verdict::overall(&checks))
-        .bind(serde_json::to_string(&checks)?)
-        .bind(drift.as_ref().map(serde_json::to_string).transpose()?)
-        .bind(drift.as_ref().and_then(|d| d.max_sigma()))
+        .bind(judgement.verdict)
+        .bind(&judgement.verdict_json)
+        .bind(&judgement.drift_json)
+        .bind(judgement.drift_max_sigma)
         .bind(claim.fit_id)
         .execute(&mut *tx)
         .await?;
@@ -340,11 +377,21 @@ async fn settle(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::registry::figures;
+    use crate::registry::assessment;
     use crate::registry::limits::Limits;
     use crate::registry::verdict::tests::report;
     use crate::store::sweeps::{NamedFile, NewSweep};
     use crate::store::testing::temp_store;
+
+    /// A store holding the part J-1 with no limits.
+    async fn store_with_part() -> (Store, tempfile::TempDir) {
+        let (store, dir) = temp_store().await;
+        store
+            .create_part("test", "J-1", "", &Limits::default())
+            .await
+            .unwrap();
+        (store, dir)
+    }
 
     async fn queue_one(store: &Store, i: usize) -> i64 {
         let new = NewSweep {
@@ -372,11 +419,7 @@ mod tests {
 
     #[tokio::test]
     async fn an_expired_lease_is_claimed_again_and_only_the_current_claim_writes() {
-        let (store, _dir) = temp_store().await;
-        store
-            .create_part("test", "J-1", "", &Limits::default())
-            .await
-            .unwrap();
+        let (store, _dir) = store_with_part().await;
         let a = queue_one(&store, 0).await;
         let b = queue_one(&store, 1).await;
         let lease = Duration::from_millis(30);
@@ -409,10 +452,11 @@ mod tests {
 
         // The stale claim writes nothing; the current one writes once; a repeat writes nothing.
         let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
-        let figs = figures::from_report(&r);
-        assert!(!store.complete_succeeded(&first, &r, &figs).await.unwrap());
-        assert!(store.complete_succeeded(&again, &r, &figs).await.unwrap());
-        assert!(!store.complete_succeeded(&again, &r, &figs).await.unwrap());
+        let (basis, baseline) = store.assessment_basis(a).await.unwrap();
+        let done = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
+        assert!(!store.complete_succeeded(&first, &r, &done).await.unwrap());
+        assert!(store.complete_succeeded(&again, &r, &done).await.unwrap());
+        assert!(!store.complete_succeeded(&again, &r, &done).await.unwrap());
         let summary = store.fit_summary(a).await.unwrap();
         assert_eq!(summary.status.as_str(), "succeeded");
         // And the database itself refuses a second result.
@@ -424,12 +468,46 @@ mod tests {
     }
 
     #[tokio::test]
-    async fn a_job_that_never_finishes_fails_after_its_attempts_and_a_release_is_not_counted() {
-        let (store, _dir) = temp_store().await;
-        store
-            .create_part("test", "J-1", "", &Limits::default())
+    async fn limits_changed_after_the_assessment_are_judged_again_when_the_result_is_written() {
+        let (store, _dir) = store_with_part().await;
+        let a = queue_one(&store, 0).await;
+        let claim = store
+            .claim_job(Duration::from_secs(30), 3)
+            .await
+            .unwrap()
+            .unwrap();
+        let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
+        let (basis, baseline) = store.assessment_basis(a).await.unwrap();
+        assert_eq!(basis.limits, Limits::default());
+        let done = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
+        assert_eq!(done.judgement.verdict, None, "no limits, no verdict");
+        // An engineer sets a DCR limit while the result is on its way to the writer.
+        let tight = Limits {
+            dcr_max_ohm: Some(0.04),
+            ..Limits::default()
+        };
+        sqlx::query("UPDATE parts SET dcr_max_ohm = 0.04 WHERE part_number = 'J-1'")
+            .execute(&store.writer)
             .await
             .unwrap();
+        assert_eq!(store.assessment_basis(a).await.unwrap().0.limits, tight);
+        assert!(store.complete_succeeded(&claim, &r, &done).await.unwrap());
+        let verdict: Option<String> =
+            sqlx::query_scalar("SELECT verdict FROM fits WHERE fit_id = ?")
+                .bind(a)
+                .fetch_one(&store.reader)
+                .await
+                .unwrap();
+        assert_eq!(
+            verdict.as_deref(),
+            Some("fail"),
+            "0.05 Ω against a 0.04 Ω limit"
+        );
+    }
+
+    #[tokio::test]
+    async fn a_job_that_never_finishes_fails_after_its_attempts_and_a_release_is_not_counted() {
+        let (store, _dir) = store_with_part().await;
         let a = queue_one(&store, 0).await;
         let lease = Duration::from_millis(10);
         let c = store.claim_job(lease, 2).await.unwrap().unwrap();
