@@ -2,10 +2,12 @@
 //! relaxed form (Gustavsen, IEEE Trans. Power Delivery 21(3), 2006): poles relocated as the zeros of a
 //! weighted scaling function σ(s), then residues, constant and proportional terms identified by linear least
 //! squares, every point weighted by 1/σ. Relocation stops when the poles are fixed (relative move below
-//! 1e-10), settled (1e-6) with the error flat, or after three relocations without a 0.1 % gain; the best
-//! iterate is kept. A short Levenberg–Marquardt refinement of poles and residues together then minimises the
-//! weighted error itself (the relocation's fixed point minimises a linearised one), with stable poles and no
-//! pole sharper than it was or than Q = 500. Order selection, passivity enforcement and the report are in
+//! 1e-10), settled (1e-6) with the error flat, at the first relocation without a 0.1 % gain once the poles
+//! move by less than 10 %, or after three such relocations; the best iterate is kept. A short
+//! Levenberg–Marquardt refinement of poles and residues together then minimises the weighted error itself
+//! (the relocation's fixed point minimises a linearised one), with stable poles and no pole sharper than it
+//! was or than Q = 500; it stops at the first step that gains less than 0.01 %. Order selection, passivity
+//! enforcement and the report are in
 //! [`fit_rational`].
 //!
 //! Everything runs on a normalised frequency s′ = s/ω₀ (ω₀ = 2π·f_max) so the columns of the least-squares
@@ -82,16 +84,30 @@ impl FitData {
 /// Values of the partial-fraction basis at s, in the coefficient order of [`Coefficients::c`]:
 /// 1/(s − a) for a real pole; 1/(s − p) + 1/(s − p̄) and j/(s − p) − j/(s − p̄) for a pair.
 pub(crate) fn basis_at(s: Complex64, poles: &Poles, out: &mut Vec<Complex64>) {
-    out.clear();
-    for &a in &poles.real {
-        out.push((s - a).inv());
+    out.resize(poles.order(), Complex64::new(0.0, 0.0));
+    basis_into(s, poles, out);
+}
+
+/// 1/z with one division.
+#[inline(always)]
+fn recip(z: Complex64) -> Complex64 {
+    let q = 1.0 / (z.re * z.re + z.im * z.im);
+    Complex64::new(z.re * q, -z.im * q)
+}
+
+/// [`basis_at`] into a slice of length `poles.order()`.
+#[inline]
+fn basis_into(s: Complex64, poles: &Poles, out: &mut [Complex64]) {
+    let nr = poles.real.len();
+    for (o, &a) in out.iter_mut().zip(&poles.real) {
+        *o = recip(s - a);
     }
-    let j = Complex64::new(0.0, 1.0);
-    for &p in &poles.pairs {
-        let t1 = (s - p).inv();
-        let t2 = (s - p.conj()).inv();
-        out.push(t1 + t2);
-        out.push(j * (t1 - t2));
+    for (o, &p) in out[nr..].chunks_exact_mut(2).zip(&poles.pairs) {
+        let t1 = recip(s - p);
+        let t2 = recip(s - p.conj());
+        o[0] = t1 + t2;
+        // j·(t1 − t2)
+        o[1] = Complex64::new(t2.im - t1.im, t1.re - t2.re);
     }
 }
 
@@ -118,14 +134,20 @@ pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
 }
 
 /// Streams the relaxed relocation system into `qr`, two rows (Re, Im) per point, columns
-/// [c…, d, e, c̃…, d̃]. With `fixed_d = None` the right-hand sides are the relaxation target b (zero but in
-/// the last row, `Re Σₖ σ(sₖ) = K`, which is appended) and the weighted data (the residue system of the
-/// first N + 2 columns); with `Some(d̃)` the d̃ column moves to the only right-hand side and there is no
-/// relaxation row (Gustavsen 2006, §III).
-fn relocation_rows(data: &FitData, poles: &Poles, fixed_d: Option<f64>, qr: &mut RowCompressor) {
+/// [c…, d, e, c̃…, d̃]. With `fixed_d = None` the right-hand side is the weighted data (the residue system
+/// of the first N + 2 columns); the relaxed system's own right-hand side is zero on these rows, so it is
+/// not streamed, and its one non-zero row, the relaxation `Re Σₖ σ(sₖ) = K`, is returned as (row, target)
+/// for the caller to add to the triangle. With `Some(d̃)` the d̃ column moves to the only right-hand side
+/// and there is no relaxation row (Gustavsen 2006, §III).
+fn relocation_rows(
+    data: &FitData,
+    poles: &Poles,
+    fixed_d: Option<f64>,
+    qr: &mut RowCompressor,
+) -> Option<(Vec<f64>, f64)> {
     let k = data.len();
     let n = poles.order();
-    let mut phi = Vec::with_capacity(n);
+    let mut phi = vec![Complex64::new(0.0, 0.0); n];
     let mut phi_sum = vec![0.0; n];
     let scale = {
         let ss: f64 = data
@@ -140,40 +162,52 @@ fn relocation_rows(data: &FitData, poles: &Poles, fixed_d: Option<f64>, qr: &mut
         let s = data.s[i];
         let w = data.w[i];
         let wz = data.z[i] * w;
-        basis_at(s, poles, &mut phi);
-        let parts: [fn(Complex64) -> f64; 2] = [|v| v.re, |v| v.im];
-        for (part, take) in parts.iter().enumerate() {
-            let row = qr.row();
-            for (j, ph) in phi.iter().enumerate() {
-                row[j] = take(ph * w);
-                row[n + 2 + j] = take(-wz * ph);
+        basis_into(s, poles, &mut phi);
+        // Row of the real parts, then of the imaginary parts: w·φ, w, w·s, −w·Z·φ, then −w·Z (the d̃
+        // column) and the right-hand side; every entry is written.
+        let row = qr.row_unzeroed();
+        let (head, tail) = row.split_at_mut(n + 2);
+        for ((h, t), ph) in head.iter_mut().zip(tail.iter_mut()).zip(&phi) {
+            *h = ph.re * w;
+            *t = wz.im * ph.im - wz.re * ph.re;
+        }
+        head[n] = w;
+        head[n + 1] = 0.0;
+        match fixed_d {
+            None => {
+                row[2 * n + 2] = -wz.re;
+                row[2 * n + 3] = wz.re;
             }
-            if part == 0 {
-                row[n] = w;
-            } else {
-                row[n + 1] = w * s.im;
+            Some(d) => row[2 * n + 2] = d * wz.re,
+        }
+        let row = qr.row_unzeroed();
+        let (head, tail) = row.split_at_mut(n + 2);
+        for ((h, t), ph) in head.iter_mut().zip(tail.iter_mut()).zip(&phi) {
+            *h = ph.im * w;
+            *t = -(wz.re * ph.im + wz.im * ph.re);
+        }
+        head[n] = 0.0;
+        head[n + 1] = w * s.im;
+        match fixed_d {
+            None => {
+                row[2 * n + 2] = -wz.im;
+                row[2 * n + 3] = wz.im;
             }
-            match fixed_d {
-                None => {
-                    row[2 * n + 2] = -take(wz);
-                    row[2 * n + 4] = take(wz);
-                }
-                Some(d) => row[2 * n + 2] = d * take(wz),
-            }
+            Some(d) => row[2 * n + 2] = d * wz.im,
         }
         for (acc, ph) in phi_sum.iter_mut().zip(&phi) {
             *acc += ph.re;
         }
     }
-    if fixed_d.is_none() {
-        let row = qr.row();
+    qr.finish();
+    fixed_d.is_none().then(|| {
+        let mut row = vec![0.0; 2 * n + 3];
         for j in 0..n {
             row[n + 2 + j] = scale * phi_sum[j];
         }
         row[2 * n + 2] = scale * k as f64;
-        row[2 * n + 3] = scale * k as f64;
-    }
-    qr.finish();
+        (row, scale * k as f64)
+    })
 }
 
 /// One pole relocation: solve the relaxed linearised problem
@@ -189,28 +223,37 @@ pub(crate) fn relocate_and_identify(
 ) -> (Option<Poles>, Coefficients) {
     let n = poles.order();
     let cols = 2 * n + 3;
-    let mut qr = RowCompressor::new(cols, 2);
-    relocation_rows(data, poles, None, &mut qr);
+    let mut qr = RowCompressor::new(cols, 1);
+    let (relax, target) = relocation_rows(data, poles, None, &mut qr).expect("relaxed rows");
     let m = n + 2;
-    let x = PivotedQr::from_rows(qr.triangle(m), m, m, padded(m), RANK_TOL).solve(&qr.qtb(1)[..m]);
+    let x = PivotedQr::from_rows(qr.triangle(m), m, m, padded(m), RANK_TOL).solve(&qr.qtb(0)[..m]);
     let coef = Coefficients {
         c: x[..n].to_vec(),
         d: x[n],
         e: x[n + 1],
     };
-    let full = PivotedQr::from_rows(qr.triangle(cols), cols, cols, padded(cols), RANK_TOL);
-    (relocate_from_triangle(data, poles, &full, &qr.qtb(0)), coef)
+    // The relaxed system: the triangle of the data rows (whose right-hand side is zero) over the
+    // relaxation row.
+    let sc = padded(cols);
+    let mut a = qr.triangle(cols);
+    a.resize((cols + 1) * sc, 0.0);
+    a[cols * sc..cols * sc + cols].copy_from_slice(&relax);
+    let full = PivotedQr::from_rows(a, cols + 1, cols, sc, RANK_TOL);
+    let mut b = vec![0.0; cols + 1];
+    b[cols] = target;
+    (relocate_from_triangle(data, poles, &full, &b), coef)
 }
 
-/// The relocation once its system is factored: `qr` of the triangle and `qtb` = (Qᵀb)[..2N + 3].
+/// The relocation once its system is factored: `qr` of the compressed relaxed system and `rhs` its
+/// right-hand side.
 fn relocate_from_triangle(
     data: &FitData,
     poles: &Poles,
     qr: &PivotedQr,
-    qtb: &[f64],
+    rhs: &[f64],
 ) -> Option<Poles> {
     let n = poles.order();
-    let x = qr.solve(qtb);
+    let x = qr.solve(rhs);
     let mut c_sigma = x[n + 2..2 * n + 2].to_vec();
     let mut d_sigma = x[2 * n + 2];
 
@@ -348,12 +391,12 @@ pub(crate) fn identify(data: &FitData, poles: &Poles) -> Coefficients {
 pub(crate) fn evaluate(s: Complex64, poles: &Poles, coef: &Coefficients) -> Complex64 {
     let mut z = Complex64::new(coef.d, 0.0) + s * coef.e;
     for (&a, &c) in poles.real.iter().zip(&coef.c) {
-        z += c / (s - a);
+        z += recip(s - a) * c;
     }
     let o = poles.real.len();
     for (i, &p) in poles.pairs.iter().enumerate() {
         let r = Complex64::new(coef.c[o + 2 * i], coef.c[o + 2 * i + 1]);
-        z += r / (s - p) + r.conj() / (s - p.conj());
+        z += r * recip(s - p) + r.conj() * recip(s - p.conj());
     }
     z
 }
@@ -368,8 +411,9 @@ pub(crate) fn rms_weighted(data: &FitData, poles: &Poles, coef: &Coefficients) -
 
 /// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
 /// fixed point minimises a linearised error, not the error itself). Steps that would move a pole into the
-/// right half-plane or change the real/pair split are rejected. Returns the refined set and the number of
-/// accepted steps.
+/// right half-plane or change the real/pair split are rejected. Stops after a step that lowers the cost by
+/// less than 0.01 % (another Jacobian would not change the fit materially). Returns the refined set and the
+/// number of accepted steps.
 pub(crate) fn refine(
     data: &FitData,
     mut poles: Poles,
@@ -528,7 +572,7 @@ pub(crate) fn refine(
                     cost = tc;
                     lambda = (lambda / 10.0).max(1e-12);
                     accepted += 1;
-                    improved = gain > 1e-5;
+                    improved = gain > 1e-4;
                     break;
                 }
             }
@@ -689,9 +733,10 @@ pub(crate) fn vector_fit_data(
                 converged = true;
                 break;
             }
-            // Noisy data keep the poles wandering at the noise level: stop once the error has not
-            // improved for several relocations.
-            if stalls >= 3 {
+            // Noisy data keep the poles wandering at the noise level: stop at the first relocation that
+            // no longer improves the error when the poles only move by less than 10 % (the refinement
+            // that follows minimises the error itself), otherwise once it has not improved for three.
+            if stalls >= 3 || (stalls >= 1 && change < 0.1) {
                 converged = true;
                 break;
             }

@@ -479,6 +479,17 @@ impl RowCompressor {
         row
     }
 
+    /// The next row, not zeroed (it may hold an earlier row's values): the caller writes all `cols`
+    /// entries of A and one per right-hand side.
+    pub(crate) fn row_unzeroed(&mut self) -> &mut [f64] {
+        if self.pending == BLOCK_ROWS {
+            self.eliminate();
+        }
+        let o = self.pending * self.stride;
+        self.pending += 1;
+        &mut self.blk[o..o + self.width]
+    }
+
     fn eliminate(&mut self) {
         let (len, st) = (self.pending, self.stride);
         let mut sigma = None;
