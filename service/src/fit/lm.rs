@@ -465,4 +465,71 @@ mod tests {
             .run();
         assert!(res.is_err());
     }
+
+    /// Counts the passes a run makes.
+    struct Counted<P>(P, std::cell::Cell<usize>);
+
+    impl<P: NormalEquations> NormalEquations for Counted<P> {
+        fn normal_equations(
+            &self,
+            x: &[f64],
+            jtj: &mut DMatrix<f64>,
+            g: &mut DVector<f64>,
+        ) -> Result<f64, Error> {
+            self.1.set(self.1.get() + 1);
+            self.0.normal_equations(x, jtj, g)
+        }
+    }
+
+    #[test]
+    fn a_run_started_at_the_minimum_stops_after_the_first_pass() {
+        // Data with a residual (no exact fit), so only the predicted-decrease test can stop the run
+        // before a trial point: first converge, then start again from the answer.
+        let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
+        let y: Vec<f64> = t
+            .iter()
+            .enumerate()
+            .map(|(i, t)| 3.0 * (-1.7 * t).exp() + if i % 2 == 0 { 1e-3 } else { -1e-3 })
+            .collect();
+        let run = |x0: Vec<f64>, solver: LevenbergMarquardt| {
+            let problem = Counted(
+                Dense(Decay {
+                    t: t.clone(),
+                    y: y.clone(),
+                }),
+                std::cell::Cell::new(0),
+            );
+            let res = Executor::new(problem, solver)
+                .configure(|s| s.param(DVector::from_vec(x0)).max_iters(200))
+                .run()
+                .unwrap();
+            let passes = res.problem.problem.as_ref().unwrap().1.get();
+            let reason = res.state().get_termination_reason().cloned();
+            (
+                res.state().get_best_param().unwrap().clone(),
+                passes,
+                reason,
+            )
+        };
+        let (p, passes, _) = run(vec![1.0, 0.1], LevenbergMarquardt::default());
+        assert!(
+            passes > 2,
+            "a poor start takes several passes, took {passes}"
+        );
+        // A start a little off the minimum: one Gauss–Newton step, then the test stops the run.
+        let near = vec![p[0] * (1.0 + 1e-4), p[1]];
+        let (_, without, _) = run(
+            near.clone(),
+            LevenbergMarquardt::default().with_predicted_tolerance(0.0),
+        );
+        let (_, with, _) = run(near, LevenbergMarquardt::default());
+        assert!(
+            with < without,
+            "{with} passes with the test, {without} without"
+        );
+        let (q, again, reason) = run(p.as_slice().to_vec(), LevenbergMarquardt::default());
+        assert_eq!(again, 1, "started at the minimum");
+        assert!(matches!(reason, Some(TerminationReason::SolverConverged)));
+        assert!((&q - &p).norm() == 0.0);
+    }
 }
