@@ -11,7 +11,13 @@
 //!
 //! One argmin iteration is one accepted step; rejected trial steps happen inside it. Every trial
 //! point is evaluated once, normal equations included, so an accepted step costs one pass over the
-//! data and its JᵀJ is the one the next iteration (and the covariance) uses. The state carries x,
+//! data and its JᵀJ is the one the next iteration (and the covariance) uses. Each iteration first
+//! asks whether the undamped Gauss–Newton step predicts any worthwhile decrease: when gᵀ(JᵀJ)⁻¹g, the
+//! squared norm of the residual's projection on the range of J, is below `ptol`·χ², the current point
+//! is the minimum to that tolerance and the run stops without evaluating a trial point (the
+//! relative-offset test of Bates & Watts, Technometrics 23 (1981) 179–183, in the form of a relative
+//! predicted reduction as in MINPACK's `ftol` test; from memory). A run started near the minimum, as
+//! the full-data stage of a fit is, then costs two passes: the start and one Gauss–Newton step. The state carries x,
 //! the cost, Jᵀr in the gradient slot (half the gradient of χ²) and JᵀJ in the Hessian slot (half
 //! the Gauss–Newton Hessian). Buffers are allocated once per run, not per iteration.
 
@@ -142,6 +148,9 @@ pub struct LevenbergMarquardt {
     pub xtol: f64,
     /// Converged when every |gᵢ| / (‖Jᵢ‖·‖r‖) < `gtol` (cosine between residual and a column).
     pub gtol: f64,
+    /// Converged, without a trial point, when the Gauss–Newton step at x predicts a decrease
+    /// gᵀ(JᵀJ)⁻¹g below `ptol`·χ² (0 turns the test off).
+    pub ptol: f64,
     /// Largest change of any parameter in one step (the step is shortened to it); for log-parameters
     /// 5 means a factor e⁵ ≈ 150.
     pub max_step: f64,
@@ -159,6 +168,7 @@ impl Default for LevenbergMarquardt {
             ftol: 1e-9,
             xtol: 1e-10,
             gtol: 1e-10,
+            ptol: 1e-9,
             max_step: 5.0,
             max_trials: 40,
             lambda: 1e-3,
@@ -180,6 +190,13 @@ impl LevenbergMarquardt {
     pub fn with_tolerances(mut self, ftol: f64, xtol: f64) -> Self {
         self.ftol = ftol;
         self.xtol = xtol;
+        self
+    }
+
+    /// Converges, without a trial point, when the Gauss–Newton step predicts a decrease below
+    /// `ptol`·cost.
+    pub fn with_predicted_tolerance(mut self, ptol: f64) -> Self {
+        self.ptol = ptol;
         self
     }
 }
@@ -285,6 +302,21 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
         if cost == 0.0 || g_cos < self.gtol {
             self.stop = Some(TerminationReason::SolverConverged);
             return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
+        }
+        if self.ptol > 0.0 {
+            // The undamped step δ = −(JᵀJ)⁻¹g predicts the decrease −(2δᵀg + δᵀJᵀJδ) = −δᵀg. A
+            // singular JᵀJ (no Cholesky factor) or a non-finite step skips the test.
+            w.a.copy_from(&jtj);
+            for i in 0..n {
+                w.delta[i] = -g[i];
+            }
+            if cholesky_solve(&mut w.a, &mut w.delta) {
+                let predicted = -w.delta.dot(&g);
+                if predicted.is_finite() && predicted <= self.ptol * cost {
+                    self.stop = Some(TerminationReason::SolverConverged);
+                    return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
+                }
+            }
         }
 
         for _ in 0..self.max_trials {
@@ -432,5 +464,72 @@ mod tests {
             .configure(|s| s.param(DVector::from_vec(vec![1.0, -1e6])).max_iters(10))
             .run();
         assert!(res.is_err());
+    }
+
+    /// Counts the passes a run makes.
+    struct Counted<P>(P, std::cell::Cell<usize>);
+
+    impl<P: NormalEquations> NormalEquations for Counted<P> {
+        fn normal_equations(
+            &self,
+            x: &[f64],
+            jtj: &mut DMatrix<f64>,
+            g: &mut DVector<f64>,
+        ) -> Result<f64, Error> {
+            self.1.set(self.1.get() + 1);
+            self.0.normal_equations(x, jtj, g)
+        }
+    }
+
+    #[test]
+    fn a_run_started_at_the_minimum_stops_after_the_first_pass() {
+        // Data with a residual (no exact fit), so only the predicted-decrease test can stop the run
+        // before a trial point: first converge, then start again from the answer.
+        let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
+        let y: Vec<f64> = t
+            .iter()
+            .enumerate()
+            .map(|(i, t)| 3.0 * (-1.7 * t).exp() + if i % 2 == 0 { 1e-3 } else { -1e-3 })
+            .collect();
+        let run = |x0: Vec<f64>, solver: LevenbergMarquardt| {
+            let problem = Counted(
+                Dense(Decay {
+                    t: t.clone(),
+                    y: y.clone(),
+                }),
+                std::cell::Cell::new(0),
+            );
+            let res = Executor::new(problem, solver)
+                .configure(|s| s.param(DVector::from_vec(x0)).max_iters(200))
+                .run()
+                .unwrap();
+            let passes = res.problem.problem.as_ref().unwrap().1.get();
+            let reason = res.state().get_termination_reason().cloned();
+            (
+                res.state().get_best_param().unwrap().clone(),
+                passes,
+                reason,
+            )
+        };
+        let (p, passes, _) = run(vec![1.0, 0.1], LevenbergMarquardt::default());
+        assert!(
+            passes > 2,
+            "a poor start takes several passes, took {passes}"
+        );
+        // A start a little off the minimum: one Gauss–Newton step, then the test stops the run.
+        let near = vec![p[0] * (1.0 + 1e-4), p[1]];
+        let (_, without, _) = run(
+            near.clone(),
+            LevenbergMarquardt::default().with_predicted_tolerance(0.0),
+        );
+        let (_, with, _) = run(near, LevenbergMarquardt::default());
+        assert!(
+            with < without,
+            "{with} passes with the test, {without} without"
+        );
+        let (q, again, reason) = run(p.as_slice().to_vec(), LevenbergMarquardt::default());
+        assert_eq!(again, 1, "started at the minimum");
+        assert!(matches!(reason, Some(TerminationReason::SolverConverged)));
+        assert!((&q - &p).norm() == 0.0);
     }
 }

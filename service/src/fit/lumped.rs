@@ -179,6 +179,23 @@ fn termination_of(reason: Option<&TerminationReason>) -> Termination {
 pub const COARSE_ABOVE_POINTS: usize = 600;
 /// Points of the thinned copy.
 pub const COARSE_POINTS: usize = 200;
+/// Points of a first, coarser copy for structures without sections (whose resonances a thinner
+/// copy could step over).
+pub const COARSEST_POINTS: usize = 50;
+
+/// The strides of the thinned copies [`fit_structure`] fits before the full sweep, coarsest first.
+fn coarse_strides(points: usize, structure: &Structure) -> Vec<usize> {
+    if points <= COARSE_ABOVE_POINTS {
+        return Vec::new();
+    }
+    let fine = points.div_ceil(COARSE_POINTS);
+    let coarsest = points.div_ceil(COARSEST_POINTS);
+    if structure.sections.is_empty() && coarsest >= 2 * fine {
+        vec![coarsest, fine]
+    } else {
+        vec![fine]
+    }
+}
 
 struct LmRun {
     theta: Vec<f64>,
@@ -249,8 +266,10 @@ fn thinned(data: &FitData, stride: usize) -> FitData {
 /// Fits one structure from a starting model (which must have every element the structure has).
 ///
 /// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
-/// evenly picked points; LM then continues on the full sweep from there, so the result is the
-/// full-data optimum (the thinning only saves iterations on the full data).
+/// evenly picked points (a structure without sections first on about [`COARSEST_POINTS`]); LM then
+/// continues on the full sweep from there, so the result is the full-data optimum (the thinning only
+/// saves iterations on the full data: from the thinned optimum the full stage usually takes one
+/// Gauss–Newton step and stops on the predicted decrease, two passes over the sweep).
 pub fn fit_structure(
     data: &FitData,
     structure: &Structure,
@@ -269,21 +288,29 @@ pub fn fit_structure(
     }
     let n = data.frequency_hz.len();
     let mut iterations = 0;
-    if n > COARSE_ABOVE_POINTS {
-        let coarse = thinned(data, n.div_ceil(COARSE_POINTS));
-        // Only a starting point: a loose tolerance is enough.
-        let solver = LevenbergMarquardt::default().with_tolerances(1e-6, 1e-6);
+    for stride in coarse_strides(n, structure) {
+        let coarse = thinned(data, stride);
+        // Only a starting point: loose tolerances are enough. After a coarser stage the start is
+        // close: begin nearly Gauss–Newton.
+        let mut solver = LevenbergMarquardt::default()
+            .with_tolerances(1e-6, 1e-6)
+            .with_predicted_tolerance(1e-6);
+        if iterations > 0 {
+            solver = solver.with_initial_damping(1e-8);
+        }
         match run_lm(
             LumpedProblem::new(&coarse, structure),
             solver,
             theta.clone(),
-            max_iterations,
-            time_limit,
+            max_iterations.saturating_sub(iterations).max(1),
+            time_limit
+                .saturating_sub(started.elapsed())
+                .max(Duration::from_millis(1)),
             control,
         ) {
             Ok(r) => {
                 theta = r.theta;
-                iterations = r.iterations;
+                iterations += r.iterations;
             }
             Err(FitError::Cancelled) => return Err(FitError::Cancelled),
             Err(_) => {}

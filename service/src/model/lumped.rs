@@ -367,7 +367,9 @@ impl Block {
 /// Z = N/M + jωls with M = D + jωcp·N. Then, with q = 1/M:
 /// ∂Z/∂ln l0 = a·rp²·q², ∂Z/∂ln rp = a²·rp·q², ∂Z/∂ln rdc = rdc·(Dq)², ∂Z/∂ln k_ac = k_ac√f·(Dq)²,
 /// ∂Z/∂ln cp = −jωcp·(Nq)², ∂Z/∂ln ls = jωls (with rp → 1 in the l0 term when rp is absent).
-/// Structures with sections take the per-point [`eval`].
+/// Structures with sections take the per-point [`eval`]. Always inlined, so a caller compiled for
+/// wider vectors (AVX2) gets this loop compiled for them too.
+#[inline(always)]
 pub fn eval_block(
     structure: &Structure,
     v: &Values,
