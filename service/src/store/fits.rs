@@ -179,11 +179,11 @@ impl Store {
             .collect::<Result<Vec<_>, _>>()?)
     }
 
+    /// Fits per status, from the counts the `fit_status_counts` triggers keep (migration 0004).
     pub async fn queue_counts(&self) -> StoreResult<QueueCounts> {
-        let rows: Vec<(String, i64)> =
-            sqlx::query_as("SELECT status, COUNT(*) FROM fits GROUP BY status")
-                .fetch_all(&self.reader)
-                .await?;
+        let rows: Vec<(String, i64)> = sqlx::query_as("SELECT status, fits FROM fit_status_counts")
+            .fetch_all(&self.reader)
+            .await?;
         let get = |s: &str| rows.iter().find(|r| r.0 == s).map_or(0, |r| r.1);
         Ok(QueueCounts {
             queued: get("queued"),

@@ -505,6 +505,67 @@ mod tests {
         );
     }
 
+    /// The kept counts against a full count of the fits table.
+    async fn assert_counts_match(store: &Store) {
+        let counted: Vec<(String, i64)> =
+            sqlx::query_as("SELECT status, COUNT(*) FROM fits GROUP BY status")
+                .fetch_all(&store.reader)
+                .await
+                .unwrap();
+        let kept = store.queue_counts().await.unwrap();
+        let get = |s: &str| counted.iter().find(|r| r.0 == s).map_or(0, |r| r.1);
+        assert_eq!(
+            (
+                kept.queued,
+                kept.running,
+                kept.succeeded,
+                kept.failed,
+                kept.cancelled
+            ),
+            (
+                get("queued"),
+                get("running"),
+                get("succeeded"),
+                get("failed"),
+                get("cancelled")
+            )
+        );
+    }
+
+    #[tokio::test]
+    async fn the_queue_counts_follow_every_status_change() {
+        let (store, _dir) = store_with_part().await;
+        let ids = [
+            queue_one(&store, 0).await,
+            queue_one(&store, 1).await,
+            queue_one(&store, 2).await,
+        ];
+        assert_eq!(store.queue_counts().await.unwrap().queued, 3);
+        assert_counts_match(&store).await;
+        let lease = Duration::from_secs(30);
+        let done = store.claim_job(lease, 3).await.unwrap().unwrap();
+        let failed = store.claim_job(lease, 3).await.unwrap().unwrap();
+        assert_eq!(store.queue_counts().await.unwrap().running, 2);
+        assert_counts_match(&store).await;
+        let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
+        let (basis, baseline) = store.assessment_basis(done.fit_id).await.unwrap();
+        let a = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
+        assert!(store.complete_succeeded(&done, &r, &a).await.unwrap());
+        assert!(
+            store
+                .complete_unsuccessful(&failed, false, "bad file")
+                .await
+                .unwrap()
+        );
+        store.cancel_fit("test", ids[2]).await.unwrap();
+        let c = store.queue_counts().await.unwrap();
+        assert_eq!(
+            (c.queued, c.running, c.succeeded, c.failed, c.cancelled),
+            (0, 0, 1, 1, 1)
+        );
+        assert_counts_match(&store).await;
+    }
+
     #[tokio::test]
     async fn a_job_that_never_finishes_fails_after_its_attempts_and_a_release_is_not_counted() {
         let (store, _dir) = store_with_part().await;
