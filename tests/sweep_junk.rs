@@ -196,6 +196,10 @@ fn apply(text: &str, m: &Mutation) -> Vec<u8> {
         }
         Mutation::FlipByte(p, v) => {
             let mut b = text.as_bytes().to_vec();
+            if b.is_empty() {
+                // An earlier mutation may have truncated the file to nothing: no byte to flip.
+                return b;
+            }
             let k = p % b.len();
             b[k] = v;
             return b;
