@@ -145,18 +145,11 @@ impl Store {
     /// baseline (with the baseline's stored report). Read without the writer, before the result is
     /// written; [`Store::complete_succeeded`] checks it still holds.
     pub async fn assessment_basis(&self, fit_id: i64) -> StoreResult<(Basis, Option<String>)> {
-        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
-            "SELECT baseline_fit_id, {} FROM parts \
-             WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
-            super::parts::LIMIT_COLUMNS
-        )))
-        .bind(fit_id)
-        .fetch_one(&self.reader)
-        .await?;
-        let basis = Basis {
-            limits: super::parts::limits_from_row(&row)?,
-            baseline_fit_id: row.try_get("baseline_fit_id")?,
-        };
+        let row = sqlx::query(sqlx::AssertSqlSafe(basis_sql()))
+            .bind(fit_id)
+            .fetch_one(&self.reader)
+            .await?;
+        let (_, basis) = basis_from_row(&row)?;
         let baseline_json = match basis.baseline_fit_id {
             Some(id) => sqlx::query_scalar::<_, Option<String>>(
                 "SELECT report_json FROM fits WHERE fit_id = ?",
@@ -185,19 +178,11 @@ impl Store {
         if !release_claim(&mut tx, claim).await? {
             return Ok(false);
         }
-        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
-            "SELECT part_id, baseline_fit_id, {} FROM parts \
-             WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
-            super::parts::LIMIT_COLUMNS
-        )))
-        .bind(claim.fit_id)
-        .fetch_one(&mut *tx)
-        .await?;
-        let part_id: i64 = row.try_get("part_id")?;
-        let current = Basis {
-            limits: super::parts::limits_from_row(&row)?,
-            baseline_fit_id: row.try_get("baseline_fit_id")?,
-        };
+        let row = sqlx::query(sqlx::AssertSqlSafe(basis_sql()))
+            .bind(claim.fit_id)
+            .fetch_one(&mut *tx)
+            .await?;
+        let (part_id, current) = basis_from_row(&row)?;
         let rejudged;
         let judgement = if current == assessment.judgement.basis {
             &assessment.judgement
@@ -330,6 +315,26 @@ impl Store {
         tx.commit().await?;
         Ok(done)
     }
+}
+
+/// The part of a fit with what its result is judged against (one bound parameter: the fit id).
+fn basis_sql() -> String {
+    format!(
+        "SELECT part_id, baseline_fit_id, {} FROM parts \
+         WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
+        super::parts::LIMIT_COLUMNS
+    )
+}
+
+/// The part id and the [`Basis`] of a [`basis_sql`] row.
+fn basis_from_row(row: &sqlx::sqlite::SqliteRow) -> StoreResult<(i64, Basis)> {
+    Ok((
+        row.try_get("part_id")?,
+        Basis {
+            limits: super::parts::limits_from_row(row)?,
+            baseline_fit_id: row.try_get("baseline_fit_id")?,
+        },
+    ))
 }
 
 /// Marks the job done if `claim` still holds it.
