@@ -1,10 +1,13 @@
 //! Generates the gRPC messages and services from `api/henrybook.proto` with protox (pure Rust, so no
-//! `protoc` is needed) and tonic-prost-build.
+//! `protoc` is needed) and tonic-prost-build. Also tells cargo to rebuild the crate when a migration
+//! is added or changed: `sqlx::migrate!` embeds `migrations/` at compile time.
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let api = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../api");
     let proto = api.join("henrybook.proto");
     println!("cargo:rerun-if-changed={}", proto.display());
+    let migrations = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations");
+    println!("cargo:rerun-if-changed={}", migrations.display());
     let descriptors = protox::compile([&proto], [&api])?;
     tonic_prost_build::configure().compile_fds(descriptors)?;
     Ok(())

@@ -37,6 +37,26 @@ fn proc_status_kib(pid: u32, key: &str) -> Option<u64> {
         .ok()
 }
 
+/// CPU time (user, system) a process has used so far, in seconds, from /proc/PID/stat.
+fn cpu_seconds(pid: &str) -> Option<(f64, f64)> {
+    let text = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
+    // The command name (field 2) is in parentheses and may hold spaces: count fields after it.
+    let rest = &text[text.rfind(')')? + 1..];
+    let fields: Vec<&str> = rest.split_whitespace().collect();
+    let ticks: f64 = Command::new("getconf")
+        .arg("CLK_TCK")
+        .output()
+        .ok()
+        .and_then(|o| String::from_utf8(o.stdout).ok())
+        .and_then(|t| t.trim().parse().ok())
+        .unwrap_or(100.0);
+    // utime and stime are fields 14 and 15 of the whole line, 12 and 13 after the name.
+    Some((
+        fields.get(11)?.parse::<f64>().ok()? / ticks,
+        fields.get(12)?.parse::<f64>().ok()? / ticks,
+    ))
+}
+
 /// Invented figures for the seeded parts: SRF log-uniform in 100 kHz–2 GHz (a fixed LCG, no I/O).
 async fn seed(path: &std::path::Path) -> anyhow::Result<()> {
     use sqlx::sqlite::SqliteConnectOptions;
@@ -173,6 +193,8 @@ async fn main() -> anyhow::Result<()> {
             .map(|i| synthetic_csv(&simple_model(1e-5 * (1.0 + i as f64 * 1e-3), 0.05, 5e-12), 1e3, 1e8, POINTS))
             .collect();
         let gate = Arc::new(Semaphore::new(8));
+        let server_cpu_before = cpu_seconds(&pid.to_string());
+        let own_cpu_before = cpu_seconds("self");
         let t_upload = Instant::now();
         let mut handles = Vec::new();
         for (i, bytes) in files.into_iter().enumerate() {
@@ -204,6 +226,35 @@ async fn main() -> anyhow::Result<()> {
         }
         let fit_s = t_upload.elapsed().as_secs_f64();
         println!("{n} sweeps of {POINTS} points: uploaded in {upload_s:.2} s, all fitted after {fit_s:.2} s → {:.1} fits/s end to end", n as f64 / fit_s);
+        // CPU per upload+fit: less sensitive than wall time to whatever else the machine runs.
+        let used = |before: Option<(f64, f64)>, now: Option<(f64, f64)>| match (before, now) {
+            (Some((u0, s0)), Some((u1, s1))) => format!(
+                "{:.2} ms user + {:.2} ms system per sweep",
+                (u1 - u0) * 1e3 / n as f64,
+                (s1 - s0) * 1e3 / n as f64
+            ),
+            _ => "unknown".to_string(),
+        };
+        println!(
+            "CPU over uploads and fits: server {}; this script {}",
+            used(server_cpu_before, cpu_seconds(&pid.to_string())),
+            used(own_cpu_before, cpu_seconds("self"))
+        );
+
+        // Where a job's time went, from the server's own step histograms (means over all jobs).
+        let text = http.get(format!("{base}/metrics")).send().await?.text().await?;
+        let steps: Vec<String> = ["claim", "load", "engine", "assess", "write"]
+            .iter()
+            .filter_map(|step| {
+                let read = |suffix: &str| {
+                    let key = format!("henrybook_job_step_seconds_{suffix}{{step=\"{step}\"}} ");
+                    text.lines().find_map(|l| l.strip_prefix(key.as_str())?.trim().parse::<f64>().ok())
+                };
+                let (sum, count) = (read("sum")?, read("count")?);
+                (count > 0.0).then(|| format!("{step} {:.2} ms", sum / count * 1e3))
+            })
+            .collect();
+        println!("server steps per job (mean, waiting included): {}", steps.join(", "));
 
         // Status poll latency (sequential, like one dashboard).
         let mut poll = Vec::new();
