@@ -254,7 +254,11 @@ async fn main() -> anyhow::Result<()> {
                 (count > 0.0).then(|| format!("{step} {:.2} ms", sum / count * 1e3))
             })
             .collect();
-        println!("server steps per job (mean, waiting included): {}", steps.join(", "));
+        if steps.is_empty() {
+            println!("server steps per job: not reported by this server (no henrybook_job_step_seconds)");
+        } else {
+            println!("server steps per job (mean, waiting included): {}", steps.join(", "));
+        }
 
         // Status poll latency (sequential, like one dashboard).
         let mut poll = Vec::new();
