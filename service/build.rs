@@ -3,11 +3,14 @@
 //! is added or changed: `sqlx::migrate!` embeds `migrations/` at compile time.
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
-    let api = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../api");
+    let crate_dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    let api = crate_dir.join("../api");
     let proto = api.join("henrybook.proto");
     println!("cargo:rerun-if-changed={}", proto.display());
-    let migrations = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../migrations");
-    println!("cargo:rerun-if-changed={}", migrations.display());
+    println!(
+        "cargo:rerun-if-changed={}",
+        crate_dir.join("../migrations").display()
+    );
     let descriptors = protox::compile([&proto], [&api])?;
     tonic_prost_build::configure().compile_fds(descriptors)?;
     Ok(())

@@ -37,19 +37,23 @@ fn proc_status_kib(pid: u32, key: &str) -> Option<u64> {
         .ok()
 }
 
-/// CPU time (user, system) a process has used so far, in seconds, from /proc/PID/stat.
-fn cpu_seconds(pid: &str) -> Option<(f64, f64)> {
-    let text = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
-    // The command name (field 2) is in parentheses and may hold spaces: count fields after it.
-    let rest = &text[text.rfind(')')? + 1..];
-    let fields: Vec<&str> = rest.split_whitespace().collect();
-    let ticks: f64 = Command::new("getconf")
+/// Clock ticks per second of the CPU times in /proc/PID/stat.
+fn clock_ticks() -> f64 {
+    Command::new("getconf")
         .arg("CLK_TCK")
         .output()
         .ok()
         .and_then(|o| String::from_utf8(o.stdout).ok())
         .and_then(|t| t.trim().parse().ok())
-        .unwrap_or(100.0);
+        .unwrap_or(100.0)
+}
+
+/// CPU time (user, system) a process has used so far, in seconds, from /proc/PID/stat.
+fn cpu_seconds(pid: &str, ticks: f64) -> Option<(f64, f64)> {
+    let text = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
+    // The command name (field 2) is in parentheses and may hold spaces: count fields after it.
+    let rest = &text[text.rfind(')')? + 1..];
+    let fields: Vec<&str> = rest.split_whitespace().collect();
     // utime and stime are fields 14 and 15 of the whole line, 12 and 13 after the name.
     Some((
         fields.get(11)?.parse::<f64>().ok()? / ticks,
@@ -193,8 +197,9 @@ async fn main() -> anyhow::Result<()> {
             .map(|i| synthetic_csv(&simple_model(1e-5 * (1.0 + i as f64 * 1e-3), 0.05, 5e-12), 1e3, 1e8, POINTS))
             .collect();
         let gate = Arc::new(Semaphore::new(8));
-        let server_cpu_before = cpu_seconds(&pid.to_string());
-        let own_cpu_before = cpu_seconds("self");
+        let (server, ticks) = (pid.to_string(), clock_ticks());
+        let server_cpu_before = cpu_seconds(&server, ticks);
+        let own_cpu_before = cpu_seconds("self", ticks);
         let t_upload = Instant::now();
         let mut handles = Vec::new();
         for (i, bytes) in files.into_iter().enumerate() {
@@ -237,28 +242,9 @@ async fn main() -> anyhow::Result<()> {
         };
         println!(
             "CPU over uploads and fits: server {}; this script {}",
-            used(server_cpu_before, cpu_seconds(&pid.to_string())),
-            used(own_cpu_before, cpu_seconds("self"))
+            used(server_cpu_before, cpu_seconds(&server, ticks)),
+            used(own_cpu_before, cpu_seconds("self", ticks))
         );
-
-        // Where a job's time went, from the server's own step histograms (means over all jobs).
-        let text = http.get(format!("{base}/metrics")).send().await?.text().await?;
-        let steps: Vec<String> = ["claim", "load", "engine", "assess", "write"]
-            .iter()
-            .filter_map(|step| {
-                let read = |suffix: &str| {
-                    let key = format!("henrybook_job_step_seconds_{suffix}{{step=\"{step}\"}} ");
-                    text.lines().find_map(|l| l.strip_prefix(key.as_str())?.trim().parse::<f64>().ok())
-                };
-                let (sum, count) = (read("sum")?, read("count")?);
-                (count > 0.0).then(|| format!("{step} {:.2} ms", sum / count * 1e3))
-            })
-            .collect();
-        if steps.is_empty() {
-            println!("server steps per job: not reported by this server (no henrybook_job_step_seconds)");
-        } else {
-            println!("server steps per job (mean, waiting included): {}", steps.join(", "));
-        }
 
         // Status poll latency (sequential, like one dashboard).
         let mut poll = Vec::new();
