@@ -42,6 +42,12 @@ pub fn metrics_handle() -> PrometheusHandle {
                         ],
                     )
                 })
+                .and_then(|b| {
+                    b.set_buckets_for_metric(
+                        Matcher::Full("henrybook_write_batch_requests".into()),
+                        &[1.0, 2.0, 4.0, 8.0, 16.0, 32.0, 64.0],
+                    )
+                })
                 .expect("bucket lists are not empty");
             let recorder = builder.build_recorder();
             let handle = recorder.handle();

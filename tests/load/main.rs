@@ -220,6 +220,8 @@ async fn main() -> anyhow::Result<()> {
             ids.push(h.await??);
         }
         let upload_s = t_upload.elapsed().as_secs_f64();
+        let q: Value = http.get(format!("{base}/api/v1/queue")).bearer_auth(&inspector).send().await?.json().await?;
+        let fitted_during_upload = q["succeeded"].as_u64().unwrap_or_default().saturating_sub(SEEDED_PARTS as u64);
         loop {
             let q: Value = http.get(format!("{base}/api/v1/queue")).bearer_auth(&inspector).send().await?.json().await?;
             if q["queued"] == 0 && q["running"] == 0 {
@@ -230,7 +232,7 @@ async fn main() -> anyhow::Result<()> {
             tokio::time::sleep(Duration::from_millis(20)).await;
         }
         let fit_s = t_upload.elapsed().as_secs_f64();
-        println!("{n} sweeps of {POINTS} points: uploaded in {upload_s:.2} s, all fitted after {fit_s:.2} s → {:.1} fits/s end to end", n as f64 / fit_s);
+        println!("{n} sweeps of {POINTS} points: uploaded in {upload_s:.2} s ({fitted_during_upload} fitted by then), all fitted after {fit_s:.2} s → {:.1} fits/s end to end", n as f64 / fit_s);
         // CPU per upload+fit: less sensitive than wall time to whatever else the machine runs.
         let used = |before: Option<(f64, f64)>, now: Option<(f64, f64)>| match (before, now) {
             (Some((u0, s0)), Some((u1, s1))) => format!(
@@ -245,6 +247,33 @@ async fn main() -> anyhow::Result<()> {
             used(server_cpu_before, cpu_seconds(&server, ticks)),
             used(own_cpu_before, cpu_seconds("self", ticks))
         );
+        // Group commit: how many writes shared each transaction (the server's own histogram).
+        let metrics = http.get(format!("{base}/metrics")).send().await?.text().await?;
+        let series = |name: &str| {
+            metrics
+                .lines()
+                .find_map(|l| l.strip_prefix(name)?.trim().parse::<f64>().ok())
+        };
+        if let (Some(sum), Some(count)) = (
+            series("henrybook_fit_duration_seconds_sum"),
+            series("henrybook_fit_duration_seconds_count"),
+        ) && count > 0.0
+        {
+            println!(
+                "server's engine time per fit (sweep parsed and fitted): {:.2} ms mean",
+                sum / count * 1e3
+            );
+        }
+        if let (Some(sum), Some(count)) = (
+            series("henrybook_write_batch_requests_sum"),
+            series("henrybook_write_batch_requests_count"),
+        ) && count > 0.0
+        {
+            println!(
+                "write batches since start: {count:.0}, {:.2} requests per transaction on average",
+                sum / count
+            );
+        }
 
         // Status poll latency (sequential, like one dashboard).
         let mut poll = Vec::new();

@@ -370,7 +370,7 @@ pub async fn accept_upload(
         detail: format!("{}: {}", e.file_name, e.error.message),
         line: e.error.line,
     })?;
-    let up = state.store.upload(actor, &new).await?;
+    let up = state.store.upload(actor, new).await?;
     if !up.duplicate {
         state.jobs.wake();
     }

@@ -140,43 +140,53 @@ impl Pool {
 
     /// Runs until `stop` turns true, then drains (see the module docs).
     pub async fn run(self, mut stop: watch::Receiver<bool>) {
-        let permits = Arc::new(Semaphore::new(self.settings.workers));
+        // A worker slot is taken only for the fit itself; up to as many jobs again are claimed and
+        // loaded ahead, so a slot that frees up never waits for a claim or a read. A job counts
+        // against `permits` from its claim until its fit ends (not while its outcome is written).
+        let engine_slots = Arc::new(Semaphore::new(self.settings.workers));
+        let permits = Arc::new(Semaphore::new(4 * self.settings.workers));
         let (release_tx, release_rx) = watch::channel(false);
         let mut tasks = JoinSet::new();
         loop {
             if *stop.borrow() {
                 break;
             }
-            let permit = tokio::select! {
+            let first = tokio::select! {
                 p = permits.clone().acquire_owned() => p.expect("semaphore is never closed"),
                 _ = stop.changed() => break,
             };
+            // Every idle worker is filled by one claim transaction.
+            let mut free = vec![first];
+            while let Ok(p) = permits.clone().try_acquire_owned() {
+                free.push(p);
+            }
             while tasks.try_join_next().is_some() {}
             match self
                 .store
-                .claim_job(self.settings.lease, self.settings.max_attempts)
+                .claim_jobs(self.settings.lease, self.settings.max_attempts, free.len())
                 .await
             {
-                Ok(Some(claim)) => {
-                    let job = RunningJob {
-                        store: self.store.clone(),
-                        engine: self.engine.clone(),
-                        settings: self.settings.clone(),
-                        handle: self.handle.clone(),
-                        release: release_rx.clone(),
-                    };
-                    let span =
-                        tracing::info_span!("fit", fit_id = claim.fit_id, attempt = claim.attempt);
-                    tasks.spawn(
-                        async move {
-                            job.run(claim).await;
-                            drop(permit);
-                        }
-                        .instrument(span),
-                    );
+                Ok(claims) if !claims.is_empty() => {
+                    for claim in claims {
+                        let permit = free.pop().expect("no more claims than free permits");
+                        let job = RunningJob {
+                            store: self.store.clone(),
+                            engine: self.engine.clone(),
+                            settings: self.settings.clone(),
+                            handle: self.handle.clone(),
+                            release: release_rx.clone(),
+                            engine_slots: engine_slots.clone(),
+                        };
+                        let span = tracing::info_span!(
+                            "fit",
+                            fit_id = claim.fit_id,
+                            attempt = claim.attempt
+                        );
+                        tasks.spawn(async move { job.run(claim, permit).await }.instrument(span));
+                    }
                 }
-                Ok(None) => {
-                    drop(permit);
+                Ok(_) => {
+                    drop(free);
                     tokio::select! {
                         _ = self.handle.notify.notified() => {}
                         _ = tokio::time::sleep(self.settings.poll_interval) => {}
@@ -184,7 +194,7 @@ impl Pool {
                     }
                 }
                 Err(e) => {
-                    drop(permit);
+                    drop(free);
                     tracing::error!(error = %e, "cannot claim a job");
                     tokio::time::sleep(self.settings.poll_interval).await;
                 }
@@ -215,6 +225,8 @@ struct RunningJob {
     settings: PoolSettings,
     handle: JobsHandle,
     release: watch::Receiver<bool>,
+    /// The worker slots: held while the engine runs.
+    engine_slots: Arc<Semaphore>,
 }
 
 enum Outcome {
@@ -225,8 +237,10 @@ enum Outcome {
 }
 
 impl RunningJob {
-    async fn run(mut self, claim: Claim) {
-        let started = Instant::now();
+    /// Runs one claimed job: waits for a worker slot, fits, gives the slot back and writes the
+    /// outcome. `claimed` counts the job among those claimed ahead of a slot; it is given back with
+    /// the slot, so jobs still writing their outcome do not hold up the next claims.
+    async fn run(mut self, claim: Claim, claimed: tokio::sync::OwnedSemaphorePermit) {
         let fit_id = claim.fit_id;
         let input = match self.store.job_input(fit_id).await {
             Ok(i) => i,
@@ -253,10 +267,22 @@ impl RunningJob {
         };
         let follow_up = rational_follow_up(&input);
         let span = tracing::Span::current();
-        let mut work = tokio::task::spawn_blocking(move || {
-            let _entered = span.enter();
-            run_engine(engine.as_ref(), &input, &control)
-        });
+        let slots = self.engine_slots.clone();
+        let store = self.store.clone();
+        let claim_now = claim.clone();
+        let work = async move {
+            let _slot = slots.acquire_owned().await;
+            // Not waited for: the fit starts now, and the outcome is queued behind this write.
+            drop(store.mark_started(&claim_now));
+            let started = Instant::now();
+            let outcome = tokio::task::spawn_blocking(move || {
+                let _entered = span.enter();
+                run_engine(engine.as_ref(), &input, &control)
+            })
+            .await;
+            (outcome, started.elapsed())
+        };
+        tokio::pin!(work);
 
         let mut ticker =
             tokio::time::interval((self.settings.lease / 3).max(Duration::from_millis(50)));
@@ -268,7 +294,7 @@ impl RunningJob {
         }
         let joined = loop {
             tokio::select! {
-                r = &mut work => break r,
+                done = &mut work => break done,
                 _ = ticker.tick() => {
                     let p = f64::from_bits(progress.load(Ordering::Relaxed));
                     match self.store.renew_lease(&claim, self.settings.lease, p).await {
@@ -293,8 +319,11 @@ impl RunningJob {
             .lock()
             .expect("running map")
             .remove(&fit_id);
+        drop(claimed);
+        let (joined, took) = joined;
         let outcome = joined.unwrap_or(Outcome::Panic);
-        let seconds = started.elapsed().as_secs_f64();
+        // The engine's own time (the sweep parsed and fitted), without the wait for a slot.
+        let seconds = took.as_secs_f64();
         if lost {
             metrics::counter!("henrybook_fits_total", "outcome" => "lease_lost").increment(1);
             return;

@@ -49,65 +49,47 @@ impl Store {
         lease: Duration,
         max_attempts: i64,
     ) -> StoreResult<Option<Claim>> {
-        let now = now_ms();
-        let mut tx = self.write().await?;
-        let cancelled: Vec<i64> = sqlx::query_scalar(
-            "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-             WHERE state = 'running' AND lease_until_ms < ? AND cancel_requested = 1 RETURNING fit_id",
-        )
-        .bind(now)
-        .fetch_all(&mut *tx)
-        .await?;
-        for fit_id in cancelled {
-            settle(&mut tx, fit_id, "cancelled", None, now).await?;
-        }
-        let exhausted: Vec<(i64, i64)> = sqlx::query_as(
-            "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-             WHERE state = 'running' AND lease_until_ms < ? AND attempts >= ? \
-             RETURNING fit_id, attempts",
-        )
-        .bind(now)
-        .bind(max_attempts)
-        .fetch_all(&mut *tx)
-        .await?;
-        for (fit_id, attempts) in exhausted {
-            let error = format!(
-                "the fit was started {attempts} times and never finished (the worker stopped each time); \
-                 retry it to run it again"
-            );
-            settle(&mut tx, fit_id, "failed", Some(&error), now).await?;
-        }
-        let token = new_token();
-        let claimed: Option<(i64, i64)> = sqlx::query_as(
-            "UPDATE jobs SET state = 'running', claim_token = ?, lease_until_ms = ?, \
-             attempts = attempts + 1 WHERE fit_id = (SELECT fit_id FROM jobs \
-             WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
-             ORDER BY fit_id LIMIT 1) RETURNING fit_id, attempts",
-        )
-        .bind(&token)
-        .bind(now + ms(lease))
-        .bind(now)
-        .fetch_optional(&mut *tx)
-        .await?;
-        let claim = match claimed {
-            Some((fit_id, attempt)) => {
-                sqlx::query(
-                    "UPDATE fits SET status = 'running', progress = 0, started_at_ms = ? WHERE fit_id = ?",
+        Ok(self.claim_jobs(lease, max_attempts, 1).await?.pop())
+    }
+
+    /// Claims up to `n` runnable jobs, oldest first, in one transaction (a pool with `n` idle
+    /// workers fills them with one commit).
+    pub async fn claim_jobs(
+        &self,
+        lease: Duration,
+        max_attempts: i64,
+        n: usize,
+    ) -> StoreResult<Vec<Claim>> {
+        self.batch
+            .submit(move |conn| Box::pin(claim_in(conn, lease, max_attempts, n)))
+            .await
+    }
+
+    /// Shows a claimed fit as running, when its worker starts the engine (a pool claims a few jobs
+    /// ahead of its free workers). The write is queued at once and needs no waiting for: the
+    /// outcome, queued later, is written after it. The answer tells whether the claim still held.
+    pub fn mark_started(
+        &self,
+        claim: &Claim,
+    ) -> impl std::future::Future<Output = StoreResult<bool>> + use<> {
+        let claim = claim.clone();
+        self.batch.enqueue(move |conn| {
+            Box::pin(async move {
+                let started = sqlx::query(
+                    "UPDATE fits SET status = 'running', progress = 0, started_at_ms = ? \
+                     WHERE fit_id = ? AND EXISTS (SELECT 1 FROM jobs WHERE fit_id = ? \
+                     AND claim_token = ? AND state = 'running')",
                 )
-                .bind(now)
-                .bind(fit_id)
-                .execute(&mut *tx)
-                .await?;
-                Some(Claim {
-                    fit_id,
-                    token,
-                    attempt,
-                })
-            }
-            None => None,
-        };
-        tx.commit().await?;
-        Ok(claim)
+                .bind(now_ms())
+                .bind(claim.fit_id)
+                .bind(claim.fit_id)
+                .bind(&claim.token)
+                .execute(&mut *conn)
+                .await?
+                .rows_affected();
+                Ok(started == 1)
+            })
+        })
     }
 
     /// Extends the lease and stores the progress; tells whether a cancel was asked for.
@@ -117,28 +99,33 @@ impl Store {
         lease: Duration,
         progress: f64,
     ) -> StoreResult<Renewal> {
-        let mut tx = self.write().await?;
-        let held: Option<i64> = sqlx::query_scalar(
-            "UPDATE jobs SET lease_until_ms = ? WHERE fit_id = ? AND claim_token = ? \
-             AND state = 'running' RETURNING cancel_requested",
-        )
-        .bind(now_ms() + ms(lease))
-        .bind(claim.fit_id)
-        .bind(&claim.token)
-        .fetch_optional(&mut *tx)
-        .await?;
-        let Some(cancel) = held else {
-            return Ok(Renewal::Lost);
-        };
-        sqlx::query("UPDATE fits SET progress = ? WHERE fit_id = ?")
-            .bind(progress.clamp(0.0, 1.0))
-            .bind(claim.fit_id)
-            .execute(&mut *tx)
-            .await?;
-        tx.commit().await?;
-        Ok(Renewal::Held {
-            cancel_requested: cancel != 0,
-        })
+        let claim = claim.clone();
+        self.batch
+            .submit(move |conn| {
+                Box::pin(async move {
+                    let held: Option<i64> = sqlx::query_scalar(
+                        "UPDATE jobs SET lease_until_ms = ? WHERE fit_id = ? AND claim_token = ? \
+                         AND state = 'running' RETURNING cancel_requested",
+                    )
+                    .bind(now_ms() + ms(lease))
+                    .bind(claim.fit_id)
+                    .bind(&claim.token)
+                    .fetch_optional(&mut *conn)
+                    .await?;
+                    let Some(cancel) = held else {
+                        return Ok(Renewal::Lost);
+                    };
+                    sqlx::query("UPDATE fits SET progress = ? WHERE fit_id = ?")
+                        .bind(progress.clamp(0.0, 1.0))
+                        .bind(claim.fit_id)
+                        .execute(&mut *conn)
+                        .await?;
+                    Ok(Renewal::Held {
+                        cancel_requested: cancel != 0,
+                    })
+                })
+            })
+            .await
     }
 
     /// What a succeeded fit of `fit_id` will be judged against: its part's limits and approved
@@ -173,105 +160,14 @@ impl Store {
         report: &FitReport,
         assessment: &Assessment,
     ) -> StoreResult<bool> {
-        let now = now_ms();
-        let mut tx = self.write().await?;
-        if !release_claim(&mut tx, claim).await? {
-            return Ok(false);
-        }
-        let row = sqlx::query(sqlx::AssertSqlSafe(basis_sql()))
-            .bind(claim.fit_id)
-            .fetch_one(&mut *tx)
-            .await?;
-        let (part_id, current) = basis_from_row(&row)?;
-        let rejudged;
-        let judgement = if current == assessment.judgement.basis {
-            &assessment.judgement
-        } else {
-            let baseline = super::fits::baseline_report(&mut tx, part_id).await?;
-            rejudged = judge(current, baseline.as_ref().map(|(_, r)| r), report)?;
-            &rejudged
-        };
-        let figures = &assessment.figures;
-        sqlx::query(
-            "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
-             report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
-             rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
-             drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?",
-        )
-        .bind(&report.engine_version)
-        .bind(&assessment.report_json)
-        .bind(now)
-        .bind(figures.srf_hz)
-        .bind(figures.srf_above_hz)
-        .bind(figures.l0_h)
-        .bind(figures.rdc_ohm)
-        .bind(figures.band_min_hz)
-        .bind(figures.band_max_hz)
-        .bind(judgement.verdict)
-        .bind(&judgement.verdict_json)
-        .bind(&judgement.drift_json)
-        .bind(judgement.drift_max_sigma)
-        .bind(claim.fit_id)
-        .execute(&mut *tx)
-        .await?;
-        // One statement per table (not one per row): the single writer connection is the service's
-        // narrowest point, and each statement is a round trip to it.
-        let resonances: Vec<(&str, f64)> = [
-            ("series", &figures.series_resonances_hz),
-            ("parallel", &figures.parallel_resonances_hz),
-        ]
-        .into_iter()
-        .flat_map(|(kind, list)| {
-            list.iter()
-                .copied()
-                .filter(|f| f.is_finite())
-                .map(move |f| (kind, f))
-        })
-        .collect();
-        if !resonances.is_empty() {
-            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                "INSERT INTO fit_resonances (fit_id, kind, frequency_hz) ",
-            );
-            q.push_values(&resonances, |mut b, (kind, f)| {
-                b.push_bind(claim.fit_id).push_bind(*kind).push_bind(*f);
-            });
-            q.build().execute(&mut *tx).await?;
-        }
-        // At most 161 rows × 6 values, far below SQLite's limit of bound parameters.
-        if !figures.grid.is_empty() {
-            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                "INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h, z_mag_floor_ohm, z_floor_at_hz) ",
-            );
-            q.push_values(&figures.grid, |mut b, p| {
-                b.push_bind(claim.fit_id)
-                    .push_bind(p.k)
-                    .push_bind(p.z_mag_ohm)
-                    .push_bind(p.l_eff_h)
-                    .push_bind(p.z_mag_floor_ohm)
-                    .push_bind(p.z_floor_at_hz);
-            });
-            q.build().execute(&mut *tx).await?;
-        }
-        sqlx::query(
-            "UPDATE parts SET latest_fit_id = ? WHERE part_id = ? \
-             AND (latest_fit_id IS NULL OR latest_fit_id < ?)",
-        )
-        .bind(claim.fit_id)
-        .bind(part_id)
-        .bind(claim.fit_id)
-        .execute(&mut *tx)
-        .await?;
-        audit(
-            &mut tx,
-            WORKER_ACTOR,
-            "fit-succeeded",
-            Some(part_id),
-            Some(claim.fit_id),
-            None,
-        )
-        .await?;
-        tx.commit().await?;
-        Ok(true)
+        let (claim, report, assessment) = (claim.clone(), report.clone(), assessment.clone());
+        self.batch
+            .submit(move |conn| {
+                Box::pin(
+                    async move { complete_succeeded_in(conn, &claim, &report, &assessment).await },
+                )
+            })
+            .await
     }
 
     /// Writes a failed or cancelled outcome, if the claim still holds.
@@ -281,14 +177,19 @@ impl Store {
         cancelled: bool,
         error: &str,
     ) -> StoreResult<bool> {
-        let mut tx = self.write().await?;
-        if !release_claim(&mut tx, claim).await? {
-            return Ok(false);
-        }
-        let status = if cancelled { "cancelled" } else { "failed" };
-        settle(&mut tx, claim.fit_id, status, Some(error), now_ms()).await?;
-        tx.commit().await?;
-        Ok(true)
+        let (claim, error) = (claim.clone(), error.to_string());
+        self.batch
+            .submit(move |conn| {
+                Box::pin(async move {
+                    if !release_claim(conn, &claim).await? {
+                        return Ok(false);
+                    }
+                    let status = if cancelled { "cancelled" } else { "failed" };
+                    settle(conn, claim.fit_id, status, Some(&error), now_ms()).await?;
+                    Ok(true)
+                })
+            })
+            .await
     }
 
     /// Gives a claimed job back to the queue without counting the attempt (graceful shutdown).
@@ -315,6 +216,173 @@ impl Store {
         tx.commit().await?;
         Ok(done)
     }
+}
+
+/// The body of [`Store::claim_jobs`], inside the caller's transaction.
+async fn claim_in(
+    conn: &mut SqliteConnection,
+    lease: Duration,
+    max_attempts: i64,
+    n: usize,
+) -> StoreResult<Vec<Claim>> {
+    let now = now_ms();
+    let cancelled: Vec<i64> = sqlx::query_scalar(
+            "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
+             WHERE state = 'running' AND lease_until_ms < ? AND cancel_requested = 1 RETURNING fit_id",
+        )
+        .bind(now)
+        .fetch_all(&mut *conn)
+        .await?;
+    for fit_id in cancelled {
+        settle(conn, fit_id, "cancelled", None, now).await?;
+    }
+    let exhausted: Vec<(i64, i64)> = sqlx::query_as(
+        "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
+             WHERE state = 'running' AND lease_until_ms < ? AND attempts >= ? \
+             RETURNING fit_id, attempts",
+    )
+    .bind(now)
+    .bind(max_attempts)
+    .fetch_all(&mut *conn)
+    .await?;
+    for (fit_id, attempts) in exhausted {
+        let error = format!(
+            "the fit was started {attempts} times and never finished (the worker stopped each time); \
+                 retry it to run it again"
+        );
+        settle(conn, fit_id, "failed", Some(&error), now).await?;
+    }
+    let mut claims = Vec::new();
+    while claims.len() < n {
+        let token = new_token();
+        let claimed: Option<(i64, i64)> = sqlx::query_as(
+            "UPDATE jobs SET state = 'running', claim_token = ?, lease_until_ms = ?, \
+                 attempts = attempts + 1 WHERE fit_id = (SELECT fit_id FROM jobs \
+                 WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
+                 ORDER BY fit_id LIMIT 1) RETURNING fit_id, attempts",
+        )
+        .bind(&token)
+        .bind(now + ms(lease))
+        .bind(now)
+        .fetch_optional(&mut *conn)
+        .await?;
+        let Some((fit_id, attempt)) = claimed else {
+            break;
+        };
+        // The fit shows as running only when its worker starts it ([`Store::mark_started`]).
+        claims.push(Claim {
+            fit_id,
+            token,
+            attempt,
+        });
+    }
+    Ok(claims)
+}
+
+/// The body of [`Store::complete_succeeded`], inside the caller's transaction.
+async fn complete_succeeded_in(
+    conn: &mut SqliteConnection,
+    claim: &Claim,
+    report: &FitReport,
+    assessment: &Assessment,
+) -> StoreResult<bool> {
+    let now = now_ms();
+    if !release_claim(conn, claim).await? {
+        return Ok(false);
+    }
+    let row = sqlx::query(sqlx::AssertSqlSafe(basis_sql()))
+        .bind(claim.fit_id)
+        .fetch_one(&mut *conn)
+        .await?;
+    let (part_id, current) = basis_from_row(&row)?;
+    let rejudged;
+    let judgement = if current == assessment.judgement.basis {
+        &assessment.judgement
+    } else {
+        let baseline = super::fits::baseline_report(conn, part_id).await?;
+        rejudged = judge(current, baseline.as_ref().map(|(_, r)| r), report)?;
+        &rejudged
+    };
+    let figures = &assessment.figures;
+    sqlx::query(
+        "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
+             report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
+             rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
+             drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?",
+    )
+    .bind(&report.engine_version)
+    .bind(&assessment.report_json)
+    .bind(now)
+    .bind(figures.srf_hz)
+    .bind(figures.srf_above_hz)
+    .bind(figures.l0_h)
+    .bind(figures.rdc_ohm)
+    .bind(figures.band_min_hz)
+    .bind(figures.band_max_hz)
+    .bind(judgement.verdict)
+    .bind(&judgement.verdict_json)
+    .bind(&judgement.drift_json)
+    .bind(judgement.drift_max_sigma)
+    .bind(claim.fit_id)
+    .execute(&mut *conn)
+    .await?;
+    // One statement per table (not one per row): the single writer connection is the service's
+    // narrowest point, and each statement is a round trip to it.
+    let resonances: Vec<(&str, f64)> = [
+        ("series", &figures.series_resonances_hz),
+        ("parallel", &figures.parallel_resonances_hz),
+    ]
+    .into_iter()
+    .flat_map(|(kind, list)| {
+        list.iter()
+            .copied()
+            .filter(|f| f.is_finite())
+            .map(move |f| (kind, f))
+    })
+    .collect();
+    if !resonances.is_empty() {
+        let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+            "INSERT INTO fit_resonances (fit_id, kind, frequency_hz) ",
+        );
+        q.push_values(&resonances, |mut b, (kind, f)| {
+            b.push_bind(claim.fit_id).push_bind(*kind).push_bind(*f);
+        });
+        q.build().execute(&mut *conn).await?;
+    }
+    // At most 161 rows × 6 values, far below SQLite's limit of bound parameters.
+    if !figures.grid.is_empty() {
+        let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+            "INSERT INTO fit_grid (fit_id, k, z_mag_ohm, l_eff_h, z_mag_floor_ohm, z_floor_at_hz) ",
+        );
+        q.push_values(&figures.grid, |mut b, p| {
+            b.push_bind(claim.fit_id)
+                .push_bind(p.k)
+                .push_bind(p.z_mag_ohm)
+                .push_bind(p.l_eff_h)
+                .push_bind(p.z_mag_floor_ohm)
+                .push_bind(p.z_floor_at_hz);
+        });
+        q.build().execute(&mut *conn).await?;
+    }
+    sqlx::query(
+        "UPDATE parts SET latest_fit_id = ? WHERE part_id = ? \
+             AND (latest_fit_id IS NULL OR latest_fit_id < ?)",
+    )
+    .bind(claim.fit_id)
+    .bind(part_id)
+    .bind(claim.fit_id)
+    .execute(&mut *conn)
+    .await?;
+    audit(
+        conn,
+        WORKER_ACTOR,
+        "fit-succeeded",
+        Some(part_id),
+        Some(claim.fit_id),
+        None,
+    )
+    .await?;
+    Ok(true)
 }
 
 /// The part of a fit with what its result is judged against (one bound parameter: the fit id).
@@ -419,7 +487,74 @@ mod tests {
             options_json: "{}".into(),
             options_key: "k".into(),
         };
-        store.upload("test", &new).await.unwrap().fit_id
+        store.upload("test", new).await.unwrap().fit_id
+    }
+
+    #[tokio::test]
+    async fn one_claim_fills_several_workers_oldest_first_and_each_job_once() {
+        let (store, _dir) = store_with_part().await;
+        let mut queued = Vec::new();
+        for i in 0..5 {
+            queued.push(queue_one(&store, i).await);
+        }
+        let lease = Duration::from_secs(30);
+        let three = store.claim_jobs(lease, 3, 3).await.unwrap();
+        let ids: Vec<i64> = three.iter().map(|c| c.fit_id).collect();
+        assert_eq!(ids, queued[..3]);
+        let tokens: std::collections::HashSet<&str> =
+            three.iter().map(|c| c.token.as_str()).collect();
+        assert_eq!(tokens.len(), 3, "each claim has its own token");
+        // Fewer runnable jobs than asked for: the rest, then nothing.
+        let rest = store.claim_jobs(lease, 3, 4).await.unwrap();
+        assert_eq!(
+            rest.iter().map(|c| c.fit_id).collect::<Vec<_>>(),
+            queued[3..]
+        );
+        assert!(store.claim_jobs(lease, 3, 4).await.unwrap().is_empty());
+
+        // Outcomes written concurrently (so they share write batches) each land once, and a stale
+        // claim among them writes nothing without failing the others.
+        let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
+        let stale = Claim {
+            token: "not-the-token".into(),
+            ..three[0].clone()
+        };
+        let mut set = tokio::task::JoinSet::new();
+        for (claim, expect) in three
+            .iter()
+            .chain(&rest)
+            .map(|c| (c.clone(), true))
+            .chain([(stale, false)])
+        {
+            let store = store.clone();
+            let r = r.clone();
+            set.spawn(async move {
+                let (basis, baseline) = store.assessment_basis(claim.fit_id).await.unwrap();
+                let a = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
+                (
+                    claim.fit_id,
+                    expect,
+                    store.complete_succeeded(&claim, &r, &a).await,
+                )
+            });
+        }
+        while let Some(done) = set.join_next().await {
+            let (fit_id, expect, written) = done.unwrap();
+            // The stale claim may run before or after the real one: either way it writes nothing.
+            assert_eq!(written.unwrap(), expect, "fit {fit_id}");
+        }
+        for id in &queued {
+            assert_eq!(
+                store.fit_summary(*id).await.unwrap().status.as_str(),
+                "succeeded"
+            );
+        }
+        let audits: i64 =
+            sqlx::query_scalar("SELECT COUNT(*) FROM audit WHERE action = 'fit-succeeded'")
+                .fetch_one(&store.reader)
+                .await
+                .unwrap();
+        assert_eq!(audits, 5);
     }
 
     #[tokio::test]
@@ -550,6 +685,15 @@ mod tests {
         let lease = Duration::from_secs(30);
         let done = store.claim_job(lease, 3).await.unwrap().unwrap();
         let failed = store.claim_job(lease, 3).await.unwrap().unwrap();
+        // Claimed is not yet running: a fit shows as running when its worker starts it.
+        assert_eq!(store.queue_counts().await.unwrap().queued, 3);
+        assert!(store.mark_started(&done).await.unwrap());
+        assert!(store.mark_started(&failed).await.unwrap());
+        let stale = Claim {
+            token: "not-the-token".into(),
+            ..done.clone()
+        };
+        assert!(!store.mark_started(&stale).await.unwrap());
         assert_eq!(store.queue_counts().await.unwrap().running, 2);
         assert_counts_match(&store).await;
         let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));

@@ -7,6 +7,7 @@
 //! [`crate::registry`] functions when a stored verdict or drift must follow a change of limits or
 //! baseline.
 
+pub mod batch;
 pub mod fits;
 pub mod jobs;
 pub mod parts;
@@ -44,6 +45,8 @@ pub struct Store {
     /// One connection: every write transaction is serialised here.
     pub(crate) writer: SqlitePool,
     pub(crate) reader: SqlitePool,
+    /// Group commit on the writer for the busy paths (uploads, claims, outcomes).
+    pub(crate) batch: batch::Batcher,
 }
 
 impl Store {
@@ -81,7 +84,12 @@ impl Store {
             .connect_with(options.read_only(true))
             .await
             .with_context(|| format!("cannot open the database {}", path.display()))?;
-        Ok(Store { writer, reader })
+        let batch = batch::Batcher::start(writer.clone());
+        Ok(Store {
+            writer,
+            reader,
+            batch,
+        })
     }
 
     /// Readiness: the database answers and every embedded migration is applied.

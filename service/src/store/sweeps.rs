@@ -67,107 +67,11 @@ fn named(name: Option<String>, bytes: Option<Vec<u8>>) -> Option<NamedFile> {
 impl Store {
     /// Stores the sweep, queues its first fit and records the upload, all in one transaction; or
     /// returns the existing fit for a duplicate.
-    pub async fn upload(&self, actor: &str, new: &NewSweep) -> StoreResult<Uploaded> {
-        let mut tx = self.write().await?;
-        let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
-            .bind(&new.part_number)
-            .fetch_optional(&mut *tx)
-            .await?
-            .ok_or_else(|| {
-                StoreError::Invalid(format!(
-                    "no part {}: an engineer creates the part before sweeps are uploaded",
-                    new.part_number
-                ))
-            })?;
-        let existing: Option<(i64, i64)> = sqlx::query_as(
-            "SELECT f.fit_id, f.sweep_id FROM sweeps s JOIN fits f ON f.sweep_id = s.sweep_id \
-             WHERE s.part_id = ? AND s.sha256 = ? AND f.options_key = ? \
-             ORDER BY f.fit_id DESC LIMIT 1",
-        )
-        .bind(part_id)
-        .bind(&new.sha256)
-        .bind(&new.options_key)
-        .fetch_optional(&mut *tx)
-        .await?;
-        if let Some((fit_id, sweep_id)) = existing {
-            tx.rollback().await?;
-            return Ok(Uploaded {
-                fit_id,
-                sweep_id,
-                duplicate: true,
-            });
-        }
-        let now = now_ms();
-        let lot_id: i64 = sqlx::query_scalar(
-            "INSERT INTO lots (part_id, lot) VALUES (?, ?) \
-             ON CONFLICT (part_id, lot) DO UPDATE SET lot = excluded.lot RETURNING lot_id",
-        )
-        .bind(part_id)
-        .bind(&new.lot)
-        .fetch_one(&mut *tx)
-        .await?;
-        let (open_name, open_bytes) = new
-            .fixture_open
-            .as_ref()
-            .map(|f| (f.name.clone(), f.bytes.clone()))
-            .unzip();
-        let (short_name, short_bytes) = new
-            .fixture_short
-            .as_ref()
-            .map(|f| (f.name.clone(), f.bytes.clone()))
-            .unzip();
-        let sweep_id: i64 = sqlx::query_scalar(
-            "INSERT INTO sweeps (part_id, lot_id, file_name, file_bytes, sha256, method, z0_ohm, \
-             dcr_ohm, temperature_c, operator, fixture_open_name, fixture_open_bytes, \
-             fixture_short_name, fixture_short_bytes, fixture_topology, points, uploaded_by, \
-             uploaded_at_ms) \
-             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING sweep_id",
-        )
-        .bind(part_id)
-        .bind(lot_id)
-        .bind(&new.file.name)
-        .bind(&new.file.bytes)
-        .bind(&new.sha256)
-        .bind(&new.method)
-        .bind(new.z0_ohm)
-        .bind(new.dcr_ohm)
-        .bind(new.temperature_c)
-        .bind(&new.operator)
-        .bind(open_name)
-        .bind(open_bytes)
-        .bind(short_name)
-        .bind(short_bytes)
-        .bind(&new.fixture_topology)
-        .bind(new.points as i64)
-        .bind(actor)
-        .bind(now)
-        .fetch_one(&mut *tx)
-        .await?;
-        let fit_id = insert_fit(
-            &mut tx,
-            sweep_id,
-            part_id,
-            lot_id,
-            1,
-            &new.options_json,
-            &new.options_key,
-        )
-        .await?;
-        audit(
-            &mut tx,
-            actor,
-            "sweep-uploaded",
-            Some(part_id),
-            Some(fit_id),
-            Some(&format!("{} (lot {})", new.file.name, new.lot)),
-        )
-        .await?;
-        tx.commit().await?;
-        Ok(Uploaded {
-            fit_id,
-            sweep_id,
-            duplicate: false,
-        })
+    pub async fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded> {
+        let actor = actor.to_string();
+        self.batch
+            .submit(move |conn| Box::pin(async move { upload_in(conn, &actor, &new).await }))
+            .await
     }
 
     /// The uploaded file of a sweep, as uploaded.
@@ -247,4 +151,109 @@ pub(crate) async fn insert_fit(
         .execute(&mut *tx)
         .await?;
     Ok(fit_id)
+}
+
+/// The body of [`Store::upload`], inside the caller's transaction.
+async fn upload_in(
+    conn: &mut sqlx::SqliteConnection,
+    actor: &str,
+    new: &NewSweep,
+) -> StoreResult<Uploaded> {
+    let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
+        .bind(&new.part_number)
+        .fetch_optional(&mut *conn)
+        .await?
+        .ok_or_else(|| {
+            StoreError::Invalid(format!(
+                "no part {}: an engineer creates the part before sweeps are uploaded",
+                new.part_number
+            ))
+        })?;
+    let existing: Option<(i64, i64)> = sqlx::query_as(
+        "SELECT f.fit_id, f.sweep_id FROM sweeps s JOIN fits f ON f.sweep_id = s.sweep_id \
+         WHERE s.part_id = ? AND s.sha256 = ? AND f.options_key = ? \
+         ORDER BY f.fit_id DESC LIMIT 1",
+    )
+    .bind(part_id)
+    .bind(&new.sha256)
+    .bind(&new.options_key)
+    .fetch_optional(&mut *conn)
+    .await?;
+    if let Some((fit_id, sweep_id)) = existing {
+        return Ok(Uploaded {
+            fit_id,
+            sweep_id,
+            duplicate: true,
+        });
+    }
+    let now = now_ms();
+    let lot_id: i64 = sqlx::query_scalar(
+        "INSERT INTO lots (part_id, lot) VALUES (?, ?) \
+         ON CONFLICT (part_id, lot) DO UPDATE SET lot = excluded.lot RETURNING lot_id",
+    )
+    .bind(part_id)
+    .bind(&new.lot)
+    .fetch_one(&mut *conn)
+    .await?;
+    let (open_name, open_bytes) = new
+        .fixture_open
+        .as_ref()
+        .map(|f| (f.name.clone(), f.bytes.clone()))
+        .unzip();
+    let (short_name, short_bytes) = new
+        .fixture_short
+        .as_ref()
+        .map(|f| (f.name.clone(), f.bytes.clone()))
+        .unzip();
+    let sweep_id: i64 = sqlx::query_scalar(
+        "INSERT INTO sweeps (part_id, lot_id, file_name, file_bytes, sha256, method, z0_ohm, \
+         dcr_ohm, temperature_c, operator, fixture_open_name, fixture_open_bytes, \
+         fixture_short_name, fixture_short_bytes, fixture_topology, points, uploaded_by, \
+         uploaded_at_ms) \
+         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING sweep_id",
+    )
+    .bind(part_id)
+    .bind(lot_id)
+    .bind(&new.file.name)
+    .bind(&new.file.bytes)
+    .bind(&new.sha256)
+    .bind(&new.method)
+    .bind(new.z0_ohm)
+    .bind(new.dcr_ohm)
+    .bind(new.temperature_c)
+    .bind(&new.operator)
+    .bind(open_name)
+    .bind(open_bytes)
+    .bind(short_name)
+    .bind(short_bytes)
+    .bind(&new.fixture_topology)
+    .bind(new.points as i64)
+    .bind(actor)
+    .bind(now)
+    .fetch_one(&mut *conn)
+    .await?;
+    let fit_id = insert_fit(
+        conn,
+        sweep_id,
+        part_id,
+        lot_id,
+        1,
+        &new.options_json,
+        &new.options_key,
+    )
+    .await?;
+    audit(
+        conn,
+        actor,
+        "sweep-uploaded",
+        Some(part_id),
+        Some(fit_id),
+        Some(&format!("{} (lot {})", new.file.name, new.lot)),
+    )
+    .await?;
+    Ok(Uploaded {
+        fit_id,
+        sweep_id,
+        duplicate: false,
+    })
 }

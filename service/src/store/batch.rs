@@ -1,0 +1,261 @@
+//! Group commit for the busy write paths (uploads, job claims, job outcomes).
+//!
+//! Every write transaction on SQLite ends in a commit that appends and syncs WAL frames, and the one
+//! writer connection is the service's narrowest point. Requests sent here are queued; one task takes
+//! all that are waiting (at most [`MAX_BATCH`]), runs each inside its own savepoint of one transaction,
+//! commits once, and only then answers each caller. A request that fails is rolled back to its savepoint
+//! and answered with its error; the others in the batch are not affected. A caller is never told
+//! "done" before its writes are committed.
+
+use super::{StoreError, StoreResult};
+use sqlx::{SqliteConnection, SqlitePool};
+use std::any::Any;
+use std::future::Future;
+use std::pin::Pin;
+use tokio::sync::{mpsc, oneshot};
+
+/// At most this many requests share one transaction, so a long queue still commits steadily.
+pub const MAX_BATCH: usize = 64;
+
+pub(crate) type BoxFuture<'a, T> = Pin<Box<dyn Future<Output = T> + Send + 'a>>;
+
+type Answer = Box<dyn Any + Send>;
+type Work =
+    Box<dyn for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<Answer>> + Send>;
+
+struct Request {
+    work: Work,
+    reply: oneshot::Sender<StoreResult<Answer>>,
+}
+
+/// The sending side; cloned with the store.
+#[derive(Clone, Debug)]
+pub(crate) struct Batcher {
+    queue: mpsc::UnboundedSender<Request>,
+}
+
+impl std::fmt::Debug for Request {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("Request")
+    }
+}
+
+fn stopped() -> StoreError {
+    StoreError::Database(sqlx::Error::PoolClosed)
+}
+
+impl Batcher {
+    /// Starts the task that runs the batches on `writer` (the single-connection pool).
+    pub(crate) fn start(writer: SqlitePool) -> Batcher {
+        let (queue, rx) = mpsc::unbounded_channel();
+        tokio::spawn(run(writer, rx));
+        Batcher { queue }
+    }
+
+    /// Runs `work` in the next batch and returns its result once the batch is committed.
+    pub(crate) async fn submit<T, F>(&self, work: F) -> StoreResult<T>
+    where
+        T: Send + 'static,
+        F: for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<T>>
+            + Send
+            + 'static,
+    {
+        self.enqueue(work).await
+    }
+
+    /// Queues `work` now (before the returned future is first polled), so requests queued one
+    /// after the other are written in that order; the future gives the result after the commit.
+    /// Dropping it leaves the request queued: its result is then not reported to anyone.
+    pub(crate) fn enqueue<T, F>(&self, work: F) -> impl Future<Output = StoreResult<T>> + use<T, F>
+    where
+        T: Send + 'static,
+        F: for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<T>>
+            + Send
+            + 'static,
+    {
+        let work: Work = Box::new(move |conn| {
+            let fut = work(conn);
+            Box::pin(async move { fut.await.map(|t| Box::new(t) as Answer) })
+        });
+        let (reply, answer) = oneshot::channel();
+        let sent = self.queue.send(Request { work, reply }).is_ok();
+        async move {
+            if !sent {
+                return Err(stopped());
+            }
+            let answer = answer.await.map_err(|_| stopped())??;
+            answer.downcast::<T>().map(|t| *t).map_err(|_| {
+                StoreError::Invalid("internal: a batched write answered with the wrong type".into())
+            })
+        }
+    }
+}
+
+async fn run(writer: SqlitePool, mut rx: mpsc::UnboundedReceiver<Request>) {
+    let mut waiting = Vec::with_capacity(MAX_BATCH);
+    while rx.recv_many(&mut waiting, MAX_BATCH).await > 0 {
+        let batch: Vec<Request> = std::mem::take(&mut waiting);
+        metrics::histogram!("henrybook_write_batch_requests").record(batch.len() as f64);
+        // Its own task, so a request that panics fails its batch (dropped replies, rolled-back
+        // transaction) and not every later write.
+        if let Err(e) = tokio::spawn(run_batch(writer.clone(), batch)).await {
+            tracing::error!(error = %e, "a write batch stopped on a panic and was rolled back");
+        }
+    }
+}
+
+async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
+    let mut tx = match writer.begin().await {
+        Ok(tx) => tx,
+        Err(e) => {
+            let text = e.to_string();
+            for r in batch {
+                let _ = r.reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
+                    text.clone(),
+                ))));
+            }
+            return;
+        }
+    };
+    let mut answers: Vec<(oneshot::Sender<StoreResult<Answer>>, StoreResult<Answer>)> =
+        Vec::with_capacity(batch.len());
+    let mut broken: Option<String> = None;
+    for Request { work, reply } in batch {
+        if let Some(why) = &broken {
+            let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
+                why.clone(),
+            ))));
+            continue;
+        }
+        if let Err(e) = sqlx::query("SAVEPOINT batched_request")
+            .execute(&mut *tx)
+            .await
+        {
+            broken = Some(e.to_string());
+            let _ = reply.send(Err(e.into()));
+            continue;
+        }
+        let result = work(&mut tx).await;
+        let end = if result.is_ok() {
+            "RELEASE batched_request"
+        } else {
+            "ROLLBACK TO batched_request; RELEASE batched_request"
+        };
+        if let Err(e) = sqlx::raw_sql(end).execute(&mut *tx).await {
+            // The transaction cannot be trusted any more: nothing of this batch is committed.
+            broken = Some(format!("a batched write could not end its savepoint: {e}"));
+            let _ = reply.send(Err(e.into()));
+            continue;
+        }
+        answers.push((reply, result));
+    }
+    if let Some(why) = broken {
+        tracing::error!(error = %why, "a write batch is rolled back");
+        let _ = tx.rollback().await;
+        for (reply, _) in answers {
+            let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
+                why.clone(),
+            ))));
+        }
+        return;
+    }
+    match tx.commit().await {
+        Ok(()) => {
+            for (reply, result) in answers {
+                let _ = reply.send(result);
+            }
+        }
+        Err(e) => {
+            let text = e.to_string();
+            tracing::error!(error = %text, "a write batch could not be committed");
+            for (reply, _) in answers {
+                let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
+                    text.clone(),
+                ))));
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::testing::temp_store;
+    use super::*;
+
+    #[tokio::test]
+    async fn a_failed_request_leaves_the_others_of_its_batch_committed() {
+        let (store, _dir) = temp_store().await;
+        sqlx::query("CREATE TABLE t (v INTEGER NOT NULL UNIQUE)")
+            .execute(&store.writer)
+            .await
+            .unwrap();
+        // Submitted together, so most land in one batch: the duplicate fails on the UNIQUE
+        // constraint after inserting a second row, and only its own rows are rolled back.
+        let insert = |a: i64, b: i64| {
+            let b2 = store.batch.clone();
+            async move {
+                b2.submit(move |conn| {
+                    Box::pin(async move {
+                        sqlx::query("INSERT INTO t (v) VALUES (?)")
+                            .bind(a)
+                            .execute(&mut *conn)
+                            .await?;
+                        sqlx::query("INSERT INTO t (v) VALUES (?)")
+                            .bind(b)
+                            .execute(&mut *conn)
+                            .await?;
+                        Ok(a)
+                    })
+                })
+                .await
+            }
+        };
+        let (one, bad, two) = tokio::join!(insert(1, 2), insert(3, 1), insert(4, 5));
+        assert_eq!(one.unwrap(), 1);
+        assert!(matches!(bad, Err(StoreError::Database(_))), "{bad:?}");
+        assert_eq!(two.unwrap(), 4);
+        let rows: Vec<i64> = sqlx::query_scalar("SELECT v FROM t ORDER BY v")
+            .fetch_all(&store.reader)
+            .await
+            .unwrap();
+        assert_eq!(rows, vec![1, 2, 4, 5]);
+    }
+
+    #[tokio::test]
+    async fn answers_arrive_only_after_the_commit() {
+        let (store, _dir) = temp_store().await;
+        sqlx::query("CREATE TABLE t (v INTEGER NOT NULL)")
+            .execute(&store.writer)
+            .await
+            .unwrap();
+        let n = 200;
+        let mut set = tokio::task::JoinSet::new();
+        for i in 0..n {
+            let b = store.batch.clone();
+            let reader = store.reader.clone();
+            set.spawn(async move {
+                b.submit(move |conn| {
+                    Box::pin(async move {
+                        sqlx::query("INSERT INTO t (v) VALUES (?)")
+                            .bind(i)
+                            .execute(&mut *conn)
+                            .await?;
+                        Ok(())
+                    })
+                })
+                .await
+                .unwrap();
+                // Another connection sees the row as soon as the caller is answered.
+                let seen: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM t WHERE v = ?")
+                    .bind(i)
+                    .fetch_one(&reader)
+                    .await
+                    .unwrap();
+                assert_eq!(seen, 1);
+            });
+        }
+        while let Some(r) = set.join_next().await {
+            r.unwrap();
+        }
+    }
+}
