@@ -40,6 +40,11 @@ impl std::fmt::Debug for Request {
     }
 }
 
+/// The error every request of a batch that could not be committed is answered with.
+fn batch_failed(why: &str) -> StoreError {
+    StoreError::Database(sqlx::Error::Protocol(why.to_string()))
+}
+
 fn stopped() -> StoreError {
     StoreError::Database(sqlx::Error::PoolClosed)
 }
@@ -110,9 +115,7 @@ async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
         Err(e) => {
             let text = e.to_string();
             for r in batch {
-                let _ = r.reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
-                    text.clone(),
-                ))));
+                let _ = r.reply.send(Err(batch_failed(&text)));
             }
             return;
         }
@@ -122,9 +125,7 @@ async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
     let mut broken: Option<String> = None;
     for Request { work, reply } in batch {
         if let Some(why) = &broken {
-            let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
-                why.clone(),
-            ))));
+            let _ = reply.send(Err(batch_failed(why)));
             continue;
         }
         if let Err(e) = sqlx::query("SAVEPOINT batched_request")
@@ -153,9 +154,7 @@ async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
         tracing::error!(error = %why, "a write batch is rolled back");
         let _ = tx.rollback().await;
         for (reply, _) in answers {
-            let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
-                why.clone(),
-            ))));
+            let _ = reply.send(Err(batch_failed(&why)));
         }
         return;
     }
@@ -169,9 +168,7 @@ async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
             let text = e.to_string();
             tracing::error!(error = %text, "a write batch could not be committed");
             for (reply, _) in answers {
-                let _ = reply.send(Err(StoreError::Database(sqlx::Error::Protocol(
-                    text.clone(),
-                ))));
+                let _ = reply.send(Err(batch_failed(&text)));
             }
         }
     }
