@@ -407,7 +407,7 @@ impl RunningJob {
         })
         .await;
         match assessed {
-            Ok(Ok((report, a))) => self.store.complete_succeeded(claim, &report, &a).await,
+            Ok(Ok((report, a))) => self.store.complete_succeeded(claim, *report, a).await,
             Ok(Err(e)) => Err(e.into()),
             Err(e) => {
                 tracing::error!(error = %e, "the assessment of a succeeded fit panicked");

@@ -34,12 +34,6 @@ pub(crate) struct Batcher {
     queue: mpsc::UnboundedSender<Request>,
 }
 
-impl std::fmt::Debug for Request {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str("Request")
-    }
-}
-
 /// The error every request of a batch that could not be committed is answered with.
 fn batch_failed(why: &str) -> StoreError {
     StoreError::Database(sqlx::Error::Protocol(why.to_string()))

@@ -157,10 +157,10 @@ impl Store {
     pub async fn complete_succeeded(
         &self,
         claim: &Claim,
-        report: &FitReport,
-        assessment: &Assessment,
+        report: FitReport,
+        assessment: Assessment,
     ) -> StoreResult<bool> {
-        let (claim, report, assessment) = (claim.clone(), report.clone(), assessment.clone());
+        let claim = claim.clone();
         self.batch
             .submit(move |conn| {
                 Box::pin(
@@ -227,19 +227,19 @@ async fn claim_in(
 ) -> StoreResult<Vec<Claim>> {
     let now = now_ms();
     let cancelled: Vec<i64> = sqlx::query_scalar(
-            "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-             WHERE state = 'running' AND lease_until_ms < ? AND cancel_requested = 1 RETURNING fit_id",
-        )
-        .bind(now)
-        .fetch_all(&mut *conn)
-        .await?;
+        "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
+         WHERE state = 'running' AND lease_until_ms < ? AND cancel_requested = 1 RETURNING fit_id",
+    )
+    .bind(now)
+    .fetch_all(&mut *conn)
+    .await?;
     for fit_id in cancelled {
         settle(conn, fit_id, "cancelled", None, now).await?;
     }
     let exhausted: Vec<(i64, i64)> = sqlx::query_as(
         "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-             WHERE state = 'running' AND lease_until_ms < ? AND attempts >= ? \
-             RETURNING fit_id, attempts",
+         WHERE state = 'running' AND lease_until_ms < ? AND attempts >= ? \
+         RETURNING fit_id, attempts",
     )
     .bind(now)
     .bind(max_attempts)
@@ -248,7 +248,7 @@ async fn claim_in(
     for (fit_id, attempts) in exhausted {
         let error = format!(
             "the fit was started {attempts} times and never finished (the worker stopped each time); \
-                 retry it to run it again"
+             retry it to run it again"
         );
         settle(conn, fit_id, "failed", Some(&error), now).await?;
     }
@@ -257,9 +257,9 @@ async fn claim_in(
         let token = new_token();
         let claimed: Option<(i64, i64)> = sqlx::query_as(
             "UPDATE jobs SET state = 'running', claim_token = ?, lease_until_ms = ?, \
-                 attempts = attempts + 1 WHERE fit_id = (SELECT fit_id FROM jobs \
-                 WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
-                 ORDER BY fit_id LIMIT 1) RETURNING fit_id, attempts",
+             attempts = attempts + 1 WHERE fit_id = (SELECT fit_id FROM jobs \
+             WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
+             ORDER BY fit_id LIMIT 1) RETURNING fit_id, attempts",
         )
         .bind(&token)
         .bind(now + ms(lease))
@@ -306,9 +306,9 @@ async fn complete_succeeded_in(
     let figures = &assessment.figures;
     sqlx::query(
         "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
-             report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
-             rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
-             drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?",
+         report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
+         rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
+         drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?",
     )
     .bind(&report.engine_version)
     .bind(&assessment.report_json)
@@ -366,7 +366,7 @@ async fn complete_succeeded_in(
     }
     sqlx::query(
         "UPDATE parts SET latest_fit_id = ? WHERE part_id = ? \
-             AND (latest_fit_id IS NULL OR latest_fit_id < ?)",
+         AND (latest_fit_id IS NULL OR latest_fit_id < ?)",
     )
     .bind(claim.fit_id)
     .bind(part_id)
@@ -534,7 +534,7 @@ mod tests {
                 (
                     claim.fit_id,
                     expect,
-                    store.complete_succeeded(&claim, &r, &a).await,
+                    store.complete_succeeded(&claim, r, a).await,
                 )
             });
         }
@@ -594,9 +594,24 @@ mod tests {
         let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
         let (basis, baseline) = store.assessment_basis(a).await.unwrap();
         let done = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
-        assert!(!store.complete_succeeded(&first, &r, &done).await.unwrap());
-        assert!(store.complete_succeeded(&again, &r, &done).await.unwrap());
-        assert!(!store.complete_succeeded(&again, &r, &done).await.unwrap());
+        assert!(
+            !store
+                .complete_succeeded(&first, r.clone(), done.clone())
+                .await
+                .unwrap()
+        );
+        assert!(
+            store
+                .complete_succeeded(&again, r.clone(), done.clone())
+                .await
+                .unwrap()
+        );
+        assert!(
+            !store
+                .complete_succeeded(&again, r.clone(), done.clone())
+                .await
+                .unwrap()
+        );
         let summary = store.fit_summary(a).await.unwrap();
         assert_eq!(summary.status.as_str(), "succeeded");
         // And the database itself refuses a second result.
@@ -631,7 +646,12 @@ mod tests {
             .await
             .unwrap();
         assert_eq!(store.assessment_basis(a).await.unwrap().0.limits, tight);
-        assert!(store.complete_succeeded(&claim, &r, &done).await.unwrap());
+        assert!(
+            store
+                .complete_succeeded(&claim, r.clone(), done.clone())
+                .await
+                .unwrap()
+        );
         let verdict: Option<String> =
             sqlx::query_scalar("SELECT verdict FROM fits WHERE fit_id = ?")
                 .bind(a)
@@ -699,7 +719,12 @@ mod tests {
         let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
         let (basis, baseline) = store.assessment_basis(done.fit_id).await.unwrap();
         let a = assessment::assess(&r, basis, baseline.as_deref()).unwrap();
-        assert!(store.complete_succeeded(&done, &r, &a).await.unwrap());
+        assert!(
+            store
+                .complete_succeeded(&done, r.clone(), a.clone())
+                .await
+                .unwrap()
+        );
         assert!(
             store
                 .complete_unsuccessful(&failed, false, "bad file")
