@@ -906,7 +906,21 @@ pub fn fit_rational(
             options.passivity_rms_allowance,
         )
         .map(|e| (to_model(data.omega0, &fit.poles, &e.coef), e.rms_after))
-        .map_err(|e| e.to_string());
+        .map_err(|e| e.to_string())
+        .and_then(|(model, rms)| {
+            // The same test as every exported model gets, on the model as it is reported: a dip a
+            // few hertz wide beside a sharp pole can pass in the fit's scaled coordinates and fail
+            // in these by rounding.
+            let check = crate::fit::passivity::check_passivity(&model);
+            match check.violations.first() {
+                _ if check.passive => Ok((model, rms)),
+                Some(v) => Err(format!(
+                    "after enforcement Re Z is still {:.3e} Ω at {:.6e} Hz",
+                    v.worst_re_z_ohm, v.worst_hz
+                )),
+                None => Err("after enforcement the model is still not positive-real".to_string()),
+            }
+        });
         let rms = passive.as_ref().map_or(f64::INFINITY, |p| p.1);
         // Progress is judged on the fit before enforcement: an order that cannot be made passive within
         // the bound may be followed by one that can.
