@@ -62,6 +62,9 @@ impl Store {
     }
 
     pub async fn fit_detail(&self, fit_id: i64) -> StoreResult<FitDetail> {
+        // Both reads in one read transaction, so they see the same snapshot: read one after the
+        // other, a fit finishing in between showed as succeeded with no report.
+        let mut tx = self.reader.begin().await?;
         let row = sqlx::query(
             "SELECT f.report_json, f.verdict_json, f.drift_json, f.options_json, f.engine_version, \
              s.method, s.z0_ohm, s.dcr_ohm, s.temperature_c, s.operator, s.file_name, s.sha256, \
@@ -69,10 +72,18 @@ impl Store {
              JOIN jobs j ON j.fit_id = f.fit_id WHERE f.fit_id = ?",
         )
         .bind(fit_id)
-        .fetch_optional(&self.reader)
+        .fetch_optional(&mut *tx)
         .await?
         .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
-        let summary = self.fit_summary(fit_id).await?;
+        let summary_row = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "{SUMMARY_SELECT} WHERE f.fit_id = ?"
+        )))
+        .bind(fit_id)
+        .fetch_optional(&mut *tx)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        tx.commit().await?;
+        let summary = summary_from_row(&summary_row)?;
         let parse = |col: &str| -> StoreResult<Option<serde_json::Value>> {
             let text: Option<String> = row.try_get(col)?;
             Ok(text.map(|t| serde_json::from_str(&t)).transpose()?)
