@@ -17,7 +17,17 @@
 //! is the minimum to that tolerance and the run stops without evaluating a trial point (the
 //! relative-offset test of Bates & Watts, Technometrics 23 (1981) 179–183, in the form of a relative
 //! predicted reduction as in MINPACK's `ftol` test; from memory). A run started near the minimum, as
-//! the full-data stage of a fit is, then costs two passes: the start and one Gauss–Newton step. The state carries x,
+//! the full-data stage of a fit is, then costs two passes: the start and one Gauss–Newton step.
+//!
+//! The last step is cheaper still. When the Gauss–Newton step predicts a small decrease (below
+//! `last_step`·χ², default 1e-4), it is taken with a cost-only evaluation, which for the lumped
+//! problem is a fraction of a pass, and the run stops there when the measured decrease equals the
+//! predicted one to within `ptol`·χ². The reasoning: the model's error on the step, δᵀ(H − JᵀJ)δ
+//! plus the cubic terms, is what the measurement compares; the decrease still left after the step
+//! is of the order of that error times the relative Hessian error (or the step size) again, so
+//! below `ptol`·χ² as well (Gauss–Newton convergence, common practice, no source). After such a
+//! step the state's JᵀJ and Jᵀr are those of the point one step before (a step that changed χ² by
+//! less than 1e-4 relative), which is what the covariance then uses. The state carries x,
 //! the cost, Jᵀr in the gradient slot (half the gradient of χ²) and JᵀJ in the Hessian slot (half
 //! the Gauss–Newton Hessian). Buffers are allocated once per run, not per iteration.
 
@@ -40,6 +50,15 @@ pub trait NormalEquations {
         jtj: &mut DMatrix<f64>,
         g: &mut DVector<f64>,
     ) -> Result<f64, Error>;
+
+    /// χ² alone at `x`, for the final step (see [`LevenbergMarquardt::last_step`]). By default a
+    /// full [`NormalEquations::normal_equations`] pass; a problem with a cheaper cost-only pass
+    /// overrides it.
+    fn cost(&self, x: &[f64]) -> Result<f64, Error> {
+        let n = x.len();
+        let (mut jtj, mut g) = (DMatrix::zeros(n, n), DVector::zeros(n));
+        self.normal_equations(x, &mut jtj, &mut g)
+    }
 }
 
 /// Adapts a problem with residuals and a Jacobian matrix to [`NormalEquations`].
@@ -72,38 +91,37 @@ where
 /// its factor and `x` by the solution. Returns false (and leaves garbage) when A is not positive
 /// definite to working precision.
 fn cholesky_solve(a: &mut DMatrix<f64>, x: &mut DVector<f64>) -> bool {
+    // A = UᵀU with U upper triangular, built in A's upper triangle column by column: column-major
+    // storage makes every sum below a dot product of contiguous slices.
     let n = a.nrows();
+    let s = a.as_mut_slice();
+    let x = x.as_mut_slice();
     for j in 0..n {
-        let mut d = a[(j, j)];
-        for k in 0..j {
-            d -= a[(j, k)] * a[(j, k)];
-        }
+        let (left, right) = s.split_at_mut((j + 1) * n);
+        let cj = &mut left[j * n..];
+        let d = cj[j] - dot(&cj[..j], &cj[..j]);
         if !(d > 0.0 && d.is_finite()) {
             return false;
         }
         let d = d.sqrt();
-        a[(j, j)] = d;
-        for i in j + 1..n {
-            let mut v = a[(i, j)];
-            for k in 0..j {
-                v -= a[(i, k)] * a[(j, k)];
-            }
-            a[(i, j)] = v / d;
+        cj[j] = d;
+        let uj = &cj[..j];
+        for ci in right.chunks_exact_mut(n) {
+            ci[j] = (ci[j] - dot(&ci[..j], uj)) / d;
         }
     }
+    // Uᵀy = b, then Ux = y (by columns of U).
     for i in 0..n {
-        let mut v = x[i];
-        for k in 0..i {
-            v -= a[(i, k)] * x[k];
-        }
-        x[i] = v / a[(i, i)];
+        let ci = &s[i * n..i * n + n];
+        x[i] = (x[i] - dot(&ci[..i], &x[..i])) / ci[i];
     }
     for i in (0..n).rev() {
-        let mut v = x[i];
-        for k in i + 1..n {
-            v -= a[(k, i)] * x[k];
+        let ci = &s[i * n..i * n + n];
+        x[i] /= ci[i];
+        let xi = x[i];
+        for (xk, u) in x[..i].iter_mut().zip(&ci[..i]) {
+            *xk -= u * xi;
         }
-        x[i] = v / a[(i, i)];
     }
     true
 }
@@ -151,6 +169,11 @@ pub struct LevenbergMarquardt {
     /// Converged, without a trial point, when the Gauss–Newton step at x predicts a decrease
     /// gᵀ(JᵀJ)⁻¹g below `ptol`·χ² (0 turns the test off).
     pub ptol: f64,
+    /// When the Gauss–Newton step predicts a decrease between `ptol`·χ² and `last_step`·χ², it is
+    /// taken on a cost-only evaluation ([`NormalEquations::cost`]) and the run stops there if the
+    /// measured decrease equals the predicted one to within `ptol`·χ² (0 turns this off; see the
+    /// module notes).
+    pub last_step: f64,
     /// Largest change of any parameter in one step (the step is shortened to it); for log-parameters
     /// 5 means a factor e⁵ ≈ 150.
     pub max_step: f64,
@@ -169,6 +192,7 @@ impl Default for LevenbergMarquardt {
             xtol: 1e-10,
             gtol: 1e-10,
             ptol: 1e-9,
+            last_step: 1e-4,
             max_step: 5.0,
             max_trials: 40,
             lambda: 1e-3,
@@ -315,6 +339,25 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
                 if predicted.is_finite() && predicted <= self.ptol * cost {
                     self.stop = Some(TerminationReason::SolverConverged);
                     return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
+                }
+                if predicted > 0.0
+                    && predicted <= self.last_step * cost
+                    && w.delta.amax() <= self.max_step
+                {
+                    w.x_new.copy_from(&x);
+                    w.x_new += &w.delta;
+                    let x_new = &w.x_new;
+                    let cost_new = problem.problem("cost", |p| p.cost(x_new.as_slice()))?;
+                    let actual = cost - cost_new;
+                    if cost_new.is_finite()
+                        && actual > 0.0
+                        && (actual - predicted).abs() <= self.ptol * cost
+                    {
+                        self.stop = Some(TerminationReason::SolverConverged);
+                        let mut x = x;
+                        std::mem::swap(&mut x, &mut w.x_new);
+                        return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
+                    }
                 }
             }
         }

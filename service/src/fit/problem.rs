@@ -249,6 +249,7 @@ impl<'a> LumpedProblem<'a> {
                 &v,
                 &d.frequency_hz[start..end],
                 &d.sqrt_f[start..end],
+                &d.inv_sigma[start..end],
                 b,
             );
             let w = &d.inv_sigma[start..end];
@@ -256,12 +257,6 @@ impl<'a> LumpedProblem<'a> {
             for k in 0..m {
                 r[k] = (b.z[k] - zm[k].re) * w[k];
                 r[BLOCK + k] = (b.z[BLOCK + k] - zm[k].im) * w[k];
-            }
-            for col in b.d[..n].iter_mut() {
-                for k in 0..m {
-                    col[k] *= w[k];
-                    col[BLOCK + k] *= w[k];
-                }
             }
             if m < BLOCK {
                 // The last, partial block: the unused entries must not count.
@@ -293,6 +288,66 @@ impl<'a> LumpedProblem<'a> {
     }
 }
 
+impl LumpedProblem<'_> {
+    /// χ² = Σ r² at θ alone, without derivatives: a fraction of a
+    /// [`LumpedProblem::normal_equations_into`] pass (the points go through
+    /// [`lumped::impedance_block`]). Dispatched to an AVX2 + FMA build like that pass.
+    pub fn cost_at(&self, theta: &[f64]) -> f64 {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
+        {
+            // SAFETY: the processor supports AVX2 and FMA (checked just above).
+            return unsafe { self.cost_fma(theta) };
+        }
+        self.cost_with::<false>(theta)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2,fma")]
+    unsafe fn cost_fma(&self, theta: &[f64]) -> f64 {
+        self.cost_with::<true>(theta)
+    }
+
+    #[inline(always)]
+    fn cost_with<const FMA: bool>(&self, theta: &[f64]) -> f64 {
+        let d = self.data;
+        let v = Values::new(self.structure, theta);
+        let mut z = [0.0; 2 * BLOCK];
+        let mut r = [0.0; 2 * BLOCK];
+        let mut cost = 0.0;
+        let points = d.frequency_hz.len();
+        let mut start = 0;
+        while start < points {
+            let end = (start + BLOCK).min(points);
+            let m = end - start;
+            lumped::impedance_block(
+                self.structure,
+                &v,
+                &d.frequency_hz[start..end],
+                &d.sqrt_f[start..end],
+                &mut z,
+            );
+            let w = &d.inv_sigma[start..end];
+            let zm = &d.z[start..end];
+            for k in 0..m {
+                r[k] = (z[k] - zm[k].re) * w[k];
+                r[BLOCK + k] = (z[BLOCK + k] - zm[k].im) * w[k];
+            }
+            if m < BLOCK {
+                r[m..BLOCK].fill(0.0);
+                r[BLOCK + m..].fill(0.0);
+            }
+            cost += dots::<FMA, 1>(&r, [&r])[0];
+            start = end;
+        }
+        if let Some((value, sigma)) = d.dcr_prior {
+            let res = (theta[1].exp() - value) / sigma;
+            cost += res * res;
+        }
+        cost
+    }
+}
+
 impl NormalEquations for LumpedProblem<'_> {
     fn normal_equations(
         &self,
@@ -301,6 +356,10 @@ impl NormalEquations for LumpedProblem<'_> {
         g: &mut DVector<f64>,
     ) -> Result<f64, Error> {
         Ok(self.normal_equations_into(x, jtj, g))
+    }
+
+    fn cost(&self, x: &[f64]) -> Result<f64, Error> {
+        Ok(self.cost_at(x))
     }
 }
 
@@ -404,7 +463,7 @@ mod tests {
     }
 
     #[test]
-    fn the_fused_normal_equations_equal_those_of_the_stored_jacobian() {
+    fn the_fused_passes_equal_the_stored_jacobian_and_residuals() {
         // 150 points: two full blocks and a partial one.
         let f: Vec<f64> = (0..150).map(|i| 1e4 * 1.08f64.powi(i)).collect();
         let data = FitData {
@@ -454,6 +513,17 @@ mod tests {
                 };
                 let label = format!("{} ({path})", s.label());
                 assert!((cost / r.norm_squared() - 1.0).abs() < 1e-12, "{label}");
+                // The cost-only pass gives the same χ².
+                let alone = if path == "portable" {
+                    p.cost_with::<false>(&theta)
+                } else {
+                    p.cost_at(&theta)
+                };
+                assert!(
+                    (alone / r.norm_squared() - 1.0).abs() < 1e-12,
+                    "{label}: cost alone {alone} vs {}",
+                    r.norm_squared()
+                );
                 for a in 0..n {
                     let ga = (g[a] - g_ref[a]).abs();
                     assert!(

@@ -358,8 +358,10 @@ impl Block {
     }
 }
 
-/// Fills `out` for the points `frequency_hz` with `sqrt_f` = √f, at most [`BLOCK`] of them;
-/// entries past the last point are left as they were. Same values as [`eval`] to rounding.
+/// Fills `out` for the points `frequency_hz` with `sqrt_f` = √f, at most [`BLOCK`] of them: Z, and
+/// ∂Z/∂θ multiplied by each point's `weight` (a fit's 1/σ, so the columns come out as the weighted
+/// Jacobian without another sweep over them; pass ones for the plain derivatives). Entries past the
+/// last point are left as they were. Same values as [`eval`] to rounding.
 ///
 /// Without sections the whole model is one rational function, evaluated with a single real
 /// reciprocal per point: with R = rdc + k_ac·√f, a = jωl0 and D = a + rp (D = 1 without rp),
@@ -375,11 +377,12 @@ pub fn eval_block(
     v: &Values,
     frequency_hz: &[f64],
     sqrt_f: &[f64],
+    weight: &[f64],
     out: &mut Block,
 ) {
     let m = frequency_hz.len();
     assert!(
-        m <= BLOCK && sqrt_f.len() == m,
+        m <= BLOCK && sqrt_f.len() == m && weight.len() == m,
         "a block holds at most {BLOCK} points"
     );
     if !structure.sections.is_empty() {
@@ -390,8 +393,8 @@ pub fn eval_block(
             out.z[k] = z.re;
             out.z[BLOCK + k] = z.im;
             for (col, d) in out.d.iter_mut().zip(&dz[..n]) {
-                col[k] = d.re;
-                col[BLOCK + k] = d.im;
+                col[k] = d.re * weight[k];
+                col[BLOCK + k] = d.im * weight[k];
             }
         }
         return;
@@ -441,20 +444,69 @@ pub fn eval_block(
         let wls = w * ls;
         z[k] = zn_re;
         z[BLOCK + k] = zn_im + wls;
-        let c0 = ai * alpha2;
+        let u = weight[k];
+        let c0 = ai * alpha2 * u;
         d_l0[k] = -c0 * q2_im;
         d_l0[BLOCK + k] = c0 * q2_re;
-        d_rdc[k] = rdc * dq2_re;
-        d_rdc[BLOCK + k] = rdc * dq2_im;
-        d_cp[k] = wc * zn2_im;
-        d_cp[BLOCK + k] = -wc * zn2_re;
-        let c_rp = -ai * ai * alpha;
+        let c_rdc = rdc * u;
+        d_rdc[k] = c_rdc * dq2_re;
+        d_rdc[BLOCK + k] = c_rdc * dq2_im;
+        let c_cp = wc * u;
+        d_cp[k] = c_cp * zn2_im;
+        d_cp[BLOCK + k] = -c_cp * zn2_re;
+        let c_rp = -ai * ai * alpha * u;
         d_rp[k] = c_rp * q2_re;
         d_rp[BLOCK + k] = c_rp * q2_im;
-        d_k[k] = kt * dq2_re;
-        d_k[BLOCK + k] = kt * dq2_im;
+        let c_k = kt * u;
+        d_k[k] = c_k * dq2_re;
+        d_k[BLOCK + k] = c_k * dq2_im;
         d_ls[k] = 0.0;
-        d_ls[BLOCK + k] = wls;
+        d_ls[BLOCK + k] = wls * u;
+    }
+}
+
+/// Z alone over up to [`BLOCK`] points into `z` (real parts in `[..BLOCK]`, imaginary parts in
+/// `[BLOCK..]`), for a pass that needs the cost but no derivatives: the same rational form as
+/// [`eval_block`] without its derivative columns (structures with sections take [`eval`]).
+/// Entries past the last point are left as they were.
+#[inline(always)]
+pub fn impedance_block(
+    structure: &Structure,
+    v: &Values,
+    frequency_hz: &[f64],
+    sqrt_f: &[f64],
+    z: &mut [f64; 2 * BLOCK],
+) {
+    let m = frequency_hz.len();
+    assert!(
+        m <= BLOCK && sqrt_f.len() == m,
+        "a block holds at most {BLOCK} points"
+    );
+    if !structure.sections.is_empty() {
+        for k in 0..m {
+            let zk = eval(structure, v, frequency_hz[k], sqrt_f[k], None);
+            z[k] = zk.re;
+            z[BLOCK + k] = zk.im;
+        }
+        return;
+    }
+    let p = &v.p;
+    let (l0, rdc, cp) = (p[0], p[1], p[2]);
+    let (alpha, beta) = v.rp.map_or((1.0, 0.0), |i| (p[i], 1.0));
+    let kac = v.k_ac.map_or(0.0, |i| p[i]);
+    let ls = v.ls.map_or(0.0, |i| p[i]);
+    for k in 0..m {
+        let w = 2.0 * PI * frequency_hz[k];
+        let ai = w * l0;
+        let r = rdc + kac * sqrt_f[k];
+        let (n_re, n_im) = (r * alpha, ai * (r * beta + alpha));
+        let (d_re, d_im) = (alpha, beta * ai);
+        let wc = w * cp;
+        let (m_re, m_im) = (d_re - wc * n_im, d_im + wc * n_re);
+        let s = 1.0 / (m_re * m_re + m_im * m_im);
+        let (q_re, q_im) = (m_re * s, -m_im * s);
+        z[k] = n_re * q_re - n_im * q_im;
+        z[BLOCK + k] = n_re * q_im + n_im * q_re + w * ls;
     }
 }
 
