@@ -524,6 +524,95 @@ mod tests {
         }
     }
 
+    /// Counts full passes and cost-only evaluations apart; the cost comes from the residuals alone.
+    struct Split(Dense<Decay>, std::cell::Cell<usize>, std::cell::Cell<usize>);
+
+    impl NormalEquations for Split {
+        fn normal_equations(
+            &self,
+            x: &[f64],
+            jtj: &mut DMatrix<f64>,
+            g: &mut DVector<f64>,
+        ) -> Result<f64, Error> {
+            self.1.set(self.1.get() + 1);
+            self.0.normal_equations(x, jtj, g)
+        }
+
+        fn cost(&self, x: &[f64]) -> Result<f64, Error> {
+            self.2.set(self.2.get() + 1);
+            Ok(self
+                .0
+                .0
+                .apply(&DVector::from_column_slice(x))?
+                .norm_squared())
+        }
+    }
+
+    #[test]
+    fn the_last_step_on_a_cost_only_pass_reaches_the_same_minimum() {
+        // Noisy decay data (a residual at the minimum), started off the minimum so that after one or
+        // two full steps the Gauss–Newton prediction is small but above ptol.
+        let t: Vec<f64> = (0..60).map(|i| i as f64 * 0.1).collect();
+        let y: Vec<f64> = t
+            .iter()
+            .enumerate()
+            .map(|(i, t)| 3.0 * (-1.7 * t).exp() + 1e-2 * ((i * 7919 % 13) as f64 / 6.0 - 1.0))
+            .collect();
+        let run = |solver: LevenbergMarquardt| {
+            let problem = Split(
+                Dense(Decay {
+                    t: t.clone(),
+                    y: y.clone(),
+                }),
+                std::cell::Cell::new(0),
+                std::cell::Cell::new(0),
+            );
+            let res = Executor::new(problem, solver)
+                .configure(|s| s.param(DVector::from_vec(vec![2.0, 1.2])).max_iters(200))
+                .run()
+                .unwrap();
+            let p = res.problem.problem.as_ref().unwrap();
+            let (passes, costs) = (p.1.get(), p.2.get());
+            let state = res.state();
+            assert!(matches!(
+                state.get_termination_reason(),
+                Some(TerminationReason::SolverConverged)
+            ));
+            (
+                state.get_best_param().unwrap().clone(),
+                state.get_cost(),
+                passes,
+                costs,
+            )
+        };
+        // Only the predicted-decrease test ends these runs (no ftol or xtol stop after a full pass).
+        let solver = LevenbergMarquardt::default()
+            .with_tolerances(0.0, 0.0)
+            .with_predicted_tolerance(1e-11);
+        let (p_full, c_full, passes_full, costs_full) = run(LevenbergMarquardt {
+            last_step: 0.0,
+            ..solver.clone()
+        });
+        assert_eq!(costs_full, 0, "no cost-only pass when the last step is off");
+        let (p_cheap, c_cheap, passes_cheap, costs_cheap) = run(solver);
+        assert_eq!(costs_cheap, 1, "the last step is taken on a cost-only pass");
+        assert!(
+            passes_cheap < passes_full,
+            "{passes_cheap} full passes with the cheap last step, {passes_full} without"
+        );
+        // The same minimum: the cost to 1e-12 relative and the parameters to 1e-6.
+        assert!(
+            (c_cheap / c_full - 1.0).abs() < 1e-12,
+            "{c_cheap} vs {c_full}"
+        );
+        for k in 0..2 {
+            assert!(
+                (p_cheap[k] / p_full[k] - 1.0).abs() < 1e-6,
+                "{p_cheap} vs {p_full}"
+            );
+        }
+    }
+
     #[test]
     fn a_run_started_at_the_minimum_stops_after_the_first_pass() {
         // Data with a residual (no exact fit), so only the predicted-decrease test can stop the run

@@ -409,6 +409,37 @@ pub(crate) fn rms_weighted(data: &FitData, poles: &Poles, coef: &Coefficients) -
     (ss / (2 * data.len()) as f64).sqrt()
 }
 
+/// ∂Z/∂(parameter) at normalised s for the refinement's parameters, in its order: real poles, (Re, Im)
+/// per pair, residues, d, e. `phi` is scratch for the basis.
+fn jacobian_row(
+    s: Complex64,
+    poles: &Poles,
+    coef: &Coefficients,
+    phi: &mut Vec<Complex64>,
+    vals: &mut [Complex64],
+) {
+    let nr = poles.real.len();
+    let np = poles.pairs.len();
+    let n = poles.order();
+    for (q, &a) in poles.real.iter().enumerate() {
+        let t = (s - a).inv();
+        vals[q] = coef.c[q] * t * t;
+    }
+    for (q, &p) in poles.pairs.iter().enumerate() {
+        let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
+        let t1 = (s - p).inv();
+        let t2 = (s - p.conj()).inv();
+        let a1 = res * t1 * t1;
+        let a2 = res.conj() * t2 * t2;
+        vals[nr + 2 * q] = a1 + a2;
+        vals[nr + 2 * q + 1] = Complex64::new(0.0, 1.0) * (a1 - a2);
+    }
+    basis_at(s, poles, phi);
+    vals[nr + 2 * np..nr + 2 * np + n].copy_from_slice(phi);
+    vals[nr + 2 * np + n] = Complex64::new(1.0, 0.0);
+    vals[nr + 2 * np + n + 1] = s;
+}
+
 /// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
 /// fixed point minimises a linearised error, not the error itself). Steps that would move a pole into the
 /// right half-plane or change the real/pair split are rejected. Stops after a step that lowers the cost by
@@ -442,7 +473,7 @@ pub(crate) fn refine(
     let mut lambda: f64 = 1e-3;
     let mut accepted = 0;
     let mut phi = Vec::with_capacity(n);
-    let j_unit = Complex64::new(0.0, 1.0);
+    let mut vals = vec![Complex64::new(0.0, 0.0); params];
     let damping_floor: Vec<f64> = poles
         .pairs
         .iter()
@@ -453,26 +484,9 @@ pub(crate) fn refine(
         // scaled by its column norms (those of the triangle: scaling columns commutes with QR); the pivoted
         // QR of that triangle then acts as one of the scaled Jacobian: Qᵀr = Q₂ᵀ·(Q₁ᵀr).
         let mut tall = RowCompressor::new(params, 1);
-        let mut vals = vec![Complex64::new(0.0, 0.0); params];
         for i in 0..k {
             let s = data.s[i];
-            for (q, &a) in poles.real.iter().enumerate() {
-                let t = (s - a).inv();
-                vals[q] = coef.c[q] * t * t;
-            }
-            for (q, &p) in poles.pairs.iter().enumerate() {
-                let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
-                let t1 = (s - p).inv();
-                let t2 = (s - p.conj()).inv();
-                let a1 = res * t1 * t1;
-                let a2 = res.conj() * t2 * t2;
-                vals[nr + 2 * q] = a1 + a2;
-                vals[nr + 2 * q + 1] = j_unit * (a1 - a2);
-            }
-            basis_at(s, &poles, &mut phi);
-            vals[nr + 2 * np..nr + 2 * np + n].copy_from_slice(&phi);
-            vals[nr + 2 * np + n] = Complex64::new(1.0, 0.0);
-            vals[nr + 2 * np + n + 1] = s;
+            jacobian_row(s, &poles, &coef, &mut phi, &mut vals);
             let w = data.w[i];
             let row = tall.row();
             for (x, v) in row.iter_mut().zip(&vals) {
@@ -751,7 +765,7 @@ pub(crate) fn vector_fit_data(
         last_change = Some(pole_change(&poles, &next, w_lo));
         poles = next;
     }
-    let (_, poles, coef) = match best {
+    let (best_rms, poles, coef) = match best {
         Some(b) => b,
         None => {
             let coef = identify(data, &poles);
@@ -760,7 +774,12 @@ pub(crate) fn vector_fit_data(
         }
     };
     let (poles, coef, refinements) = refine(data, poles, coef, 40);
-    let rms = rms_weighted(data, &poles, &coef);
+    // Without an accepted step the model is the one whose error was just measured.
+    let rms = if refinements == 0 {
+        best_rms
+    } else {
+        rms_weighted(data, &poles, &coef)
+    };
     if !rms.is_finite() || coef.c.iter().any(|c| !c.is_finite()) {
         return Err(FitError::NonFinite(format!(
             "vector fitting at order {} gave a non-finite model",
