@@ -361,20 +361,23 @@ pub(crate) fn identify(data: &FitData, poles: &Poles) -> Coefficients {
     let n = poles.order();
     let m = n + 2;
     let mut qr = RowCompressor::new(m, 1);
-    let mut phi = Vec::with_capacity(n);
+    let mut phi = vec![Complex64::new(0.0, 0.0); n];
     for i in 0..data.len() {
         let w = data.w[i];
-        basis_at(data.s[i], poles, &mut phi);
-        let row = qr.row();
-        for (j, ph) in phi.iter().enumerate() {
-            row[j] = ph.re * w;
+        basis_into(data.s[i], poles, &mut phi);
+        // Every entry of both rows is written (so they need no zeroing).
+        let row = qr.row_unzeroed();
+        for (x, ph) in row.iter_mut().zip(&phi) {
+            *x = ph.re * w;
         }
         row[n] = w;
+        row[n + 1] = 0.0;
         row[m] = w * data.z[i].re;
-        let row = qr.row();
-        for (j, ph) in phi.iter().enumerate() {
-            row[j] = ph.im * w;
+        let row = qr.row_unzeroed();
+        for (x, ph) in row.iter_mut().zip(&phi) {
+            *x = ph.im * w;
         }
+        row[n] = 0.0;
         row[n + 1] = w * data.s[i].im;
         row[m] = w * data.z[i].im;
     }
@@ -410,34 +413,34 @@ pub(crate) fn rms_weighted(data: &FitData, poles: &Poles, coef: &Coefficients) -
 }
 
 /// ∂Z/∂(parameter) at normalised s for the refinement's parameters, in its order: real poles, (Re, Im)
-/// per pair, residues, d, e. `phi` is scratch for the basis.
-fn jacobian_row(
-    s: Complex64,
-    poles: &Poles,
-    coef: &Coefficients,
-    phi: &mut Vec<Complex64>,
-    vals: &mut [Complex64],
-) {
+/// per pair, residues, d, e. Each 1/(s − p) is computed once and serves both the pole's column and
+/// its basis function's.
+fn jacobian_row(s: Complex64, poles: &Poles, coef: &Coefficients, vals: &mut [Complex64]) {
     let nr = poles.real.len();
     let np = poles.pairs.len();
     let n = poles.order();
+    let (dp, rest) = vals.split_at_mut(nr + 2 * np);
+    let (basis, tail) = rest.split_at_mut(n);
     for (q, &a) in poles.real.iter().enumerate() {
-        let t = (s - a).inv();
-        vals[q] = coef.c[q] * t * t;
+        let t = recip(s - a);
+        dp[q] = coef.c[q] * t * t;
+        basis[q] = t;
     }
     for (q, &p) in poles.pairs.iter().enumerate() {
-        let res = Complex64::new(coef.c[nr + 2 * q], coef.c[nr + 2 * q + 1]);
-        let t1 = (s - p).inv();
-        let t2 = (s - p.conj()).inv();
+        let o = nr + 2 * q;
+        let res = Complex64::new(coef.c[o], coef.c[o + 1]);
+        let t1 = recip(s - p);
+        let t2 = recip(s - p.conj());
         let a1 = res * t1 * t1;
         let a2 = res.conj() * t2 * t2;
-        vals[nr + 2 * q] = a1 + a2;
-        vals[nr + 2 * q + 1] = Complex64::new(0.0, 1.0) * (a1 - a2);
+        dp[o] = a1 + a2;
+        // j·(a1 − a2), and the pair's basis t1 + t2, j·(t1 − t2) as in [`basis_into`].
+        dp[o + 1] = Complex64::new(a2.im - a1.im, a1.re - a2.re);
+        basis[o] = t1 + t2;
+        basis[o + 1] = Complex64::new(t2.im - t1.im, t1.re - t2.re);
     }
-    basis_at(s, poles, phi);
-    vals[nr + 2 * np..nr + 2 * np + n].copy_from_slice(phi);
-    vals[nr + 2 * np + n] = Complex64::new(1.0, 0.0);
-    vals[nr + 2 * np + n + 1] = s;
+    tail[0] = Complex64::new(1.0, 0.0);
+    tail[1] = s;
 }
 
 /// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
@@ -472,7 +475,6 @@ pub(crate) fn refine(
     let mut cost = cost_of(&r);
     let mut lambda: f64 = 1e-3;
     let mut accepted = 0;
-    let mut phi = Vec::with_capacity(n);
     let mut vals = vec![Complex64::new(0.0, 0.0); params];
     let damping_floor: Vec<f64> = poles
         .pairs
@@ -486,7 +488,7 @@ pub(crate) fn refine(
         let mut tall = RowCompressor::new(params, 1);
         for i in 0..k {
             let s = data.s[i];
-            jacobian_row(s, &poles, &coef, &mut phi, &mut vals);
+            jacobian_row(s, &poles, &coef, &mut vals);
             let w = data.w[i];
             let row = tall.row();
             for (x, v) in row.iter_mut().zip(&vals) {
@@ -721,7 +723,15 @@ pub(crate) fn vector_fit_data(
         if !judge && relocations >= settings.max_relocations {
             break;
         }
-        let (next, coef) = relocate_and_identify(data, &poles);
+        // Poles that moved by less than 1e-6 are most likely judged final in this pass (they are
+        // fixed, or settled with the error flat): identify their residues alone first (N + 2 columns
+        // instead of 2N + 3) and relocate only if the run goes on.
+        let identify_first = judge && last_change.is_some_and(|c| c < 1e-6);
+        let (mut next, coef) = if identify_first {
+            (None, identify(data, &poles))
+        } else {
+            relocate_and_identify(data, &poles)
+        };
         if judge {
             let change = last_change.expect("judged after a relocation");
             let rms = rms_weighted(data, &poles, &coef);
@@ -757,6 +767,9 @@ pub(crate) fn vector_fit_data(
         }
         if relocations >= settings.max_relocations {
             break;
+        }
+        if identify_first {
+            next = relocate_and_identify(data, &poles).0;
         }
         let Some(next) = next else {
             break;
