@@ -335,6 +335,67 @@ pub fn eval(
     z
 }
 
+/// The values the one-fraction form of a structure without sections uses ([`eval_block`]): α = rp,
+/// β = 1 when rp is present and α = 1, β = 0 without (so N = (R·α, a(R·β + α)) and D = (α, β·a));
+/// absent k_ac and ls are 0.
+#[derive(Clone, Copy)]
+struct Fraction {
+    l0: f64,
+    rdc: f64,
+    cp: f64,
+    alpha: f64,
+    beta: f64,
+    kac: f64,
+    ls: f64,
+}
+
+/// One point of a [`Fraction`]: ω·l0, k_ac·√f, N, D and q = 1/M (re, im), ω·cp.
+struct FractionAt {
+    ai: f64,
+    kt: f64,
+    n: (f64, f64),
+    d: (f64, f64),
+    q: (f64, f64),
+    wc: f64,
+}
+
+impl Fraction {
+    #[inline(always)]
+    fn of(v: &Values) -> Fraction {
+        let p = &v.p;
+        let (alpha, beta) = v.rp.map_or((1.0, 0.0), |i| (p[i], 1.0));
+        Fraction {
+            l0: p[0],
+            rdc: p[1],
+            cp: p[2],
+            alpha,
+            beta,
+            kac: v.k_ac.map_or(0.0, |i| p[i]),
+            ls: v.ls.map_or(0.0, |i| p[i]),
+        }
+    }
+
+    #[inline(always)]
+    fn at(&self, w: f64, sqrt_f: f64) -> FractionAt {
+        let ai = w * self.l0;
+        let kt = self.kac * sqrt_f;
+        let r = self.rdc + kt;
+        let (n_re, n_im) = (r * self.alpha, ai * (r * self.beta + self.alpha));
+        let (d_re, d_im) = (self.alpha, self.beta * ai);
+        let wc = w * self.cp;
+        let (m_re, m_im) = (d_re - wc * n_im, d_im + wc * n_re);
+        let s = 1.0 / (m_re * m_re + m_im * m_im);
+        FractionAt {
+            ai,
+            kt,
+            n: (n_re, n_im),
+            d: (d_re, d_im),
+            q: (m_re * s, -m_im * s),
+            wc,
+        }
+    }
+}
+
 /// Points one [`Block`] holds.
 pub const BLOCK: usize = 64;
 
@@ -399,12 +460,8 @@ pub fn eval_block(
         }
         return;
     }
-    let p = &v.p;
-    let (l0, rdc, cp) = (p[0], p[1], p[2]);
-    // α = rp, β = 1 with rp; α = 1, β = 0 without: N = (R·α, a(R·β + α)), D = (α, β·a).
-    let (alpha, beta) = v.rp.map_or((1.0, 0.0), |i| (p[i], 1.0));
-    let kac = v.k_ac.map_or(0.0, |i| p[i]);
-    let ls = v.ls.map_or(0.0, |i| p[i]);
+    let fr = Fraction::of(v);
+    let (rdc, alpha, ls) = (fr.rdc, fr.alpha, fr.ls);
     let alpha2 = alpha * alpha;
     // Columns in θ order; the optional ones go to scratch rows when absent (θ has at most 6 here).
     let z = &mut out.z;
@@ -427,15 +484,14 @@ pub fn eval_block(
     let d_ls = take(v.ls.is_some());
     for k in 0..m {
         let w = 2.0 * PI * frequency_hz[k];
-        let ai = w * l0;
-        let kt = kac * sqrt_f[k];
-        let r = rdc + kt;
-        let (n_re, n_im) = (r * alpha, ai * (r * beta + alpha));
-        let (d_re, d_im) = (alpha, beta * ai);
-        let wc = w * cp;
-        let (m_re, m_im) = (d_re - wc * n_im, d_im + wc * n_re);
-        let s = 1.0 / (m_re * m_re + m_im * m_im);
-        let (q_re, q_im) = (m_re * s, -m_im * s);
+        let FractionAt {
+            ai,
+            kt,
+            n: (n_re, n_im),
+            d: (d_re, d_im),
+            q: (q_re, q_im),
+            wc,
+        } = fr.at(w, sqrt_f[k]);
         let (zn_re, zn_im) = (n_re * q_re - n_im * q_im, n_re * q_im + n_im * q_re);
         let (dq_re, dq_im) = (d_re * q_re - d_im * q_im, d_re * q_im + d_im * q_re);
         let (q2_re, q2_im) = (q_re * q_re - q_im * q_im, 2.0 * q_re * q_im);
@@ -490,23 +546,13 @@ pub fn impedance_block(
         }
         return;
     }
-    let p = &v.p;
-    let (l0, rdc, cp) = (p[0], p[1], p[2]);
-    let (alpha, beta) = v.rp.map_or((1.0, 0.0), |i| (p[i], 1.0));
-    let kac = v.k_ac.map_or(0.0, |i| p[i]);
-    let ls = v.ls.map_or(0.0, |i| p[i]);
+    let fr = Fraction::of(v);
     for k in 0..m {
         let w = 2.0 * PI * frequency_hz[k];
-        let ai = w * l0;
-        let r = rdc + kac * sqrt_f[k];
-        let (n_re, n_im) = (r * alpha, ai * (r * beta + alpha));
-        let (d_re, d_im) = (alpha, beta * ai);
-        let wc = w * cp;
-        let (m_re, m_im) = (d_re - wc * n_im, d_im + wc * n_re);
-        let s = 1.0 / (m_re * m_re + m_im * m_im);
-        let (q_re, q_im) = (m_re * s, -m_im * s);
+        let p = fr.at(w, sqrt_f[k]);
+        let ((n_re, n_im), (q_re, q_im)) = (p.n, p.q);
         z[k] = n_re * q_re - n_im * q_im;
-        z[BLOCK + k] = n_re * q_im + n_im * q_re + w * ls;
+        z[BLOCK + k] = n_re * q_im + n_im * q_re + w * fr.ls;
     }
 }
 
