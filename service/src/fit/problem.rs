@@ -115,6 +115,20 @@ unsafe fn dots_fma<const W: usize>(x: &[f64; 2 * BLOCK], ys: [&[f64; 2 * BLOCK];
     }
 }
 
+/// The weighted residuals of one block, `(Z_model − Z_meas)·w`, real parts in `r[..BLOCK]` and
+/// imaginary parts in `r[BLOCK..]` like the block's Z; entries past the block's `zm.len()` points are
+/// zeroed so they do not count.
+#[inline(always)]
+fn weighted_residuals(z: &[f64; 2 * BLOCK], zm: &[Complex64], w: &[f64], r: &mut [f64; 2 * BLOCK]) {
+    let m = zm.len();
+    for k in 0..m {
+        r[k] = (z[k] - zm[k].re) * w[k];
+        r[BLOCK + k] = (z[BLOCK + k] - zm[k].im) * w[k];
+    }
+    r[m..BLOCK].fill(0.0);
+    r[BLOCK + m..].fill(0.0);
+}
+
 /// Adds one block's products to the packed lower triangle of JᵀJ (`tri`) and to Jᵀr (`jr`), row by
 /// row, up to four columns per sweep over the block (the last sweep of a row includes r); returns
 /// rᵀr. `d` holds the block's weighted Jacobian columns.
@@ -252,15 +266,10 @@ impl<'a> LumpedProblem<'a> {
                 &d.inv_sigma[start..end],
                 b,
             );
-            let w = &d.inv_sigma[start..end];
-            let zm = &d.z[start..end];
-            for k in 0..m {
-                r[k] = (b.z[k] - zm[k].re) * w[k];
-                r[BLOCK + k] = (b.z[BLOCK + k] - zm[k].im) * w[k];
-            }
+            weighted_residuals(&b.z, &d.z[start..end], &d.inv_sigma[start..end], &mut r);
             if m < BLOCK {
                 // The last, partial block: the unused entries must not count.
-                for row in std::iter::once(&mut r).chain(b.d[..n].iter_mut()) {
+                for row in b.d[..n].iter_mut() {
                     row[m..BLOCK].fill(0.0);
                     row[BLOCK + m..].fill(0.0);
                 }
@@ -319,7 +328,6 @@ impl LumpedProblem<'_> {
         let mut start = 0;
         while start < points {
             let end = (start + BLOCK).min(points);
-            let m = end - start;
             lumped::impedance_block(
                 self.structure,
                 &v,
@@ -327,16 +335,7 @@ impl LumpedProblem<'_> {
                 &d.sqrt_f[start..end],
                 &mut z,
             );
-            let w = &d.inv_sigma[start..end];
-            let zm = &d.z[start..end];
-            for k in 0..m {
-                r[k] = (z[k] - zm[k].re) * w[k];
-                r[BLOCK + k] = (z[BLOCK + k] - zm[k].im) * w[k];
-            }
-            if m < BLOCK {
-                r[m..BLOCK].fill(0.0);
-                r[BLOCK + m..].fill(0.0);
-            }
+            weighted_residuals(&z, &d.z[start..end], &d.inv_sigma[start..end], &mut r);
             cost += dots::<FMA, 1>(&r, [&r])[0];
             start = end;
         }

@@ -49,16 +49,24 @@ pub struct FitFilter {
     pub limit: i64,
 }
 
+/// The summary of one fit, read on `conn` (a pool, or a transaction to read it with other rows).
+async fn summary_on(
+    conn: impl sqlx::Executor<'_, Database = Sqlite>,
+    fit_id: i64,
+) -> StoreResult<FitSummary> {
+    let row = sqlx::query(sqlx::AssertSqlSafe(format!(
+        "{SUMMARY_SELECT} WHERE f.fit_id = ?"
+    )))
+    .bind(fit_id)
+    .fetch_optional(conn)
+    .await?
+    .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+    Ok(summary_from_row(&row)?)
+}
+
 impl Store {
     pub async fn fit_summary(&self, fit_id: i64) -> StoreResult<FitSummary> {
-        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
-            "{SUMMARY_SELECT} WHERE f.fit_id = ?"
-        )))
-        .bind(fit_id)
-        .fetch_optional(&self.reader)
-        .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
-        Ok(summary_from_row(&row)?)
+        summary_on(&self.reader, fit_id).await
     }
 
     pub async fn fit_detail(&self, fit_id: i64) -> StoreResult<FitDetail> {
@@ -75,15 +83,8 @@ impl Store {
         .fetch_optional(&mut *tx)
         .await?
         .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
-        let summary_row = sqlx::query(sqlx::AssertSqlSafe(format!(
-            "{SUMMARY_SELECT} WHERE f.fit_id = ?"
-        )))
-        .bind(fit_id)
-        .fetch_optional(&mut *tx)
-        .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        let summary = summary_on(&mut *tx, fit_id).await?;
         tx.commit().await?;
-        let summary = summary_from_row(&summary_row)?;
         let parse = |col: &str| -> StoreResult<Option<serde_json::Value>> {
             let text: Option<String> = row.try_get(col)?;
             Ok(text.map(|t| serde_json::from_str(&t)).transpose()?)
