@@ -111,6 +111,74 @@ fn basis_into(s: Complex64, poles: &Poles, out: &mut [Complex64]) {
     }
 }
 
+/// Points per chunk of the row builders: two rows per point fill one block of the [`RowCompressor`].
+const CHUNK: usize = linalg::BLOCK_ROWS / 2;
+
+/// [`basis_into`] (and, with `sq`, the squared basis of [`identify_with_gain`]: 1/(s − a)² for a real pole;
+/// 1/(s − p)² + 1/(s − p̄)² and j/(s − p)² − j/(s − p̄)² for a pair) at up to [`CHUNK`] points, laid out by
+/// function: function j at point i in `[j * CHUNK + i]`, real and imaginary parts
+/// apart. The same arithmetic as those functions, one pole at a time over the points (so that it runs in
+/// vector registers).
+fn basis_chunk(
+    s: &[Complex64],
+    poles: &Poles,
+    re: &mut [f64],
+    im: &mut [f64],
+    mut sq: Option<(&mut [f64], &mut [f64])>,
+) {
+    let len = s.len();
+    assert!(len <= CHUNK && re.len() >= poles.order() * CHUNK && im.len() >= poles.order() * CHUNK);
+    for (j, &a) in poles.real.iter().enumerate() {
+        let (ore, oim) = (&mut re[j * CHUNK..][..len], &mut im[j * CHUNK..][..len]);
+        for i in 0..len {
+            let (zr, zi) = (s[i].re - a, s[i].im);
+            let q = 1.0 / (zr * zr + zi * zi);
+            ore[i] = zr * q;
+            oim[i] = -zi * q;
+        }
+        if let Some((ur, ui)) = sq.as_mut() {
+            let (ur, ui) = (&mut ur[j * CHUNK..][..len], &mut ui[j * CHUNK..][..len]);
+            for i in 0..len {
+                let (tr, ti) = (ore[i], oim[i]);
+                ur[i] = tr * tr - ti * ti;
+                ui[i] = tr * ti + ti * tr;
+            }
+        }
+    }
+    let nr = poles.real.len();
+    for (q, &p) in poles.pairs.iter().enumerate() {
+        let j = nr + 2 * q;
+        let (re0, re1) = re[j * CHUNK..(j + 2) * CHUNK].split_at_mut(CHUNK);
+        let (im0, im1) = im[j * CHUNK..(j + 2) * CHUNK].split_at_mut(CHUNK);
+        let mut squares = sq.as_mut().map(|(ur, ui)| {
+            let (ur0, ur1) = ur[j * CHUNK..(j + 2) * CHUNK].split_at_mut(CHUNK);
+            let (ui0, ui1) = ui[j * CHUNK..(j + 2) * CHUNK].split_at_mut(CHUNK);
+            (ur0, ur1, ui0, ui1)
+        });
+        let pc = p.conj();
+        for i in 0..len {
+            let (z1r, z1i) = (s[i].re - p.re, s[i].im - p.im);
+            let q1 = 1.0 / (z1r * z1r + z1i * z1i);
+            let (t1r, t1i) = (z1r * q1, -z1i * q1);
+            let (z2r, z2i) = (s[i].re - pc.re, s[i].im - pc.im);
+            let q2 = 1.0 / (z2r * z2r + z2i * z2i);
+            let (t2r, t2i) = (z2r * q2, -z2i * q2);
+            re0[i] = t1r + t2r;
+            im0[i] = t1i + t2i;
+            re1[i] = t2i - t1i;
+            im1[i] = t1r - t2r;
+            if let Some((ur0, ur1, ui0, ui1)) = squares.as_mut() {
+                let (a1r, a1i) = (t1r * t1r - t1i * t1i, t1r * t1i + t1i * t1r);
+                let (a2r, a2i) = (t2r * t2r - t2i * t2i, t2r * t2i + t2i * t2r);
+                ur0[i] = a1r + a2r;
+                ui0[i] = a1i + a2i;
+                ur1[i] = a2i - a1i;
+                ui1[i] = a1r - a2r;
+            }
+        }
+    }
+}
+
 /// Log-spaced complex starting pairs across the band with Re = −Im/100 (Gustavsen & Semlyen 1999, §IV),
 /// and for an odd order one real pole at the geometric centre of the band.
 pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
@@ -134,11 +202,12 @@ pub(crate) fn starting_poles(order: usize, w_lo: f64, w_hi: f64) -> Poles {
 }
 
 /// Streams the relaxed relocation system into `qr`, two rows (Re, Im) per point, columns
-/// [c…, d, e, c̃…, d̃]. With `fixed_d = None` the right-hand side is the weighted data (the residue system
-/// of the first N + 2 columns); the relaxed system's own right-hand side is zero on these rows, so it is
-/// not streamed, and its one non-zero row, the relaxation `Re Σₖ σ(sₖ) = K`, is returned as (row, target)
-/// for the caller to add to the triangle. With `Some(d̃)` the d̃ column moves to the only right-hand side
-/// and there is no relaxation row (Gustavsen 2006, §III).
+/// [c…, d, e, c̃…, d̃]. With `fixed_d = None` there is no right-hand side column: the relaxed system's own
+/// right-hand side is zero on these rows, and the d̃ column, −(weighted data), is up to sign the
+/// right-hand side of the residue system in the first N + 2 columns. The relaxed system's one non-zero
+/// row, the relaxation `Re Σₖ σ(sₖ) = K`, is returned as (row, target) for the caller to add to the
+/// triangle. With `Some(d̃)` the d̃ column moves to the only right-hand side and there is no relaxation
+/// row (Gustavsen 2006, §III).
 fn relocation_rows(
     data: &FitData,
     poles: &Poles,
@@ -147,7 +216,8 @@ fn relocation_rows(
 ) -> Option<(Vec<f64>, f64)> {
     let k = data.len();
     let n = poles.order();
-    let mut phi = vec![Complex64::new(0.0, 0.0); n];
+    let mut br = vec![0.0; n * CHUNK];
+    let mut bi = vec![0.0; n * CHUNK];
     let mut phi_sum = vec![0.0; n];
     let scale = {
         let ss: f64 = data
@@ -158,45 +228,39 @@ fn relocation_rows(
             .sum();
         ss.sqrt() / k as f64
     };
-    for i in 0..k {
-        let s = data.s[i];
-        let w = data.w[i];
-        let wz = data.z[i] * w;
-        basis_into(s, poles, &mut phi);
+    let width = 2 * n + 3;
+    let st = qr.stride();
+    let d_col = fixed_d.unwrap_or(-1.0);
+    for start in (0..k).step_by(CHUNK) {
+        let len = CHUNK.min(k - start);
+        basis_chunk(&data.s[start..start + len], poles, &mut br, &mut bi, None);
         // Row of the real parts, then of the imaginary parts: w·φ, w, w·s, −w·Z·φ, then −w·Z (the d̃
-        // column) and the right-hand side; every entry is written.
-        let row = qr.row_unzeroed();
-        let (head, tail) = row.split_at_mut(n + 2);
-        for ((h, t), ph) in head.iter_mut().zip(tail.iter_mut()).zip(&phi) {
-            *h = ph.re * w;
-            *t = wz.im * ph.im - wz.re * ph.re;
-        }
-        head[n] = w;
-        head[n + 1] = 0.0;
-        match fixed_d {
-            None => {
-                row[2 * n + 2] = -wz.re;
-                row[2 * n + 3] = wz.re;
+        // column) or, with d̃ fixed, the right-hand side; every entry is written.
+        let blk = qr.rows_unzeroed(2 * len);
+        for (i, rows) in blk.chunks_exact_mut(2 * st).enumerate() {
+            let g = start + i;
+            let w = data.w[g];
+            let wz = data.z[g] * w;
+            let (re, im) = rows.split_at_mut(st);
+            let (re, im) = (&mut re[..width], &mut im[..width]);
+            for j in 0..n {
+                let (pr, pi) = (br[j * CHUNK + i], bi[j * CHUNK + i]);
+                re[j] = pr * w;
+                im[j] = pi * w;
+                re[n + 2 + j] = wz.im * pi - wz.re * pr;
+                im[n + 2 + j] = -(wz.re * pi + wz.im * pr);
             }
-            Some(d) => row[2 * n + 2] = d * wz.re,
+            re[n] = w;
+            re[n + 1] = 0.0;
+            im[n] = 0.0;
+            im[n + 1] = w * data.s[g].im;
+            re[2 * n + 2] = d_col * wz.re;
+            im[2 * n + 2] = d_col * wz.im;
         }
-        let row = qr.row_unzeroed();
-        let (head, tail) = row.split_at_mut(n + 2);
-        for ((h, t), ph) in head.iter_mut().zip(tail.iter_mut()).zip(&phi) {
-            *h = ph.im * w;
-            *t = -(wz.re * ph.im + wz.im * ph.re);
-        }
-        head[n] = 0.0;
-        head[n + 1] = w * s.im;
-        match fixed_d {
-            None => {
-                row[2 * n + 2] = -wz.im;
-                row[2 * n + 3] = wz.im;
+        for (acc, col) in phi_sum.iter_mut().zip(br.chunks_exact(CHUNK)) {
+            for v in &col[..len] {
+                *acc += v;
             }
-            Some(d) => row[2 * n + 2] = d * wz.im,
-        }
-        for (acc, ph) in phi_sum.iter_mut().zip(&phi) {
-            *acc += ph.re;
         }
     }
     qr.finish();
@@ -215,17 +279,17 @@ fn relocation_rows(
 /// zeros of σ, with unstable ones flipped into the left half-plane.
 /// Also returns the residues, d and e of the poles given (what [`identify`] returns), from the same
 /// factorisation: the first N + 2 columns of the relocation system are the weighted residue system of
-/// those poles, so the leading block of its triangle (with the data as a second right-hand side) is the
+/// those poles, so the leading block of its triangle (with the d̃ column as their right-hand side) is the
 /// triangle [`identify`] would compute.
 pub(crate) fn relocate_and_identify(data: &FitData, poles: &Poles) -> (Option<Poles>, Identified) {
     let n = poles.order();
     let cols = 2 * n + 3;
-    let mut qr = RowCompressor::new(cols, 1);
+    let mut qr = RowCompressor::new(cols, 0);
     let (relax, target) = relocation_rows(data, poles, None, &mut qr).expect("relaxed rows");
     let m = n + 2;
-    // The d̃ column is −(weighted data), so the rows from m on of its triangle column hold the residual of
-    // the residue system.
-    let fit = Identified::solve(data, poles, &qr, m, cols - 1);
+    // The d̃ column is −(weighted data): its triangle column holds the residue system's right-hand side
+    // (negated) in the rows above m and its residual in the rows from m on.
+    let (fit, _) = Identified::solve(data, poles, &qr, m, cols - 1);
     // The relaxed system: the triangle of the data rows (whose right-hand side is zero) over the
     // relaxation row.
     let sc = padded(cols);
@@ -244,34 +308,46 @@ pub(crate) struct Identified {
     pub coef: Coefficients,
     /// [`rms_weighted`] of `coef`, read off the triangle.
     pub rms: f64,
+    /// The most a Gauss–Newton step on poles and residues together could lower the cost, as a fraction
+    /// of the cost, when the pass measured it ([`identify_with_gain`]).
+    pub gain: Option<f64>,
 }
 
 impl Identified {
-    /// Solves the residue system, the leading `m` columns of the compressed `qr` with its first
-    /// right-hand side (the weighted data); `data_col` is a column of `qr` equal to −(weighted data), whose
-    /// triangle rows from `m` on give the residual. When the residue system is rank-deficient the
-    /// solution is a truncated one and its error is measured instead.
+    /// Solves the residue system, the leading `m` columns of the compressed `qr`; `data_col` is a column
+    /// of `qr` equal to −(weighted data), whose triangle rows above `m` give the right-hand side (negated)
+    /// and rows from `m` on the residual. When the residue system is rank-deficient the solution is a
+    /// truncated one and its error is measured instead; the flag says whether it had full rank.
     fn solve(
         data: &FitData,
         poles: &Poles,
         qr: &RowCompressor,
         m: usize,
         data_col: usize,
-    ) -> Identified {
+    ) -> (Identified, bool) {
         let n = poles.order();
         let pq = PivotedQr::from_rows(qr.triangle(m), m, m, padded(m), RANK_TOL);
-        let x = pq.solve(&qr.qtb(0)[..m]);
+        let rhs: Vec<f64> = (0..m).map(|i| -qr.r(i, data_col)).collect();
+        let x = pq.solve(&rhs);
         let coef = Coefficients {
             c: x[..n].to_vec(),
             d: x[n],
             e: x[n + 1],
         };
-        let rms = if pq.rank() == m {
+        let full = pq.rank() == m;
+        let rms = if full {
             (qr.column_tail_sq(data_col, m) / (2 * data.len()) as f64).sqrt()
         } else {
             rms_weighted(data, poles, &coef)
         };
-        Identified { coef, rms }
+        (
+            Identified {
+                coef,
+                rms,
+                gain: None,
+            },
+            full,
+        )
     }
 }
 
@@ -387,37 +463,107 @@ pub(crate) fn linear_system(data: &FitData, poles: &Poles) -> (Vec<f64>, Vec<f64
 }
 
 /// Residues, d and e for fixed poles by weighted linear least squares (the rows of [`linear_system`],
-/// streamed), and their error: the data ride along once more as a column after e, so the triangle holds
-/// the residual.
+/// streamed), and their error: the data ride along as a column after e, −(weighted data), so the
+/// triangle holds both the right-hand side and the residual.
 pub(crate) fn identify(data: &FitData, poles: &Poles) -> Identified {
+    identify_rows(data, poles, false).0
+}
+
+/// [`identify`], and how much a Gauss–Newton step on poles and residues together could still lower the
+/// cost ([`Identified::gain`]), from the same factorisation: the pole derivatives of the weighted model
+/// are, per pole, combinations with the residues as coefficients of the squared basis (1/(s − a)² for a
+/// real pole; 1/(s − p)² + 1/(s − p̄)² and j/(s − p)² − j/(s − p̄)² for a pair), which ride along as N more
+/// columns after the data. With nonzero residues those combinations span the same space as the squared
+/// basis, so the gain ‖P_J r‖² is the part of the residual r that the squared basis, taken orthogonal to
+/// the residue system, can reach; a residue of zero only makes the measured gain an upper bound. The
+/// gain is `None` when the residue system is rank-deficient or a squared-basis column lies within 1e-10
+/// (relative) of the span of the columns before it.
+pub(crate) fn identify_with_gain(data: &FitData, poles: &Poles) -> Identified {
+    let (mut fit, qr, full) = identify_rows(data, poles, true);
+    if full {
+        fit.gain = gain_fraction(&qr, poles.order() + 2, poles.order());
+    }
+    fit
+}
+
+/// Streams the residue system [w·φ…, w, w·s, −w·Z] and, with `squares`, the weighted squared basis after
+/// it; solves the residue system.
+fn identify_rows(
+    data: &FitData,
+    poles: &Poles,
+    squares: bool,
+) -> (Identified, RowCompressor, bool) {
     let n = poles.order();
     let m = n + 2;
-    let mut qr = RowCompressor::new(m + 1, 1);
-    let mut phi = vec![Complex64::new(0.0, 0.0); n];
-    for i in 0..data.len() {
-        let w = data.w[i];
-        let wz = data.z[i] * w;
-        basis_into(data.s[i], poles, &mut phi);
+    let cols = if squares { m + 1 + n } else { m + 1 };
+    let mut qr = RowCompressor::new(cols, 0);
+    let st = qr.stride();
+    let mut br = vec![0.0; n * CHUNK];
+    let mut bi = vec![0.0; n * CHUNK];
+    let (mut ur, mut ui) = if squares {
+        (vec![0.0; n * CHUNK], vec![0.0; n * CHUNK])
+    } else {
+        (Vec::new(), Vec::new())
+    };
+    for start in (0..data.len()).step_by(CHUNK) {
+        let len = CHUNK.min(data.len() - start);
+        let sq = squares.then_some((&mut ur[..], &mut ui[..]));
+        basis_chunk(&data.s[start..start + len], poles, &mut br, &mut bi, sq);
         // Every entry of both rows is written (so they need no zeroing).
-        let row = qr.row_unzeroed();
-        for (x, ph) in row.iter_mut().zip(&phi) {
-            *x = ph.re * w;
+        let blk = qr.rows_unzeroed(2 * len);
+        for (i, rows) in blk.chunks_exact_mut(2 * st).enumerate() {
+            let g = start + i;
+            let w = data.w[g];
+            let wz = data.z[g] * w;
+            let (re, im) = rows.split_at_mut(st);
+            let (re, im) = (&mut re[..cols], &mut im[..cols]);
+            for j in 0..n {
+                re[j] = br[j * CHUNK + i] * w;
+                im[j] = bi[j * CHUNK + i] * w;
+            }
+            re[n] = w;
+            re[n + 1] = 0.0;
+            im[n] = 0.0;
+            im[n + 1] = w * data.s[g].im;
+            re[m] = -wz.re;
+            im[m] = -wz.im;
+            if squares {
+                for j in 0..n {
+                    re[m + 1 + j] = ur[j * CHUNK + i] * w;
+                    im[m + 1 + j] = ui[j * CHUNK + i] * w;
+                }
+            }
         }
-        row[n] = w;
-        row[n + 1] = 0.0;
-        row[m] = -wz.re;
-        row[m + 1] = wz.re;
-        let row = qr.row_unzeroed();
-        for (x, ph) in row.iter_mut().zip(&phi) {
-            *x = ph.im * w;
-        }
-        row[n] = 0.0;
-        row[n + 1] = w * data.s[i].im;
-        row[m] = -wz.im;
-        row[m + 1] = wz.im;
     }
     qr.finish();
-    Identified::solve(data, poles, &qr, m, m)
+    let (fit, full) = Identified::solve(data, poles, &qr, m, m);
+    (fit, qr, full)
+}
+
+/// The Gauss–Newton gain as a fraction of the cost from the triangle T of [A, −b, U] (A the `m` columns
+/// of the residue system, solved; U the `q` squared-basis columns). In the basis of Q the residual is
+/// T[m][m]·eₘ, and the parts of U orthogonal to A are the rows m… of its columns: V = [vᵀ; R_U] with
+/// v = T[m][U] and R_U the triangle of U. So gain/cost = vᵀ(VᵀV)⁻¹v = a/(1 + a) with a = ‖R_U⁻ᵀv‖²
+/// (VᵀV = R_UᵀR_U + vvᵀ, Sherman–Morrison).
+fn gain_fraction(qr: &RowCompressor, m: usize, q: usize) -> Option<f64> {
+    let u0 = m + 1;
+    let mut y = vec![0.0; q];
+    for j in 0..q {
+        let c = u0 + j;
+        let diag = qr.r(c, c);
+        let norm = (0..=c).map(|i| qr.r(i, c) * qr.r(i, c)).sum::<f64>().sqrt();
+        if diag.is_nan() || diag.abs() <= 1e-10 * norm {
+            return None;
+        }
+        let mut t = qr.r(m, c);
+        for (i, yi) in y[..j].iter().enumerate() {
+            t -= qr.r(u0 + i, c) * yi;
+        }
+        y[j] = t / diag;
+    }
+    let a: f64 = y.iter().map(|v| v * v).sum();
+    let g = a / (1.0 + a);
+    g.is_finite().then_some(g)
 }
 
 /// Z at normalised s′.
@@ -561,12 +707,14 @@ fn scaled_cholesky_gain(gram: &GramAccumulator, p: usize) -> Option<f64> {
 /// Refines poles and residues together by Levenberg–Marquardt on the weighted error (the relocation's
 /// fixed point minimises a linearised error, not the error itself). Steps that would move a pole into the
 /// right half-plane or change the real/pair split are rejected. Stops after a step that lowers the cost by
-/// less than 0.01 % (another Jacobian would not change the fit materially). Returns the refined set and the
-/// number of accepted steps.
+/// less than 0.01 % (another Jacobian would not change the fit materially). `known_gain` is the fraction of
+/// the cost a Gauss–Newton step could gain at the start, when the caller measured it
+/// ([`identify_with_gain`]). Returns the refined set and the number of accepted steps.
 pub(crate) fn refine(
     data: &FitData,
     mut poles: Poles,
     mut coef: Coefficients,
+    known_gain: Option<f64>,
     max_steps: u64,
 ) -> (Poles, Coefficients, u64) {
     let k = data.len();
@@ -586,9 +734,14 @@ pub(crate) fn refine(
         r
     };
     let cost_of = |r: &[f64]| r.iter().map(|v| v * v).sum::<f64>();
-    // The first test (is the fit already at its minimum?) on the normal equations: most fits end there,
-    // and one pass of Gram sums costs a fraction of the QR pass below.
-    let (mut r, gain) = gauss_newton_gain(data, &poles, &coef);
+    // The first test (is the fit already at its minimum?): most fits end there. When the caller has not
+    // measured the gain, it runs on the normal equations: one pass of Gram sums costs a fraction of the
+    // QR pass below.
+    let (mut r, gain) = match known_gain {
+        Some(g) if g <= MIN_GAIN => return (poles, coef, 0),
+        Some(_) => (residual(&poles, &coef), None),
+        None => gauss_newton_gain(data, &poles, &coef),
+    };
     let mut cost = cost_of(&r);
     if gain.is_some_and(|g| g <= MIN_GAIN * cost) {
         return (poles, coef, 0);
@@ -820,7 +973,8 @@ pub(crate) fn vector_fit_data(
         .max(1e-9);
     let w_hi = data.s.iter().fold(0.0f64, |m, s| m.max(s.im));
     let mut poles = starting_poles(settings.order, w_lo, w_hi);
-    let mut best: Option<(f64, Poles, Coefficients)> = None;
+    // The best iterate: error, poles, residues and (when measured) the Gauss–Newton gain left.
+    let mut best: Option<(f64, Poles, Coefficients, Option<f64>)> = None;
     let mut relocations = 0;
     let mut converged = false;
     let mut stalls = 0;
@@ -845,10 +999,11 @@ pub(crate) fn vector_fit_data(
         }
         // Poles that moved by less than 1e-6 are most likely judged final in this pass (they are
         // fixed, or settled with the error flat): identify their residues alone first (N + 2 columns
-        // instead of 2N + 3) and relocate only if the run goes on.
+        // instead of 2N + 3, and N more for the refinement's first test) and relocate only if the run goes
+        // on.
         let identify_first = judge && last_change.is_some_and(|c| c < 1e-6);
-        let (mut next, Identified { coef, rms }) = if identify_first {
-            (None, identify(data, &poles))
+        let (mut next, Identified { coef, rms, gain }) = if identify_first {
+            (None, identify_with_gain(data, &poles))
         } else {
             relocate_and_identify(data, &poles)
         };
@@ -858,17 +1013,15 @@ pub(crate) fn vector_fit_data(
             if rms.is_finite() {
                 flat = best
                     .as_ref()
-                    .is_some_and(|(b, _, _)| (rms - *b).abs() <= 1e-6 * *b);
-                let improved = best
-                    .as_ref()
-                    .is_none_or(|(b, _, _)| rms < *b * (1.0 - 1e-3));
+                    .is_some_and(|(b, ..)| (rms - *b).abs() <= 1e-6 * *b);
+                let improved = best.as_ref().is_none_or(|(b, ..)| rms < *b * (1.0 - 1e-3));
                 if improved {
                     stalls = 0;
                 } else {
                     stalls += 1;
                 }
-                if best.as_ref().is_none_or(|(b, _, _)| rms <= *b) {
-                    best = Some((rms, poles.clone(), coef));
+                if best.as_ref().is_none_or(|(b, ..)| rms <= *b) {
+                    best = Some((rms, poles.clone(), coef, gain));
                 }
             }
             // Poles fixed to 1e-10, or settled to 1e-6 with the error no longer changing (noisy data).
@@ -897,14 +1050,14 @@ pub(crate) fn vector_fit_data(
         last_change = Some(pole_change(&poles, &next, w_lo));
         poles = next;
     }
-    let (best_rms, poles, coef) = match best {
+    let (best_rms, poles, coef, gain) = match best {
         Some(b) => b,
         None => {
-            let Identified { coef, rms } = identify(data, &poles);
-            (rms, poles, coef)
+            let Identified { coef, rms, gain } = identify(data, &poles);
+            (rms, poles, coef, gain)
         }
     };
-    let (poles, coef, refinements) = refine(data, poles, coef, 40);
+    let (poles, coef, refinements) = refine(data, poles, coef, gain, 40);
     // Without an accepted step the model is the one whose error was just measured.
     let rms = if refinements == 0 {
         best_rms
@@ -1372,5 +1525,45 @@ mod tests {
             e: 0.0,
         };
         assert_eq!(gauss_newton_gain(&data, &twice, &coef).1, None);
+    }
+
+    #[test]
+    fn the_gain_read_off_the_identify_triangle_is_the_qr_gain() {
+        let data = rippled_data();
+        // Off the optimum (a pair and a real pole near the data's, as above) and at a relocation's fixed
+        // point, where the gain is small; then a real-pole-only set.
+        let near = Poles {
+            real: vec![-0.3],
+            pairs: vec![Complex64::new(-0.0009, 0.0227)],
+        };
+        let mut settled = near.clone();
+        for _ in 0..20 {
+            settled = relocate_and_identify(&data, &settled).0.expect("poles");
+        }
+        let reals = Poles {
+            real: vec![-0.01, -0.2],
+            pairs: vec![],
+        };
+        for poles in [near, settled, reals] {
+            let fit = identify_with_gain(&data, &poles);
+            let plain = identify(&data, &poles);
+            // The extra columns leave the residue system's triangle as it was.
+            assert_eq!(fit.coef, plain.coef);
+            assert_eq!(fit.rms, plain.rms);
+            let (r, _) = gauss_newton_gain(&data, &poles, &fit.coef);
+            let cost: f64 = r.iter().map(|v| v * v).sum();
+            let direct = qr_gain(&data, &poles, &fit.coef, &r) / cost;
+            let gain = fit.gain.expect("a well-posed Jacobian");
+            assert!(
+                direct > 0.0 && (gain - direct).abs() <= 1e-6 * direct,
+                "{gain} vs {direct}"
+            );
+        }
+        // The same pair twice: the residue system is rank-deficient and no gain is read off.
+        let twice = Poles {
+            real: vec![],
+            pairs: vec![Complex64::new(-0.0009, 0.0227); 2],
+        };
+        assert_eq!(identify_with_gain(&data, &twice).gain, None);
     }
 }

@@ -432,7 +432,7 @@ fn column_norm(a: &[f64], rows: usize, stride: usize, j: usize) -> f64 {
 
 /// Rows eliminated per pass of [`RowCompressor`]: a block of this many rows and the triangle so far stay
 /// in the first-level cache (24 KB at 24 columns).
-const BLOCK_ROWS: usize = 128;
+pub(crate) const BLOCK_ROWS: usize = 128;
 
 /// Reduces a tall least-squares problem `A·x ≈ b` (rows ≫ cols) to the square `R·x ≈ (Qᵀb)[..cols]`,
 /// `A = Q·R`, by unpivoted Householder QR taken one block of rows at a time, as the rows are produced:
@@ -479,15 +479,23 @@ impl RowCompressor {
         row
     }
 
-    /// The next row, not zeroed (it may hold an earlier row's values): the caller writes all `cols`
-    /// entries of A and one per right-hand side.
-    pub(crate) fn row_unzeroed(&mut self) -> &mut [f64] {
-        if self.pending == BLOCK_ROWS {
+    /// The next `count` rows (at most [`BLOCK_ROWS`]), not zeroed, as one row-major slice of rows of
+    /// [`Self::stride`]: the caller writes the first `cols` entries of A and one per right-hand side of
+    /// every row (the padding after them stays zero). When they do not fit in the pending block, that
+    /// block is eliminated first, so requests of [`BLOCK_ROWS`] rows block the rows as single rows would.
+    pub(crate) fn rows_unzeroed(&mut self, count: usize) -> &mut [f64] {
+        assert!(count <= BLOCK_ROWS);
+        if self.pending + count > BLOCK_ROWS {
             self.eliminate();
         }
         let o = self.pending * self.stride;
-        self.pending += 1;
-        &mut self.blk[o..o + self.width]
+        self.pending += count;
+        &mut self.blk[o..o + count * self.stride]
+    }
+
+    /// Row length in [`Self::rows_unzeroed`].
+    pub(crate) fn stride(&self) -> usize {
+        self.stride
     }
 
     fn eliminate(&mut self) {
@@ -540,6 +548,12 @@ impl RowCompressor {
         (from..=j)
             .map(|i| self.t[i * self.stride + j] * self.t[i * self.stride + j])
             .sum()
+    }
+
+    /// R[i][j] (`i, j < cols`).
+    pub(crate) fn r(&self, i: usize, j: usize) -> f64 {
+        debug_assert!(i < self.cols && j < self.cols);
+        self.t[i * self.stride + j]
     }
 
     /// The first `cols` entries of Qᵀb for right-hand side `i`.
