@@ -236,26 +236,33 @@ fn relocation_rows(
         basis_chunk(&data.s[start..start + len], poles, &mut br, &mut bi, None);
         // Row of the real parts, then of the imaginary parts: w·φ, w, w·s, −w·Z·φ, then −w·Z (the d̃
         // column) or, with d̃ fixed, the right-hand side; every entry is written.
-        let blk = qr.rows_unzeroed(2 * len);
-        for (i, rows) in blk.chunks_exact_mut(2 * st).enumerate() {
-            let g = start + i;
-            let w = data.w[g];
-            let wz = data.z[g] * w;
-            let (re, im) = rows.split_at_mut(st);
-            let (re, im) = (&mut re[..width], &mut im[..width]);
-            for j in 0..n {
-                let (pr, pi) = (br[j * CHUNK + i], bi[j * CHUNK + i]);
-                re[j] = pr * w;
-                im[j] = pi * w;
-                re[n + 2 + j] = wz.im * pi - wz.re * pr;
-                im[n + 2 + j] = -(wz.re * pi + wz.im * pr);
+        let w = &data.w[start..start + len];
+        let mut wz = [Complex64::new(0.0, 0.0); CHUNK];
+        for (o, (z, w)) in wz.iter_mut().zip(data.z[start..start + len].iter().zip(w)) {
+            *o = z * w;
+        }
+        let blk = &mut qr.rows_unzeroed(2 * len)[..2 * len * st];
+        // Column by column (the arithmetic runs over the points in vector registers).
+        for j in 0..n {
+            let (pr, pi) = (&br[j * CHUNK..][..len], &bi[j * CHUNK..][..len]);
+            let points = pr.iter().zip(pi).zip(w.iter().zip(&wz));
+            for (rows, ((&a, &b), (&w, wz))) in blk.chunks_exact_mut(2 * st).zip(points) {
+                let (re, im) = rows.split_at_mut(st);
+                re[j] = a * w;
+                im[j] = b * w;
+                re[n + 2 + j] = wz.im * b - wz.re * a;
+                im[n + 2 + j] = -(wz.re * b + wz.im * a);
             }
+        }
+        for (i, rows) in blk.chunks_exact_mut(2 * st).enumerate() {
+            let (re, im) = rows.split_at_mut(st);
+            let (w, wz) = (w[i], wz[i]);
             re[n] = w;
             re[n + 1] = 0.0;
             im[n] = 0.0;
-            im[n + 1] = w * data.s[g].im;
-            re[2 * n + 2] = d_col * wz.re;
-            im[2 * n + 2] = d_col * wz.im;
+            im[n + 1] = w * data.s[start + i].im;
+            re[width - 1] = d_col * wz.re;
+            im[width - 1] = d_col * wz.im;
         }
         for (acc, col) in phi_sum.iter_mut().zip(br.chunks_exact(CHUNK)) {
             for v in &col[..len] {
@@ -509,30 +516,32 @@ fn identify_rows(
         let len = CHUNK.min(data.len() - start);
         let sq = squares.then_some((&mut ur[..], &mut ui[..]));
         basis_chunk(&data.s[start..start + len], poles, &mut br, &mut bi, sq);
-        // Every entry of both rows is written (so they need no zeroing).
+        // Every entry of both rows is written (so they need no zeroing), column by column.
+        let w = &data.w[start..start + len];
         let blk = qr.rows_unzeroed(2 * len);
+        let mut column = |col: usize, re_src: &[f64], im_src: &[f64]| {
+            let points = re_src.iter().zip(im_src).zip(w);
+            for (rows, ((&a, &b), &w)) in blk.chunks_exact_mut(2 * st).zip(points) {
+                rows[col] = a * w;
+                rows[st + col] = b * w;
+            }
+        };
+        for j in 0..n {
+            column(j, &br[j * CHUNK..][..len], &bi[j * CHUNK..][..len]);
+            if squares {
+                column(m + 1 + j, &ur[j * CHUNK..][..len], &ui[j * CHUNK..][..len]);
+            }
+        }
         for (i, rows) in blk.chunks_exact_mut(2 * st).enumerate() {
             let g = start + i;
-            let w = data.w[g];
-            let wz = data.z[g] * w;
-            let (re, im) = rows.split_at_mut(st);
-            let (re, im) = (&mut re[..cols], &mut im[..cols]);
-            for j in 0..n {
-                re[j] = br[j * CHUNK + i] * w;
-                im[j] = bi[j * CHUNK + i] * w;
-            }
-            re[n] = w;
-            re[n + 1] = 0.0;
-            im[n] = 0.0;
-            im[n + 1] = w * data.s[g].im;
-            re[m] = -wz.re;
-            im[m] = -wz.im;
-            if squares {
-                for j in 0..n {
-                    re[m + 1 + j] = ur[j * CHUNK + i] * w;
-                    im[m + 1 + j] = ui[j * CHUNK + i] * w;
-                }
-            }
+            let (w, z) = (data.w[g], data.z[g]);
+            let wz = z * w;
+            rows[n] = w;
+            rows[n + 1] = 0.0;
+            rows[st + n] = 0.0;
+            rows[st + n + 1] = w * data.s[g].im;
+            rows[m] = -wz.re;
+            rows[st + m] = -wz.im;
         }
     }
     qr.finish();
