@@ -14,7 +14,10 @@
 //! systems are of similar size. Every tall system is first compressed to its triangle by Householder QR
 //! taken one cache-sized block of rows at a time, and the triangle solved by QR with column pivoting (which
 //! decides the numerical rank). One factorisation per relocation serves twice: its leading block is the
-//! residue system of the current poles, so their residues and error come with it.
+//! residue system of the current poles, so their residues and error come with it. When the poles have
+//! settled, their residues are identified alone with the squared basis riding along as extra columns, so
+//! the same triangle also says how much a Gauss–Newton step could still gain (the refinement's first
+//! test). Rows are built 64 points at a time, one pole at a time over the points.
 
 pub(crate) mod linalg;
 
@@ -1499,15 +1502,19 @@ mod tests {
         qtr[..qr.rank()].iter().map(|v| v * v).sum()
     }
 
+    /// A pair near the data's own (−0.000797 + 0.022494j on this axis) and a real pole, off their optimum:
+    /// a well-posed Jacobian.
+    fn near_poles() -> Poles {
+        Poles {
+            real: vec![-0.3],
+            pairs: vec![Complex64::new(-0.0009, 0.0227)],
+        }
+    }
+
     #[test]
     fn the_normal_equation_gain_is_the_qr_gain_or_declines() {
         let data = rippled_data();
-        // A pair near the data's own (−0.000797 + 0.022494j on this axis) and a real pole, off their optimum:
-        // a well-posed Jacobian.
-        let poles = Poles {
-            real: vec![-0.3],
-            pairs: vec![Complex64::new(-0.0009, 0.0227)],
-        };
+        let poles = near_poles();
         let coef = identify(&data, &poles).coef;
         let (r, gain) = gauss_newton_gain(&data, &poles, &coef);
         let direct = qr_gain(&data, &poles, &coef, &r);
@@ -1539,12 +1546,9 @@ mod tests {
     #[test]
     fn the_gain_read_off_the_identify_triangle_is_the_qr_gain() {
         let data = rippled_data();
-        // Off the optimum (a pair and a real pole near the data's, as above) and at a relocation's fixed
-        // point, where the gain is small; then a real-pole-only set.
-        let near = Poles {
-            real: vec![-0.3],
-            pairs: vec![Complex64::new(-0.0009, 0.0227)],
-        };
+        // Off the optimum (as above) and at a relocation's fixed point, where the gain is small; then a
+        // real-pole-only set.
+        let near = near_poles();
         let mut settled = near.clone();
         for _ in 0..20 {
             settled = relocate_and_identify(&data, &settled).0.expect("poles");

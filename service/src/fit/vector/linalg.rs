@@ -144,30 +144,10 @@ unsafe fn reflect_chunk<const W: usize>(
     unsafe {
         let vv0 = _mm256_set1_pd(v0);
         let mut a0 = [_mm256_setzero_pd(); W];
-        let mut a1 = [_mm256_setzero_pd(); W];
         for q in 0..W {
             a0[q] = _mm256_mul_pd(vv0, _mm256_loadu_pd(head.add(c + 4 * q)));
         }
-        // Two rows per pass: two independent chains per register hide the latency of the fused adds.
-        let mut i = 0;
-        while i + 1 < nrows {
-            let r0 = body.add(i * stride);
-            let r1 = r0.add(stride);
-            let x0 = _mm256_set1_pd(*r0.add(k));
-            let x1 = _mm256_set1_pd(*r1.add(k));
-            for q in 0..W {
-                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
-                a1[q] = _mm256_fmadd_pd(x1, _mm256_loadu_pd(r1.add(c + 4 * q)), a1[q]);
-            }
-            i += 2;
-        }
-        if i < nrows {
-            let r0 = body.add(i * stride);
-            let x0 = _mm256_set1_pd(*r0.add(k));
-            for q in 0..W {
-                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
-            }
-        }
+        let (a0, a1) = column_dots::<W>(body, nrows, stride, k, c, a0);
         let vt = _mm256_set1_pd(tau);
         let mut f = [_mm256_setzero_pd(); W];
         for q in 0..W {
@@ -207,6 +187,52 @@ unsafe fn reflect_chunk<const W: usize>(
         } else {
             0.0
         }
+    }
+}
+
+/// Σᵣ body[r][k]·body[r][c .. c + 4W] over `nrows` rows, in two chains per register (even rows on top of
+/// `init`, odd rows from zero; two independent chains hide the latency of the fused adds); the caller
+/// adds the two.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+#[inline]
+unsafe fn column_dots<const W: usize>(
+    body: *const f64,
+    nrows: usize,
+    stride: usize,
+    k: usize,
+    c: usize,
+    init: [std::arch::x86_64::__m256d; W],
+) -> (
+    [std::arch::x86_64::__m256d; W],
+    [std::arch::x86_64::__m256d; W],
+) {
+    use std::arch::x86_64::*;
+    // SAFETY (whole body): every pointer is a row of `body` offset by a column below c + 4W ≤ stride,
+    // inside the slice the caller checked.
+    unsafe {
+        let mut a0 = init;
+        let mut a1 = [_mm256_setzero_pd(); W];
+        let mut i = 0;
+        while i + 1 < nrows {
+            let r0 = body.add(i * stride);
+            let r1 = r0.add(stride);
+            let x0 = _mm256_set1_pd(*r0.add(k));
+            let x1 = _mm256_set1_pd(*r1.add(k));
+            for q in 0..W {
+                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
+                a1[q] = _mm256_fmadd_pd(x1, _mm256_loadu_pd(r1.add(c + 4 * q)), a1[q]);
+            }
+            i += 2;
+        }
+        if i < nrows {
+            let r0 = body.add(i * stride);
+            let x0 = _mm256_set1_pd(*r0.add(k));
+            for q in 0..W {
+                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
+            }
+        }
+        (a0, a1)
     }
 }
 
@@ -635,28 +661,7 @@ unsafe fn gram_chunk<const W: usize>(
     // SAFETY (whole body): `gi` is a row of g and every other pointer a block row offset by a column
     // below c + 4W ≤ stride, inside the slices the caller checked.
     unsafe {
-        let mut a0 = [_mm256_setzero_pd(); W];
-        let mut a1 = [_mm256_setzero_pd(); W];
-        // Two rows per pass: two independent chains per register hide the latency of the fused adds.
-        let mut r = 0;
-        while r + 1 < nrows {
-            let r0 = block.add(r * stride);
-            let r1 = r0.add(stride);
-            let x0 = _mm256_set1_pd(*r0.add(i));
-            let x1 = _mm256_set1_pd(*r1.add(i));
-            for q in 0..W {
-                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
-                a1[q] = _mm256_fmadd_pd(x1, _mm256_loadu_pd(r1.add(c + 4 * q)), a1[q]);
-            }
-            r += 2;
-        }
-        if r < nrows {
-            let r0 = block.add(r * stride);
-            let x0 = _mm256_set1_pd(*r0.add(i));
-            for q in 0..W {
-                a0[q] = _mm256_fmadd_pd(x0, _mm256_loadu_pd(r0.add(c + 4 * q)), a0[q]);
-            }
-        }
+        let (a0, a1) = column_dots::<W>(block, nrows, stride, i, c, [_mm256_setzero_pd(); W]);
         for q in 0..W {
             let p = gi.add(c + 4 * q);
             _mm256_storeu_pd(
