@@ -460,6 +460,40 @@ fn column_norm(a: &[f64], rows: usize, stride: usize, j: usize) -> f64 {
 /// in the first-level cache (24 KB at 24 columns).
 pub(crate) const BLOCK_ROWS: usize = 128;
 
+/// Up to [`BLOCK_ROWS`] rows waiting to be folded into a [`RowCompressor`] or [`GramAccumulator`]:
+/// row-major, `width` entries used per row, padded to `stride` with zeros that nobody writes.
+struct PendingRows {
+    width: usize,
+    stride: usize,
+    blk: Vec<f64>,
+    len: usize,
+}
+
+impl PendingRows {
+    fn new(width: usize) -> PendingRows {
+        let stride = padded(width);
+        PendingRows {
+            width,
+            stride,
+            blk: vec![0.0; BLOCK_ROWS * stride],
+            len: 0,
+        }
+    }
+
+    /// Whether `count` more rows fit in the block.
+    fn fits(&self, count: usize) -> bool {
+        assert!(count <= BLOCK_ROWS);
+        self.len + count <= BLOCK_ROWS
+    }
+
+    /// The next `count` rows, whole (`count × stride`), which the caller has made room for.
+    fn take(&mut self, count: usize) -> &mut [f64] {
+        let o = self.len * self.stride;
+        self.len += count;
+        &mut self.blk[o..o + count * self.stride]
+    }
+}
+
 /// Reduces a tall least-squares problem `A·x ≈ b` (rows ≫ cols) to the square `R·x ≈ (Qᵀb)[..cols]`,
 /// `A = Q·R`, by unpivoted Householder QR taken one block of rows at a time, as the rows are produced:
 /// each block is eliminated against the triangle of the blocks before it, so the working set stays in
@@ -469,38 +503,28 @@ pub(crate) const BLOCK_ROWS: usize = 128;
 /// Right-hand sides are extra columns after the `cols` of A.
 pub(crate) struct RowCompressor {
     cols: usize,
-    width: usize,
     stride: usize,
     /// The triangle and Qᵀb so far, row-major `cols × stride`.
     t: Vec<f64>,
-    /// The pending block, row-major `BLOCK_ROWS × stride`.
-    blk: Vec<f64>,
-    pending: usize,
+    pending: PendingRows,
 }
 
 impl RowCompressor {
     /// A compressor for `cols` unknowns and `nrhs` right-hand sides.
     pub(crate) fn new(cols: usize, nrhs: usize) -> RowCompressor {
-        let width = cols + nrhs;
-        let stride = padded(width);
+        let pending = PendingRows::new(cols + nrhs);
         RowCompressor {
             cols,
-            width,
-            stride,
-            t: vec![0.0; cols * stride],
-            blk: vec![0.0; BLOCK_ROWS * stride],
-            pending: 0,
+            stride: pending.stride,
+            t: vec![0.0; cols * pending.stride],
+            pending,
         }
     }
 
     /// The next row, zeroed: `cols` entries of A, then one per right-hand side.
     pub(crate) fn row(&mut self) -> &mut [f64] {
-        if self.pending == BLOCK_ROWS {
-            self.eliminate();
-        }
-        let o = self.pending * self.stride;
-        self.pending += 1;
-        let row = &mut self.blk[o..o + self.width];
+        let width = self.pending.width;
+        let row = &mut self.rows_unzeroed(1)[..width];
         row.fill(0.0);
         row
     }
@@ -510,13 +534,10 @@ impl RowCompressor {
     /// every row (the padding after them stays zero). When they do not fit in the pending block, that
     /// block is eliminated first, so requests of [`BLOCK_ROWS`] rows block the rows as single rows would.
     pub(crate) fn rows_unzeroed(&mut self, count: usize) -> &mut [f64] {
-        assert!(count <= BLOCK_ROWS);
-        if self.pending + count > BLOCK_ROWS {
+        if !self.pending.fits(count) {
             self.eliminate();
         }
-        let o = self.pending * self.stride;
-        self.pending += count;
-        &mut self.blk[o..o + count * self.stride]
+        self.pending.take(count)
     }
 
     /// Row length in [`Self::rows_unzeroed`].
@@ -525,12 +546,11 @@ impl RowCompressor {
     }
 
     fn eliminate(&mut self) {
-        let (len, st) = (self.pending, self.stride);
+        let (len, st) = (self.pending.len, self.stride);
+        let blk = &mut self.pending.blk;
         let mut sigma = None;
         for k in 0..self.cols {
-            let sg = sigma
-                .take()
-                .unwrap_or_else(|| column_sq(&self.blk, len, st, k));
+            let sg = sigma.take().unwrap_or_else(|| column_sq(blk, len, st, k));
             if sg == 0.0 {
                 continue;
             }
@@ -544,15 +564,15 @@ impl RowCompressor {
             let v0 = x0 - alpha;
             let tau = 2.0 / (v0 * v0 + sg);
             head[k] = alpha;
-            let next = reflect(head, &mut self.blk, len, st, k, v0, tau);
+            let next = reflect(head, blk, len, st, k, v0, tau);
             sigma = Some(next);
         }
-        self.pending = 0;
+        self.pending.len = 0;
     }
 
     /// Eliminates the pending rows; then [`Self::triangle`] and [`Self::qtb`] are those of all rows so far.
     pub(crate) fn finish(&mut self) {
-        if self.pending > 0 {
+        if self.pending.len > 0 {
             self.eliminate();
         }
     }
@@ -677,49 +697,37 @@ unsafe fn gram_chunk<const W: usize>(
 /// equations' answer to a few digits, such as how much a Gauss–Newton step could gain; least-squares
 /// solutions go through [`RowCompressor`].
 pub(crate) struct GramAccumulator {
-    width: usize,
-    stride: usize,
     g: Vec<f64>,
-    blk: Vec<f64>,
-    pending: usize,
+    pending: PendingRows,
 }
 
 impl GramAccumulator {
     pub(crate) fn new(width: usize) -> GramAccumulator {
-        let stride = padded(width);
+        let pending = PendingRows::new(width);
         GramAccumulator {
-            width,
-            stride,
-            g: vec![0.0; width * stride],
-            blk: vec![0.0; BLOCK_ROWS * stride],
-            pending: 0,
+            g: vec![0.0; width * pending.stride],
+            pending,
         }
     }
 
     /// The next row, not zeroed: the caller writes all `width` entries.
     pub(crate) fn row_unzeroed(&mut self) -> &mut [f64] {
-        if self.pending == BLOCK_ROWS {
+        if !self.pending.fits(1) {
             self.flush();
         }
-        let o = self.pending * self.stride;
-        self.pending += 1;
-        &mut self.blk[o..o + self.width]
+        let width = self.pending.width;
+        &mut self.pending.take(1)[..width]
     }
 
     fn flush(&mut self) {
-        gram_add(
-            &mut self.g,
-            &self.blk,
-            self.pending,
-            self.stride,
-            self.width,
-        );
-        self.pending = 0;
+        let p = &mut self.pending;
+        gram_add(&mut self.g, &p.blk, p.len, p.stride, p.width);
+        p.len = 0;
     }
 
     /// Adds the pending rows; then [`Self::get`] is over all rows so far.
     pub(crate) fn finish(&mut self) {
-        if self.pending > 0 {
+        if self.pending.len > 0 {
             self.flush();
         }
     }
@@ -727,7 +735,7 @@ impl GramAccumulator {
     /// (AᵀA)ᵢⱼ.
     pub(crate) fn get(&self, i: usize, j: usize) -> f64 {
         let (i, j) = if i <= j { (i, j) } else { (j, i) };
-        self.g[i * self.stride + j]
+        self.g[i * self.pending.stride + j]
     }
 }
 
