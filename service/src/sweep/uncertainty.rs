@@ -16,6 +16,16 @@
 //! Through ∂Z/∂S this makes reflection accurate near Z0 (S11 ≈ 0), series-thru for high |Z| and
 //! shunt-thru for low |Z| (S21 small, so its noise is near the floor), as the trade knows. The terms are
 //! independent, so they add in quadrature.
+//!
+//! Near the edge of a method's range the first-order term is not enough. Each S → Z map has one pole
+//! (S11 = 1 for reflection, S21 = 1 for shunt-thru, S21 = 0 for series-thru: the impedance the method
+//! cannot tell from an open or a short), and Z = A + K/(S − p) there. A step of σ_S towards the pole
+//! moves Z by |∂Z/∂S|·σ_S/(1 − u), u = σ_S/|S − p|, not by |∂Z/∂S|·σ_S: the error of Z is skewed and
+//! heavy-tailed, and the measured S (from which σ is computed) may sit closer to or further from the
+//! pole than the true one. So the S term is |∂Z/∂S|·σ_S/(1 − u), the change a 1σ step towards the pole
+//! makes; with u ≥ [`POLE_LIMIT`] the point's impedance is undetermined and its σ is set to
+//! [`UNDETERMINED_FACTOR`]·(|Z| + |∂Z/∂S|·σ_S), so it counts for nothing in a fit. For u ≪ 1 this is the
+//! usual first-order propagation.
 
 use super::Method;
 use super::convert::{dz_ds, s_from_z};
@@ -26,6 +36,19 @@ pub const DEFAULT_S_NOISE: f64 = 1e-3;
 pub const DEFAULT_S_FLOOR: f64 = 1e-5;
 pub const DEFAULT_RELATIVE_FLOOR: f64 = 2e-3;
 pub const ABSOLUTE_FLOOR_OHM: f64 = 1e-9;
+/// σ_S/|S − pole| at or above which a point's impedance is undetermined.
+pub const POLE_LIMIT: f64 = 0.5;
+/// How much larger than its value and first-order σ an undetermined point's σ is made.
+pub const UNDETERMINED_FACTOR: f64 = 100.0;
+
+/// Distance of the measured S-parameter from the pole of the method's S → Z map.
+fn pole_distance(method: Method, s: Complex64) -> f64 {
+    match method {
+        Method::Reflection | Method::ShuntThru => (Complex64::new(1.0, 0.0) - s).norm(),
+        Method::SeriesThru => s.norm(),
+        Method::Direct => f64::INFINITY,
+    }
+}
 
 /// The two knobs of the uncertainty model; see the module docs for the defaults and their reasons.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -51,11 +74,16 @@ impl Default for NoiseModel {
 impl NoiseModel {
     /// σ of `z`, which `method` derived from the measured S-parameter `s`.
     pub fn sigma_from_s(&self, method: Method, s: Complex64, z: Complex64, z0_ohm: f64) -> f64 {
-        let from_s = dz_ds(method, s, z0_ohm).norm() * self.sigma_s(s);
-        let from_s = if method == Method::Direct {
-            0.0
+        if method == Method::Direct {
+            return combine(0.0, self.relative_floor * z.norm());
+        }
+        let sigma_s = self.sigma_s(s);
+        let linear = dz_ds(method, s, z0_ohm).norm() * sigma_s;
+        let u = sigma_s / pole_distance(method, s);
+        let from_s = if u.is_nan() || u >= POLE_LIMIT {
+            UNDETERMINED_FACTOR * (z.norm() + linear)
         } else {
-            from_s
+            linear / (1.0 - u)
         };
         combine(from_s, self.relative_floor * z.norm())
     }
@@ -110,11 +138,40 @@ mod tests {
 
     #[test]
     fn reflection_sigma_at_a_matched_load() {
-        // Z = Z0: S11 = 0, ∂Z/∂S = 2·Z0 = 100 Ω, σ_S = ν = 1e-5, so
-        // σ = √((100·1e-5)² + (0.002·50)²) = √(1e-6 + 1e-2) Ω.
+        // Z = Z0: S11 = 0, ∂Z/∂S = 2·Z0 = 100 Ω, σ_S = ν = 1e-5 at distance 1 from the pole, so
+        // σ = √((100·1e-5/(1 − 1e-5))² + (0.002·50)²) Ω.
         let n = NoiseModel::default();
         let s = n.sigma_from_z(Method::Reflection, Complex64::new(50.0, 0.0), 50.0);
-        assert!((s - (1e-6f64 + 1e-2).sqrt()).abs() < 1e-12, "{s}");
+        let from_s = 100.0 * 1e-5 / (1.0 - 1e-5);
+        assert!(
+            (s - (from_s * from_s + 1e-2f64).sqrt()).abs() < 1e-12,
+            "{s}"
+        );
+    }
+
+    #[test]
+    fn near_the_pole_sigma_is_the_step_towards_it() {
+        // Reflection of 5 kΩ: S11 = 4950/5050, |1 − S| = 100/5050 = 0.0198; σ_S = √((1e-3·0.980)² +
+        // 1e-10) ≈ 9.80e-4, u = 0.0495. A step of σ_S towards S = 1 moves Z = Z0(1+S)/(1−S) from 5 kΩ
+        // to Z0(2 − d')/d' with d' = 0.0198 − 9.80e-4: exactly the first-order σ/(1 − u).
+        let n = NoiseModel {
+            relative_floor: 0.0,
+            ..NoiseModel::default()
+        };
+        let z = Complex64::new(5e3, 0.0);
+        let s = super::super::convert::s_from_z(Method::Reflection, z, 50.0);
+        let sigma_s = n.sigma_s(s);
+        let d = (1.0 - s.re) - sigma_s;
+        let moved = 50.0 * (2.0 - d) / d;
+        let got = n.sigma_from_z(Method::Reflection, z, 50.0);
+        assert!(
+            (got / (moved - 5e3) - 1.0).abs() < 1e-9,
+            "{got} vs {}",
+            moved - 5e3
+        );
+        // A point whose S is within half a σ_S of the pole is undetermined.
+        let far = Complex64::new(0.0, 1e9);
+        assert!(n.sigma_from_z(Method::Reflection, far, 50.0) > 100.0 * far.norm());
     }
 
     #[test]
