@@ -4,7 +4,10 @@
 //! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational]
 //! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q). With `--json` it prints one JSON object per file per line; a file
 //! that cannot be read or fitted gives `"status": "failed"` with the error and the other files still
-//! run. Exit code 0 when every file was fitted, 1 when any failed, 2 for a usage error.
+//! run. Each fitted file's status is `ok` (the model describes the data within their uncertainty) or
+//! `poor` (it does not; the findings say where and by how much). Exit code 0 when every file was
+//! fitted `ok`, 3 when every file was fitted but some are `poor`, 1 when any failed, 2 for a usage
+//! error.
 //!
 //! `henrybook impedance FILE [--method M] [--z0 OHM] [--json]` prints the impedance the file implies.
 
@@ -188,7 +191,10 @@ pub fn report_json(file: &str, report: &FitReport) -> Value {
         .map(|c| c.label.clone());
     json!({
         "file": file,
-        "status": "ok",
+        "status": report.assessment.status.as_str(),
+        "summary": report.assessment.summary,
+        "findings": report.assessment.findings,
+        "warnings": report.warnings,
         "model": report.model,
         "uncertainty": report.uncertainty,
         "not_identifiable": report.not_identifiable,
@@ -261,7 +267,7 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
     match &report.model {
         FittedModel::Lumped(m) => vec![
             file.into(),
-            "ok".into(),
+            report.assessment.status.as_str().into(),
             eng(m.l0_h, "H"),
             eng(m.rdc_ohm, "Ω"),
             eng(m.cp_f, "F"),
@@ -277,7 +283,7 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
         ],
         FittedModel::Rational(_) => vec![
             file.into(),
-            "ok".into(),
+            report.assessment.status.as_str().into(),
             "-".into(),
             "-".into(),
             "-".into(),
@@ -322,13 +328,22 @@ fn print_table(rows: &[Vec<String>], out: &mut dyn Write) {
     }
 }
 
+/// Exit code of `fit` when every file was fitted but some model is `poor`.
+pub const EXIT_POOR: u8 = 3;
+
 fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
     let mut all_ok = true;
+    let mut any_poor = false;
     let mut rows = Vec::new();
     let mut failures = Vec::new();
+    let mut poor = Vec::new();
     for file in &flags.files {
         match fit_one(file, flags) {
             Ok((_, report)) => {
+                if report.assessment.status == fit::FitStatus::Poor {
+                    any_poor = true;
+                    poor.push(format!("{file}: {}", report.assessment.summary));
+                }
                 if flags.json {
                     let _ = writeln!(out, "{}", report_json(file, &report));
                 } else {
@@ -355,11 +370,18 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
     }
     if !flags.json {
         print_table(&rows, out);
+        for p in poor {
+            let _ = writeln!(out, "poor: {p}");
+        }
         for e in failures {
             let _ = writeln!(out, "failed: {e}");
         }
     }
-    if all_ok { 0 } else { 1 }
+    match (all_ok, any_poor) {
+        (false, _) => 1,
+        (true, true) => EXIT_POOR,
+        (true, false) => 0,
+    }
 }
 
 fn run_impedance(flags: &Flags, out: &mut dyn Write, err: &mut dyn Write) -> u8 {

@@ -1,42 +1,80 @@
-//! Starting values read off the measured curve, so LM starts near the answer.
+//! Starting values read off the measured curve, and the other starts the fit tries beside them.
 //!
-//! - L0 and Rdc: median of Im Z/ω and Re Z over the lowest points.
-//! - SRF: the first + → − zero crossing of Im Z (log-interpolated); Cp = 1/((2π·SRF)²·L0) (Thomson).
-//!   With no crossing in the band, the SRF is extrapolated from the rise of Im Z/ω at the top of the
-//!   band, L_eff = L0/(1 − (f/SRF)²).
-//! - Rp: the resistance at the |Z| peak, less the share the series resistance transforms into there.
-//! - ls: from the series resonance of ls with Cp when one shows, else from the capacitive slope above the SRF
-//!   (Im Z ≈ ωls − 1/(ωCp)).
-//! - Extra sections: from the pairs (series resonance, next parallel resonance) that follow the SRF,
-//!   one pair per section, solved for the section's L and C by the section's own resonance conditions.
+//! Every window here is a band of frequency, never a count of points: on a linear sweep most points
+//! sit in the top decade, and "the lowest 2 % of points" can run past the SRF.
+//!
+//! - Resonances: a point counts as inductive or capacitive only when |Im Z| exceeds three times its σ;
+//!   the SRF is where the significant points turn from inductive to capacitive (the zero crossing of
+//!   Im Z between them, log-interpolated), so noise around Im Z = 0 at the bottom of a sweep that starts
+//!   deep in the resistive region does not count as a resonance.
+//! - L0: the precision-weighted median of Im Z/ω over the lowest 1.5 decades of the inductive stretch
+//!   below SRF/3 where Im Z stands above its noise, corrected for Cp by the factor 1 − (f/SRF)².
+//! - Cp: Thomson's 1/((2π·SRF)²·L0) when the SRF is in the band; otherwise from the rise of the
+//!   effective inductance, 1/L_eff = 1/L0 − ω²·Cp, fitted by weighted least squares over the inductive
+//!   stretch.
+//! - Rdc, k_ac, Rp: the winding impedance Zw = 1/(1/Z − jωCp) below SRF/2 has
+//!   Re Zw ≈ Rdc + k·√f + (ωL0)²/Rp while ωL0 ≪ Rp; the three coefficients come from a weighted
+//!   non-negative least-squares fit of that line (exhaustive over the eight active sets).
+//! - ls: from the series resonance of ls with Cp when one shows above the SRF, else from the capacitive
+//!   stretch, ω·Im Z = ω²·ls − 1/Cp, by least squares.
+//! - Extra sections: from the pairs (series resonance, next parallel resonance) above the SRF, solved for
+//!   each section's L and C by its own resonance conditions.
+//!
+//! [`rational_start`] reads the same elements off a low-order rational fit of the whole sweep
+//! (Sanathanan–Koerner iteration, Z = N(s)/D(s) with deg N = 3, deg D = 2), which needs no window at all;
+//! [`read_curve`] lists the curve's reading, that one, and scaled variants (L0 and Cp halved and doubled
+//! with the SRF kept, the core loss and series resistances moved by a decade) as the starts of the base
+//! structure; the fit keeps the best.
 
 use super::problem::FitData;
 use crate::model::{LumpedModel, Section, SectionKind};
+use nalgebra::{DMatrix, DVector};
+use num_complex::Complex64;
 use std::f64::consts::PI;
+
+/// |Im Z|/σ above which a point counts as clearly inductive or capacitive.
+const SIGNIFICANT: f64 = 3.0;
 
 /// Zero crossings of the measured Im Z.
 #[derive(Debug, Clone, Default)]
 pub struct CurveFeatures {
-    /// (frequency, +→− parallel?) in increasing frequency, noise chatter removed.
+    /// (frequency, +→− parallel?) in increasing frequency, between significant points only.
     pub crossings: Vec<(f64, bool)>,
 }
 
-/// What the curve says: the base model (every element present) and candidate section guesses.
+/// What the curve says: the base model (every element present), section guesses and the readings the
+/// plausibility limits are built from.
 #[derive(Debug, Clone)]
 pub struct Guess {
     pub base: LumpedModel,
     /// (notch frequency, peak frequency, resistance at notch, resistance at peak) per visible pair,
     /// lowest first.
     pub pairs: Vec<(f64, f64, f64, f64)>,
+    /// The SRF read off the curve, when it lies in the band.
+    pub srf_hz: Option<f64>,
+    /// The inductance the data show at the bottom of the inductive stretch, and where it was read.
+    pub l_reading_h: f64,
+    pub l_reading_at_hz: f64,
+    /// The range of L0 the readings span: the curve's and, when it maps to elements, the rational
+    /// fit's ([`rational_start`]); the plausibility walls allow a decade beyond either.
+    pub l_readings_h: [f64; 2],
 }
 
-fn median(mut v: Vec<f64>) -> f64 {
-    v.retain(|x| x.is_finite());
+fn weighted_median(mut v: Vec<(f64, f64)>) -> f64 {
+    v.retain(|(x, w)| x.is_finite() && w.is_finite() && *w > 0.0);
     if v.is_empty() {
         return f64::NAN;
     }
-    v.sort_by(f64::total_cmp);
-    v[v.len() / 2]
+    v.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let total: f64 = v.iter().map(|p| p.1).sum();
+    let mut acc = 0.0;
+    for (x, w) in &v {
+        acc += w;
+        if acc >= total / 2.0 {
+            return *x;
+        }
+    }
+    v[v.len() - 1].0
 }
 
 fn crossing_at(f0: f64, y0: f64, f1: f64, y1: f64) -> f64 {
@@ -44,33 +82,63 @@ fn crossing_at(f0: f64, y0: f64, f1: f64, y1: f64) -> f64 {
     (f0.ln() + t * (f1.ln() - f0.ln())).exp()
 }
 
+/// |Im Z|/σ of point k with the sweep's own σ (not the fit's density weight).
+fn significance(data: &FitData, k: usize) -> f64 {
+    data.z[k].im / data.sigma[k]
+}
+
+/// Im Z/σ of each point, as the running median over the point and its two neighbours on each side:
+/// in a long stretch where Im Z is buried in noise a few single points pass 3σ by chance (0.27 % of
+/// them), five in a row do not.
+pub fn smoothed_significance(z: &[Complex64], sigma: &[f64]) -> Vec<f64> {
+    let n = z.len();
+    let raw: Vec<f64> = z.iter().zip(sigma).map(|(z, s)| z.im / s).collect();
+    (0..n)
+        .map(|k| {
+            let (a, b) = (k.saturating_sub(2), (k + 3).min(n));
+            let mut w: Vec<f64> = raw[a..b].to_vec();
+            w.sort_by(f64::total_cmp);
+            w[w.len() / 2]
+        })
+        .collect()
+}
+
 pub fn features(data: &FitData) -> CurveFeatures {
     let f = &data.frequency_hz;
-    let mut raw: Vec<(f64, bool, usize)> = Vec::new();
-    for k in 1..f.len() {
-        let (a, b) = (data.z[k - 1].im, data.z[k].im);
-        if a > 0.0 && b <= 0.0 {
-            raw.push((crossing_at(f[k - 1], a, f[k], b), true, k));
-        } else if a <= 0.0 && b > 0.0 {
-            raw.push((crossing_at(f[k - 1], a, f[k], b), false, k));
+    let mut out = Vec::new();
+    let smooth = smoothed_significance(&data.z, &data.sigma);
+    // The last significant point: (index, inductive?).
+    let mut last: Option<(usize, bool)> = None;
+    for k in 0..f.len() {
+        let s = smooth[k];
+        if s.abs() < SIGNIFICANT {
+            continue;
         }
-    }
-    // Noise makes Im Z chatter around zero: drop crossing pairs within 1 % of each other where the
-    // excursion between them is within three σ.
-    let mut out: Vec<(f64, bool, usize)> = Vec::new();
-    for c in raw {
-        if let Some(&(fp, _, kp)) = out.last() {
-            let small = (kp..c.2).all(|k| data.z[k].im.abs() * data.inv_sigma[k] < 3.0);
-            if c.0 / fp < 1.01 && small {
-                out.pop();
-                continue;
+        let inductive = s > 0.0;
+        if let Some((a, was)) = last
+            && was != inductive
+        {
+            // Between the two significant points, the zero crossing of Im Z nearest in log f to
+            // the interpolated one (there may be several in the noise).
+            let guess = crossing_at(f[a], data.z[a].im, f[k], data.z[k].im);
+            let mut best = guess;
+            let mut best_d = f64::INFINITY;
+            for i in a + 1..=k {
+                let (y0, y1) = (data.z[i - 1].im, data.z[i].im);
+                if (y0 > 0.0) != (y1 > 0.0) {
+                    let c = crossing_at(f[i - 1], y0, f[i], y1);
+                    let d = (c / guess).ln().abs();
+                    if d < best_d {
+                        best_d = d;
+                        best = c;
+                    }
+                }
             }
+            out.push((best, was));
         }
-        out.push(c);
+        last = Some((k, inductive));
     }
-    CurveFeatures {
-        crossings: out.into_iter().map(|(f, p, _)| (f, p)).collect(),
-    }
+    CurveFeatures { crossings: out }
 }
 
 fn nearest(data: &FitData, freq: f64) -> usize {
@@ -83,55 +151,208 @@ fn nearest(data: &FitData, freq: f64) -> usize {
     }
 }
 
+/// Weighted linear least squares (columns × weights), solved by SVD; `None` when degenerate.
+fn lstsq(rows: &[(Vec<f64>, f64, f64)]) -> Option<Vec<f64>> {
+    let n = rows.first()?.0.len();
+    if rows.len() < n {
+        return None;
+    }
+    let a = DMatrix::from_fn(rows.len(), n, |i, j| rows[i].0[j] * rows[i].2);
+    let b = DVector::from_iterator(rows.len(), rows.iter().map(|r| r.1 * r.2));
+    let scale: Vec<f64> = (0..n)
+        .map(|j| a.column(j).norm().max(f64::MIN_POSITIVE))
+        .collect();
+    let a = DMatrix::from_fn(rows.len(), n, |i, j| a[(i, j)] / scale[j]);
+    let x = a.svd(true, true).solve(&b, 1e-12).ok()?;
+    let out: Vec<f64> = (0..n).map(|j| x[j] / scale[j]).collect();
+    out.iter().all(|v| v.is_finite()).then_some(out)
+}
+
+/// Non-negative weighted least squares for a few columns, by trying every active set.
+fn nnls_small(rows: &[(Vec<f64>, f64, f64)]) -> Option<Vec<f64>> {
+    let n = rows.first()?.0.len();
+    let mut best: Option<(f64, Vec<f64>)> = None;
+    for mask in 1..(1usize << n) {
+        let cols: Vec<usize> = (0..n).filter(|j| mask >> j & 1 == 1).collect();
+        let sub: Vec<(Vec<f64>, f64, f64)> = rows
+            .iter()
+            .map(|(x, y, w)| (cols.iter().map(|&j| x[j]).collect(), *y, *w))
+            .collect();
+        let Some(x) = lstsq(&sub) else { continue };
+        if x.iter().any(|v| *v < 0.0) {
+            continue;
+        }
+        let mut full = vec![0.0; n];
+        for (c, v) in cols.iter().zip(&x) {
+            full[*c] = *v;
+        }
+        let cost: f64 = rows
+            .iter()
+            .map(|(xr, y, w)| {
+                let p: f64 = xr.iter().zip(&full).map(|(a, b)| a * b).sum();
+                ((p - y) * w).powi(2)
+            })
+            .sum();
+        if best.as_ref().is_none_or(|b| cost < b.0) {
+            best = Some((cost, full));
+        }
+    }
+    best.map(|b| b.1)
+}
+
+/// The curve's reading ([`guess`]) with the rational fit's L0 added to the readings the plausibility
+/// walls are built around, and the list of starts ([`starts`]).
+pub fn read_curve(data: &FitData) -> (Guess, Vec<LumpedModel>) {
+    let mut g = guess(data);
+    let rational = rational_start(data, &g);
+    if let Some(m) = &rational {
+        g.l_readings_h = [g.l_reading_h.min(m.l0_h), g.l_reading_h.max(m.l0_h)];
+    }
+    let mut starts = vec![g.base.clone()];
+    starts.extend(rational);
+    starts.extend(scaled_starts(&g.base));
+    (g, starts)
+}
+
 pub fn guess(data: &FitData) -> Guess {
     let f = &data.frequency_hz;
     let n = f.len();
+    let top = n - 1;
     let w = |k: usize| 2.0 * PI * f[k];
-    let low = (n / 50).max(3).min(n);
-    let l0 = median((0..low).map(|k| data.z[k].im / w(k)).collect());
-    let l0 = if l0.is_finite() && l0 > 0.0 {
-        l0
+    let feats = features(data);
+    let srf = feats.crossings.iter().find(|c| c.1).map(|c| c.0);
+    let stretch_top = srf.map_or(f[top], |s| s / 3.0);
+
+    // L0: precision-weighted median of Im Z/ω over the lowest 1.5 decades of the inductive stretch
+    // where Im Z stands above its noise.
+    let corr = |k: usize| srf.map_or(1.0, |s| (1.0 - (f[k] / s).powi(2)).max(0.1));
+    let stretch: Vec<usize> = (0..n)
+        .filter(|&k| f[k] <= stretch_top && data.z[k].im > 0.0)
+        .collect();
+    // Points where Im Z stands clear of its noise (as the running median) and the measurement
+    // determines Z to 10 %: near an open or a short a method's error is heavy-tailed, and the few
+    // points that pass 3σ there are the ones the noise inflated.
+    let smooth = smoothed_significance(&data.z, &data.sigma);
+    let clear: Vec<usize> = stretch
+        .iter()
+        .copied()
+        .filter(|&k| smooth[k] >= SIGNIFICANT && significance(data, k) >= SIGNIFICANT)
+        .collect();
+    let determined: Vec<usize> = clear
+        .iter()
+        .copied()
+        .filter(|&k| data.sigma[k] <= 0.1 * data.z[k].norm())
+        .collect();
+    let pool = if !determined.is_empty() {
+        &determined
+    } else if !clear.is_empty() {
+        &clear
     } else {
-        (data.z[0].im.abs() / w(0)).max(1e-12)
+        &stretch
     };
-    let mut rdc = median((0..low).map(|k| data.z[k].re).collect());
+    let (mut l0, mut l_at) = (f64::NAN, f[0]);
+    if let Some(&first) = pool.first() {
+        let window: Vec<usize> = pool
+            .iter()
+            .copied()
+            .filter(|&k| f[k] <= f[first] * 30.0)
+            .collect();
+        l0 = weighted_median(
+            window
+                .iter()
+                .map(|&k| {
+                    let s = significance(data, k);
+                    (data.z[k].im / w(k) * corr(k), s * s)
+                })
+                .collect(),
+        );
+        l_at = (f[window[0]] * f[*window.last().expect("not empty")]).sqrt();
+    }
+    if !(l0.is_finite() && l0 > 0.0) {
+        // Nowhere inductive above the noise: the largest Im Z/ω anywhere below the top is the best
+        // there is (the fit will judge it).
+        l0 = (0..n)
+            .map(|k| data.z[k].im / w(k))
+            .fold(f64::NAN, f64::max)
+            .max(data.z[0].norm() / w(0) * 1e-3)
+            .max(1e-15);
+    }
+
+    // Cp: Thomson from the SRF, else the rise of L_eff over the inductive stretch.
+    let cp = match srf {
+        Some(s) => 1.0 / ((2.0 * PI * s).powi(2) * l0),
+        None => {
+            let rows: Vec<(Vec<f64>, f64, f64)> = stretch
+                .iter()
+                .filter(|&&k| significance(data, k) >= SIGNIFICANT)
+                .map(|&k| {
+                    // 1/L = a − ω²·Cp; σ(1/L) = σ(Im Z)·ω/Im Z².
+                    let im = data.z[k].im;
+                    let wk = w(k);
+                    (vec![1.0, -wk * wk], wk / im, im * im / (wk * data.sigma[k]))
+                })
+                .collect();
+            match lstsq(&rows) {
+                Some(x) if x[1] > 0.0 && x[0] > 0.0 && 1.0 / (x[0] * x[1]) > 0.0 => {
+                    let srf_est = 1.0 / (2.0 * PI * (x[1] / x[0]).sqrt());
+                    // A rise that puts the SRF far above the band says little; bound it.
+                    let s = srf_est.clamp(1.05 * f[top], 30.0 * f[top]);
+                    1.0 / ((2.0 * PI * s).powi(2) * l0)
+                }
+                _ => 1.0 / ((2.0 * PI * 30.0 * f[top]).powi(2) * l0),
+            }
+        }
+    };
+    let srf_est = 1.0 / (2.0 * PI * (l0 * cp).sqrt());
+
+    // Rdc, k_ac, Rp from Re Zw below SRF/2.
+    let floor_r = 1e-6 * w(0) * l0;
+    let half = srf_est / 2.0;
+    let mut rows = Vec::new();
+    for (k, &fk) in f.iter().enumerate() {
+        if fk > half {
+            break;
+        }
+        let jwc = Complex64::new(0.0, w(k) * cp);
+        let den = Complex64::new(1.0, 0.0) - jwc * data.z[k];
+        let zw = data.z[k] / den;
+        let sigma = data.sigma[k] / den.norm_sqr();
+        let x = w(k) * l0;
+        rows.push((vec![1.0, fk.sqrt(), x * x], zw.re, 1.0 / sigma));
+    }
+    let coef = nnls_small(&rows).unwrap_or_else(|| vec![0.0; 3]);
+    let mut rdc = coef[0];
     if let Some((value, _)) = data.dcr_prior {
         rdc = value;
     }
-    let floor_r = 1e-4 * w(0) * l0;
     if !(rdc.is_finite() && rdc > floor_r) {
-        rdc = floor_r.max(1e-6);
-    }
-
-    let feats = features(data);
-    let srf = feats.crossings.iter().find(|c| c.1).map(|c| c.0);
-    let top = n - 1;
-    let srf_est = srf.unwrap_or_else(|| {
-        let ratio = data.z[top].im / w(top) / l0;
-        if ratio > 1.001 {
-            f[top] / (1.0 - 1.0 / ratio).sqrt()
-        } else {
-            30.0 * f[top]
+        // Below the noise: the lowest window's real part, else a small fraction of the reactance.
+        let low: Vec<(f64, f64)> = (0..n)
+            .filter(|&k| f[k] <= f[0] * 3.0 || k < 3)
+            .map(|k| (data.z[k].re, 1.0 / data.sigma[k].powi(2)))
+            .collect();
+        rdc = weighted_median(low);
+        if !(rdc.is_finite() && rdc > floor_r) {
+            rdc = (1e-3 * w(0) * l0).max(floor_r).max(1e-9);
         }
-    });
-    let ws = 2.0 * PI * srf_est;
-    let cp = 1.0 / (ws * ws * l0);
-
-    let rp = if srf.is_some() {
-        let peak = data.z[nearest(data, srf_est)].re.max(floor_r);
-        let inv = 1.0 / peak - rdc / (ws * l0).powi(2);
+    }
+    let x_srf = 2.0 * PI * srf_est * l0;
+    let rp = if coef[2] > 0.0 {
+        (1.0 / coef[2]).max(0.5 * x_srf)
+    } else if let Some(s) = srf {
+        // The resistance at the peak is about Rp in parallel with the winding's transformed loss.
+        let peak = data.z[nearest(data, s)].re.max(floor_r);
+        let inv = 1.0 / peak - rdc / x_srf.powi(2);
         if inv > 0.0 { 1.0 / inv } else { 100.0 * peak }
     } else {
-        let excess = data.z[top].re - rdc;
-        let xl = data.z[top].im.max(w(top) * l0);
-        if excess > 0.0 {
-            xl * xl / excess
-        } else {
-            100.0 * xl
-        }
+        100.0 * (w(top) * l0)
     };
     let f_mid = (f[0] * srf_est.min(f[top])).sqrt();
-    let k_ac = 0.1 * rdc / f_mid.sqrt();
+    let k_ac = if coef[1] > 0.0 {
+        coef[1]
+    } else {
+        0.1 * rdc / f_mid.sqrt()
+    };
 
     // Pairs after the SRF: (series crossing, following parallel crossing).
     let after: Vec<(f64, bool)> = match srf {
@@ -163,15 +384,28 @@ pub fn guess(data: &FitData) -> Guess {
         i += 1;
     }
 
-    // ls: from a trailing series resonance with Cp, else the capacitive slope at the top.
+    // ls: from a trailing series resonance with Cp, else the capacitive stretch above 2·SRF.
     let mut ls = match last_series {
         Some(fs) => 1.0 / ((2.0 * PI * fs).powi(2) * cp),
         None => {
-            let wt = w(top);
-            (data.z[top].im + 1.0 / (wt * cp)) / wt
+            let rows: Vec<(Vec<f64>, f64, f64)> = (0..n)
+                .filter(|&k| f[k] > 2.0 * srf_est)
+                .map(|k| {
+                    let wk = w(k);
+                    (
+                        vec![wk * wk, -1.0],
+                        wk * data.z[k].im,
+                        1.0 / (wk * data.sigma[k]),
+                    )
+                })
+                .collect();
+            match lstsq(&rows) {
+                Some(x) if rows.len() >= 5 && x[0] > 0.0 => x[0],
+                _ => 1e-3 * l0,
+            }
         }
     };
-    if !(ls.is_finite() && ls > 1e-4 * l0 && ls < 0.1 * l0) {
+    if !(ls.is_finite() && ls > 1e-5 * l0 && ls < 0.1 * l0) {
         ls = 1e-3 * l0;
     }
     if let Some(fs) = last_series {
@@ -195,7 +429,131 @@ pub fn guess(data: &FitData) -> Guess {
             sections: Vec::new(),
         },
         pairs,
+        srf_hz: srf,
+        l_reading_h: l0,
+        l_reading_at_hz: l_at,
+        l_readings_h: [l0, l0],
     }
+}
+
+/// The base elements read off a rational fit Z = N(s)/D(s), deg N = 3, deg D = 2, of the whole sweep by
+/// the Sanathanan–Koerner iteration (each pass a linear least-squares fit of N − Z·D = 0 weighted by
+/// 1/(σ·|D_previous|); Sanathanan & Koerner, IEEE Trans. Automatic Control 8(1), 1963, from memory).
+/// With ls and the parallel Rp the base model is exactly of this form:
+/// Z = s·ls + (R + s·L(1 + R/Rp)) / (1 + s(L/Rp + C·R) + s²·C·L(1 + R/Rp)); k_ac is left to the curve's
+/// reading. `None` when the rational fit does not map to positive elements.
+pub fn rational_start(data: &FitData, guess: &Guess) -> Option<LumpedModel> {
+    let f = &data.frequency_hz;
+    let n = f.len();
+    let w_ref = 2.0 * PI * (f[0] * f[n - 1]).sqrt();
+    let s: Vec<Complex64> = f
+        .iter()
+        .map(|&x| Complex64::new(0.0, 2.0 * PI * x / w_ref))
+        .collect();
+    let mut d_prev = vec![1.0f64; n];
+    let mut x = DVector::zeros(6);
+    for _ in 0..8 {
+        let mut a = DMatrix::zeros(2 * n, 6);
+        let mut b = DVector::zeros(2 * n);
+        for k in 0..n {
+            let wt = data.inv_sigma[k] / d_prev[k];
+            let (sk, zk) = (s[k], data.z[k]);
+            let cols = [
+                Complex64::new(1.0, 0.0),
+                sk,
+                sk * sk,
+                sk * sk * sk,
+                -zk * sk,
+                -zk * sk * sk,
+            ];
+            for (j, c) in cols.iter().enumerate() {
+                a[(2 * k, j)] = c.re * wt;
+                a[(2 * k + 1, j)] = c.im * wt;
+            }
+            b[2 * k] = zk.re * wt;
+            b[2 * k + 1] = zk.im * wt;
+        }
+        let scale: Vec<f64> = (0..6)
+            .map(|j| a.column(j).norm().max(f64::MIN_POSITIVE))
+            .collect();
+        for (j, sc) in scale.iter().enumerate() {
+            a.column_mut(j).scale_mut(1.0 / sc);
+        }
+        let sol = a.svd(true, true).solve(&b, 1e-13).ok()?;
+        let new_x = DVector::from_fn(6, |j, _| sol[j] / scale[j]);
+        let mut change = 0.0f64;
+        for k in 0..n {
+            let d = (1.0 + new_x[4] * s[k] + new_x[5] * s[k] * s[k]).norm();
+            if !(d.is_finite() && d > 0.0) {
+                return None;
+            }
+            change = change.max((d / d_prev[k]).ln().abs());
+            d_prev[k] = d;
+        }
+        x = new_x;
+        if change < 1e-6 {
+            break;
+        }
+    }
+    // Back to unscaled s: coefficient of s^j is x_j / w_ref^j.
+    let a0 = x[0];
+    let a1 = x[1] / w_ref;
+    let a3 = x[3] / w_ref.powi(3);
+    let b1 = x[4] / w_ref;
+    let b2 = x[5] / w_ref.powi(2);
+    if !(b2 > 0.0 && a0 > 0.0) {
+        return None;
+    }
+    let ls = if a3 > 0.0 { a3 / b2 } else { 0.0 };
+    let a1p = a1 - ls;
+    if a1p <= 0.0 {
+        return None;
+    }
+    let c = b2 / a1p;
+    let loss = b1 - c * a0;
+    let (l, rp) = if loss > 0.0 {
+        let l = a1p - a0 * loss;
+        (l, l / loss)
+    } else {
+        (a1p, f64::INFINITY)
+    };
+    if !(l > 0.0 && c > 0.0 && l.is_finite() && c.is_finite()) {
+        return None;
+    }
+    let base = &guess.base;
+    let mut m = base.clone();
+    m.l0_h = l;
+    m.cp_f = c;
+    m.rdc_ohm = a0.max(base.rdc_ohm * 1e-3);
+    if rp.is_finite() && rp > 0.0 {
+        m.rp_ohm = Some(rp);
+    }
+    if ls > 1e-5 * l && ls < 0.1 * l {
+        m.ls_h = ls;
+    }
+    Some(m)
+}
+
+/// The curve's reading with L0 and Cp scaled (the SRF kept), and with the core loss and the series
+/// resistances moved by a decade.
+fn scaled_starts(base: &LumpedModel) -> Vec<LumpedModel> {
+    let mut out = Vec::new();
+    for factor in [0.5, 2.0] {
+        let mut m = base.clone();
+        m.l0_h *= factor;
+        m.cp_f /= factor;
+        out.push(m);
+    }
+    let mut m = base.clone();
+    m.rp_ohm = m.rp_ohm.map(|r| r * 10.0);
+    m.k_ac_ohm_per_sqrt_hz *= 0.1;
+    out.push(m);
+    let mut m = base.clone();
+    m.rp_ohm = m.rp_ohm.map(|r| r * 0.3);
+    m.rdc_ohm *= 0.3;
+    m.k_ac_ohm_per_sqrt_hz *= 3.0;
+    out.push(m);
+    out
 }
 
 /// A section of `kind` placed on a (notch, peak) pair, given the winding capacitance seen so far;

@@ -27,10 +27,12 @@
 //! also carries the spread from the choice among nearly equal models (see
 //! [`include_selection_spread`]); the correlation matrix is that of the chosen model alone.
 
+use super::assess;
 use super::derived::{self, KnownElements};
 use super::initial::{self, Guess};
 use super::lm::{LevenbergMarquardt, LmState, NO_PROGRESS};
-use super::problem::{FitData, LumpedProblem};
+use super::plausible;
+use super::problem::{FitData, LumpedProblem, density_weights};
 use super::{
     Candidate, Correlation, FitControl, FitError, FitOptions, FitReport, LumpedUncertainty,
     SectionUncertainty, Termination,
@@ -119,48 +121,53 @@ pub fn prepare(sweep: &Sweep, options: &FitOptions) -> Result<FitData, FitError>
             )));
         }
     }
-    if options.max_sections > 3 {
-        return Err(FitError::InvalidOptions(format!(
-            "max_sections is {}; at most 3",
-            options.max_sections
-        )));
-    }
-    if options.max_iterations == 0 || options.time_limit_s.is_nan() || options.time_limit_s <= 0.0 {
-        return Err(FitError::InvalidOptions(
-            "max_iterations and time_limit_s must be positive".into(),
-        ));
-    }
+    options.validate()?;
     let dcr_prior = match options.dcr {
         Some(d) => {
             let sigma = d.sigma_ohm.unwrap_or(0.005 * d.value_ohm + 1e-3);
-            if !(d.value_ohm.is_finite() && d.value_ohm > 0.0 && sigma.is_finite() && sigma > 0.0) {
-                return Err(FitError::InvalidOptions(format!(
-                    "the DCR reading {} ohm (σ {sigma} ohm) must be positive and finite",
-                    d.value_ohm
-                )));
-            }
             Some((d.value_ohm, sigma))
         }
         None => None,
     };
-    // An inductor is inductive at the bottom of its band.
-    let low = (n / 20).max(3);
-    let inductive = sweep.impedance_ohm[..low]
-        .iter()
-        .filter(|z| z.im > 0.0)
-        .count();
-    if inductive * 2 <= low {
-        return Err(FitError::NotAnInductor(format!(
-            "Im Z is not positive over the lowest {low} points (from {} Hz)",
-            sweep.frequency_hz[0]
-        )));
+    // An inductor is inductive at the bottom of its band: the lowest point whose Im Z stands clear of
+    // its noise (3σ, as the running median over five points) must be inductive. Points buried in noise
+    // say nothing either way.
+    let smooth = initial::smoothed_significance(&sweep.impedance_ohm, &sweep.sigma_ohm);
+    let first_clear = (0..n).find(|&k| smooth[k].abs() > 3.0);
+    match first_clear {
+        None => {
+            return Err(FitError::NotAnInductor(format!(
+                "Im Z stays within three times its uncertainty from {} Hz to {} Hz: nothing in the \
+                 sweep is inductive",
+                sweep.frequency_hz[0],
+                sweep.frequency_hz[n - 1]
+            )));
+        }
+        Some(k) if smooth[k] < 0.0 => {
+            return Err(FitError::NotAnInductor(format!(
+                "the lowest frequency where Im Z stands clear of its noise, {} Hz, is capacitive \
+                 (Im Z = {:.4e} Ω): the sweep starts above the self-resonance or the part is not an \
+                 inductor",
+                sweep.frequency_hz[k], sweep.impedance_ohm[k].im
+            )));
+        }
+        Some(_) => {}
     }
+    let g = density_weights(&sweep.frequency_hz);
     Ok(FitData {
         frequency_hz: sweep.frequency_hz.clone(),
         sqrt_f: sweep.frequency_hz.iter().map(|f| f.sqrt()).collect(),
         z: sweep.impedance_ohm.clone(),
-        inv_sigma: sweep.sigma_ohm.iter().map(|s| 1.0 / s).collect(),
+        inv_sigma: sweep
+            .sigma_ohm
+            .iter()
+            .zip(&g)
+            .map(|(s, g)| g.sqrt() / s)
+            .collect(),
+        sigma: sweep.sigma_ohm.clone(),
         dcr_prior,
+        walls: Vec::new(),
+        wall_stiffness: 1.0,
     })
 }
 
@@ -183,17 +190,15 @@ pub const COARSE_POINTS: usize = 200;
 /// copy could step over).
 pub const COARSEST_POINTS: usize = 50;
 
-/// The strides of the thinned copies [`fit_structure`] fits before the full sweep, coarsest first.
-fn coarse_strides(points: usize, structure: &Structure) -> Vec<usize> {
+/// The sizes of the thinned copies [`fit_structure`] fits before the full sweep, coarsest first.
+fn coarse_sizes(points: usize, structure: &Structure) -> Vec<usize> {
     if points <= COARSE_ABOVE_POINTS {
         return Vec::new();
     }
-    let fine = points.div_ceil(COARSE_POINTS);
-    let coarsest = points.div_ceil(COARSEST_POINTS);
-    if structure.sections.is_empty() && coarsest >= 2 * fine {
-        vec![coarsest, fine]
+    if structure.sections.is_empty() && points >= 4 * COARSEST_POINTS {
+        vec![COARSEST_POINTS, COARSE_POINTS]
     } else {
-        vec![fine]
+        vec![COARSE_POINTS]
     }
 }
 
@@ -250,23 +255,49 @@ fn run_lm(
     })
 }
 
-/// Every `stride`-th point of the sweep (the DCR prior kept): a cheap problem with nearly the same
-/// optimum, used to get close before the full-data iterations.
-fn thinned(data: &FitData, stride: usize) -> FitData {
-    let pick = |v: &Vec<f64>| v.iter().step_by(stride).copied().collect::<Vec<_>>();
+/// About `target` points of the sweep spread evenly in ln f (the nearest point to each of `target`
+/// logarithmically spaced frequencies, each taken once), with density weights for the thinned grid and
+/// the DCR prior and walls kept: a cheap problem with nearly the same optimum, used to get close before
+/// the full-data iterations. Spread by ln f, not by index, so a linear sweep keeps its low decades.
+pub fn thinned(data: &FitData, target: usize) -> FitData {
+    let f = &data.frequency_hz;
+    let n = f.len();
+    let (lo, hi) = (f[0].ln(), f[n - 1].ln());
+    let mut pick: Vec<usize> = Vec::with_capacity(target);
+    for i in 0..target {
+        let x = lo + (hi - lo) * i as f64 / (target - 1).max(1) as f64;
+        let k = f.partition_point(|v| v.ln() < x).min(n - 1);
+        let k = if k > 0 && (x - f[k - 1].ln()) < (f[k].ln() - x) {
+            k - 1
+        } else {
+            k
+        };
+        if pick.last() != Some(&k) {
+            pick.push(k);
+        }
+    }
+    let frequency_hz: Vec<f64> = pick.iter().map(|&k| f[k]).collect();
+    let g = density_weights(&frequency_hz);
     FitData {
-        frequency_hz: pick(&data.frequency_hz),
-        sqrt_f: pick(&data.sqrt_f),
-        z: data.z.iter().step_by(stride).copied().collect(),
-        inv_sigma: pick(&data.inv_sigma),
+        sqrt_f: pick.iter().map(|&k| data.sqrt_f[k]).collect(),
+        z: pick.iter().map(|&k| data.z[k]).collect(),
+        inv_sigma: pick
+            .iter()
+            .zip(&g)
+            .map(|(&k, g)| g.sqrt() / data.sigma[k])
+            .collect(),
+        sigma: pick.iter().map(|&k| data.sigma[k]).collect(),
+        frequency_hz,
         dcr_prior: data.dcr_prior,
+        walls: data.walls.clone(),
+        wall_stiffness: data.wall_stiffness,
     }
 }
 
 /// Fits one structure from a starting model (which must have every element the structure has).
 ///
 /// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
-/// evenly picked points (a structure without sections first on about [`COARSEST_POINTS`]); LM then
+/// points picked evenly in ln f (a structure without sections first on about [`COARSEST_POINTS`]); LM then
 /// continues on the full sweep from there, so the result is the full-data optimum (the thinning only
 /// saves iterations on the full data: from the thinned optimum the full stage usually takes one
 /// Gauss–Newton step and stops on the predicted decrease, two passes over the sweep).
@@ -278,6 +309,29 @@ pub fn fit_structure(
     time_limit: Duration,
     control: &FitControl,
 ) -> Result<StructureFit, FitError> {
+    fit_structure_staged(
+        data,
+        structure,
+        start,
+        max_iterations,
+        time_limit,
+        control,
+        true,
+    )
+}
+
+/// [`fit_structure`], with the thinned stages only when `coarse`: a start that is already a good
+/// point of the full problem (a nested solution carried over) goes straight to the full data, so
+/// the result can only be better than the start.
+fn fit_structure_staged(
+    data: &FitData,
+    structure: &Structure,
+    start: &LumpedModel,
+    max_iterations: u64,
+    time_limit: Duration,
+    control: &FitControl,
+    coarse: bool,
+) -> Result<StructureFit, FitError> {
     let started = Instant::now();
     let mut theta = structure.pack(start);
     if theta.iter().any(|t| !t.is_finite()) {
@@ -288,8 +342,13 @@ pub fn fit_structure(
     }
     let n = data.frequency_hz.len();
     let mut iterations = 0;
-    for stride in coarse_strides(n, structure) {
-        let coarse = thinned(data, stride);
+    let sizes = if coarse {
+        coarse_sizes(n, structure)
+    } else {
+        Vec::new()
+    };
+    for size in sizes {
+        let coarse = thinned(data, size);
         // Only a starting point: loose tolerances are enough. After a coarser stage the start is
         // close: begin nearly Gauss–Newton.
         let mut solver = LevenbergMarquardt::default()
@@ -345,8 +404,9 @@ pub fn fit_structure(
     })
 }
 
-fn bic(cost: f64, residuals: usize, parameters: usize) -> f64 {
-    let m = residuals as f64;
+/// BIC with the noise scale estimated from the fit, on the effective number of residuals `m`
+/// (density weights make a point count for less than one).
+fn bic(cost: f64, m: f64, parameters: usize) -> f64 {
     m * (cost.max(f64::MIN_POSITIVE) / m).ln() + parameters as f64 * m.ln()
 }
 
@@ -363,6 +423,73 @@ fn start_for(kinds: &[SectionKind], prefix: &LumpedModel, guess: &Guess) -> Lump
     m
 }
 
+/// `model` (a fitted smaller structure) carried into `target` with every element it lacks present
+/// but negligible: its impedance changes by far less than the noise, so a fit of `target` started
+/// here ends no worse than `model` did. This is what makes a larger candidate never report a higher
+/// cost than a candidate it contains.
+fn embed(model: &LumpedModel, target: &Structure, data: &FitData, guess: &Guess) -> LumpedModel {
+    let f_hi = *data.frequency_hz.last().expect("a sweep");
+    let w_hi = 2.0 * std::f64::consts::PI * f_hi;
+    let z_max = data.z.iter().map(|z| z.norm()).fold(0.0f64, f64::max);
+    let sigma_min = data.sigma.iter().copied().fold(f64::INFINITY, f64::min);
+    let mut m = model.clone();
+    if target.has_rp && m.rp_ohm.is_none() {
+        m.rp_ohm = Some(1e5 * z_max);
+    }
+    if !target.has_rp {
+        m.rp_ohm = None;
+    }
+    if target.has_k_ac && m.k_ac_ohm_per_sqrt_hz <= 0.0 {
+        m.k_ac_ohm_per_sqrt_hz = (1e-6 * sigma_min).max(1e-11) / f_hi.sqrt();
+    }
+    if !target.has_k_ac {
+        m.k_ac_ohm_per_sqrt_hz = 0.0;
+    }
+    if target.has_ls && m.ls_h <= 0.0 {
+        m.ls_h = ((1e-6 * sigma_min) / w_hi).max(1e-15);
+    }
+    if !target.has_ls {
+        m.ls_h = 0.0;
+    }
+    m.sections.truncate(target.sections.len());
+    let srf = 1.0 / (2.0 * std::f64::consts::PI * (m.l0_h * m.cp_f).sqrt());
+    for (i, &kind) in target.sections.iter().enumerate().skip(m.sections.len()) {
+        // Resonating where the curve shows a pair (or at twice the main resonance), its inductance a
+        // tenth of L0; a series branch nearly open, a tank nearly shorted.
+        let f_res = guess
+            .pairs
+            .get(i)
+            .map_or(2.0 * srf, |p| match kind {
+                SectionKind::Series => p.0,
+                SectionKind::Parallel => p.1,
+            })
+            .max(1.5 * srf);
+        let l_h = 0.1 * m.l0_h;
+        let c_f = 1.0 / ((2.0 * std::f64::consts::PI * f_res).powi(2) * l_h);
+        let r_ohm = match kind {
+            SectionKind::Series => 1e8 * z_max,
+            SectionKind::Parallel => (1e-6 * sigma_min).max(2e-9),
+        };
+        m.sections.push(crate::model::Section {
+            kind,
+            r_ohm,
+            l_h,
+            c_f,
+        });
+    }
+    m
+}
+
+/// Does structure `small` have a subset of `large`'s elements (sections as a prefix, kinds equal)?
+fn nested_in(small: &Structure, large: &Structure) -> bool {
+    small != large
+        && (!small.has_rp || large.has_rp)
+        && (!small.has_k_ac || large.has_k_ac)
+        && (!small.has_ls || large.has_ls)
+        && small.sections.len() <= large.sections.len()
+        && large.sections.starts_with(&small.sections)
+}
+
 /// Uncertainty, identifiability and correlation of a structure fit.
 pub struct Spread {
     pub sigma_theta: Vec<Option<f64>>,
@@ -370,7 +497,9 @@ pub struct Spread {
     pub correlation: Correlation,
 }
 
-pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
+/// `residuals` is the effective number of residuals; `widening` multiplies every σ (correlated
+/// residuals, see [`super::assess`]).
+pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
     let n = fit.structure.len();
     let params = fit.structure.params();
     let jtj = &fit.jtj;
@@ -380,8 +509,8 @@ pub fn spread(fit: &StructureFit, residuals: usize) -> Spread {
     let scaled = DMatrix::from_fn(n, n, |i, j| jtj[(i, j)] / (d[i] * d[j]));
     let eig = SymmetricEigen::new(scaled);
     let lmax = eig.eigenvalues.amax();
-    let dof = residuals.saturating_sub(n).max(1) as f64;
-    let s2 = (fit.cost / dof).max(1.0);
+    let dof = (residuals - n as f64).max(1.0);
+    let s2 = (fit.cost / dof).max(1.0) * widening * widening;
     let mut singular = vec![false; n];
     let mut cov = DMatrix::zeros(n, n);
     for k in 0..n {
@@ -452,13 +581,14 @@ fn include_selection_spread(
     fits: &[StructureFit],
     bics: &[f64],
     chosen: usize,
-    residuals: usize,
+    residuals: f64,
+    widening: f64,
 ) {
     let best = bics[chosen];
     let params = fits[chosen].structure.params();
     let others: Vec<(usize, Spread)> = (0..fits.len())
         .filter(|&i| i != chosen && bics[i] - best < SELECTION_BIC_WINDOW)
-        .map(|i| (i, spread(&fits[i], residuals)))
+        .map(|i| (i, spread(&fits[i], residuals, widening)))
         .collect();
     if others.is_empty() {
         return;
@@ -537,7 +667,127 @@ fn kind_assignments(n: usize) -> Vec<Vec<SectionKind>> {
         .collect()
 }
 
+/// Fits structures within one overall deadline, counting progress; a candidate that fails is skipped
+/// (its error kept), only cancellation stops the whole fit.
+struct Runner<'a> {
+    data: &'a FitData,
+    options: &'a FitOptions,
+    control: &'a FitControl,
+    deadline: Instant,
+    ran_out_of_time: bool,
+    last_error: Option<FitError>,
+    done: usize,
+    total: usize,
+    any_fitted: bool,
+}
+
+impl Runner<'_> {
+    fn fit(
+        &mut self,
+        structure: &Structure,
+        start: &LumpedModel,
+    ) -> Result<Option<StructureFit>, FitError> {
+        self.fit_staged(structure, start, true)
+    }
+
+    /// [`Runner::fit`] from a start that is a good point of the full problem (no thinned stages).
+    fn refine(
+        &mut self,
+        structure: &Structure,
+        start: &LumpedModel,
+    ) -> Result<Option<StructureFit>, FitError> {
+        self.fit_staged(structure, start, false)
+    }
+
+    fn fit_staged(
+        &mut self,
+        structure: &Structure,
+        start: &LumpedModel,
+        coarse: bool,
+    ) -> Result<Option<StructureFit>, FitError> {
+        if cancelled(self.control) {
+            return Err(FitError::Cancelled);
+        }
+        let now = Instant::now();
+        // Out of time: skip the remaining candidates, but always fit the first one (for at least a
+        // millisecond) so the caller gets a model whose termination says TimeLimit.
+        if now >= self.deadline {
+            self.ran_out_of_time = true;
+            if self.any_fitted {
+                return Ok(None);
+            }
+        }
+        let budget = self
+            .deadline
+            .saturating_duration_since(now)
+            .max(Duration::from_millis(1));
+        let out = match fit_structure_staged(
+            self.data,
+            structure,
+            start,
+            self.options.max_iterations,
+            budget,
+            self.control,
+            coarse,
+        ) {
+            Ok(f) => {
+                self.any_fitted = true;
+                Ok(Some(f))
+            }
+            Err(FitError::Cancelled) => Err(FitError::Cancelled),
+            Err(e) => {
+                self.last_error = Some(e);
+                Ok(None)
+            }
+        };
+        self.tick();
+        out
+    }
+
+    fn tick(&mut self) {
+        self.done += 1;
+        self.total = self.total.max(self.done + 1);
+        if let Some(p) = &self.control.progress {
+            p((self.done as f64 / self.total as f64).min(1.0));
+        }
+    }
+
+    /// The best of fitting `structure` from each start (with the thinned stages where the flag says).
+    fn best_of(
+        &mut self,
+        structure: &Structure,
+        starts: &[(LumpedModel, bool)],
+    ) -> Result<Option<StructureFit>, FitError> {
+        let mut best: Option<StructureFit> = None;
+        for (start, coarse) in starts {
+            if let Some(f) = self.fit_staged(structure, start, *coarse)?
+                && best.as_ref().is_none_or(|b| f.cost < b.cost)
+            {
+                best = Some(f);
+            }
+        }
+        Ok(best)
+    }
+}
+
+/// Relative cost tolerance of the nesting rule: a larger candidate may end at most this fraction above
+/// a candidate it contains (the negligible elements of [`embed`] cost about 1e-9 of χ²).
+pub const NESTING_TOLERANCE: f64 = 1e-7;
+
 /// The whole lumped fit of one sweep.
+///
+/// 1. The base structure with every element (l0, rdc, cp, rp, k_ac, ls) is fitted from each of
+///    [`initial::starts`]: the curve's reading, the rational fit's, and scaled variants; the best is kept.
+/// 2. Sections (stage A): every assignment of kinds to the first 1..=`max_sections` resonance pairs the
+///    curve shows, each started from the fit with one section fewer, once with the new section placed on
+///    the curve's pair and once with it negligible ([`embed`]); the better is kept.
+/// 3. Subsets (stage B): on the best section assignment, every subset of {rp, k_ac, ls}.
+/// 4. Nesting: a candidate that ends with a higher cost than one it contains is fitted again from that
+///    one's solution with the extra elements negligible, so no larger candidate reports a higher cost
+///    than a smaller one inside it ([`NESTING_TOLERANCE`]); model selection then compares structures,
+///    not failed optimisations.
+/// 5. Selection by BIC; uncertainty, identifiability, derived figures and the assessment
+///    ([`super::assess`]) of the chosen model.
 pub fn fit_lumped(
     sweep: &Sweep,
     options: &FitOptions,
@@ -545,91 +795,67 @@ pub fn fit_lumped(
 ) -> Result<FitReport, FitError> {
     let started = Instant::now();
     let deadline = started + Duration::from_secs_f64(options.time_limit_s.min(1e6));
-    let data = prepare(sweep, options)?;
-    let guess = initial::guess(&data);
-    let residuals = data.residual_count();
-    let max_sec = options.max_sections.min(guess.pairs.len());
-
-    let stage_a: Vec<Vec<SectionKind>> = (0..=max_sec).flat_map(kind_assignments).collect();
-    let total = (stage_a.len() + 7) as f64;
-    let mut done = 0usize;
-    let report_progress = |done: usize| {
-        if let Some(p) = &control.progress {
-            p((done as f64 / total).min(1.0));
+    let mut data = prepare(sweep, options)?;
+    let (guess, starts) = initial::read_curve(&data);
+    data.walls = plausible::walls(&data, &guess, options.max_sections);
+    let residuals = data.effective_residuals();
+    {
+        let base = Structure::of(&guess.base);
+        let start_cost = LumpedProblem::new(&data, &base).cost_at(&base.pack(&guess.base));
+        if start_cost.is_finite() {
+            data.wall_stiffness = (start_cost / residuals).sqrt().max(1.0);
         }
+    }
+    let max_sec = options.max_sections.min(guess.pairs.len());
+    let stage_a: Vec<Vec<SectionKind>> = (1..=max_sec).flat_map(kind_assignments).collect();
+    let mut runner = Runner {
+        data: &data,
+        options,
+        control,
+        deadline,
+        ran_out_of_time: false,
+        last_error: None,
+        done: 0,
+        total: starts.len() + 2 * stage_a.len() + 7,
+        any_fitted: false,
     };
 
     let mut fits: Vec<StructureFit> = Vec::new();
-    let mut ran_out_of_time = false;
-    let mut last_error = None;
-    let mut run = |structure: &Structure,
-                   start: &LumpedModel,
-                   fits: &mut Vec<StructureFit>|
-     -> Result<Option<usize>, FitError> {
-        if cancelled(control) {
-            return Err(FitError::Cancelled);
-        }
-        let now = Instant::now();
-        // Out of time: skip the remaining candidates, but always fit the first one (for at least a
-        // millisecond) so the caller gets a model whose termination says TimeLimit.
-        if now >= deadline {
-            ran_out_of_time = true;
-            if !fits.is_empty() {
-                return Ok(None);
-            }
-        }
-        let budget = deadline
-            .saturating_duration_since(now)
-            .max(Duration::from_millis(1));
-        match fit_structure(
-            &data,
-            structure,
-            start,
-            options.max_iterations,
-            budget,
-            control,
-        ) {
-            Ok(f) => {
-                fits.push(f);
-                Ok(Some(fits.len() - 1))
-            }
-            Err(FitError::Cancelled) => Err(FitError::Cancelled),
-            Err(e) => {
-                last_error = Some(e);
-                Ok(None)
-            }
-        }
+    let full_base = Structure {
+        has_rp: true,
+        has_k_ac: true,
+        has_ls: true,
+        sections: Vec::new(),
     };
-
-    // Stage A: sections, everything else present. A structure with sections starts both from the
-    // fit with one section fewer and from the curve's own reading; the better fit is kept.
+    let base_starts: Vec<(LumpedModel, bool)> = starts.iter().map(|m| (m.clone(), true)).collect();
+    if let Some(f) = runner.best_of(&full_base, &base_starts)? {
+        fits.push(f);
+    }
+    // Stage A: sections, everything else present.
     let mut by_kinds: Vec<(Vec<SectionKind>, usize)> = Vec::new();
+    if !fits.is_empty() {
+        by_kinds.push((Vec::new(), 0));
+    }
     for kinds in &stage_a {
-        let prefix = kinds
-            .split_last()
-            .and_then(|(_, head)| by_kinds.iter().find(|(k, _)| k == head))
-            .map(|(_, i)| fits[*i].model());
-        let mut starts = vec![start_for(kinds, &guess.base, &guess)];
-        if let Some(p) = &prefix {
-            starts.push(start_for(kinds, p, &guess));
-        }
-        let structure = Structure::of(&starts[0]);
-        let mut best: Option<StructureFit> = None;
-        for start in &starts {
-            let mut one = Vec::new();
-            if run(&structure, start, &mut one)?.is_some() {
-                let f = one.pop().expect("just fitted");
-                if best.as_ref().is_none_or(|b| f.cost < b.cost) {
-                    best = Some(f);
-                }
-            }
-        }
-        if let Some(f) = best {
+        let Some(prefix) = by_kinds
+            .iter()
+            .find(|(k, _)| k[..] == kinds[..kinds.len() - 1])
+            .map(|(_, i)| fits[*i].model())
+        else {
+            continue;
+        };
+        let structure = Structure {
+            sections: kinds.clone(),
+            ..full_base.clone()
+        };
+        let candidates = [
+            (start_for(kinds, &prefix, &guess), true),
+            (embed(&prefix, &structure, &data, &guess), false),
+        ];
+        if let Some(f) = runner.best_of(&structure, &candidates)? {
             fits.push(f);
             by_kinds.push((kinds.clone(), fits.len() - 1));
         }
-        done += 1;
-        report_progress(done);
     }
     let best_a = (0..fits.len()).min_by(|&a, &b| {
         bic(fits[a].cost, residuals, fits[a].structure.len()).total_cmp(&bic(
@@ -653,11 +879,14 @@ pub fn fit_lumped(
                 start.ls_h = 0.0;
             }
             let structure = Structure::of(&start);
-            run(&structure, &start, &mut fits)?;
-            done += 1;
-            report_progress(done);
+            if let Some(f) = runner.fit(&structure, &start)? {
+                fits.push(f);
+            }
         }
     }
+    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
+    let ran_out_of_time = runner.ran_out_of_time;
+    let last_error = runner.last_error.take();
     if fits.is_empty() {
         return Err(last_error
             .unwrap_or_else(|| FitError::NonFinite("no candidate model could be fitted".into())));
@@ -671,8 +900,24 @@ pub fn fit_lumped(
         .expect("at least one fit");
     let fit = &fits[chosen];
     let model = fit.model();
-    let mut sp = spread(fit, residuals);
-    include_selection_spread(&mut sp, &fits, &bics, chosen, residuals);
+    let mut assessment = assess::assess(&model, sweep, fit.structure.len());
+    let at_walls = LumpedProblem::new(&data, &fit.structure).exceeded_walls(&fit.theta);
+    for label in &at_walls {
+        assessment.findings.push(assess::Finding {
+            kind: assess::FindingKind::AtPlausibilityLimit,
+            band_hz: None,
+            message: format!("a parameter ended at the edge of its plausible range: {label}"),
+        });
+    }
+    let mut sp = spread(fit, residuals, assessment.sigma_widening);
+    include_selection_spread(
+        &mut sp,
+        &fits,
+        &bics,
+        chosen,
+        residuals,
+        assessment.sigma_widening,
+    );
     let uncertainty = uncertainty_of(fit, &sp);
     let band_hz = [
         sweep.frequency_hz[0],
@@ -719,11 +964,48 @@ pub fn fit_lumped(
         correlation: Some(sp.correlation),
         derived,
         quality,
+        assessment,
+        warnings: Vec::new(),
         termination,
         iterations,
         candidates,
         band_hz,
     })
+}
+
+/// Step 4 of [`fit_lumped`]: from the smallest structures up, a candidate whose cost exceeds that of a
+/// candidate nested in it is fitted again from the nested one's solution ([`embed`]) and keeps the
+/// better result.
+fn enforce_nesting(
+    fits: &mut [StructureFit],
+    runner: &mut Runner<'_>,
+    data: &FitData,
+    guess: &Guess,
+) -> Result<(), FitError> {
+    let mut order: Vec<usize> = (0..fits.len()).collect();
+    order.sort_by_key(|&i| fits[i].structure.len());
+    for (pos, &t) in order.iter().enumerate() {
+        // The nested candidate with the lowest cost, among those already settled.
+        let Some(s) = order[..pos]
+            .iter()
+            .copied()
+            .filter(|&s| nested_in(&fits[s].structure, &fits[t].structure))
+            .min_by(|&a, &b| fits[a].cost.total_cmp(&fits[b].cost))
+        else {
+            continue;
+        };
+        if fits[t].cost <= fits[s].cost * (1.0 + NESTING_TOLERANCE) {
+            continue;
+        }
+        let start = embed(&fits[s].model(), &fits[t].structure, data, guess);
+        let structure = fits[t].structure.clone();
+        if let Some(f) = runner.refine(&structure, &start)?
+            && f.cost < fits[t].cost
+        {
+            fits[t] = f;
+        }
+    }
+    Ok(())
 }
 
 #[cfg(test)]

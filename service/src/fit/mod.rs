@@ -4,13 +4,17 @@
 //! The report's field names are part of the JSON contract (CLI, HTTP, database): add fields, do not
 //! rename them.
 
+pub mod assess;
 pub mod derived;
 pub mod initial;
 pub mod lm;
 pub mod lumped;
 pub mod passivity;
+pub mod plausible;
 pub mod problem;
 pub mod vector;
+
+pub use assess::{Assessment, FitStatus};
 
 use crate::model::FittedModel;
 use serde::{Deserialize, Serialize};
@@ -210,6 +214,15 @@ pub struct FitReport {
     pub candidates: Vec<Candidate>,
     /// Lowest and highest frequency of the sweep: the band where the model is valid.
     pub band_hz: [f64; 2],
+    /// Does the model describe the data within their uncertainty (`ok`), or not (`poor`, with what
+    /// misses, where and by how much)? Reports stored before this field existed read as `ok` with no
+    /// findings.
+    #[serde(default)]
+    pub assessment: Assessment,
+    /// What the readers or the fit did that the user should know (merged rows, a 0 Hz row used as the
+    /// DC resistance, …).
+    #[serde(default)]
+    pub warnings: Vec<String>,
 }
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -227,6 +240,112 @@ pub enum FitError {
     #[error("no passive model within the error bound: {0}")]
     NotPassive(String),
 }
+
+impl FitOptions {
+    /// Checks every option before any work (or storage) depends on it; the message names the option
+    /// and its allowed range.
+    pub fn validate(&self) -> Result<(), FitError> {
+        let bad = |m: String| Err(FitError::InvalidOptions(m));
+        if self.max_sections > 3 {
+            return bad(format!(
+                "max_sections is {}; it must be 0 to 3",
+                self.max_sections
+            ));
+        }
+        if !(1..=100_000).contains(&self.max_iterations) {
+            return bad(format!(
+                "max_iterations is {}; it must be 1 to 100000",
+                self.max_iterations
+            ));
+        }
+        if !(self.time_limit_s.is_finite()
+            && self.time_limit_s > 0.0
+            && self.time_limit_s <= 3600.0)
+        {
+            return bad(format!(
+                "time_limit_s is {}; it must be above 0 and at most 3600 s",
+                self.time_limit_s
+            ));
+        }
+        if self.report_frequencies_hz.len() > 1000 {
+            return bad(format!(
+                "report_frequencies_hz has {} entries; at most 1000",
+                self.report_frequencies_hz.len()
+            ));
+        }
+        if let Some(f) = self
+            .report_frequencies_hz
+            .iter()
+            .find(|f| !(f.is_finite() && **f > 0.0 && **f <= 1e12))
+        {
+            return bad(format!(
+                "report_frequencies_hz holds {f}; every frequency must be above 0 Hz and at most 1 THz"
+            ));
+        }
+        if let Some(n) = self.rational_order
+            && !(1..=MAX_RATIONAL_ORDER).contains(&n)
+        {
+            return bad(format!(
+                "rational_order is {n}; it must be 1 to {MAX_RATIONAL_ORDER}"
+            ));
+        }
+        if !(2..=MAX_RATIONAL_ORDER).contains(&self.rational_max_order) {
+            return bad(format!(
+                "rational_max_order is {}; it must be 2 to {MAX_RATIONAL_ORDER}",
+                self.rational_max_order
+            ));
+        }
+        if !(self.rational_target_rms_weighted.is_finite()
+            && self.rational_target_rms_weighted > 0.0)
+        {
+            return bad(format!(
+                "rational_target_rms_weighted is {}; it must be a positive number",
+                self.rational_target_rms_weighted
+            ));
+        }
+        if !(1..=1000).contains(&self.rational_max_relocations) {
+            return bad(format!(
+                "rational_max_relocations is {}; it must be 1 to 1000",
+                self.rational_max_relocations
+            ));
+        }
+        if !(self.passivity_rms_allowance.is_finite()
+            && (0.0..=10.0).contains(&self.passivity_rms_allowance))
+        {
+            return bad(format!(
+                "passivity_rms_allowance is {}; it must be 0 to 10",
+                self.passivity_rms_allowance
+            ));
+        }
+        if let Some(x) = self.rational_fallback_above_rms_weighted
+            && !(x.is_finite() && x > 0.0)
+        {
+            return bad(format!(
+                "rational_fallback_above_rms_weighted is {x}; it must be a positive number or null"
+            ));
+        }
+        if let Some(d) = self.dcr {
+            if !(d.value_ohm.is_finite() && d.value_ohm > 0.0 && d.value_ohm <= 1e6) {
+                return bad(format!(
+                    "the DCR reading is {} Ω; it must be above 0 and at most 1 MΩ",
+                    d.value_ohm
+                ));
+            }
+            if let Some(s) = d.sigma_ohm
+                && !(s.is_finite() && s > 0.0 && s <= d.value_ohm * 10.0)
+            {
+                return bad(format!(
+                    "the DCR reading's uncertainty is {s} Ω; it must be above 0 and at most ten times \
+                     the reading"
+                ));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// The highest rational order the options accept (poles; a complex pair counts two).
+pub const MAX_RATIONAL_ORDER: usize = 60;
 
 /// Fits the family the options ask for.
 pub fn fit(

@@ -1,37 +1,127 @@
 //! The weighted least-squares problem of one lumped structure on one sweep, for the LM solver.
 //!
-//! Residuals, interleaved per point: `(Re Z_model − Re Z_meas)/σ`, `(Im Z_model − Im Z_meas)/σ`, with σ
-//! the sweep's per-point standard uncertainty; then, when a DCR reading is given, one prior residual
-//! `(rdc − reading)/σ_reading`. So χ² = Σ r² is the cost a scipy `least_squares` with the same residual
-//! vector would report as 2·cost.
+//! Residuals, interleaved per point: `(Re Z_model − Re Z_meas)·w`, `(Im Z_model − Im Z_meas)·w`, with
+//! w = √g/σ: σ the sweep's per-point standard uncertainty and g ≤ 1 the point's density weight (see
+//! [`density_weights`]); then, when a DCR reading is given, one prior residual
+//! `(rdc − reading)/σ_reading`; then one residual per plausibility wall ([`Wall`]), zero inside the
+//! plausible range. So χ² = Σ r² is the cost a scipy `least_squares` with the same residual vector
+//! would report as 2·cost.
 
 use super::lm::{NormalEquations, RecycleJacobian};
-use crate::model::lumped::{self, BLOCK, Block, MAX_PARAMETERS, Structure, Values};
+use crate::model::lumped::{self, BLOCK, Block, MAX_PARAMETERS, Param, Structure, Values};
 use argmin::core::{Error, Jacobian, Operator};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
 use std::cell::RefCell;
 
-/// The sweep prepared once for many fits: √f and 1/σ precomputed.
+/// Width of a wall in ln units: a parameter 1 % past its plausible range adds 1 to χ², 10 % adds about
+/// 90, so the data can push it past only when it matters to them enormously.
+pub const WALL_WIDTH: f64 = 0.01;
+
+/// A soft wall on a linear combination of log-parameters: `Σ cᵢ·ln pᵢ ≤ bound`, with the residual
+/// `(Σ cᵢ·ln pᵢ − bound)/WALL_WIDTH` when it is exceeded and 0 inside. A wall whose parameters a
+/// structure lacks does not apply to it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Wall {
+    pub terms: Vec<(Param, f64)>,
+    pub bound: f64,
+    /// What the wall keeps plausible, for people ("Cp above 1 aF").
+    pub label: String,
+}
+
+/// The sweep prepared once for many fits: √f, σ and the fit weights precomputed.
 #[derive(Debug, Clone)]
 pub struct FitData {
     pub frequency_hz: Vec<f64>,
     pub sqrt_f: Vec<f64>,
     pub z: Vec<Complex64>,
+    /// The fit weight of each point, √g/σ.
     pub inv_sigma: Vec<f64>,
+    /// The sweep's own standard uncertainty of each point.
+    pub sigma: Vec<f64>,
     /// DCR reading as a prior on `rdc_ohm`: (value, σ).
     pub dcr_prior: Option<(f64, f64)>,
+    /// Plausibility walls on the parameters.
+    pub walls: Vec<Wall>,
+    /// Multiplies every wall residual: √(χ²/M) of the curve's starting model, at least 1, so a model
+    /// that misses the data by far more than the noise cannot push through a wall either.
+    pub wall_stiffness: f64,
 }
 
 impl FitData {
+    /// Data and prior residuals (the walls not counted).
     pub fn residual_count(&self) -> usize {
         2 * self.frequency_hz.len() + self.dcr_prior.is_some() as usize
     }
+
+    /// The number of residuals the fit effectively has: 2·Σg over the points, plus the prior.
+    pub fn effective_residuals(&self) -> f64 {
+        let g: f64 = self
+            .inv_sigma
+            .iter()
+            .zip(&self.sigma)
+            .map(|(w, s)| (w * s).powi(2))
+            .sum();
+        2.0 * g + self.dcr_prior.is_some() as usize as f64
+    }
+}
+
+/// Density weights that let each part of the band count as it would in a logarithmic sweep of the
+/// same number of points: g = min(1, Δ/Δ̄), where Δ is the point's share of ln f (half the distance
+/// in ln f between its neighbours) and Δ̄ = ln(f_max/f_min)/(N − 1) the share in a logarithmic sweep.
+/// A logarithmic sweep has g = 1 everywhere; a linear sweep keeps its few low points at full weight and
+/// weighs its crowded top decade down, so those decades do not drown the ones where L0 and Rdc show.
+/// Weights are never raised above 1: sparse points are not trusted more than their σ says.
+pub fn density_weights(frequency_hz: &[f64]) -> Vec<f64> {
+    let n = frequency_hz.len();
+    if n < 3 {
+        return vec![1.0; n];
+    }
+    let x: Vec<f64> = frequency_hz.iter().map(|f| f.ln()).collect();
+    let mean = (x[n - 1] - x[0]) / (n - 1) as f64;
+    (0..n)
+        .map(|k| {
+            let share = match k {
+                0 => x[1] - x[0],
+                k if k == n - 1 => x[n - 1] - x[n - 2],
+                k => 0.5 * (x[k + 1] - x[k - 1]),
+            };
+            (share / mean).min(1.0)
+        })
+        .collect()
+}
+
+/// Walls compiled for one structure: (θ index, coefficient) terms and the bound.
+type CompiledWall = ([(usize, f64); 4], usize, f64);
+
+fn compile_walls(walls: &[Wall], structure: &Structure) -> Vec<CompiledWall> {
+    let mut out = Vec::new();
+    'walls: for w in walls {
+        let mut terms = [(0usize, 0.0f64); 4];
+        if w.terms.len() > 4 {
+            continue;
+        }
+        for (t, (p, c)) in w.terms.iter().enumerate() {
+            match structure.index(*p) {
+                Some(i) => terms[t] = (i, *c),
+                None => continue 'walls,
+            }
+        }
+        out.push((terms, w.terms.len(), w.bound));
+    }
+    out
+}
+
+/// Packed lower-triangle index of (a, c), c ≤ a.
+fn tri_index(a: usize, c: usize) -> usize {
+    let (a, c) = if c > a { (c, a) } else { (a, c) };
+    a * (a + 1) / 2 + c
 }
 
 pub struct LumpedProblem<'a> {
     pub data: &'a FitData,
     pub structure: &'a Structure,
+    walls: Vec<CompiledWall>,
     /// A Jacobian the solver handed back, refilled by the next [`Jacobian::jacobian`] call.
     pub spare: RefCell<Option<DMatrix<f64>>>,
     /// Scratch for [`LumpedProblem::normal_equations_into`], taken from [`SPARE_BLOCK`] (or allocated)
@@ -182,6 +272,7 @@ impl<'a> LumpedProblem<'a> {
         LumpedProblem {
             data,
             structure,
+            walls: compile_walls(&data.walls, structure),
             spare: RefCell::new(None),
             block: RefCell::new(Some(
                 SPARE_BLOCK
@@ -193,8 +284,67 @@ impl<'a> LumpedProblem<'a> {
         }
     }
 
+    /// Rows of the residual vector: the data, the prior and one per wall that applies.
+    pub fn residual_rows(&self) -> usize {
+        self.data.residual_count() + self.walls.len()
+    }
+
+    /// The walls' residuals at θ: (θ indices and coefficients, residual) of each exceeded wall.
+    fn wall_residual(&self, wall: &CompiledWall, theta: &[f64]) -> f64 {
+        let (terms, len, bound) = wall;
+        let g: f64 = terms[..*len].iter().map(|(i, c)| c * theta[*i]).sum();
+        if g > *bound {
+            (g - bound) * self.data.wall_stiffness / WALL_WIDTH
+        } else {
+            0.0
+        }
+    }
+
+    /// Which walls are exceeded at θ (their labels), for the report.
+    pub fn exceeded_walls(&self, theta: &[f64]) -> Vec<String> {
+        let applicable: Vec<&Wall> = self
+            .data
+            .walls
+            .iter()
+            .filter(|w| {
+                w.terms
+                    .iter()
+                    .all(|(p, _)| self.structure.index(*p).is_some())
+            })
+            .collect();
+        self.walls
+            .iter()
+            .zip(applicable)
+            .filter(|(c, _)| self.wall_residual(c, theta) > 0.0)
+            .map(|(_, w)| w.label.clone())
+            .collect()
+    }
+
+    /// χ², Jᵀr and JᵀJ contributions of the walls.
+    fn add_walls(&self, theta: &[f64], tri: &mut [f64], jr: &mut [f64]) -> f64 {
+        let mut cost = 0.0;
+        for wall in &self.walls {
+            let r = self.wall_residual(wall, theta);
+            if r == 0.0 {
+                continue;
+            }
+            cost += r * r;
+            let k = self.data.wall_stiffness / WALL_WIDTH;
+            let terms = &wall.0[..wall.1];
+            for &(a, ca) in terms {
+                jr[a] += ca * k * r;
+                for &(c, cc) in terms {
+                    if c <= a {
+                        tri[tri_index(a, c)] += ca * cc * k * k;
+                    }
+                }
+            }
+        }
+        cost
+    }
+
     fn buffer(&self) -> DMatrix<f64> {
-        let shape = (self.data.residual_count(), self.structure.len());
+        let shape = (self.residual_rows(), self.structure.len());
         // The fills write every entry, so a recycled matrix needs no zeroing.
         match self.spare.borrow_mut().take() {
             Some(j) if j.shape() == shape => j,
@@ -284,6 +434,7 @@ impl<'a> LumpedProblem<'a> {
             jr[1] += der * res;
             tri[2] += der * der;
         }
+        cost += self.add_walls(theta, &mut tri, &mut jr[..n]);
         let mut t = 0;
         for a in 0..n {
             g[a] = jr[a];
@@ -343,6 +494,10 @@ impl LumpedProblem<'_> {
             let res = (theta[1].exp() - value) / sigma;
             cost += res * res;
         }
+        for wall in &self.walls {
+            let r = self.wall_residual(wall, theta);
+            cost += r * r;
+        }
         cost
     }
 }
@@ -387,6 +542,10 @@ impl LumpedProblem<'_> {
         if let Some((value, sigma)) = d.dcr_prior {
             out[2 * d.frequency_hz.len()] = (theta[1].exp() - value) / sigma;
         }
+        let first = d.residual_count();
+        for (i, wall) in self.walls.iter().enumerate() {
+            out[first + i] = self.wall_residual(wall, theta);
+        }
     }
 
     /// Jacobian ∂r/∂θ into a caller's column-major matrix.
@@ -415,6 +574,17 @@ impl LumpedProblem<'_> {
             }
             out[(row, 1)] = theta[1].exp() / sigma;
         }
+        let first = d.residual_count();
+        for (i, wall) in self.walls.iter().enumerate() {
+            for p in 0..n {
+                out[(first + i, p)] = 0.0;
+            }
+            if self.wall_residual(wall, theta) > 0.0 {
+                for &(a, c) in &wall.0[..wall.1] {
+                    out[(first + i, a)] += c * self.data.wall_stiffness / WALL_WIDTH;
+                }
+            }
+        }
     }
 }
 
@@ -422,7 +592,7 @@ impl Operator for LumpedProblem<'_> {
     type Param = DVector<f64>;
     type Output = DVector<f64>;
     fn apply(&self, theta: &DVector<f64>) -> Result<DVector<f64>, Error> {
-        let mut r = DVector::zeros(self.data.residual_count());
+        let mut r = DVector::zeros(self.residual_rows());
         self.residuals_into(theta.as_slice(), r.as_mut_slice());
         Ok(r)
     }
@@ -471,8 +641,33 @@ mod tests {
                 .map(|&x| Complex64::new(1.0 + 1e-7 * x, x * 1e-6))
                 .collect(),
             inv_sigma: f.iter().map(|x| 3.0 + x.ln()).collect(),
+            sigma: f.iter().map(|x| 1.0 / (3.0 + x.ln())).collect(),
             frequency_hz: f,
             dcr_prior: Some((0.08, 0.001)),
+            // One wall the models exceed (Cp below 1 pF), one they respect (ls below L0), one on a
+            // section (absent from most structures).
+            walls: vec![
+                Wall {
+                    terms: vec![(Param::Cp, 1.0)],
+                    bound: 1e-12f64.ln(),
+                    label: "cp".into(),
+                },
+                Wall {
+                    terms: vec![(Param::Ls, 1.0), (Param::L0, -1.0)],
+                    bound: 0.0,
+                    label: "ls".into(),
+                },
+                Wall {
+                    terms: vec![
+                        (Param::SectionL(0), 1.0),
+                        (Param::SectionC(0), 1.0),
+                        (Param::Cp, -1.0),
+                    ],
+                    bound: -30.0,
+                    label: "section".into(),
+                },
+            ],
+            wall_stiffness: 3.0,
         };
         let full = choke_with_sections();
         let mut no_sections = full.clone();

@@ -1353,6 +1353,7 @@ pub fn fit_rational(
             rp_ohm: None,
         },
     );
+    let assessment = crate::fit::assess::assess(&model, sweep, 2 * chosen_order + 2);
     Ok(FitReport {
         engine_version: crate::fit::ENGINE_VERSION.to_string(),
         model: FittedModel::Rational(model),
@@ -1361,6 +1362,8 @@ pub fn fit_rational(
         correlation: None,
         derived,
         quality,
+        assessment,
+        warnings: Vec::new(),
         termination,
         iterations,
         candidates,
@@ -1369,6 +1372,7 @@ pub fn fit_rational(
 }
 
 fn check_options(options: &FitOptions, points: usize) -> Result<(), FitError> {
+    options.validate()?;
     let max_order = options.rational_order.unwrap_or(options.rational_max_order);
     if max_order == 0 {
         return Err(FitError::InvalidOptions(

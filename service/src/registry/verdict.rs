@@ -210,6 +210,8 @@ pub(crate) mod tests {
             iterations: 1,
             candidates: vec![],
             band_hz: [1e3, 1e8],
+            assessment: Default::default(),
+            warnings: vec![],
         }
     }
 
