@@ -1,0 +1,130 @@
+//! The lumped fit on a population of invented parts drawn from the space users produce (see
+//! `tests/population/mod.rs`: 100 nH–10 mH, SRF inside the band or up to 3× above it, sweeps starting
+//! 3–6 decades below the top, log, linear and segmented grids, every method with its noise), read
+//! through the real readers. A bounded draw of the population the benchmark (`--example population`)
+//! runs in full, with a seed the benchmark does not use.
+//!
+//! Requirements: the fit reaches the data's best basin (χ² ≤ 1.1 × χ² at the truth + 20) on at least
+//! 98 % of the parts and 95 % of each method; every part it misses is reported `poor` or refused,
+//! never `ok`; no larger candidate ends with a higher cost than a candidate nested in it; and the
+//! honest status calls most found fits `ok` (a found fit may still be `poor` where the method cannot
+//! measure the part).
+
+#[path = "population/mod.rs"]
+mod population;
+
+use henrybook::fit::lumped::NESTING_TOLERANCE;
+use henrybook::fit::{FitControl, FitOptions, FitStatus, fit};
+use population::{METHODS, chi2, draw, found};
+
+/// Parses a candidate label such as `l0+rdc+cp+rp+ls+1s+1p` into (rp, k_ac, ls, series, parallel).
+fn elements(label: &str) -> (bool, bool, bool, usize, usize) {
+    let mut e = (false, false, false, 0, 0);
+    for part in label.split('+') {
+        match part {
+            "rp" => e.0 = true,
+            "k_ac" => e.1 = true,
+            "ls" => e.2 = true,
+            p if p.ends_with('s') && p[..p.len() - 1].parse::<usize>().is_ok() => {
+                e.3 = p[..p.len() - 1].parse().unwrap()
+            }
+            p if p.ends_with('p') && p[..p.len() - 1].parse::<usize>().is_ok() => {
+                e.4 = p[..p.len() - 1].parse().unwrap()
+            }
+            _ => {}
+        }
+    }
+    e
+}
+
+/// Whether candidate `b` contains candidate `a` in the sense the fit enforces: every element of `a`
+/// is in `b`, and `a` has either the same sections or none (labels give section counts, not order,
+/// and these two cases need no order).
+fn contains(b: &str, a: &str) -> bool {
+    let (x, y) = (elements(a), elements(b));
+    a != b
+        && (!x.0 || y.0)
+        && (!x.1 || y.1)
+        && (!x.2 || y.2)
+        && ((x.3, x.4) == (y.3, y.4) || x.3 + x.4 == 0)
+}
+
+#[test]
+fn the_lumped_fit_finds_the_best_basin_on_a_drawn_population_and_flags_every_miss() {
+    const PARTS: usize = 150;
+    const SEED: u64 = 77;
+    let mut found_count = 0;
+    let mut ok_among_found = 0;
+    let mut per_method = [(0usize, 0usize); 4];
+    let mut misses = Vec::new();
+    for i in 0..PARTS {
+        let part = draw(SEED, i);
+        let sweep = part.sweep();
+        let m = METHODS.iter().position(|&x| x == part.method).unwrap();
+        per_method[m].1 += 1;
+        let report = match fit(&sweep, &FitOptions::default(), &FitControl::default()) {
+            Ok(r) => r,
+            Err(e) => {
+                // A refusal is an honest answer, never a silent wrong model; it counts as a miss.
+                misses.push(format!("{} — refused: {e}", part.describe()));
+                continue;
+            }
+        };
+        let (c_fit, c_truth) = (chi2(&report.model, &sweep), chi2(&part.truth, &sweep));
+        if found(c_fit, c_truth) {
+            found_count += 1;
+            per_method[m].0 += 1;
+            ok_among_found += (report.assessment.status == FitStatus::Ok) as usize;
+        } else {
+            assert_eq!(
+                report.assessment.status,
+                FitStatus::Poor,
+                "{} missed the basin (χ² {c_fit:.4e} against {c_truth:.4e} at the truth) but was \
+                 reported ok",
+                part.describe()
+            );
+            misses.push(format!(
+                "{} — χ² {c_fit:.4e} against {c_truth:.4e}: {}",
+                part.describe(),
+                report.assessment.summary
+            ));
+        }
+        // The nesting rule on the candidates of every fit.
+        for a in &report.candidates {
+            for b in &report.candidates {
+                if contains(&b.label, &a.label) {
+                    assert!(
+                        b.cost <= a.cost * (1.0 + NESTING_TOLERANCE) + 1e-9,
+                        "{}: {} (cost {}) contains {} (cost {}) but ends higher",
+                        part.describe(),
+                        b.label,
+                        b.cost,
+                        a.label,
+                        a.cost
+                    );
+                }
+            }
+        }
+    }
+    let rate = found_count as f64 / PARTS as f64;
+    println!(
+        "found {found_count}/{PARTS} ({:.1} %), ok among found {ok_among_found}/{found_count}; per \
+         method (direct, reflection, series-thru, shunt-thru): {per_method:?}",
+        100.0 * rate
+    );
+    for m in &misses {
+        println!("miss: {m}");
+    }
+    assert!(rate >= 0.98, "found rate {rate}: {misses:#?}");
+    for (m, (f, n)) in METHODS.iter().zip(per_method) {
+        assert!(
+            n == 0 || f as f64 / n as f64 >= 0.95,
+            "{}: found {f} of {n}",
+            m.as_str()
+        );
+    }
+    assert!(
+        ok_among_found as f64 >= 0.95 * found_count as f64,
+        "only {ok_among_found} of {found_count} found fits are reported ok"
+    );
+}
