@@ -3,7 +3,7 @@
 //! of the misses were reported `poor`, and the fit times.
 //!
 //! `cargo run --release -p henrybook-tests --example population -- [--parts N] [--seed S]
-//! [--write DIR] [--show-misses] [--show-poor] [--only INDEX]`. With `--write DIR` it also writes each
+//! [--write DIR] [--show-misses] [--show-poor] [--only INDEX] [--family lumped|rational]`. With `--write DIR` it also writes each
 //! part's file and a `truth.jsonl` (one line per part) for the scipy peer,
 //! `tests/bench/population_scipy.py`. `--show-misses` prints every part whose fit missed the basin,
 //! `--show-poor` every found part reported poor, and `--only INDEX` fits one part and prints what
@@ -31,6 +31,14 @@ fn main() {
     let show = args.iter().any(|a| a == "--show-misses");
     let show_poor = args.iter().any(|a| a == "--show-poor");
     let only: Option<usize> = value("--only").map(|v| v.parse().expect("--only INDEX"));
+    let options = FitOptions {
+        family: match value("--family").as_deref() {
+            None | Some("lumped") => henrybook::fit::ModelFamily::Lumped,
+            Some("rational") => henrybook::fit::ModelFamily::Rational,
+            Some(other) => panic!("--family {other}: lumped or rational"),
+        },
+        ..FitOptions::default()
+    };
     if let Some(dir) = &write {
         std::fs::create_dir_all(dir).expect("create the output folder");
     }
@@ -59,7 +67,7 @@ fn main() {
         }
         let sweep = part.sweep();
         let t = Instant::now();
-        let result = fit(&sweep, &FitOptions::default(), &FitControl::default());
+        let result = fit(&sweep, &options, &FitControl::default());
         times.push(t.elapsed().as_secs_f64());
         let c_truth = chi2(&part.truth, &sweep);
         let (is_found, poor, detail) = match &result {
