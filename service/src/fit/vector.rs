@@ -1423,6 +1423,8 @@ mod tests {
             sigma_ohm: sigma,
             method: crate::sweep::Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         }
     }
 

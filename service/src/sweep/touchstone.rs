@@ -19,9 +19,11 @@
 //! - After `[Network Data]` only `[Noise Data]` and `[End]` may follow (from memory: the
 //!   specification lists every other keyword before `[Network Data]`); any other keyword there is an
 //!   error with its line, because it would change how the data already read are laid out.
+//! - A frequency may repeat the one before it (segmented sweeps repeat their boundary frequency):
+//!   [`super::sweep_from_network`] merges such rows. A frequency that goes backwards is an error.
 //! - Nothing a file states sizes an allocation: counts are compared with the data, never reserved.
 
-use super::{SweepError, check_grid};
+use super::{Repeats, SweepError, check_grid};
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
 
@@ -70,6 +72,7 @@ pub struct Network {
     pub reference_ohm: Vec<f64>,
     /// `None` for 1-port files.
     pub two_port_order: Option<TwoPortOrder>,
+    /// Never decreasing; a segmented sweep may repeat a boundary frequency.
     pub frequency_hz: Vec<f64>,
     /// Per frequency the n×n matrix, row-major (`data[k][i·n + j]` is N(i+1)(j+1)), in physical units:
     /// S unitless, Z in ohm, Y in siemens (version 1 Z and Y already multiplied out of R).
@@ -675,7 +678,7 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
         net.data.push(m);
         net.line.push(rec.start_line);
     }
-    check_grid(&net.frequency_hz, &net.line)?;
+    check_grid(&net.frequency_hz, &net.line, Repeats::Allow)?;
     Ok(net)
 }
 
@@ -1026,7 +1029,6 @@ mod tests {
         let cases: &[(&str, Option<usize>, usize, &str)] = &[
             ("# MHz S RI\n1 0 0\n2 0 0 0\n", Some(1), 3, "column count"),
             ("# MHz S RI\n1 0 0\n2 0\n", Some(1), 3, "column count"),
-            ("# MHz S RI\n1 0 0\n1 0 0\n", Some(1), 3, "duplicate"),
             ("# MHz S RI\n2 0 0\n1 0 0\n", Some(1), 3, "increase"),
             ("# MHz S RI\n1 nan 0\n", Some(1), 2, "not finite"),
             ("# MHz S RI\n1 inf 0\n", Some(1), 2, "not finite"),
@@ -1187,6 +1189,16 @@ mod tests {
         let err = parse_touchstone("# Hz S RI\n1 0 0\n", Some(usize::MAX)).unwrap_err();
         assert_eq!(err.line, Some(2));
         assert!(err.message.contains("not supported"), "{err}");
+    }
+
+    #[test]
+    fn a_repeated_frequency_reads_and_a_step_back_does_not() {
+        let net = parse_touchstone("# MHz S RI\n1 0 0\n2 0 0\n2 0.1 0\n3 0 0\n", Some(1)).unwrap();
+        assert_eq!(net.frequency_hz, vec![1e6, 2e6, 2e6, 3e6]);
+        assert_eq!(net.line, vec![2, 3, 4, 5]);
+        let err = parse_touchstone("# MHz S RI\n1 0 0\n2 0 0\n1.5 0 0\n", Some(1)).unwrap_err();
+        assert_eq!(err.line, Some(4));
+        assert!(err.message.contains("must increase"), "{err}");
     }
 
     #[test]
