@@ -478,3 +478,25 @@ pub fn router() -> OpenApiRouter<AppState> {
         .routes(routes!(upload))
         .routes(routes!(sweep_file))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn stored_options_read_back_to_the_same_json() {
+        // Found by the fuzz target upload_fields: with serde_json's default (not correctly rounded)
+        // float parsing, the stored "1.9e+49" read back as 1.9000000000000002e49, so the options a
+        // worker parses were not the ones validated and stored.
+        for text in [
+            r#"{"report_frequencies_hz": [19000000000000000000000000000018339220632604081024,0]}"#,
+            r#"{"report_frequencies_hz": [1.9e49, 3.3e-7], "time_limit_s": 0.1}"#,
+        ] {
+            let stored = serde_json::to_string(&parse_options(text).unwrap()).unwrap();
+            let again = serde_json::to_string(&parse_options(&stored).unwrap()).unwrap();
+            assert_eq!(again, stored);
+        }
+        let options = parse_options(r#"{"report_frequencies_hz": [1.9e49]}"#).unwrap();
+        assert_eq!(options.report_frequencies_hz, vec![1.9e49]);
+    }
+}
