@@ -3,7 +3,7 @@
 //! An upload is checked completely before anything is stored: every metadata field, the options, and
 //! the file itself (read by the engine's sweep reader; its error and line number go into the problem),
 //! and that the sweep is long enough to fit. The text fields' checks are pure functions ([`number`],
-//! [`check_upload_fields`]).
+//! [`check_upload_fields`]), which the fuzz target `upload_fields` calls.
 
 use super::auth::{Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem};
@@ -281,7 +281,7 @@ pub struct UploadFields {
 }
 
 /// Checks an upload's text fields and fit options; `has_open` and `has_short` say which fixture files
-/// came with it. Pure: no I/O, no state.
+/// came with it. Pure (no I/O, no state), so the fuzz target `upload_fields` can call it.
 pub fn check_upload_fields(
     input: &UploadInput,
     has_open: bool,
