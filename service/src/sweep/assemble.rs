@@ -83,7 +83,10 @@ pub fn assemble(rows: Vec<Row>, method: Method, z0_ohm: f64) -> Result<Sweep, Sw
         }
         if f == 0.0 {
             let what = if group.len() > 1 {
-                format!("{} (0 Hz rows, merged)", lines_text(group))
+                format!(
+                    "{}: the 0 Hz reading (its rows averaged)",
+                    lines_text(group)
+                )
             } else {
                 format!("line {}: the 0 Hz row", group[0].line)
             };
@@ -344,6 +347,30 @@ mod tests {
             assert!(w.starts_with("line 2: the 0 Hz row is left out"), "{w}");
             assert!(w.contains(needle), "{w}");
         }
+    }
+
+    #[test]
+    fn repeated_0_hz_rows_are_one_dc_reading() {
+        let rows = vec![
+            row(0.0, 0.25, 0.0, 0.002, 3),
+            row(0.0, 0.27, 0.0, 0.002, 4),
+            row(1e3, 0.25, 0.1, 0.002, 5),
+        ];
+        let s = assemble(rows, Method::Direct, 50.0).unwrap();
+        let dc = s.dc_reading.unwrap();
+        assert!((dc.resistance_ohm - 0.26).abs() < 1e-12, "{dc:?}");
+        assert!(
+            (dc.sigma_ohm - (4e-6f64 + 4e-4).sqrt()).abs() < 1e-12,
+            "{dc:?}"
+        );
+        assert_eq!(dc.line, 3);
+        assert_eq!(s.warnings.len(), 1, "{:?}", s.warnings);
+        assert!(
+            s.warnings[0]
+                .starts_with("lines 3 and 4: the 0 Hz reading (its rows averaged) is used"),
+            "{:?}",
+            s.warnings
+        );
     }
 
     #[test]
