@@ -33,6 +33,8 @@ fn a_fitted_choke_exports_to_a_netlist_that_matches_the_fit() {
         sigma_ohm,
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     };
     let report = fit(&sweep, &FitOptions::default(), &FitControl::default()).expect("fit");
     let ctx = ExportContext {
@@ -74,6 +76,8 @@ fn synthetic_sweep(truth: &LumpedModel, lo: f64, hi: f64, n: usize) -> Sweep {
         sigma_ohm,
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     }
 }
 

@@ -116,6 +116,8 @@ fn junk_sweep() -> impl Strategy<Value = henrybook::sweep::Sweep> {
                 frequency_hz,
                 method: Method::Direct,
                 z0_ohm: 50.0,
+                dc_reading: None,
+                warnings: Vec::new(),
             }
         })
 }

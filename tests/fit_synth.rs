@@ -83,6 +83,8 @@ pub fn synthetic_sweep(
         sigma_ohm,
         method,
         z0_ohm: z0,
+        dc_reading: None,
+        warnings: Vec::new(),
     }
 }
 

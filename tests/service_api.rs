@@ -270,6 +270,11 @@ async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
     let good = demo_file("OMW-L47U-GD/lot-2618A_analyser.csv");
     let ok = [("part_number", "P-1"), ("lot", "L1"), ("method", "direct")];
     let junk_line_3 = b"# comment\nfrequency_hz,z_real_ohm,z_imag_ohm\n1000,abc,2\n".to_vec();
+    // A valid file that reads (the impedance command converts it) but is too short to fit.
+    let five_points: Vec<u8> = std::iter::once("frequency_hz,z_real_ohm,z_imag_ohm\n".to_string())
+        .chain((1..=5).map(|k| format!("{},0.1,{}\n", 1000 * k, 0.3 * k as f64)))
+        .collect::<String>()
+        .into_bytes();
     type Case<'a> = (
         &'a str,
         &'a str,
@@ -291,6 +296,14 @@ async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
             "junk on line 3",
             "a.csv",
             junk_line_3,
+            ok.to_vec(),
+            422,
+            "bad-sweep-file",
+        ),
+        (
+            "too short to fit",
+            "five-points.csv",
+            five_points,
             ok.to_vec(),
             422,
             "bad-sweep-file",
@@ -421,6 +434,13 @@ async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
         assert_eq!(body["status"], status, "{what}");
         if what == "junk on line 3" {
             assert_eq!(body["line"], 3, "{body}");
+        }
+        if what == "too short to fit" {
+            let detail = body["detail"].as_str().unwrap();
+            assert!(
+                detail.starts_with("five-points.csv: ") && detail.contains("at least 20"),
+                "{body}"
+            );
         }
     }
     // A multipart body without a file at all.

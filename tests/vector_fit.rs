@@ -36,6 +36,8 @@ fn exact_sweep(model: &dyn ImpedanceModel, f: &[f64]) -> Sweep {
         impedance_ohm: z,
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     }
 }
 

@@ -78,5 +78,7 @@ pub fn noisy_sweep(model: &dyn ImpedanceModel, f: &[f64], rel_noise: f64, seed: 
         sigma_ohm: sigma,
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     }
 }

@@ -57,6 +57,8 @@ fn default_sweep() -> Sweep {
         sigma_ohm: sigma,
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     }
 }
 
@@ -82,6 +84,8 @@ fn load(path: &str) -> (Sweep, usize, usize) {
         sigma_ohm: floats("sigma_ohm"),
         method: Method::Direct,
         z0_ohm: 50.0,
+        dc_reading: None,
+        warnings: Vec::new(),
     };
     let order = v["order"].as_u64().expect("order") as usize;
     let repeat = v["repeat"].as_u64().unwrap_or(20) as usize;

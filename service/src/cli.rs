@@ -9,7 +9,9 @@
 //! fitted `ok`, 3 when every file was fitted but some are `poor`, 1 when any failed, 2 for a usage
 //! error.
 //!
-//! `henrybook impedance FILE [--method M] [--z0 OHM] [--json]` prints the impedance the file implies.
+//! `henrybook impedance FILE [--method M] [--z0 OHM] [--json]` prints the impedance the file implies,
+//! for any file the readers accept (also one too short to fit), with the reader's warnings and the DC
+//! reading of a 0 Hz row when there is one.
 
 use crate::fit::{self, DcrReading, FitControl, FitOptions, FitReport, ModelFamily};
 use crate::model::FittedModel;
@@ -168,6 +170,7 @@ fn read(file: &str, options: &ReadOptions) -> Result<Sweep, String> {
 
 fn fit_one(file: &str, flags: &Flags) -> Result<(Sweep, FitReport), String> {
     let sweep = read(file, &flags.read)?;
+    sweep.check_fittable().map_err(|e| format!("{file}: {e}"))?;
     let options = FitOptions {
         family: flags.family,
         dcr: flags.dcr_ohm.map(|value_ohm| DcrReading {
@@ -401,7 +404,7 @@ fn run_impedance(flags: &Flags, out: &mut dyn Write, err: &mut dyn Write) -> u8 
         }
     };
     if flags.json {
-        let v = json!({
+        let mut v = json!({
             "file": file,
             "status": "ok",
             "method": sweep.method,
@@ -410,9 +413,23 @@ fn run_impedance(flags: &Flags, out: &mut dyn Write, err: &mut dyn Write) -> u8 
             "z_real_ohm": sweep.impedance_ohm.iter().map(|z| z.re).collect::<Vec<_>>(),
             "z_imag_ohm": sweep.impedance_ohm.iter().map(|z| z.im).collect::<Vec<_>>(),
             "sigma_ohm": sweep.sigma_ohm,
+            "warnings": sweep.warnings,
         });
+        if let Some(dc) = &sweep.dc_reading {
+            v["dc_reading"] = json!(dc);
+        }
         let _ = writeln!(out, "{v}");
     } else {
+        for w in &sweep.warnings {
+            let _ = writeln!(err, "henrybook impedance: {file}: {w}");
+        }
+        if let Some(dc) = &sweep.dc_reading {
+            let _ = writeln!(
+                err,
+                "henrybook impedance: {file}: DC reading {} Ω, σ {} Ω (line {})",
+                dc.resistance_ohm, dc.sigma_ohm, dc.line
+            );
+        }
         let _ = writeln!(out, "frequency_hz,z_real_ohm,z_imag_ohm,sigma_ohm");
         for ((f, z), s) in sweep
             .frequency_hz
@@ -480,6 +497,66 @@ mod tests {
             assert_eq!(l["status"], "failed");
             assert!(l["error"].as_str().unwrap().contains("cannot read"));
         }
+    }
+
+    fn temp_file(name: &str, text: &str) -> std::path::PathBuf {
+        let dir = std::env::temp_dir().join(format!("henrybook-cli-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join(name);
+        std::fs::write(&path, text).unwrap();
+        path
+    }
+
+    #[test]
+    fn impedance_converts_a_short_file_with_its_warnings_and_dc_reading() {
+        // Five rows: a 0 Hz row, and a boundary frequency measured twice (invented values).
+        let text = "frequency_hz,z_real_ohm,z_imag_ohm\n0,0.05,0\n1000,0.05,0.3\n2000,0.05,0.6\n\
+                    2000,0.05,0.62\n3000,0.05,0.9\n";
+        let path = temp_file("short.csv", text);
+        let file = path.to_str().unwrap();
+        let (code, out, _) = run_str(&format!("impedance {file} --json"));
+        assert_eq!(code, 0);
+        let v: Value = serde_json::from_str(out.trim()).unwrap();
+        assert_eq!(v["status"], "ok");
+        assert_eq!(v["frequency_hz"], json!([1000.0, 2000.0, 3000.0]));
+        assert_eq!(v["z_imag_ohm"][1], json!(0.61));
+        assert_eq!(v["dc_reading"]["resistance_ohm"], json!(0.05));
+        assert_eq!(v["dc_reading"]["line"], json!(2));
+        let warnings = v["warnings"].as_array().unwrap();
+        assert_eq!(warnings.len(), 2, "{warnings:?}");
+        assert!(
+            warnings[0]
+                .as_str()
+                .unwrap()
+                .contains("line 2: the 0 Hz row is used")
+        );
+        assert!(
+            warnings[1]
+                .as_str()
+                .unwrap()
+                .starts_with("lines 4 and 5 repeat 2000 Hz")
+        );
+
+        // Without --json: CSV on standard output, the warnings on standard error.
+        let (code, out, err) = run_str(&format!("impedance {file}"));
+        assert_eq!(code, 0);
+        assert_eq!(out.lines().count(), 4, "{out}");
+        assert!(
+            err.contains("repeat 2000 Hz") && err.contains("DC reading 0.05 Ω"),
+            "{err}"
+        );
+
+        // Fitting the same file is refused, naming the file.
+        let (code, out, _) = run_str(&format!("fit {file} --json"));
+        assert_eq!(code, 1);
+        let v: Value = serde_json::from_str(out.trim()).unwrap();
+        assert_eq!(v["status"], "failed");
+        let e = v["error"].as_str().unwrap();
+        assert!(
+            e.starts_with(file) && e.contains("a fit needs at least 20"),
+            "{e}"
+        );
+        std::fs::remove_file(path).ok();
     }
 
     #[test]

@@ -487,6 +487,8 @@ pub(crate) mod tests {
             impedance_ohm: z,
             method: Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         };
         let q = quality(&m, &sweep);
         assert_eq!(q.points, 30);

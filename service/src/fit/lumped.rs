@@ -1051,6 +1051,8 @@ mod tests {
             sigma_ohm: sigma,
             method: Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         }
     }
 

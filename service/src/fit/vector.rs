@@ -1427,6 +1427,8 @@ mod tests {
             sigma_ohm: sigma,
             method: crate::sweep::Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         }
     }
 

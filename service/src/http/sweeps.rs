@@ -1,7 +1,9 @@
 //! `POST /api/v1/sweeps` (upload a sweep, queue its fit) and `GET /api/v1/sweeps/{sweep_id}/file`.
 //!
 //! An upload is checked completely before anything is stored: every metadata field, the options, and
-//! the file itself (read by the engine's sweep reader; its error and line number go into the problem).
+//! the file itself (read by the engine's sweep reader; its error and line number go into the problem),
+//! and that the sweep is long enough to fit. The text fields' checks are pure functions ([`number`],
+//! [`check_upload_fields`]), which the fuzz target `upload_fields` calls.
 
 use super::auth::{Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem};
@@ -11,7 +13,7 @@ use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputError, InputFile, 
 use crate::jobs::{duplicate_key_with_fixture, effective_options, parse_method};
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
-use crate::sweep::ReadOptions;
+use crate::sweep::{Method, ReadOptions};
 use axum::Json;
 use axum::extract::multipart::MultipartError;
 use axum::extract::{Multipart, Path, State};
@@ -69,7 +71,8 @@ fn multipart_problem(e: MultipartError) -> Problem {
     }
 }
 
-fn number(name: &str, text: &str) -> ApiResult<Option<f64>> {
+/// A numeric multipart field: empty or `null` for none, else a finite number.
+pub fn number(name: &str, text: &str) -> ApiResult<Option<f64>> {
     let t = text.trim();
     if t.is_empty() || t == "null" {
         return Ok(None);
@@ -262,18 +265,29 @@ fn checked_file(f: NamedFile) -> ApiResult<NamedFile> {
     Ok(named)
 }
 
-/// Checks an upload completely (metadata, options, the files through the engine's reader), stores it
-/// and queues its fit; nothing is stored when any check fails. Shared by the HTTP and gRPC interfaces.
-pub async fn accept_upload(
-    state: &AppState,
-    actor: &str,
-    input: UploadInput,
-) -> ApiResult<Accepted> {
-    let file = input.file.map(checked_file).transpose()?;
-    let fixture_open = input.fixture_open.map(checked_file).transpose()?;
-    let fixture_short = input.fixture_short.map(checked_file).transpose()?;
-    let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
-    let topology = match (fixture_open.is_some(), fixture_short.is_some()) {
+/// An upload's metadata after its checks: everything but the files.
+#[derive(Debug, Clone, PartialEq)]
+pub struct UploadFields {
+    pub topology: Option<FixtureTopology>,
+    pub part_number: String,
+    pub lot: String,
+    pub method: Option<Method>,
+    pub z0_ohm: Option<f64>,
+    pub dcr_ohm: Option<f64>,
+    pub temperature_c: Option<f64>,
+    pub operator: String,
+    /// The effective fit options (with the DC reading), as stored.
+    pub options_json: String,
+}
+
+/// Checks an upload's text fields and fit options; `has_open` and `has_short` say which fixture files
+/// came with it. Pure (no I/O, no state), so the fuzz target `upload_fields` can call it.
+pub fn check_upload_fields(
+    input: &UploadInput,
+    has_open: bool,
+    has_short: bool,
+) -> ApiResult<UploadFields> {
+    let topology = match (has_open, has_short) {
         (false, false) => {
             if !input.fixture_topology.trim().is_empty() {
                 return Err(Problem::validation(
@@ -320,8 +334,43 @@ pub async fn accept_upload(
     }
     let operator = short_text("operator", &input.operator, 128, false)?;
     let options = effective_options(parse_options(&input.options)?, dcr_ohm);
-
     let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
+    Ok(UploadFields {
+        topology,
+        part_number,
+        lot,
+        method,
+        z0_ohm,
+        dcr_ohm,
+        temperature_c,
+        operator,
+        options_json,
+    })
+}
+
+/// Checks an upload completely (metadata, options, the files through the engine's reader, a sweep
+/// long enough to fit), stores it and queues its fit; nothing is stored when any check fails. Shared
+/// by the HTTP and gRPC interfaces.
+pub async fn accept_upload(
+    state: &AppState,
+    actor: &str,
+    mut input: UploadInput,
+) -> ApiResult<Accepted> {
+    let file = input.file.take().map(checked_file).transpose()?;
+    let fixture_open = input.fixture_open.take().map(checked_file).transpose()?;
+    let fixture_short = input.fixture_short.take().map(checked_file).transpose()?;
+    let file = file.ok_or_else(|| Problem::validation("the multipart field file is missing"))?;
+    let UploadFields {
+        topology,
+        part_number,
+        lot,
+        method,
+        z0_ohm,
+        dcr_ohm,
+        temperature_c,
+        operator,
+        options_json,
+    } = check_upload_fields(&input, fixture_open.is_some(), fixture_short.is_some())?;
 
     // Reading the files, hashing them and keying the duplicate check are CPU work: off the runtime.
     let engine = state.engine.clone();
@@ -339,6 +388,11 @@ pub async fn accept_upload(
                 topology,
             });
         let sweep = read_input(engine.as_ref(), input_file(&file), fixture, &read)?;
+        // The readers accept any length (converting is not fitting); an upload is for a fit.
+        sweep.check_fittable().map_err(|error| InputError {
+            file_name: file.name.clone(),
+            error,
+        })?;
         let method_text = serde_json::to_value(sweep.method)
             .ok()
             .and_then(|v| v.as_str().map(str::to_string))
@@ -423,4 +477,26 @@ pub fn router() -> OpenApiRouter<AppState> {
     OpenApiRouter::new()
         .routes(routes!(upload))
         .routes(routes!(sweep_file))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn stored_options_read_back_to_the_same_json() {
+        // Found by the fuzz target upload_fields: with serde_json's default (not correctly rounded)
+        // float parsing, the stored "1.9e+49" read back as 1.9000000000000002e49, so the options a
+        // worker parses were not the ones validated and stored.
+        for text in [
+            r#"{"report_frequencies_hz": [19000000000000000000000000000018339220632604081024,0]}"#,
+            r#"{"report_frequencies_hz": [1.9e49, 3.3e-7], "time_limit_s": 0.1}"#,
+        ] {
+            let stored = serde_json::to_string(&parse_options(text).unwrap()).unwrap();
+            let again = serde_json::to_string(&parse_options(&stored).unwrap()).unwrap();
+            assert_eq!(again, stored);
+        }
+        let options = parse_options(r#"{"report_frequencies_hz": [1.9e49]}"#).unwrap();
+        assert_eq!(options.report_frequencies_hz, vec![1.9e49]);
+    }
 }

@@ -10,10 +10,12 @@
 //! carry their SI unit; a name with another unit (`frequency_mhz`, `z_real_mohm`) is refused as mixed
 //! units rather than rescaled.
 
-use super::{Method, ReadOptions, Sweep, SweepError, check_grid, check_min_points};
+use super::assemble::{Row, assemble};
+use super::{Method, ReadOptions, Repeats, Sweep, SweepError, check_grid};
 use num_complex::Complex64;
 
-/// A parsed impedance CSV, before the 0 Hz point is dropped and the uncertainty is attached.
+/// A parsed impedance CSV, before repeated frequencies are merged, the 0 Hz row is set aside and the
+/// uncertainty is attached.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ImpedanceTable {
     pub frequency_hz: Vec<f64>,
@@ -167,39 +169,33 @@ pub fn parse_csv(text: &str) -> Result<ImpedanceTable, SweepError> {
             "the CSV file has a header but no data rows",
         ));
     }
-    check_grid(&table.frequency_hz, &table.line)?;
+    check_grid(&table.frequency_hz, &table.line, Repeats::Allow)?;
     Ok(table)
 }
 
 /// Reads the CSV into a sweep. The data are the DUT impedance; when the options state an S-method the
-/// uncertainty uses that method's sensitivity, otherwise the relative floor only.
+/// uncertainty uses that method's sensitivity, otherwise the relative floor only. Repeated frequencies
+/// are merged and a 0 Hz row becomes the DC reading ([`super::assemble`]).
 pub fn read_csv(text: &str, options: &ReadOptions) -> Result<Sweep, SweepError> {
     let table = parse_csv(text)?;
     let noise = options.noise_model()?;
     let z0 = options.checked_z0()?.unwrap_or(50.0);
     let method = options.method.unwrap_or(Method::Direct);
-    let mut sweep = Sweep {
-        frequency_hz: Vec::with_capacity(table.frequency_hz.len()),
-        impedance_ohm: Vec::with_capacity(table.frequency_hz.len()),
-        sigma_ohm: Vec::with_capacity(table.frequency_hz.len()),
-        method,
-        z0_ohm: z0,
-    };
-    for k in 0..table.frequency_hz.len() {
-        if table.frequency_hz[k] == 0.0 {
-            continue;
-        }
-        let z = table.impedance_ohm[k];
-        let sigma = match &table.sigma_ohm {
-            Some(s) => s[k],
-            None => noise.sigma_from_z(method, z, z0),
-        };
-        sweep.frequency_hz.push(table.frequency_hz[k]);
-        sweep.impedance_ohm.push(z);
-        sweep.sigma_ohm.push(sigma);
-    }
-    check_min_points(sweep.frequency_hz.len())?;
-    Ok(sweep)
+    let rows = (0..table.frequency_hz.len())
+        .map(|k| {
+            let z = table.impedance_ohm[k];
+            Row {
+                frequency_hz: table.frequency_hz[k],
+                impedance_ohm: z,
+                sigma_ohm: match &table.sigma_ohm {
+                    Some(s) => s[k],
+                    None => noise.sigma_from_z(method, z, z0),
+                },
+                line: table.line[k],
+            }
+        })
+        .collect();
+    assemble(rows, method, z0)
 }
 
 fn unquote(s: &str) -> &str {
@@ -259,7 +255,7 @@ mod tests {
     }
 
     #[test]
-    fn read_csv_drops_a_0_hz_point_and_uses_the_relative_floor() {
+    fn read_csv_takes_a_0_hz_row_as_the_dc_reading_and_uses_the_relative_floor() {
         let mut text = rows("frequency_hz,z_real_ohm,z_imag_ohm", 25);
         text = text.replacen("1000,", "0,", 1);
         let sweep = read_csv(&text, &ReadOptions::default()).unwrap();
@@ -267,6 +263,32 @@ mod tests {
         assert_eq!(sweep.method, Method::Direct);
         let z = sweep.impedance_ohm[3];
         assert!((sweep.sigma_ohm[3] - 0.002 * z.norm()).abs() < 1e-9);
+        let dc = sweep.dc_reading.unwrap();
+        assert_eq!((dc.resistance_ohm, dc.line), (0.1, 2));
+        assert!((dc.sigma_ohm - 0.002 * 0.1).abs() < 1e-12, "{dc:?}");
+        // A 0 Hz row with reactance is no resistance reading.
+        let text = text.replacen("0,0.1,0\n", "0,0.1,0.5\n", 1);
+        let sweep = read_csv(&text, &ReadOptions::default()).unwrap();
+        assert_eq!(sweep.dc_reading, None);
+        assert!(
+            sweep.warnings[0].contains("σ from zero"),
+            "{:?}",
+            sweep.warnings
+        );
+    }
+
+    #[test]
+    fn repeated_rows_are_merged_and_a_short_file_reads() {
+        let text = "frequency_hz,z_real_ohm,z_imag_ohm,sigma_ohm\n1,1,1,0.1\n2,1,2,0.1\n2,1,2.2,0.1\n3,1,3,0.1\n";
+        let sweep = read_csv(text, &ReadOptions::default()).unwrap();
+        assert_eq!(sweep.frequency_hz, vec![1.0, 2.0, 3.0]);
+        assert!((sweep.impedance_ohm[1] - Complex64::new(1.0, 2.1)).norm() < 1e-12);
+        assert!((sweep.sigma_ohm[1] - (0.01f64 + 0.04).sqrt()).abs() < 1e-12);
+        assert!(
+            sweep.warnings[0].starts_with("lines 3 and 4 repeat 2 Hz"),
+            "{:?}",
+            sweep.warnings
+        );
     }
 
     #[test]
@@ -286,11 +308,6 @@ mod tests {
                 "frequency_hz,z_real_ohm,z_imag_ohm\n1,2\n",
                 Some(2),
                 "column count",
-            ),
-            (
-                "frequency_hz,z_real_ohm,z_imag_ohm\n1,2,3\n1,2,3\n",
-                Some(3),
-                "duplicate",
             ),
             (
                 "frequency_hz,z_real_ohm,z_imag_ohm\n2,2,3\n1,2,3\n",
@@ -332,10 +349,11 @@ mod tests {
             assert!(err.message.contains(needle), "{text:?}: {err}");
         }
         let err = read_csv(
-            &rows("frequency_hz,z_real_ohm,z_imag_ohm", 19),
+            "frequency_hz,z_real_ohm,z_imag_ohm\n0,1,0\n",
             &ReadOptions::default(),
         )
         .unwrap_err();
-        assert!(err.message.contains("at least 20"), "{err}");
+        assert_eq!(err.line, Some(2), "{err}");
+        assert!(err.message.contains("only a 0 Hz row"), "{err}");
     }
 }

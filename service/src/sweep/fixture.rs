@@ -11,11 +11,17 @@
 //!   Zxm = 1/(Yo + 1/(Zs + Zdut)), so Yo = 1/Zom and exactly
 //!   Zdut = Zxm/(1 − Zxm·Yom) − Zsm/(1 − Zsm·Yom).
 //!
+//! DC readings (a 0 Hz row in the files, [`Sweep::dc_reading`]) are compensated by the same forms with
+//! real values; an open without a DC reading counts as infinite at DC (an open is an open there), so
+//! then R = Rx − Rs. A DUT DC reading without a short DC reading to subtract is left out with a
+//! warning: the fixture's own resistance would sit in it unnoticed.
+//!
 //! Two-port: [`deembed_open_short_two_port`] removes the pads' shunt admittance and the leads' series
 //! impedance from a 2-port, Ydut = ((Yx − Yo)⁻¹ − (Ys − Yo)⁻¹)⁻¹ (the matrix form of the same idea).
 
+use super::assemble::g4;
 use super::convert::{self, Mat2};
-use super::{Network, Parameter, Sweep, SweepError};
+use super::{DcReading, Network, Parameter, Sweep, SweepError};
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
 
@@ -114,7 +120,72 @@ pub fn compensate(
         out.impedance_ohm[k] = z;
         out.sigma_ohm[k] = if sigma.is_finite() { sigma } else { f64::MAX };
     }
+    for (what, s) in [("open", open), ("short", short)] {
+        out.warnings.extend(
+            s.warnings
+                .iter()
+                .map(|w| format!("the {what} fixture sweep: {w}")),
+        );
+    }
+    out.dc_reading = None;
+    if let Some(dc) = dut.dc_reading {
+        match compensate_dc(topology, &dc, open.dc_reading, short.dc_reading) {
+            Ok(r) => out.dc_reading = Some(r),
+            Err(why) => out.warnings.push(format!(
+                "line {}: the DC reading {} Ω is left out after fixture compensation: {why}",
+                dc.line,
+                g4(dc.resistance_ohm)
+            )),
+        }
+    }
     Ok(out)
+}
+
+/// The DUT's DC reading with the fixture's taken out (see the module docs), or why it cannot be.
+fn compensate_dc(
+    topology: Topology,
+    dut: &DcReading,
+    open: Option<DcReading>,
+    short: Option<DcReading>,
+) -> Result<DcReading, String> {
+    let short = short.ok_or("the short fixture sweep has no DC reading to subtract")?;
+    let re = |x: f64| Complex64::new(x, 0.0);
+    let (rx, rs) = (re(dut.resistance_ohm), re(short.resistance_ohm));
+    let ro = re(open.map_or(f64::INFINITY, |o| o.resistance_ohm));
+    let eval = |x: Complex64, o: Complex64, s: Complex64| {
+        if o.re.is_infinite() {
+            x - s
+        } else {
+            compensate_point(topology, x, o, s)
+        }
+    };
+    let r = eval(rx, ro, rs).re;
+    // Each argument's sensitivity by a central difference (the forms are smooth in each).
+    let d = |f: &dyn Fn(Complex64) -> Complex64, x: Complex64| {
+        let h = 1e-6 * x.norm().max(1e-12);
+        ((f(x + h) - f(x - h)) / (2.0 * h)).norm()
+    };
+    let gx = d(&|x| eval(x, ro, rs), rx);
+    let gs = d(&|x| eval(rx, ro, x), rs);
+    let go = match open {
+        Some(o) => d(&|x| eval(rx, x, rs), ro) * o.sigma_ohm,
+        None => 0.0,
+    };
+    let sigma = ((gx * dut.sigma_ohm).powi(2) + (gs * short.sigma_ohm).powi(2) + go * go).sqrt();
+    if !(r.is_finite() && sigma.is_finite() && sigma > 0.0) {
+        return Err("the compensation has no finite result".into());
+    }
+    if r < 0.0 {
+        return Err(format!(
+            "the short's {} Ω is more than the DUT's, leaving a negative resistance",
+            g4(short.resistance_ohm)
+        ));
+    }
+    Ok(DcReading {
+        resistance_ohm: r,
+        sigma_ohm: sigma,
+        line: dut.line,
+    })
 }
 
 fn y_matrix(net: &Network, k: usize, z0: f64) -> Mat2 {
@@ -215,6 +286,8 @@ mod tests {
             sigma_ohm: vec![1e-3; f.len()],
             method: Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         }
     }
 
@@ -242,5 +315,59 @@ mod tests {
             "{}",
             out.sigma_ohm[0]
         );
+    }
+
+    fn dc(r: f64, sigma: f64, line: usize) -> Option<DcReading> {
+        Some(DcReading {
+            resistance_ohm: r,
+            sigma_ohm: sigma,
+            line,
+        })
+    }
+
+    #[test]
+    fn a_dc_reading_loses_the_short_and_keeps_the_fixture_warnings() {
+        let f = [1.0, 2.0];
+        let mut dut = sweep(&f, c(10.0, 100.0));
+        dut.dc_reading = dc(0.30, 3e-4, 2);
+        let mut open = sweep(&f, c(0.0, -1e5));
+        open.warnings
+            .push("line 2: the 0 Hz row is left out: …".into());
+        let mut short = sweep(&f, c(0.01, 0.1));
+        short.dc_reading = dc(0.05, 4e-4, 2);
+        let out = compensate(Topology::Approximate, &dut, &open, &short).unwrap();
+        let got = out.dc_reading.unwrap();
+        // No open DC reading: an open at DC, R = Rx − Rs, σ in quadrature.
+        assert!((got.resistance_ohm - 0.25).abs() < 1e-12, "{got:?}");
+        assert!((got.sigma_ohm - 5e-4).abs() < 1e-9, "{got:?}");
+        assert_eq!(got.line, 2);
+        assert!(out.warnings[0].starts_with("the open fixture sweep: line 2"));
+
+        // An open with a finite DC reading takes its part, as at every other frequency.
+        open.dc_reading = dc(1e3, 1.0, 2);
+        let out = compensate(Topology::Approximate, &dut, &open, &short).unwrap();
+        let want = compensate_point(
+            Topology::Approximate,
+            c(0.30, 0.0),
+            c(1e3, 0.0),
+            c(0.05, 0.0),
+        );
+        assert!((out.dc_reading.unwrap().resistance_ohm - want.re).abs() < 1e-12);
+
+        // Without the short's DC reading the DUT's is left out, with the reason.
+        short.dc_reading = None;
+        let out = compensate(Topology::SeriesThenShunt, &dut, &open, &short).unwrap();
+        assert_eq!(out.dc_reading, None);
+        let w = out.warnings.last().unwrap();
+        assert!(
+            w.contains("line 2") && w.contains("no DC reading to subtract"),
+            "{w}"
+        );
+
+        // A short that reads more than the DUT leaves no resistance.
+        short.dc_reading = dc(0.5, 4e-4, 2);
+        let out = compensate(Topology::Approximate, &dut, &open, &short).unwrap();
+        assert_eq!(out.dc_reading, None);
+        assert!(out.warnings.last().unwrap().contains("negative"));
     }
 }

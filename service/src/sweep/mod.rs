@@ -10,12 +10,19 @@
 //!   two-port open/short de-embedding.
 //!
 //! Conventions decided here (documented once, relied on everywhere):
-//! - A 0 Hz point (some analysers start there) is skipped by [`read_sweep`]: the models need f > 0.
-//!   A negative frequency is an error.
+//! - The readers refuse only what is not a valid file; every refusal names the line.
+//! - Rows that repeat a frequency (a segmented sweep repeats its boundary frequency) are merged into
+//!   one point and the sweep's [`Sweep::warnings`] say so; a frequency that goes backwards is an error
+//!   ([`assemble`]).
+//! - A 0 Hz row (some analysers start there) is a DC resistance reading, [`Sweep::dc_reading`], when
+//!   its impedance is a plausible resistance; otherwise it is left out with a warning saying why. The
+//!   models need f > 0, so it is never a point of the sweep. A negative frequency is an error.
 //! - A 2-port file needs [`ReadOptions::method`]; henrybook never guesses between series-thru and
 //!   shunt-thru. A 1-port S file without a method is a reflection measurement.
-//! - A sweep needs at least [`MIN_POINTS`] points.
+//! - Any number of points reads; a fit needs at least [`MIN_FIT_POINTS`], which the callers that fit
+//!   check ([`Sweep::check_fittable`]).
 
+pub mod assemble;
 pub mod convert;
 pub mod csv;
 pub mod fixture;
@@ -31,9 +38,10 @@ pub use uncertainty::NoiseModel;
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
 
-/// The fewest points a sweep may have: below this a fit of even the simplest model is not
-/// trustworthy (common practice, no source: several points per fitted parameter and per decade).
-pub const MIN_POINTS: usize = 20;
+/// The fewest points a fit needs: below this a fit of even the simplest model is not trustworthy
+/// (common practice, no source: several points per fitted parameter and per decade). The readers
+/// accept shorter files; the callers that fit check this ([`Sweep::check_fittable`]).
+pub const MIN_FIT_POINTS: usize = 20;
 
 /// How the instrument saw the part; decides how S-parameters become the DUT impedance.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -76,7 +84,7 @@ impl std::str::FromStr for Method {
     }
 }
 
-/// A measured impedance sweep of one part, on a strictly increasing, finite frequency grid.
+/// A measured impedance sweep of one part, on a strictly increasing, finite frequency grid above 0 Hz.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Sweep {
     pub frequency_hz: Vec<f64>,
@@ -86,12 +94,30 @@ pub struct Sweep {
     pub sigma_ohm: Vec<f64>,
     pub method: Method,
     pub z0_ohm: f64,
+    /// The DC resistance a 0 Hz row of the file gave, when it had a plausible one.
+    #[serde(default)]
+    pub dc_reading: Option<DcReading>,
+    /// What the reader did that the user should know: merged repeated frequencies, a 0 Hz row used
+    /// or left out. Each names the lines it concerns.
+    #[serde(default)]
+    pub warnings: Vec<String>,
+}
+
+/// A DC resistance read off a file's 0 Hz row: the real part of its impedance, with the uncertainty
+/// the method gives at that point.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct DcReading {
+    pub resistance_ohm: f64,
+    pub sigma_ohm: f64,
+    /// The 1-based file line of the 0 Hz row (the first one, when several were merged).
+    pub line: usize,
 }
 
 impl Sweep {
     /// Checks a sweep that did not come from the readers (e.g. deserialised): equal lengths, at least
-    /// [`MIN_POINTS`] points, a finite strictly increasing grid above 0 Hz, finite impedances and
-    /// positive finite uncertainties. The error's `line` is the 1-based point number.
+    /// one point, a finite strictly increasing grid above 0 Hz, finite impedances, positive finite
+    /// uncertainties, and a finite non-negative DC reading with a positive σ. The error's `line` is
+    /// the 1-based point number.
     pub fn validate(&self) -> Result<(), SweepError> {
         let n = self.frequency_hz.len();
         if self.impedance_ohm.len() != n || self.sigma_ohm.len() != n {
@@ -101,9 +127,11 @@ impl Sweep {
                 self.sigma_ohm.len()
             )));
         }
-        check_min_points(n)?;
+        if n == 0 {
+            return Err(SweepError::file("the sweep has no points"));
+        }
         let points: Vec<usize> = (1..=n).collect();
-        check_grid(&self.frequency_hz, &points)?;
+        check_grid(&self.frequency_hz, &points, Repeats::Refuse)?;
         for k in 0..n {
             let (f, z, s) = (
                 self.frequency_hz[k],
@@ -129,10 +157,33 @@ impl Sweep {
                 ));
             }
         }
+        if let Some(dc) = &self.dc_reading
+            && !(dc.resistance_ohm.is_finite()
+                && dc.resistance_ohm >= 0.0
+                && dc.sigma_ohm.is_finite()
+                && dc.sigma_ohm > 0.0)
+        {
+            return Err(SweepError::file(format!(
+                "the DC reading {} ± {} Ω must be a finite resistance ≥ 0 with a positive σ",
+                dc.resistance_ohm, dc.sigma_ohm
+            )));
+        }
         if !(self.z0_ohm.is_finite() && self.z0_ohm > 0.0) {
             return Err(SweepError::file(format!(
                 "z0_ohm {} must be finite and positive",
                 self.z0_ohm
+            )));
+        }
+        Ok(())
+    }
+
+    /// The check every caller that fits makes: at least [`MIN_FIT_POINTS`] points above 0 Hz. The
+    /// readers accept shorter files (they convert; they do not fit).
+    pub fn check_fittable(&self) -> Result<(), SweepError> {
+        let n = self.frequency_hz.len();
+        if n < MIN_FIT_POINTS {
+            return Err(SweepError::file(format!(
+                "the sweep has {n} points above 0 Hz; a fit needs at least {MIN_FIT_POINTS}"
             )));
         }
         Ok(())
@@ -313,14 +364,35 @@ pub fn decode(bytes: &[u8]) -> String {
     text.strip_prefix('\u{feff}').unwrap_or(&text).to_string()
 }
 
-/// Turns a parsed Touchstone network into the DUT impedance, by the method the options state.
+/// Turns a parsed Touchstone network into the DUT impedance, by the method the options state; rows
+/// that repeat a frequency are merged and a 0 Hz row becomes the DC reading ([`assemble`]).
 pub fn sweep_from_network(network: &Network, options: &ReadOptions) -> Result<Sweep, SweepError> {
     let noise = options.noise_model()?;
     let z0 = match options.checked_z0()? {
         Some(z0) => z0,
         None => network.common_reference_ohm()?,
     };
-    let mut points = Vec::with_capacity(network.frequency_hz.len());
+    let rows = network.frequency_hz.len();
+    let entries = match network.ports {
+        1 => 1,
+        2 => 4,
+        n => {
+            return Err(SweepError::file(format!(
+                "{n}-port files are not supported: an inductor is measured as a 1-port or a 2-port"
+            )));
+        }
+    };
+    if network.data.len() != rows
+        || network.line.len() != rows
+        || network.data.iter().any(|m| m.len() != entries)
+    {
+        return Err(SweepError::file(format!(
+            "the network's {rows} frequencies, {} lines and {} matrices of {entries} entries do not match",
+            network.line.len(),
+            network.data.len()
+        )));
+    }
+    let mut points = Vec::with_capacity(rows);
     let method = match (network.ports, network.parameter) {
         (1, Parameter::S) => {
             let method = options.method.unwrap_or(Method::Reflection);
@@ -335,28 +407,26 @@ pub fn sweep_from_network(network: &Network, options: &ReadOptions) -> Result<Sw
                     }
                 )));
             }
-            for k in 0..network.frequency_hz.len() {
-                let s = network.data[k][0];
+            for m in &network.data {
+                let s = m[0];
                 let z = convert::z_from_s(method, s, z0);
-                let sigma = noise.sigma_from_s(method, s, z, z0);
-                points.push((k, z, sigma));
+                points.push((z, noise.sigma_from_s(method, s, z, z0)));
             }
             method
         }
         (1, Parameter::Z | Parameter::Y) => {
             let method = options.method.unwrap_or(Method::Direct);
-            for k in 0..network.frequency_hz.len() {
-                let v = network.data[k][0];
+            for m in &network.data {
                 let z = if network.parameter == Parameter::Z {
-                    v
+                    m[0]
                 } else {
-                    v.inv()
+                    m[0].inv()
                 };
-                points.push((k, z, noise.sigma_from_z(method, z, z0)));
+                points.push((z, noise.sigma_from_z(method, z, z0)));
             }
             method
         }
-        (2, parameter) => {
+        (_, parameter) => {
             let method = match options.method {
                 Some(m @ (Method::SeriesThru | Method::ShuntThru)) => m,
                 Some(m) => {
@@ -372,8 +442,8 @@ pub fn sweep_from_network(network: &Network, options: &ReadOptions) -> Result<Sw
                     ));
                 }
             };
-            for k in 0..network.frequency_hz.len() {
-                let m = convert::mat2(&network.data[k]);
+            for m in &network.data {
+                let m = convert::mat2(m);
                 let s = match parameter {
                     Parameter::S => m,
                     Parameter::Z => convert::s_from_z_matrix(&m, z0),
@@ -381,95 +451,82 @@ pub fn sweep_from_network(network: &Network, options: &ReadOptions) -> Result<Sw
                 };
                 let s21 = s[1][0];
                 let z = convert::z_from_s(method, s21, z0);
-                points.push((k, z, noise.sigma_from_s(method, s21, z, z0)));
+                points.push((z, noise.sigma_from_s(method, s21, z, z0)));
             }
             method
         }
-        (n, _) => {
-            return Err(SweepError::file(format!(
-                "{n}-port files are not supported: an inductor is measured as a 1-port or a 2-port"
-            )));
-        }
     };
 
-    let mut sweep = Sweep {
-        frequency_hz: Vec::with_capacity(points.len()),
-        impedance_ohm: Vec::with_capacity(points.len()),
-        sigma_ohm: Vec::with_capacity(points.len()),
-        method,
-        z0_ohm: z0,
-    };
-    for (k, z, sigma) in points {
-        let f = network.frequency_hz[k];
-        if f == 0.0 {
-            continue;
-        }
-        let line = network.line[k];
-        if !(z.re.is_finite() && z.im.is_finite()) {
+    let mut rows = Vec::with_capacity(points.len());
+    for (k, (z, sigma)) in points.into_iter().enumerate() {
+        let (f, line) = (network.frequency_hz[k], network.line[k]);
+        // At 0 Hz a non-finite value is a reading to leave out, not a broken file (`assemble` says so).
+        if f != 0.0 && !(z.re.is_finite() && z.im.is_finite()) {
             return Err(SweepError::at(
                 line,
                 format!(
                     "the {} formula gives no finite impedance at {f} Hz (the part looks like {})",
                     method.as_str(),
-                    match method {
-                        Method::SeriesThru => "an open: S21 = 0",
-                        Method::ShuntThru => "an open: S21 = 1",
-                        _ => "an open: S11 = 1",
-                    }
+                    open_description(method)
                 ),
             ));
         }
-        sweep.frequency_hz.push(f);
-        sweep.impedance_ohm.push(z);
-        sweep.sigma_ohm.push(sigma);
+        rows.push(assemble::Row {
+            frequency_hz: f,
+            impedance_ohm: z,
+            sigma_ohm: sigma,
+            line,
+        });
     }
-    check_min_points(sweep.frequency_hz.len())?;
-    Ok(sweep)
+    assemble::assemble(rows, method, z0)
 }
 
-pub(crate) fn check_min_points(n: usize) -> Result<(), SweepError> {
-    if n == 0 {
-        return Err(SweepError::file("the file holds no data points"));
+/// What an infinite impedance means in each method's raw data.
+pub(crate) fn open_description(method: Method) -> &'static str {
+    match method {
+        Method::SeriesThru => "an open: S21 = 0",
+        Method::ShuntThru => "an open: S21 = 1",
+        Method::Reflection => "an open: S11 = 1",
+        Method::Direct => "an open: Y = 0",
     }
-    if n < MIN_POINTS {
-        return Err(SweepError::file(format!(
-            "the sweep has {n} points above 0 Hz; henrybook needs at least {MIN_POINTS}"
-        )));
-    }
-    Ok(())
 }
 
-/// Checks a frequency grid read from a file: finite, not negative, strictly increasing. `line[k]` is
-/// the file line of point `k`.
-pub(crate) fn check_grid(frequency_hz: &[f64], line: &[usize]) -> Result<(), SweepError> {
-    for k in 0..frequency_hz.len() {
-        let f = frequency_hz[k];
+/// Whether [`check_grid`] lets a frequency repeat the one before it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Repeats {
+    /// Files: a segmented sweep repeats its boundary frequency; [`assemble`] merges the rows.
+    Allow,
+    /// A finished [`Sweep`]: strictly increasing.
+    Refuse,
+}
+
+/// Checks a frequency grid: finite, not negative, increasing (equal neighbours only with
+/// [`Repeats::Allow`]). `line[k]` is the file line (or point number) of point `k`.
+pub(crate) fn check_grid(
+    frequency_hz: &[f64],
+    line: &[usize],
+    repeats: Repeats,
+) -> Result<(), SweepError> {
+    for (k, (&f, &ln)) in frequency_hz.iter().zip(line).enumerate() {
         if !f.is_finite() {
-            return Err(SweepError::at(
-                line[k],
-                format!("frequency {f} is not finite"),
-            ));
+            return Err(SweepError::at(ln, format!("frequency {f} is not finite")));
         }
         if f < 0.0 {
-            return Err(SweepError::at(
-                line[k],
-                format!("frequency {f} Hz is negative"),
-            ));
+            return Err(SweepError::at(ln, format!("frequency {f} Hz is negative")));
         }
         if k > 0 {
-            let prev = frequency_hz[k - 1];
-            if f == prev {
+            let (prev, prev_line) = (frequency_hz[k - 1], line[k - 1]);
+            if f == prev && repeats == Repeats::Refuse {
                 return Err(SweepError::at(
-                    line[k],
-                    format!("duplicate frequency {f} Hz (also on line {})", line[k - 1]),
+                    ln,
+                    format!("duplicate frequency {f} Hz (also on line {prev_line})"),
                 ));
             }
             if f < prev {
                 return Err(SweepError::at(
-                    line[k],
+                    ln,
                     format!(
-                        "frequencies must increase: {f} Hz follows {prev} Hz on line {}",
-                        line[k - 1]
+                        "frequencies must increase: {f} Hz follows {prev} Hz on line {prev_line}"
                     ),
                 ));
             }
@@ -504,14 +561,17 @@ mod tests {
 
     #[test]
     fn grid_errors_name_the_line() {
-        let err = check_grid(&[1.0, 2.0, 2.0], &[3, 4, 7]).unwrap_err();
+        check_grid(&[1.0, 2.0, 2.0], &[3, 4, 7], Repeats::Allow).unwrap();
+        let err = check_grid(&[1.0, 2.0, 2.0], &[3, 4, 7], Repeats::Refuse).unwrap_err();
         assert_eq!(err.line, Some(7));
         assert!(err.message.contains("duplicate"), "{err}");
-        let err = check_grid(&[1.0, 3.0, 2.0], &[3, 4, 5]).unwrap_err();
-        assert_eq!(err.line, Some(5));
-        assert!(err.message.contains("increase"), "{err}");
-        let err = check_grid(&[-1.0], &[9]).unwrap_err();
-        assert_eq!(err.to_string(), "line 9: frequency -1 Hz is negative");
+        for repeats in [Repeats::Allow, Repeats::Refuse] {
+            let err = check_grid(&[1.0, 3.0, 2.0], &[3, 4, 5], repeats).unwrap_err();
+            assert_eq!(err.line, Some(5));
+            assert!(err.message.contains("increase"), "{err}");
+            let err = check_grid(&[-1.0], &[9], repeats).unwrap_err();
+            assert_eq!(err.to_string(), "line 9: frequency -1 Hz is negative");
+        }
     }
 
     /// A synthetic 1 µH + 0.5 Ω part (invented), as Touchstone text in the given method.
@@ -563,9 +623,22 @@ mod tests {
             }
             assert!(sweep.sigma_ohm.iter().all(|s| s.is_finite() && *s > 0.0));
         }
+        // A short file reads (converting is not fitting); the fit's minimum is the callers' check.
         let (text, _) = synthetic(Method::Reflection, "# Hz S RI R 50", 19);
-        let err = read_sweep("a.s1p", text.as_bytes(), &ReadOptions::default()).unwrap_err();
+        let sweep = read_sweep("a.s1p", text.as_bytes(), &ReadOptions::default()).unwrap();
+        assert_eq!(sweep.frequency_hz.len(), 19);
+        let err = sweep.check_fittable().unwrap_err();
         assert!(err.message.contains("at least 20"), "{err}");
+        let (text, _) = synthetic(Method::Reflection, "# Hz S RI R 50", 20);
+        let sweep = read_sweep("a.s1p", text.as_bytes(), &ReadOptions::default()).unwrap();
+        sweep.check_fittable().unwrap();
+        let one = read_sweep(
+            "a.s1p",
+            b"# Hz S RI\n1e3 0.5 0.5\n",
+            &ReadOptions::default(),
+        )
+        .unwrap();
+        assert_eq!(one.frequency_hz, vec![1e3]);
     }
 
     #[test]
@@ -584,12 +657,27 @@ mod tests {
     }
 
     #[test]
-    fn a_0_hz_point_is_skipped_and_the_result_validates() {
+    fn a_0_hz_row_is_the_dc_reading_and_the_result_validates() {
         let (text, _) = synthetic(Method::Reflection, "# Hz S RI R 50", 25);
+        // S11 = −0.99 at DC: Z = 50·0.01/1.99 = 0.251256… Ω, a plausible winding resistance.
         let text = text.replacen("# Hz S RI R 50\n", "# Hz S RI R 50\n0 -0.99 0\n", 1);
         let sweep = read_sweep("a.s1p", text.as_bytes(), &ReadOptions::default()).unwrap();
         assert_eq!(sweep.frequency_hz.len(), 25);
         assert_eq!(sweep.frequency_hz[0], 1e5);
+        let dc = sweep.dc_reading.unwrap();
+        assert!((dc.resistance_ohm - 0.5 / 1.99).abs() < 1e-12, "{dc:?}");
+        assert_eq!(dc.line, 3);
+        let noise = NoiseModel::default();
+        let s = Complex64::new(-0.99, 0.0);
+        let want = noise.sigma_from_s(
+            Method::Reflection,
+            s,
+            convert::z_from_s(Method::Reflection, s, 50.0),
+            50.0,
+        );
+        assert_eq!(dc.sigma_ohm, want);
+        assert_eq!(sweep.warnings.len(), 1, "{:?}", sweep.warnings);
+        assert!(sweep.warnings[0].contains("line 3"), "{:?}", sweep.warnings);
         sweep.validate().unwrap();
         let mut bad = sweep.clone();
         bad.sigma_ohm[4] = 0.0;
@@ -597,9 +685,62 @@ mod tests {
         let mut bad = sweep.clone();
         bad.impedance_ohm.pop();
         assert!(bad.validate().is_err());
+        let mut bad = sweep.clone();
+        bad.dc_reading = Some(DcReading {
+            resistance_ohm: -1.0,
+            ..dc
+        });
+        assert!(bad.validate().is_err());
         let net = read_network("a.s1p", text.as_bytes()).unwrap();
         assert_eq!(net.frequency_hz.len(), 26);
         assert!(read_network("a.csv", b"frequency_hz,z_real_ohm,z_imag_ohm\n").is_err());
+
+        // An open at DC (S11 = 1) is no resistance: left out, and the warning says why.
+        let open = text.replacen("0 -0.99 0\n", "0 1 0\n", 1);
+        let sweep = read_sweep("a.s1p", open.as_bytes(), &ReadOptions::default()).unwrap();
+        assert_eq!(sweep.dc_reading, None);
+        assert!(
+            sweep.warnings[0].contains("left out"),
+            "{:?}",
+            sweep.warnings
+        );
+    }
+
+    #[test]
+    fn a_repeated_boundary_frequency_is_merged_and_a_step_back_is_an_error() {
+        let (text, _) = synthetic(Method::Reflection, "# Hz S RI R 50", 25);
+        let lines: Vec<&str> = text.lines().collect();
+        // Line 12 repeated right after itself, a little different (a second segment's first point).
+        let row: Vec<&str> = lines[11].split_whitespace().collect();
+        let again = format!(
+            "{} {} {}",
+            row[0],
+            row[1],
+            row[2].parse::<f64>().unwrap() + 1e-3
+        );
+        let mut merged = lines.clone();
+        merged.insert(12, &again);
+        let sweep = read_sweep(
+            "a.s1p",
+            merged.join("\n").as_bytes(),
+            &ReadOptions::default(),
+        )
+        .unwrap();
+        assert_eq!(sweep.frequency_hz.len(), 25);
+        assert_eq!(sweep.warnings.len(), 1);
+        assert!(
+            sweep.warnings[0].starts_with("lines 12 and 13 repeat"),
+            "{:?}",
+            sweep.warnings
+        );
+        sweep.validate().unwrap();
+
+        let mut back = lines.clone();
+        back.insert(12, lines[10]);
+        let err =
+            read_sweep("a.s1p", back.join("\n").as_bytes(), &ReadOptions::default()).unwrap_err();
+        assert_eq!(err.line, Some(13));
+        assert!(err.message.contains("must increase"), "{err}");
     }
 
     #[test]

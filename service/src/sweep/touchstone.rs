@@ -15,8 +15,15 @@
 //! - A frequency's numbers may continue on the next lines (version 2 allows it), but must end at the
 //!   end of a line; otherwise the column count is wrong and the error names the line.
 //! - Only 1- and 2-port data; G and H parameters and mixed-mode files are refused with a clear error.
+//!   `[Number of Ports]` is checked against 1 and 2 where it is read, before anything uses it.
+//! - After `[Network Data]` only `[Noise Data]` and `[End]` may follow (from memory: the
+//!   specification lists every other keyword before `[Network Data]`); any other keyword there is an
+//!   error with its line, because it would change how the data already read are laid out.
+//! - A frequency may repeat the one before it (segmented sweeps repeat their boundary frequency):
+//!   [`super::sweep_from_network`] merges such rows. A frequency that goes backwards is an error.
+//! - Nothing a file states sizes an allocation: counts are compared with the data, never reserved.
 
-use super::{SweepError, check_grid};
+use super::{Repeats, SweepError, check_grid};
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
 
@@ -65,6 +72,7 @@ pub struct Network {
     pub reference_ohm: Vec<f64>,
     /// `None` for 1-port files.
     pub two_port_order: Option<TwoPortOrder>,
+    /// Never decreasing; a segmented sweep may repeat a boundary frequency.
     pub frequency_hz: Vec<f64>,
     /// Per frequency the n×n matrix, row-major (`data[k][i·n + j]` is N(i+1)(j+1)), in physical units:
     /// S unitless, Z in ohm, Y in siemens (version 1 Z and Y already multiplied out of R).
@@ -205,6 +213,7 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
     let mut version = TouchstoneVersion::V1;
     let mut option: Option<OptionLine> = None;
     let mut ports: Option<usize> = None;
+    let mut ports_line: Option<usize> = None;
     let mut order: Option<TwoPortOrder> = None;
     let mut n_freq: Option<(usize, usize)> = None; // (count, line)
     let mut reference: Vec<f64> = Vec::new();
@@ -254,8 +263,15 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
                 }
                 continue;
             }
-            if state == State::Noise && key != "end" {
-                continue;
+            if saw_network_data && !(key == "end" || (key == "noise data" && state != State::Noise))
+            {
+                return Err(SweepError::at(
+                    ln,
+                    format!(
+                        "keyword [{name}] after [Network Data]: only [Noise Data] and [End] may \
+                         follow the network data"
+                    ),
+                ));
             }
             if key == "version" {
                 if !first_content {
@@ -287,6 +303,12 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
             collecting_reference = false;
             match key.as_str() {
                 "number of ports" => {
+                    if let Some(first) = ports_line {
+                        return Err(SweepError::at(
+                            ln,
+                            format!("[Number of Ports] appears twice (first on line {first})"),
+                        ));
+                    }
                     let n: usize = value.parse().map_err(|_| {
                         SweepError::at(
                             ln,
@@ -296,7 +318,17 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
                     if n == 0 {
                         return Err(SweepError::at(ln, "[Number of Ports] must be at least 1"));
                     }
+                    if n > 2 {
+                        return Err(SweepError::at(
+                            ln,
+                            format!(
+                                "{n}-port files are not supported: an inductor is measured as a \
+                                 1-port or a 2-port"
+                            ),
+                        ));
+                    }
                     ports = Some(n);
+                    ports_line = Some(ln);
                 }
                 "two-port data order" => {
                     order = Some(match value.to_ascii_lowercase().as_str() {
@@ -371,7 +403,12 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
                     state = State::NetworkData;
                     saw_network_data = true;
                 }
-                "noise data" => state = State::Noise,
+                "noise data" => {
+                    if !saw_network_data {
+                        return Err(SweepError::at(ln, "[Noise Data] before [Network Data]"));
+                    }
+                    state = State::Noise;
+                }
                 "end" => state = State::End,
                 _ => {
                     return Err(SweepError::at(ln, format!("unknown keyword [{name}]")));
@@ -430,9 +467,11 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
             if version == TouchstoneVersion::V1
                 && ports.or(ports_hint) == Some(2)
                 && values.len() == 5
-                && records
-                    .last()
-                    .is_some_and(|r| values[0] * opt.unit_hz <= r.values[0] * opt.unit_hz)
+                && let (Some(&f), Some(&last)) = (
+                    values.first(),
+                    records.last().and_then(|r| r.values.first()),
+                )
+                && f * opt.unit_hz <= last * opt.unit_hz
             {
                 state = State::Noise;
                 continue;
@@ -537,6 +576,11 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
         return Err(SweepError::file("the file holds no data points"));
     }
     let n = ports.unwrap_or(1);
+    if !(1..=2).contains(&n) {
+        return Err(SweepError::file(format!(
+            "{n}-port files are not supported: an inductor is measured as a 1-port or a 2-port"
+        )));
+    }
     if version == TouchstoneVersion::V2 && !reference.is_empty() {
         if reference.len() != n {
             return Err(SweepError::at(
@@ -589,9 +633,25 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
         (TouchstoneVersion::V1, Parameter::Y) => 1.0 / opt.r_ohm,
         _ => 1.0,
     };
+    let want = expected_len(Some(n), matrix);
     for rec in records {
-        let f = rec.values[0] * opt.unit_hz;
-        let pairs: Vec<Complex64> = rec.values[1..]
+        let wrong_count = || {
+            SweepError::at(
+                rec.start_line,
+                format!(
+                    "wrong column count: a {n}-port frequency needs {want} numbers, this one has {}",
+                    rec.values.len()
+                ),
+            )
+        };
+        let Some((&f_unit, numbers)) = rec.values.split_first() else {
+            return Err(wrong_count());
+        };
+        if numbers.len() % 2 != 0 {
+            return Err(wrong_count());
+        }
+        let f = f_unit * opt.unit_hz;
+        let pairs: Vec<Complex64> = numbers
             .chunks_exact(2)
             .map(|p| to_complex(opt.format, p[0], p[1]) * denorm)
             .collect();
@@ -604,23 +664,21 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
                 format!("value {bad} overflows (a dB magnitude too large?)"),
             ));
         }
-        let m = match (n, matrix) {
-            (1, _) => pairs,
-            (2, MatrixFormat::Full) => match order {
-                Some(TwoPortOrder::N12First) => pairs,
-                _ => vec![pairs[0], pairs[2], pairs[1], pairs[3]],
+        let m = match (n, matrix, pairs.as_slice()) {
+            (1, _, &[a]) => vec![a],
+            (2, MatrixFormat::Full, &[a, b, c, d]) => match order {
+                Some(TwoPortOrder::N12First) => vec![a, b, c, d],
+                _ => vec![a, c, b, d],
             },
             // Lower lists N11 N21 N22, upper N11 N12 N22: either way the off-diagonal is shared.
-            (2, MatrixFormat::Lower | MatrixFormat::Upper) => {
-                vec![pairs[0], pairs[1], pairs[1], pairs[2]]
-            }
-            _ => unreachable!("ports above 2 are refused earlier"),
+            (2, MatrixFormat::Lower | MatrixFormat::Upper, &[a, b, c]) => vec![a, b, b, c],
+            _ => return Err(wrong_count()),
         };
         net.frequency_hz.push(f);
         net.data.push(m);
         net.line.push(rec.start_line);
     }
-    check_grid(&net.frequency_hz, &net.line)?;
+    check_grid(&net.frequency_hz, &net.line, Repeats::Allow)?;
     Ok(net)
 }
 
@@ -739,13 +797,15 @@ fn frequency_text(f: f64, unit_hz: f64) -> String {
     format!("{v:e}")
 }
 
+/// Numbers per frequency: the frequency and one pair per matrix entry. Saturating, so a port count
+/// that slipped past the checks can never overflow (it then matches no line and is an error).
 fn expected_len(ports: Option<usize>, matrix: MatrixFormat) -> usize {
     let n = ports.unwrap_or(1);
     let entries = match matrix {
-        MatrixFormat::Full => n * n,
-        _ => n * (n + 1) / 2,
+        MatrixFormat::Full => n.saturating_mul(n),
+        _ => n.saturating_mul(n.saturating_add(1)) / 2,
     };
-    1 + 2 * entries
+    entries.saturating_mul(2).saturating_add(1)
 }
 
 fn incomplete(rec: &Record, want: usize) -> SweepError {
@@ -969,7 +1029,6 @@ mod tests {
         let cases: &[(&str, Option<usize>, usize, &str)] = &[
             ("# MHz S RI\n1 0 0\n2 0 0 0\n", Some(1), 3, "column count"),
             ("# MHz S RI\n1 0 0\n2 0\n", Some(1), 3, "column count"),
-            ("# MHz S RI\n1 0 0\n1 0 0\n", Some(1), 3, "duplicate"),
             ("# MHz S RI\n2 0 0\n1 0 0\n", Some(1), 3, "increase"),
             ("# MHz S RI\n1 nan 0\n", Some(1), 2, "not finite"),
             ("# MHz S RI\n1 inf 0\n", Some(1), 2, "not finite"),
@@ -1032,6 +1091,114 @@ mod tests {
                 }
             }
         }
+    }
+
+    const V2_ONE_PORT: &str = "[Version] 2.0\n# Hz S RI\n[Number of Ports] 1\n\
+                               [Number of Frequencies] 2\n[Network Data]\n1 0.1 0\n2 0.2 0\n";
+    const V2_LOWER: &str = "[Version] 2.0\n# Hz Z RI\n[Number of Ports] 2\n[Two-Port Data Order] 12_21\n\
+                            [Number of Frequencies] 1\n[Matrix Format] Lower\n[Network Data]\n\
+                            1 1 0 2 0 3 0\n";
+    const V2_NOISE: &str = "[Version] 2.0\n# GHz S MA\n[Number of Ports] 2\n[Two-Port Data Order] 21_12\n\
+                            [Number of Frequencies] 1\n[Network Data]\n1 1 0 0.1 0 0.1 0 1 0\n\
+                            [Noise Data]\n1 2.0 0.5 30 0.3\n";
+
+    /// `head` + `tail` on its own line, with and without a closing `[End]`: an error at `line` that
+    /// says the keyword came after the data.
+    fn refused_after_the_data(head: &str, tail: &str, line: usize) {
+        for end in ["", "[End]\n", "3 0.3 0\n[End]\n"] {
+            let text = format!("{head}{tail}\n{end}");
+            let err = parse_touchstone(&text, None).unwrap_err();
+            assert_eq!(err.line, Some(line), "{text:?}: {err}");
+            assert!(
+                err.message.contains("after [Network Data]"),
+                "{text:?}: {err}"
+            );
+        }
+    }
+
+    #[test]
+    fn crafted_keywords_after_the_data_no_longer_crash_the_reader() {
+        // Issue 16, each checked against the reader before the fix: a port count or layout changed
+        // after the data were read.
+        // 800 GB reference vector: "memory allocation of 800000000000 bytes failed", abort.
+        refused_after_the_data(V2_ONE_PORT, "[Number of Ports] 100000000000", 8);
+        // "capacity overflow" panic.
+        refused_after_the_data(V2_ONE_PORT, "[Number of Ports] 4611686018427387904", 8);
+        // "entered unreachable code: ports above 2 are refused earlier".
+        refused_after_the_data(V2_ONE_PORT, "[Number of Ports] 3", 8);
+        // "index out of bounds: the len is 1 but the index is 2" (1-port data laid out as 2-port).
+        refused_after_the_data(V2_ONE_PORT, "[Number of Ports] 2", 8);
+        refused_after_the_data(
+            V2_ONE_PORT,
+            "[Number of Ports] 2\n[Two-Port Data Order] 21_12",
+            8,
+        );
+        // "index out of bounds: the len is 3 but the index is 3" (lower-triangle data read as full).
+        let lower_21 = V2_LOWER.replace("12_21", "21_12");
+        refused_after_the_data(&lower_21, "[Matrix Format] Full", 9);
+    }
+
+    #[test]
+    fn keywords_after_the_data_are_errors_with_their_line() {
+        // These did not crash but changed the meaning of data already read (the first left a 2-port
+        // network with three entries) or were silently skipped.
+        refused_after_the_data(V2_LOWER, "[Matrix Format] Full", 9);
+        refused_after_the_data(V2_LOWER, "[Two-Port Data Order] 21_12", 9);
+        refused_after_the_data(V2_ONE_PORT, "[Reference] 75", 8);
+        refused_after_the_data(V2_ONE_PORT, "[Number of Frequencies] 3", 8);
+        refused_after_the_data(V2_ONE_PORT, "[Begin Information]\n[End Information]", 8);
+        refused_after_the_data(V2_ONE_PORT, "[Network Data]", 8);
+        refused_after_the_data(V2_NOISE, "[Number of Ports] 100000000000", 10);
+        refused_after_the_data(V2_NOISE, "[Matrix Format] Lower", 10);
+        refused_after_the_data(V2_NOISE, "[Noise Data]", 10);
+        // What the specification allows after the data still reads.
+        let net = parse_touchstone(&format!("{V2_NOISE}[End]\n"), None).unwrap();
+        assert_eq!(net.frequency_hz, vec![1e9]);
+        let err = parse_touchstone(
+            "[Version] 2.0\n# Hz S RI\n[Number of Ports] 1\n[Noise Data]\n",
+            None,
+        )
+        .unwrap_err();
+        assert_eq!(err.line, Some(4));
+        assert!(err.message.contains("before [Network Data]"), "{err}");
+    }
+
+    #[test]
+    fn the_port_count_is_checked_where_it_is_read() {
+        let head = "[Version] 2.0\n# Hz S RI\n";
+        for n in ["3", "100000000000", "18446744073709551615"] {
+            let err =
+                parse_touchstone(&format!("{head}[Number of Ports] {n}\n"), None).unwrap_err();
+            assert_eq!(err.line, Some(3), "{n}: {err}");
+            assert!(err.message.contains("not supported"), "{n}: {err}");
+        }
+        let err = parse_touchstone(
+            &format!("{head}[Number of Ports] 18446744073709551616\n"),
+            None,
+        )
+        .unwrap_err();
+        assert!(err.message.contains("not a whole number"), "{err}");
+        let err = parse_touchstone(
+            &format!("{head}[Number of Ports] 1\n[Number of Ports] 1\n"),
+            None,
+        )
+        .unwrap_err();
+        assert_eq!(err.line, Some(4));
+        assert!(err.message.contains("twice (first on line 3)"), "{err}");
+        // The file name's port count is checked before it sizes anything, too.
+        let err = parse_touchstone("# Hz S RI\n1 0 0\n", Some(usize::MAX)).unwrap_err();
+        assert_eq!(err.line, Some(2));
+        assert!(err.message.contains("not supported"), "{err}");
+    }
+
+    #[test]
+    fn a_repeated_frequency_reads_and_a_step_back_does_not() {
+        let net = parse_touchstone("# MHz S RI\n1 0 0\n2 0 0\n2 0.1 0\n3 0 0\n", Some(1)).unwrap();
+        assert_eq!(net.frequency_hz, vec![1e6, 2e6, 2e6, 3e6]);
+        assert_eq!(net.line, vec![2, 3, 4, 5]);
+        let err = parse_touchstone("# MHz S RI\n1 0 0\n2 0 0\n1.5 0 0\n", Some(1)).unwrap_err();
+        assert_eq!(err.line, Some(4));
+        assert!(err.message.contains("must increase"), "{err}");
     }
 
     #[test]
