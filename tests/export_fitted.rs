@@ -21,6 +21,7 @@ fn a_fitted_choke_exports_to_a_netlist_that_matches_the_fit() {
         cp_f: 4e-12,
         ls_h: 1e-9,
         sections: vec![],
+        core: None,
     };
     let frequency_hz: Vec<f64> = (0..401)
         .map(|i| 1e3 * (1e5f64).powf(i as f64 / 400.0))
@@ -96,6 +97,7 @@ fn vector_fitted_models_export_to_netlists_that_match_the_fit() {
         cp_f: 5e-12,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     };
     let notched = LumpedModel {
         sections: vec![Section {

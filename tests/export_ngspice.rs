@@ -170,6 +170,7 @@ fn choke() -> LumpedModel {
                 c_f: 50e-12,
             },
         ],
+        core: None,
     }
 }
 

@@ -55,6 +55,7 @@ fn lumped() -> impl Strategy<Value = LumpedModel> {
             cp_f: cp.unwrap_or(0.0),
             ls_h: ls.unwrap_or(0.0),
             sections,
+            core: None,
         })
 }
 

@@ -30,6 +30,7 @@ fn choke() -> LumpedModel {
         cp_f: 5e-12,
         ls_h: 2e-9,
         sections: vec![],
+        core: None,
     }
 }
 
@@ -42,6 +43,7 @@ fn rf_chip() -> LumpedModel {
         cp_f: 0.1e-12,
         ls_h: 0.3e-9,
         sections: vec![],
+        core: None,
     }
 }
 
@@ -116,6 +118,7 @@ fn cases() -> Vec<(&'static str, LumpedModel, [f64; 2])> {
             cp_f: 0.0,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         },
         b,
     ));

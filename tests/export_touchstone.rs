@@ -32,6 +32,7 @@ fn choke() -> LumpedModel {
             l_h: 40e-9,
             c_f: 1e-12,
         }],
+        core: None,
     }
 }
 
@@ -54,6 +55,7 @@ fn the_reflection_of_the_check_impedance_is_the_reference_value() {
         cp_f: 0.0,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     };
     let text = touchstone_1port(&model, &[1e6], 50.0, &ctx()).unwrap();
     assert!(text.contains("\n# HZ S RI R 50\n"), "{text}");

@@ -17,32 +17,38 @@ use henrybook::fit::lumped::NESTING_TOLERANCE;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit};
 use population::{METHODS, chi2, draw, found};
 
-/// Parses a candidate label such as `l0+rdc+cp+rp+ls+1s+1p` into (rp, k_ac, ls, series, parallel).
-fn elements(label: &str) -> (bool, bool, bool, usize, usize) {
-    let mut e = (false, false, false, 0, 0);
+/// The elements a candidate label such as `l0+rdc+cp+rp+ls+1s+1p` or `l0+rdc+cp+k_ac+cole_cole+air`
+/// names: (rp, k_ac, ls, series sections, parallel sections, core law and air share).
+fn elements(label: &str) -> (bool, bool, bool, usize, usize, String) {
+    let mut e = (false, false, false, 0, 0, String::new());
     for part in label.split('+') {
         match part {
             "rp" => e.0 = true,
             "k_ac" => e.1 = true,
             "ls" => e.2 = true,
+            "l0" | "rdc" | "cp" => {}
             p if p.ends_with('s') && p[..p.len() - 1].parse::<usize>().is_ok() => {
                 e.3 = p[..p.len() - 1].parse().unwrap()
             }
             p if p.ends_with('p') && p[..p.len() - 1].parse::<usize>().is_ok() => {
                 e.4 = p[..p.len() - 1].parse().unwrap()
             }
-            _ => {}
+            law => {
+                e.5.push('+');
+                e.5.push_str(law);
+            }
         }
     }
     e
 }
 
-/// Whether candidate `b` contains candidate `a` in the sense the fit enforces: every element of `a`
-/// is in `b`, and `a` has either the same sections or none (labels give section counts, not order,
-/// and these two cases need no order).
+/// Whether candidate `b` contains candidate `a` in the sense the fit enforces: the same core law (or
+/// none in both), every other element of `a` in `b`, and `a` with either the same sections or none
+/// (labels give section counts, not order, and these two cases need no order).
 fn contains(b: &str, a: &str) -> bool {
     let (x, y) = (elements(a), elements(b));
     a != b
+        && x.5 == y.5
         && (!x.0 || y.0)
         && (!x.1 || y.1)
         && (!x.2 || y.2)

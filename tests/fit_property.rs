@@ -57,6 +57,7 @@ fn case() -> impl Strategy<Value = Case> {
                         cp_f,
                         ls_h,
                         sections: vec![],
+                        core: None,
                     },
                     band,
                     seed,

@@ -107,6 +107,7 @@ pub fn power_choke() -> LumpedModel {
         cp_f: 4.2e-12,
         ls_h: 3e-9,
         sections: vec![],
+        core: None,
     }
 }
 
@@ -119,6 +120,7 @@ pub fn emi_choke() -> LumpedModel {
         cp_f: 9e-12,
         ls_h: 0.0,
         sections: vec![section(SectionKind::Series, 40.0, 3e-6, 2e-12)],
+        core: None,
     }
 }
 
@@ -131,6 +133,7 @@ pub fn rf_inductor() -> LumpedModel {
         cp_f: 0.12e-12,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     }
 }
 
@@ -143,6 +146,7 @@ pub fn buck_inductor() -> LumpedModel {
         cp_f: 6e-12,
         ls_h: 0.4e-9,
         sections: vec![],
+        core: None,
     }
 }
 
@@ -155,5 +159,6 @@ pub fn tank_choke() -> LumpedModel {
         cp_f: 5e-12,
         ls_h: 0.0,
         sections: vec![section(SectionKind::Parallel, 2.5e3, 1.5e-6, 1.5e-12)],
+        core: None,
     }
 }

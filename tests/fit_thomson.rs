@@ -17,6 +17,7 @@ fn ideal(rdc_ohm: f64) -> LumpedModel {
         cp_f: 5e-12,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     }
 }
 

@@ -27,6 +27,7 @@ fn notched() -> LumpedModel {
             l_h: 100e-9,
             c_f: 22.54e-12,
         }],
+        core: None,
     }
 }
 

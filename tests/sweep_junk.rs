@@ -21,6 +21,7 @@ fn model_z() -> (Vec<f64>, Vec<num_complex::Complex64>) {
         cp_f: 3e-12,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     };
     let f: Vec<f64> = (0..30).map(|k| 1e4 * 1.3f64.powi(k)).collect();
     let z = f.iter().map(|&f| m.impedance(f)).collect();

@@ -24,6 +24,7 @@ fn truth() -> (Vec<f64>, Vec<Complex64>) {
         cp_f: 6e-12,
         ls_h: 2e-9,
         sections: vec![],
+        core: None,
     };
     let f: Vec<f64> = (0..41).map(|k| 1e3 * 10f64.powf(k as f64 / 8.0)).collect();
     let z = f.iter().map(|&f| model.impedance(f)).collect();

@@ -56,6 +56,7 @@ pub fn choke() -> LumpedModel {
                 c_f: 1e-12,
             },
         ],
+        core: None,
     }
 }
 

@@ -28,6 +28,7 @@ fn default_sweep() -> Sweep {
             l_h: 50e-9,
             c_f: 2e-12,
         }],
+        core: None,
     };
     let n = 1601;
     let mut state = 0x2545_F491_4F6C_DD1Du64;

@@ -137,6 +137,7 @@ fn parts() -> Vec<PartSpec> {
         cp_f,
         ls_h: 1.5e-9,
         sections: vec![],
+        core: None,
     };
     let rf = |l0_h: f64, cp_f: f64| LumpedModel {
         l0_h,
@@ -146,6 +147,7 @@ fn parts() -> Vec<PartSpec> {
         cp_f,
         ls_h: 0.35e-9,
         sections: vec![],
+        core: None,
     };
     let pfc = |l0_h: f64| LumpedModel {
         l0_h,
@@ -155,6 +157,7 @@ fn parts() -> Vec<PartSpec> {
         cp_f: 18e-12,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     };
     vec![
         PartSpec {
@@ -226,6 +229,7 @@ fn parts() -> Vec<PartSpec> {
                     cp_f: 11.5e-12,
                     ls_h: 8e-9,
                     sections: vec![],
+                    core: None,
                 },
                 start_hz: 1e3,
                 stop_hz: 100e6,
@@ -311,6 +315,7 @@ fn parts() -> Vec<PartSpec> {
                         l_h: 3.4e-6,
                         c_f: 3e-12,
                     }],
+                    core: None,
                 },
                 start_hz: 10e3,
                 stop_hz: 120e6,

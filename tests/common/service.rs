@@ -252,6 +252,7 @@ pub fn simple_model(l0_h: f64, rdc_ohm: f64, cp_f: f64) -> LumpedModel {
         cp_f,
         ls_h: 0.0,
         sections: vec![],
+        core: None,
     }
 }
 

@@ -183,6 +183,7 @@ pub fn draw(seed: u64, index: usize) -> Part {
         cp_f,
         ls_h,
         sections: Vec::new(),
+        core: None,
     };
     let f_hi = (srf_hz * rng.log_between(1.0 / 3.0, 30.0)).min(3e9);
     let f_lo = (f_hi / 10f64.powf(rng.between(3.0, 6.0))).max(20.0);

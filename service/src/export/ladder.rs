@@ -283,6 +283,7 @@ mod tests {
             cp_f: 0.0,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         }
     }
 

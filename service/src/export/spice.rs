@@ -205,6 +205,13 @@ fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {
 }
 
 fn validate(m: &LumpedModel) -> Result<(), ExportError> {
+    if let Some(c) = &m.core {
+        return Err(ExportError::NotRealisable(format!(
+            "a {} core has no R–L–C realisation in this version; export the model's Touchstone or \
+             CSV curves, or fit the rational family",
+            c.law.as_str()
+        )));
+    }
     check_param("l0_h", m.l0_h, true)?;
     check_param("rdc_ohm", m.rdc_ohm, false)?;
     check_param("k_ac_ohm_per_sqrt_hz", m.k_ac_ohm_per_sqrt_hz, false)?;
@@ -250,6 +257,7 @@ mod tests {
                 l_h: 40e-9,
                 c_f: 1e-12,
             }],
+            core: None,
         }
     }
 

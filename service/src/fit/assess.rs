@@ -344,6 +344,8 @@ pub fn assess(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usize) -> A
         sigma_ohm: pick(&sweep.sigma_ohm),
         method: sweep.method,
         z0_ohm: sweep.z0_ohm,
+        dc_reading: None,
+        warnings: Vec::new(),
     };
     let mut out = assess_determined(model, &judged, parameters);
     let mut findings = undetermined_findings;
@@ -585,6 +587,7 @@ mod tests {
             cp_f: 4e-12,
             ls_h: 1e-9,
             sections: vec![],
+            core: None,
         }
     }
 
@@ -607,6 +610,8 @@ mod tests {
             sigma_ohm: s,
             method: Method::Direct,
             z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
         }
     }
 

@@ -350,6 +350,7 @@ pub(crate) mod tests {
                 l_h: 100e-9,
                 c_f: 22.54e-12,
             }],
+            core: None,
         }
     }
 
@@ -381,6 +382,7 @@ pub(crate) mod tests {
             cp_f,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         }
     }
 
@@ -440,6 +442,7 @@ pub(crate) mod tests {
             cp_f: 0.0,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         };
         let (q, f) = q_peak(&m, [1e3, 1e9]).unwrap();
         let f_expected = (0.01f64 * 1e4).sqrt() / 1e-6 / (2.0 * PI);

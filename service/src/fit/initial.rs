@@ -427,6 +427,7 @@ pub fn guess(data: &FitData) -> Guess {
             cp_f: cp,
             ls_h: ls,
             sections: Vec::new(),
+            core: None,
         },
         pairs,
         srf_hz: srf,

@@ -34,11 +34,11 @@ use super::lm::{LevenbergMarquardt, LmState, NO_PROGRESS};
 use super::plausible;
 use super::problem::{FitData, LumpedProblem, density_weights};
 use super::{
-    Candidate, Correlation, FitControl, FitError, FitOptions, FitReport, LumpedUncertainty,
-    SectionUncertainty, Termination,
+    Candidate, CoreUncertainty, Correlation, FitControl, FitError, FitOptions, FitReport,
+    LumpedUncertainty, SectionUncertainty, Termination,
 };
 use crate::model::lumped::{Param, Structure};
-use crate::model::{FittedModel, LumpedModel, SectionKind};
+use crate::model::{CoreDispersion, CoreLaw, FittedModel, LumpedModel, SectionKind};
 use crate::sweep::Sweep;
 use argmin::core::observers::{Observe, ObserverMode};
 use argmin::core::{Error, Executor, KV, State, TerminationReason};
@@ -122,12 +122,14 @@ pub fn prepare(sweep: &Sweep, options: &FitOptions) -> Result<FitData, FitError>
         }
     }
     options.validate()?;
-    let dcr_prior = match options.dcr {
-        Some(d) => {
+    // A four-wire DCR reading in the options wins; otherwise the sweep's own 0 Hz row, when it has one.
+    let dcr_prior = match (options.dcr, &sweep.dc_reading) {
+        (Some(d), _) => {
             let sigma = d.sigma_ohm.unwrap_or(0.005 * d.value_ohm + 1e-3);
             Some((d.value_ohm, sigma))
         }
-        None => None,
+        (None, Some(dc)) if dc.resistance_ohm > 0.0 => Some((dc.resistance_ohm, dc.sigma_ohm)),
+        _ => None,
     };
     // An inductor is inductive at the bottom of its band: the lowest point whose Im Z stands clear of
     // its noise (3σ, as the running median over five points) must be inductive. Points buried in noise
@@ -647,6 +649,16 @@ fn uncertainty_of(fit: &StructureFit, spread: &Spread) -> LumpedUncertainty {
                 c_f: get(Param::SectionC(i), sec.c_f),
             })
             .collect(),
+        // θ holds ln(1 − β) for β, so σ_β = (1 − β)·σ_θ.
+        core: m.core.map(|c| CoreUncertainty {
+            corner_hz: get(Param::CoreCorner, c.corner_hz),
+            alpha: get(Param::CoreAlpha, c.alpha),
+            beta: get(Param::CoreBeta, 1.0 - c.beta),
+            damping: get(Param::CoreDamping, c.damping),
+            air_fraction: get(Param::AirFraction, c.air_fraction),
+            resonance_hz: get(Param::CoreResonance, c.resonance_hz),
+            resonance_share: get(Param::CoreResonanceShare, c.resonance_share),
+        }),
     }
 }
 
@@ -825,6 +837,8 @@ pub fn fit_lumped(
         has_rp: true,
         has_k_ac: true,
         has_ls: true,
+        dispersion: None,
+        has_air: false,
         sections: Vec::new(),
     };
     let base_starts: Vec<(LumpedModel, bool)> = starts.iter().map(|m| (m.clone(), true)).collect();
@@ -885,6 +899,7 @@ pub fn fit_lumped(
         }
     }
     enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
+    dispersive_stage(&mut fits, &mut runner, sweep, residuals)?;
     let ran_out_of_time = runner.ran_out_of_time;
     let last_error = runner.last_error.take();
     if fits.is_empty() {
@@ -933,6 +948,11 @@ pub fn fit_lumped(
             rp_ohm: model.rp_ohm,
         },
     );
+    let mut derived = derived;
+    if let Some(c) = &model.core {
+        // The dispersive core's own corner (the resonance for the resonance law).
+        derived.core_corner_hz = Some(c.corner_hz);
+    }
     let mut quality = derived::quality(&model, sweep);
     quality.parameters = fit.structure.len();
     let termination = if ran_out_of_time && fit.termination != Termination::MaxIterations {
@@ -965,12 +985,220 @@ pub fn fit_lumped(
         derived,
         quality,
         assessment,
-        warnings: Vec::new(),
+        warnings: report_warnings(sweep, options),
         termination,
         iterations,
         candidates,
         band_hz,
     })
+}
+
+/// Whether the residuals of a model leave enough misfit that a broader core law is worth trying:
+/// poor, or a misfit or structure at three standard deviations (below the poor limits).
+fn leaves_misfit(a: &assess::Assessment) -> bool {
+    a.status == assess::FitStatus::Poor || a.overall_z > 3.0 || a.runs_z < -3.0
+}
+
+/// A core law started from a fitted single-pole (rp) model: the same corner, the law's extra
+/// parameters at `shape` (negligible when small).
+fn law_start(single_pole: &LumpedModel, law: CoreLaw, shape: f64, air: Option<f64>) -> LumpedModel {
+    let rp = single_pole.rp_ohm.unwrap_or(1e9);
+    let corner = rp / (2.0 * std::f64::consts::PI * single_pole.l0_h);
+    let mut m = single_pole.clone();
+    m.rp_ohm = None;
+    m.core = Some(match law {
+        CoreLaw::ColeCole | CoreLaw::HavriliakNegami => CoreDispersion {
+            law,
+            corner_hz: corner,
+            alpha: shape,
+            beta: if law == CoreLaw::HavriliakNegami {
+                1.0 - shape
+            } else {
+                1.0
+            },
+            damping: 0.0,
+            air_fraction: air.unwrap_or(0.0),
+            resonance_hz: 0.0,
+            resonance_share: 0.0,
+        },
+        // An overdamped resonance, x ≪ 1/ζ, is close to a single pole at f_r/(2ζ).
+        CoreLaw::Resonance => CoreDispersion {
+            law,
+            corner_hz: corner * 2.0 * shape,
+            alpha: 0.0,
+            beta: 1.0,
+            damping: shape,
+            air_fraction: air.unwrap_or(0.0),
+            resonance_hz: 0.0,
+            resonance_share: 0.0,
+        },
+        CoreLaw::ResonanceRelaxation => CoreDispersion {
+            law,
+            corner_hz: corner,
+            alpha: 0.3,
+            beta: 1.0,
+            damping: 0.5,
+            air_fraction: air.unwrap_or(0.0),
+            resonance_hz: corner * shape,
+            resonance_share: 1e-3,
+        },
+    });
+    m
+}
+
+/// Stage C of [`fit_lumped`]: when the best single-pole model leaves misfit, the core's permeability
+/// may fall with frequency more broadly than one pole: Cole–Cole, Havriliak–Negami (from the fitted
+/// Cole–Cole), the resonance law and resonance plus relaxation (from the fitted Cole–Cole) are fitted
+/// on the best structure with rp, the relaxation laws also with a non-dispersing share of L0; BIC
+/// then decides with the others. Each law is started from the single
+/// pole with its extra parameters negligible (so it ends no worse than the single pole) and from a
+/// moderate broadening.
+fn dispersive_stage(
+    fits: &mut Vec<StructureFit>,
+    runner: &mut Runner<'_>,
+    sweep: &Sweep,
+    residuals: f64,
+) -> Result<(), FitError> {
+    let Some(best) = (0..fits.len())
+        .filter(|&i| fits[i].structure.has_rp)
+        .min_by(|&a, &b| {
+            bic(fits[a].cost, residuals, fits[a].structure.len()).total_cmp(&bic(
+                fits[b].cost,
+                residuals,
+                fits[b].structure.len(),
+            ))
+        })
+    else {
+        return Ok(());
+    };
+    let single = fits[best].model();
+    if !leaves_misfit(&assess::assess(&single, sweep, fits[best].structure.len())) {
+        return Ok(());
+    }
+    let base_structure = fits[best].structure.clone();
+    let with = |law, air: bool| Structure {
+        has_rp: false,
+        dispersion: Some(law),
+        has_air: air,
+        ..base_structure.clone()
+    };
+    let cc = with(CoreLaw::ColeCole, false);
+    let Some(cc_fit) = runner.best_of(
+        &cc,
+        &[
+            (law_start(&single, CoreLaw::ColeCole, 1e-3, None), false),
+            (law_start(&single, CoreLaw::ColeCole, 0.3, None), true),
+        ],
+    )?
+    else {
+        return Ok(());
+    };
+    let cc_model = cc_fit.model();
+    fits.push(cc_fit);
+    let mut hn_start = cc_model.clone();
+    if let Some(c) = hn_start.core.as_mut() {
+        c.law = CoreLaw::HavriliakNegami;
+        c.beta = 1.0 - 1e-3;
+    }
+    let mut hn_wide = hn_start.clone();
+    if let Some(c) = hn_wide.core.as_mut() {
+        c.beta = 0.6;
+    }
+    let hn = with(CoreLaw::HavriliakNegami, false);
+    let hn_model = runner
+        .best_of(&hn, &[(hn_start, false), (hn_wide, true)])?
+        .map(|f| {
+            let m = f.model();
+            fits.push(f);
+            m
+        });
+    let res = with(CoreLaw::Resonance, false);
+    if let Some(f) = runner.best_of(
+        &res,
+        &[
+            (law_start(&single, CoreLaw::Resonance, 2.0, None), true),
+            (law_start(&single, CoreLaw::Resonance, 0.5, None), true),
+        ],
+    )? {
+        fits.push(f);
+    }
+    // A resonant mechanism beside the relaxing one, from the fitted Cole–Cole with a negligible share
+    // and with shares that matter at a few places below and at its corner.
+    let mixed_start = |share: f64, at: f64| {
+        let mut m = cc_model.clone();
+        if let Some(c) = m.core.as_mut() {
+            c.law = CoreLaw::ResonanceRelaxation;
+            c.resonance_hz = c.corner_hz * at;
+            c.damping = 0.5;
+            c.resonance_share = share;
+        }
+        m
+    };
+    let mixed = with(CoreLaw::ResonanceRelaxation, false);
+    let mixed_model = runner
+        .best_of(
+            &mixed,
+            &[
+                (mixed_start(1e-3, 0.5), false),
+                (mixed_start(0.3, 0.3), true),
+                (mixed_start(0.3, 1.0), true),
+            ],
+        )?
+        .map(|f| {
+            let m = f.model();
+            fits.push(f);
+            m
+        });
+    // The same laws with a non-dispersing share of L0, from the fitted law with the share small.
+    for (law, model) in [
+        (CoreLaw::ColeCole, Some(cc_model)),
+        (CoreLaw::HavriliakNegami, hn_model),
+        (CoreLaw::ResonanceRelaxation, mixed_model),
+    ] {
+        let Some(mut start) = model else { continue };
+        if let Some(c) = start.core.as_mut() {
+            c.air_fraction = 1e-4;
+        }
+        let mut wide = start.clone();
+        if let Some(c) = wide.core.as_mut() {
+            c.air_fraction = 0.1;
+        }
+        if let Some(f) = runner.best_of(&with(law, true), &[(start, false), (wide, true)])? {
+            fits.push(f);
+        }
+    }
+    Ok(())
+}
+
+/// The readers' warnings, and how the fit used the sweep's DC reading.
+pub fn report_warnings(sweep: &Sweep, options: &FitOptions) -> Vec<String> {
+    let mut out = sweep.warnings.clone();
+    if let Some(dc) = &sweep.dc_reading {
+        out.push(if options.family == super::ModelFamily::Rational {
+            format!(
+                "the 0 Hz row (line {}, {:.6} Ω) was not used: the rational family fits the sweep \
+                 alone",
+                dc.line, dc.resistance_ohm
+            )
+        } else if options.dcr.is_some() {
+            format!(
+                "the 0 Hz row (line {}, {:.6} Ω) was not used: the DCR reading in the fit options \
+                 takes its place",
+                dc.line, dc.resistance_ohm
+            )
+        } else if dc.resistance_ohm > 0.0 {
+            format!(
+                "the 0 Hz row (line {}) entered the fit as a DC resistance reading of {:.6} Ω ± {:.2e} Ω",
+                dc.line, dc.resistance_ohm, dc.sigma_ohm
+            )
+        } else {
+            format!(
+                "the 0 Hz row (line {}) reads 0 Ω: not used as a DC resistance reading",
+                dc.line
+            )
+        });
+    }
+    out
 }
 
 /// Step 4 of [`fit_lumped`]: from the smallest structures up, a candidate whose cost exceeds that of a
@@ -1011,7 +1239,7 @@ fn enforce_nesting(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::ImpedanceModel;
+    use crate::model::ImpedanceModel as _;
     use crate::sweep::Method;
     use num_complex::Complex64;
 
@@ -1065,6 +1293,7 @@ mod tests {
             cp_f: 4.2e-12,
             ls_h: 3e-9,
             sections: vec![],
+            core: None,
         }
     }
 
@@ -1098,6 +1327,7 @@ mod control_tests {
             cp_f: 3e-12,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         }
     }
 

@@ -113,6 +113,23 @@ pub struct LumpedUncertainty {
     pub cp_f: Option<f64>,
     pub ls_h: Option<f64>,
     pub sections: Vec<SectionUncertainty>,
+    /// The dispersive core's parameters, when the model has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub core: Option<CoreUncertainty>,
+}
+
+/// One-sigma uncertainty of a dispersive core's parameters (keys as in `CoreDispersion`).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+pub struct CoreUncertainty {
+    pub corner_hz: Option<f64>,
+    pub alpha: Option<f64>,
+    pub beta: Option<f64>,
+    pub damping: Option<f64>,
+    pub air_fraction: Option<f64>,
+    #[serde(default)]
+    pub resonance_hz: Option<f64>,
+    #[serde(default)]
+    pub resonance_share: Option<f64>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]

@@ -13,6 +13,8 @@
 //!   (else the part would not look inductive anywhere) and below 10⁶× the largest |Z|; the √f term below
 //!   100× the largest |Z| at the top of the band.
 //! - ls below half of L0.
+//! - A dispersive core: its corner within three decades of the sweep, broadening α and asymmetry
+//!   1 − β below 0.95, damping ζ from 0.001 to 1000, the non-dispersing share of L0 below 95 %.
 //! - Each extra section: its own resonance 1/(2π√(l·c)) at least 1.2× the L0–Cp resonance (so it
 //!   cannot carry the main resonance) and at most 100× the top of the sweep; its inductance below L0.
 
@@ -94,6 +96,76 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
             "ls below half of L0".into(),
         ),
         wall(&[(Ls, -1.0)], -(1e-16f64).ln(), "ls above 0.1 fH".into()),
+        wall(
+            &[(CoreCorner, 1.0)],
+            (1e3 * f_hi).ln(),
+            "the core's corner at most 1000× the top of the sweep".into(),
+        ),
+        wall(
+            &[(CoreCorner, -1.0)],
+            -(f_lo / 1e3).ln(),
+            "the core's corner at least 1/1000 of the bottom of the sweep".into(),
+        ),
+        wall(
+            &[(CoreAlpha, 1.0)],
+            (0.95f64).ln(),
+            "core broadening α below 0.95".into(),
+        ),
+        wall(
+            &[(CoreAlpha, -1.0)],
+            -(1e-9f64).ln(),
+            "core broadening α above 1e-9".into(),
+        ),
+        wall(
+            &[(CoreBeta, 1.0)],
+            (0.95f64).ln(),
+            "core asymmetry β above 0.05".into(),
+        ),
+        wall(
+            &[(CoreBeta, -1.0)],
+            -(1e-9f64).ln(),
+            "core asymmetry β below 1 − 1e-9".into(),
+        ),
+        wall(
+            &[(CoreDamping, 1.0)],
+            (1e3f64).ln(),
+            "core damping ζ below 1000".into(),
+        ),
+        wall(
+            &[(CoreDamping, -1.0)],
+            -(1e-3f64).ln(),
+            "core damping ζ above 0.001".into(),
+        ),
+        wall(
+            &[(CoreResonance, 1.0)],
+            (1e3 * f_hi).ln(),
+            "the core's resonance at most 1000× the top of the sweep".into(),
+        ),
+        wall(
+            &[(CoreResonance, -1.0)],
+            -(f_lo / 1e3).ln(),
+            "the core's resonance at least 1/1000 of the bottom of the sweep".into(),
+        ),
+        wall(
+            &[(CoreResonanceShare, 1.0)],
+            (0.95f64).ln(),
+            "the resonant share below 95 %".into(),
+        ),
+        wall(
+            &[(CoreResonanceShare, -1.0)],
+            -(1e-9f64).ln(),
+            "the resonant share above 1e-9".into(),
+        ),
+        wall(
+            &[(AirFraction, 1.0)],
+            (0.95f64).ln(),
+            "the non-dispersing share of L0 below 95 %".into(),
+        ),
+        wall(
+            &[(AirFraction, -1.0)],
+            -(1e-9f64).ln(),
+            "the non-dispersing share of L0 above 1e-9".into(),
+        ),
     ];
     for i in 0..max_sections {
         out.extend([

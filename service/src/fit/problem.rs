@@ -628,6 +628,7 @@ mod tests {
                 l_h: 300e-9,
                 c_f: 1.2e-12,
             }],
+            core: None,
         }
     }
 

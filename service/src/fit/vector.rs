@@ -1363,7 +1363,7 @@ pub fn fit_rational(
         derived,
         quality,
         assessment,
-        warnings: Vec::new(),
+        warnings: crate::fit::lumped::report_warnings(sweep, options),
         termination,
         iterations,
         candidates,

@@ -53,6 +53,13 @@ fn lumped_values(report: &FitReport) -> Named {
     if let Some(rp) = m.rp_ohm {
         v.push(("rp_ohm", rp, u.rp_ohm));
     }
+    if let Some(c) = &m.core {
+        let uc = u.core.unwrap_or_default();
+        v.push(("core.corner_hz", c.corner_hz, uc.corner_hz));
+        v.push(("core.alpha", c.alpha, uc.alpha));
+        v.push(("core.air_fraction", c.air_fraction, uc.air_fraction));
+        v.push(("core.resonance_hz", c.resonance_hz, uc.resonance_hz));
+    }
     v
 }
 

@@ -140,6 +140,7 @@ mod tests {
             cp_f: 5e-12,
             ls_h: 0.0,
             sections: vec![],
+            core: None,
         });
         let rows = evaluate(&m, 1e3, 1e7);
         assert_eq!(rows.first().unwrap().k, 20);

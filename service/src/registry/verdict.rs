@@ -196,6 +196,7 @@ pub(crate) mod tests {
                 cp_f,
                 ls_h: 0.0,
                 sections: vec![],
+                core: None,
             }),
             uncertainty: None,
             not_identifiable: vec![],
