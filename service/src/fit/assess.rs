@@ -18,6 +18,9 @@
 //! - **Structure.** The signs of the real and of the imaginary residuals along frequency, counted as
 //!   runs (Wald–Wolfowitz runs test): far fewer runs than chance (z < −[`RUNS_Z_LIMIT`]) means the
 //!   model leaves a systematic shape in the data even when the size of the misfit looks acceptable.
+//!   A shape counts only while the weighted RMS is at least [`RUNS_RMS_FLOOR`] of the noise: residuals
+//!   far below the noise (a noise-free synthetic sweep fitted to rounding) are within the uncertainty
+//!   whatever their signs do.
 //!
 //! Only points whose impedance the measurement determines are judged: where σ/|Z| exceeds
 //! [`DETERMINED_RELATIVE_SIGMA`] (for a network analyser, where the S-parameter lies within a tenth of
@@ -45,6 +48,10 @@ pub const SCATTER_TRUSTED_UP_TO: f64 = 1.2;
 pub const OVERALL_Z_LIMIT: f64 = 4.0;
 pub const BAND_Z_LIMIT: f64 = 5.0;
 pub const RUNS_Z_LIMIT: f64 = 4.5;
+/// Residual shape counts only when the residuals are not far below the noise: under half of it (weighted
+/// RMS relative to the noise scale) the model is within the uncertainty whatever the shape, as on a
+/// noise-free synthetic sweep, where the residuals are rounding and their signs run in long stretches.
+pub const RUNS_RMS_FLOOR: f64 = 0.5;
 pub const MIN_BAND_POINTS: usize = 12;
 /// Points with σ/|Z| above this are not judged (see the module notes).
 pub const DETERMINED_RELATIVE_SIGMA: f64 = 0.1;
@@ -465,7 +472,7 @@ fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usiz
         (Some(a), None) | (None, Some(a)) => a,
         (None, None) => 0.0,
     };
-    if runs < -RUNS_Z_LIMIT {
+    if runs < -RUNS_Z_LIMIT && rms / noise_scale >= RUNS_RMS_FLOOR {
         let longest = longest_run(&re).max(longest_run(&im));
         findings.push(Finding {
             kind: FindingKind::StructuredResiduals,

@@ -509,6 +509,26 @@ mod tests {
     }
 
     #[test]
+    fn a_short_heavily_damped_step_does_not_count_as_converged() {
+        // Start far off with heavy damping and a loose ftol: each early step is short and gains
+        // little, which used to stop the run at once; only a step near Gauss–Newton may stop it.
+        let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
+        let y = t.iter().map(|t| 3.0 * (-1.7 * t).exp()).collect();
+        let solver = LevenbergMarquardt::default()
+            .with_initial_damping(1e6)
+            .with_tolerances(1e-3, 1e-3);
+        let res = Executor::new(Dense(Decay { t, y }), solver)
+            .configure(|s| s.param(DVector::from_vec(vec![1.0, 0.1])).max_iters(500))
+            .run()
+            .unwrap();
+        let p = res.state().get_best_param().unwrap();
+        assert!(
+            (p[0] - 3.0).abs() < 1e-3 && (p[1] - 1.7).abs() < 1e-3,
+            "stopped early at {p}"
+        );
+    }
+
+    #[test]
     fn a_start_where_the_cost_is_not_finite_is_an_error_not_a_nan() {
         let t = vec![0.0, 1.0, 2.0];
         let y = vec![1.0, 0.5, 0.25];
