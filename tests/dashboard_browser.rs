@@ -265,6 +265,13 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
     assert!(int(&facts["engineer_approve_buttons"]) >= 1);
     assert_eq!(int(&facts["engineer_edit_limits"]), 1);
     assert_eq!(facts["api_approval_after"], "approved");
+    // The override box is offered exactly when the fit fails its limits or its model is poor.
+    assert_eq!(
+        int(&facts["approve_override_offered"]) == 1,
+        facts["approve_needs_override"] == true,
+        "{}",
+        facts["approve_override_offered"]
+    );
     assert!(
         strings(&facts["audit_after_approve"])
             .iter()

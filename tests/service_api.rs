@@ -631,6 +631,34 @@ async fn verdicts_drift_approvals_and_refits_are_recorded() {
             .filter(|c| c["limit"] != "dcr_max")
             .all(|c| c["pass"] == true)
     );
+    // Limits and decisions are objects of the documented shape: an array (which serde would read by
+    // position, and `[]` would clear every limit) and unknown fields are refused; nothing changes.
+    for body in [
+        json!({"limits": []}),
+        json!({"limits": [0.5]}),
+        json!([{"dcr_max_ohm": 0.06}]),
+        json!({"limits": {"dcr_max_ohm": 0.06}, "bogus": 1}),
+    ] {
+        let r = app
+            .put_json("/api/v1/parts/V-1/limits", &app.engineer, &body)
+            .await;
+        assert_eq!(r.status(), 422, "{body}");
+    }
+    for (route, body) in [
+        ("approve", json!([])),
+        ("reject", json!(["a reason"])),
+        ("refit", json!([{}])),
+        ("refit", json!({"option": {}})),
+    ] {
+        let r = app
+            .post_json(&format!("/api/v1/fits/{f1}/{route}"), &app.engineer, &body)
+            .await;
+        assert_eq!(r.status(), 422, "{route} {body}");
+    }
+    let part = app.get_json("/api/v1/parts/V-1", &app.reader).await;
+    assert_eq!(part["limits"]["dcr_max_ohm"], 0.04, "{part}");
+    assert_eq!(part["baseline_fit_id"], Value::Null);
+    assert_eq!(part["fits"].as_array().unwrap().len(), 2);
     // Relaxing the limit re-judges the stored fits.
     let r = app
         .put_json(

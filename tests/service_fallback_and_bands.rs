@@ -185,3 +185,143 @@ async fn a_band_query_sees_a_notch_between_grid_points() {
     assert!((z / want - 1.0).abs() < 0.005, "lowest |Z| {z} vs {want}");
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_poor_model_gets_no_verdict_and_is_approved_only_deliberately() {
+    // The part's limits would pass the notched sweep's lumped model (DCR 50 mΩ under 1 Ω), but with no
+    // sections allowed that model misses the notch: its quality is poor, so there is no verdict.
+    let app = spawn_app().await;
+    app.create_part("RQ-1", json!({"dcr_max_ohm": 1.0})).await;
+    let poor = upload(
+        &app,
+        "RQ-1",
+        "A",
+        synthetic_csv(&notched(), 1e4, 300e6, 801),
+        r#"{"max_sections": 0}"#,
+    )
+    .await;
+    let good = upload(
+        &app,
+        "RQ-1",
+        "B",
+        synthetic_csv(
+            &henrybook_tests::service::simple_model(10e-6, 0.05, 5e-12),
+            1e4,
+            1e8,
+            401,
+        ),
+        "{}",
+    )
+    .await;
+    // The poor lumped fit, its rational revision, and the good fit.
+    settled_fits(&app, "RQ-1", 3).await;
+    let first = app
+        .get_json(&format!("/api/v1/fits/{poor}"), &app.reader)
+        .await;
+    assert_eq!(first["quality"], "poor", "{first}");
+    assert_eq!(first["verdict"], "withheld");
+    assert_eq!(first["report"]["assessment"]["status"], "poor");
+    assert_eq!(
+        first["verdict_checks"][0]["pass"], true,
+        "the check itself is shown"
+    );
+    let note = first["verdict_note"].as_str().unwrap();
+    assert!(note.starts_with("no verdict:"), "{note}");
+    assert!(
+        first["quality_summary"]
+            .as_str()
+            .unwrap()
+            .contains("does not describe the data"),
+        "{first}"
+    );
+    let ok = app
+        .get_json(&format!("/api/v1/fits/{good}"), &app.reader)
+        .await;
+    assert_eq!(ok["quality"], "ok", "{ok}");
+    assert_eq!(ok["verdict"], "pass");
+    assert_eq!(ok["verdict_note"], Value::Null);
+    // The service says which family it tried next.
+    let part = app.get_json("/api/v1/parts/RQ-1", &app.reader).await;
+    assert!(
+        part["audit"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|a| a["actor"] == "henrybook (automatic)"
+                && a["reason"]
+                    .as_str()
+                    .unwrap_or("")
+                    .contains("rational family")),
+        "{part}"
+    );
+
+    // Approving the poor fit needs an override with a reason; blank reasons and unknown fields are
+    // refused; nothing is stored by a refused request.
+    let approve = |id: i64, body: Value| {
+        let app = &app;
+        async move {
+            app.post_json(&format!("/api/v1/fits/{id}/approve"), &app.engineer, &body)
+                .await
+        }
+    };
+    assert_eq!(
+        approve(poor, json!({"reason": "looks fine"}))
+            .await
+            .status(),
+        409
+    );
+    assert_eq!(approve(poor, json!({"override": true})).await.status(), 422);
+    assert_eq!(approve(poor, json!({"reason": "   "})).await.status(), 422);
+    assert_eq!(
+        approve(poor, json!({"reason": "x", "force": true}))
+            .await
+            .status(),
+        422
+    );
+    let part = app.get_json("/api/v1/parts/RQ-1", &app.reader).await;
+    assert_eq!(part["baseline_fit_id"], Value::Null, "{part}");
+    let r = approve(
+        poor,
+        json!({"reason": "notch is outside the band we use", "override": true}),
+    )
+    .await;
+    assert_eq!(r.status(), 200, "{}", r.text().await.unwrap());
+    let part = app.get_json("/api/v1/parts/RQ-1", &app.reader).await;
+    assert_eq!(part["baseline_fit_id"], poor);
+    let entry = part["audit"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|a| a["action"] == "fit-approved-override")
+        .expect("the override is audited");
+    assert!(
+        entry["reason"]
+            .as_str()
+            .unwrap()
+            .contains("approved although its model does not describe the data"),
+        "{entry}"
+    );
+    // The baseline cannot be approved again; approving another fit moves the baseline, and only one
+    // fit of the part stays approved.
+    assert_eq!(approve(poor, json!({})).await.status(), 409);
+    assert_eq!(approve(good, json!({})).await.status(), 200);
+    let part = app.get_json("/api/v1/parts/RQ-1", &app.reader).await;
+    assert_eq!(part["baseline_fit_id"], good);
+    let approved: Vec<i64> = part["fits"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|f| f["approval"] == "approved")
+        .map(|f| f["fit_id"].as_i64().unwrap())
+        .collect();
+    assert_eq!(approved, [good], "{part}");
+    assert!(
+        part["audit"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|a| a["action"] == "approval-superseded" && a["fit_id"] == poor),
+        "{part}"
+    );
+    app.stop().await;
+}

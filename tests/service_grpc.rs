@@ -48,11 +48,12 @@ fn summary_json(s: &proto::FitSummary) -> Value {
         "part_number": s.part_number, "lot": s.lot, "status": state_name(s.state),
         "progress": s.progress, "error": s.error, "created_at": s.created_at,
         "started_at": s.started_at, "finished_at": s.finished_at, "srf_hz": s.srf_hz,
-        "verdict": s.verdict, "approval": s.approval,
+        "verdict": s.verdict, "approval": s.approval, "quality": s.quality,
     }))
 }
 
-const SUMMARY_KEYS: [&str; 14] = [
+const SUMMARY_KEYS: [&str; 15] = [
+    "quality",
     "fit_id",
     "revision",
     "sweep_id",
@@ -231,6 +232,7 @@ fn assert_result_equals_detail(r: &proto::FitResult, http: &Value) {
             "method": r.method, "z0_ohm": r.z0_ohm, "dcr_ohm": r.dcr_ohm,
             "temperature_c": r.temperature_c, "operator": r.operator, "file_name": r.file_name,
             "sha256": r.sha256, "engine_version": r.engine_version, "attempts": r.attempts,
+            "verdict_note": r.verdict_note, "quality_summary": r.quality_summary,
         })),
         pick(
             http,
@@ -243,7 +245,9 @@ fn assert_result_equals_detail(r: &proto::FitResult, http: &Value) {
                 "file_name",
                 "sha256",
                 "engine_version",
-                "attempts"
+                "attempts",
+                "verdict_note",
+                "quality_summary"
             ]
         ),
         "fit {id}: metadata"
@@ -448,12 +452,13 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
     assert!(again.duplicate);
     assert_eq!(again.fit_id, d);
 
-    // Approve G-A lot 1 so that drift and approved-only answers are not empty.
+    // Approve G-A lot 1 so that drift and approved-only answers are not empty (it fails the DCR limit,
+    // so the approval is a deliberate override).
     let r = app
         .post_json(
             &format!("/api/v1/fits/{a1}/approve"),
             &app.engineer,
-            &json!({"reason": "first lot"}),
+            &json!({"reason": "first lot", "override": true}),
         )
         .await;
     assert_eq!(r.status(), 200);

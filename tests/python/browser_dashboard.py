@@ -262,8 +262,14 @@ def main():
         reason = "demo lot matches the datasheet; browser test approval"
         page.click(f'tr[data-fit-id="{fit_id}"] [data-do="approve"]')
         page.fill(f'tr[data-fit-id="{fit_id}"] input[name="reason"]', reason)
+        # A fit that fails its limits or whose model is poor is approved only with the override box.
+        override = page.locator(f'tr[data-fit-id="{fit_id}"] input[name="override"]')
+        facts["approve_override_offered"] = override.count()
+        facts["approve_needs_override"] = details[fit_id].get("verdict") == "fail" or details[fit_id].get("quality") == "poor"
+        if override.count():
+            override.check()
         page.click(f'tr[data-fit-id="{fit_id}"] form[data-action="approve"] button[type=submit]')
-        page.wait_for_selector(f'#audit tr[data-action*="approve"] >> text="{reason}"', timeout=15000)
+        page.wait_for_selector(f'#audit tr[data-action*="approve"]:has-text("{reason}")', timeout=15000)
         facts["audit_after_approve"] = page.eval_on_selector_all("#audit tbody tr", "els => els.map(e => e.textContent)")
         facts["api_approval_after"] = call("GET", f"/fits/{fit_id}", READER)[1]["approval"]
         page.screenshot(path=f"{SHOTS}/part-engineer.png", full_page=True)

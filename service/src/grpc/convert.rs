@@ -49,6 +49,7 @@ pub fn fit_summary(s: FitSummary) -> proto::FitSummary {
         srf_hz: s.srf_hz,
         verdict: s.verdict,
         approval: s.approval,
+        quality: s.quality,
     }
 }
 
@@ -289,6 +290,8 @@ pub fn fit_result(
         sha256: detail.sha256,
         engine_version: detail.engine_version,
         attempts: detail.attempts,
+        verdict_note: detail.verdict_note,
+        quality_summary: detail.quality_summary,
         ..Default::default()
     };
     if let Some(r) = report {

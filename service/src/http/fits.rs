@@ -156,6 +156,7 @@ async fn retry(
 }
 
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
 pub struct RefitRequest {
     /// The engine's FitOptions (every field optional); null or absent for the defaults.
     #[schema(value_type = Option<Object>)]
@@ -200,10 +201,15 @@ async fn refit(
 }
 
 #[derive(Debug, Default, Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
 pub struct Decision {
-    /// Why: optional for an approval, required for a rejection.
+    /// Why: optional for a plain approval, required for a rejection and for an approval with
+    /// `override`. A reason of only spaces is refused.
     #[serde(default)]
     pub reason: Option<String>,
+    /// Approve a fit that fails its limits or whose model is poor anyway (the audit records it).
+    #[serde(default, rename = "override")]
+    pub overriding: bool,
 }
 
 fn decision(body: &Bytes) -> ApiResult<Decision> {
@@ -214,10 +220,12 @@ fn decision(body: &Bytes) -> ApiResult<Decision> {
     }
 }
 
-/// Approve a succeeded fit: it becomes the part's baseline.
+/// Approve a succeeded fit: it becomes the part's baseline (the previous baseline stops being approved).
+/// A fit that fails its limits or whose model is poor needs `override: true` and a reason.
 #[utoipa::path(post, path = "/api/v1/fits/{fit_id}/approve", tag = "fits", params(("fit_id" = i64, Path)),
     request_body = Decision,
-    responses((status = 200, body = FitDetail), (status = 409, body = super::problem::ProblemBody)),
+    responses((status = 200, body = FitDetail), (status = 409, body = super::problem::ProblemBody),
+        (status = 422, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn approve(
     Engineer(caller): Engineer,
@@ -226,10 +234,17 @@ async fn approve(
     body: Bytes,
 ) -> ApiResult<Json<FitDetail>> {
     let d = decision(&body)?;
-    let reason = d.reason.as_deref().map(str::trim).filter(|r| !r.is_empty());
+    let reason = match d.reason.as_deref().map(str::trim) {
+        Some("") => {
+            return Err(Problem::validation(
+                "the reason is empty: give one or leave it out",
+            ));
+        }
+        r => r,
+    };
     state
         .store
-        .approve_fit(&caller.label, fit_id, reason)
+        .approve_fit(&caller.label, fit_id, reason, d.overriding)
         .await?;
     Ok(Json(state.store.fit_detail(fit_id).await?))
 }

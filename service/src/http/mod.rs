@@ -1,4 +1,4 @@
-//! The HTTP API (CONTRACT.md): one file per resource, merged here; bearer-token roles in [`auth`];
+//! The HTTP API (api/openapi.yaml): one file per resource, merged here; bearer-token roles in [`auth`];
 //! every error a problem+json body ([`problem`]); request ids, tracing, latency metrics, timeouts and
 //! an explicit body limit around everything. The OpenAPI description is generated from the same
 //! routes ([`openapi`]).

@@ -94,7 +94,7 @@ pub struct NewPart {
     pub part_number: String,
     #[serde(default)]
     pub description: String,
-    #[serde(default)]
+    #[serde(default, deserialize_with = "super::problem::object_only")]
     pub limits: Limits,
 }
 
@@ -141,6 +141,7 @@ async fn get_part(
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct LimitsUpdate {
+    #[serde(deserialize_with = "super::problem::object_only")]
     pub limits: Limits,
 }
 

@@ -151,8 +151,43 @@ impl IntoResponse for Problem {
 pub type ApiResult<T> = Result<T, Problem>;
 
 /// Parses a JSON body into `T`, as a validation problem when it does not fit.
+/// For a field of a request body that is itself an object: refuses an array (serde would take a
+/// struct's fields from it by position, and `[]` would clear them all).
+pub fn object_only<'de, D, T>(deserializer: D) -> Result<T, D::Error>
+where
+    D: serde::Deserializer<'de>,
+    T: serde::de::DeserializeOwned,
+{
+    use serde::Deserialize as _;
+    use serde::de::Error as _;
+    let value = serde_json::Value::deserialize(deserializer)?;
+    if !value.is_object() {
+        return Err(D::Error::custom(format!(
+            "expected an object with named fields, found {}",
+            match value {
+                serde_json::Value::Array(_) => "an array",
+                serde_json::Value::Null => "null",
+                serde_json::Value::Bool(_) => "a boolean",
+                serde_json::Value::Number(_) => "a number",
+                serde_json::Value::String(_) => "a string",
+                serde_json::Value::Object(_) => "an object",
+            }
+        )));
+    }
+    serde_json::from_value(value).map_err(D::Error::custom)
+}
+
+/// A request body: a JSON object of the documented shape (never an array, whose items serde would
+/// otherwise take by position).
 pub fn json_body<T: serde::de::DeserializeOwned>(bytes: &[u8]) -> ApiResult<T> {
-    serde_json::from_slice(bytes).map_err(|e| Problem::validation(format!("the JSON body: {e}")))
+    let value: serde_json::Value = serde_json::from_slice(bytes)
+        .map_err(|e| Problem::validation(format!("the JSON body: {e}")))?;
+    if !value.is_object() {
+        return Err(Problem::validation(
+            "the JSON body must be an object with the documented fields",
+        ));
+    }
+    serde_json::from_value(value).map_err(|e| Problem::validation(format!("the JSON body: {e}")))
 }
 
 /// Turns axum's own rejections (and anything else non-JSON on an error path) into problems.

@@ -333,9 +333,10 @@ impl RunningJob {
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "succeeded").increment(1);
                 let rms_weighted = report.quality.rms_weighted;
+                let poor = report.assessment.status == crate::fit::FitStatus::Poor;
                 let written = self.write_report(&claim, report).await;
                 if let (Ok(true), Some((limit, options_json, key))) = (&written, &follow_up)
-                    && rms_weighted > *limit
+                    && (poor || rms_weighted > *limit)
                 {
                     match self
                         .store
@@ -346,6 +347,7 @@ impl RunningJob {
                             tracing::info!(
                                 next_fit_id = next,
                                 rms_weighted,
+                                poor,
                                 "the lumped model misses the data: a rational fit is queued"
                             );
                             self.handle.wake();
@@ -423,7 +425,8 @@ impl RunningJob {
 pub const AUTOMATIC_ACTOR: &str = "henrybook (automatic)";
 
 /// For a lumped fit whose options ask for a rational fallback: the weighted-RMS limit, and the options
-/// (JSON) and duplicate key of the rational fit to queue when the lumped result exceeds it.
+/// (JSON) and duplicate key of the rational fit to queue when the lumped result exceeds it or is
+/// assessed `poor` (the model does not describe the data within their uncertainty).
 fn rational_follow_up(input: &crate::store::sweeps::JobInput) -> Option<(f64, String, String)> {
     let mut options: FitOptions = serde_json::from_str(&input.options_json).ok()?;
     let limit = options.rational_fallback_above_rms_weighted?;

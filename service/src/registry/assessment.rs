@@ -47,7 +47,7 @@ pub fn judge(
         .zip(baseline)
         .map(|(id, b)| drift::drift(id, b, report));
     Ok(Judgement {
-        verdict: verdict::overall(&checks),
+        verdict: verdict::overall(&checks, report),
         verdict_json: serde_json::to_string(&checks)?,
         drift_json: drift.as_ref().map(serde_json::to_string).transpose()?,
         drift_max_sigma: drift.as_ref().and_then(|d| d.max_sigma()),

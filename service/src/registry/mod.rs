@@ -7,7 +7,7 @@
 //! - [`drift`]: a fit report against the approved baseline (per parameter, in percent and in σ).
 //! - [`figures`]: the figures copied from a report into indexed columns.
 //! - [`assessment`]: all of the above for one succeeded fit, computed before the store writes it.
-//! - [`wire`]: the JSON shapes of the HTTP API (CONTRACT.md), shared by the store and the routes.
+//! - [`wire`]: the JSON shapes of the HTTP API (api/openapi.yaml), shared by the store and the routes.
 //!
 //! Everything numeric here is a comparison of figures the engine produced, or an evaluation of the
 //! engine's own fitted model ([`crate::model::ImpedanceModel`]); nothing is estimated here.

@@ -168,8 +168,35 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
 }
 
 /// The overall verdict: `None` without limits, else pass only when every check passes.
-pub fn overall(checks: &[Check]) -> Option<&'static str> {
-    if checks.is_empty() {
+/// What the API reports as the verdict of a poor model on a part with limits.
+pub const WITHHELD: &str = "withheld";
+
+/// Whether the report's model describes its data within their uncertainty: only such a model is
+/// judged against limits.
+pub fn trustworthy(report: &FitReport) -> bool {
+    report.assessment.status == crate::fit::FitStatus::Ok
+}
+
+/// The stored quality of a report: `ok` or `poor`.
+pub fn quality(report: &FitReport) -> &'static str {
+    report.assessment.status.as_str()
+}
+
+/// Why a poor model gets no verdict, for the fit's detail (None for a trustworthy model).
+pub fn withheld_note(report: &FitReport) -> Option<String> {
+    (!trustworthy(report)).then(|| {
+        format!(
+            "no verdict: {}; the limits are shown against the model for reference only",
+            report.assessment.summary
+        )
+    })
+}
+
+/// The overall verdict: none without limits; none for a model that does not describe its data (a
+/// pass or a fail from it would be a guess; the API says `withheld`); otherwise pass when every check
+/// passes.
+pub fn overall(checks: &[Check], report: &FitReport) -> Option<&'static str> {
+    if checks.is_empty() || !trustworthy(report) {
         None
     } else if checks.iter().all(|c| c.pass) {
         Some("pass")
@@ -220,7 +247,7 @@ pub(crate) mod tests {
     fn no_limits_give_no_verdict() {
         let r = report(1e-5, 0.05, 5e-12, Some(2.25e7));
         assert!(checks(&Limits::default(), &r).is_empty());
-        assert_eq!(overall(&[]), None);
+        assert_eq!(overall(&[], &r), None);
     }
 
     #[test]
@@ -247,7 +274,27 @@ pub(crate) mod tests {
         assert!((c[1].margin.unwrap() + 0.01).abs() < 1e-12);
         assert_eq!(c[2].limit, "srf_min");
         assert!(c[2].pass);
-        assert_eq!(overall(&c), Some("fail"));
+        assert_eq!(overall(&c, &r), Some("fail"));
+    }
+
+    #[test]
+    fn a_poor_model_gets_no_verdict_and_says_why() {
+        // The same checks on a model that does not describe its data: neither pass nor fail.
+        let mut r = report(1e-5, 0.03, 5e-12, Some(22.5079e6));
+        let limits = Limits {
+            dcr_max_ohm: Some(0.04),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        assert!(c[0].pass);
+        assert_eq!(overall(&c, &r), Some("pass"));
+        assert_eq!(withheld_note(&r), None);
+        r.assessment.status = crate::fit::FitStatus::Poor;
+        r.assessment.summary = "the model misses the data between 1 MHz and 3 MHz".into();
+        assert_eq!(overall(&c, &r), None);
+        assert_eq!(quality(&r), "poor");
+        let note = withheld_note(&r).unwrap();
+        assert!(note.contains("between 1 MHz and 3 MHz"), "{note}");
     }
 
     #[test]

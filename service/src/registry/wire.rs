@@ -1,4 +1,4 @@
-//! The JSON shapes of the HTTP API (see CONTRACT.md). Numbers carry SI units in their names;
+//! The JSON shapes of the HTTP API (described in api/openapi.yaml). Numbers carry SI units in their names;
 //! timestamps are RFC 3339 text.
 
 use super::drift::Drift;
@@ -55,8 +55,12 @@ pub struct FitSummary {
     pub started_at: Option<String>,
     pub finished_at: Option<String>,
     pub srf_hz: Option<f64>,
-    /// `pass`, `fail`, or null (no limits, or not succeeded).
+    /// `pass`, `fail`, `withheld` (the part has limits but the model does not describe its data, so
+    /// it is not judged), or null (no limits, or not succeeded).
     pub verdict: Option<String>,
+    /// `ok` (the model describes the data within their uncertainty) or `poor` (it does not: see the
+    /// report's `assessment` for what misses, where and by how much); null until succeeded.
+    pub quality: Option<String>,
     /// `approved`, `rejected`, or null.
     pub approval: Option<String>,
 }
@@ -69,6 +73,11 @@ pub struct FitDetail {
     #[schema(value_type = Option<Object>)]
     pub report: Option<serde_json::Value>,
     pub verdict_checks: Vec<Check>,
+    /// Why the verdict is withheld (a poor model), or null.
+    pub verdict_note: Option<String>,
+    /// The assessment's one-line summary of how well the model describes the data, or null until
+    /// succeeded.
+    pub quality_summary: Option<String>,
     pub drift: Option<Drift>,
     /// The fit options the engine ran with.
     #[schema(value_type = Object)]

@@ -1,5 +1,5 @@
 //! `henrybook demo`: the service on a local demo database, loaded through its own HTTP API with the
-//! invented parts and sweeps of `demo-data/manifest.json` (format in CONTRACT.md), then a table of
+//! invented parts and sweeps of `demo-data/manifest.json` (described in demo-data/README.md), then a table of
 //! results and verdicts, a band query, and tokens to explore with; serves until Ctrl-C.
 //! Running it again reuses the database: existing parts and identical uploads are recognised.
 

@@ -9,7 +9,8 @@ use sqlx::{QueryBuilder, Row, Sqlite, SqliteConnection};
 
 const SUMMARY_SELECT: &str = "SELECT f.fit_id, f.revision, f.sweep_id, p.part_number, l.lot, \
     f.status, f.progress, f.error, f.created_at_ms, f.started_at_ms, f.finished_at_ms, f.srf_hz, \
-    f.verdict, f.approval FROM fits f JOIN parts p ON p.part_id = f.part_id \
+    CASE WHEN f.quality = 'poor' AND f.verdict_json IS NOT NULL AND f.verdict_json <> '[]' \
+    THEN 'withheld' ELSE f.verdict END AS verdict, f.quality, f.approval FROM fits f JOIN parts p ON p.part_id = f.part_id \
     JOIN lots l ON l.lot_id = f.lot_id";
 
 fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
@@ -33,6 +34,7 @@ fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
             .map(rfc3339),
         srf_hz: row.try_get("srf_hz")?,
         verdict: row.try_get("verdict")?,
+        quality: row.try_get("quality")?,
         approval: row.try_get("approval")?,
     })
 }
@@ -97,10 +99,22 @@ impl Store {
             Some(t) => Some(serde_json::from_str(&t)?),
             None => None,
         };
+        let report = parse("report_json")?;
+        let parsed: Option<FitReport> = report
+            .as_ref()
+            .map(|v| serde_json::from_value(v.clone()))
+            .transpose()?;
+        let verdict_note = parsed
+            .as_ref()
+            .filter(|_| !verdict_checks.is_empty())
+            .and_then(crate::registry::verdict::withheld_note);
+        let quality_summary = parsed.as_ref().map(|r| r.assessment.summary.clone());
         Ok(FitDetail {
             summary,
-            report: parse("report_json")?,
+            report,
             verdict_checks,
+            verdict_note,
+            quality_summary,
             drift,
             options: parse("options_json")?.unwrap_or(serde_json::Value::Null),
             method: row.try_get("method")?,
@@ -330,7 +344,11 @@ impl Store {
             Some(part_id),
             Some(new_id),
             Some(&format!(
-                "revision {revision} of the sweep fitted by fit {fit_id}"
+                "revision {revision} of the sweep fitted by fit {fit_id} ({} family)",
+                serde_json::from_str::<serde_json::Value>(options_json)
+                    .ok()
+                    .and_then(|o| o["family"].as_str().map(str::to_owned))
+                    .unwrap_or_else(|| "lumped".into())
             )),
         )
         .await?;
@@ -339,12 +357,15 @@ impl Store {
     }
 
     /// Approves a succeeded fit: it becomes the part's baseline, and every other fit of the part is
-    /// compared against it.
+    /// compared against it. The fit approved before it stops being approved (the audit keeps both).
+    /// A fit that failed its limits, or whose model is poor (verdict withheld), is approved only with
+    /// `overriding` and a reason, and the audit says so. The current baseline cannot be approved again.
     pub async fn approve_fit(
         &self,
         actor: &str,
         fit_id: i64,
         reason: Option<&str>,
+        overriding: bool,
     ) -> StoreResult<()> {
         let mut tx = self.write().await?;
         let (status, part_id) = status_of(&mut tx, fit_id).await?;
@@ -352,6 +373,67 @@ impl Store {
             return Err(StoreError::Conflict(format!(
                 "fit {fit_id} is {status}: only succeeded fits can be approved"
             )));
+        }
+        let (approval, verdict, quality, baseline): (
+            Option<String>,
+            Option<String>,
+            Option<String>,
+            Option<i64>,
+        ) = sqlx::query_as(
+            "SELECT f.approval, f.verdict, f.quality, p.baseline_fit_id FROM fits f \
+             JOIN parts p ON p.part_id = f.part_id WHERE f.fit_id = ?",
+        )
+        .bind(fit_id)
+        .fetch_one(&mut *tx)
+        .await?;
+        if approval.as_deref() == Some("approved") && baseline == Some(fit_id) {
+            return Err(StoreError::Conflict(format!(
+                "fit {fit_id} is already the part's approved baseline"
+            )));
+        }
+        let concern = if quality.as_deref() == Some("poor") {
+            Some("its model does not describe the data within their uncertainty (quality poor)")
+        } else if verdict.as_deref() == Some("fail") {
+            Some("it fails the part's limits")
+        } else {
+            None
+        };
+        let action = match (concern, overriding) {
+            (Some(why), false) => {
+                return Err(StoreError::Conflict(format!(
+                    "fit {fit_id} cannot be approved as it stands: {why}; approving it anyway needs \
+                     `override: true` and a reason"
+                )));
+            }
+            (Some(_), true) if reason.is_none() => {
+                return Err(StoreError::Invalid(
+                    "an approval with `override: true` needs a reason".into(),
+                ));
+            }
+            (Some(_), true) => "fit-approved-override",
+            (None, _) => "fit-approved",
+        };
+        let superseded: Vec<i64> = sqlx::query_scalar(
+            "SELECT fit_id FROM fits WHERE part_id = ? AND approval = 'approved' AND fit_id <> ?",
+        )
+        .bind(part_id)
+        .bind(fit_id)
+        .fetch_all(&mut *tx)
+        .await?;
+        for old in superseded {
+            sqlx::query("UPDATE fits SET approval = NULL WHERE fit_id = ?")
+                .bind(old)
+                .execute(&mut *tx)
+                .await?;
+            audit(
+                &mut tx,
+                actor,
+                "approval-superseded",
+                Some(part_id),
+                Some(old),
+                Some(&format!("fit {fit_id} approved as the new baseline")),
+            )
+            .await?;
         }
         sqlx::query("UPDATE fits SET approval = 'approved' WHERE fit_id = ?")
             .bind(fit_id)
@@ -362,13 +444,20 @@ impl Store {
             .bind(part_id)
             .execute(&mut *tx)
             .await?;
+        let recorded = match concern {
+            Some(why) => Some(format!(
+                "{} (approved although {why})",
+                reason.unwrap_or_default()
+            )),
+            None => reason.map(str::to_owned),
+        };
         audit(
             &mut tx,
             actor,
-            "fit-approved",
+            action,
             Some(part_id),
             Some(fit_id),
-            reason,
+            recorded.as_deref(),
         )
         .await?;
         refresh_drift(&mut tx, part_id).await?;

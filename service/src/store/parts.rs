@@ -193,7 +193,7 @@ impl Store {
             let report: FitReport = serde_json::from_str(&json)?;
             let checks = verdict::checks(limits, &report);
             sqlx::query("UPDATE fits SET verdict = ?, verdict_json = ? WHERE fit_id = ?")
-                .bind(verdict::overall(&checks))
+                .bind(verdict::overall(&checks, &report))
                 .bind(serde_json::to_string(&checks)?)
                 .bind(fit_id)
                 .execute(&mut *tx)

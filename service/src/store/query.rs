@@ -191,7 +191,9 @@ impl Store {
         // one fetches the page's rows.
         let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
             "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
-             lf.verdict AS latest_verdict, lf.drift_max_sigma AS drift_max_sigma, \
+             CASE WHEN lf.quality = 'poor' AND lf.verdict_json IS NOT NULL \
+             AND lf.verdict_json <> '[]' THEN 'withheld' ELSE lf.verdict END AS latest_verdict, \
+             lf.drift_max_sigma AS drift_max_sigma, \
              f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, \
              k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
              SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",

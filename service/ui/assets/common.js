@@ -27,6 +27,7 @@ export function fitRows(fit, { showPart = true, extra } = {}) {
     h("td", { class: "num" }, fit.revision ?? "—"),
     statusCell(fit),
     h("td", { class: "num" }, fit.srf_hz != null ? si(fit.srf_hz, "Hz") : "—"),
+    h("td", {}, fit.quality ? badge(fit.quality, `q-${fit.quality}`) : badge(null)),
     h("td", {}, badge(fit.verdict)),
     h("td", {}, badge(fit.approval)),
     h("td", { title: time(fit.created_at) }, ago(fit.created_at)),
@@ -41,7 +42,7 @@ export function fitTableHead({ showPart = true, extra = false } = {}) {
   return h(
     "thead",
     {},
-    h("tr", {}, ["Fit", showPart ? "Part" : null, "Lot", "Rev.", "Status", "SRF", "Verdict", "Approval", "Created", extra ? "" : null].filter((x) => x !== null).map((t) => h("th", {}, t))),
+    h("tr", {}, ["Fit", showPart ? "Part" : null, "Lot", "Rev.", "Status", "SRF", "Model", "Verdict", "Approval", "Created", extra ? "" : null].filter((x) => x !== null).map((t) => h("th", {}, t))),
   );
 }
 
@@ -52,6 +53,9 @@ export function approvalControls(fit, onDone) {
   const open = (action) => {
     const reason = h("input", { type: "text", name: "reason", required: true, placeholder: action === "approve" ? "why this model is fit for design use" : "what is wrong with it", class: "reason" });
     const msg = h("div", { class: "form-status" });
+    // A failing fit, or one whose model is poor, is approved only deliberately: say why it needs it.
+    const concern = fit.quality === "poor" ? "its model does not describe the data within their uncertainty" : fit.verdict === "fail" ? "it fails the part's limits" : null;
+    const override = action === "approve" && concern ? h("input", { type: "checkbox", name: "override" }) : null;
     const form = h(
       "form",
       {
@@ -61,7 +65,9 @@ export function approvalControls(fit, onDone) {
           ev.preventDefault();
           msg.replaceChildren("Saving…");
           try {
-            const detail = await api.post(`/fits/${encodeURIComponent(fit.fit_id)}/${action}`, { reason: reason.value.trim() });
+            const body = { reason: reason.value.trim() };
+            if (override?.checked) body.override = true;
+            const detail = await api.post(`/fits/${encodeURIComponent(fit.fit_id)}/${action}`, body);
             onDone?.(detail);
           } catch (e) {
             msg.replaceChildren(errorBox(e, `Could not ${action}`));
@@ -69,6 +75,7 @@ export function approvalControls(fit, onDone) {
         },
       },
       reason,
+      override ? h("label", { class: "override" }, override, ` Approve although ${concern}`) : null,
       h("button", { type: "submit", class: action === "approve" ? "primary" : "danger" }, action === "approve" ? "Confirm approval" : "Confirm rejection"),
       h("button", { type: "button", class: "link", onclick: () => box.replaceChildren(...buttons()) }, "cancel"),
       msg,

@@ -62,14 +62,25 @@ export function badge(value, kind = value) {
   return h("span", { class: `badge b-${kind}`, "data-badge": value }, value);
 }
 
-export function safetyNote() {
+export function safetyNote({ analyserPorts = false } = {}) {
   return h(
     "aside",
     { class: "safety", role: "note", "data-safety": "" },
     h("strong", {}, "Measuring power components safely. "),
-    "De-energise the circuit and discharge every capacitor before you connect or remove a part; chokes taken " +
-      "from live equipment can hold dangerous charge and test fixtures may carry high voltage. Keep bias and " +
-      "test voltages within the analyser's and fixture's ratings, and follow your local electrical codes and " +
-      "licensed practice — this dashboard does not replace them.",
+    "A choke taken out of a circuit stores no energy; the hazards are around it. The equipment it came from can " +
+      "hold a dangerous charge in its capacitors after power-off: de-energise it, discharge and verify before you " +
+      "touch a part. Interrupting current through an inductor (pulling a lead from a biased or in-circuit part) " +
+      "drives a voltage kick that can arc and shock: bring bias and supplies to zero first. DC-bias and " +
+      "high-voltage test sets can deliver a dangerous shock. Follow your local electrical codes and licensed " +
+      "practice — this dashboard does not replace them.",
+    analyserPorts
+      ? h(
+          "p",
+          { "data-analyser-caution": "" },
+          h("strong", {}, "Analyser ports. "),
+          "The analyser's ports take only small DC and RF levels: use a DC block or bias tee rated for any bias, " +
+            "and never connect a part that is still in a powered circuit.",
+        )
+      : null,
   );
 }

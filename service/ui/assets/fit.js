@@ -63,7 +63,7 @@ function header(d) {
   return h(
     "div",
     { class: "fit-head" },
-    h("div", { class: "page-head" }, h("h1", {}, `Fit #${d.fit_id}`), badge(d.status), badge(d.verdict), badge(d.approval)),
+    h("div", { class: "page-head" }, h("h1", {}, `Fit #${d.fit_id}`), badge(d.status), d.quality ? badge(d.quality === "poor" ? "poor model" : "model ok", `q-${d.quality}`) : null, badge(d.verdict), badge(d.approval)),
     h(
       "dl",
       { class: "facts" },
@@ -401,6 +401,7 @@ function verdictTable(d) {
     "section",
     { class: "card", id: "verdict" },
     h("h2", {}, "Verdict ", badge(d.verdict)),
+    d.verdict_note ? h("p", { class: "withheld", "data-verdict-note": "" }, d.verdict_note) : null,
     checks.length
       ? h(
           "table",
@@ -442,6 +443,7 @@ function qualityCard(r) {
     "section",
     { class: "card", id: "quality" },
     h("h2", {}, "Fit quality and model selection"),
+    assessmentBlock(r),
     h(
       "table",
       { class: "kv" },
@@ -455,5 +457,20 @@ function qualityCard(r) {
     (r.candidates ?? []).length
       ? h("table", { class: "small-table", id: "candidates" }, h("thead", {}, h("tr", {}, ["Candidate", "Parameters", "Cost", "BIC", ""].map((t) => h("th", {}, t)))), h("tbody", {}, r.candidates.map((c) => h("tr", { class: c.chosen ? "chosen" : "" }, h("td", {}, h("code", {}, c.label)), h("td", { class: "num" }, c.parameters), h("td", { class: "num" }, plain(c.cost, 4)), h("td", { class: "num" }, plain(c.bic, 5)), h("td", {}, c.chosen ? "chosen" : "")))))
       : null,
+  );
+}
+
+// Does the model describe the data within their uncertainty? The engine's own assessment, with what
+// misses, where and by how much; then what the readers or the fit changed that the user should know.
+function assessmentBlock(r) {
+  const a = r.assessment ?? {};
+  const findings = a.findings ?? [];
+  const warnings = r.warnings ?? [];
+  return h(
+    "div",
+    { class: `assessment q-${a.status ?? "ok"}`, "data-assessment": a.status ?? "ok" },
+    h("p", {}, badge(a.status === "poor" ? "poor model" : "model ok", `q-${a.status ?? "ok"}`), " ", a.summary ?? ""),
+    findings.length ? h("ul", { class: "findings" }, findings.map((f) => h("li", { "data-finding": f.kind }, f.message))) : null,
+    warnings.length ? h("div", {}, h("h3", {}, "Notes on the data"), h("ul", { class: "warnings" }, warnings.map((w) => h("li", {}, w)))) : null,
   );
 }

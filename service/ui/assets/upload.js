@@ -14,7 +14,7 @@ const METHODS = [
 ];
 
 export function renderUpload(main, _params, search) {
-  main.append(h("div", { class: "page-head" }, h("h1", {}, "Upload a sweep")), safetyNote());
+  main.append(h("div", { class: "page-head" }, h("h1", {}, "Upload a sweep")), safetyNote({ analyserPorts: true }));
   if (!auth.atLeast("inspector")) {
     main.append(h("section", { class: "card", id: "upload-refused" }, h("p", {}, `Signed in as ${auth.role() ?? "reader"}: uploading sweeps needs the inspector role or higher.`)));
     return;
