@@ -188,6 +188,25 @@ fn ngspice_reproduces_lumped_netlists() {
                 ..choke()
             },
         ),
+        (
+            // A broadened relaxation core with a resonance share (invented values): Debye cells and
+            // a tank in the netlist.
+            "choke with a resonance-relaxation core",
+            LumpedModel {
+                rp_ohm: None,
+                core: Some(henrybook::model::CoreDispersion {
+                    law: henrybook::model::CoreLaw::ResonanceRelaxation,
+                    corner_hz: 2e6,
+                    alpha: 0.35,
+                    beta: 1.0,
+                    damping: 0.5,
+                    air_fraction: 0.1,
+                    resonance_hz: 30e6,
+                    resonance_share: 0.25,
+                }),
+                ..choke()
+            },
+        ),
     ] {
         let text = lumped_subcircuit(&m, &ctx).unwrap();
         check(name, &text, &m, band, m.rdc_ohm);

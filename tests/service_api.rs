@@ -655,6 +655,16 @@ async fn verdicts_drift_approvals_and_refits_are_recorded() {
             .await;
         assert_eq!(r.status(), 422, "{route} {body}");
     }
+    // Unknown query parameters are refused, not ignored (an ignored filter answers every part).
+    for path in [
+        "/api/v1/parts?bogus=1",
+        "/api/v1/parts?srf_min=1e6",
+        "/api/v1/fits?bogus=1",
+    ] {
+        let r = app.get(path, &app.reader).await;
+        assert_eq!(r.status(), 400, "{path}");
+        assert!(r.text().await.unwrap().contains("unknown field"), "{path}");
+    }
     let part = app.get_json("/api/v1/parts/V-1", &app.reader).await;
     assert_eq!(part["limits"]["dcr_max_ohm"], 0.04, "{part}");
     assert_eq!(part["baseline_fit_id"], Value::Null);

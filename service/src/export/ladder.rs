@@ -58,16 +58,37 @@ impl SkinLadder {
     }
 }
 
-/// The lumped model's impedance with the winding's `k·√f` replaced by `skin` and L0 by `l0_h`.
+/// The lumped model's impedance with the winding's `k·√f` replaced by `skin` and L0 by `l0_h` (the
+/// core's impedance, dispersive or not, is proportional to L0).
 pub(crate) fn impedance_with_skin(
     m: &LumpedModel,
     skin: Complex64,
     l0_h: f64,
     frequency_hz: f64,
 ) -> Complex64 {
+    let core = if m.core.is_some() {
+        m.core_impedance(frequency_hz) * (l0_h / m.l0_h)
+    } else {
+        let jwl0 = Complex64::new(0.0, 2.0 * PI * frequency_hz * l0_h);
+        match m.rp_ohm {
+            Some(rp) => jwl0 * rp / (jwl0 + rp),
+            None => jwl0,
+        }
+    };
+    impedance_with_core(m, skin, core, frequency_hz)
+}
+
+/// The lumped model's impedance with the winding's `k·√f` replaced by `skin` and its core branch
+/// (L0 with Rp or the dispersive law) by `core`.
+pub(crate) fn impedance_with_core(
+    m: &LumpedModel,
+    skin: Complex64,
+    core: Complex64,
+    frequency_hz: f64,
+) -> Complex64 {
     let w = 2.0 * PI * frequency_hz;
     let jw = Complex64::new(0.0, w);
-    let (_, y_par) = winding_and_admittance(m, skin, l0_h, frequency_hz);
+    let (_, y_par) = winding_and_admittance(m, skin, core, frequency_hz);
     let mut z_tanks = Complex64::new(0.0, 0.0);
     for s in &m.sections {
         if s.kind == SectionKind::Parallel {
@@ -85,15 +106,10 @@ pub(crate) fn impedance_with_skin(
 fn winding_and_admittance(
     m: &LumpedModel,
     skin: Complex64,
-    l0_h: f64,
+    core: Complex64,
     frequency_hz: f64,
 ) -> (Complex64, Complex64) {
     let jw = Complex64::new(0.0, 2.0 * PI * frequency_hz);
-    let jwl0 = jw * l0_h;
-    let core = match m.rp_ohm {
-        Some(rp) => jwl0 * rp / (jwl0 + rp),
-        None => jwl0,
-    };
     let zw = m.rdc_ohm + skin + core;
     let mut y = zw.inv() + jw * m.cp_f;
     for s in &m.sections {
@@ -129,14 +145,16 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         let jw = Complex64::new(0.0, w);
         let target = k * f.sqrt();
         let model_skin = Complex64::new(target, 0.0);
-        let (zw, y_par) = winding_and_admittance(m, model_skin, m.l0_h, f);
+        let (zw, y_par) = winding_and_admittance(m, model_skin, m.core_impedance(f), f);
         let z_model = impedance_with_skin(m, model_skin, m.l0_h, f);
         // First-order effect of a change in Zw on Z, relative to |Z|.
         let g = (zw * zw * y_par * y_par).inv() / z_model;
-        // ∂Zw/∂L0 (a reduction of L0 by δ changes Zw by −δ·∂Zw/∂L0).
-        let dcore = match m.rp_ohm {
-            Some(rp) => jw * rp * rp / ((jw * m.l0_h + rp) * (jw * m.l0_h + rp)),
-            None => jw,
+        // ∂Zw/∂L0 (a reduction of L0 by δ changes Zw by −δ·∂Zw/∂L0); a dispersive core's impedance
+        // is proportional to L0.
+        let dcore = match (&m.core, m.rp_ohm) {
+            (Some(_), _) => m.core_impedance(f) / m.l0_h,
+            (None, Some(rp)) => jw * rp * rp / ((jw * m.l0_h + rp) * (jw * m.l0_h + rp)),
+            (None, None) => jw,
         };
         let r_scale = m.rdc_ohm + target;
         for (j, &fc) in corners_hz.iter().enumerate() {

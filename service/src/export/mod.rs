@@ -6,10 +6,12 @@
 //! exponent notation (`2.5e-6`, never a scale suffix, which avoids the `M` = milli trap).
 //!
 //! - [`spice::lumped_subcircuit`]: the lumped model, with the √f skin-effect resistance synthesised by
-//!   [`ladder`] as a passive R‖L ladder.
+//!   [`ladder`] as a passive R‖L ladder and a dispersive core by [`core`] as R‖L relaxation cells and
+//!   an L‖C‖R tank.
 //! - [`foster::rational_subcircuit`]: the rational model as a series Foster realisation.
 //! - [`touchstone::touchstone_1port`] and [`csv::impedance_csv`]: the model evaluated on a grid.
 
+pub mod core;
 pub mod csv;
 pub mod foster;
 pub mod ladder;

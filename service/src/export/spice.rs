@@ -1,12 +1,14 @@
 //! The lumped model as a SPICE subcircuit of R, L and C only.
 //!
 //! Topology (pin 1 to pin 2): `ls_h` in series; then, between two nodes, the winding branch
-//! (`rdc_ohm`, the skin-effect ladder, `l0_h` ‖ `rp_ohm` in series) in parallel with `cp_f` and every
+//! (`rdc_ohm`, the skin-effect ladder, `l0_h` ‖ `rp_ohm` or the dispersive core's cells, in series) in
+//! parallel with `cp_f` and every
 //! series-kind section (an R–L–C chain); then every parallel-kind section (an R‖L‖C tank) in series.
 //! Absent elements (zero `ls_h`, `cp_f`, `rdc_ohm`, `k_ac_ohm_per_sqrt_hz`, a zero section R or L,
 //! `rp_ohm = None`) are left out rather than written as zero-valued elements.
 
-use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_skin};
+use super::core::{CoreCell, CoreNetwork, design_core};
+use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_core};
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
 use super::{
     ExportContext, ExportError, check_param, grid_with_resonances, provenance_lines, resonances,
@@ -29,11 +31,25 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         None
     };
     let l0_h = ladder.as_ref().map_or(model.l0_h, |l| l.l0_h);
+    let core_net = match &model.core {
+        Some(c) => Some(design_core(c, l0_h, band)?),
+        None => None,
+    };
     let realised = |f: f64| {
         let skin = ladder
             .as_ref()
             .map_or(Complex64::new(0.0, 0.0), |l| l.impedance(f));
-        impedance_with_skin(model, skin, l0_h, f)
+        let core = match &core_net {
+            Some(n) => n.impedance(f),
+            None => {
+                let jwl0 = Complex64::new(0.0, 2.0 * std::f64::consts::PI * f * l0_h);
+                match model.rp_ohm {
+                    Some(rp) => jwl0 * rp / (jwl0 + rp),
+                    None => jwl0,
+                }
+            }
+        };
+        impedance_with_core(model, skin, core, f)
     };
     let mut net = Netlist::new();
     let a = if model.ls_h > 0.0 {
@@ -64,9 +80,33 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
             at = next;
         }
     }
-    net.element("L0", at, b, l0_h);
-    if let Some(rp) = model.rp_ohm {
-        net.element("RP", at, b, rp);
+    match &core_net {
+        Some(cn) => {
+            let last = cn.cells.len();
+            for (i, cell) in cn.cells.iter().enumerate() {
+                let next = if i + 1 == last { b } else { net.node() };
+                let k = i + 1;
+                match *cell {
+                    CoreCell::Inductor { l_h } => net.element(&format!("LC{k}"), at, next, l_h),
+                    CoreCell::Relaxation { l_h, r_ohm } => {
+                        net.element(&format!("LC{k}"), at, next, l_h);
+                        net.element(&format!("RC{k}"), at, next, r_ohm);
+                    }
+                    CoreCell::Tank { l_h, c_f, r_ohm } => {
+                        net.element(&format!("LC{k}"), at, next, l_h);
+                        net.element(&format!("CC{k}"), at, next, c_f);
+                        net.element(&format!("RC{k}"), at, next, r_ohm);
+                    }
+                }
+                at = next;
+            }
+        }
+        None => {
+            net.element("L0", at, b, l0_h);
+            if let Some(rp) = model.rp_ohm {
+                net.element("RP", at, b, rp);
+            }
+        }
     }
     if model.cp_f > 0.0 {
         net.element("CP", a, b, model.cp_f);
@@ -154,6 +194,9 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
     if let Some(l) = &ladder {
         ladder_comments(&mut net, l, model);
     }
+    if let (Some(c), Some(cn)) = (&model.core, &core_net) {
+        core_comments(&mut net, c, cn);
+    }
     net.comment(format!(
         "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
         check.len(),
@@ -204,14 +247,26 @@ fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {
     ));
 }
 
+fn core_comments(net: &mut Netlist, c: &crate::model::CoreDispersion, cn: &CoreNetwork) {
+    net.comment(format!(
+        "dispersive core ({}, corner {:.4e} Hz, alpha {}, beta {}, damping {}, air fraction {}) realised \
+         as cells LCn (with RCn, CCn) in series: {} R||L relaxation cells (Debye terms, non-negative \
+         weights), an L||C||R tank for a resonance, plain inductors for the air part",
+        c.law.as_str(),
+        c.corner_hz,
+        c.alpha,
+        c.beta,
+        c.damping,
+        c.air_fraction,
+        cn.relaxation_cells
+    ));
+    net.comment(format!(
+        "  core law: max |m_net - m| / |m| = {:.3e} over the band (the tank is exact)",
+        cn.max_law_error_rel
+    ));
+}
+
 fn validate(m: &LumpedModel) -> Result<(), ExportError> {
-    if let Some(c) = &m.core {
-        return Err(ExportError::NotRealisable(format!(
-            "a {} core has no R–L–C realisation in this version; export the model's Touchstone or \
-             CSV curves, or fit the rational family",
-            c.law.as_str()
-        )));
-    }
     check_param("l0_h", m.l0_h, true)?;
     check_param("rdc_ohm", m.rdc_ohm, false)?;
     check_param("k_ac_ohm_per_sqrt_hz", m.k_ac_ohm_per_sqrt_hz, false)?;

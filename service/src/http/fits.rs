@@ -19,6 +19,7 @@ use utoipa_axum::{router::OpenApiRouter, routes};
 
 #[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
 #[into_params(parameter_in = Query)]
+#[serde(deny_unknown_fields)]
 pub struct FitListParams {
     /// queued, running, succeeded, failed or cancelled.
     pub status: Option<String>,

@@ -16,6 +16,7 @@ use utoipa_axum::{router::OpenApiRouter, routes};
 
 #[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
 #[into_params(parameter_in = Query)]
+#[serde(deny_unknown_fields)]
 pub struct PartQueryParams {
     /// Substring of the part number or description.
     pub q: Option<String>,

@@ -20,7 +20,8 @@ pub struct StoredFigures {
 pub fn from_report(report: &FitReport) -> StoredFigures {
     let (l0_h, rdc_ohm) = match &report.model {
         FittedModel::Lumped(m) => (Some(m.l0_h), Some(m.rdc_ohm)),
-        FittedModel::Rational(_) => (None, super::verdict::model_dcr_ohm(&report.model)),
+        // Both are DC figures, outside the band where a rational model is valid: unknown.
+        FittedModel::Rational(_) => (None, None),
     };
     let finite = |v: Option<f64>| v.filter(|x| x.is_finite());
     StoredFigures {

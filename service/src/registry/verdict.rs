@@ -59,11 +59,13 @@ fn unjudged(limit: &str, unit: &str, limit_value: f64, note: String) -> Check {
     }
 }
 
-/// DC resistance of the model: the lumped model's `rdc_ohm`, or Re Z of the rational model at DC.
+/// DC resistance of the model: the lumped model's `rdc_ohm` (an element of the circuit, determined by
+/// the winding's loss across the band). A rational model is valid only over its sweep band, and DC lies
+/// outside every band: extrapolated there it can read a 0.4 Ω chip inductor as 1.2 kΩ, so it gives none.
 pub fn model_dcr_ohm(model: &FittedModel) -> Option<f64> {
     match model {
         FittedModel::Lumped(m) => Some(m.rdc_ohm),
-        FittedModel::Rational(_) => Some(model.impedance(0.0).re).filter(|r| r.is_finite()),
+        FittedModel::Rational(_) => None,
     }
 }
 
@@ -106,7 +108,10 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
                 "dcr_max",
                 "ohm",
                 max,
-                "the model gives no DC resistance".into(),
+                format!(
+                    "the model gives no DC resistance: it is valid only over {}..{} Hz",
+                    report.band_hz[0], report.band_hz[1]
+                ),
             )),
         }
     }
@@ -275,6 +280,29 @@ pub(crate) mod tests {
         assert_eq!(c[2].limit, "srf_min");
         assert!(c[2].pass);
         assert_eq!(overall(&c, &r), Some("fail"));
+    }
+
+    #[test]
+    fn a_rational_model_gives_no_dc_figure_outside_its_band() {
+        // d = 1.2 kΩ would read as the DC resistance if the model were extrapolated to 0 Hz.
+        let mut r = report(1e-7, 0.41, 1e-13, None);
+        r.band_hz = [1e7, 3e9];
+        r.model = FittedModel::Rational(crate::model::RationalModel {
+            d_ohm: 1200.0,
+            e_h: 1e-7,
+            real_poles: vec![],
+            complex_poles: vec![],
+        });
+        assert_eq!(model_dcr_ohm(&r.model), None);
+        let limits = Limits {
+            dcr_max_ohm: Some(0.5),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        assert!(!c[0].pass && c[0].measured.is_none(), "{c:?}");
+        assert!(c[0].note.as_deref().unwrap().contains("valid only over"));
+        let figures = crate::registry::figures::from_report(&r);
+        assert_eq!((figures.rdc_ohm, figures.l0_h), (None, None));
     }
 
     #[test]
