@@ -529,10 +529,21 @@ async fn behavioural_queries_are_answered_from_stored_figures() {
     assert!((srf(a).await / 22.5079e6 - 1.0).abs() < 1e-3);
     assert!((srf(b).await / 112.54e6 - 1.0).abs() < 1e-3);
     assert!((srf(c).await / 5.0329e6 - 1.0).abs() < 1e-3);
+    // Until something is approved, the figures come from the newest fits on request only.
     let q = |query: &str| {
+        let path = format!("/api/v1/parts?answer_from=latest&{query}");
+        async move { r.get_json(&path, &r.reader).await }
+    };
+    let as_is = |query: &str| {
         let path = format!("/api/v1/parts?{query}");
         async move { r.get_json(&path, &r.reader).await }
     };
+    assert!(
+        numbers(&as_is("").await).is_empty(),
+        "the default is the approved baseline"
+    );
+    assert_eq!(as_is("").await["answer_from"], "approved");
+    assert_eq!(q("").await["answer_from"], "latest");
 
     // SRF band.
     assert_eq!(numbers(&q("srf_min_hz=2e7&srf_max_hz=3e7").await), ["Q-A"]);
@@ -565,7 +576,7 @@ async fn behavioural_queries_are_answered_from_stored_figures() {
     assert_eq!(numbers(&p2), ["Q-D", "Q-C"]);
     assert!(p2["next_cursor"].is_null());
     // Approved only: nothing until an engineer approves Q-A's fit.
-    assert!(numbers(&q("approved_only=true").await).is_empty());
+    assert!(numbers(&as_is("approved_only=true").await).is_empty());
     let r = app
         .post_json(
             &format!("/api/v1/fits/{a}/approve"),
@@ -574,9 +585,42 @@ async fn behavioural_queries_are_answered_from_stored_figures() {
         )
         .await;
     assert_eq!(r.status(), 200);
-    let approved = q("approved_only=true&srf_min_hz=1e6").await;
+    let approved = as_is("approved_only=true&srf_min_hz=1e6").await;
     assert_eq!(numbers(&approved), ["Q-A"]);
     assert_eq!(approved["items"][0]["approved_fit_id"], a);
+    assert_eq!(numbers(&as_is("srf_min_hz=1e6").await), ["Q-A"]);
+    // The newest passing fit skips a newer lot that fails its limits: Q-A gets DCR ≤ 60 mΩ and a
+    // second lot of 100 mΩ; `latest` answers from lot 2, `latest-passing` from lot 1.
+    let r2 = app
+        .put_json(
+            "/api/v1/parts/Q-A/limits",
+            &app.engineer,
+            &json!({"limits": {"dcr_max_ohm": 0.06}}),
+        )
+        .await;
+    assert_eq!(r2.status(), 200);
+    let a2 = upload_synthetic(
+        &app,
+        "Q-A",
+        "2",
+        synthetic_csv(&simple_model(1e-5, 0.1, 5e-12), 1e4, 1e8, 401),
+    )
+    .await;
+    assert_eq!(app.wait_for_fit(a2, FIT_TIMEOUT).await["verdict"], "fail");
+    let answered = |page: &Value| page["items"][0]["answered_from_fit_id"].clone();
+    assert_eq!(answered(&as_is("q=Q-A&answer_from=latest").await), a2);
+    assert_eq!(
+        answered(&as_is("q=Q-A&answer_from=latest-passing").await),
+        a
+    );
+    assert_eq!(answered(&as_is("q=Q-A").await), a);
+    for bad in [
+        "answer_from=newest",
+        "answer_from=latest&approved_only=true",
+    ] {
+        let r = app.get(&format!("/api/v1/parts?{bad}"), &app.reader).await;
+        assert_eq!(r.status(), 422, "{bad}");
+    }
     // Bad queries are problems.
     for bad in [
         "l_min_h=1e-6",

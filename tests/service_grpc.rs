@@ -105,7 +105,8 @@ fn part_summary_json(p: &proto::PartSummary) -> Value {
 
 fn part_page_json(p: &proto::PartPage) -> Value {
     norm(
-        json!({"items": p.items.iter().map(part_summary_json).collect::<Vec<_>>(), "next_cursor": p.next_cursor}),
+        json!({"items": p.items.iter().map(part_summary_json).collect::<Vec<_>>(), "next_cursor": p.next_cursor,
+               "answer_from": p.answer_from}),
     )
 }
 
@@ -610,28 +611,39 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
         }
     }
 
-    // Behavioural part queries.
+    // Behavioural part queries (from the newest fits: only G-A has an approved baseline), and the
+    // default answer source, the approved baseline.
     let queries: Vec<(&str, proto::QueryPartsRequest)> = vec![
         ("", proto::QueryPartsRequest::default()),
         (
-            "srf_min_hz=2e7&srf_max_hz=3e7",
+            "answer_from=latest",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
+                ..Default::default()
+            },
+        ),
+        (
+            "answer_from=latest&srf_min_hz=2e7&srf_max_hz=3e7",
+            proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 srf_min_hz: Some(2e7),
                 srf_max_hz: Some(3e7),
                 ..Default::default()
             },
         ),
         (
-            "series_resonance_min_hz=3e8&series_resonance_max_hz=8e8",
+            "answer_from=latest&series_resonance_min_hz=3e8&series_resonance_max_hz=8e8",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 series_resonance_min_hz: Some(3e8),
                 series_resonance_max_hz: Some(8e8),
                 ..Default::default()
             },
         ),
         (
-            "l_at_hz=1e5&l_min_h=9e-6&l_max_h=1.2e-5",
+            "answer_from=latest&l_at_hz=1e5&l_min_h=9e-6&l_max_h=1.2e-5",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 l_at_hz: Some(1e5),
                 l_min_h: Some(9e-6),
                 l_max_h: Some(1.2e-5),
@@ -639,15 +651,17 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
             },
         ),
         (
-            "dcr_max_ohm=0.02",
+            "answer_from=latest&dcr_max_ohm=0.02",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 dcr_max_ohm: Some(0.02),
                 ..Default::default()
             },
         ),
         (
-            "z_min_ohm=30&z_band_min_hz=1e6&z_band_max_hz=2e6",
+            "answer_from=latest&z_min_ohm=30&z_band_min_hz=1e6&z_band_max_hz=2e6",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 z_min_ohm: Some(30.0),
                 z_band_min_hz: Some(1e6),
                 z_band_max_hz: Some(2e6),
@@ -663,8 +677,9 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
             },
         ),
         (
-            "q=G-&sort=-rdc_ohm",
+            "answer_from=latest&q=G-&sort=-rdc_ohm",
             proto::QueryPartsRequest {
+                answer_from: Some("latest".into()),
                 q: Some("G-".into()),
                 sort: Some("-rdc_ohm".into()),
                 ..Default::default()
@@ -685,15 +700,15 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
         assert_eq!(part_page_json(&page), http, "parts?{query}");
         non_empty += usize::from(!page.items.is_empty());
     }
-    assert_eq!(non_empty, 8, "every query above matches at least one part");
+    assert_eq!(non_empty, 9, "every query above matches at least one part");
     // Sorted by SRF, descending, one per page, following the cursor.
     let mut cursor: Option<String> = None;
     let mut order = Vec::new();
     loop {
         let q = cursor
             .as_ref()
-            .map_or("sort=-srf_hz&limit=1".to_string(), |c| {
-                format!("sort=-srf_hz&limit=1&cursor={c}")
+            .map_or("answer_from=latest&sort=-srf_hz&limit=1".to_string(), |c| {
+                format!("answer_from=latest&sort=-srf_hz&limit=1&cursor={c}")
             });
         let http = app
             .get_json(&format!("/api/v1/parts?{q}"), &app.reader)
@@ -702,6 +717,7 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
             .parts
             .query_parts(grpc_request(
                 proto::QueryPartsRequest {
+                    answer_from: Some("latest".into()),
                     sort: Some("-srf_hz".into()),
                     limit: Some(1),
                     cursor: cursor.clone(),

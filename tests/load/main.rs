@@ -294,7 +294,7 @@ async fn main() -> anyhow::Result<()> {
             let hi = lo * 1.5;
             let t = Instant::now();
             let r = http
-                .get(format!("{base}/api/v1/parts?srf_min_hz={lo}&srf_max_hz={hi}&limit=50"))
+                .get(format!("{base}/api/v1/parts?answer_from=latest&srf_min_hz={lo}&srf_max_hz={hi}&limit=50"))
                 .bearer_auth(&inspector)
                 .send()
                 .await?;

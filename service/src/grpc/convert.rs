@@ -92,6 +92,7 @@ pub fn part_page(p: PartPage) -> proto::PartPage {
     proto::PartPage {
         items: p.items.into_iter().map(part_summary).collect(),
         next_cursor: p.next_cursor,
+        answer_from: p.answer_from,
     }
 }
 

@@ -22,7 +22,8 @@ impl PartRegistry for Parts {
         let r = request.into_inner();
         let query = part_query(PartQueryParams {
             q: r.q,
-            approved_only: Some(r.approved_only),
+            answer_from: r.answer_from,
+            approved_only: r.approved_only.then_some(true),
             srf_min_hz: r.srf_min_hz,
             srf_max_hz: r.srf_max_hz,
             series_resonance_min_hz: r.series_resonance_min_hz,

@@ -5,7 +5,7 @@ use super::problem::{ApiResult, Problem, json_body};
 use crate::app::AppState;
 use crate::registry::limits::Limits;
 use crate::registry::wire::{Part, PartPage};
-use crate::store::query::{Cursor, PartQuery, Sort};
+use crate::store::query::{AnswerSource, Cursor, PartQuery, Sort};
 use axum::Json;
 use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
@@ -20,7 +20,11 @@ use utoipa_axum::{router::OpenApiRouter, routes};
 pub struct PartQueryParams {
     /// Substring of the part number or description.
     pub q: Option<String>,
-    /// Answer from approved baselines only (default: the newest succeeded fit of each part).
+    /// Which fit of each part answers: `approved` (its approved baseline; the default), `latest` (the
+    /// newest succeeded fit, whatever its verdict) or `latest-passing` (the newest whose model is ok and
+    /// that does not fail the part's limits).
+    pub answer_from: Option<String>,
+    /// Older form: `true` is `answer_from=approved`, `false` is `answer_from=latest`.
     pub approved_only: Option<bool>,
     pub srf_min_hz: Option<f64>,
     pub srf_max_hz: Option<f64>,
@@ -69,7 +73,21 @@ pub fn part_query(p: PartQueryParams) -> ApiResult<PartQuery> {
     };
     let query = PartQuery {
         q: p.q.filter(|s| !s.trim().is_empty()),
-        approved_only: p.approved_only.unwrap_or(false),
+        source: match (p.answer_from.as_deref(), p.approved_only) {
+            (Some(a), None) => AnswerSource::parse(a).map_err(Problem::validation)?,
+            (None, Some(true)) => AnswerSource::Approved,
+            (None, Some(false)) => AnswerSource::Latest,
+            (None, None) => AnswerSource::Approved,
+            (Some(a), Some(o)) => {
+                let s = AnswerSource::parse(a).map_err(Problem::validation)?;
+                if (s == AnswerSource::Approved) != o {
+                    return Err(Problem::validation(format!(
+                        "answer_from={a} and approved_only={o} disagree; give answer_from only"
+                    )));
+                }
+                s
+            }
+        },
         srf_min_hz: p.srf_min_hz,
         srf_max_hz: p.srf_max_hz,
         series_resonance_min_hz: p.series_resonance_min_hz,

@@ -135,8 +135,7 @@ pub struct PartSummary {
     pub latest_verdict: Option<String>,
     /// Largest |drift| of the newest fit against the approved baseline, in σ.
     pub drift_max_sigma: Option<f64>,
-    /// Figures of the fit the query answered from (the approved one with `approved_only`, else the
-    /// newest succeeded one).
+    /// Figures of the fit the query answered from (see the page's `answer_from`).
     pub srf_hz: Option<f64>,
     pub series_resonances_hz: Vec<f64>,
     pub l0_h: Option<f64>,
@@ -167,6 +166,9 @@ pub struct FitPage {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct PartPage {
     pub items: Vec<PartSummary>,
+    /// Which fit of each part the figures come from: `approved` (the baseline; the default), `latest`
+    /// or `latest-passing`.
+    pub answer_from: String,
     /// Pass as `cursor` for the next page; null on the last page.
     pub next_cursor: Option<String>,
 }

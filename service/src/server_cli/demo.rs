@@ -119,13 +119,14 @@ fn print_fit_row(part: &str, f: &Value) {
     });
     let status = f["status"].as_str().unwrap_or_default();
     println!(
-        "{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} {}",
+        "{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:<5} {:>11} {:>11} {:>11} {:>6} {:<8} {:<26} {}",
         part,
         f["lot"].as_str().unwrap_or_default(),
         f["fit_id"],
         f["revision"],
         model["kind"].as_str().unwrap_or("-"),
         status,
+        f["quality"].as_str().unwrap_or("-"),
         fmt_si(f["srf_hz"].as_f64(), "Hz"),
         fmt_si(model["l0_h"].as_f64(), "H"),
         fmt_si(model["rdc_ohm"].as_f64(), "Ω"),
@@ -273,11 +274,12 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         }
     }
 
-    // The first lot of each part with several becomes its approved baseline, so the next shows drift.
+    // The first lot of each part becomes its approved baseline (what design tools are answered from),
+    // so a later lot shows drift. A first lot that fails its limits or whose model is poor is not
+    // approved: the service refuses it without an override, and the demo says so.
     let mut baseline_done = std::collections::HashSet::new();
     for (part, _, id) in &fits {
-        let several = fits.iter().filter(|f| &f.0 == part).count() > 1;
-        if several && baseline_done.insert(part.clone()) {
+        if baseline_done.insert(part.clone()) {
             let part_now = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
             if part_now["baseline_fit_id"].is_null() {
                 let (status, body) = c
@@ -312,13 +314,14 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     }
 
     println!(
-        "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:>11} {:>11} {:>11} {:>6} {:<7} {:<26} failed limits",
+        "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:<5} {:>11} {:>11} {:>11} {:>6} {:<8} {:<26} failed limits",
         "part",
         "lot",
         "fit",
         "rev",
-        "model",
+        "family",
         "status",
+        "fit",
         "SRF",
         "L0",
         "Rdc",
@@ -350,7 +353,10 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
 
     let query = "/api/v1/parts?srf_min_hz=1e7&srf_max_hz=1e8&sort=srf_hz";
     let band = c.get(query, reader).await?;
-    println!("\nParts whose self-resonant frequency lies in 10–100 MHz (GET {query}):");
+    println!(
+        "\nApproved parts whose self-resonant frequency lies in 10–100 MHz (GET {query}; add \
+         answer_from=latest for the newest fits):"
+    );
     let items = band["items"].as_array().cloned().unwrap_or_default();
     if items.is_empty() {
         println!("  none");

@@ -74,12 +74,45 @@ impl Cursor {
     }
 }
 
+/// Which fit of each part a query answers from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum AnswerSource {
+    /// The part's approved baseline (the default: what a design tool may build on).
+    #[default]
+    Approved,
+    /// The newest succeeded fit, whatever its quality, verdict or approval.
+    Latest,
+    /// The newest succeeded fit whose model is `ok` and that does not fail the part's limits (a pass,
+    /// or no limits) and was not rejected.
+    LatestPassing,
+}
+
+impl AnswerSource {
+    pub fn parse(text: &str) -> Result<AnswerSource, String> {
+        match text {
+            "approved" => Ok(AnswerSource::Approved),
+            "latest" => Ok(AnswerSource::Latest),
+            "latest-passing" => Ok(AnswerSource::LatestPassing),
+            _ => Err(format!(
+                "answer_from must be approved, latest or latest-passing, not {text:?}"
+            )),
+        }
+    }
+    pub fn as_str(self) -> &'static str {
+        match self {
+            AnswerSource::Approved => "approved",
+            AnswerSource::Latest => "latest",
+            AnswerSource::LatestPassing => "latest-passing",
+        }
+    }
+}
+
 /// A validated query (see [`PartQuery::validate`]).
 #[derive(Debug, Clone)]
 pub struct PartQuery {
     /// Substring of part number or description.
     pub q: Option<String>,
-    pub approved_only: bool,
+    pub source: AnswerSource,
     pub srf_min_hz: Option<f64>,
     pub srf_max_hz: Option<f64>,
     pub series_resonance_min_hz: Option<f64>,
@@ -227,10 +260,15 @@ impl Store {
             Some(e) => q.push(format!(", {e} AS sort_value")),
             None => q.push(", NULL AS sort_value"),
         };
-        q.push(if query.approved_only {
-            " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id"
-        } else {
-            " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id"
+        q.push(match query.source {
+            AnswerSource::Approved => " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id",
+            AnswerSource::Latest => " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id",
+            AnswerSource::LatestPassing => {
+                " FROM parts p JOIN fits f ON f.fit_id = (SELECT MAX(fp.fit_id) FROM fits fp \
+                 WHERE fp.part_id = p.part_id AND fp.status = 'succeeded' AND fp.quality = 'ok' \
+                 AND (fp.verdict = 'pass' OR fp.verdict IS NULL) \
+                 AND (fp.approval IS NULL OR fp.approval <> 'rejected'))"
+            }
         });
         if let Some((k, w)) = l_bracket {
             q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
@@ -405,7 +443,11 @@ impl Store {
                     .collect();
             }
         }
-        Ok(PartPage { items, next_cursor })
+        Ok(PartPage {
+            items,
+            next_cursor,
+            answer_from: query.source.as_str().to_string(),
+        })
     }
 }
 

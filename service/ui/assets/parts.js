@@ -42,7 +42,7 @@ export function renderParts(main, _params, search) {
   const summary = h("span", { class: "muted", id: "parts-summary" });
 
   function params() {
-    const p = { q: q.value.trim(), approved_only: approved.checked ? "true" : "", sort: sort.value };
+    const p = { q: q.value.trim(), approved_only: approved.checked ? "true" : "false", sort: sort.value };
     for (const [key, , unit] of RANGE_FIELDS) {
       const v = parseSI(inputs[key].value, unit);
       if (v !== null && !(v > 0)) throw new Error(`${key}: the value must be positive`);
