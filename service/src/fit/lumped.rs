@@ -982,7 +982,12 @@ pub fn fit_lumped(
     if let Some(p) = &control.progress {
         p(1.0);
     }
+    let material = options
+        .construction
+        .as_ref()
+        .map(|c| crate::model::material::material_report(&model, uncertainty.l0_h, c, band_hz));
     Ok(FitReport {
+        material,
         engine_version: super::ENGINE_VERSION.to_string(),
         model: FittedModel::Lumped(model),
         uncertainty: Some(uncertainty),

@@ -72,6 +72,10 @@ pub struct FitOptions {
     /// same sweep as the next revision, so both are stored. `None` never does. The engine itself
     /// ignores it.
     pub rational_fallback_above_rms_weighted: Option<f64>,
+    /// How the part is built (turns, core shape, gap): the lumped report then gives the core
+    /// material's permeability spectrum and initial permeability ([`crate::model::material`]).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub construction: Option<crate::model::material::Construction>,
 }
 
 impl Default for FitOptions {
@@ -89,6 +93,7 @@ impl Default for FitOptions {
             rational_max_relocations: 30,
             passivity_rms_allowance: 0.1,
             rational_fallback_above_rms_weighted: Some(3.0),
+            construction: None,
         }
     }
 }
@@ -240,6 +245,9 @@ pub struct FitReport {
     /// DC resistance, …).
     #[serde(default)]
     pub warnings: Vec<String>,
+    /// The core material as the model shows it, when the options state the construction (lumped fits).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub material: Option<crate::model::material::MaterialReport>,
 }
 
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -263,6 +271,9 @@ impl FitOptions {
     /// and its allowed range.
     pub fn validate(&self) -> Result<(), FitError> {
         let bad = |m: String| Err(FitError::InvalidOptions(m));
+        if let Some(c) = &self.construction {
+            c.validate().map_err(FitError::InvalidOptions)?;
+        }
         if self.max_sections > 3 {
             return bad(format!(
                 "max_sections is {}; it must be 0 to 3",

@@ -1368,6 +1368,7 @@ pub fn fit_rational(
         iterations,
         candidates,
         band_hz,
+        material: None,
     })
 }
 

@@ -176,6 +176,7 @@ impl ImpedanceModel for LumpedModel {
 
 pub mod construction;
 pub mod lumped;
+pub mod material;
 pub mod rational;
 pub use rational::RationalModel;
 

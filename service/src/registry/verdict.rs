@@ -245,6 +245,7 @@ pub(crate) mod tests {
             band_hz: [1e3, 1e8],
             assessment: Default::default(),
             warnings: vec![],
+            material: None,
         }
     }
 

@@ -56,7 +56,47 @@ export async function renderFit(main, [fitId]) {
     );
   }
   main.append(h("div", { class: "two-col" }, verdictTable(detail), driftTable(detail)));
+  if (report?.material) main.append(materialCard(report.material));
   if (report) main.append(qualityCard(report));
+}
+
+// The core material as the model shows it, when the upload stated the construction: μ′ and μ″ over the
+// band, the initial permeability and the construction check.
+function materialCard(m) {
+  const f = m.spectrum.map((p) => p.frequency_hz);
+  const c = m.construction;
+  const shape = c.core.toroid
+    ? `toroid ${si(c.core.toroid.outer_diameter_m, "m")} × ${si(c.core.toroid.inner_diameter_m, "m")} × ${si(c.core.toroid.height_m, "m")}`
+    : `Ae ${plain(c.core.effective.area_m2 * 1e6, 4)} mm², le ${si(c.core.effective.path_m, "m")}`;
+  return h(
+    "section",
+    { class: "card", id: "material" },
+    h("h2", {}, "Core material"),
+    h(
+      "table",
+      { class: "kv" },
+      h("tbody", {},
+        h("tr", {}, h("th", {}, "Construction"), h("td", {}, `${plain(c.turns, 4)} turns, ${shape}${c.gap_m ? `, gap ${si(c.gap_m, "m")}` : ""}`)),
+        h("tr", {}, h("th", {}, "Inductance per unit permeability"), h("td", {}, si(m.inductance_per_permeability_h, "H"))),
+        h("tr", {}, h("th", {}, "Initial permeability μi"), h("td", { "data-mu-initial": m.initial_permeability }, `${plain(m.initial_permeability, 4)}${m.initial_permeability_sigma != null ? ` ± ${plain(m.initial_permeability_sigma, 2)}` : " (σ not determined)"}`)),
+        m.expected_l0_h != null
+          ? h("tr", {}, h("th", {}, "Expected L0 from the nominal μi"), h("td", {}, `${si(m.expected_l0_h, "H")} (fitted L0 ${m.l0_versus_expected_percent >= 0 ? "+" : ""}${plain(m.l0_versus_expected_percent, 3)} %)`))
+          : null,
+      ),
+    ),
+    plot({
+      id: "plot-mu",
+      title: "Complex permeability μ = μ′ − jμ″ of the core material",
+      width: 760,
+      height: 260,
+      x: { log: true, unit: "Hz", label: "frequency" },
+      y: { unit: "", label: "μ", includeZero: true },
+      series: [
+        { key: "model", label: "μ′", type: "line", x: f, y: m.spectrum.map((p) => p.mu_real), unit: "", fmt: (i) => plain(m.spectrum[i].mu_real, 4) },
+        { key: "measured", label: "μ″", type: "line", x: f, y: m.spectrum.map((p) => p.mu_imag), unit: "", fmt: (i) => plain(m.spectrum[i].mu_imag, 4) },
+      ],
+    }),
+  );
 }
 
 function header(d) {
