@@ -767,6 +767,11 @@ async fn verdicts_drift_approvals_and_refits_are_recorded() {
     let parts = app.get_json("/api/v1/parts?q=V-1", &app.reader).await;
     assert_eq!(parts["items"][0]["approved_fit_id"], f1);
     assert_eq!(parts["items"][0]["latest_fit_id"], f2);
+    // The parts list gives L0's drift in percent beside the part's tolerance, not only in σ.
+    let pct = parts["items"][0]["drift_l0_percent"].as_f64().unwrap();
+    assert!((pct - 5.0).abs() < 0.05, "{pct}");
+    // (The limits were replaced above by a DCR limit alone: no inductance tolerance to show.)
+    assert_eq!(parts["items"][0]["l_tolerance_percent"], Value::Null);
     // Reject lot 2 with a reason; refit lot 1 as a new revision, leaving revision 1 as it was.
     let r = app
         .post_json(

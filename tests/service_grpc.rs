@@ -97,6 +97,7 @@ fn part_summary_json(p: &proto::PartSummary) -> Value {
         "part_number": p.part_number, "description": p.description,
         "approved_fit_id": p.approved_fit_id, "latest_fit_id": p.latest_fit_id,
         "latest_verdict": p.latest_verdict, "drift_max_sigma": p.drift_max_sigma,
+        "drift_l0_percent": p.drift_l0_percent, "l_tolerance_percent": p.l_tolerance_percent,
         "srf_hz": p.srf_hz, "series_resonances_hz": p.series_resonances_hz, "l0_h": p.l0_h,
         "rdc_ohm": p.rdc_ohm, "l_eff_h": p.l_eff_h, "z_min_ohm": p.z_min_ohm,
         "answered_from_fit_id": p.answered_from_fit_id,

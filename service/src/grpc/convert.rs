@@ -78,6 +78,8 @@ fn part_summary(p: PartSummary) -> proto::PartSummary {
         latest_fit_id: p.latest_fit_id,
         latest_verdict: p.latest_verdict,
         drift_max_sigma: p.drift_max_sigma,
+        drift_l0_percent: p.drift_l0_percent,
+        l_tolerance_percent: p.l_tolerance_percent,
         srf_hz: p.srf_hz,
         series_resonances_hz: p.series_resonances_hz,
         l0_h: p.l0_h,

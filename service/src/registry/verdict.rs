@@ -23,6 +23,37 @@ pub struct Check {
     pub note: Option<String>,
 }
 
+/// A value with an SI prefix and four significant digits, as people read limits ("10 µH", "100 kHz").
+pub fn si(value: f64, unit: &str) -> String {
+    if !value.is_finite() || value == 0.0 {
+        return format!("{value} {unit}");
+    }
+    const PREFIXES: [(f64, &str); 9] = [
+        (1e9, "G"),
+        (1e6, "M"),
+        (1e3, "k"),
+        (1.0, ""),
+        (1e-3, "m"),
+        (1e-6, "µ"),
+        (1e-9, "n"),
+        (1e-12, "p"),
+        (1e-15, "f"),
+    ];
+    let (scale, prefix) = PREFIXES
+        .iter()
+        .copied()
+        .find(|(s, _)| value.abs() >= *s * (1.0 - 5e-13))
+        .unwrap_or((1e-15, "f"));
+    let v = value / scale;
+    let text = format!("{v:.4}");
+    let text = if text.contains('.') {
+        text.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        text
+    };
+    format!("{text} {prefix}{unit}")
+}
+
 fn in_band(report: &FitReport, f: f64) -> bool {
     // A relative tolerance: the band ends are the sweep's first and last frequency.
     f >= report.band_hz[0] * (1.0 - 1e-9) && f <= report.band_hz[1] * (1.0 + 1e-9)
@@ -30,8 +61,10 @@ fn in_band(report: &FitReport, f: f64) -> bool {
 
 fn out_of_band_note(report: &FitReport, f: f64) -> String {
     format!(
-        "{f} Hz lies outside the swept band {}..{} Hz",
-        report.band_hz[0], report.band_hz[1]
+        "{} lies outside the swept band {} to {}",
+        si(f, "Hz"),
+        si(report.band_hz[0], "Hz"),
+        si(report.band_hz[1], "Hz")
     )
 }
 
@@ -89,7 +122,9 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
             };
             let mut c = check("inductance", "H", bound, l, margin);
             c.note = Some(format!(
-                "effective L at {f} Hz against {nominal} H ± {tol} %"
+                "effective L at {} against {} ± {tol} %",
+                si(f, "Hz"),
+                si(nominal, "H")
             ));
             out.push(c);
         } else {
@@ -109,8 +144,9 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
                 "ohm",
                 max,
                 format!(
-                    "the model gives no DC resistance: it is valid only over {}..{} Hz",
-                    report.band_hz[0], report.band_hz[1]
+                    "the model gives no DC resistance: it is valid only from {} to {}",
+                    si(report.band_hz[0], "Hz"),
+                    si(report.band_hz[1], "Hz")
                 ),
             )),
         }
@@ -121,7 +157,8 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
             (None, Some(above)) if above >= min => {
                 let mut c = check("srf_min", "Hz", min, above, above - min);
                 c.note = Some(format!(
-                    "no resonance inside the sweep: the SRF lies above {above} Hz"
+                    "no resonance inside the sweep: the SRF lies above {}",
+                    si(above, "Hz")
                 ));
                 out.push(c);
             }
@@ -131,7 +168,8 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
                 min,
                 match above {
                     Some(a) => format!(
-                        "no resonance below {a} Hz, the top of the sweep, which is below the limit"
+                        "no resonance below {}, the top of the sweep, which is below the limit",
+                        si(a, "Hz")
                     ),
                     None => "the report gives no SRF".into(),
                 },
@@ -143,7 +181,7 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
             let z = model.impedance(f);
             let q = z.im / z.re;
             let mut c = check("q_min", "1", min, q, q - min);
-            c.note = Some(format!("Q at {f} Hz"));
+            c.note = Some(format!("Q at {}", si(f, "Hz")));
             out.push(c);
         } else {
             out.push(unjudged("q_min", "1", min, out_of_band_note(report, f)));
@@ -155,7 +193,12 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
         if in_band(report, a) && in_band(report, b) {
             let (z, at) = crate::fit::derived::min_abs_z(model, a, b);
             let mut c = check("z_min_band", "ohm", min, z, z - min);
-            c.note = Some(format!("lowest |Z| in {a}..{b} Hz, at {at} Hz"));
+            c.note = Some(format!(
+                "lowest |Z| from {} to {}, at {}",
+                si(a, "Hz"),
+                si(b, "Hz"),
+                si(at, "Hz")
+            ));
             out.push(c);
         } else {
             out.push(unjudged(
@@ -301,9 +344,36 @@ pub(crate) mod tests {
         };
         let c = checks(&limits, &r);
         assert!(!c[0].pass && c[0].measured.is_none(), "{c:?}");
-        assert!(c[0].note.as_deref().unwrap().contains("valid only over"));
+        assert!(
+            c[0].note
+                .as_deref()
+                .unwrap()
+                .contains("valid only from 10 MHz to 3 GHz"),
+            "{c:?}"
+        );
         let figures = crate::registry::figures::from_report(&r);
         assert_eq!((figures.rdc_ohm, figures.l0_h), (None, None));
+    }
+
+    #[test]
+    fn limits_are_worded_with_si_prefixes() {
+        assert_eq!(si(1e-5, "H"), "10 µH");
+        assert_eq!(si(1e5, "Hz"), "100 kHz");
+        assert_eq!(si(4.7e-9, "H"), "4.7 nH");
+        assert_eq!(si(0.0123, "ohm"), "12.3 mohm");
+        assert_eq!(si(22.5079e6, "Hz"), "22.5079 MHz");
+        let r = report(1e-5, 0.05, 5e-12, Some(22.5e6));
+        let limits = Limits {
+            l_nominal_h: Some(1e-5),
+            l_test_frequency_hz: Some(1e5),
+            l_tolerance_percent: Some(20.0),
+            ..Limits::default()
+        };
+        let c = checks(&limits, &r);
+        assert_eq!(
+            c[0].note.as_deref(),
+            Some("effective L at 100 kHz against 10 µH ± 20 %")
+        );
     }
 
     #[test]

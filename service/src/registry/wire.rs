@@ -135,6 +135,11 @@ pub struct PartSummary {
     pub latest_verdict: Option<String>,
     /// Largest |drift| of the newest fit against the approved baseline, in σ.
     pub drift_max_sigma: Option<f64>,
+    /// L0 of the newest fit against the approved baseline, in percent (the figure a tolerance applies
+    /// to).
+    pub drift_l0_percent: Option<f64>,
+    /// The part's inductance tolerance, in percent, when set.
+    pub l_tolerance_percent: Option<f64>,
     /// Figures of the fit the query answered from (see the page's `answer_from`).
     pub srf_hz: Option<f64>,
     pub series_resonances_hz: Vec<f64>,

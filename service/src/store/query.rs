@@ -227,6 +227,9 @@ impl Store {
              CASE WHEN lf.quality = 'poor' AND lf.verdict_json IS NOT NULL \
              AND lf.verdict_json <> '[]' THEN 'withheld' ELSE lf.verdict END AS latest_verdict, \
              lf.drift_max_sigma AS drift_max_sigma, \
+             (SELECT json_extract(d.value, '$.percent') FROM json_each(lf.drift_json, '$.parameters') d \
+              WHERE json_extract(d.value, '$.name') = 'l0_h') AS drift_l0_percent, \
+             p.l_tolerance_percent AS l_tolerance_percent, \
              f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, \
              k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
              SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
@@ -404,6 +407,8 @@ impl Store {
                 latest_fit_id: row.try_get("latest_fit_id")?,
                 latest_verdict: row.try_get("latest_verdict")?,
                 drift_max_sigma: row.try_get("drift_max_sigma")?,
+                drift_l0_percent: row.try_get("drift_l0_percent")?,
+                l_tolerance_percent: row.try_get("l_tolerance_percent")?,
                 srf_hz: row.try_get("srf_hz")?,
                 series_resonances_hz: Vec::new(),
                 l0_h: row.try_get("l0_h")?,

@@ -55,7 +55,10 @@ export async function renderFit(main, [fitId]) {
       h("div", { class: "two-col" }, parameterTable(report), derivedTable(report)),
     );
   }
-  main.append(h("div", { class: "two-col" }, verdictTable(detail), driftTable(detail)));
+  // The part's inductance tolerance colours the drift of L0 (a tolerance, not σ, is what an engineer
+  // holds a lot to).
+  const part = await api.get(`/parts/${encodeURIComponent(detail.part_number)}`).catch(() => null);
+  main.append(h("div", { class: "two-col" }, verdictTable(detail), driftTable(detail, part?.limits?.l_tolerance_percent ?? null)));
   if (report?.material) main.append(materialCard(report.material));
   if (report) main.append(qualityCard(report));
 }
@@ -111,7 +114,7 @@ function header(d) {
       fact("Lot", d.lot ?? "—"),
       fact("Revision", d.revision ?? "—"),
       fact("Method", d.method ?? "—"),
-      fact("Reference impedance", d.z0_ohm != null ? si(d.z0_ohm, "Ω") : "—"),
+      d.method !== "direct" ? fact("Reference impedance", d.z0_ohm != null ? si(d.z0_ohm, "Ω") : "—") : null,
       fact("File", d.file_name ?? "—"),
       fact("SHA-256", h("code", { class: "hash", title: d.sha256 ?? "" }, d.sha256 ? `${d.sha256.slice(0, 16)}…` : "—")),
       fact("Created", time(d.created_at)),
@@ -453,7 +456,34 @@ function verdictTable(d) {
   );
 }
 
-function driftTable(d) {
+// Names people read, for the parameters the drift compares.
+const PARAM_LABELS = {
+  l0_h: "L0",
+  rdc_ohm: "DC resistance",
+  k_ac_ohm_per_sqrt_hz: "Skin-effect coefficient",
+  rp_ohm: "Core-loss resistance",
+  cp_f: "Winding capacitance",
+  ls_h: "Lead inductance",
+  core_corner_hz: "Core corner frequency",
+  core_alpha: "Core broadening α",
+  core_beta: "Core asymmetry β",
+  core_damping: "Core damping ζ",
+  core_air_fraction: "Non-dispersive share of L0",
+  core_resonance_hz: "Core resonance",
+  core_resonance_share: "Resonant share of the core",
+};
+export const paramLabel = (name) => PARAM_LABELS[name] ?? String(name).replace(/^sections\[(\d+)\]\.(\w+)$/, (_, i, f) => `Section ${Number(i) + 1} ${f.split("_")[0].toUpperCase()}`);
+
+// How a change in percent compares with what the part allows: L0 against the part's inductance
+// tolerance; every other parameter against 10 % (common practice, no source), amber from half of it.
+function driftClass(name, percent, tolerance) {
+  if (percent == null) return "";
+  const limit = name === "l0_h" && tolerance != null ? tolerance : 10;
+  const a = Math.abs(percent);
+  return a > limit ? "drift-high" : a > limit / 2 ? "drift-mid" : "";
+}
+
+function driftTable(d, tolerance) {
   const dr = d.drift;
   return h(
     "section",
@@ -469,10 +499,10 @@ function driftTable(d) {
             h("thead", {}, h("tr", {}, ["Parameter", "Baseline", "This fit", "Change", "In σ"].map((t) => h("th", {}, t)))),
             h("tbody", {}, (dr.parameters ?? []).map((p) => {
               const unit = unitFromName(p.name);
-              const z = Math.abs(p.sigma ?? 0);
-              return h("tr", { "data-drift": p.name, class: z > 3 ? "drift-high" : z > 1 ? "drift-mid" : "" }, h("th", {}, p.name), h("td", { class: "num" }, si(p.baseline, unit)), h("td", { class: "num" }, si(p.current, unit)), h("td", { class: "num" }, p.percent == null ? "—" : `${p.percent > 0 ? "+" : ""}${plain(p.percent, 3)} %`), h("td", { class: "num" }, p.sigma == null ? "—" : `${plain(p.sigma, 3)} σ`));
+              return h("tr", { "data-drift": p.name, class: driftClass(p.name, p.percent, tolerance) }, h("th", { title: p.name }, paramLabel(p.name)), h("td", { class: "num" }, si(p.baseline, unit)), h("td", { class: "num" }, si(p.current, unit)), h("td", { class: "num strong" }, p.percent == null ? "—" : `${p.percent > 0 ? "+" : ""}${plain(p.percent, 3)} %`), h("td", { class: "num muted" }, p.sigma == null ? "—" : `${plain(p.sigma, 3)} σ`));
             })),
           ),
+          h("p", { class: "muted small" }, tolerance != null ? `Colour: L0 against the part's ±${plain(tolerance, 3)} % tolerance, other parameters against ±10 %; amber from half of it. σ says how sure the change is, not how much it matters.` : "Colour: each change against ±10 % (the part has no inductance tolerance set); amber from half of it. σ says how sure the change is, not how much it matters."),
         ],
   );
 }

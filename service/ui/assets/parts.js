@@ -120,6 +120,10 @@ export function renderParts(main, _params, search) {
 
 function row(p) {
   const drift = p.drift_max_sigma;
+  const pct = p.drift_l0_percent;
+  // L0's change against the part's inductance tolerance (±10 % without one); σ second.
+  const limit = p.l_tolerance_percent ?? 10;
+  const cls = pct == null ? "" : Math.abs(pct) > limit ? "drift-high" : Math.abs(pct) > limit / 2 ? "drift-mid" : "";
   return h(
     "tr",
     { "data-part": p.part_number },
@@ -131,6 +135,6 @@ function row(p) {
     h("td", { class: "num" }, (p.series_resonances_hz ?? []).length ? p.series_resonances_hz.map((f) => si(f, "Hz", 3)).join(", ") : "—"),
     h("td", {}, p.latest_fit_id != null ? link(fitHref(p.latest_fit_id), badge(p.latest_verdict ?? "no verdict", p.latest_verdict ?? "none")) : badge(null)),
     h("td", {}, p.approved_fit_id != null ? link(fitHref(p.approved_fit_id), `#${p.approved_fit_id}`) : h("span", { class: "muted" }, "none")),
-    h("td", { class: `num ${drift > 3 ? "drift-high" : drift > 1 ? "drift-mid" : ""}` }, drift != null ? `${drift.toFixed(1)} σ` : "—"),
+    h("td", { class: `num ${cls}`, "data-drift-l0": pct ?? "" }, pct != null ? `L0 ${pct > 0 ? "+" : ""}${pct.toFixed(1)} %` : "—", drift != null ? h("div", { class: "pname" }, `largest ${drift.toFixed(1)} σ`) : null),
   );
 }
