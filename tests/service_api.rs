@@ -149,7 +149,10 @@ async fn an_uploaded_sweep_is_fitted_and_its_result_can_be_polled_and_downloaded
         .json()
         .await
         .unwrap();
-    assert_eq!(ready, json!({"database": true, "migrations": true}));
+    assert_eq!(ready["database"], true);
+    assert_eq!(ready["migrations"], true);
+    assert_eq!(ready["audit_chain"], true);
+    assert_eq!(ready["audit_head_hash"].as_str().map(str::len), Some(64));
     let metrics = app
         .client
         .get(app.url("/metrics"))
@@ -837,5 +840,101 @@ async fn verdicts_drift_approvals_and_refits_are_recorded() {
         )
         .await;
     assert_eq!(r.status(), 409);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_record_is_tamper_evident() {
+    use sqlx::Connection;
+    // Arrange: a part with limits, one fitted lot, approved: audit rows about the part and the fit.
+    let app = spawn_app().await;
+    app.create_part("T-1", json!({"dcr_max_ohm": 0.1})).await;
+    let f = upload_synthetic(
+        &app,
+        "T-1",
+        "1",
+        synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 401),
+    )
+    .await;
+    assert_eq!(app.wait_for_fit(f, FIT_TIMEOUT).await["verdict"], "pass");
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{f}/approve"),
+            &app.engineer,
+            &json!({"reason": "baseline"}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let clean = app.store.verify_integrity().await.unwrap();
+    assert!(clean.ok(), "{clean:?}");
+    assert!(
+        clean.audit_rows >= 2 && clean.verdicts_checked == 1,
+        "{clean:?}"
+    );
+    let ready = app.get_json("/readyz", &app.reader).await;
+    assert_eq!(ready["audit_chain"], true, "{ready}");
+    assert_eq!(ready["audit_head_hash"], json!(clean.head_hash));
+
+    let url = format!("sqlite://{}", app.database_path.display());
+    let mut raw = sqlx::SqliteConnection::connect(&url).await.unwrap();
+    // Through SQL the trail cannot be rewritten, not even by INSERT OR REPLACE (which deletes the old
+    // row without firing delete triggers).
+    let replace = sqlx::query(
+        "INSERT OR REPLACE INTO audit (audit_id, at_ms, actor, action) VALUES (1, 0, 'x', 'y')",
+    )
+    .execute(&mut raw)
+    .await;
+    assert!(
+        replace.unwrap_err().to_string().contains("append-only"),
+        "REPLACE refused"
+    );
+    let update = sqlx::query("UPDATE audit SET reason = 'x' WHERE audit_id = 1")
+        .execute(&mut raw)
+        .await;
+    assert!(update.is_err(), "UPDATE refused");
+
+    // A verdict set by hand is caught: it is not what the result and the limits give.
+    sqlx::query("UPDATE fits SET verdict = 'fail' WHERE fit_id = ?")
+        .bind(f)
+        .execute(&mut raw)
+        .await
+        .unwrap();
+    let found = app.store.verify_integrity().await.unwrap();
+    assert!(
+        found
+            .problems
+            .iter()
+            .any(|p| p.contains(&format!("fit {f}'s stored verdict"))),
+        "{found:?}"
+    );
+
+    // Going around the triggers: a row forged onto the end breaks the chain, and /readyz says so.
+    sqlx::query("DROP TRIGGER audit_no_update")
+        .execute(&mut raw)
+        .await
+        .unwrap();
+    sqlx::query(
+        "INSERT INTO audit (audit_id, at_ms, actor, action, prev_hash, hash) \
+         SELECT MAX(audit_id) + 1, 0, 'intruder', 'fit-approved', 'x', 'y' FROM audit",
+    )
+    .execute(&mut raw)
+    .await
+    .unwrap();
+    let r = app.get("/readyz", &app.reader).await;
+    assert_eq!(r.status(), 503);
+    assert!(!app.store.audit_chain_ok().await.0);
+    // An old row changed in place shows in the full check (at every start, and `henrybook verify`).
+    sqlx::query("UPDATE audit SET reason = 'rewritten' WHERE audit_id = 1")
+        .execute(&mut raw)
+        .await
+        .unwrap();
+    let after = app.store.verify_integrity().await.unwrap();
+    assert!(
+        after
+            .problems
+            .iter()
+            .any(|p| p == "audit row 1 was changed after it was written"),
+        "{after:?}"
+    );
     app.stop().await;
 }

@@ -25,6 +25,12 @@ enum Command {
     /// Start the service on a local demo database, load the demo parts and sweeps through the API,
     /// print the results, and keep serving until Ctrl-C.
     Demo(crate::server_cli::demo::DemoArgs),
+    /// Check the record's integrity: the audit trail's hash chain, the results it recorded, and every
+    /// stored verdict against its result and the part's limits. Exit status 1 when anything is wrong.
+    Verify {
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
 }
 
 #[derive(Debug, Subcommand)]
@@ -111,6 +117,26 @@ pub fn main(args: Vec<String>) -> ExitCode {
                 Ok(())
             }
             Command::Demo(args) => demo::run(args).await,
+            Command::Verify { database } => {
+                let store = Store::open(&database.path).await?;
+                let report = store.verify_integrity().await?;
+                store.close().await;
+                println!(
+                    "{} audit rows, head hash {}; {} stored verdicts checked",
+                    report.audit_rows,
+                    report.head_hash.as_deref().unwrap_or("none"),
+                    report.verdicts_checked
+                );
+                for p in &report.problems {
+                    println!("problem: {p}");
+                }
+                if report.ok() {
+                    println!("the record is intact");
+                    Ok(())
+                } else {
+                    anyhow::bail!("{} problems found", report.problems.len())
+                }
+            }
         }
     });
     match result {

@@ -982,6 +982,8 @@ pub fn fit_lumped(
     if let Some(p) = &control.progress {
         p(1.0);
     }
+    let mut warnings = report_warnings(sweep, options);
+    warnings.extend(plausibility_warnings(&model, band_hz));
     let material = options
         .construction
         .as_ref()
@@ -996,7 +998,7 @@ pub fn fit_lumped(
         derived,
         quality,
         assessment,
-        warnings: report_warnings(sweep, options),
+        warnings,
         termination,
         iterations,
         candidates,
@@ -1179,6 +1181,29 @@ fn dispersive_stage(
         }
     }
     Ok(())
+}
+
+/// Figures no inductor of this trade has, which usually mean a wrong unit in the file (a Touchstone
+/// option line saying Hz for data in GHz makes a 100 nH part look like 100 H): said in words, the fit
+/// is not refused. The ranges are common practice, no source: components from about 0.1 nH to 1 H, and
+/// impedance sweeps that reach at least 1 kHz.
+pub fn plausibility_warnings(model: &LumpedModel, band_hz: [f64; 2]) -> Vec<String> {
+    let mut out = Vec::new();
+    if band_hz[1] < 1e3 {
+        out.push(format!(
+            "the sweep ends at {:.4e} Hz: impedance sweeps of inductors reach well above 1 kHz; check \
+             the frequency unit of the file (a Touchstone option line of Hz for data in MHz or GHz)",
+            band_hz[1]
+        ));
+    }
+    if model.l0_h > 1.0 || model.l0_h < 1e-10 {
+        out.push(format!(
+            "the fitted L0 is {:.4e} H, outside what inductors of this kind have (about 0.1 nH to 1 H): \
+             check the file's frequency unit and the method",
+            model.l0_h
+        ));
+    }
+    out
 }
 
 /// The readers' warnings, and how the fit used the sweep's DC reading.
@@ -1533,6 +1558,21 @@ mod tests {
             "{:?}",
             rep.assessment
         );
+    }
+
+    #[test]
+    fn a_frequency_unit_a_thousand_million_times_too_small_is_said_in_words() {
+        // 100 nH measured 10 MHz–3 GHz, read as if the numbers were Hz: the data show 100 H from 10 Hz
+        // to 3 kHz (ωL is unchanged when f shrinks by 1e9 and L grows by 1e9).
+        let mut m = choke();
+        m.l0_h = 100.0;
+        let w = plausibility_warnings(&m, [10.0, 3e3]);
+        assert_eq!(w.len(), 1, "{w:?}");
+        assert!(w[0].contains("fitted L0 is 1.0000e2 H"), "{w:?}");
+        let w = plausibility_warnings(&m, [0.01, 3.0]);
+        assert_eq!(w.len(), 2, "{w:?}");
+        assert!(w[0].contains("frequency unit"), "{w:?}");
+        assert!(plausibility_warnings(&choke(), [1e3, 1e8]).is_empty());
     }
 
     #[test]

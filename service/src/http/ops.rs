@@ -20,14 +20,19 @@ pub struct Readiness {
     pub database: bool,
     /// Every migration this build knows is applied.
     pub migrations: bool,
+    /// The audit trail's hash chain is intact (checked in full at start, then row by row as it grows).
+    pub audit_chain: bool,
+    /// The hash of the newest audit row: keep it elsewhere to detect a rewritten database.
+    pub audit_head_hash: Option<String>,
 }
 
-/// Ready to serve: database reachable and migrations applied (503 otherwise).
+/// Ready to serve: database reachable, migrations applied and the audit chain intact (503 otherwise).
 #[utoipa::path(get, path = "/readyz", tag = "ops",
     responses((status = 200, body = Readiness), (status = 503, body = Readiness)))]
 async fn readyz(State(state): State<AppState>) -> impl IntoResponse {
     let (database, migrations) = state.store.readiness().await;
-    let status = if database && migrations {
+    let (audit_chain, audit_head_hash) = state.store.audit_chain_ok().await;
+    let status = if database && migrations && audit_chain {
         StatusCode::OK
     } else {
         StatusCode::SERVICE_UNAVAILABLE
@@ -37,6 +42,8 @@ async fn readyz(State(state): State<AppState>) -> impl IntoResponse {
         Json(Readiness {
             database,
             migrations,
+            audit_chain,
+            audit_head_hash,
         }),
     )
 }

@@ -461,16 +461,27 @@ async fn sweep_file(
 }
 
 /// A file name safe inside a quoted header parameter.
+/// A download file name that cannot name a path or break the header: the last component of what was
+/// uploaded (after any `/` or `\\`), letters, digits, `.`, `-` and `_` only (anything else becomes
+/// `_`), no leading dot, at most 120 characters; `download` when nothing is left.
 pub fn safe_file_name(name: &str) -> String {
-    name.chars()
+    let last = name.rsplit(['/', '\\']).next().unwrap_or_default();
+    let cleaned: String = last
+        .chars()
         .map(|c| {
-            if c.is_ascii_graphic() && c != '"' && c != '\\' {
+            if c.is_ascii_alphanumeric() || matches!(c, '.' | '-' | '_') {
                 c
             } else {
                 '_'
             }
         })
-        .collect()
+        .collect();
+    let trimmed: String = cleaned.trim_start_matches('.').chars().take(120).collect();
+    if trimmed.chars().all(|c| c == '_' || c == '.') {
+        "download".into()
+    } else {
+        trimmed
+    }
 }
 
 pub fn router() -> OpenApiRouter<AppState> {
@@ -482,6 +493,24 @@ pub fn router() -> OpenApiRouter<AppState> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn download_names_cannot_name_a_path_or_break_the_header() {
+        for (given, want) in [
+            ("lot-7_reflection.s1p", "lot-7_reflection.s1p"),
+            ("../../etc/passwd", "passwd"),
+            ("..\\..\\boot.ini", "boot.ini"),
+            ("a\"; filename=evil.exe", "a___filename_evil.exe"),
+            ("..", "download"),
+            ("/", "download"),
+            (".hidden.csv", "hidden.csv"),
+            ("messung äöü.csv", "messung____.csv"),
+            ("x\r\nSet-Cookie: a=b", "x__Set-Cookie__a_b"),
+        ] {
+            assert_eq!(safe_file_name(given), want, "{given:?}");
+        }
+        assert_eq!(safe_file_name(&"a".repeat(500)).len(), 120);
+    }
 
     #[test]
     fn stored_options_read_back_to_the_same_json() {

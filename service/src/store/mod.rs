@@ -9,6 +9,7 @@
 
 pub mod batch;
 pub mod fits;
+pub mod integrity;
 pub mod jobs;
 pub mod parts;
 pub mod query;
@@ -47,6 +48,8 @@ pub struct Store {
     pub(crate) reader: SqlitePool,
     /// Group commit on the writer for the busy paths (uploads, claims, outcomes).
     pub(crate) batch: batch::Batcher,
+    /// The last audit row /readyz has verified, with its hash: each check continues from there.
+    pub(crate) chain_checked: std::sync::Arc<tokio::sync::Mutex<(i64, Option<String>, bool)>>,
 }
 
 impl Store {
@@ -85,11 +88,55 @@ impl Store {
             .await
             .with_context(|| format!("cannot open the database {}", path.display()))?;
         let batch = batch::Batcher::start(writer.clone());
-        Ok(Store {
+        let store = Store {
             writer,
             reader,
             batch,
-        })
+            chain_checked: Default::default(),
+        };
+        // Rows from before the chain existed are sealed once; then the whole chain is checked, so a
+        // trail changed while the service was down shows at start.
+        store
+            .seal_audit()
+            .await
+            .context("cannot seal the audit trail")?;
+        let (report, last, head) = store
+            .verify_audit(0, None)
+            .await
+            .context("cannot read the audit trail")?;
+        if report.ok() {
+            tracing::info!(
+                audit_rows = report.audit_rows,
+                head_hash = head.as_deref().unwrap_or("none"),
+                "the audit trail's hash chain is intact"
+            );
+        } else {
+            tracing::error!(problems = ?report.problems, "the audit trail's hash chain is broken");
+        }
+        *store.chain_checked.lock().await = (last, head, report.ok());
+        Ok(store)
+    }
+
+    /// /readyz's audit check: continues the chain from the last row it verified (cheap); once broken
+    /// it stays broken until the service restarts and the full check passes.
+    pub async fn audit_chain_ok(&self) -> (bool, Option<String>) {
+        let mut state = self.chain_checked.lock().await;
+        if !state.2 {
+            return (false, state.1.clone());
+        }
+        match self.verify_audit(state.0, state.1.as_deref()).await {
+            Ok((report, last, head)) => {
+                if !report.ok() {
+                    tracing::error!(problems = ?report.problems, "the audit trail's hash chain is broken");
+                }
+                *state = (last, head, report.ok());
+            }
+            Err(e) => {
+                tracing::warn!(error = %e, "cannot read the audit trail");
+                return (false, state.1.clone());
+            }
+        }
+        (state.2, state.1.clone())
     }
 
     /// Readiness: the database answers and every embedded migration is applied.
@@ -150,6 +197,7 @@ pub fn sha256_hex(bytes: &[u8]) -> String {
 }
 
 /// Records one audit entry inside a write transaction.
+/// The row is chained into the audit trail's hash chain ([`integrity`]).
 pub(crate) async fn audit(
     tx: &mut sqlx::SqliteConnection,
     actor: &str,
@@ -158,18 +206,7 @@ pub(crate) async fn audit(
     fit_id: Option<i64>,
     reason: Option<&str>,
 ) -> StoreResult<()> {
-    sqlx::query(
-        "INSERT INTO audit (at_ms, actor, action, part_id, fit_id, reason) VALUES (?, ?, ?, ?, ?, ?)",
-    )
-    .bind(now_ms())
-    .bind(actor)
-    .bind(action)
-    .bind(part_id)
-    .bind(fit_id)
-    .bind(reason)
-    .execute(tx)
-    .await?;
-    Ok(())
+    integrity::append(tx, actor, action, part_id, fit_id, reason).await
 }
 
 #[cfg(test)]
