@@ -170,8 +170,13 @@ async fn when_every_connection_is_busy_a_new_one_is_refused_with_503_and_retry_a
     assert!(lower.contains("retry-after: 1"), "{refusal}");
     assert!(lower.contains("application/problem+json"), "{refusal}");
     let body = &refusal[refusal.find("\r\n\r\n").unwrap() + 4..];
+    assert!(
+        lower.contains(&format!("content-length: {}\r\n", body.len())),
+        "{refusal}"
+    );
     let problem: serde_json::Value = serde_json::from_str(body).unwrap();
     assert_eq!(problem["status"], 503);
+    assert_eq!(problem["type"], "urn:henrybook:problem:overloaded");
     // Once the stalled uploads go away, their places are free again.
     drop(busy);
     let deadline = tokio::time::Instant::now() + PATIENCE;

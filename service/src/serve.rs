@@ -430,14 +430,23 @@ where
     }
 }
 
-/// The answer to a connection refused at the limit (written once, without waiting, then closed).
-const REFUSAL: &[u8] = b"HTTP/1.1 503 Service Unavailable\r\n\
-content-type: application/problem+json\r\n\
-retry-after: 1\r\n\
-connection: close\r\n\
-content-length: 201\r\n\r\n\
-{\"type\":\"urn:henrybook:problem:unavailable\",\"title\":\"The service is not ready\",\"status\":503,\
-\"detail\":\"every connection the service accepts is busy with a request; try again shortly\"}";
+/// The answer to a connection refused at the limit (written once, without waiting, then closed): a
+/// 503 `overloaded` problem with Retry-After, as the routes would answer it.
+fn refusal() -> Vec<u8> {
+    let body = serde_json::json!({
+        "type": "urn:henrybook:problem:overloaded",
+        "title": "The service is at capacity; try again later",
+        "status": 503,
+        "detail": "every connection the service accepts is busy with a request; try again shortly",
+    })
+    .to_string();
+    format!(
+        "HTTP/1.1 503 Service Unavailable\r\ncontent-type: application/problem+json\r\n\
+         retry-after: 1\r\nconnection: close\r\ncontent-length: {}\r\n\r\n{body}",
+        body.len()
+    )
+    .into_bytes()
+}
 
 /// Serves `router` on `listener` until `stop` turns true, then stops accepting, lets open connections
 /// finish their requests, and closes whatever is still open `drain` after `stop` (a connection
@@ -455,6 +464,7 @@ pub async fn serve_http(
     use tower::ServiceExt;
 
     let gate = Gate::new(limits, true);
+    let refused = refusal();
     let (closing_tx, closing_rx) = watch::channel(false);
     let mut connections = JoinSet::new();
     loop {
@@ -478,7 +488,7 @@ pub async fn serve_http(
             Admission::Refused(s) => {
                 metrics::counter!("henrybook_connections_refused_total", "listener" => "http")
                     .increment(1);
-                let _ = s.try_write(REFUSAL);
+                let _ = s.try_write(&refused);
                 continue;
             }
         };
