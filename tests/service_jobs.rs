@@ -402,3 +402,45 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
     assert_eq!(f["status"], "succeeded", "{f}");
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_part_at_its_bound_is_refused_before_its_file_is_received() {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    settings.max_queued_fits_per_part = 1;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    app.create_part("Q-1", json!({})).await;
+    assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
+    // A form naming the part first announces a 1 MB file and sends none of it.
+    let mut c = tokio::net::TcpStream::connect(app.base_url.trim_start_matches("http://"))
+        .await
+        .unwrap();
+    let head = format!(
+        "POST /api/v1/sweeps HTTP/1.1\r\nhost: x\r\nauthorization: Bearer {}\r\n\
+         content-type: multipart/form-data; boundary=zz\r\ncontent-length: 1000000\r\n\r\n\
+         --zz\r\ncontent-disposition: form-data; name=\"part_number\"\r\n\r\nQ-1\r\n\
+         --zz\r\ncontent-disposition: form-data; name=\"file\"; filename=\"big.csv\"\r\n\r\n",
+        app.inspector
+    );
+    c.write_all(head.as_bytes()).await.unwrap();
+    let mut got = vec![0u8; 4096];
+    let n = tokio::time::timeout(Duration::from_secs(20), c.read(&mut got))
+        .await
+        .expect("answered without waiting for the file")
+        .unwrap();
+    let text = String::from_utf8_lossy(&got[..n]).to_ascii_lowercase();
+    assert!(text.starts_with("http/1.1 429"), "{text}");
+    assert!(text.contains("retry-after: "), "{text}");
+    app.stop().await;
+}

@@ -256,6 +256,14 @@ async fn upload(
                     )));
                 }
                 let text = field.text().await.map_err(multipart_problem)?;
+                // A part already at its bound is refused before its file is received, when the
+                // form names the part first.
+                if name == "part_number" && file.is_none() {
+                    state
+                        .backpressure
+                        .check_queue(&state.store, PartRef::Number(text.trim()))
+                        .await?;
+                }
                 fields.insert(name, text);
             }
             other => {
