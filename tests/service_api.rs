@@ -456,6 +456,34 @@ async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
         .await
         .unwrap();
     assert_eq!(r.status(), 422);
+    // A lot name that is not UTF-8 is refused, not stored with replacement characters.
+    let r = app
+        .client
+        .post(app.url("/api/v1/sweeps"))
+        .bearer_auth(&app.inspector)
+        .multipart(
+            reqwest::multipart::Form::new()
+                .part(
+                    "file",
+                    reqwest::multipart::Part::bytes(good.clone()).file_name("a.csv"),
+                )
+                .text("part_number", "P-1")
+                .part(
+                    "lot",
+                    reqwest::multipart::Part::bytes(vec![b'L', 0xff, 0xfe]),
+                )
+                .text("method", "direct"),
+        )
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(r.status(), 422);
+    assert!(
+        r.text()
+            .await
+            .unwrap()
+            .contains("the field lot is not UTF-8 text")
+    );
     // Nothing stored: no sweep, no fit, no lot.
     let q = app.get_json("/api/v1/queue", &app.reader).await;
     assert_eq!(
@@ -936,5 +964,80 @@ async fn the_record_is_tamper_evident() {
             .any(|p| p == "audit row 1 was changed after it was written"),
         "{after:?}"
     );
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn fit_options_and_readings_out_of_range_are_refused_before_anything_is_stored() {
+    let app = spawn_app().await;
+    app.create_part("O-1", json!({})).await;
+    // Synthetic sweep of a known model (invented values).
+    let csv = synthetic_csv(&simple_model(10e-6, 0.05, 5e-12), 1e4, 1e8, 101);
+    let base = [("part_number", "O-1"), ("lot", "L1")];
+    for (field, value, named) in [
+        ("options", r#"{"max_sections": 99}"#, "max_sections"),
+        ("options", r#"{"max_iterations": 0}"#, "max_iterations"),
+        (
+            "options",
+            r#"{"family": "rational", "rational_order": 0}"#,
+            "rational_order",
+        ),
+        (
+            "options",
+            r#"{"family": "rational", "rational_order": 2000}"#,
+            "rational_order",
+        ),
+        ("options", r#"{"time_limit_s": -1}"#, "time_limit_s"),
+        ("options", r#"{"time_limit_s": 1e300}"#, "time_limit_s"),
+        ("options", r#"{"dcr": {"value_ohm": -0.1}}"#, "DCR"),
+        ("dcr_ohm", "-0.1", "dcr_ohm"),
+        ("dcr_ohm", "1e300", "dcr_ohm"),
+        ("z0_ohm", "1e9", "z0_ohm"),
+        ("temperature_c", "5000", "temperature_c"),
+    ] {
+        let mut fields = base.to_vec();
+        fields.push((field, value));
+        let r = app.upload("o.csv", csv.clone(), &fields).await;
+        assert_eq!(r.status(), 422, "{field}={value}");
+        let body: Value = r.json().await.unwrap();
+        assert_eq!(body["type"], "urn:henrybook:problem:validation", "{body}");
+        let detail = body["detail"].as_str().unwrap();
+        assert!(detail.contains(named), "{field}={value}: {detail}");
+    }
+    let q = app.get_json("/api/v1/queue", &app.reader).await;
+    assert_eq!(
+        q,
+        json!({"queued": 0, "running": 0, "succeeded": 0, "failed": 0, "cancelled": 0})
+    );
+
+    // A refit checks its options the same way and adds no revision.
+    let r = app.upload("o.csv", csv, &base).await;
+    assert_eq!(r.status(), 202);
+    let fit_id = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
+    app.wait_for_fit(fit_id, FIT_TIMEOUT).await;
+    for (options, named) in [
+        (json!({"max_sections": 99}), "max_sections"),
+        (json!({"time_limit_s": -1}), "time_limit_s"),
+        (
+            json!({"family": "rational", "rational_order": 0}),
+            "rational_order",
+        ),
+    ] {
+        let r = app
+            .post_json(
+                &format!("/api/v1/fits/{fit_id}/refit"),
+                &app.engineer,
+                &json!({ "options": options }),
+            )
+            .await;
+        assert_eq!(r.status(), 422, "{options}");
+        let body: Value = r.json().await.unwrap();
+        assert!(
+            body["detail"].as_str().unwrap().contains(named),
+            "{options}: {body}"
+        );
+    }
+    let fits = app.get_json("/api/v1/fits", &app.reader).await;
+    assert_eq!(fits["items"].as_array().unwrap().len(), 1, "{fits}");
     app.stop().await;
 }

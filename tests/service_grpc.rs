@@ -1213,6 +1213,35 @@ async fn bad_arguments_are_invalid_argument_naming_the_field_and_store_nothing()
             },
             "options",
         ),
+        // Options are checked against their ranges before anything is stored, not when the fit runs.
+        (
+            proto::UploadSweepRequest {
+                options_json: Some(r#"{"max_sections": 99}"#.into()),
+                ..base.clone()
+            },
+            "max_sections",
+        ),
+        (
+            proto::UploadSweepRequest {
+                options_json: Some(r#"{"time_limit_s": 1e300}"#.into()),
+                ..base.clone()
+            },
+            "time_limit_s",
+        ),
+        (
+            proto::UploadSweepRequest {
+                options_json: Some(r#"{"family": "rational", "rational_order": 2000}"#.into()),
+                ..base.clone()
+            },
+            "rational_order",
+        ),
+        (
+            proto::UploadSweepRequest {
+                dcr_ohm: Some(1e300),
+                ..base.clone()
+            },
+            "dcr_ohm",
+        ),
         (
             proto::UploadSweepRequest {
                 file: Vec::new(),

@@ -209,3 +209,238 @@ async fn a_running_fit_can_be_cancelled_and_retried() {
     assert_eq!(f["status"], "succeeded", "{f}");
     app.stop().await;
 }
+
+/// Uploads one distinct synthetic sweep (invented model) for `part`.
+async fn upload_one(app: &TestApp, part: &str, i: usize) -> reqwest::Response {
+    let csv = synthetic_csv(
+        &simple_model(1e-5 * (1.0 + i as f64 / 10.0), 0.05, 5e-12),
+        1e4,
+        1e8,
+        101,
+    );
+    app.upload(
+        &format!("{part}-{i}.csv"),
+        csv,
+        &[("part_number", part), ("lot", "L")],
+    )
+    .await
+}
+
+async fn assert_busy(r: reqwest::Response, status: u16, kind: &str) {
+    assert_eq!(r.status().as_u16(), status);
+    let after: u64 = r.headers()["retry-after"]
+        .to_str()
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert!(after >= 1);
+    assert_eq!(r.headers()["content-type"], "application/problem+json");
+    let body: Value = r.json().await.unwrap();
+    assert_eq!(
+        body["type"],
+        format!("urn:henrybook:problem:{kind}"),
+        "{body}"
+    );
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn past_the_queue_bounds_uploads_and_refits_are_refused_with_retry_after() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    settings.max_queued_fits_per_part = 2;
+    settings.max_queued_fits = 3;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    app.create_part("Q-1", json!({})).await;
+    app.create_part("Q-2", json!({})).await;
+    let mut ids = Vec::new();
+    for i in 0..2 {
+        let r = upload_one(&app, "Q-1", i).await;
+        assert_eq!(r.status(), 202);
+        ids.push(r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap());
+    }
+    // The part's bound: 429, per part.
+    assert_busy(upload_one(&app, "Q-1", 2).await, 429, "throttled").await;
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/refit", ids[0]),
+            &app.engineer,
+            &json!({"options": {"max_sections": 1}}),
+        )
+        .await;
+    assert_busy(r, 429, "throttled").await;
+    // Another part still gets in, up to the service's bound: then 503 for everyone.
+    assert_eq!(upload_one(&app, "Q-2", 3).await.status(), 202);
+    assert_busy(upload_one(&app, "Q-2", 4).await, 503, "overloaded").await;
+
+    // gRPC answers the same bounds with RESOURCE_EXHAUSTED and UNAVAILABLE.
+    let mut fits = henrybook::grpc::proto::fit_registry_client::FitRegistryClient::new(
+        app.grpc_channel().await,
+    );
+    let message = |part: &str| henrybook::grpc::proto::UploadSweepRequest {
+        file_name: format!("{part}-9.csv"),
+        file: synthetic_csv(&simple_model(3e-5, 0.05, 5e-12), 1e4, 1e8, 101),
+        part_number: part.into(),
+        lot: "L".into(),
+        ..Default::default()
+    };
+    let s = fits
+        .upload_sweep(henrybook_tests::service::grpc_request(
+            message("Q-2"),
+            &app.inspector,
+        ))
+        .await
+        .unwrap_err();
+    assert_eq!(s.code(), tonic::Code::Unavailable, "{s:?}");
+    assert!(s.metadata().get("retry-after").is_some(), "{s:?}");
+
+    // Nothing of the refused was stored: three fits, queued or running.
+    let q = app.get_json("/api/v1/queue", &app.reader).await;
+    assert_eq!(
+        q["queued"].as_i64().unwrap() + q["running"].as_i64().unwrap(),
+        3,
+        "{q}"
+    );
+    let all = app.get_json("/api/v1/fits", &app.reader).await;
+    assert_eq!(all["items"].as_array().unwrap().len(), 3);
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_part_over_its_bound_is_resource_exhausted_over_grpc() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    settings.max_queued_fits_per_part = 1;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    app.create_part("Q-1", json!({})).await;
+    assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
+    let mut fits = henrybook::grpc::proto::fit_registry_client::FitRegistryClient::new(
+        app.grpc_channel().await,
+    );
+    let s = fits
+        .upload_sweep(henrybook_tests::service::grpc_request(
+            henrybook::grpc::proto::UploadSweepRequest {
+                file_name: "Q-1-9.csv".into(),
+                file: synthetic_csv(&simple_model(3e-5, 0.05, 5e-12), 1e4, 1e8, 101),
+                part_number: "Q-1".into(),
+                lot: "L".into(),
+                ..Default::default()
+            },
+            &app.inspector,
+        ))
+        .await
+        .unwrap_err();
+    assert_eq!(s.code(), tonic::Code::ResourceExhausted, "{s:?}");
+    assert!(s.metadata().get("retry-after").is_some(), "{s:?}");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
+    // Options reach the database only through the checks at upload and refit; a row stored by an
+    // older build (or edited by hand) must fail its own fit, with the option named, not the worker.
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    let app = spawn_app_with(
+        dir.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 2).await;
+    let tokens = app.tokens();
+    app.stop().await;
+    let db = sqlx::SqlitePool::connect(&format!("sqlite:{}", dir.path().join("h.db").display()))
+        .await
+        .unwrap();
+    for (id, options) in ids.iter().zip([
+        r#"{"time_limit_s": 1e300}"#,
+        r#"{"family": "rational", "rational_order": 2000}"#,
+    ]) {
+        sqlx::query("UPDATE fits SET options_json = ? WHERE fit_id = ?")
+            .bind(options)
+            .bind(id)
+            .execute(&db)
+            .await
+            .unwrap();
+    }
+    db.close().await;
+    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    for (id, named) in ids.iter().zip(["time_limit_s", "rational_order"]) {
+        let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
+        assert_eq!(f["status"], "failed", "{f}");
+        assert!(f["error"].as_str().unwrap().contains(named), "{f}");
+    }
+    // The worker is still there: a good upload afterwards is fitted.
+    let r = upload_one(&app, "R-1", 50).await;
+    let id = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
+    let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
+    assert_eq!(f["status"], "succeeded", "{f}");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_part_at_its_bound_is_refused_before_its_file_is_received() {
+    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    settings.max_queued_fits_per_part = 1;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    app.create_part("Q-1", json!({})).await;
+    assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
+    // A form naming the part first announces a 1 MB file and sends none of it.
+    let mut c = tokio::net::TcpStream::connect(app.base_url.trim_start_matches("http://"))
+        .await
+        .unwrap();
+    let head = format!(
+        "POST /api/v1/sweeps HTTP/1.1\r\nhost: x\r\nauthorization: Bearer {}\r\n\
+         content-type: multipart/form-data; boundary=zz\r\ncontent-length: 1000000\r\n\r\n\
+         --zz\r\ncontent-disposition: form-data; name=\"part_number\"\r\n\r\nQ-1\r\n\
+         --zz\r\ncontent-disposition: form-data; name=\"file\"; filename=\"big.csv\"\r\n\r\n",
+        app.inspector
+    );
+    c.write_all(head.as_bytes()).await.unwrap();
+    let mut got = vec![0u8; 4096];
+    let n = tokio::time::timeout(Duration::from_secs(20), c.read(&mut got))
+        .await
+        .expect("answered without waiting for the file")
+        .unwrap();
+    let text = String::from_utf8_lossy(&got[..n]).to_ascii_lowercase();
+    assert!(text.starts_with("http/1.1 429"), "{text}");
+    assert!(text.contains("retry-after: "), "{text}");
+    app.stop().await;
+}

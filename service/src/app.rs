@@ -20,6 +20,8 @@ pub struct AppState {
     pub engine: Arc<dyn Engine>,
     pub settings: Arc<Settings>,
     pub metrics: PrometheusHandle,
+    /// The bounds on queued fits and uploads in flight.
+    pub backpressure: Arc<crate::http::backpressure::Backpressure>,
 }
 
 /// The process-wide Prometheus recorder (installed once, shared by every application in a process).
@@ -94,6 +96,7 @@ impl Application {
             store,
             jobs: pool.handle(),
             engine,
+            backpressure: Arc::new(crate::http::backpressure::Backpressure::new(&settings)),
             settings: Arc::new(settings),
             metrics: metrics_handle(),
         };
@@ -136,10 +139,15 @@ impl Application {
         shutdown: impl Future<Output = ()> + Send + 'static,
     ) -> anyhow::Result<()> {
         let (stop_tx, stop_rx) = watch::channel(false);
+        // The instant shutdown was asked for: everything below ends `drain_timeout` after it.
+        let (stopped_tx, stopped_at) = tokio::sync::oneshot::channel::<tokio::time::Instant>();
         tokio::spawn(async move {
             shutdown.await;
+            let _ = stopped_tx.send(tokio::time::Instant::now());
             let _ = stop_tx.send(true);
         });
+        let drain = self.state.settings.drain_timeout;
+        let limits = self.state.settings.connection_limits();
         // Dropping `run` (as an aborted task does) stops the pool too: its running fits are then
         // abandoned with their leases, exactly as in a crash.
         let mut pool = AbortOnDrop(Some(tokio::spawn(self.pool.run(stop_rx.clone()))));
@@ -150,23 +158,34 @@ impl Application {
             stop_rx.clone(),
         ))));
         let router = crate::http::router(self.state);
-        let mut http_stop = stop_rx;
         tracing::info!(address = %self.address, grpc_address = %self.grpc_address, "henrybook is serving");
-        axum::serve(self.listener, router)
-            .with_graceful_shutdown(async move {
-                let _ = http_stop.wait_for(|s| *s).await;
-            })
-            .await
-            .context("the HTTP server stopped")?;
-        // An HTTP failure above returns at once: dropping the guard aborts gRPC.
+        crate::serve::serve_http(self.listener, router, limits, stop_rx, drain).await;
+        // Shutdown was asked for (the HTTP loop only ends then); gRPC and the pool get what is left of
+        // the drain deadline, then are aborted: a fit abandoned so keeps its lease, which expires and
+        // runs it again at the next start, as after a crash.
+        let deadline = match stopped_at.await {
+            Ok(at) => at + drain,
+            Err(_) => tokio::time::Instant::now(),
+        };
         if let Some(handle) = grpc.0.take() {
-            handle
-                .await
-                .context("the gRPC server task")?
-                .context("the gRPC server stopped")?;
+            match tokio::time::timeout_at(deadline, handle).await {
+                Ok(joined) => joined
+                    .context("the gRPC server task")?
+                    .context("the gRPC server stopped")?,
+                Err(_) => {
+                    tracing::warn!("gRPC connections still open at the drain deadline: closed")
+                }
+            }
         }
         if let Some(handle) = pool.0.take() {
-            handle.await.context("the worker pool stopped")?;
+            let abort = handle.abort_handle();
+            match tokio::time::timeout_at(deadline, handle).await {
+                Ok(joined) => joined.context("the worker pool stopped")?,
+                Err(_) => {
+                    tracing::warn!("fits still running at the drain deadline: abandoned");
+                    abort.abort();
+                }
+            }
         }
         store.close().await;
         tracing::info!("henrybook stopped");

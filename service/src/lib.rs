@@ -19,6 +19,7 @@
 //!   HTTP, with the same tokens and roles.
 //! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
 //!   the baseline, the fixed grid for queries) and the API's JSON shapes.
+//! - [`serve`]: the listeners' connections: limit, header-read and idle timeouts, drain deadline.
 //! - [`app`] builds and runs the whole service; [`settings`] holds its typed settings.
 //!
 //! The command line lives in [`cli`]; `main.rs` only hands it the arguments.
@@ -32,6 +33,7 @@ pub mod http;
 pub mod jobs;
 pub mod model;
 pub mod registry;
+pub mod serve;
 pub mod server_cli;
 pub mod settings;
 pub mod store;

@@ -39,6 +39,37 @@ pub struct ServeArgs {
     /// How long shutdown waits for running fits before releasing their lease, in seconds.
     #[arg(long, env = "HENRYBOOK_SHUTDOWN_GRACE_S", default_value_t = 20.0)]
     pub shutdown_grace_s: f64,
+    /// Most connections open at once, per listener (HTTP and gRPC each); at the limit a new connection
+    /// takes the place of the longest-idle one.
+    #[arg(long, env = "HENRYBOOK_MAX_CONNECTIONS", default_value_t = 256)]
+    pub max_connections: usize,
+    /// Longest a client may take to send a request's head once it started, in seconds (HTTP).
+    #[arg(long, env = "HENRYBOOK_HEADER_READ_TIMEOUT_S", default_value_t = 10.0)]
+    pub header_read_timeout_s: f64,
+    /// Longest a connection may stay open without a request in flight, in seconds.
+    #[arg(long, env = "HENRYBOOK_IDLE_TIMEOUT_S", default_value_t = 60.0)]
+    pub idle_timeout_s: f64,
+    /// Hard deadline of shutdown, in seconds from the signal: connections still open and fits still
+    /// running then are closed and abandoned (their jobs run again at the next start).
+    #[arg(long, env = "HENRYBOOK_DRAIN_TIMEOUT_S", default_value_t = 30.0)]
+    pub drain_timeout_s: f64,
+    /// Most fits queued or running at once; past it uploads, refits and retries get 503.
+    #[arg(long, env = "HENRYBOOK_MAX_QUEUED_FITS", default_value_t = 1000)]
+    pub max_queued_fits: i64,
+    /// Most fits of one part queued or running at once; past it that part's uploads get 429.
+    #[arg(
+        long,
+        env = "HENRYBOOK_MAX_QUEUED_FITS_PER_PART",
+        default_value_t = 100
+    )]
+    pub max_queued_fits_per_part: i64,
+    /// Most upload bytes received and read at once (all uploads together); past it uploads get 503.
+    #[arg(long, env = "HENRYBOOK_MAX_UPLOAD_BYTES_IN_FLIGHT", default_value_t = 128 * 1024 * 1024)]
+    pub max_upload_bytes_in_flight: usize,
+    /// Uploads read (parsed and checked) at once (default: half the workers, at least one), so that
+    /// reading uploads leaves the CPU to the fits.
+    #[arg(long, env = "HENRYBOOK_UPLOAD_READERS")]
+    pub upload_readers: Option<usize>,
     /// Log format.
     #[arg(long, env = "HENRYBOOK_LOG_FORMAT", value_enum, default_value = "text")]
     pub log_format: LogFormat,
@@ -68,6 +99,16 @@ pub struct Settings {
     pub lease: Duration,
     pub max_attempts: i64,
     pub shutdown_grace: Duration,
+    pub max_queued_fits: i64,
+    pub max_queued_fits_per_part: i64,
+    pub max_upload_bytes_in_flight: usize,
+    pub upload_readers: usize,
+    /// Most open connections per listener.
+    pub max_connections: usize,
+    pub header_read_timeout: Duration,
+    pub idle_timeout: Duration,
+    /// Shutdown ends this long after the signal at the latest.
+    pub drain_timeout: Duration,
     /// How often an idle worker pool looks for work it was not told about (e.g. expired leases).
     pub poll_interval: Duration,
 }
@@ -85,6 +126,14 @@ impl Settings {
             lease: Duration::from_secs(30),
             max_attempts: 3,
             shutdown_grace: Duration::from_secs(20),
+            max_queued_fits: 1000,
+            max_queued_fits_per_part: 100,
+            max_upload_bytes_in_flight: 128 * 1024 * 1024,
+            upload_readers: default_upload_readers(default_workers()),
+            max_connections: 256,
+            header_read_timeout: Duration::from_secs(10),
+            idle_timeout: Duration::from_secs(60),
+            drain_timeout: Duration::from_secs(30),
             poll_interval: Duration::from_millis(500),
         }
     }
@@ -92,6 +141,10 @@ impl Settings {
 
 fn default_workers() -> usize {
     std::thread::available_parallelism().map_or(2, |n| n.get())
+}
+
+fn default_upload_readers(workers: usize) -> usize {
+    (workers / 2).max(1)
 }
 
 fn seconds(name: &str, s: f64) -> anyhow::Result<Duration> {
@@ -113,6 +166,34 @@ impl TryFrom<&ServeArgs> for Settings {
             "--max-body-bytes must be at least 1024"
         );
         let lease = seconds("--lease-s", a.lease_s)?;
+        anyhow::ensure!(
+            a.max_connections >= 1,
+            "--max-connections must be at least 1"
+        );
+        anyhow::ensure!(
+            a.max_queued_fits >= 1 && a.max_queued_fits_per_part >= 1,
+            "--max-queued-fits and --max-queued-fits-per-part must be at least 1"
+        );
+        anyhow::ensure!(
+            a.max_upload_bytes_in_flight >= a.max_body_bytes,
+            "--max-upload-bytes-in-flight ({}) must be at least --max-body-bytes ({}), or the largest \
+             upload could never be taken",
+            a.max_upload_bytes_in_flight,
+            a.max_body_bytes
+        );
+        let upload_readers = a
+            .upload_readers
+            .unwrap_or_else(|| default_upload_readers(workers));
+        anyhow::ensure!(upload_readers >= 1, "--upload-readers must be at least 1");
+        let shutdown_grace = seconds("--shutdown-grace-s", a.shutdown_grace_s)?;
+        let drain_timeout = seconds("--drain-timeout-s", a.drain_timeout_s)?;
+        anyhow::ensure!(
+            shutdown_grace < drain_timeout,
+            "--shutdown-grace-s ({} s) must be shorter than --drain-timeout-s ({} s): the grace is \
+             the part of the drain that running fits may use",
+            a.shutdown_grace_s,
+            a.drain_timeout_s
+        );
         Ok(Settings {
             listen: a.listen,
             grpc_listen: a.grpc_listen,
@@ -122,8 +203,27 @@ impl TryFrom<&ServeArgs> for Settings {
             request_timeout: seconds("--request-timeout-s", a.request_timeout_s)?,
             lease,
             max_attempts: a.max_attempts,
-            shutdown_grace: seconds("--shutdown-grace-s", a.shutdown_grace_s)?,
+            shutdown_grace,
+            max_queued_fits: a.max_queued_fits,
+            max_queued_fits_per_part: a.max_queued_fits_per_part,
+            max_upload_bytes_in_flight: a.max_upload_bytes_in_flight,
+            upload_readers,
+            max_connections: a.max_connections,
+            header_read_timeout: seconds("--header-read-timeout-s", a.header_read_timeout_s)?,
+            idle_timeout: seconds("--idle-timeout-s", a.idle_timeout_s)?,
+            drain_timeout,
             poll_interval: (lease / 4).min(Duration::from_millis(500)),
         })
+    }
+}
+
+impl Settings {
+    /// The connection limits of each listener.
+    pub fn connection_limits(&self) -> crate::serve::Limits {
+        crate::serve::Limits {
+            max_connections: self.max_connections,
+            header_read_timeout: self.header_read_timeout,
+            idle_timeout: self.idle_timeout,
+        }
     }
 }

@@ -158,6 +158,12 @@ async fn main() -> anyhow::Result<()> {
             &format!("127.0.0.1:{port}"),
             "--grpc-listen",
             "127.0.0.1:0",
+            // This script measures throughput with every upload taken: the queue bounds (one part
+            // here) are lifted; tests/load/flood.sh measures them.
+            "--max-queued-fits",
+            "100000",
+            "--max-queued-fits-per-part",
+            "100000",
             "--database",
         ])
         .arg(&db)

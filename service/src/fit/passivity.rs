@@ -18,7 +18,7 @@ mod nnls;
 
 use crate::fit::derived::golden_minimum;
 use crate::fit::vector::linalg::{PivotedQr, rational_zeros};
-use crate::fit::vector::{Coefficients, FitData, Poles, basis_at, from_model, linear_system};
+use crate::fit::vector::{Coefficients, FitData, Poles, Stop, basis_at, from_model, linear_system};
 use crate::model::RationalModel;
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
@@ -317,8 +317,17 @@ pub(crate) struct Enforced {
 pub(crate) enum EnforceFailure {
     Unstable,
     Infeasible,
-    NotConverged { rounds: usize },
-    OverBound { rms_before: f64, rms_after: f64 },
+    NotConverged {
+        rounds: usize,
+    },
+    /// The fit's time limit ran out, or it was cancelled, before Re Z ≥ 0 was reached.
+    Stopped {
+        rounds: usize,
+    },
+    OverBound {
+        rms_before: f64,
+        rms_after: f64,
+    },
 }
 
 impl std::fmt::Display for EnforceFailure {
@@ -334,6 +343,11 @@ impl std::fmt::Display for EnforceFailure {
                     "Re Z still dips below zero after {rounds} enforcement rounds"
                 )
             }
+            EnforceFailure::Stopped { rounds } => write!(
+                f,
+                "the fit's time limit ran out (or it was cancelled) after {rounds} enforcement \
+                 rounds, with Re Z still below zero"
+            ),
             EnforceFailure::OverBound {
                 rms_before,
                 rms_after,
@@ -359,6 +373,7 @@ pub(crate) fn enforce(
     poles: &Poles,
     coef0: &Coefficients,
     allowance: f64,
+    stop: Stop<'_>,
 ) -> Result<Enforced, EnforceFailure> {
     if !(poles.real.iter().all(|a| *a < 0.0) && poles.pairs.iter().all(|p| p.re < 0.0)) {
         return Err(EnforceFailure::Unstable);
@@ -411,6 +426,10 @@ pub(crate) fn enforce(
     let mut phi = Vec::with_capacity(n);
     let max_rounds = 40;
     for round in 1..=max_rounds {
+        // The first round always runs; later ones only within the fit's time and while not cancelled.
+        if round > 1 && stop.now() {
+            return Err(EnforceFailure::Stopped { rounds: round - 1 });
+        }
         let c = to_coef(&x);
         let minima = negative_minima(poles, &c, &crossings(poles, &c));
         for m in &minima {

@@ -728,6 +728,7 @@ pub(crate) fn refine(
     mut coef: Coefficients,
     known_gain: Option<f64>,
     max_steps: u64,
+    stop: Stop<'_>,
 ) -> (Poles, Coefficients, u64) {
     let k = data.len();
     let nr = poles.real.len();
@@ -767,6 +768,10 @@ pub(crate) fn refine(
         .map(|p| (-p.re / p.norm()).min(1e-3))
         .collect();
     for _ in 0..max_steps {
+        // Past the deadline or cancelled: the last accepted step is the result.
+        if stop.now() {
+            break;
+        }
         // The Jacobian streamed into its triangle with the residual as right-hand side (Q₁ᵀr), then
         // scaled by its column norms (those of the triangle: scaling columns commutes with QR); the pivoted
         // QR of that triangle then acts as one of the scaled Jacobian: Qᵀr = Q₂ᵀ·(Q₁ᵀr).
@@ -1069,7 +1074,11 @@ pub(crate) fn vector_fit_data(
             (rms, poles, coef, gain)
         }
     };
-    let (poles, coef, refinements) = refine(data, poles, coef, gain, 40);
+    let stop = Stop { control, deadline };
+    let (poles, coef, refinements) = refine(data, poles, coef, gain, 40, stop);
+    if stop.cancelled() {
+        return Err(FitError::Cancelled);
+    }
     // Without an accepted step the model is the one whose error was just measured.
     let rms = if refinements == 0 {
         best_rms
@@ -1099,6 +1108,42 @@ fn cancelled(control: &FitControl) -> bool {
         .as_ref()
         .is_some_and(|c| c.load(Ordering::Relaxed))
 }
+
+/// What ends a rational fit early, checked inside every stage's loop (relocation, refinement,
+/// passivity enforcement): the caller's cancel flag and the fit's deadline.
+#[derive(Clone, Copy)]
+pub(crate) struct Stop<'a> {
+    pub control: &'a FitControl,
+    pub deadline: Option<Instant>,
+}
+
+impl Stop<'_> {
+    /// A stop that never fires.
+    #[cfg(test)]
+    pub(crate) const NEVER: Stop<'static> = Stop {
+        control: &NO_CONTROL,
+        deadline: None,
+    };
+
+    pub(crate) fn cancelled(&self) -> bool {
+        cancelled(self.control)
+    }
+
+    pub(crate) fn expired(&self) -> bool {
+        self.deadline.is_some_and(|d| Instant::now() > d)
+    }
+
+    /// Cancelled or past the deadline: the current stage ends with what it has.
+    pub(crate) fn now(&self) -> bool {
+        self.cancelled() || self.expired()
+    }
+}
+
+#[cfg(test)]
+static NO_CONTROL: FitControl = FitControl {
+    cancel: None,
+    progress: None,
+};
 
 /// Largest relative move of any pole, or ∞ when the real/pair split changed. Moves are measured against
 /// the pole's magnitude but at least `floor` (the bottom of the band): a real pole far below the band may
@@ -1214,28 +1259,42 @@ pub fn fit_rational(
             Err(_) => continue,
         };
         iterations += fit.relocations;
-        let passive = crate::fit::passivity::enforce(
+        let stop = Stop {
+            control,
+            deadline: Some(deadline),
+        };
+        let enforced = crate::fit::passivity::enforce(
             &data,
             &fit.poles,
             &fit.coef,
             options.passivity_rms_allowance,
-        )
-        .map(|e| (to_model(data.omega0, &fit.poles, &e.coef), e.rms_after))
-        .map_err(|e| e.to_string())
-        .and_then(|(model, rms)| {
-            // The same test as every exported model gets, on the model as it is reported: a dip a
-            // few hertz wide beside a sharp pole can pass in the fit's scaled coordinates and fail
-            // in these by rounding.
-            let check = crate::fit::passivity::check_passivity(&model);
-            match check.violations.first() {
-                _ if check.passive => Ok((model, rms)),
-                Some(v) => Err(format!(
-                    "after enforcement Re Z is still {:.3e} Ω at {:.6e} Hz",
-                    v.worst_re_z_ohm, v.worst_hz
-                )),
-                None => Err("after enforcement the model is still not positive-real".to_string()),
-            }
-        });
+            stop,
+        );
+        if stop.cancelled() {
+            return Err(FitError::Cancelled);
+        }
+        if stop.expired() {
+            timed_out = true;
+        }
+        let passive = enforced
+            .map(|e| (to_model(data.omega0, &fit.poles, &e.coef), e.rms_after))
+            .map_err(|e| e.to_string())
+            .and_then(|(model, rms)| {
+                // The same test as every exported model gets, on the model as it is reported: a dip a
+                // few hertz wide beside a sharp pole can pass in the fit's scaled coordinates and fail
+                // in these by rounding.
+                let check = crate::fit::passivity::check_passivity(&model);
+                match check.violations.first() {
+                    _ if check.passive => Ok((model, rms)),
+                    Some(v) => Err(format!(
+                        "after enforcement Re Z is still {:.3e} Ω at {:.6e} Hz",
+                        v.worst_re_z_ohm, v.worst_hz
+                    )),
+                    None => {
+                        Err("after enforcement the model is still not positive-real".to_string())
+                    }
+                }
+            });
         let rms = passive.as_ref().map_or(f64::INFINITY, |p| p.1);
         // Progress is judged on the fit before enforcement: an order that cannot be made passive within
         // the bound may be followed by one that can.
@@ -1487,6 +1546,114 @@ mod tests {
                 assert!((a - b).abs() <= 1e-8 * a.abs().max(1e-3), "{a} vs {b}");
             }
         }
+    }
+
+    #[test]
+    fn the_refinement_takes_no_step_once_cancelled_or_past_its_deadline() {
+        // Starting poles are far from the minimum: unhindered, the refinement takes steps.
+        let data = rippled_data();
+        let poles = starting_poles(4, 1e-5, 1.0);
+        let coef = identify(&data, &poles).coef;
+        let (.., free) = refine(&data, poles.clone(), coef.clone(), None, 40, Stop::NEVER);
+        assert!(free > 0, "the refinement should move these poles");
+        let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(true));
+        let control = FitControl {
+            cancel: Some(flag),
+            progress: None,
+        };
+        let cancelled = Stop {
+            control: &control,
+            deadline: None,
+        };
+        let (p, c, steps) = refine(&data, poles.clone(), coef.clone(), None, 40, cancelled);
+        assert_eq!((steps, &p, &c), (0, &poles, &coef));
+        let expired = Stop {
+            control: &FitControl::default(),
+            deadline: Some(Instant::now() - std::time::Duration::from_millis(1)),
+        };
+        let (.., steps) = refine(&data, poles, coef, None, 40, expired);
+        assert_eq!(steps, 0);
+    }
+
+    #[test]
+    fn a_time_limit_ends_a_high_order_fit_as_such() {
+        // The same order-60 fit (about 1 s unhindered here) with a 0.1 s limit: it reports the limit,
+        // as a model marked TimeLimit or as no passive model "after the time limit". The time it took
+        // is printed, not asserted.
+        let sweep = rippled_series_sweep();
+        let options = FitOptions {
+            family: crate::fit::ModelFamily::Rational,
+            rational_order: Some(crate::fit::MAX_RATIONAL_ORDER),
+            rational_max_relocations: 1000,
+            time_limit_s: 0.1,
+            ..FitOptions::default()
+        };
+        let started = Instant::now();
+        let result = fit_rational(&sweep, &options, &FitControl::default());
+        eprintln!(
+            "order-60 fit with a 0.1 s limit took {:?}",
+            started.elapsed()
+        );
+        match result {
+            Ok(report) => assert_eq!(report.termination, Termination::TimeLimit),
+            Err(FitError::NotPassive(why)) => assert!(why.contains("time limit"), "{why}"),
+            Err(other) => panic!("{other}"),
+        }
+    }
+
+    /// Synthetic (no source): a rippled series R-L on 4000 points, so order 60 runs for about a second.
+    fn rippled_series_sweep() -> Sweep {
+        let k = 4000;
+        let f: Vec<f64> = (0..k)
+            .map(|i| 1e3 * (1e6f64).powf(i as f64 / (k - 1) as f64))
+            .collect();
+        let z: Vec<Complex64> = f
+            .iter()
+            .enumerate()
+            .map(|(i, f)| {
+                let s = Complex64::new(0.0, 2.0 * PI * f);
+                (s * 1e-5 + 0.1) * Complex64::new(1.0 + 1e-2 * (i as f64 * 0.37).sin(), 0.0)
+            })
+            .collect();
+        Sweep {
+            sigma_ohm: z.iter().map(|z| 1e-3 * z.norm()).collect(),
+            frequency_hz: f,
+            impedance_ohm: z,
+            ..exact_sweep()
+        }
+    }
+
+    #[test]
+    fn a_cancel_during_a_high_order_fit_ends_it() {
+        // The order-60 fit above runs for about a second; the flag is raised from another thread after
+        // it started, and the fit must answer Cancelled (not a model). How long it took after the flag
+        // is printed, not asserted.
+        let model_sweep = rippled_series_sweep();
+        let flag = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let control = FitControl {
+            cancel: Some(flag.clone()),
+            progress: None,
+        };
+        let options = FitOptions {
+            family: crate::fit::ModelFamily::Rational,
+            rational_order: Some(crate::fit::MAX_RATIONAL_ORDER),
+            rational_max_relocations: 1000,
+            time_limit_s: 3600.0,
+            ..FitOptions::default()
+        };
+        let raiser = std::thread::spawn(move || {
+            std::thread::sleep(std::time::Duration::from_millis(50));
+            flag.store(true, Ordering::SeqCst);
+            Instant::now()
+        });
+        let result = fit_rational(&model_sweep, &options, &control);
+        let ended = Instant::now();
+        let raised = raiser.join().unwrap();
+        eprintln!(
+            "order-60 fit ended {:?} after the cancel flag",
+            ended.saturating_duration_since(raised)
+        );
+        assert_eq!(result.err(), Some(FitError::Cancelled));
     }
 
     /// ‖P_J r‖² by pivoted QR of the whole weighted Jacobian.

@@ -202,6 +202,12 @@ impl FitRegistry for Fits {
     ) -> Result<Response<proto::UploadAccepted>, Status> {
         let who = caller(&self.state, &request, Role::Inspector).await?;
         let r = request.into_inner();
+        // The message is in memory already; its bytes still count against those in flight.
+        let _bytes = self
+            .state
+            .backpressure
+            .reserve_upload_bytes(r.file.len() as u64)
+            .map_err(status)?;
         let input = UploadInput {
             file: Some(NamedFile {
                 name: r.file_name,

@@ -31,10 +31,17 @@ pub fn status(p: Problem) -> Status {
         Kind::Conflict => tonic::Code::FailedPrecondition,
         Kind::PayloadTooLarge => tonic::Code::ResourceExhausted,
         Kind::NotImplemented => tonic::Code::Unimplemented,
-        Kind::Unavailable => tonic::Code::Unavailable,
+        Kind::Unavailable | Kind::Overloaded => tonic::Code::Unavailable,
+        Kind::Throttled => tonic::Code::ResourceExhausted,
         Kind::Internal => tonic::Code::Internal,
     };
     let mut s = Status::new(code, p.detail);
+    if let Some(after) = p.retry_after_s
+        && let Ok(v) = after.to_string().parse()
+    {
+        // As HTTP's Retry-After: seconds before trying again.
+        s.metadata_mut().insert("retry-after", v);
+    }
     if let Some(line) = p.line
         && let Ok(v) = line.to_string().parse()
     {
@@ -66,6 +73,7 @@ pub async fn serve(
     use proto::part_registry_server::PartRegistryServer;
     let max_message = state.settings.max_body_bytes;
     let timeout = state.settings.request_timeout;
+    let state_limits = state.settings.connection_limits();
     let (health, health_service) = tonic_health::server::health_reporter();
     health
         .set_serving::<PartRegistryServer<parts::Parts>>()
@@ -82,18 +90,21 @@ pub async fn serve(
     .max_decoding_message_size(max_message)
     .max_encoding_message_size(max_message);
     let mut drain = stop;
+    let limits = state_limits;
+    let gate = crate::serve::Gate::new(limits, false);
     tonic::transport::Server::builder()
         .timeout(timeout)
+        // Dead peers are found by pings; idle and surplus connections by the gate.
+        .http2_keepalive_interval(Some(std::time::Duration::from_secs(30)))
+        .http2_keepalive_timeout(Some(std::time::Duration::from_secs(10)))
+        .layer(crate::serve::CountLayer)
         .trace_fn(|req| tracing::info_span!("grpc", path = %req.uri().path()))
         .add_service(health_service)
         .add_service(parts)
         .add_service(fits)
-        .serve_with_incoming_shutdown(
-            tokio_stream::wrappers::TcpListenerStream::new(listener),
-            async move {
-                let _ = drain.wait_for(|s| *s).await;
-            },
-        )
+        .serve_with_incoming_shutdown(crate::serve::guarded_incoming(listener, gate), async move {
+            let _ = drain.wait_for(|s| *s).await;
+        })
         .await
 }
 

@@ -3,11 +3,12 @@
 
 use super::auth::{Engineer, Inspector, Reader};
 use super::problem::{ApiResult, Kind, Problem, json_body};
-use super::sweeps::{parse_options_value, safe_file_name};
+use super::sweeps::{checked_options, parse_options_value, safe_file_name};
 use crate::app::AppState;
 use crate::registry::figures::model_curve;
 use crate::registry::wire::{FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
 use crate::store::fits::FitFilter;
+use crate::store::jobs::PartRef;
 use crate::store::parse_rfc3339;
 use axum::Json;
 use axum::body::Bytes;
@@ -151,6 +152,10 @@ async fn retry(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
 ) -> ApiResult<Json<FitSummary>> {
+    state
+        .backpressure
+        .check_queue(&state.store, PartRef::OfFit(fit_id))
+        .await?;
     state.store.retry_fit(&caller.label, fit_id).await?;
     state.jobs.wake();
     Ok(Json(state.store.fit_summary(fit_id).await?))
@@ -174,7 +179,8 @@ pub struct RefitAccepted {
 /// Fit the same sweep again with new options (or a newer engine): a new revision.
 #[utoipa::path(post, path = "/api/v1/fits/{fit_id}/refit", tag = "fits", params(("fit_id" = i64, Path)),
     request_body = RefitRequest,
-    responses((status = 202, body = RefitAccepted), (status = 422, body = super::problem::ProblemBody)),
+    responses((status = 202, body = RefitAccepted), (status = 422, body = super::problem::ProblemBody),
+        (status = 429, body = super::problem::ProblemBody), (status = 503, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn refit(
     Engineer(caller): Engineer,
@@ -190,7 +196,11 @@ async fn refit(
         json_body(&body)?
     };
     let detail = state.store.fit_detail(fit_id).await?;
-    let options = crate::jobs::effective_options(parse_options_value(req.options)?, detail.dcr_ohm);
+    state
+        .backpressure
+        .check_queue(&state.store, PartRef::OfFit(fit_id))
+        .await?;
+    let options = checked_options(parse_options_value(req.options)?, detail.dcr_ohm)?;
     let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
     let key = crate::jobs::job_key(&state.store.job_input(fit_id).await?, &options_json);
     let new_id = state

@@ -4,6 +4,7 @@
 //! routes ([`openapi`]).
 
 pub mod auth;
+pub mod backpressure;
 pub mod dashboard;
 pub mod fits;
 pub mod ops;

@@ -18,6 +18,10 @@ pub enum Kind {
     PayloadTooLarge,
     NotImplemented,
     Unavailable,
+    /// Past a bound of one part or client (its queued fits): try again later (429).
+    Throttled,
+    /// Past a service-wide bound (all queued fits, upload bytes in flight): try again later (503).
+    Overloaded,
     Internal,
 }
 
@@ -33,6 +37,8 @@ impl Kind {
             Kind::PayloadTooLarge => "payload-too-large",
             Kind::NotImplemented => "not-implemented",
             Kind::Unavailable => "unavailable",
+            Kind::Throttled => "throttled",
+            Kind::Overloaded => "overloaded",
             Kind::Internal => "internal",
         }
     }
@@ -46,7 +52,8 @@ impl Kind {
             Kind::Conflict => StatusCode::CONFLICT,
             Kind::PayloadTooLarge => StatusCode::PAYLOAD_TOO_LARGE,
             Kind::NotImplemented => StatusCode::NOT_IMPLEMENTED,
-            Kind::Unavailable => StatusCode::SERVICE_UNAVAILABLE,
+            Kind::Unavailable | Kind::Overloaded => StatusCode::SERVICE_UNAVAILABLE,
+            Kind::Throttled => StatusCode::TOO_MANY_REQUESTS,
             Kind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -62,6 +69,8 @@ impl Kind {
             Kind::PayloadTooLarge => "The request body is too large",
             Kind::NotImplemented => "Not available in this build",
             Kind::Unavailable => "The service is not ready",
+            Kind::Throttled => "Too much queued for this part; try again later",
+            Kind::Overloaded => "The service is at capacity; try again later",
             Kind::Internal => "Internal error",
         }
     }
@@ -86,6 +95,8 @@ pub struct Problem {
     pub kind: Kind,
     pub detail: String,
     pub line: Option<usize>,
+    /// Seconds after which a throttled or overloaded request may be tried again (`Retry-After`).
+    pub retry_after_s: Option<u64>,
 }
 
 impl Problem {
@@ -94,6 +105,14 @@ impl Problem {
             kind,
             detail: detail.into(),
             line: None,
+            retry_after_s: None,
+        }
+    }
+    /// A request refused past a bound, to be tried again after `retry_after_s`.
+    pub fn busy(kind: Kind, detail: impl Into<String>, retry_after_s: u64) -> Problem {
+        Problem {
+            retry_after_s: Some(retry_after_s),
+            ..Problem::new(kind, detail)
         }
     }
     pub fn validation(detail: impl Into<String>) -> Problem {
@@ -138,6 +157,10 @@ impl IntoResponse for Problem {
         let mut res = (status, axum::Json(body)).into_response();
         res.headers_mut()
             .insert(header::CONTENT_TYPE, HeaderValue::from_static(PROBLEM_JSON));
+        if let Some(s) = self.retry_after_s {
+            res.headers_mut()
+                .insert(header::RETRY_AFTER, HeaderValue::from(s));
+        }
         if self.kind == Kind::Unauthorized {
             res.headers_mut().insert(
                 header::WWW_AUTHENTICATE,
@@ -210,6 +233,7 @@ pub async fn problem_for_plain_errors(
         StatusCode::UNAUTHORIZED => Kind::Unauthorized,
         StatusCode::FORBIDDEN => Kind::Forbidden,
         StatusCode::CONFLICT => Kind::Conflict,
+        StatusCode::TOO_MANY_REQUESTS => Kind::Throttled,
         s if s.is_server_error() => Kind::Internal,
         _ => Kind::Validation,
     };

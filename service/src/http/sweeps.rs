@@ -11,13 +11,14 @@ use crate::app::AppState;
 use crate::fit::FitOptions;
 use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputError, InputFile, read_input};
 use crate::jobs::{duplicate_key_with_fixture, effective_options, parse_method};
+use crate::store::jobs::PartRef;
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
 use crate::sweep::{Method, ReadOptions};
 use axum::Json;
 use axum::extract::multipart::MultipartError;
 use axum::extract::{Multipart, Path, State};
-use axum::http::{StatusCode, header};
+use axum::http::{HeaderMap, StatusCode, header};
 use axum::response::IntoResponse;
 use serde::Serialize;
 use utoipa_axum::{router::OpenApiRouter, routes};
@@ -69,6 +70,31 @@ fn multipart_problem(e: MultipartError) -> Problem {
     } else {
         Problem::validation(format!("the multipart body: {}", e.body_text()))
     }
+}
+
+/// A file field's bytes: spooled to an anonymous temporary file while they arrive (the body limit
+/// applies to the stream), then read back once into a buffer of exactly their size, so an upload in
+/// flight holds one copy of its file in memory, not the growing buffer and a copy of it.
+async fn spool(mut field: axum::extract::multipart::Field<'_>) -> ApiResult<Vec<u8>> {
+    use tokio::io::{AsyncReadExt, AsyncSeekExt, AsyncWriteExt};
+    let spool = tempfile::tempfile().map_err(Problem::internal)?;
+    let mut spool = tokio::fs::File::from_std(spool);
+    let mut size = 0usize;
+    while let Some(chunk) = field.chunk().await.map_err(multipart_problem)? {
+        size += chunk.len();
+        spool.write_all(&chunk).await.map_err(Problem::internal)?;
+    }
+    spool.flush().await.map_err(Problem::internal)?;
+    spool
+        .seek(std::io::SeekFrom::Start(0))
+        .await
+        .map_err(Problem::internal)?;
+    let mut bytes = Vec::with_capacity(size);
+    spool
+        .read_to_end(&mut bytes)
+        .await
+        .map_err(Problem::internal)?;
+    Ok(bytes)
 }
 
 /// A numeric multipart field: empty or `null` for none, else a finite number.
@@ -134,6 +160,27 @@ pub fn parse_options_value(value: serde_json::Value) -> ApiResult<FitOptions> {
     Ok(options)
 }
 
+/// The largest reference impedance an upload may state. Common practice (no source): instruments and
+/// fixtures use 50 Ω or 75 Ω; anything above 10 kΩ is a typing slip, not a measurement setup.
+pub const MAX_Z0_OHM: f64 = 1e4;
+
+/// The largest DC resistance reading an upload may state, the bound [`FitOptions::validate`] puts on a
+/// DCR reading (an inductor's winding of more than 1 MΩ is no inductor).
+pub const MAX_DCR_OHM: f64 = 1e6;
+
+/// The options a fit will run with (the caller's, with the upload's DC reading), checked completely by
+/// [`FitOptions::validate`] before anything is stored: the problem names the option and its range.
+pub fn checked_options(options: FitOptions, dcr_ohm: Option<f64>) -> ApiResult<FitOptions> {
+    let options = effective_options(options, dcr_ohm);
+    options.validate().map_err(|e| match e {
+        crate::fit::FitError::InvalidOptions(text) => {
+            Problem::validation(format!("options: {text}"))
+        }
+        other => Problem::validation(other.to_string()),
+    })?;
+    Ok(options)
+}
+
 fn input_file(f: &NamedFile) -> InputFile<'_> {
     InputFile {
         name: &f.name,
@@ -149,13 +196,29 @@ fn input_file(f: &NamedFile) -> InputFile<'_> {
         (status = 401, body = super::problem::ProblemBody),
         (status = 403, body = super::problem::ProblemBody),
         (status = 413, body = super::problem::ProblemBody),
-        (status = 422, description = "bad metadata or a file the reader refuses (with its line)", body = super::problem::ProblemBody)),
+        (status = 422, description = "bad metadata or options, or a file the reader refuses (with its line)", body = super::problem::ProblemBody),
+        (status = 429, description = "the part has as many fits queued as it may (Retry-After)", body = super::problem::ProblemBody),
+        (status = 503, description = "the service's queue or upload bytes in flight are at their bound (Retry-After)", body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn upload(
     Inspector(caller): Inspector,
     State(state): State<AppState>,
+    headers: HeaderMap,
     mut form: Multipart,
 ) -> ApiResult<impl IntoResponse> {
+    // The bytes this upload may bring (its stated length, else the body limit) are reserved before any
+    // is read, and a full queue is refused before reading the body at all.
+    let stated = headers
+        .get(header::CONTENT_LENGTH)
+        .and_then(|v| v.to_str().ok())
+        .and_then(|v| v.parse::<u64>().ok())
+        .unwrap_or(state.settings.max_body_bytes as u64)
+        .min(state.settings.max_body_bytes as u64);
+    let _bytes = state.backpressure.reserve_upload_bytes(stated)?;
+    state
+        .backpressure
+        .check_queue(&state.store, PartRef::Number(""))
+        .await?;
     let mut file: Option<NamedFile> = None;
     let mut fixture_open: Option<NamedFile> = None;
     let mut fixture_short: Option<NamedFile> = None;
@@ -169,10 +232,9 @@ async fn upload(
                         "the {name} field needs a file name (its extension tells the format)"
                     ))
                 })?;
-                let bytes = field.bytes().await.map_err(multipart_problem)?;
                 let named = NamedFile {
                     name: file_name,
-                    bytes: bytes.to_vec(),
+                    bytes: spool(field).await?,
                 };
                 let slot = match name.as_str() {
                     "file" => &mut file,
@@ -193,7 +255,22 @@ async fn upload(
                         "the field {name} is given twice"
                     )));
                 }
-                let text = field.text().await.map_err(multipart_problem)?;
+                // Read as bytes and checked: `text()` would replace invalid UTF-8 silently.
+                let bytes = field.bytes().await.map_err(multipart_problem)?;
+                let text = String::from_utf8(bytes.to_vec()).map_err(|e| {
+                    Problem::validation(format!(
+                        "the field {name} is not UTF-8 text (invalid byte at position {})",
+                        e.utf8_error().valid_up_to()
+                    ))
+                })?;
+                // A part already at its bound is refused before its file is received, when the
+                // form names the part first.
+                if name == "part_number" && file.is_none() {
+                    state
+                        .backpressure
+                        .check_queue(&state.store, PartRef::Number(text.trim()))
+                        .await?;
+                }
                 fields.insert(name, text);
             }
             other => {
@@ -332,8 +409,22 @@ pub fn check_upload_fields(
             "temperature_c must lie in -273.15..1000 (got {t})"
         )));
     }
+    if let Some(r) = dcr_ohm
+        && r > MAX_DCR_OHM
+    {
+        return Err(Problem::validation(format!(
+            "dcr_ohm must be at most {MAX_DCR_OHM} Ω (got {r})"
+        )));
+    }
+    if let Some(z0) = z0_ohm
+        && z0 > MAX_Z0_OHM
+    {
+        return Err(Problem::validation(format!(
+            "z0_ohm must be at most {MAX_Z0_OHM} Ω (got {z0})"
+        )));
+    }
     let operator = short_text("operator", &input.operator, 128, false)?;
-    let options = effective_options(parse_options(&input.options)?, dcr_ohm);
+    let options = checked_options(parse_options(&input.options)?, dcr_ohm)?;
     let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
     Ok(UploadFields {
         topology,
@@ -371,6 +462,12 @@ pub async fn accept_upload(
         operator,
         options_json,
     } = check_upload_fields(&input, fixture_open.is_some(), fixture_short.is_some())?;
+    state
+        .backpressure
+        .check_queue(&state.store, PartRef::Number(&part_number))
+        .await?;
+    // Reading waits for one of a few slots: uploads never take the CPU the fits need.
+    let _reading = state.backpressure.reading_slot().await;
 
     // Reading the files, hashing them and keying the duplicate check are CPU work: off the runtime.
     let engine = state.engine.clone();
@@ -420,9 +517,11 @@ pub async fn accept_upload(
     .await
     .map_err(Problem::internal)?
     .map_err(|e| Problem {
-        kind: Kind::BadSweepFile,
-        detail: format!("{}: {}", e.file_name, e.error.message),
         line: e.error.line,
+        ..Problem::new(
+            Kind::BadSweepFile,
+            format!("{}: {}", e.file_name, e.error.message),
+        )
     })?;
     let up = state.store.upload(actor, new).await?;
     if !up.duplicate {

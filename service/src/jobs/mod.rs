@@ -507,6 +507,11 @@ fn run_engine(
         Ok(o) => o,
         Err(e) => return Outcome::Fit(FitError::InvalidOptions(e.to_string())),
     };
+    // Uploads and refits validate before storing; options stored by an older build (or edited in the
+    // database) fail their own fit with the option named, and never reach the engine.
+    if let Err(e) = options.validate() {
+        return Outcome::Fit(e);
+    }
     match engine.fit(&sweep, &options, control) {
         Ok(r) => Outcome::Report(Box::new(r)),
         Err(e) => Outcome::Fit(e),

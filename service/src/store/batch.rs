@@ -6,6 +6,10 @@
 //! commits once, and only then answers each caller. A request that fails is rolled back to its savepoint
 //! and answered with its error; the others in the batch are not affected. A caller is never told
 //! "done" before its writes are committed.
+//!
+//! The worker pool's writes (claims, starts, lease renewals, outcomes) go through a second, priority
+//! queue: every batch takes them first, so an upload flood cannot hold up the claims that feed the
+//! workers or the outcomes that free them.
 
 use super::{StoreError, StoreResult};
 use sqlx::{SqliteConnection, SqlitePool};
@@ -32,6 +36,7 @@ struct Request {
 #[derive(Clone, Debug)]
 pub(crate) struct Batcher {
     queue: mpsc::UnboundedSender<Request>,
+    priority: mpsc::UnboundedSender<Request>,
 }
 
 /// The error every request of a batch that could not be committed is answered with.
@@ -47,8 +52,36 @@ impl Batcher {
     /// Starts the task that runs the batches on `writer` (the single-connection pool).
     pub(crate) fn start(writer: SqlitePool) -> Batcher {
         let (queue, rx) = mpsc::unbounded_channel();
-        tokio::spawn(run(writer, rx));
-        Batcher { queue }
+        let (priority, priority_rx) = mpsc::unbounded_channel();
+        tokio::spawn(run(writer, priority_rx, rx));
+        Batcher { queue, priority }
+    }
+
+    /// As [`Batcher::submit`], ahead of every request of the ordinary queue (the worker pool's writes).
+    pub(crate) async fn submit_priority<T, F>(&self, work: F) -> StoreResult<T>
+    where
+        T: Send + 'static,
+        F: for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<T>>
+            + Send
+            + 'static,
+    {
+        self.enqueue_on(&self.priority, work).await
+    }
+
+    /// Queues `work` on the priority queue now (before the returned future is first polled), so
+    /// requests queued one after the other there are written in that order; the future gives the
+    /// result after the commit. Dropping it leaves the request queued.
+    pub(crate) fn enqueue_priority<T, F>(
+        &self,
+        work: F,
+    ) -> impl Future<Output = StoreResult<T>> + use<T, F>
+    where
+        T: Send + 'static,
+        F: for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<T>>
+            + Send
+            + 'static,
+    {
+        self.enqueue_on(&self.priority, work)
     }
 
     /// Runs `work` in the next batch and returns its result once the batch is committed.
@@ -59,13 +92,17 @@ impl Batcher {
             + Send
             + 'static,
     {
-        self.enqueue(work).await
+        self.enqueue_on(&self.queue, work).await
     }
 
     /// Queues `work` now (before the returned future is first polled), so requests queued one
     /// after the other are written in that order; the future gives the result after the commit.
     /// Dropping it leaves the request queued: its result is then not reported to anyone.
-    pub(crate) fn enqueue<T, F>(&self, work: F) -> impl Future<Output = StoreResult<T>> + use<T, F>
+    fn enqueue_on<T, F>(
+        &self,
+        queue: &mpsc::UnboundedSender<Request>,
+        work: F,
+    ) -> impl Future<Output = StoreResult<T>> + use<T, F>
     where
         T: Send + 'static,
         F: for<'c> FnOnce(&'c mut SqliteConnection) -> BoxFuture<'c, StoreResult<T>>
@@ -77,7 +114,7 @@ impl Batcher {
             Box::pin(async move { fut.await.map(|t| Box::new(t) as Answer) })
         });
         let (reply, answer) = oneshot::channel();
-        let sent = self.queue.send(Request { work, reply }).is_ok();
+        let sent = queue.send(Request { work, reply }).is_ok();
         async move {
             if !sent {
                 return Err(stopped());
@@ -90,9 +127,36 @@ impl Batcher {
     }
 }
 
-async fn run(writer: SqlitePool, mut rx: mpsc::UnboundedReceiver<Request>) {
+async fn run(
+    writer: SqlitePool,
+    mut priority: mpsc::UnboundedReceiver<Request>,
+    mut rx: mpsc::UnboundedReceiver<Request>,
+) {
     let mut waiting = Vec::with_capacity(MAX_BATCH);
-    while rx.recv_many(&mut waiting, MAX_BATCH).await > 0 {
+    loop {
+        // Both senders live in one Batcher: when either queue is closed, both are.
+        let first = tokio::select! {
+            biased;
+            r = priority.recv() => r,
+            r = rx.recv() => r,
+        };
+        let Some(first) = first else {
+            break;
+        };
+        waiting.push(first);
+        // Fill the batch: the pool's writes first, then the ordinary ones.
+        while waiting.len() < MAX_BATCH {
+            match priority.try_recv() {
+                Ok(r) => waiting.push(r),
+                Err(_) => break,
+            }
+        }
+        while waiting.len() < MAX_BATCH {
+            match rx.try_recv() {
+                Ok(r) => waiting.push(r),
+                Err(_) => break,
+            }
+        }
         let batch: Vec<Request> = std::mem::take(&mut waiting);
         metrics::histogram!("henrybook_write_batch_requests").record(batch.len() as f64);
         // Its own task, so a request that panics fails its batch (dropped replies, rolled-back

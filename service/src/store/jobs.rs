@@ -61,7 +61,7 @@ impl Store {
         n: usize,
     ) -> StoreResult<Vec<Claim>> {
         self.batch
-            .submit(move |conn| Box::pin(claim_in(conn, lease, max_attempts, n)))
+            .submit_priority(move |conn| Box::pin(claim_in(conn, lease, max_attempts, n)))
             .await
     }
 
@@ -73,7 +73,7 @@ impl Store {
         claim: &Claim,
     ) -> impl std::future::Future<Output = StoreResult<bool>> + use<> {
         let claim = claim.clone();
-        self.batch.enqueue(move |conn| {
+        self.batch.enqueue_priority(move |conn| {
             Box::pin(async move {
                 let started = sqlx::query(
                     "UPDATE fits SET status = 'running', progress = 0, started_at_ms = ? \
@@ -101,7 +101,7 @@ impl Store {
     ) -> StoreResult<Renewal> {
         let claim = claim.clone();
         self.batch
-            .submit(move |conn| {
+            .submit_priority(move |conn| {
                 Box::pin(async move {
                     let held: Option<i64> = sqlx::query_scalar(
                         "UPDATE jobs SET lease_until_ms = ? WHERE fit_id = ? AND claim_token = ? \
@@ -162,7 +162,7 @@ impl Store {
     ) -> StoreResult<bool> {
         let claim = claim.clone();
         self.batch
-            .submit(move |conn| {
+            .submit_priority(move |conn| {
                 Box::pin(
                     async move { complete_succeeded_in(conn, &claim, &report, &assessment).await },
                 )
@@ -179,7 +179,7 @@ impl Store {
     ) -> StoreResult<bool> {
         let (claim, error) = (claim.clone(), error.to_string());
         self.batch
-            .submit(move |conn| {
+            .submit_priority(move |conn| {
                 Box::pin(async move {
                     if !release_claim(conn, &claim).await? {
                         return Ok(false);
@@ -759,4 +759,51 @@ mod tests {
         assert_eq!(s.status.as_str(), "failed");
         assert!(s.error.unwrap().contains("started 2 times"));
     }
+}
+
+/// Fits waiting for or holding a worker, for the queue bounds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct QueueDepth {
+    /// Queued and running fits of every part.
+    pub all: i64,
+    /// Queued and running fits of the part asked about (0 when it has none or does not exist).
+    pub part: i64,
+}
+
+impl Store {
+    /// How many fits are queued or running, in all and for one part (by number or by one of its fits).
+    /// Read without the writer: the trigger-kept status counts, and the part's fits by index.
+    pub async fn queue_depth(&self, part: PartRef<'_>) -> StoreResult<QueueDepth> {
+        let all: i64 = sqlx::query_scalar(
+            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
+        )
+        .fetch_one(&self.reader)
+        .await?;
+        let part_sql = "SELECT COUNT(*) FROM fits WHERE part_id = (SELECT part_id FROM parts WHERE \
+                        part_number = ?) AND status IN ('queued', 'running')";
+        let by_fit_sql = "SELECT COUNT(*) FROM fits WHERE part_id = (SELECT part_id FROM fits WHERE \
+                          fit_id = ?) AND status IN ('queued', 'running')";
+        let part: i64 = match part {
+            PartRef::Number(n) => {
+                sqlx::query_scalar(part_sql)
+                    .bind(n)
+                    .fetch_one(&self.reader)
+                    .await?
+            }
+            PartRef::OfFit(id) => {
+                sqlx::query_scalar(by_fit_sql)
+                    .bind(id)
+                    .fetch_one(&self.reader)
+                    .await?
+            }
+        };
+        Ok(QueueDepth { all, part })
+    }
+}
+
+/// A part, by its number or by one of its fits.
+#[derive(Debug, Clone, Copy)]
+pub enum PartRef<'a> {
+    Number(&'a str),
+    OfFit(i64),
 }
