@@ -277,3 +277,57 @@ async fn uploads_beyond_the_bytes_in_flight_get_503_with_retry_after() {
     }
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn grpc_uploads_beyond_what_the_bytes_in_flight_hold_are_unavailable_with_retry_after() {
+    use henrybook::grpc::proto;
+    // The bound holds one upload of the largest size at once.
+    let app = app_with(|s| {
+        s.max_body_bytes = 256 * 1024;
+        s.max_upload_bytes_in_flight = 256 * 1024;
+    })
+    .await;
+    app.create_part("G-1", serde_json::json!({})).await;
+    let channel = app.grpc_channel().await;
+    let mut calls = tokio::task::JoinSet::new();
+    for i in 0..40 {
+        let mut fits = proto::fit_registry_client::FitRegistryClient::new(channel.clone());
+        let token = app.inspector.clone();
+        calls.spawn(async move {
+            // Synthetic sweeps of known models (invented values), all different.
+            let message = proto::UploadSweepRequest {
+                file_name: format!("g{i}.csv"),
+                file: synthetic_csv(
+                    &simple_model(1e-5 * (1.0 + i as f64 / 50.0), 0.05, 5e-12),
+                    1e4,
+                    1e8,
+                    801,
+                ),
+                part_number: "G-1".into(),
+                lot: "L".into(),
+                ..Default::default()
+            };
+            fits.upload_sweep(henrybook_tests::service::grpc_request(message, &token))
+                .await
+        });
+    }
+    let (mut taken, mut refused) = (0, 0);
+    while let Some(r) = calls.join_next().await {
+        match r.unwrap() {
+            Ok(_) => taken += 1,
+            Err(s) => {
+                assert_eq!(s.code(), tonic::Code::Unavailable, "{s:?}");
+                assert!(s.metadata().get("retry-after").is_some(), "{s:?}");
+                refused += 1;
+            }
+        }
+    }
+    eprintln!("40 concurrent gRPC uploads: {taken} taken, {refused} refused");
+    assert!(
+        refused > 0,
+        "40 uploads at once, one place: none was refused"
+    );
+    let fits = app.get_json("/api/v1/fits?limit=500", &app.reader).await;
+    assert_eq!(fits["items"].as_array().unwrap().len(), taken);
+    app.stop().await;
+}

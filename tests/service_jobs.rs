@@ -404,8 +404,7 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_part_at_its_bound_is_refused_before_its_file_is_received() {
-    use tokio::io::{AsyncReadExt, AsyncWriteExt};
+async fn a_part_at_its_bound_is_refused_before_its_file_is_looked_at() {
     let dir = Arc::new(tempfile::tempdir().unwrap());
     let mut settings = test_settings(dir.path().join("h.db"));
     settings.workers = 1;
@@ -422,25 +421,23 @@ async fn a_part_at_its_bound_is_refused_before_its_file_is_received() {
     .await;
     app.create_part("Q-1", json!({})).await;
     assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
-    // A form naming the part first announces a 1 MB file and sends none of it.
-    let mut c = tokio::net::TcpStream::connect(app.base_url.trim_start_matches("http://"))
+    // The form names the part first: the part's bound answers (429), not the empty file (422), and
+    // the whole body was read before the answer (the client sees the refusal, not a broken pipe).
+    let form = reqwest::multipart::Form::new()
+        .text("part_number", "Q-1")
+        .text("lot", "L")
+        .part(
+            "file",
+            reqwest::multipart::Part::bytes(Vec::new()).file_name("empty.csv"),
+        );
+    let r = app
+        .client
+        .post(app.url("/api/v1/sweeps"))
+        .bearer_auth(&app.inspector)
+        .multipart(form)
+        .send()
         .await
         .unwrap();
-    let head = format!(
-        "POST /api/v1/sweeps HTTP/1.1\r\nhost: x\r\nauthorization: Bearer {}\r\n\
-         content-type: multipart/form-data; boundary=zz\r\ncontent-length: 1000000\r\n\r\n\
-         --zz\r\ncontent-disposition: form-data; name=\"part_number\"\r\n\r\nQ-1\r\n\
-         --zz\r\ncontent-disposition: form-data; name=\"file\"; filename=\"big.csv\"\r\n\r\n",
-        app.inspector
-    );
-    c.write_all(head.as_bytes()).await.unwrap();
-    let mut got = vec![0u8; 4096];
-    let n = tokio::time::timeout(Duration::from_secs(20), c.read(&mut got))
-        .await
-        .expect("answered without waiting for the file")
-        .unwrap();
-    let text = String::from_utf8_lossy(&got[..n]).to_ascii_lowercase();
-    assert!(text.starts_with("http/1.1 429"), "{text}");
-    assert!(text.contains("retry-after: "), "{text}");
+    assert_busy(r, 429, "throttled").await;
     app.stop().await;
 }

@@ -227,3 +227,43 @@ impl Settings {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::Parser;
+
+    #[derive(Parser)]
+    struct Serve {
+        #[command(flatten)]
+        args: ServeArgs,
+    }
+
+    fn settings(flags: &[&str]) -> anyhow::Result<Settings> {
+        let parsed = Serve::try_parse_from(std::iter::once("serve").chain(flags.iter().copied()))?;
+        Settings::try_from(&parsed.args)
+    }
+
+    #[test]
+    fn the_defaults_hold_and_bounds_that_contradict_each_other_are_refused() {
+        let s = settings(&[]).unwrap();
+        assert!(s.shutdown_grace < s.drain_timeout);
+        assert!(s.max_upload_bytes_in_flight >= s.max_body_bytes);
+        for (flags, names) in [
+            (&["--shutdown-grace-s", "40"][..], "--drain-timeout-s"),
+            (
+                &["--max-upload-bytes-in-flight", "1024"][..],
+                "--max-body-bytes",
+            ),
+            (&["--idle-timeout-s", "0"][..], "--idle-timeout-s"),
+            (&["--max-connections", "0"][..], "--max-connections"),
+            (
+                &["--max-queued-fits-per-part", "0"][..],
+                "--max-queued-fits",
+            ),
+        ] {
+            let e = settings(flags).unwrap_err().to_string();
+            assert!(e.contains(names), "{flags:?}: {e}");
+        }
+    }
+}

@@ -83,7 +83,7 @@ wait "$UPLOADERS"
 read -r done1 queued running < <(succeeded)
 cpu1=$(cpu_s); read -r es1 ec1 < <(engine_s)
 elapsed=$(python3 -c "import time; print(time.time() - $start)")
-echo "answers ($(grep -c . "$WORK/answers") uploads; a 202 may be a duplicate of an earlier upload):"; awk '{print $1, ($2=="-" ? "no Retry-After" : "Retry-After " $2)}' "$WORK/answers" | sort | uniq -c
+echo "answers ($(grep -c . "$WORK/answers") uploads; a 202 may be a duplicate of an earlier upload):"; awk '{print $1, ($1=="error" ? $2 : ($2=="-" ? "no Retry-After" : "Retry-After " $2))}' "$WORK/answers" | sort | uniq -c
 fivexx_without=$(awk '$1 ~ /^5/ && $2 == "-"' "$WORK/answers" | wc -l)
 echo "5xx without Retry-After: $fivexx_without"
 python3 -c "print(f'fits completed during the flood: {$done1 - $done0} in {$elapsed:.1f} s = {($done1 - $done0) / $elapsed:.1f} fits/s; queue at the end: $queued queued, $running running')"

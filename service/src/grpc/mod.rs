@@ -74,6 +74,7 @@ pub async fn serve(
     let max_message = state.settings.max_body_bytes;
     let timeout = state.settings.request_timeout;
     let state_limits = state.settings.connection_limits();
+    let state_settings = state.settings.clone();
     let (health, health_service) = tonic_health::server::health_reporter();
     health
         .set_serving::<PartRegistryServer<parts::Parts>>()
@@ -98,6 +99,7 @@ pub async fn serve(
         .http2_keepalive_interval(Some(std::time::Duration::from_secs(30)))
         .http2_keepalive_timeout(Some(std::time::Duration::from_secs(10)))
         .layer(crate::serve::CountLayer)
+        .layer(UploadGateLayer::new(&state_settings))
         .trace_fn(|req| tracing::info_span!("grpc", path = %req.uri().path()))
         .add_service(health_service)
         .add_service(parts)
@@ -121,4 +123,82 @@ fn fit_id(id: i64) -> Result<i64, Status> {
         )));
     }
     Ok(id)
+}
+
+/// Bounds the `UploadSweep` calls received at once. The gRPC library reads a whole message before the
+/// method sees it, so the bound on upload bytes in flight cannot be applied before the bytes are in
+/// memory; this gate lets only as many uploads in as that bound holds messages of the largest size,
+/// and answers the rest UNAVAILABLE with `retry-after` before their message is read.
+#[derive(Clone)]
+struct UploadGateLayer {
+    permits: std::sync::Arc<tokio::sync::Semaphore>,
+}
+
+impl UploadGateLayer {
+    fn new(settings: &crate::settings::Settings) -> UploadGateLayer {
+        let at_once = (settings.max_upload_bytes_in_flight / settings.max_body_bytes.max(1)).max(1);
+        UploadGateLayer {
+            permits: std::sync::Arc::new(tokio::sync::Semaphore::new(at_once)),
+        }
+    }
+}
+
+impl<S> tower::Layer<S> for UploadGateLayer {
+    type Service = UploadGate<S>;
+    fn layer(&self, inner: S) -> UploadGate<S> {
+        UploadGate {
+            inner,
+            permits: self.permits.clone(),
+        }
+    }
+}
+
+#[derive(Clone)]
+struct UploadGate<S> {
+    inner: S,
+    permits: std::sync::Arc<tokio::sync::Semaphore>,
+}
+
+const UPLOAD_PATH: &str = "/henrybook.v1.FitRegistry/UploadSweep";
+
+impl<S, ReqB, ResB> tower::Service<http::Request<ReqB>> for UploadGate<S>
+where
+    S: tower::Service<http::Request<ReqB>, Response = http::Response<ResB>>,
+    S::Future: Send + 'static,
+    ResB: Default + Send + 'static,
+    S::Error: Send + 'static,
+{
+    type Response = http::Response<ResB>;
+    type Error = S::Error;
+    type Future = std::pin::Pin<
+        Box<dyn std::future::Future<Output = Result<Self::Response, S::Error>> + Send>,
+    >;
+
+    fn poll_ready(
+        &mut self,
+        cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<Result<(), S::Error>> {
+        self.inner.poll_ready(cx)
+    }
+
+    fn call(&mut self, req: http::Request<ReqB>) -> Self::Future {
+        if req.uri().path() != UPLOAD_PATH {
+            return Box::pin(self.inner.call(req));
+        }
+        let Ok(permit) = self.permits.clone().try_acquire_owned() else {
+            metrics::counter!("henrybook_refused_total", "bound" => "grpc_uploads").increment(1);
+            let status = status(Problem::busy(
+                Kind::Overloaded,
+                "the service is receiving as many uploads as it takes at once; try again shortly",
+                crate::http::backpressure::BYTES_RETRY_AFTER_S,
+            ));
+            return Box::pin(std::future::ready(Ok(status.into_http())));
+        };
+        let fut = self.inner.call(req);
+        Box::pin(async move {
+            let res = fut.await;
+            drop(permit);
+            res
+        })
+    }
 }

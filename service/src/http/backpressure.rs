@@ -1,6 +1,9 @@
 //! Bounds on what the service takes in, shared by HTTP and gRPC: queued fits per part and in all, upload
 //! bytes being received or read at once, and how many uploads are read (parsed, CPU) at once.
 //!
+//! The checks here run before a request is read in full (cheap refusals); an upload checks again
+//! inside its write, so uploads arriving together cannot overshoot the bounds.
+//!
 //! Past a part's bound the answer is 429 (`throttled`; gRPC RESOURCE_EXHAUSTED), past a service-wide
 //! bound 503 (`overloaded`; gRPC UNAVAILABLE), both with `Retry-After`, and nothing is stored. Refusing
 //! at once keeps the queue short enough that its fits run within minutes, and the memory of uploads in
@@ -73,6 +76,14 @@ impl Backpressure {
             .acquire_owned()
             .await
             .expect("the semaphore is never closed")
+    }
+
+    /// The queue bounds, for the check inside an upload's write.
+    pub fn queue_bounds(&self) -> crate::store::sweeps::QueueBounds {
+        crate::store::sweeps::QueueBounds {
+            all: self.max_queued_fits,
+            part: self.max_queued_fits_per_part,
+        }
     }
 
     /// Refuses when the queue is full: 503 in all, 429 for the part.

@@ -137,6 +137,15 @@ impl From<StoreError> for Problem {
             StoreError::NotFound(t) => Problem::new(Kind::NotFound, t),
             StoreError::Conflict(t) => Problem::new(Kind::Conflict, t),
             StoreError::Invalid(t) => Problem::new(Kind::Validation, t),
+            e @ StoreError::QueueFull { part, .. } => Problem::busy(
+                if part {
+                    Kind::Throttled
+                } else {
+                    Kind::Overloaded
+                },
+                format!("{e}; try again later"),
+                super::backpressure::QUEUE_RETRY_AFTER_S,
+            ),
             other => Problem::internal(other),
         }
     }

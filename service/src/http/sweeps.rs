@@ -97,6 +97,17 @@ async fn spool(mut field: axum::extract::multipart::Field<'_>) -> ApiResult<Vec<
     Ok(bytes)
 }
 
+/// `refusal`, after reading the rest of the body into the void (not into memory or a file): most
+/// clients send the whole body before they read an answer, and one closed while it is still sending
+/// sees a broken connection instead of the refusal and its Retry-After. The body limit and the request
+/// timeout still bound what is read.
+async fn drained(form: &mut Multipart, refusal: Problem) -> Problem {
+    while let Ok(Some(mut field)) = form.next_field().await {
+        while let Ok(Some(_)) = field.chunk().await {}
+    }
+    refusal
+}
+
 /// A numeric multipart field: empty or `null` for none, else a finite number.
 pub fn number(name: &str, text: &str) -> ApiResult<Option<f64>> {
     let t = text.trim();
@@ -214,11 +225,17 @@ async fn upload(
         .and_then(|v| v.parse::<u64>().ok())
         .unwrap_or(state.settings.max_body_bytes as u64)
         .min(state.settings.max_body_bytes as u64);
-    let _bytes = state.backpressure.reserve_upload_bytes(stated)?;
-    state
+    let _bytes = match state.backpressure.reserve_upload_bytes(stated) {
+        Ok(permit) => permit,
+        Err(p) => return Err(drained(&mut form, p).await),
+    };
+    if let Err(p) = state
         .backpressure
         .check_queue(&state.store, PartRef::Number(""))
-        .await?;
+        .await
+    {
+        return Err(drained(&mut form, p).await);
+    }
     let mut file: Option<NamedFile> = None;
     let mut fixture_open: Option<NamedFile> = None;
     let mut fixture_short: Option<NamedFile> = None;
@@ -263,13 +280,16 @@ async fn upload(
                         e.utf8_error().valid_up_to()
                     ))
                 })?;
-                // A part already at its bound is refused before its file is received, when the
-                // form names the part first.
-                if name == "part_number" && file.is_none() {
-                    state
+                // A part already at its bound is refused before its file is spooled or read, when
+                // the form names the part first.
+                if name == "part_number"
+                    && file.is_none()
+                    && let Err(p) = state
                         .backpressure
                         .check_queue(&state.store, PartRef::Number(text.trim()))
-                        .await?;
+                        .await
+                {
+                    return Err(drained(&mut form, p).await);
                 }
                 fields.insert(name, text);
             }
@@ -523,7 +543,8 @@ pub async fn accept_upload(
             format!("{}: {}", e.file_name, e.error.message),
         )
     })?;
-    let up = state.store.upload(actor, new).await?;
+    let bounds = state.backpressure.queue_bounds();
+    let up = state.store.upload_bounded(actor, new, Some(bounds)).await?;
     if !up.duplicate {
         state.jobs.wake();
     }

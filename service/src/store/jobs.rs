@@ -492,6 +492,69 @@ mod tests {
     }
 
     #[tokio::test]
+    async fn an_upload_past_a_queue_bound_is_refused_inside_its_write_but_a_duplicate_is_answered()
+    {
+        use crate::store::StoreError;
+        use crate::store::sweeps::QueueBounds;
+        let (store, _dir) = store_with_part().await;
+        let first = queue_one(&store, 0).await;
+        let new = |i: usize| NewSweep {
+            part_number: "J-1".into(),
+            lot: "L".into(),
+            file: NamedFile {
+                name: format!("{i}.csv"),
+                bytes: format!("bytes {i}").into_bytes(),
+            },
+            sha256: crate::store::sha256_hex(format!("bytes {i}").as_bytes()),
+            method: "direct".into(),
+            z0_ohm: None,
+            dcr_ohm: None,
+            temperature_c: None,
+            operator: String::new(),
+            fixture_open: None,
+            fixture_short: None,
+            fixture_topology: None,
+            points: 3,
+            options_json: "{}".into(),
+            options_key: "k".into(),
+        };
+        let per_part = Some(QueueBounds { all: 10, part: 1 });
+        let refused = store.upload_bounded("test", new(1), per_part).await;
+        assert!(
+            matches!(
+                refused,
+                Err(StoreError::QueueFull {
+                    part: true,
+                    queued: 1
+                })
+            ),
+            "{refused:?}"
+        );
+        let all = Some(QueueBounds { all: 1, part: 10 });
+        let refused = store.upload_bounded("test", new(1), all).await;
+        assert!(
+            matches!(
+                refused,
+                Err(StoreError::QueueFull {
+                    part: false,
+                    queued: 1
+                })
+            ),
+            "{refused:?}"
+        );
+        let again = store
+            .upload_bounded("test", new(0), per_part)
+            .await
+            .unwrap();
+        assert!(again.duplicate && again.fit_id == first);
+        let fits: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM fits")
+            .fetch_one(&store.reader)
+            .await
+            .unwrap();
+        assert_eq!(fits, 1);
+    }
+
+    #[tokio::test]
     async fn one_claim_fills_several_workers_oldest_first_and_each_job_once() {
         let (store, _dir) = store_with_part().await;
         let mut queued = Vec::new();

@@ -37,6 +37,10 @@ pub enum StoreError {
     Database(#[from] sqlx::Error),
     #[error(transparent)]
     Json(#[from] serde_json::Error),
+    /// A queue bound was reached when the write was about to queue a fit (`part`: the part's bound,
+    /// else the service's); nothing was written.
+    #[error("{queued} fits are queued or running, the most {} may have", if *.part { "one part" } else { "this service" })]
+    QueueFull { part: bool, queued: i64 },
 }
 
 pub type StoreResult<T> = Result<T, StoreError>;

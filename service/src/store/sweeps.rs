@@ -34,6 +34,13 @@ pub struct NewSweep {
     pub options_key: String,
 }
 
+/// The most fits queued or running at once, in all and per part.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct QueueBounds {
+    pub all: i64,
+    pub part: i64,
+}
+
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Uploaded {
     pub fit_id: i64,
@@ -68,9 +75,22 @@ impl Store {
     /// Stores the sweep, queues its first fit and records the upload, all in one transaction; or
     /// returns the existing fit for a duplicate.
     pub async fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded> {
+        self.upload_bounded(actor, new, None).await
+    }
+
+    /// As [`Store::upload`], refusing with [`StoreError::QueueFull`] inside the write when a new fit
+    /// would exceed `bounds` (a duplicate is still answered), so concurrent uploads cannot overshoot.
+    pub async fn upload_bounded(
+        &self,
+        actor: &str,
+        new: NewSweep,
+        bounds: Option<QueueBounds>,
+    ) -> StoreResult<Uploaded> {
         let actor = actor.to_string();
         self.batch
-            .submit(move |conn| Box::pin(async move { upload_in(conn, &actor, &new).await }))
+            .submit(move |conn| {
+                Box::pin(async move { upload_in(conn, &actor, &new, bounds).await })
+            })
             .await
     }
 
@@ -158,6 +178,7 @@ async fn upload_in(
     conn: &mut sqlx::SqliteConnection,
     actor: &str,
     new: &NewSweep,
+    bounds: Option<QueueBounds>,
 ) -> StoreResult<Uploaded> {
     let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
         .bind(&new.part_number)
@@ -185,6 +206,31 @@ async fn upload_in(
             sweep_id,
             duplicate: true,
         });
+    }
+    if let Some(b) = bounds {
+        let all: i64 = sqlx::query_scalar(
+            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
+        )
+        .fetch_one(&mut *conn)
+        .await?;
+        if all >= b.all {
+            return Err(StoreError::QueueFull {
+                part: false,
+                queued: all,
+            });
+        }
+        let part: i64 = sqlx::query_scalar(
+            "SELECT COUNT(*) FROM fits WHERE part_id = ? AND status IN ('queued', 'running')",
+        )
+        .bind(part_id)
+        .fetch_one(&mut *conn)
+        .await?;
+        if part >= b.part {
+            return Err(StoreError::QueueFull {
+                part: true,
+                queued: part,
+            });
+        }
     }
     let now = now_ms();
     let lot_id: i64 = sqlx::query_scalar(
