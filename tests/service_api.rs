@@ -260,6 +260,22 @@ async fn every_route_admits_exactly_its_roles_and_refuses_no_token() {
     }
     let who = app.get_json("/api/v1/whoami", &app.engineer).await;
     assert_eq!(who["role"], "engineer");
+    // The scheme name is case-insensitive (RFC 9110 §11.1); other schemes are refused.
+    for (header, status) in [
+        (format!("bearer {}", app.engineer), 200),
+        (format!("BEARER {}", app.engineer), 200),
+        (format!("Basic {}", app.engineer), 401),
+        (format!("Bearer{}", app.engineer), 401),
+    ] {
+        let r = app
+            .client
+            .get(app.url("/api/v1/whoami"))
+            .header("authorization", &header)
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(r.status(), status, "{}", &header[..8]);
+    }
     app.stop().await;
 }
 

@@ -26,9 +26,11 @@ pub async fn authorize(
 ) -> Result<Caller, Problem> {
     let header = authorization
         .ok_or_else(|| Problem::new(Kind::Unauthorized, "send Authorization: Bearer <token>"))?;
+    // The scheme name is case-insensitive (RFC 9110 §11.1): `bearer`, `BEARER` and `Bearer` all count.
     let token = header
-        .strip_prefix("Bearer ")
-        .map(str::trim)
+        .split_once(' ')
+        .filter(|(scheme, _)| scheme.eq_ignore_ascii_case("bearer"))
+        .map(|(_, t)| t.trim())
         .filter(|t| !t.is_empty())
         .ok_or_else(|| {
             Problem::new(
