@@ -25,11 +25,11 @@ usage:
   henrybook fit FILE... [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--dcr OHM]
                         [--family lumped|rational] [--at HZ[,HZ...]] [--json]
   henrybook impedance FILE [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--json]
-  henrybook serve | token create | demo";
+  henrybook serve | token create | demo | verify --database FILE";
 
 pub fn main(args: Vec<String>) -> ExitCode {
     match args.first().map(String::as_str) {
-        Some("serve" | "token" | "demo") => crate::server_cli::main(args),
+        Some("serve" | "token" | "demo" | "verify") => crate::server_cli::main(args),
         _ => {
             let stdout = std::io::stdout();
             let stderr = std::io::stderr();
