@@ -111,6 +111,14 @@ async fn an_uploaded_sweep_is_fitted_and_its_result_can_be_polled_and_downloaded
         .get_json(&format!("/api/v1/fits/{fit_id}/model.json"), &app.reader)
         .await;
     assert_eq!(model["kind"], "lumped");
+    // It says where it is valid and where it came from.
+    assert_eq!(model["band_hz"], json!([1e3, 2e8]), "the sweep's band");
+    assert_eq!(model["provenance"]["fit_id"], fit_id);
+    assert_eq!(model["provenance"]["quality"], "ok");
+    assert_eq!(
+        model["provenance"]["sweep_sha256"].as_str().map(str::len),
+        Some(64)
+    );
     let netlist = app
         .get(&format!("/api/v1/fits/{fit_id}/netlist.cir"), &app.reader)
         .await;

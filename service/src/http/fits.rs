@@ -296,6 +296,7 @@ async fn succeeded_report(state: &AppState, fit_id: i64) -> ApiResult<crate::fit
 }
 
 /// The fitted model as JSON (the report's `model`).
+/// The fitted model as JSON, with the band where it is valid (`band_hz`) and its provenance.
 #[utoipa::path(get, path = "/api/v1/fits/{fit_id}/model.json", tag = "exports", params(("fit_id" = i64, Path)),
     responses((status = 200, body = Object), (status = 409, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
@@ -305,13 +306,36 @@ async fn model_json(
     Path(fit_id): Path<i64>,
 ) -> ApiResult<impl IntoResponse> {
     let report = succeeded_report(&state, fit_id).await?;
+    let detail = state.store.fit_detail(fit_id).await?;
     let name = format!("fit-{fit_id}-model.json");
+    // The model's own fields at the top (as before), then where it is valid and where it came from:
+    // a figure read from it outside `band_hz` is an extrapolation.
+    let mut body = serde_json::to_value(&report.model).map_err(Problem::internal)?;
+    if let Some(object) = body.as_object_mut() {
+        object.insert("band_hz".into(), serde_json::json!(report.band_hz));
+        object.insert(
+            "provenance".into(),
+            serde_json::json!({
+                "part_number": detail.summary.part_number,
+                "lot": detail.summary.lot,
+                "fit_id": fit_id,
+                "revision": detail.summary.revision,
+                "sweep_sha256": detail.sha256,
+                "file_name": detail.file_name,
+                "method": detail.method,
+                "engine_version": report.engine_version,
+                "quality": report.assessment.status.as_str(),
+                "approval": detail.summary.approval,
+                "fitted_at": detail.summary.finished_at,
+            }),
+        );
+    }
     Ok((
         [(
             header::CONTENT_DISPOSITION,
             format!("attachment; filename=\"{}\"", safe_file_name(&name)),
         )],
-        Json(report.model),
+        Json(body),
     ))
 }
 
