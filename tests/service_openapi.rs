@@ -51,3 +51,36 @@ fn the_description_covers_every_route_of_the_contract() {
         );
     }
 }
+
+#[test]
+fn every_error_answer_is_a_problem_and_every_secured_route_lists_401_and_403() {
+    // RFC 9457: error bodies are application/problem+json; the service answers 401/403 on every
+    // route that takes a token and 503 when it is at a bound or draining.
+    let doc: serde_json::Value =
+        serde_json::from_str(&henrybook::http::openapi().to_json().unwrap()).unwrap();
+    let mut operations = 0;
+    for (path, item) in doc["paths"].as_object().unwrap() {
+        for (method, op) in item.as_object().unwrap() {
+            operations += 1;
+            let responses = op["responses"].as_object().unwrap();
+            for (code, answer) in responses {
+                if code.starts_with('4') || code.starts_with('5') {
+                    let content = answer["content"].as_object().unwrap();
+                    assert!(
+                        content.contains_key("application/problem+json")
+                            && !content.contains_key("application/json"),
+                        "{method} {path} {code}"
+                    );
+                }
+            }
+            let secured = op["security"].as_array().is_some_and(|s| !s.is_empty());
+            if secured {
+                for code in ["401", "403"] {
+                    assert!(responses.contains_key(code), "{method} {path} lacks {code}");
+                }
+            }
+            assert!(responses.contains_key("503"), "{method} {path} lacks 503");
+        }
+    }
+    assert!(operations >= 21, "{operations}");
+}

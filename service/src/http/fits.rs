@@ -29,6 +29,7 @@ pub struct FitListParams {
     /// RFC 3339: fits created at or after.
     pub since: Option<String>,
     /// 1..500, default 50.
+    #[param(minimum = 1, maximum = 500)]
     pub limit: Option<i64>,
     pub cursor: Option<String>,
 }

@@ -68,7 +68,79 @@ fn api_router() -> OpenApiRouter<AppState> {
 pub fn openapi() -> utoipa::openapi::OpenApi {
     let mut api = api_router().split_for_parts().1;
     api.info.version = env!("CARGO_PKG_VERSION").to_string();
+    problem_answers(&mut api);
     api
+}
+
+/// Every error answer as the service gives it: `application/problem+json` with [`problem::ProblemBody`],
+/// and on every operation the answers any request can get (401/403 for a secured one, 400 for unknown
+/// or malformed query parameters, 422 for invalid values, 503 when overloaded or draining).
+fn problem_answers(api: &mut utoipa::openapi::OpenApi) {
+    use utoipa::openapi::content::Content;
+    use utoipa::openapi::path::ParameterIn;
+    use utoipa::openapi::{Ref, RefOr, Response};
+    const PROBLEM: &str = "application/problem+json";
+    let problem = |description: &str| {
+        let mut r = Response::new(description);
+        r.content.insert(
+            PROBLEM.into(),
+            RefOr::T(Content::new(Some(Ref::from_schema_name("ProblemBody")))),
+        );
+        RefOr::T(r)
+    };
+    for item in api.paths.paths.values_mut() {
+        for op in [
+            &mut item.get,
+            &mut item.put,
+            &mut item.post,
+            &mut item.delete,
+            &mut item.patch,
+        ]
+        .into_iter()
+        .flatten()
+        {
+            let secured = op.security.as_ref().is_some_and(|s| !s.is_empty());
+            let query = op.parameters.as_ref().is_some_and(|ps| {
+                ps.iter().any(
+                    |p| matches!(p, RefOr::T(p) if matches!(p.parameter_in, ParameterIn::Query)),
+                )
+            });
+            let input = op.parameters.as_ref().is_some_and(|ps| !ps.is_empty())
+                || op.request_body.is_some();
+            let responses = &mut op.responses.responses;
+            for (code, answer) in responses.iter_mut() {
+                if (code.starts_with('4') || code.starts_with('5'))
+                    && let RefOr::T(r) = answer
+                    && let Some(c) = r.content.shift_remove("application/json")
+                {
+                    r.content.insert(PROBLEM.into(), c);
+                }
+            }
+            let mut add = |code: &str, why: &str| {
+                responses
+                    .entry(code.to_string())
+                    .or_insert_with(|| problem(why));
+            };
+            if secured {
+                add(
+                    "401",
+                    "no token, an unknown or revoked one, or a malformed Authorization header",
+                );
+                add("403", "the token's role is too low for this operation");
+            }
+            if query {
+                add("400", "an unknown or malformed query parameter");
+            }
+            if input {
+                add("422", "a value is invalid; the problem names it");
+            }
+            add(
+                "503",
+                "the service is at a bound (connections, queue, upload bytes) or draining; retry after \
+                 the Retry-After header",
+            );
+        }
+    }
 }
 
 /// The OpenAPI description as YAML text.

@@ -43,6 +43,7 @@ pub struct PartQueryParams {
     /// part_number (default), srf_hz, l0_h or rdc_ohm; prefix - for descending.
     pub sort: Option<String>,
     /// 1..500, default 50.
+    #[param(minimum = 1, maximum = 500)]
     pub limit: Option<i64>,
     pub cursor: Option<String>,
 }
