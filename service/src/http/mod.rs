@@ -74,7 +74,8 @@ pub fn openapi() -> utoipa::openapi::OpenApi {
 
 /// Every error answer as the service gives it: `application/problem+json` with [`problem::ProblemBody`],
 /// and on every operation the answers any request can get (401/403 for a secured one, 400 for unknown
-/// or malformed query parameters, 422 for invalid values, 503 when overloaded or draining).
+/// or malformed query parameters, 404 for an unknown resource in the path, 422 for invalid values, 503
+/// when overloaded or draining).
 fn problem_answers(api: &mut utoipa::openapi::OpenApi) {
     use utoipa::openapi::content::Content;
     use utoipa::openapi::path::ParameterIn;
@@ -107,6 +108,11 @@ fn problem_answers(api: &mut utoipa::openapi::OpenApi) {
             });
             let input = op.parameters.as_ref().is_some_and(|ps| !ps.is_empty())
                 || op.request_body.is_some();
+            let in_path = op.parameters.as_ref().is_some_and(|ps| {
+                ps.iter().any(
+                    |p| matches!(p, RefOr::T(p) if matches!(p.parameter_in, ParameterIn::Path)),
+                )
+            });
             let responses = &mut op.responses.responses;
             for (code, answer) in responses.iter_mut() {
                 if (code.starts_with('4') || code.starts_with('5'))
@@ -128,8 +134,14 @@ fn problem_answers(api: &mut utoipa::openapi::OpenApi) {
                 );
                 add("403", "the token's role is too low for this operation");
             }
-            if query {
-                add("400", "an unknown or malformed query parameter");
+            if query || in_path || op.request_body.is_some() {
+                add(
+                    "400",
+                    "an unknown or malformed parameter, or a body that cannot be read",
+                );
+            }
+            if in_path {
+                add("404", "no such fit, sweep or part");
             }
             if input {
                 add("422", "a value is invalid; the problem names it");
