@@ -23,10 +23,12 @@ use utoipa_axum::{router::OpenApiRouter, routes};
 #[serde(deny_unknown_fields)]
 pub struct FitListParams {
     /// queued, running, succeeded, failed or cancelled.
+    #[param(pattern = r"^(queued|running|succeeded|failed|cancelled)?$")]
     pub status: Option<String>,
     pub part_number: Option<String>,
     pub lot: Option<String>,
     /// RFC 3339: fits created at or after.
+    #[param(format = DateTime)]
     pub since: Option<String>,
     /// 1..500, default 50.
     #[param(minimum = 1, maximum = 500)]
@@ -215,9 +217,10 @@ async fn refit(
 #[derive(Debug, Default, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Decision {
-    /// Why: optional for a plain approval, required for a rejection and for an approval with
-    /// `override`. A reason of only spaces is refused.
+    /// Why: optional for a plain approval, required for an approval with `override`. A reason of only
+    /// spaces is refused.
     #[serde(default)]
+    #[schema(min_length = 1, pattern = r"\S")]
     pub reason: Option<String>,
     /// Approve a fit that fails its limits or whose model is poor anyway (the audit records it).
     #[serde(default, rename = "override")]
@@ -261,9 +264,17 @@ async fn approve(
     Ok(Json(state.store.fit_detail(fit_id).await?))
 }
 
+#[derive(Debug, Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct Rejection {
+    /// What is wrong with the fit (required, not blank).
+    #[schema(min_length = 1, pattern = r"\S")]
+    pub reason: String,
+}
+
 /// Reject a succeeded fit, with the reason.
 #[utoipa::path(post, path = "/api/v1/fits/{fit_id}/reject", tag = "fits", params(("fit_id" = i64, Path)),
-    request_body = Decision,
+    request_body = Rejection,
     responses((status = 200, body = FitDetail), (status = 409, body = super::problem::ProblemBody),
         (status = 422, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
@@ -273,11 +284,11 @@ async fn reject(
     Path(fit_id): Path<i64>,
     body: Bytes,
 ) -> ApiResult<Json<FitDetail>> {
-    let d = decision(&body)?;
-    let reason = d
-        .reason
-        .as_deref()
-        .map(str::trim)
+    if body.is_empty() {
+        return Err(Problem::validation("a rejection needs a reason"));
+    }
+    let d: Rejection = json_body(&body)?;
+    let reason = Some(d.reason.trim())
         .filter(|r| !r.is_empty())
         .ok_or_else(|| Problem::validation("a rejection needs a reason"))?;
     state

@@ -23,22 +23,34 @@ pub struct PartQueryParams {
     /// Which fit of each part answers: `approved` (its approved baseline; the default), `latest` (the
     /// newest succeeded fit, whatever its verdict) or `latest-passing` (the newest whose model is ok and
     /// that does not fail the part's limits).
+    #[param(pattern = r"^(approved|latest|latest-passing)$")]
     pub answer_from: Option<String>,
     /// Older form: `true` is `answer_from=approved`, `false` is `answer_from=latest`.
     pub approved_only: Option<bool>,
+    #[param(exclusive_minimum = 0.0)]
     pub srf_min_hz: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub srf_max_hz: Option<f64>,
     /// A series resonance (|Z| minimum) lies in this band.
+    #[param(exclusive_minimum = 0.0)]
     pub series_resonance_min_hz: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub series_resonance_max_hz: Option<f64>,
     /// Frequency at which the effective L is held to `l_min_h..l_max_h`.
+    #[param(minimum = 100.0, maximum = 1e10)]
     pub l_at_hz: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub l_min_h: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub l_max_h: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub dcr_max_ohm: Option<f64>,
     /// |Z| at least this over `z_band_min_hz..z_band_max_hz`.
+    #[param(exclusive_minimum = 0.0)]
     pub z_min_ohm: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub z_band_min_hz: Option<f64>,
+    #[param(exclusive_minimum = 0.0)]
     pub z_band_max_hz: Option<f64>,
     /// part_number (default), srf_hz, l0_h or rdc_ohm; prefix - for descending.
     pub sort: Option<String>,
@@ -111,6 +123,8 @@ pub fn part_query(p: PartQueryParams) -> ApiResult<PartQuery> {
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct NewPart {
+    /// 1 to 64 characters of letters, digits and `-_.+/#`.
+    #[schema(pattern = r"^[A-Za-z0-9_.+/#-]{1,64}$")]
     pub part_number: String,
     #[serde(default)]
     pub description: String,

@@ -41,13 +41,18 @@ pub struct UploadForm {
     /// The measurement file (Touchstone .s1p/.s2p or CSV).
     #[schema(format = Binary, content_media_type = "application/octet-stream")]
     file: String,
+    #[schema(pattern = r"^[A-Za-z0-9_.+/#-]{1,64}$")]
     part_number: String,
+    /// 1 to 64 characters (surrounding spaces are trimmed), no control characters.
+    #[schema(pattern = r"^\s*[^\x00-\x1f\x7f\s][^\x00-\x1f\x7f]{0,63}$")]
     lot: String,
     /// reflection, series-thru, shunt-thru or direct; needed for 2-port files.
     method: Option<String>,
     /// Overrides the file's reference impedance.
+    #[schema(exclusive_minimum = 0.0)]
     z0_ohm: Option<f64>,
     /// A separate four-wire DC resistance reading.
+    #[schema(exclusive_minimum = 0.0)]
     dcr_ohm: Option<f64>,
     temperature_c: Option<f64>,
     operator: Option<String>,

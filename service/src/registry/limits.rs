@@ -6,17 +6,27 @@ use serde::{Deserialize, Serialize};
 #[serde(default, deny_unknown_fields)]
 pub struct Limits {
     /// Nominal inductance, checked as the effective L (Im Z / ω) at `l_test_frequency_hz`.
+    #[schema(exclusive_minimum = 0.0)]
     pub l_nominal_h: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub l_test_frequency_hz: Option<f64>,
     /// Allowed deviation from `l_nominal_h`, in percent (both ways).
+    #[schema(exclusive_minimum = 0.0)]
     pub l_tolerance_percent: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub dcr_max_ohm: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub srf_min_hz: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub q_min: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub q_test_frequency_hz: Option<f64>,
     /// |Z| must stay at or above this over `z_band_min_hz..=z_band_max_hz`.
+    #[schema(exclusive_minimum = 0.0)]
     pub z_min_ohm: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub z_band_min_hz: Option<f64>,
+    #[schema(exclusive_minimum = 0.0)]
     pub z_band_max_hz: Option<f64>,
 }
 
