@@ -11,21 +11,11 @@
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit_lumped};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::{ReadOptions, Sweep, read_sweep};
-use henrybook_tests::repo_root;
 use std::f64::consts::PI;
 use std::path::PathBuf;
 
 fn folder() -> Option<PathBuf> {
-    let dir = repo_root().join("../shared/real-sweeps");
-    if dir.join("SOURCES.md").is_file() {
-        Some(dir)
-    } else {
-        eprintln!(
-            "note: {} is absent; the real-sweep fit checks are skipped",
-            dir.display()
-        );
-        None
-    }
+    henrybook_tests::real_sweeps_dir()
 }
 
 fn median(mut v: Vec<f64>) -> f64 {

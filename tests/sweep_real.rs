@@ -6,21 +6,11 @@
 
 use henrybook::sweep::convert::z_from_s;
 use henrybook::sweep::{Method, ReadOptions, Sweep, read_sweep};
-use henrybook_tests::repo_root;
 use num_complex::Complex64;
 use std::path::PathBuf;
 
 fn folder() -> Option<PathBuf> {
-    let dir = repo_root().join("../shared/real-sweeps");
-    if dir.join("SOURCES.md").is_file() {
-        Some(dir)
-    } else {
-        eprintln!(
-            "note: {} is absent; the real-sweep checks are skipped",
-            dir.display()
-        );
-        None
-    }
+    henrybook_tests::real_sweeps_dir()
 }
 
 /// (file, points) from SOURCES.md's table: the sweep column ends in "<n> pts".

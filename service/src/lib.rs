@@ -38,3 +38,4 @@ pub mod server_cli;
 pub mod settings;
 pub mod store;
 pub mod sweep;
+pub mod units;

@@ -13,6 +13,21 @@ pub fn repo_root() -> PathBuf {
         .to_path_buf()
 }
 
+/// `../shared/real-sweeps` (genuine measurements, read where they lie, never copied), or `None` with a
+/// note on standard error when that folder is absent, so the checks that use it are skipped.
+pub fn real_sweeps_dir() -> Option<PathBuf> {
+    let dir = repo_root().join("../shared/real-sweeps");
+    if dir.join("SOURCES.md").is_file() {
+        Some(dir)
+    } else {
+        eprintln!(
+            "note: {} is absent; the real-sweep checks are skipped",
+            dir.display()
+        );
+        None
+    }
+}
+
 /// The Python interpreter that has numpy, scipy and scikit-rf: `$HENRYBOOK_PYTHON`, or the venv that
 /// `.ci/setup` makes in `target/pyref`. Panics with the set-up command when neither exists, so a
 /// reference check never passes silently.

@@ -23,36 +23,7 @@ pub struct Check {
     pub note: Option<String>,
 }
 
-/// A value with an SI prefix and four significant digits, as people read limits ("10 µH", "100 kHz").
-pub fn si(value: f64, unit: &str) -> String {
-    if !value.is_finite() || value == 0.0 {
-        return format!("{value} {unit}");
-    }
-    const PREFIXES: [(f64, &str); 9] = [
-        (1e9, "G"),
-        (1e6, "M"),
-        (1e3, "k"),
-        (1.0, ""),
-        (1e-3, "m"),
-        (1e-6, "µ"),
-        (1e-9, "n"),
-        (1e-12, "p"),
-        (1e-15, "f"),
-    ];
-    let (scale, prefix) = PREFIXES
-        .iter()
-        .copied()
-        .find(|(s, _)| value.abs() >= *s * (1.0 - 5e-13))
-        .unwrap_or((1e-15, "f"));
-    let v = value / scale;
-    let text = format!("{v:.4}");
-    let text = if text.contains('.') {
-        text.trim_end_matches('0').trim_end_matches('.').to_string()
-    } else {
-        text
-    };
-    format!("{text} {prefix}{unit}")
-}
+use crate::units::eng as si;
 
 fn in_band(report: &FitReport, f: f64) -> bool {
     // A relative tolerance: the band ends are the sweep's first and last frequency.

@@ -69,28 +69,10 @@ fn field(v: &Value) -> Option<String> {
     }
 }
 
-/// A value with an SI prefix chosen for it: 4.7e-5 H → "47.00 µH".
+/// A value with an SI prefix chosen for it ([`crate::units::eng`]), or "-" when there is none.
 fn fmt_si(v: Option<f64>, unit: &str) -> String {
-    let Some(x) = v.filter(|x| x.is_finite()) else {
-        return "-".to_string();
-    };
-    const PREFIXES: [(f64, &str); 9] = [
-        (1e9, "G"),
-        (1e6, "M"),
-        (1e3, "k"),
-        (1.0, ""),
-        (1e-3, "m"),
-        (1e-6, "µ"),
-        (1e-9, "n"),
-        (1e-12, "p"),
-        (1e-15, "f"),
-    ];
-    let (scale, prefix) = PREFIXES
-        .iter()
-        .copied()
-        .find(|(scale, _)| x.abs() >= *scale)
-        .unwrap_or((1e-15, "f"));
-    format!("{:.2} {prefix}{unit}", x / scale)
+    v.filter(|x| x.is_finite())
+        .map_or_else(|| "-".to_string(), |x| crate::units::eng(x, unit))
 }
 
 /// One line of the demo's result table: a fit with its model, verdict and largest drift.
