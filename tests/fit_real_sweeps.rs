@@ -47,6 +47,7 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
     assert_eq!(files.len(), 13, "SOURCES.md lists 13 files");
     eprintln!("file | status | L data | L model | ΔL | median |Z| error below SRF | summary");
     let mut ok_count = 0;
+    let mut l_within_5_percent = 0;
     for file in &files {
         let bytes = std::fs::read(dir.join(file)).unwrap();
         let sweep = read_sweep(file, &bytes, &ReadOptions::default())
@@ -70,6 +71,7 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
                 .collect(),
         );
         let dl = l_model / l_data - 1.0;
+        l_within_5_percent += (dl.abs() <= 0.05) as usize;
         let srf = report
             .derived
             .srf_hz
@@ -116,7 +118,18 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
             }
         }
     }
-    eprintln!("{ok_count} of {} reported ok", files.len());
+    eprintln!(
+        "{ok_count} of {} reported ok; L at the lowest sure points within 5 % on {l_within_5_percent}",
+        files.len()
+    );
+    // Every poor fit still owes the user the inductance the data show at the bottom of the band. Not
+    // yet met on all 13 (the measured count is 9; density weights that count a linear sweep's sparse
+    // low points as a log sweep would raised it from 5): this holds the line until it is.
+    assert!(
+        l_within_5_percent >= 9,
+        "L at the lowest sure points within 5 % on only {l_within_5_percent} of {}",
+        files.len()
+    );
 }
 
 /// (file, turns, [OD, ID, h] in m, the author's LCR reading in H) for every toroid row of SOURCES.md

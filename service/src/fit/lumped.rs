@@ -17,9 +17,12 @@
 //! Each structure is fitted on log-parameters by [`fit_structure`]: LM first on a thinned copy of a
 //! long sweep, then on all points (the result is the full-data optimum).
 //!
-//! Uncertainty: the covariance of θ = ln p is `s²·(JᵀJ)⁻¹` at the solution, computed from the symmetric
-//! eigen-decomposition of the column-scaled JᵀJ (no explicit inverse of an ill-conditioned matrix),
-//! with `s² = max(1, χ²/(M − k))`: when the residuals are larger than the stated σ the spread is
+//! Uncertainty: the covariance of θ = ln p is `s²·(JᵀJ)⁻¹·JᵀGJ·(JᵀJ)⁻¹` at the solution (J the
+//! Jacobian of the weighted residuals, G the density weights, so with a logarithmic sweep it is
+//! `s²·(JᵀJ)⁻¹`; the sandwich keeps σ honest when the weights count sparse points up), computed from
+//! the symmetric eigen-decomposition of the column-scaled JᵀJ (no explicit inverse of an
+//! ill-conditioned matrix), with `s² = max(1, χ²/(M − k))`: when the residuals are larger than the
+//! stated σ the spread is
 //! widened to match them; when they are smaller the stated σ is trusted (no shrinking). 1σ of p is
 //! `p·σ_θ`. A parameter is *not identifiable* when its relative 1σ exceeds
 //! [`NOT_IDENTIFIABLE_RELATIVE_SIGMA`] or it takes part (|eigenvector component| > 0.3) in a direction
@@ -59,8 +62,11 @@ pub struct StructureFit {
     pub cost: f64,
     pub iterations: u64,
     pub termination: Termination,
-    /// JᵀJ of the weighted residuals at `theta` (the covariance comes from it).
+    /// JᵀJ of the weighted residuals at `theta`.
     pub jtj: DMatrix<f64>,
+    /// JᵀGJ of the weighted residuals at `theta`, G the density weight of each row (1 for the prior
+    /// and the walls): with `jtj` it gives the sandwich covariance (see [`spread`]).
+    pub jtgj: DMatrix<f64>,
 }
 
 impl StructureFit {
@@ -396,6 +402,7 @@ fn fit_structure_staged(
         remaining.max(Duration::from_millis(1)),
         control,
     )?;
+    let jtgj = density_weighted_jtj(data, structure, &fine.theta);
     Ok(StructureFit {
         structure: structure.clone(),
         theta: fine.theta,
@@ -403,11 +410,48 @@ fn fit_structure_staged(
         iterations: iterations + fine.iterations,
         termination: fine.termination,
         jtj: fine.jtj,
+        jtgj,
     })
 }
 
+/// JᵀGJ at θ: the weighted residuals' Jacobian with each data row counted once more by its density
+/// weight g (the prior's and walls' rows by 1). The middle of the sandwich covariance: a row with
+/// weight √g/σ has variance g, so the weighted estimator's covariance is (JᵀJ)⁻¹·JᵀGJ·(JᵀJ)⁻¹.
+fn density_weighted_jtj(data: &FitData, structure: &Structure, theta: &[f64]) -> DMatrix<f64> {
+    let problem = LumpedProblem::new(data, structure);
+    let n = structure.len();
+    let rows = problem.residual_rows();
+    let mut j = DMatrix::zeros(rows, n);
+    problem.jacobian_into(theta, &mut j);
+    let points = data.frequency_hz.len();
+    let mut out = DMatrix::zeros(n, n);
+    for r in 0..rows {
+        let g = if r < 2 * points {
+            let k = r / 2;
+            (data.inv_sigma[k] * data.sigma[k]).powi(2)
+        } else {
+            1.0
+        };
+        for a in 0..n {
+            let ja = j[(r, a)] * g;
+            if ja == 0.0 {
+                continue;
+            }
+            for c in 0..=a {
+                out[(a, c)] += ja * j[(r, c)];
+            }
+        }
+    }
+    for a in 0..n {
+        for c in 0..a {
+            out[(c, a)] = out[(a, c)];
+        }
+    }
+    out
+}
+
 /// BIC with the noise scale estimated from the fit, on the effective number of residuals `m`
-/// (density weights make a point count for less than one).
+/// (density weights change how much each point counts).
 fn bic(cost: f64, m: f64, parameters: usize) -> f64 {
     m * (cost.max(f64::MIN_POSITIVE) / m).ln() + parameters as f64 * m.ln()
 }
@@ -514,7 +558,8 @@ pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
     let dof = (residuals - n as f64).max(1.0);
     let s2 = (fit.cost / dof).max(1.0) * widening * widening;
     let mut singular = vec![false; n];
-    let mut cov = DMatrix::zeros(n, n);
+    // The pseudo-inverse of the scaled JᵀJ, leaving out the directions the data do not fix.
+    let mut inverse = DMatrix::zeros(n, n);
     for k in 0..n {
         let lambda = eig.eigenvalues[k];
         let v = eig.eigenvectors.column(k);
@@ -526,8 +571,11 @@ pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
             }
             continue;
         }
-        cov += (v * v.transpose()) / lambda;
+        inverse += (v * v.transpose()) / lambda;
     }
+    // Sandwich: (JᵀJ)⁻¹·JᵀGJ·(JᵀJ)⁻¹, in the same column scaling. With every g = 1 it is (JᵀJ)⁻¹.
+    let meat = DMatrix::from_fn(n, n, |i, j| fit.jtgj[(i, j)] / (d[i] * d[j]));
+    let cov = &inverse * meat * &inverse;
     let mut sigma_theta = vec![None; n];
     let mut not_identifiable = Vec::new();
     for i in 0..n {
@@ -783,8 +831,10 @@ impl Runner<'_> {
 }
 
 /// Relative cost tolerance of the nesting rule: a larger candidate may end at most this fraction above
-/// a candidate it contains (the negligible elements of [`embed`] cost about 1e-9 of χ²).
-pub const NESTING_TOLERANCE: f64 = 1e-7;
+/// a candidate it contains. The negligible elements of [`embed`] cost up to about 1e-7 of χ² (more
+/// where density weights count a linear sweep's sparse low points up); a millionth of χ² is far below
+/// anything model selection can see (BIC charges ln M ≈ 7 per parameter).
+pub const NESTING_TOLERANCE: f64 = 1e-6;
 
 /// The whole lumped fit of one sweep.
 ///
@@ -1398,10 +1448,18 @@ mod tests {
         );
         let lin: Vec<f64> = (0..1000).map(|i| 50e3 + 1e5 * i as f64).collect();
         let g = density_weights(&lin);
-        assert_eq!(g[0], 1.0);
-        assert!(g[999] < 0.2, "{}", g[999]);
-        // The weights over the top decade sum to about what a log sweep puts there.
+        // The lowest point stands for the ln f it spans (50 kHz to 150 kHz), up to the cap.
         let mean = (lin[999] / lin[0]).ln() / 999.0;
+        let want = ((lin[1] / lin[0]).ln() / mean).min(super::super::problem::MAX_DENSITY_WEIGHT);
+        assert!((g[0] / want - 1.0).abs() < 1e-12, "{} vs {want}", g[0]);
+        assert!(g[0] > 100.0 - 1e-9, "{}", g[0]);
+        assert!(g[999] < 0.2, "{}", g[999]);
+        // Weights never exceed the cap.
+        assert!(
+            g.iter()
+                .all(|&x| x <= super::super::problem::MAX_DENSITY_WEIGHT)
+        );
+        // The weights over the top decade sum to about what a log sweep puts there.
         let top: f64 = lin
             .iter()
             .zip(&g)

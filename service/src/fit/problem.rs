@@ -1,7 +1,7 @@
 //! The weighted least-squares problem of one lumped structure on one sweep, for the LM solver.
 //!
 //! Residuals, interleaved per point: `(Re Z_model − Re Z_meas)·w`, `(Im Z_model − Im Z_meas)·w`, with
-//! w = √g/σ: σ the sweep's per-point standard uncertainty and g ≤ 1 the point's density weight (see
+//! w = √g/σ: σ the sweep's per-point standard uncertainty and g the point's density weight (see
 //! [`density_weights`]); then, when a DCR reading is given, one prior residual
 //! `(rdc − reading)/σ_reading`; then one residual per plausibility wall ([`Wall`]), zero inside the
 //! plausible range. So χ² = Σ r² is the cost a scipy `least_squares` with the same residual vector
@@ -66,12 +66,19 @@ impl FitData {
     }
 }
 
+/// Most a single point's density weight may be: one point stands for at most this many points of a
+/// logarithmic sweep, so one stray reading in an otherwise empty decade cannot carry the fit.
+pub const MAX_DENSITY_WEIGHT: f64 = 100.0;
+
 /// Density weights that let each part of the band count as it would in a logarithmic sweep of the
-/// same number of points: g = min(1, Δ/Δ̄), where Δ is the point's share of ln f (half the distance
-/// in ln f between its neighbours) and Δ̄ = ln(f_max/f_min)/(N − 1) the share in a logarithmic sweep.
-/// A logarithmic sweep has g = 1 everywhere; a linear sweep keeps its few low points at full weight and
-/// weighs its crowded top decade down, so those decades do not drown the ones where L0 and Rdc show.
-/// Weights are never raised above 1: sparse points are not trusted more than their σ says.
+/// same number of points: g = min(Δ/Δ̄, [`MAX_DENSITY_WEIGHT`]), where Δ is the point's share of ln f
+/// (half the distance in ln f between its neighbours) and Δ̄ = ln(f_max/f_min)/(N − 1) the share in a
+/// logarithmic sweep. A logarithmic sweep has g = 1 everywhere; a linear sweep (most analyser sweeps)
+/// weighs its crowded top decade down and its few low points up, so the decades where L0 and Rdc show
+/// count as much as the one where the points crowd. The weights make the fit minimise the misfit
+/// integrated over ln f; they say nothing about how sure a point is, so the parameters' covariance is
+/// the sandwich form of the weighted estimator (see `fit::lumped::spread`), which counts every point
+/// with its own σ.
 pub fn density_weights(frequency_hz: &[f64]) -> Vec<f64> {
     let n = frequency_hz.len();
     if n < 3 {
@@ -86,7 +93,7 @@ pub fn density_weights(frequency_hz: &[f64]) -> Vec<f64> {
                 k if k == n - 1 => x[n - 1] - x[n - 2],
                 k => 0.5 * (x[k + 1] - x[k - 1]),
             };
-            (share / mean).min(1.0)
+            (share / mean).min(MAX_DENSITY_WEIGHT)
         })
         .collect()
 }
