@@ -244,3 +244,46 @@ fn the_material_is_reported_from_turns_and_dimensions() {
         }
     }
 }
+
+/// The rational family on the same real sweeps: none refused (the bead's data are passive, and a model
+/// that needs more than the allowed error increase to become passive is given, with a warning, when it
+/// is clearly closer to the data),
+/// every model returned is passive, and a `poor` one says why.
+#[test]
+fn the_rational_family_fits_every_real_sweep_with_a_passive_model() {
+    use henrybook::fit::passivity::check_passivity;
+    use henrybook::fit::{ModelFamily, fit};
+    use henrybook::model::FittedModel;
+    let Some(dir) = folder() else { return };
+    let mut files: Vec<String> = std::fs::read_dir(&dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().into_string().unwrap())
+        .filter(|n| n.ends_with(".s1p"))
+        .collect();
+    files.sort();
+    let options = FitOptions {
+        family: ModelFamily::Rational,
+        ..FitOptions::default()
+    };
+    for file in &files {
+        let bytes = std::fs::read(dir.join(file)).unwrap();
+        let sweep = read_sweep(file, &bytes, &ReadOptions::default()).unwrap();
+        let report = fit(&sweep, &options, &FitControl::default())
+            .unwrap_or_else(|e| panic!("{file}: rational fit refused: {e}"));
+        let FittedModel::Rational(m) = &report.model else {
+            panic!("{file}: not a rational model")
+        };
+        assert!(check_passivity(m).passive, "{file}: not passive");
+        let a = &report.assessment;
+        if a.status == FitStatus::Poor {
+            assert!(!a.findings.is_empty(), "{file}: poor without a reason");
+        }
+        eprintln!(
+            "{file} | {} | rms_w {:.3} | {} | {}",
+            a.status.as_str(),
+            report.quality.rms_weighted,
+            report.candidates.iter().find(|c| c.chosen).unwrap().label,
+            report.warnings.join("; ")
+        );
+    }
+}

@@ -64,8 +64,9 @@ pub struct FitOptions {
     /// Rational fits: most pole relocations per order.
     pub rational_max_relocations: u64,
     /// Rational fits: passivity enforcement may raise the weighted RMS error by at most this fraction
-    /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`); a model that cannot be made passive
-    /// within it is not returned.
+    /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`). When no order within it reaches
+    /// the target error, an order enforced past it is kept if it is clearly closer to the data, with a
+    /// warning; passive data are never refused for the allowance alone.
     pub passivity_rms_allowance: f64,
     /// For the service: when a lumped fit's weighted RMS error ends above this (the chosen model misses
     /// the data by more than its stated uncertainty explains), the service queues a rational fit of the
