@@ -441,3 +441,71 @@ async fn a_part_at_its_bound_is_refused_before_its_file_is_looked_at() {
     assert_busy(r, 429, "throttled").await;
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn concurrent_refits_never_take_a_part_past_its_queue_bound() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.workers = 1;
+    settings.shutdown_grace = Duration::from_millis(200);
+    settings.max_queued_fits_per_part = 3;
+    let app = spawn_app_with(
+        dir,
+        settings,
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
+    app.create_part("B-1", json!({})).await;
+    let r = upload_one(&app, "B-1", 0).await;
+    assert_eq!(r.status(), 202);
+    let fit_id = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
+    // Twelve refits at once: each passes the check before the write, so only the check inside the
+    // write keeps the part at its bound (one fit already queued or running, two more fit).
+    let mut requests = tokio::task::JoinSet::new();
+    for i in 0..12 {
+        let request = app
+            .client
+            .post(app.url(&format!("/api/v1/fits/{fit_id}/refit")))
+            .bearer_auth(&app.engineer)
+            .json(&json!({"options": {"max_iterations": 100 + i}}));
+        requests.spawn(request.send());
+    }
+    let mut accepted = 0;
+    while let Some(r) = requests.join_next().await {
+        let r = r.unwrap().unwrap();
+        match r.status().as_u16() {
+            202 => accepted += 1,
+            429 => assert_busy(r, 429, "throttled").await,
+            other => panic!("refit answered {other}: {}", r.text().await.unwrap()),
+        }
+    }
+    assert_eq!(
+        accepted, 2,
+        "the part's bound is 3 with one fit already queued"
+    );
+    let fits: Value = app
+        .client
+        .get(app.url("/api/v1/fits?part_number=B-1"))
+        .bearer_auth(&app.inspector)
+        .send()
+        .await
+        .unwrap()
+        .json()
+        .await
+        .unwrap();
+    let items = fits["items"]
+        .as_array()
+        .or(fits.as_array())
+        .cloned()
+        .unwrap_or_default();
+    assert_eq!(items.len(), 3, "the upload and two refits: {fits}");
+    let waiting = items
+        .iter()
+        .filter(|f| f["status"] == "queued" || f["status"] == "running")
+        .count();
+    assert!(waiting <= 3, "{waiting} fits of the part wait: {fits}");
+    app.stop().await;
+}

@@ -159,7 +159,9 @@ async fn retry(
         .backpressure
         .check_queue(&state.store, PartRef::OfFit(fit_id))
         .await?;
-    state.store.retry_fit(&caller.label, fit_id).await?;
+    // Checked again inside the write, so concurrent retries cannot together pass the bound.
+    let bounds = Some(state.backpressure.queue_bounds());
+    state.store.retry_fit(&caller.label, fit_id, bounds).await?;
     state.jobs.wake();
     Ok(Json(state.store.fit_summary(fit_id).await?))
 }
@@ -208,7 +210,13 @@ async fn refit(
     let key = crate::jobs::job_key(&state.store.job_input(fit_id).await?, &options_json);
     let new_id = state
         .store
-        .refit(&caller.label, fit_id, &options_json, &key)
+        .refit(
+            &caller.label,
+            fit_id,
+            &options_json,
+            &key,
+            Some(state.backpressure.queue_bounds()),
+        )
         .await?;
     state.jobs.wake();
     Ok((StatusCode::ACCEPTED, Json(RefitAccepted { fit_id: new_id })))

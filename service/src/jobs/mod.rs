@@ -340,7 +340,8 @@ impl RunningJob {
                 {
                     match self
                         .store
-                        .refit(AUTOMATIC_ACTOR, fit_id, options_json, key)
+                        // One follow-up per finished fit: not held to the request bounds.
+                        .refit(AUTOMATIC_ACTOR, fit_id, options_json, key, None)
                         .await
                     {
                         Ok(next) => {

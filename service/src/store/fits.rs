@@ -270,13 +270,21 @@ impl Store {
     }
 
     /// Queues a failed or cancelled fit again (same revision: its result was never written).
-    pub async fn retry_fit(&self, actor: &str, fit_id: i64) -> StoreResult<()> {
+    pub async fn retry_fit(
+        &self,
+        actor: &str,
+        fit_id: i64,
+        bounds: Option<super::sweeps::QueueBounds>,
+    ) -> StoreResult<()> {
         let mut tx = self.write().await?;
         let (status, part_id) = status_of(&mut tx, fit_id).await?;
         if status != "failed" && status != "cancelled" {
             return Err(StoreError::Conflict(format!(
                 "fit {fit_id} is {status}: only failed or cancelled fits can be retried"
             )));
+        }
+        if let Some(b) = bounds {
+            super::sweeps::check_queue_bounds(&mut tx, b, part_id).await?;
         }
         sqlx::query(
             "UPDATE fits SET status = 'queued', progress = 0, error = NULL, started_at_ms = NULL, \
@@ -313,6 +321,7 @@ impl Store {
         fit_id: i64,
         options_json: &str,
         options_key: &str,
+        bounds: Option<super::sweeps::QueueBounds>,
     ) -> StoreResult<i64> {
         let mut tx = self.write().await?;
         let row: Option<(i64, i64, i64)> =
@@ -322,6 +331,9 @@ impl Store {
                 .await?;
         let (sweep_id, part_id, lot_id) =
             row.ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        if let Some(b) = bounds {
+            super::sweeps::check_queue_bounds(&mut tx, b, part_id).await?;
+        }
         let revision: i64 =
             sqlx::query_scalar("SELECT MAX(revision) + 1 FROM fits WHERE sweep_id = ?")
                 .bind(sweep_id)

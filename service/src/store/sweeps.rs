@@ -173,6 +173,39 @@ pub(crate) async fn insert_fit(
     Ok(fit_id)
 }
 
+/// Refuses with [`StoreError::QueueFull`] when the queue, in all or for the part, is at its bound.
+/// Called inside the transaction that adds the fit, so concurrent requests cannot together pass it.
+pub(crate) async fn check_queue_bounds(
+    conn: &mut sqlx::SqliteConnection,
+    b: QueueBounds,
+    part_id: i64,
+) -> StoreResult<()> {
+    let all: i64 = sqlx::query_scalar(
+            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
+        )
+        .fetch_one(&mut *conn)
+        .await?;
+    if all >= b.all {
+        return Err(StoreError::QueueFull {
+            part: false,
+            queued: all,
+        });
+    }
+    let part: i64 = sqlx::query_scalar(
+        "SELECT COUNT(*) FROM fits WHERE part_id = ? AND status IN ('queued', 'running')",
+    )
+    .bind(part_id)
+    .fetch_one(&mut *conn)
+    .await?;
+    if part >= b.part {
+        return Err(StoreError::QueueFull {
+            part: true,
+            queued: part,
+        });
+    }
+    Ok(())
+}
+
 /// The body of [`Store::upload`], inside the caller's transaction.
 async fn upload_in(
     conn: &mut sqlx::SqliteConnection,
@@ -208,29 +241,7 @@ async fn upload_in(
         });
     }
     if let Some(b) = bounds {
-        let all: i64 = sqlx::query_scalar(
-            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
-        )
-        .fetch_one(&mut *conn)
-        .await?;
-        if all >= b.all {
-            return Err(StoreError::QueueFull {
-                part: false,
-                queued: all,
-            });
-        }
-        let part: i64 = sqlx::query_scalar(
-            "SELECT COUNT(*) FROM fits WHERE part_id = ? AND status IN ('queued', 'running')",
-        )
-        .bind(part_id)
-        .fetch_one(&mut *conn)
-        .await?;
-        if part >= b.part {
-            return Err(StoreError::QueueFull {
-                part: true,
-                queued: part,
-            });
-        }
+        check_queue_bounds(&mut *conn, b, part_id).await?;
     }
     let now = now_ms();
     let lot_id: i64 = sqlx::query_scalar(
