@@ -193,6 +193,22 @@ async fn an_uploaded_sweep_is_fitted_and_its_result_can_be_polled_and_downloaded
         .get_json("/api/v1/fits?since=2999-01-01T00:00:00Z", &app.reader)
         .await;
     assert!(none["items"].as_array().unwrap().is_empty());
+    // What the OpenAPI document refuses, the service refuses too: an empty time, a frequency past the
+    // stored grid (100 Hz to 10 GHz).
+    for path in [
+        "/api/v1/fits?since=",
+        "/api/v1/parts?l_at_hz=10000000001&l_min_h=1e-6",
+        "/api/v1/parts?l_at_hz=99",
+    ] {
+        let r = app
+            .client
+            .get(app.url(path))
+            .bearer_auth(&app.reader)
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(r.status(), 422, "{path}");
+    }
     app.stop().await;
 }
 

@@ -1034,10 +1034,20 @@ pub fn fit_lumped(
     }
     let mut warnings = report_warnings(sweep, options);
     warnings.extend(plausibility_warnings(&model, band_hz));
-    let material = options
-        .construction
-        .as_ref()
-        .map(|c| crate::model::material::material_report(&model, uncertainty.l0_h, c, band_hz));
+    let material = options.construction.as_ref().and_then(|c| {
+        let r = crate::model::material::material_report(&model, uncertainty.l0_h, c, band_hz);
+        if r.is_finite() {
+            Some(r)
+        } else {
+            warnings.push(
+                "the core material is not reported: with the stated construction the fitted L0 \
+                 gives no finite permeability (a gap the fitted inductance cannot have, or \
+                 dimensions far from a real core)"
+                    .into(),
+            );
+            None
+        }
+    });
     Ok(FitReport {
         material,
         engine_version: super::ENGINE_VERSION.to_string(),

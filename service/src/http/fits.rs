@@ -47,7 +47,7 @@ pub fn fit_filter(p: FitListParams) -> ApiResult<FitFilter> {
         })?),
     };
     let since_ms = match p.since.as_deref() {
-        None | Some("") => None,
+        None => None,
         Some(s) => Some(parse_rfc3339(s).ok_or_else(|| {
             Problem::validation(format!("since must be an RFC 3339 time, not {s:?}"))
         })?),
@@ -169,8 +169,8 @@ async fn retry(
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct RefitRequest {
-    /// The engine's FitOptions (every field optional); null or absent for the defaults.
-    #[schema(value_type = Option<Object>)]
+    /// The engine's fit options (every field optional); null or absent for the defaults.
+    #[schema(value_type = Option<super::sweeps::FitOptionsBody>)]
     #[serde(default)]
     pub options: serde_json::Value,
 }

@@ -69,7 +69,28 @@ pub fn openapi() -> utoipa::openapi::OpenApi {
     let mut api = api_router().split_for_parts().1;
     api.info.version = env!("CARGO_PKG_VERSION").to_string();
     problem_answers(&mut api);
+    optional_bodies(&mut api);
     api
+}
+
+/// Operations whose body may be left out (the defaults apply): approve (no reason, no override) and
+/// refit (the default options). utoipa marks every declared body as required.
+fn optional_bodies(api: &mut utoipa::openapi::OpenApi) {
+    use utoipa::openapi::Required;
+    for path in [
+        "/api/v1/fits/{fit_id}/approve",
+        "/api/v1/fits/{fit_id}/refit",
+    ] {
+        if let Some(utoipa::openapi::RefOr::T(body)) = api
+            .paths
+            .paths
+            .get_mut(path)
+            .and_then(|item| item.post.as_mut())
+            .and_then(|op| op.request_body.as_mut())
+        {
+            body.required = Some(Required::False);
+        }
+    }
 }
 
 /// Every error answer as the service gives it: `application/problem+json` with [`problem::ProblemBody`],

@@ -53,6 +53,7 @@ pub struct PartQueryParams {
     #[param(exclusive_minimum = 0.0)]
     pub z_band_max_hz: Option<f64>,
     /// part_number (default), srf_hz, l0_h or rdc_ohm; prefix - for descending.
+    #[param(pattern = r"^-?(part_number|srf_hz|l0_h|rdc_ohm)?$")]
     pub sort: Option<String>,
     /// 1..500, default 50.
     #[param(minimum = 1, maximum = 500)]

@@ -654,3 +654,147 @@ mod tests {
         assert_eq!(options.report_frequencies_hz, vec![1.9e49]);
     }
 }
+
+// Describes `FitOptions` in the OpenAPI document only: requests are read into `FitOptions` by
+// `parse_options_value`, and `fit_options_body_names_every_option` keeps the two field lists the same.
+/// The fit options: every field optional (absent fields take the defaults), unknown fields refused.
+/// Relations between fields are checked too, though they cannot be written here: a toroid's inner
+/// diameter below its outer, a gap shorter than the magnetic path, a DCR σ at most ten times the
+/// reading, a rational order the sweep's points can carry.
+#[allow(dead_code)]
+#[derive(Debug, serde::Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct FitOptionsBody {
+    /// `lumped` (default) or `rational`.
+    #[schema(pattern = r"^(lumped|rational)$")]
+    pub family: Option<String>,
+    /// A four-wire DC resistance reading that pins `rdc_ohm`.
+    pub dcr: Option<DcrReadingBody>,
+    /// Most extra resonant sections model selection may add (default 3).
+    #[schema(minimum = 0, maximum = 3)]
+    pub max_sections: Option<u32>,
+    /// Default 200.
+    #[schema(minimum = 1, maximum = 100000)]
+    pub max_iterations: Option<u32>,
+    /// Wall-clock bound for the whole fit, in seconds (default 10).
+    #[schema(exclusive_minimum = 0.0, maximum = 3600.0)]
+    pub time_limit_s: Option<f64>,
+    /// Frequencies at which the report gives effective L and Q (at most 1000, each above 0 and at most
+    /// 1 THz).
+    #[schema(max_items = 1000, inline)]
+    pub report_frequencies_hz: Option<Vec<PositiveFrequency>>,
+    /// Rational fits: a fixed order; absent or null grows the order automatically.
+    #[schema(minimum = 1, maximum = 60)]
+    pub rational_order: Option<u32>,
+    /// Rational fits: the highest order automatic selection tries (default 30).
+    #[schema(minimum = 2, maximum = 60)]
+    pub rational_max_order: Option<u32>,
+    /// Rational fits: automatic selection stops at the first order at or below this weighted RMS
+    /// error (default 1).
+    #[schema(exclusive_minimum = 0.0)]
+    pub rational_target_rms_weighted: Option<f64>,
+    /// Rational fits: most pole relocations per order (default 30).
+    #[schema(minimum = 1, maximum = 1000)]
+    pub rational_max_relocations: Option<u32>,
+    /// Rational fits: the fraction by which passivity enforcement may raise the weighted RMS error
+    /// (default 0.1).
+    #[schema(minimum = 0.0, maximum = 10.0)]
+    pub passivity_rms_allowance: Option<f64>,
+    /// For the service: a lumped fit whose weighted RMS error ends above this is followed by a
+    /// rational fit of the same sweep (default 3; null never).
+    #[schema(exclusive_minimum = 0.0)]
+    pub rational_fallback_above_rms_weighted: Option<f64>,
+    /// How the part is built: turns and core, for the core material's permeability spectrum.
+    pub construction: Option<ConstructionBody>,
+}
+
+/// A frequency above 0 Hz and at most 1 THz.
+#[allow(dead_code)]
+#[derive(Debug, serde::Deserialize, utoipa::ToSchema)]
+#[schema(value_type = f64, exclusive_minimum = 0.0, maximum = 1e12)]
+pub struct PositiveFrequency(pub f64);
+
+#[allow(dead_code)]
+#[derive(Debug, serde::Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct DcrReadingBody {
+    #[schema(exclusive_minimum = 0.0, maximum = 1e6)]
+    pub value_ohm: f64,
+    /// Standard uncertainty; when absent, 0.5 % of the value plus 1 mΩ.
+    #[schema(exclusive_minimum = 0.0)]
+    pub sigma_ohm: Option<f64>,
+}
+
+#[allow(dead_code)]
+#[derive(Debug, serde::Deserialize, utoipa::ToSchema)]
+#[serde(deny_unknown_fields)]
+pub struct ConstructionBody {
+    #[schema(minimum = 1.0, maximum = 100000.0)]
+    pub turns: f64,
+    pub core: CoreShapeBody,
+    /// Air gap, shorter than the magnetic path.
+    #[schema(minimum = 0.0)]
+    pub gap_m: Option<f64>,
+    #[schema(minimum = 1.0, maximum = 1000000.0)]
+    pub nominal_initial_permeability: Option<f64>,
+}
+
+/// A toroid by its three dimensions, or any core by its effective area and path.
+#[allow(dead_code)]
+#[derive(Debug, serde::Deserialize, utoipa::ToSchema)]
+#[serde(rename_all = "snake_case", deny_unknown_fields)]
+pub enum CoreShapeBody {
+    Toroid {
+        #[schema(minimum = 0.00001, maximum = 10.0)]
+        outer_diameter_m: f64,
+        #[schema(minimum = 0.00001, maximum = 10.0)]
+        inner_diameter_m: f64,
+        #[schema(minimum = 0.00001, maximum = 10.0)]
+        height_m: f64,
+    },
+    Effective {
+        #[schema(minimum = 0.000000000001, maximum = 1.0)]
+        area_m2: f64,
+        #[schema(minimum = 0.00001, maximum = 10.0)]
+        path_m: f64,
+    },
+}
+
+#[cfg(test)]
+mod options_body_tests {
+    use crate::fit::FitOptions;
+
+    /// Every option the engine reads is in the documented body, and nothing else.
+    #[test]
+    fn fit_options_body_names_every_option() {
+        let options = FitOptions {
+            construction: Some(crate::model::material::Construction {
+                turns: 1.0,
+                core: crate::model::material::CoreShape::Effective {
+                    area_m2: 1e-5,
+                    path_m: 0.05,
+                },
+                gap_m: None,
+                nominal_initial_permeability: None,
+            }),
+            ..FitOptions::default()
+        };
+        let engine: std::collections::BTreeSet<String> = serde_json::to_value(&options)
+            .unwrap()
+            .as_object()
+            .unwrap()
+            .keys()
+            .cloned()
+            .collect();
+        let api = crate::http::openapi();
+        let doc = serde_json::to_value(&api).unwrap();
+        let documented: std::collections::BTreeSet<String> =
+            doc["components"]["schemas"]["FitOptionsBody"]["properties"]
+                .as_object()
+                .expect("FitOptionsBody is documented")
+                .keys()
+                .cloned()
+                .collect();
+        assert_eq!(engine, documented);
+    }
+}

@@ -63,6 +63,37 @@ impl Construction {
             }
         };
         positive("turns", self.turns)?;
+        // Plausible ranges (common practice, no source): a winding of at least one turn and at most
+        // 100 000; core dimensions from 10 µm to 10 m, areas from 1e-12 m² to 1 m²; an initial
+        // permeability from 1 to 1e6. Outside them the numbers are typing slips, not cores.
+        let within = |name: &str, v: f64, lo: f64, hi: f64| {
+            if (lo..=hi).contains(&v) {
+                Ok(())
+            } else {
+                Err(format!(
+                    "construction.{name} is {v}; it must be {lo:e} to {hi:e}"
+                ))
+            }
+        };
+        within("turns", self.turns, 1.0, 1e5)?;
+        match self.core {
+            CoreShape::Toroid {
+                outer_diameter_m,
+                inner_diameter_m,
+                height_m,
+            } => {
+                within("core.toroid.outer_diameter_m", outer_diameter_m, 1e-5, 10.0)?;
+                within("core.toroid.inner_diameter_m", inner_diameter_m, 1e-5, 10.0)?;
+                within("core.toroid.height_m", height_m, 1e-5, 10.0)?;
+            }
+            CoreShape::Effective { area_m2, path_m } => {
+                within("core.effective.area_m2", area_m2, 1e-12, 1.0)?;
+                within("core.effective.path_m", path_m, 1e-5, 10.0)?;
+            }
+        }
+        if let Some(mu) = self.nominal_initial_permeability {
+            within("nominal_initial_permeability", mu, 1.0, 1e6)?;
+        }
         match self.core {
             CoreShape::Toroid {
                 outer_diameter_m,
@@ -174,6 +205,24 @@ pub struct MaterialReport {
 }
 
 /// The material report for a lumped model (its core branch) over `band_hz`.
+impl MaterialReport {
+    /// Whether every number is finite (and the permeability positive): a report that is not cannot be
+    /// stored as JSON faithfully, and says nothing about the material.
+    pub fn is_finite(&self) -> bool {
+        self.inductance_per_permeability_h.is_finite()
+            && self.inductance_per_permeability_h > 0.0
+            && self.initial_permeability.is_finite()
+            && self.initial_permeability > 0.0
+            && self.initial_permeability_sigma.is_none_or(f64::is_finite)
+            && self.expected_l0_h.is_none_or(f64::is_finite)
+            && self.l0_versus_expected_percent.is_none_or(f64::is_finite)
+            && self
+                .spectrum
+                .iter()
+                .all(|p| p.mu_real.is_finite() && p.mu_imag.is_finite())
+    }
+}
+
 pub fn material_report(
     model: &LumpedModel,
     l0_sigma_h: Option<f64>,
@@ -227,6 +276,42 @@ pub fn material_report(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_construction_outside_plausible_ranges_is_refused() {
+        let mut c = toroid(10.0);
+        c.core = CoreShape::Effective {
+            area_m2: 5e-324,
+            path_m: 5e-324,
+        };
+        let e = c.validate().unwrap_err();
+        assert!(e.contains("area_m2"), "{e}");
+        let mut c = toroid(0.5);
+        assert!(c.validate().unwrap_err().contains("turns"));
+        c.turns = 2.0;
+        c.nominal_initial_permeability = Some(1e9);
+        assert!(c.validate().is_err());
+    }
+
+    #[test]
+    fn a_gap_the_fitted_inductance_cannot_have_gives_no_finite_report() {
+        // μe = L0/L1 above le/g makes μ = μe/(1 − μe·g/le) negative: no material has it.
+        let mut c = toroid(10.0);
+        c.gap_m = Some(0.5 * c.path_m());
+        let l1 = c.inductance_per_permeability_h();
+        let model = LumpedModel {
+            l0_h: 10.0 * l1,
+            rdc_ohm: 0.1,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: None,
+            cp_f: 1e-12,
+            ls_h: 0.0,
+            sections: vec![],
+            core: None,
+        };
+        let r = material_report(&model, None, &c, [1e3, 1e6]);
+        assert!(!r.is_finite(), "{:?}", r.initial_permeability);
+    }
 
     fn toroid(turns: f64) -> Construction {
         Construction {

@@ -155,7 +155,8 @@ impl PartQuery {
             return Err("l_min_h and l_max_h need l_at_hz".into());
         }
         if let Some(f) = self.l_at_hz
-            && grid::bracket(f).is_none()
+            && (grid::bracket(f).is_none()
+                || !(grid::frequency_hz(0)..=grid::frequency_hz(grid::LAST_K)).contains(&f))
         {
             return Err(format!(
                 "l_at_hz must lie in {}..{} Hz, the stored grid",
