@@ -1,8 +1,11 @@
 //! The command line. `fit` and `impedance` run the numeric core on files; `serve`, `token` and `demo`
 //! belong to the service (see [`crate::server_cli`]).
 //!
+//! Parsed with clap (`--help` and `--version` on every command; values take SI prefixes).
+//!
 //! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational]
-//! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q). With `--json` it prints one JSON object per file per line; a file
+//! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q,
+//! as columns of the table or in the JSON). With `--json` it prints one JSON object per file per line; a file
 //! that cannot be read or fitted gives `"status": "failed"` with the error and the other files still
 //! run. Each fitted file's status is `ok` (the model describes the data within their uncertainty) or
 //! `poor` (it does not; the findings say where and by how much). Exit code 0 when every file was
@@ -16,16 +19,134 @@
 use crate::fit::{self, DcrReading, FitControl, FitOptions, FitReport, ModelFamily};
 use crate::model::FittedModel;
 use crate::sweep::{self, Method, ReadOptions, Sweep};
+use clap::{Args, Parser, Subcommand, ValueEnum};
 use serde_json::{Value, json};
 use std::io::Write;
 use std::process::ExitCode;
 
-const USAGE: &str = "\
-usage:
-  henrybook fit FILE... [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--dcr OHM]
-                        [--family lumped|rational] [--at HZ[,HZ...]] [--json]
-  henrybook impedance FILE [--method reflection|series-thru|shunt-thru|direct] [--z0 OHM] [--json]
-  henrybook serve | token create | demo | verify --database FILE";
+/// The service's own commands, listed in the top-level help (each has its own `--help`).
+const SERVICE_COMMANDS: &str = "\
+Service commands:
+  serve    Serve the HTTP API and the gRPC interface, and run fits
+  token    Create bearer tokens
+  demo     Run the service on a demo database with invented parts and sweeps
+  verify   Check a database's audit trail and stored verdicts
+
+Values take SI prefixes: --at 100k,1M  --dcr 46.35m  --z0 50";
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "henrybook",
+    version,
+    propagate_version = true,
+    about = "Fit high-frequency models to inductor impedance sweeps; serve the registry",
+    after_help = SERVICE_COMMANDS
+)]
+struct Cli {
+    #[command(subcommand)]
+    command: Cmd,
+}
+
+#[derive(Debug, Subcommand)]
+enum Cmd {
+    /// Fit a model to each sweep file and print its status, parameters and findings.
+    #[command(
+        long_about = "Fit a model to each sweep file (Touchstone .s1p/.s2p/.ts or CSV) and print \
+a table, or one JSON object per file per line with --json. A file that cannot be read or fitted is \
+reported as failed and the others still run.\n\nEach fitted file is `ok` (the model describes the \
+data within their uncertainty) or `poor` (it does not; the findings say where and by how much).\n\n\
+Exit status: 0 every file ok, 3 every file fitted but some poor, 1 any file failed, 2 a usage error."
+    )]
+    Fit(FitArgs),
+    /// Print the impedance a sweep file implies (any readable file, also one too short to fit).
+    #[command(
+        long_about = "Print the impedance a sweep file implies, as CSV (frequency_hz, \
+z_real_ohm, z_imag_ohm, sigma_ohm) or one JSON object with --json, for any file the readers accept \
+(also one too short to fit). The reader's warnings and a 0 Hz row's DC reading go to standard error."
+    )]
+    Impedance(ImpedanceArgs),
+}
+
+/// How a file was measured.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum MethodArg {
+    /// One-port S11.
+    Reflection,
+    /// Two-port, the part in series between the ports.
+    SeriesThru,
+    /// Two-port, the part from the line to ground.
+    ShuntThru,
+    /// The file holds impedance itself.
+    Direct,
+}
+
+impl From<MethodArg> for Method {
+    fn from(m: MethodArg) -> Method {
+        match m {
+            MethodArg::Reflection => Method::Reflection,
+            MethodArg::SeriesThru => Method::SeriesThru,
+            MethodArg::ShuntThru => Method::ShuntThru,
+            MethodArg::Direct => Method::Direct,
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum FamilyArg {
+    /// Lumped elements with uncertainty (L0, DCR, skin effect, core, Cp, sections).
+    Lumped,
+    /// A wideband rational model (vector fitting), passive.
+    Rational,
+}
+
+#[derive(Debug, Args)]
+struct ReadArgs {
+    /// How the file was measured (a two-port file needs it; a one-port file is reflection).
+    #[arg(long, value_enum)]
+    method: Option<MethodArg>,
+    /// Reference impedance in ohms, when the file does not state it (SI prefixes: 50, 75, 1k).
+    #[arg(long, value_name = "OHM", value_parser = positive_si)]
+    z0: Option<f64>,
+    /// One JSON object per file per line instead of a table.
+    #[arg(long)]
+    json: bool,
+}
+
+#[derive(Debug, Args)]
+struct FitArgs {
+    /// Sweep files: Touchstone (.s1p, .s2p, .ts) or CSV.
+    #[arg(required = true, value_name = "FILE")]
+    files: Vec<String>,
+    #[command(flatten)]
+    read: ReadArgs,
+    /// A four-wire DC resistance reading in ohms that pins Rdc (SI prefixes: 46.35m).
+    #[arg(long, value_name = "OHM", value_parser = positive_si)]
+    dcr: Option<f64>,
+    /// Model family.
+    #[arg(long, value_enum, default_value = "lumped")]
+    family: FamilyArg,
+    /// Frequencies at which to give effective L and Q, comma-separated (SI prefixes: 100k,1M).
+    #[arg(long, value_name = "HZ", value_delimiter = ',', value_parser = positive_si)]
+    at: Vec<f64>,
+}
+
+#[derive(Debug, Args)]
+struct ImpedanceArgs {
+    /// One sweep file: Touchstone (.s1p, .s2p, .ts) or CSV.
+    #[arg(value_name = "FILE")]
+    file: String,
+    #[command(flatten)]
+    read: ReadArgs,
+}
+
+/// A positive finite number with an optional SI prefix and unit ([`crate::units::parse_si`]).
+fn positive_si(text: &str) -> Result<f64, String> {
+    match crate::units::parse_si(text) {
+        Ok(x) if x.is_finite() && x > 0.0 => Ok(x),
+        Ok(x) => Err(format!("{x} is not a positive number")),
+        Err(e) => Err(e),
+    }
+}
 
 pub fn main(args: Vec<String>) -> ExitCode {
     match args.first().map(String::as_str) {
@@ -38,7 +159,7 @@ pub fn main(args: Vec<String>) -> ExitCode {
     }
 }
 
-/// Parsed flags of `fit` and `impedance`.
+/// What `fit` and `impedance` were asked to do.
 #[derive(Debug, Default)]
 struct Flags {
     files: Vec<String>,
@@ -49,112 +170,55 @@ struct Flags {
     json: bool,
 }
 
-fn parse_number(flag: &str, value: Option<&String>) -> Result<f64, String> {
-    let v = value.ok_or_else(|| format!("{flag} needs a value"))?;
-    match v.parse::<f64>() {
-        Ok(x) if x.is_finite() && x > 0.0 => Ok(x),
-        _ => Err(format!("{flag} {v}: expected a positive number of ohms")),
+fn read_options(r: &ReadArgs) -> ReadOptions {
+    ReadOptions {
+        method: r.method.map(Method::from),
+        z0_ohm: r.z0,
+        ..ReadOptions::default()
     }
 }
 
-fn parse_method(value: Option<&String>) -> Result<Method, String> {
-    match value.map(String::as_str) {
-        Some("reflection") => Ok(Method::Reflection),
-        Some("series-thru") => Ok(Method::SeriesThru),
-        Some("shunt-thru") => Ok(Method::ShuntThru),
-        Some("direct") => Ok(Method::Direct),
-        Some(other) => Err(format!(
-            "--method {other}: expected reflection, series-thru, shunt-thru or direct"
-        )),
-        None => Err("--method needs a value".into()),
-    }
-}
-
-fn parse_flags(args: &[String]) -> Result<Flags, String> {
-    let mut f = Flags::default();
-    let mut it = args.iter();
-    while let Some(a) = it.next() {
-        match a.as_str() {
-            "--json" => f.json = true,
-            "--method" => f.read.method = Some(parse_method(it.next())?),
-            "--z0" => f.read.z0_ohm = Some(parse_number("--z0", it.next())?),
-            "--dcr" => f.dcr_ohm = Some(parse_number("--dcr", it.next())?),
-            "--at" => {
-                let list = it.next().ok_or("--at needs a value")?;
-                for part in list.split(',') {
-                    match part.trim().parse::<f64>() {
-                        Ok(x) if x.is_finite() && x > 0.0 => f.at_hz.push(x),
-                        _ => {
-                            return Err(format!(
-                                "--at {part}: expected positive frequencies in Hz"
-                            ));
-                        }
-                    }
-                }
-            }
-            "--family" => {
-                f.family = match it.next().map(String::as_str) {
-                    Some("lumped") => ModelFamily::Lumped,
-                    Some("rational") => ModelFamily::Rational,
-                    Some(other) => {
-                        return Err(format!("--family {other}: expected lumped or rational"));
-                    }
-                    None => return Err("--family needs a value".into()),
-                }
-            }
-            flag if flag.starts_with("--") => return Err(format!("unknown option {flag}")),
-            file => f.files.push(file.to_string()),
-        }
-    }
-    Ok(f)
-}
-
-/// Runs `fit` or `impedance` with output to the given writers; returns the exit code.
+/// Runs `fit` or `impedance` with output to the given writers; returns the exit code (help and
+/// version go to `out` with 0, usage errors to `err` with 2).
 pub fn run(args: &[String], out: &mut dyn Write, err: &mut dyn Write) -> u8 {
-    let (cmd, rest) = match args.split_first() {
-        Some((c, r)) => (c.as_str(), r),
-        None => {
-            let _ = writeln!(err, "{USAGE}");
-            return 2;
-        }
-    };
-    if matches!(cmd, "-h" | "--help" | "help") {
-        let _ = writeln!(out, "{USAGE}");
-        return 0;
-    }
-    let flags = match parse_flags(rest) {
-        Ok(f) => f,
+    let cli = match Cli::try_parse_from(
+        std::iter::once("henrybook".to_string()).chain(args.iter().cloned()),
+    ) {
+        Ok(c) => c,
         Err(e) => {
-            let _ = writeln!(err, "henrybook {cmd}: {e}\n{USAGE}");
-            return 2;
+            let text = e.render().to_string();
+            return if e.use_stderr() {
+                let _ = write!(err, "{text}");
+                2
+            } else {
+                let _ = write!(out, "{text}");
+                0
+            };
         }
     };
-    match cmd {
-        "fit" => {
-            if flags.files.is_empty() {
-                let _ = writeln!(err, "henrybook fit: no files given\n{USAGE}");
-                return 2;
-            }
+    match cli.command {
+        Cmd::Fit(a) => {
+            let flags = Flags {
+                files: a.files,
+                read: read_options(&a.read),
+                dcr_ohm: a.dcr,
+                at_hz: a.at,
+                family: match a.family {
+                    FamilyArg::Lumped => ModelFamily::Lumped,
+                    FamilyArg::Rational => ModelFamily::Rational,
+                },
+                json: a.read.json,
+            };
             run_fit(&flags, out)
         }
-        "impedance" => {
-            if flags.files.len() != 1 {
-                let _ = writeln!(
-                    err,
-                    "henrybook impedance: exactly one file expected, got {}\n{USAGE}",
-                    flags.files.len()
-                );
-                return 2;
-            }
-            if flags.dcr_ohm.is_some() {
-                let _ = writeln!(err, "henrybook impedance: --dcr applies to fit only");
-                return 2;
-            }
+        Cmd::Impedance(a) => {
+            let flags = Flags {
+                files: vec![a.file],
+                read: read_options(&a.read),
+                json: a.read.json,
+                ..Flags::default()
+            };
             run_impedance(&flags, out, err)
-        }
-        other => {
-            let _ = writeln!(err, "henrybook: unknown command {other}\n{USAGE}");
-            2
         }
     }
 }
@@ -225,7 +289,7 @@ pub fn report_json(file: &str, report: &FitReport) -> Value {
 
 pub use crate::units::eng;
 
-fn table_row(file: &str, report: &FitReport) -> Vec<String> {
+fn table_row(file: &str, report: &FitReport, at_hz: &[f64]) -> Vec<String> {
     let srf = match (report.derived.srf_hz, report.derived.srf_above_hz) {
         (Some(f), _) => eng(f, "Hz"),
         (None, Some(b)) => format!("> {}", eng(b, "Hz")),
@@ -237,7 +301,7 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
         .find(|c| c.chosen)
         .map(|c| c.label.clone())
         .unwrap_or_else(|| "rational".into());
-    match &report.model {
+    let mut row = match &report.model {
         FittedModel::Lumped(m) => vec![
             file.into(),
             report.assessment.status.as_str().into(),
@@ -266,11 +330,26 @@ fn table_row(file: &str, report: &FitReport) -> Vec<String> {
             structure,
             "-".into(),
         ],
+    };
+    for f in at_hz {
+        match report
+            .derived
+            .at_frequencies
+            .iter()
+            .find(|p| p.frequency_hz == *f)
+        {
+            Some(p) => {
+                row.push(eng(p.l_eff_h, "H"));
+                row.push(format!("{:.2}", p.q));
+            }
+            None => row.extend(["-".to_string(), "-".to_string()]),
+        }
     }
+    row
 }
 
-fn print_table(rows: &[Vec<String>], out: &mut dyn Write) {
-    let header: Vec<String> = [
+fn print_table(rows: &[Vec<String>], at_hz: &[f64], out: &mut dyn Write) {
+    let mut header: Vec<String> = [
         "file",
         "status",
         "L0",
@@ -285,6 +364,10 @@ fn print_table(rows: &[Vec<String>], out: &mut dyn Write) {
     .iter()
     .map(|s| s.to_string())
     .collect();
+    for f in at_hz {
+        header.push(format!("L @ {}", eng(*f, "Hz")));
+        header.push(format!("Q @ {}", eng(*f, "Hz")));
+    }
     let mut width = vec![0; header.len()];
     for r in std::iter::once(&header).chain(rows) {
         for (w, c) in width.iter_mut().zip(r) {
@@ -320,7 +403,7 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
                 if flags.json {
                     let _ = writeln!(out, "{}", report_json(file, &report));
                 } else {
-                    rows.push(table_row(file, &report));
+                    rows.push(table_row(file, &report, &flags.at_hz));
                 }
             }
             Err(e) => {
@@ -333,7 +416,10 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
                     );
                 } else {
                     let mut r = vec![file.clone(), "failed".into()];
-                    r.extend(std::iter::repeat_n("-".to_string(), 8));
+                    r.extend(std::iter::repeat_n(
+                        "-".to_string(),
+                        8 + 2 * flags.at_hz.len(),
+                    ));
                     rows.push(r);
                     failures.push(e);
                 }
@@ -342,7 +428,7 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
         let _ = out.flush();
     }
     if !flags.json {
-        print_table(&rows, out);
+        print_table(&rows, &flags.at_hz, out);
         for p in poor {
             let _ = writeln!(out, "poor: {p}");
         }
@@ -434,20 +520,68 @@ mod tests {
     #[test]
     fn usage_errors_are_clear_and_exit_2() {
         for (cmdline, needle) in [
-            ("fit", "no files given"),
-            ("fit a.s1p --method sideways", "--method sideways"),
-            ("fit a.s1p --z0", "--z0 needs a value"),
-            ("fit a.s1p --dcr -3", "positive number"),
-            ("fit a.s1p --bogus", "unknown option --bogus"),
-            ("fit a.s1p --at 1e6,x", "--at x"),
-            ("impedance a.s1p b.s1p", "exactly one file"),
-            ("frobnicate", "unknown command frobnicate"),
+            ("fit", "FILE"),
+            ("fit a.s1p --method sideways", "sideways"),
+            ("fit a.s1p --z0", "--z0"),
+            ("fit a.s1p --dcr -3", "-3"),
+            ("fit a.s1p --dcr 0", "not a positive number"),
+            ("fit a.s1p --bogus", "--bogus"),
+            ("fit a.s1p --at 1e6,x", "\"x\" is not a number"),
+            ("impedance a.s1p b.s1p", "b.s1p"),
+            ("frobnicate", "frobnicate"),
         ] {
-            let (code, _, err) = run_str(cmdline);
+            let (code, out, err) = run_str(cmdline);
             assert_eq!(code, 2, "{cmdline}");
+            assert!(out.is_empty(), "{cmdline}: {out}");
             assert!(err.contains(needle), "{cmdline}: {err}");
-            assert!(err.contains("usage:"), "{cmdline}");
+            // Either the usage itself or where to find it.
+            assert!(
+                err.contains("Usage:") || err.contains("--help"),
+                "{cmdline}: {err}"
+            );
         }
+    }
+
+    #[test]
+    fn help_and_version_answer_on_every_command() {
+        for cmdline in ["--help", "-h", "fit --help", "fit -h", "impedance --help"] {
+            let (code, out, err) = run_str(cmdline);
+            assert_eq!(code, 0, "{cmdline}: {err}");
+            assert!(out.contains("Usage:"), "{cmdline}: {out}");
+        }
+        let (_, out, _) = run_str("fit --help");
+        for flag in [
+            "--method",
+            "--z0",
+            "--dcr",
+            "--family",
+            "--at",
+            "--json",
+            "Exit status",
+        ] {
+            assert!(out.contains(flag), "fit --help names {flag}: {out}");
+        }
+        let (_, out, _) = run_str("--help");
+        for cmd in ["fit", "impedance", "serve", "token", "demo", "verify"] {
+            assert!(out.contains(cmd), "the top-level help names {cmd}");
+        }
+        for cmdline in ["--version", "fit --version"] {
+            let (code, out, _) = run_str(cmdline);
+            assert_eq!(code, 0);
+            assert!(out.contains(env!("CARGO_PKG_VERSION")), "{cmdline}: {out}");
+        }
+    }
+
+    #[test]
+    fn values_take_si_prefixes() {
+        let cli = Cli::try_parse_from(
+            "henrybook fit a.s1p --at 100k,1.5MHz --dcr 46.35m --z0 75".split_whitespace(),
+        )
+        .unwrap();
+        let Cmd::Fit(a) = cli.command else { panic!() };
+        assert_eq!(a.at, vec![1e5, 1.5e6]);
+        assert!((a.dcr.unwrap() - 0.04635).abs() < 1e-15);
+        assert_eq!(a.read.z0, Some(75.0));
     }
 
     #[test]

@@ -7,7 +7,12 @@ use clap::{Parser, Subcommand};
 use std::process::ExitCode;
 
 #[derive(Debug, Parser)]
-#[command(name = "henrybook", about = "The henrybook registry service")]
+#[command(
+    name = "henrybook",
+    version,
+    propagate_version = true,
+    about = "The henrybook registry service"
+)]
 struct Cli {
     #[command(subcommand)]
     command: Command,

@@ -32,3 +32,64 @@ pub fn eng(value: f64, unit: &str) -> String {
     let digits = digits.trim_end_matches('0').trim_end_matches('.');
     format!("{digits} {prefix}{unit}")
 }
+
+/// Reads a number as people write it: an optional SI prefix (p, n, u/µ, m, k, M, G, T) and an optional
+/// unit (Hz, Ω, ohm), with or without a space: "100k", "46.35m", "1.5 MHz", "2.2µ", "1e5". The
+/// prefix is case-sensitive as in SI ("m" milli, "M" mega).
+pub fn parse_si(text: &str) -> Result<f64, String> {
+    let t = text.trim();
+    let t = ["Hz", "hz", "ohms", "ohm", "Ω"]
+        .iter()
+        .find_map(|u| t.strip_suffix(u))
+        .unwrap_or(t)
+        .trim_end();
+    let scale = |c: char| match c {
+        'p' => Some(1e-12),
+        'n' => Some(1e-9),
+        'u' | 'µ' | 'μ' => Some(1e-6),
+        'm' => Some(1e-3),
+        'k' => Some(1e3),
+        'M' => Some(1e6),
+        'G' => Some(1e9),
+        'T' => Some(1e12),
+        _ => None,
+    };
+    let (number, factor) = match t.chars().last().and_then(|c| scale(c).map(|s| (c, s))) {
+        Some((c, s)) => (t[..t.len() - c.len_utf8()].trim_end(), s),
+        None => (t, 1.0),
+    };
+    match number.parse::<f64>() {
+        Ok(x) if x.is_finite() => Ok(x * factor),
+        _ => Err(format!(
+            "{text:?} is not a number (SI prefixes p, n, u, m, k, M, G, T are understood)"
+        )),
+    }
+}
+
+#[cfg(test)]
+mod parse_tests {
+    use super::parse_si;
+
+    #[test]
+    fn numbers_with_si_prefixes_and_units() {
+        for (text, want) in [
+            ("100k", 1e5),
+            ("46.35m", 0.04635),
+            ("1.5 MHz", 1.5e6),
+            ("2.2µ", 2.2e-6),
+            ("2.2u", 2.2e-6),
+            ("10kHz", 1e4),
+            ("50", 50.0),
+            ("1e5", 1e5),
+            ("47 Ω", 47.0),
+            ("3G", 3e9),
+            ("10p", 1e-11),
+        ] {
+            let got = parse_si(text).unwrap();
+            assert!((got / want - 1.0).abs() < 1e-12, "{text}: {got}");
+        }
+        for bad in ["", "k", "abc", "1x", "1.2.3", "inf", "NaN"] {
+            assert!(parse_si(bad).is_err(), "{bad:?}");
+        }
+    }
+}
