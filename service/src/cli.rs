@@ -28,7 +28,7 @@ use std::process::ExitCode;
 const SERVICE_COMMANDS: &str = "\
 Service commands:
   serve    Serve the HTTP API and the gRPC interface, and run fits
-  token    Create bearer tokens
+  token    Create, list and revoke bearer tokens
   demo     Run the service on a demo database with invented parts and sweeps
   verify   Check a database's audit trail and stored verdicts
 
@@ -128,6 +128,78 @@ struct FitArgs {
     /// Frequencies at which to give effective L and Q, comma-separated (SI prefixes: 100k,1M).
     #[arg(long, value_name = "HZ", value_delimiter = ',', value_parser = positive_si)]
     at: Vec<f64>,
+    #[command(flatten)]
+    construction: ConstructionArgs,
+}
+
+/// How the part is built: with turns and a core, the lumped fit also reports the core material's
+/// initial permeability and its μ′/μ″ spectrum.
+#[derive(Debug, Args)]
+struct ConstructionArgs {
+    /// Turns of the winding (with --toroid or --core-area and --core-path).
+    #[arg(long, value_name = "N", value_parser = positive_si)]
+    turns: Option<f64>,
+    /// A toroid's outer diameter, inner diameter and height in metres (SI prefixes: 9.5m,4.75m,3.2m).
+    #[arg(long, value_name = "OD,ID,H", value_delimiter = ',', value_parser = positive_si)]
+    toroid: Option<Vec<f64>>,
+    /// Any core's effective magnetic area in m² (with --core-path).
+    #[arg(long, value_name = "M2", value_parser = positive_si)]
+    core_area: Option<f64>,
+    /// Any core's effective magnetic path length in m (with --core-area).
+    #[arg(long, value_name = "M", value_parser = positive_si)]
+    core_path: Option<f64>,
+    /// Air gap in m (gapped cores; shorter than the magnetic path).
+    #[arg(long, value_name = "M", value_parser = positive_si)]
+    gap: Option<f64>,
+    /// The material's nominal initial permeability, for the expected L0.
+    #[arg(long, value_name = "MU", value_parser = positive_si)]
+    initial_permeability: Option<f64>,
+}
+
+impl ConstructionArgs {
+    /// The construction the flags state, `None` when none is given, or what is missing.
+    fn construction(&self) -> Result<Option<crate::model::material::Construction>, String> {
+        use crate::model::material::{Construction, CoreShape};
+        let core = match (&self.toroid, self.core_area, self.core_path) {
+            (None, None, None) => None,
+            (Some(t), None, None) if t.len() != 3 => {
+                return Err(format!(
+                    "--toroid takes three values, OD,ID,H in metres; got {}",
+                    t.len()
+                ));
+            }
+            (Some(t), None, None) => Some(CoreShape::Toroid {
+                outer_diameter_m: t[0],
+                inner_diameter_m: t[1],
+                height_m: t[2],
+            }),
+            (None, Some(area_m2), Some(path_m)) => Some(CoreShape::Effective { area_m2, path_m }),
+            (Some(_), _, _) => {
+                return Err(
+                    "give the core as --toroid or as --core-area and --core-path, not both".into(),
+                );
+            }
+            _ => return Err("--core-area and --core-path come together".into()),
+        };
+        let any_other = self.gap.is_some() || self.initial_permeability.is_some();
+        match (self.turns, core) {
+            (None, None) if !any_other => Ok(None),
+            (Some(turns), Some(core)) => {
+                let c = Construction {
+                    turns,
+                    core,
+                    gap_m: self.gap,
+                    nominal_initial_permeability: self.initial_permeability,
+                };
+                c.validate()?;
+                Ok(Some(c))
+            }
+            (None, _) => Err("the construction needs --turns".into()),
+            (Some(_), None) => Err(
+                "the construction needs its core: --toroid, or --core-area and --core-path".into(),
+            ),
+        }
+    }
 }
 
 #[derive(Debug, Args)]
@@ -167,6 +239,7 @@ struct Flags {
     dcr_ohm: Option<f64>,
     at_hz: Vec<f64>,
     family: ModelFamily,
+    construction: Option<crate::model::material::Construction>,
     json: bool,
 }
 
@@ -198,7 +271,15 @@ pub fn run(args: &[String], out: &mut dyn Write, err: &mut dyn Write) -> u8 {
     };
     match cli.command {
         Cmd::Fit(a) => {
+            let construction = match a.construction.construction() {
+                Ok(c) => c,
+                Err(e) => {
+                    let _ = writeln!(err, "error: {e}\n\nFor more information, try '--help'.");
+                    return 2;
+                }
+            };
             let flags = Flags {
+                construction,
                 files: a.files,
                 read: read_options(&a.read),
                 dcr_ohm: a.dcr,
@@ -242,6 +323,7 @@ fn fit_one(file: &str, flags: &Flags) -> Result<(Sweep, FitReport), String> {
             sigma_ohm: None,
         }),
         report_frequencies_hz: flags.at_hz.clone(),
+        construction: flags.construction,
         ..FitOptions::default()
     };
     let report =
@@ -393,12 +475,33 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
     let mut rows = Vec::new();
     let mut failures = Vec::new();
     let mut poor = Vec::new();
+    let mut materials = Vec::new();
     for file in &flags.files {
         match fit_one(file, flags) {
             Ok((_, report)) => {
                 if report.assessment.status == fit::FitStatus::Poor {
                     any_poor = true;
                     poor.push(format!("{file}: {}", report.assessment.summary));
+                }
+                if let Some(m) = &report.material {
+                    // Permeabilities to three or four significant digits, as data sheets give them.
+                    let mu = |x: f64| {
+                        if x.abs() >= 10.0 {
+                            format!("{x:.0}")
+                        } else {
+                            format!("{x:.2}")
+                        }
+                    };
+                    let sigma = m
+                        .initial_permeability_sigma
+                        .map_or(String::new(), |s| format!(" ± {}", mu(s)));
+                    let expected = m.l0_versus_expected_percent.map_or(String::new(), |p| {
+                        format!(", fitted L0 {p:+.1} % against the nominal permeability's")
+                    });
+                    materials.push(format!(
+                        "{file}: initial permeability {}{sigma}{expected}",
+                        mu(m.initial_permeability)
+                    ));
                 }
                 if flags.json {
                     let _ = writeln!(out, "{}", report_json(file, &report));
@@ -429,6 +532,9 @@ fn run_fit(flags: &Flags, out: &mut dyn Write) -> u8 {
     }
     if !flags.json {
         print_table(&rows, &flags.at_hz, out);
+        for m in materials {
+            let _ = writeln!(out, "material: {m}");
+        }
         for p in poor {
             let _ = writeln!(out, "poor: {p}");
         }
@@ -570,6 +676,43 @@ mod tests {
             assert_eq!(code, 0);
             assert!(out.contains(env!("CARGO_PKG_VERSION")), "{cmdline}: {out}");
         }
+    }
+
+    #[test]
+    fn construction_flags_make_a_construction_or_say_what_is_missing() {
+        let parse = |line: &str| {
+            let cli = Cli::try_parse_from(line.split_whitespace()).unwrap();
+            let Cmd::Fit(a) = cli.command else { panic!() };
+            a.construction.construction()
+        };
+        let c = parse("henrybook fit a.s1p --turns 2 --toroid 9.5m,4.75m,3.2m")
+            .unwrap()
+            .unwrap();
+        assert_eq!(c.turns, 2.0);
+        assert!(matches!(
+            c.core,
+            crate::model::material::CoreShape::Toroid { outer_diameter_m, .. }
+                if (outer_diameter_m - 9.5e-3).abs() < 1e-15
+        ));
+        assert!(parse("henrybook fit a.s1p").unwrap().is_none());
+        for (line, needle) in [
+            ("henrybook fit a.s1p --toroid 9.5m,4.75m,3.2m", "--turns"),
+            ("henrybook fit a.s1p --turns 3", "core"),
+            (
+                "henrybook fit a.s1p --turns 3 --core-area 1e-5",
+                "come together",
+            ),
+            (
+                "henrybook fit a.s1p --turns 3 --toroid 4m,9m,3m",
+                "inner diameter",
+            ),
+        ] {
+            let e = parse(line).unwrap_err();
+            assert!(e.contains(needle), "{line}: {e}");
+        }
+        let (code, _, err) = run_str("fit a.s1p --turns 3");
+        assert_eq!(code, 2);
+        assert!(err.contains("--toroid"), "{err}");
     }
 
     #[test]

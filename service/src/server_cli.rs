@@ -40,6 +40,21 @@ enum Command {
 
 #[derive(Debug, Subcommand)]
 enum TokenCommand {
+    /// List every token: id, role, label, when it was created and revoked (never the token itself,
+    /// which is not stored).
+    List {
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
+    /// Revoke a token by its id (from `token list`): it stops working at once, also for a running
+    /// service, and the audit trail records it.
+    Revoke {
+        /// The token's id.
+        #[arg(long)]
+        id: i64,
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
     /// Create a token and print it once (only its hash is stored).
     Create {
         #[arg(long, value_parser = parse_role)]
@@ -134,6 +149,48 @@ pub fn main(args: Vec<String>) -> ExitCode {
                     database.path.display()
                 );
                 println!("{token}");
+                Ok(())
+            }
+            Command::Token {
+                command: TokenCommand::List { database },
+            } => {
+                let store = Store::open(&database.path).await?;
+                let tokens = store.list_tokens().await?;
+                store.close().await;
+                let when = crate::store::rfc3339;
+                println!(
+                    "{:<4} {:<10} {:<25} {:<25} label",
+                    "id", "role", "created", "revoked"
+                );
+                for t in tokens {
+                    println!(
+                        "{:<4} {:<10} {:<25} {:<25} {}",
+                        t.token_id,
+                        t.role.as_str(),
+                        when(t.created_at_ms),
+                        t.revoked_at_ms.map_or("-".to_string(), when),
+                        t.label
+                    );
+                }
+                Ok(())
+            }
+            Command::Token {
+                command: TokenCommand::Revoke { id, database },
+            } => {
+                let store = Store::open(&database.path).await?;
+                let actor = std::env::var("USER")
+                    .map(|u| format!("command line ({u})"))
+                    .unwrap_or_else(|_| "command line".into());
+                let result = store.revoke_token(&actor, id).await;
+                store.close().await;
+                let t = result?;
+                eprintln!(
+                    "token {} ({}, {}) revoked in {}",
+                    t.token_id,
+                    t.role.as_str(),
+                    t.label,
+                    database.path.display()
+                );
                 Ok(())
             }
             Command::Demo(args) => demo::run(args).await,
