@@ -1067,9 +1067,14 @@ pub fn fit_lumped(
 }
 
 /// Whether the residuals of a model leave enough misfit that a broader core law is worth trying:
-/// poor, or a misfit or structure at three standard deviations (below the poor limits).
-fn leaves_misfit(a: &assess::Assessment) -> bool {
-    a.status == assess::FitStatus::Poor || a.overall_z > 3.0 || a.runs_z < -3.0
+/// poor, or a misfit or structure at three standard deviations (below the poor limits). Structure
+/// counts as in the assessment only while the weighted RMS is at least [`assess::RUNS_RMS_FLOOR`] of
+/// the noise: residuals far below it (a noise-free sweep fitted to rounding) leave nothing a broader
+/// law could take up.
+fn leaves_misfit(a: &assess::Assessment, rms_weighted: f64) -> bool {
+    a.status == assess::FitStatus::Poor
+        || a.overall_z > 3.0
+        || (a.runs_z < -3.0 && rms_weighted / a.noise_scale >= assess::RUNS_RMS_FLOOR)
 }
 
 /// A core law started from a fitted single-pole (rp) model: the same corner, the law's extra
@@ -1145,7 +1150,11 @@ fn dispersive_stage(
         return Ok(());
     };
     let single = fits[best].model();
-    if !leaves_misfit(&assess::assess(&single, sweep, fits[best].structure.len())) {
+    let rms_weighted = super::derived::quality(&single, sweep).rms_weighted;
+    if !leaves_misfit(
+        &assess::assess(&single, sweep, fits[best].structure.len()),
+        rms_weighted,
+    ) {
         return Ok(());
     }
     let base_structure = fits[best].structure.clone();
