@@ -452,8 +452,11 @@ fn density_weighted_jtj(data: &FitData, structure: &Structure, theta: &[f64]) ->
 
 /// BIC with the noise scale estimated from the fit, on the effective number of residuals `m`
 /// (density weights change how much each point counts).
+/// Costs below a millionth of `m` ([`NESTING_TOLERANCE`], the rounding floor of [`same_cost`]) count
+/// as that floor: a sweep fitted to rounding (noise-free data) leaves differences of 1e-12 in the
+/// cost, which the logarithm would otherwise blow up into a preference for more parameters.
 fn bic(cost: f64, m: f64, parameters: usize) -> f64 {
-    m * (cost.max(f64::MIN_POSITIVE) / m).ln() + parameters as f64 * m.ln()
+    m * (cost.max(NESTING_TOLERANCE * m) / m).ln() + parameters as f64 * m.ln()
 }
 
 /// The starting model for a structure: `prefix` (a fitted model with fewer sections, or the guess),
@@ -813,16 +816,35 @@ impl Runner<'_> {
     }
 
     /// The best of fitting `structure` from each start (with the thinned stages where the flag says).
+    ///
+    /// The remaining starts are skipped once two starts have ended in the same optimum (the same cost,
+    /// [`same_cost`]) and that optimum's χ² is no larger than the stated noise leads one to expect: a
+    /// further start could only find a basin the data cannot tell apart. Data the model misses (every
+    /// real sweep so far) always get every start.
     fn best_of(
         &mut self,
         structure: &Structure,
         starts: &[(LumpedModel, bool)],
     ) -> Result<Option<StructureFit>, FitError> {
+        let m = self.data.effective_residuals();
+        // A χ² no larger than the stated noise leads one to expect. (The assessment's looser overall
+        // limit let a real sweep whose density-weighted χ² passes while its bands miss stop early.)
+        let within_noise = m;
         let mut best: Option<StructureFit> = None;
+        let mut settled = false;
         for (start, coarse) in starts {
-            if let Some(f) = self.fit_staged(structure, start, *coarse)?
-                && best.as_ref().is_none_or(|b| f.cost < b.cost)
+            if settled {
+                break;
+            }
+            let Some(f) = self.fit_staged(structure, start, *coarse)? else {
+                continue;
+            };
+            if let Some(b) = &best
+                && same_cost(f.cost, b.cost, m)
             {
+                settled = b.cost.min(f.cost) <= within_noise;
+            }
+            if best.as_ref().is_none_or(|b| f.cost < b.cost) {
                 best = Some(f);
             }
         }
@@ -835,6 +857,13 @@ impl Runner<'_> {
 /// where density weights count a linear sweep's sparse low points up); a millionth of χ² is far below
 /// anything model selection can see (BIC charges ln M ≈ 7 per parameter).
 pub const NESTING_TOLERANCE: f64 = 1e-6;
+
+/// Whether two costs are the same for every purpose of the fit: within [`NESTING_TOLERANCE`] of each
+/// other, relative to the larger of them and of `floor` (the χ² the stated noise leads one to expect,
+/// [`FitData::effective_residuals`]). Below a millionth of that, differences are rounding, not data.
+pub fn same_cost(a: f64, b: f64, floor: f64) -> bool {
+    (a - b).abs() <= NESTING_TOLERANCE * a.max(b).max(floor)
+}
 
 /// The whole lumped fit of one sweep.
 ///
@@ -1327,7 +1356,9 @@ fn enforce_nesting(
         else {
             continue;
         };
-        if fits[t].cost <= fits[s].cost * (1.0 + NESTING_TOLERANCE) {
+        if fits[t].cost <= fits[s].cost
+            || same_cost(fits[t].cost, fits[s].cost, data.effective_residuals())
+        {
             continue;
         }
         let start = embed(&fits[s].model(), &fits[t].structure, data, guess);
