@@ -100,7 +100,7 @@ fn part_summary_json(p: &proto::PartSummary) -> Value {
         "drift_l0_percent": p.drift_l0_percent, "l_tolerance_percent": p.l_tolerance_percent,
         "srf_hz": p.srf_hz, "series_resonances_hz": p.series_resonances_hz, "l0_h": p.l0_h,
         "rdc_ohm": p.rdc_ohm, "l_eff_h": p.l_eff_h, "z_min_ohm": p.z_min_ohm,
-        "answered_from_fit_id": p.answered_from_fit_id,
+        "answered_from_fit_id": p.answered_from_fit_id, "core_corner_hz": p.core_corner_hz,
     }))
 }
 
@@ -121,6 +121,7 @@ fn part_json(p: &proto::Part) -> Value {
             "srf_min_hz": l.srf_min_hz, "q_min": l.q_min,
             "q_test_frequency_hz": l.q_test_frequency_hz, "z_min_ohm": l.z_min_ohm,
             "z_band_min_hz": l.z_band_min_hz, "z_band_max_hz": l.z_band_max_hz,
+            "core_corner_min_hz": l.core_corner_min_hz, "core_corner_max_hz": l.core_corner_max_hz,
         },
         "lots": p.lots, "baseline_fit_id": p.baseline_fit_id,
         "fits": p.fits.iter().map(summary_json).collect::<Vec<_>>(),

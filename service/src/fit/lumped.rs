@@ -544,6 +544,8 @@ pub struct Spread {
     pub sigma_theta: Vec<Option<f64>>,
     pub not_identifiable: Vec<String>,
     pub correlation: Correlation,
+    /// Covariance of θ (with the noise scale and widening): the material spectrum's σ.
+    pub covariance_theta: DMatrix<f64>,
 }
 
 /// `residuals` is the effective number of residuals; `widening` multiplies every σ (correlated
@@ -615,6 +617,7 @@ pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
             names: params.iter().map(Param::name).collect(),
             matrix,
         },
+        covariance_theta: DMatrix::from_fn(n, n, |i, j| cov[(i, j)] * s2 / (d[i] * d[j])),
     }
 }
 
@@ -1064,7 +1067,19 @@ pub fn fit_lumped(
     let mut warnings = report_warnings(sweep, options);
     warnings.extend(plausibility_warnings(&model, band_hz));
     let material = options.construction.as_ref().and_then(|c| {
-        let r = crate::model::material::material_report(&model, uncertainty.l0_h, c, band_hz);
+        let cov = crate::model::material::ParameterCovariance::from_fit(
+            &fit.structure,
+            &fit.theta,
+            &sp.covariance_theta,
+            &sp.sigma_theta,
+        );
+        let r = crate::model::material::material_report(
+            &model,
+            uncertainty.l0_h,
+            Some(&cov),
+            c,
+            band_hz,
+        );
         if r.is_finite() {
             Some(r)
         } else {

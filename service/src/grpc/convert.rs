@@ -84,6 +84,7 @@ fn part_summary(p: PartSummary) -> proto::PartSummary {
         series_resonances_hz: p.series_resonances_hz,
         l0_h: p.l0_h,
         rdc_ohm: p.rdc_ohm,
+        core_corner_hz: p.core_corner_hz,
         l_eff_h: p.l_eff_h,
         z_min_ohm: p.z_min_ohm,
         answered_from_fit_id: p.answered_from_fit_id,
@@ -110,6 +111,8 @@ fn limits(l: Limits) -> proto::Limits {
         z_min_ohm: l.z_min_ohm,
         z_band_min_hz: l.z_band_min_hz,
         z_band_max_hz: l.z_band_max_hz,
+        core_corner_min_hz: l.core_corner_min_hz,
+        core_corner_max_hz: l.core_corner_max_hz,
     }
 }
 

@@ -35,6 +35,8 @@ impl PartRegistry for Parts {
             z_min_ohm: r.z_min_ohm,
             z_band_min_hz: r.z_band_min_hz,
             z_band_max_hz: r.z_band_max_hz,
+            core_corner_min_hz: r.core_corner_min_hz,
+            core_corner_max_hz: r.core_corner_max_hz,
             sort: r.sort,
             limit: r.limit,
             cursor: r.cursor,

@@ -52,8 +52,16 @@ pub struct PartQueryParams {
     pub z_band_min_hz: Option<f64>,
     #[param(exclusive_minimum = 0.0)]
     pub z_band_max_hz: Option<f64>,
-    /// part_number (default), srf_hz, l0_h or rdc_ohm; prefix - for descending.
-    #[param(pattern = r"^-?(part_number|srf_hz|l0_h|rdc_ohm)?$")]
+    /// The core corner frequency (the dispersive core's corner, or Rp/(2π·L0) for the single-pole
+    /// core) is at least this. A part whose model has no core loss has no corner and never matches a
+    /// query on it.
+    #[param(exclusive_minimum = 0.0)]
+    pub core_corner_min_hz: Option<f64>,
+    /// The core corner frequency is at most this (no corner: no match).
+    #[param(exclusive_minimum = 0.0)]
+    pub core_corner_max_hz: Option<f64>,
+    /// part_number (default), srf_hz, l0_h, rdc_ohm or core_corner_hz; prefix - for descending.
+    #[param(pattern = r"^-?(part_number|srf_hz|l0_h|rdc_ohm|core_corner_hz)?$")]
     pub sort: Option<String>,
     /// 1..500, default 50.
     #[param(minimum = 1, maximum = 500)]
@@ -113,6 +121,8 @@ pub fn part_query(p: PartQueryParams) -> ApiResult<PartQuery> {
         z_min_ohm: p.z_min_ohm,
         z_band_min_hz: p.z_band_min_hz,
         z_band_max_hz: p.z_band_max_hz,
+        core_corner_min_hz: p.core_corner_min_hz,
+        core_corner_max_hz: p.core_corner_max_hz,
         sort,
         limit: p.limit.unwrap_or(50),
         cursor,

@@ -81,10 +81,43 @@ pub fn drift(baseline_fit_id: i64, baseline: &FitReport, current: &FitReport) ->
     if let (Some(b), Some(c)) = (baseline.derived.srf_hz, current.derived.srf_hz) {
         parameters.push(change("srf_hz", b, c, None, None));
     }
+    // The core corner across structures (a single-pole baseline against a dispersive current fit,
+    // say), where `core.corner_hz` compares only two dispersive cores.
+    if let (Some(b), Some(c)) = (
+        baseline.derived.core_corner_hz,
+        current.derived.core_corner_hz,
+    ) {
+        parameters.push(change(
+            "core_corner_hz",
+            b,
+            c,
+            core_corner_sigma_hz(baseline),
+            core_corner_sigma_hz(current),
+        ));
+    }
     Drift {
         baseline_fit_id,
         parameters,
     }
+}
+
+/// σ of the core corner: the dispersive core's own, or for the single-pole core fc = Rp/(2π·L0) from
+/// the relative σ of Rp and L0 and their correlation: (σ_fc/fc)² = s_rp² + s_l0² − 2ρ·s_rp·s_l0.
+fn core_corner_sigma_hz(report: &FitReport) -> Option<f64> {
+    let FittedModel::Lumped(m) = &report.model else {
+        return None;
+    };
+    let u = report.uncertainty.as_ref()?;
+    if m.core.is_some() {
+        return u.core.as_ref().and_then(|c| c.corner_hz);
+    }
+    let (rp, fc) = (m.rp_ohm?, report.derived.core_corner_hz?);
+    let (s_rp, s_l0) = (u.rp_ohm? / rp, u.l0_h? / m.l0_h);
+    let corr = report.correlation.as_ref()?;
+    let at = |name: &str| corr.names.iter().position(|n| n == name);
+    let rho = corr.matrix.get(at("rp_ohm")?)?.get(at("l0_h")?).copied()?;
+    let var = s_rp * s_rp + s_l0 * s_l0 - 2.0 * rho * s_rp * s_l0;
+    (var.is_finite() && var >= 0.0).then(|| fc * var.sqrt())
 }
 
 fn change(name: &str, b: f64, c: f64, ub: Option<f64>, uc: Option<f64>) -> ParameterDrift {
@@ -135,5 +168,42 @@ mod tests {
         let srf = d.parameters.iter().find(|p| p.name == "srf_hz").unwrap();
         assert!((srf.percent.unwrap() + 4.444_444).abs() < 1e-5);
         assert!((d.max_sigma().unwrap() - 20.0).abs() < 1e-9);
+        assert!(d.parameters.iter().all(|p| p.name != "core_corner_hz"));
+    }
+
+    #[test]
+    fn the_core_corner_drifts_with_the_sigma_of_rp_over_l0() {
+        // fc = Rp/(2π·L0): relative σ 2 % (Rp) and 1 % (L0) with correlation 0.5 give
+        // √(4 + 1 − 2·0.5·2·1) % = √3 % (derived by hand).
+        let with_rp = |rp: f64, corner: f64| {
+            let mut r = report(1.0e-5, 0.050, 5e-12, Some(22.5e6));
+            let FittedModel::Lumped(m) = &mut r.model else {
+                unreachable!()
+            };
+            m.rp_ohm = Some(rp);
+            r.derived.core_corner_hz = Some(corner);
+            r.uncertainty = Some(LumpedUncertainty {
+                l0_h: Some(1e-7),
+                rp_ohm: Some(0.02 * rp),
+                ..Default::default()
+            });
+            r.correlation = Some(crate::fit::Correlation {
+                names: vec!["l0_h".into(), "rp_ohm".into()],
+                matrix: vec![vec![1.0, 0.5], vec![0.5, 1.0]],
+            });
+            r
+        };
+        let base = with_rp(1000.0, 1e6);
+        let cur = with_rp(1100.0, 1.1e6);
+        let d = drift(3, &base, &cur);
+        let fc = d
+            .parameters
+            .iter()
+            .find(|p| p.name == "core_corner_hz")
+            .unwrap();
+        assert!((fc.percent.unwrap() - 10.0).abs() < 1e-9, "{fc:?}");
+        let (ub, uc) = (1e6 * 3f64.sqrt() / 100.0, 1.1e6 * 3f64.sqrt() / 100.0);
+        let want = 0.1e6 / (ub * ub + uc * uc).sqrt();
+        assert!((fc.sigma.unwrap() - want).abs() < 1e-9, "{fc:?} vs {want}");
     }
 }

@@ -10,6 +10,8 @@ pub struct StoredFigures {
     pub srf_above_hz: Option<f64>,
     pub l0_h: Option<f64>,
     pub rdc_ohm: Option<f64>,
+    /// The core corner frequency (`derived.core_corner_hz`); `None` without a core loss.
+    pub core_corner_hz: Option<f64>,
     pub band_min_hz: f64,
     pub band_max_hz: f64,
     pub series_resonances_hz: Vec<f64>,
@@ -29,6 +31,7 @@ pub fn from_report(report: &FitReport) -> StoredFigures {
         srf_above_hz: finite(report.derived.srf_above_hz),
         l0_h: finite(l0_h),
         rdc_ohm: finite(rdc_ohm),
+        core_corner_hz: finite(report.derived.core_corner_hz),
         band_min_hz: report.band_hz[0],
         band_max_hz: report.band_hz[1],
         series_resonances_hz: report.derived.series_resonances_hz.clone(),

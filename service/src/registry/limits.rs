@@ -28,6 +28,13 @@ pub struct Limits {
     pub z_band_min_hz: Option<f64>,
     #[schema(exclusive_minimum = 0.0)]
     pub z_band_max_hz: Option<f64>,
+    /// The core corner frequency (the dispersive core's corner, or Rp/(2π·L0) for the single-pole
+    /// core) must be at least this. A model without a core loss has no corner and fails the check.
+    #[schema(exclusive_minimum = 0.0)]
+    pub core_corner_min_hz: Option<f64>,
+    /// The core corner frequency must be at most this.
+    #[schema(exclusive_minimum = 0.0)]
+    pub core_corner_max_hz: Option<f64>,
 }
 
 impl Limits {
@@ -44,6 +51,8 @@ impl Limits {
             ("z_min_ohm", self.z_min_ohm),
             ("z_band_min_hz", self.z_band_min_hz),
             ("z_band_max_hz", self.z_band_max_hz),
+            ("core_corner_min_hz", self.core_corner_min_hz),
+            ("core_corner_max_hz", self.core_corner_max_hz),
         ];
         for (name, value) in positive {
             if let Some(v) = value
@@ -93,6 +102,13 @@ impl Limits {
                 "z_band_min_hz ({lo}) must be below z_band_max_hz ({hi})"
             ));
         }
+        if let (Some(lo), Some(hi)) = (self.core_corner_min_hz, self.core_corner_max_hz)
+            && lo > hi
+        {
+            return Err(format!(
+                "core_corner_min_hz ({lo}) must not be above core_corner_max_hz ({hi})"
+            ));
+        }
         Ok(())
     }
 }
@@ -123,6 +139,21 @@ mod tests {
             ..Limits::default()
         };
         assert!(l.validate().unwrap_err().contains("l_test_frequency_hz"));
+    }
+
+    #[test]
+    fn inverted_core_corner_bounds_are_refused_by_name() {
+        let l = Limits {
+            core_corner_min_hz: Some(2e6),
+            core_corner_max_hz: Some(1e6),
+            ..Limits::default()
+        };
+        assert!(l.validate().unwrap_err().contains("core_corner_min_hz"));
+        let l = Limits {
+            core_corner_max_hz: Some(f64::NAN),
+            ..Limits::default()
+        };
+        assert!(l.validate().unwrap_err().contains("core_corner_max_hz"));
     }
 
     #[test]

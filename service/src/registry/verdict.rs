@@ -11,7 +11,7 @@ use std::f64::consts::PI;
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct Check {
-    /// `inductance`, `dcr_max`, `srf_min`, `q_min` or `z_min_band`.
+    /// `inductance`, `dcr_max`, `srf_min`, `q_min`, `z_min_band` or `core_corner`.
     pub limit: String,
     pub measured: Option<f64>,
     pub limit_value: f64,
@@ -183,7 +183,51 @@ pub fn checks(limits: &Limits, report: &FitReport) -> Vec<Check> {
             ));
         }
     }
+    if limits.core_corner_min_hz.is_some() || limits.core_corner_max_hz.is_some() {
+        out.push(core_corner_check(limits, report));
+    }
     out
+}
+
+/// The core corner frequency against `core_corner_min_hz..core_corner_max_hz` (either may be open):
+/// one check held to the nearer bound, as the inductance is. A model without a core loss (or a
+/// rational model) has no corner and cannot be judged.
+fn core_corner_check(limits: &Limits, report: &FitReport) -> Check {
+    let (lo, hi) = (limits.core_corner_min_hz, limits.core_corner_max_hz);
+    let range = match (lo, hi) {
+        (Some(a), Some(b)) => format!("{} to {}", si(a, "Hz"), si(b, "Hz")),
+        (Some(a), None) => format!("at least {}", si(a, "Hz")),
+        (None, Some(b)) => format!("at most {}", si(b, "Hz")),
+        (None, None) => String::new(),
+    };
+    let nearer = lo.or(hi).unwrap_or(f64::NAN);
+    let Some(fc) = report.derived.core_corner_hz.filter(|f| f.is_finite()) else {
+        return unjudged(
+            "core_corner",
+            "Hz",
+            nearer,
+            "the model has no core loss and so no core corner frequency".into(),
+        );
+    };
+    let below = lo.map(|a| fc - a);
+    let above = hi.map(|b| b - fc);
+    let (bound, margin) = match (below, above) {
+        (Some(m1), Some(m2)) if m2 < m1 => (hi.unwrap_or(nearer), m2),
+        (Some(m1), _) => (lo.unwrap_or(nearer), m1),
+        (None, Some(m2)) => (hi.unwrap_or(nearer), m2),
+        (None, None) => (nearer, f64::NAN),
+    };
+    let mut c = check("core_corner", "Hz", bound, fc, margin);
+    let mut note = format!("core corner frequency against {range}");
+    if !in_band(report, fc) {
+        note.push_str(&format!(
+            "; the corner lies outside the swept band {} to {}, so it is the model's extrapolation",
+            si(report.band_hz[0], "Hz"),
+            si(report.band_hz[1], "Hz")
+        ));
+    }
+    c.note = Some(note);
+    c
 }
 
 /// The overall verdict: `None` without limits, else pass only when every check passes.
@@ -227,6 +271,42 @@ pub fn overall(checks: &[Check], report: &FitReport) -> Option<&'static str> {
 #[cfg(test)]
 pub(crate) mod tests {
     use super::*;
+
+    #[test]
+    fn the_core_corner_is_held_to_its_nearer_bound_and_a_part_without_a_corner_fails_unjudged() {
+        let mut r = report(1e-5, 0.05, 5e-12, Some(22.5e6));
+        let limits = Limits {
+            core_corner_min_hz: Some(1e6),
+            core_corner_max_hz: Some(5e6),
+            ..Limits::default()
+        };
+        let c = &checks(&limits, &r)[0];
+        assert_eq!(c.limit, "core_corner");
+        assert!(!c.pass && c.measured.is_none(), "{c:?}");
+        assert!(c.note.as_deref().unwrap().contains("no core"), "{c:?}");
+        r.derived.core_corner_hz = Some(4e6);
+        let c = &checks(&limits, &r)[0];
+        assert!(c.pass, "{c:?}");
+        assert_eq!((c.limit_value, c.margin), (5e6, Some(1e6)));
+        r.derived.core_corner_hz = Some(0.5e6);
+        let c = &checks(&limits, &r)[0];
+        assert!(!c.pass, "{c:?}");
+        assert_eq!((c.limit_value, c.margin), (1e6, Some(-0.5e6)));
+        let only_max = Limits {
+            core_corner_max_hz: Some(2e8),
+            ..Limits::default()
+        };
+        r.derived.core_corner_hz = Some(3e8);
+        let c = &checks(&only_max, &r)[0];
+        assert!(!c.pass && c.margin == Some(-1e8), "{c:?}");
+        assert!(
+            c.note
+                .as_deref()
+                .unwrap()
+                .contains("outside the swept band"),
+            "{c:?}"
+        );
+    }
     use crate::fit::{Derived, Quality, Termination};
     use crate::model::LumpedModel;
 

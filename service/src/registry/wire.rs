@@ -145,6 +145,10 @@ pub struct PartSummary {
     pub series_resonances_hz: Vec<f64>,
     pub l0_h: Option<f64>,
     pub rdc_ohm: Option<f64>,
+    /// The core corner frequency (the dispersive core's corner, or Rp/(2π·L0) for the single-pole
+    /// core); null when the model has no core loss.
+    #[serde(default)]
+    pub core_corner_hz: Option<f64>,
     /// With `l_at_hz`: the effective L there, interpolated on the stored grid.
     pub l_eff_h: Option<f64>,
     /// With a `z_band_*` query: the lowest stored |Z| in the band.

@@ -13,7 +13,6 @@
 
 use super::{Store, StoreResult, now_ms, sha256_hex};
 use crate::fit::FitReport;
-use crate::registry::limits::Limits;
 use crate::registry::verdict;
 use serde::Serialize;
 use sqlx::{Row, SqliteConnection};
@@ -261,7 +260,8 @@ impl Store {
         let rows = sqlx::query(
             "SELECT f.fit_id, f.report_json, f.verdict, f.verdict_json, p.l_nominal_h, \
              p.l_test_frequency_hz, p.l_tolerance_percent, p.dcr_max_ohm, p.srf_min_hz, p.q_min, \
-             p.q_test_frequency_hz, p.z_min_ohm, p.z_band_min_hz, p.z_band_max_hz \
+             p.q_test_frequency_hz, p.z_min_ohm, p.z_band_min_hz, p.z_band_max_hz, \
+             p.core_corner_min_hz, p.core_corner_max_hz \
              FROM fits f JOIN parts p ON p.part_id = f.part_id \
              WHERE f.status = 'succeeded' ORDER BY f.fit_id",
         )
@@ -284,18 +284,7 @@ impl Store {
                     continue;
                 }
             };
-            let limits = Limits {
-                l_nominal_h: r.try_get("l_nominal_h")?,
-                l_test_frequency_hz: r.try_get("l_test_frequency_hz")?,
-                l_tolerance_percent: r.try_get("l_tolerance_percent")?,
-                dcr_max_ohm: r.try_get("dcr_max_ohm")?,
-                srf_min_hz: r.try_get("srf_min_hz")?,
-                q_min: r.try_get("q_min")?,
-                q_test_frequency_hz: r.try_get("q_test_frequency_hz")?,
-                z_min_ohm: r.try_get("z_min_ohm")?,
-                z_band_min_hz: r.try_get("z_band_min_hz")?,
-                z_band_max_hz: r.try_get("z_band_max_hz")?,
-            };
+            let limits = super::parts::limits_from_row(r)?;
             let checks = verdict::checks(&limits, &parsed);
             let want = verdict::overall(&checks, &parsed);
             let stored: Option<String> = r.try_get("verdict")?;

@@ -308,7 +308,7 @@ async fn complete_succeeded_in(
         "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
          report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
          rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
-         drift_json = ?, drift_max_sigma = ?, quality = ? WHERE fit_id = ?",
+         drift_json = ?, drift_max_sigma = ?, quality = ?, core_corner_hz = ? WHERE fit_id = ?",
     )
     .bind(&report.engine_version)
     .bind(&assessment.report_json)
@@ -324,6 +324,7 @@ async fn complete_succeeded_in(
     .bind(&judgement.drift_json)
     .bind(judgement.drift_max_sigma)
     .bind(crate::registry::verdict::quality(report))
+    .bind(figures.core_corner_hz)
     .bind(claim.fit_id)
     .execute(&mut *conn)
     .await?;

@@ -9,7 +9,8 @@ use sqlx::Row;
 use sqlx::sqlite::SqliteRow;
 
 pub(crate) const LIMIT_COLUMNS: &str = "l_nominal_h, l_test_frequency_hz, l_tolerance_percent, \
-    dcr_max_ohm, srf_min_hz, q_min, q_test_frequency_hz, z_min_ohm, z_band_min_hz, z_band_max_hz";
+    dcr_max_ohm, srf_min_hz, q_min, q_test_frequency_hz, z_min_ohm, z_band_min_hz, z_band_max_hz, \
+    core_corner_min_hz, core_corner_max_hz";
 
 pub(crate) fn limits_from_row(row: &SqliteRow) -> Result<Limits, sqlx::Error> {
     Ok(Limits {
@@ -23,6 +24,8 @@ pub(crate) fn limits_from_row(row: &SqliteRow) -> Result<Limits, sqlx::Error> {
         z_min_ohm: row.try_get("z_min_ohm")?,
         z_band_min_hz: row.try_get("z_band_min_hz")?,
         z_band_max_hz: row.try_get("z_band_max_hz")?,
+        core_corner_min_hz: row.try_get("core_corner_min_hz")?,
+        core_corner_max_hz: row.try_get("core_corner_max_hz")?,
     })
 }
 
@@ -66,7 +69,7 @@ impl Store {
         let mut tx = self.write().await?;
         let inserted = sqlx::query(sqlx::AssertSqlSafe(format!(
             "INSERT INTO parts (part_number, description, {LIMIT_COLUMNS}, created_at_ms) \
-             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING part_id"
+             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING part_id"
         )))
         .bind(part_number)
         .bind(description)
@@ -80,6 +83,8 @@ impl Store {
         .bind(limits.z_min_ohm)
         .bind(limits.z_band_min_hz)
         .bind(limits.z_band_max_hz)
+        .bind(limits.core_corner_min_hz)
+        .bind(limits.core_corner_max_hz)
         .bind(now_ms())
         .fetch_one(&mut *tx)
         .await;
@@ -168,7 +173,8 @@ impl Store {
         sqlx::query(
             "UPDATE parts SET l_nominal_h = ?, l_test_frequency_hz = ?, l_tolerance_percent = ?, \
              dcr_max_ohm = ?, srf_min_hz = ?, q_min = ?, q_test_frequency_hz = ?, z_min_ohm = ?, \
-             z_band_min_hz = ?, z_band_max_hz = ? WHERE part_id = ?",
+             z_band_min_hz = ?, z_band_max_hz = ?, core_corner_min_hz = ?, core_corner_max_hz = ? \
+             WHERE part_id = ?",
         )
         .bind(limits.l_nominal_h)
         .bind(limits.l_test_frequency_hz)
@@ -180,6 +186,8 @@ impl Store {
         .bind(limits.z_min_ohm)
         .bind(limits.z_band_min_hz)
         .bind(limits.z_band_max_hz)
+        .bind(limits.core_corner_min_hz)
+        .bind(limits.core_corner_max_hz)
         .bind(part_id)
         .execute(&mut *tx)
         .await?;

@@ -1,7 +1,8 @@
 //! Behavioural queries for design tools, answered from stored figures through indexes: SRF band,
 //! series-resonance band, effective L at a frequency (interpolated on the stored grid), DCR at most,
-//! |Z| at least over a band; approved baselines only or the newest succeeded fit of every part; sorted,
-//! keyset-paginated.
+//! |Z| at least over a band, core corner frequency in a band; approved baselines only or the newest
+//! succeeded fit of every part; sorted, keyset-paginated. A fit without a core loss (a lossless core,
+//! a rational model) has no core corner: a query that bounds the corner never matches it.
 
 use super::{Store, StoreError, StoreResult};
 use crate::registry::grid;
@@ -15,6 +16,7 @@ pub enum SortKey {
     SrfHz,
     L0H,
     RdcOhm,
+    CoreCornerHz,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -24,7 +26,8 @@ pub struct Sort {
 }
 
 impl Sort {
-    /// `part_number`, `srf_hz`, `l0_h`, `rdc_ohm`, each optionally prefixed by `-` for descending.
+    /// `part_number`, `srf_hz`, `l0_h`, `rdc_ohm`, `core_corner_hz`, each optionally prefixed by `-`
+    /// for descending.
     pub fn parse(text: &str) -> Result<Sort, String> {
         let (descending, name) = match text.strip_prefix('-') {
             Some(rest) => (true, rest),
@@ -35,9 +38,11 @@ impl Sort {
             "srf_hz" => SortKey::SrfHz,
             "l0_h" => SortKey::L0H,
             "rdc_ohm" => SortKey::RdcOhm,
+            "core_corner_hz" => SortKey::CoreCornerHz,
             _ => {
                 return Err(format!(
-                    "sort must be one of part_number, srf_hz, l0_h, rdc_ohm (with - for descending), not {text:?}"
+                    "sort must be one of part_number, srf_hz, l0_h, rdc_ohm, core_corner_hz (with - \
+                     for descending), not {text:?}"
                 ));
             }
         };
@@ -50,6 +55,7 @@ impl Sort {
             SortKey::SrfHz => Some("f.srf_hz"),
             SortKey::L0H => Some("f.l0_h"),
             SortKey::RdcOhm => Some("f.rdc_ohm"),
+            SortKey::CoreCornerHz => Some("f.core_corner_hz"),
         }
     }
 }
@@ -124,6 +130,9 @@ pub struct PartQuery {
     pub z_min_ohm: Option<f64>,
     pub z_band_min_hz: Option<f64>,
     pub z_band_max_hz: Option<f64>,
+    /// The core corner frequency lies in this band (either end may be open).
+    pub core_corner_min_hz: Option<f64>,
+    pub core_corner_max_hz: Option<f64>,
     pub sort: Sort,
     pub limit: i64,
     pub cursor: Option<Cursor>,
@@ -143,6 +152,8 @@ impl PartQuery {
             ("z_min_ohm", self.z_min_ohm),
             ("z_band_min_hz", self.z_band_min_hz),
             ("z_band_max_hz", self.z_band_max_hz),
+            ("core_corner_min_hz", self.core_corner_min_hz),
+            ("core_corner_max_hz", self.core_corner_max_hz),
         ];
         for (name, v) in positive {
             if let Some(v) = v
@@ -188,6 +199,11 @@ impl PartQuery {
                 "series_resonance",
             ),
             (self.l_min_h, self.l_max_h, "l"),
+            (
+                self.core_corner_min_hz,
+                self.core_corner_max_hz,
+                "core_corner",
+            ),
         ] {
             if let (Some(lo), Some(hi)) = (lo, hi)
                 && lo > hi
@@ -231,7 +247,7 @@ impl Store {
              (SELECT json_extract(d.value, '$.percent') FROM json_each(lf.drift_json, '$.parameters') d \
               WHERE json_extract(d.value, '$.name') = 'l0_h') AS drift_l0_percent, \
              p.l_tolerance_percent AS l_tolerance_percent, \
-             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, \
+             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, f.core_corner_hz, \
              k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
              SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
         );
@@ -329,6 +345,13 @@ impl Store {
         if let Some(max) = query.dcr_max_ohm {
             q.push(" AND f.rdc_ohm <= ").push_bind(max);
         }
+        // NULL (no core corner) fails both comparisons: such a fit never matches.
+        if let Some(lo) = query.core_corner_min_hz {
+            q.push(" AND f.core_corner_hz >= ").push_bind(lo);
+        }
+        if let Some(hi) = query.core_corner_max_hz {
+            q.push(" AND f.core_corner_hz <= ").push_bind(hi);
+        }
         if l_bracket.is_some() {
             let expr = match l_bracket {
                 Some((_, w)) if w > 0.0 => {
@@ -414,6 +437,7 @@ impl Store {
                 series_resonances_hz: Vec::new(),
                 l0_h: row.try_get("l0_h")?,
                 rdc_ohm: row.try_get("rdc_ohm")?,
+                core_corner_hz: row.try_get("core_corner_hz")?,
                 l_eff_h: row.try_get("l_eff_h")?,
                 z_min_ohm: row.try_get("z_min_ohm")?,
                 answered_from_fit_id: row.try_get("answered")?,

@@ -95,11 +95,23 @@ function materialCard(m) {
       x: { log: true, unit: "Hz", label: "frequency" },
       y: { unit: "", label: "μ", includeZero: true },
       series: [
+        ...muBands(m.spectrum, f),
         { key: "model", label: "μ′", type: "line", x: f, y: m.spectrum.map((p) => p.mu_real), unit: "", fmt: (i) => plain(m.spectrum[i].mu_real, 4) },
         { key: "measured", label: "μ″", type: "line", x: f, y: m.spectrum.map((p) => p.mu_imag), unit: "", fmt: (i) => plain(m.spectrum[i].mu_imag, 4) },
       ],
     }),
   );
+}
+
+// ±1σ bands of μ′ and μ″ where the report gives their σ (absent σ leaves a gap in the band).
+function muBands(spectrum, f) {
+  const band = (key, label, value, sigma) => ({
+    key, label, type: "band", cls: "band", x: f,
+    y0: spectrum.map((p) => (p[sigma] == null ? NaN : p[value] - p[sigma])),
+    y1: spectrum.map((p) => (p[sigma] == null ? NaN : p[value] + p[sigma])),
+  });
+  if (!spectrum.some((p) => p.mu_real_sigma != null || p.mu_imag_sigma != null)) return [];
+  return [band("mu-real-band", "μ′ ±1σ", "mu_real", "mu_real_sigma"), band("mu-imag-band", "μ″ ±1σ", "mu_imag", "mu_imag_sigma")];
 }
 
 function header(d) {

@@ -13,6 +13,43 @@ const METHODS = [
   ["shunt-thru", "Network analyser, shunt-thru (S21, part to ground)"],
 ];
 
+// A plain count (turns, a permeability), SI prefixes allowed: "12", "1.2k".
+function readNumber(text, what) {
+  try {
+    return parseSI(text, "");
+  } catch {
+    throw new Error(`${what}: cannot read “${text}” as a number`);
+  }
+}
+
+// A length in metres. A trailing "m" after a prefix or a space is the unit ("9.5 mm", "2 m"); one
+// right after the digits is the milli prefix, as on the command line ("9.5m" is 9.5 mm).
+function readLength(text, what) {
+  let s = String(text ?? "").trim();
+  if (/(\s|[TGMkKmuµμnpf])m$/.test(s)) s = s.slice(0, -1).trim();
+  try {
+    return parseSI(s, "");
+  } catch {
+    throw new Error(`${what}: cannot read “${text}” as a length in metres (try 9.5 mm or 0.0095)`);
+  }
+}
+
+// An area in m²: "12.3 mm²" (or mm2), "1.2 cm²", "12.3e-6", or a prefix on m² itself ("12.3µ").
+function readArea(text, what) {
+  const s = String(text ?? "").trim();
+  const scaled = /^(.*?)\s*(mm|cm|m)(²|2|\^2)$/.exec(s);
+  try {
+    if (scaled) {
+      const v = parseSI(scaled[1], "");
+      if (v == null) throw new Error("empty");
+      return v * { mm: 1e-6, cm: 1e-4, m: 1 }[scaled[2]];
+    }
+    return parseSI(s, "");
+  } catch {
+    throw new Error(`${what}: cannot read “${text}” as an area in m² (try 12.3 mm² or 12.3e-6)`);
+  }
+}
+
 export function renderUpload(main, _params, search) {
   main.append(h("div", { class: "page-head" }, h("h1", {}, "Upload a sweep")), safetyNote({ analyserPorts: true }));
   if (!auth.atLeast("inspector")) {
@@ -115,6 +152,35 @@ export function renderUpload(main, _params, search) {
   const family = h("select", { id: "up-family" }, h("option", { value: "lumped" }, "lumped circuit (L0, DCR, skin, core loss, C, leads, resonant sections)"), h("option", { value: "rational" }, "rational (vector fitting, wideband)"));
   const sections = h("select", { id: "up-sections" }, [0, 1, 2, 3].map((n) => h("option", { value: n, selected: n === 3 }, `up to ${n} extra resonant section${n === 1 ? "" : "s"}`)));
 
+  // --- the construction (optional): turns and core for the core material's permeability spectrum
+  const turns = field("up-turns", { placeholder: "e.g. 12" });
+  const coreShape = h(
+    "select",
+    { id: "up-core-shape" },
+    h("option", { value: "toroid" }, "toroid: outer and inner diameter, height"),
+    h("option", { value: "effective" }, "any core: effective area and path length (data sheet Ae, le)"),
+  );
+  const od = field("up-toroid-od", { placeholder: "e.g. 9.5 mm" });
+  const innerD = field("up-toroid-id", { placeholder: "e.g. 4.75 mm" });
+  const height = field("up-toroid-height", { placeholder: "e.g. 3.2 mm" });
+  const area = field("up-core-area", { placeholder: "e.g. 12.3 mm²" });
+  const path = field("up-core-path", { placeholder: "e.g. 22.7 mm" });
+  const gap = field("up-gap", { placeholder: "optional, e.g. 0.2 mm" });
+  const muNominal = field("up-mu-initial", { placeholder: "optional, data sheet μi, e.g. 800" });
+  const toroidBox = h("div", { class: "filter-grid", id: "up-toroid" },
+    h("label", {}, h("span", {}, "Outer diameter (m)"), od),
+    h("label", {}, h("span", {}, "Inner diameter (m)"), innerD),
+    h("label", {}, h("span", {}, "Height (m)"), height),
+  );
+  const effectiveBox = h("div", { class: "filter-grid", id: "up-effective", hidden: true },
+    h("label", {}, h("span", {}, "Effective area (m²)"), area),
+    h("label", {}, h("span", {}, "Path length (m)"), path),
+  );
+  coreShape.addEventListener("change", () => {
+    toroidBox.hidden = coreShape.value !== "toroid";
+    effectiveBox.hidden = coreShape.value !== "effective";
+  });
+
   const result = h("section", { class: "card", id: "upload-result", hidden: true });
   const submit = h("button", { type: "submit", class: "primary", id: "up-submit" }, "Upload and fit");
 
@@ -140,7 +206,10 @@ export function renderUpload(main, _params, search) {
           if (dcrv != null) fd.append("dcr_ohm", String(dcrv));
           if (t != null) fd.append("temperature_c", String(t));
           if (operator.value.trim()) fd.append("operator", operator.value.trim());
-          fd.append("options", JSON.stringify({ family: family.value, max_sections: Number(sections.value) }));
+          const fitOptions = { family: family.value, max_sections: Number(sections.value) };
+          const c = construction();
+          if (c) fitOptions.construction = c;
+          fd.append("options", JSON.stringify(fitOptions));
           fd.append("file", file.files[0], file.files[0].name);
           if (fixOpen.files[0] || fixShort.files[0]) {
             if (!(fixOpen.files[0] && fixShort.files[0])) throw new Error("fixture compensation needs both the open and the short sweep");
@@ -191,9 +260,51 @@ export function renderUpload(main, _params, search) {
       ),
     ),
     h("fieldset", {}, h("legend", {}, "4 · Model"), h("div", { class: "filter-grid" }, h("label", { class: "wide" }, h("span", {}, "Family"), family), h("label", { class: "wide" }, h("span", {}, "Resonant sections"), sections))),
+    h(
+      "fieldset",
+      { id: "up-construction" },
+      h("legend", {}, "Construction (optional)"),
+      h("p", { class: "hint" }, "Turns and core give the core material's permeability μ′(f), μ″(f) and its initial permeability on the fit page (lumped fits). Lengths in metres with SI prefixes: 9.5 mm, 9.5m (milli) or 0.0095; areas as 12.3 mm², 12.3e-6 or 12.3µ (m²). Leave turns empty to skip."),
+      h("div", { class: "filter-grid" },
+        h("label", {}, h("span", {}, "Turns"), turns),
+        h("label", { class: "wide" }, h("span", {}, "Core"), coreShape),
+      ),
+      toroidBox,
+      effectiveBox,
+      h("div", { class: "filter-grid" },
+        h("label", {}, h("span", {}, "Air gap (m)"), gap),
+        h("label", {}, h("span", {}, "Initial permeability"), muNominal),
+      ),
+    ),
     h("div", { class: "actions" }, submit),
   );
   main.append(form, result);
+
+  // The construction as the API's options take it (`FitOptionsBody.construction`), or null when the
+  // turns are left empty; throws, naming the field, for what cannot be read.
+  function construction() {
+    const n = readNumber(turns.value, "Turns");
+    const filled = [od, innerD, height, area, path, gap, muNominal].filter((f) => f.value.trim() !== "");
+    if (n == null) {
+      if (filled.length) throw new Error("construction: give the number of turns, or clear the core fields");
+      return null;
+    }
+    const need = (input, what, read) => {
+      const v = read(input.value, what);
+      if (v == null) throw new Error(`construction: ${what} is needed with the turns`);
+      return v;
+    };
+    const core =
+      coreShape.value === "toroid"
+        ? { toroid: { outer_diameter_m: need(od, "outer diameter", readLength), inner_diameter_m: need(innerD, "inner diameter", readLength), height_m: need(height, "height", readLength) } }
+        : { effective: { area_m2: need(area, "effective area", readArea), path_m: need(path, "path length", readLength) } };
+    const c = { turns: n, core };
+    const g = readLength(gap.value, "air gap");
+    if (g != null) c.gap_m = g;
+    const mu = readNumber(muNominal.value, "initial permeability");
+    if (mu != null) c.nominal_initial_permeability = mu;
+    return c;
+  }
 
   function watch(res) {
     const head = h("h2", {}, "Fit ", link(fitHref(res.fit_id), `#${res.fit_id}`));
