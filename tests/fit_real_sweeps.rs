@@ -38,12 +38,7 @@ fn lowest_sure_points(s: &Sweep) -> Vec<usize> {
 #[test]
 fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
     let Some(dir) = folder() else { return };
-    let mut files: Vec<String> = std::fs::read_dir(&dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().into_string().unwrap())
-        .filter(|n| n.ends_with(".s1p"))
-        .collect();
-    files.sort();
+    let files = henrybook_tests::real_sweep_files(&dir);
     assert_eq!(files.len(), 13, "SOURCES.md lists 13 files");
     eprintln!("file | status | L data | L model | ΔL | median |Z| error below SRF | summary");
     let mut ok_count = 0;
@@ -255,12 +250,7 @@ fn the_rational_family_fits_every_real_sweep_with_a_passive_model() {
     use henrybook::fit::{ModelFamily, fit};
     use henrybook::model::FittedModel;
     let Some(dir) = folder() else { return };
-    let mut files: Vec<String> = std::fs::read_dir(&dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().into_string().unwrap())
-        .filter(|n| n.ends_with(".s1p"))
-        .collect();
-    files.sort();
+    let files = henrybook_tests::real_sweep_files(&dir);
     let options = FitOptions {
         family: ModelFamily::Rational,
         ..FitOptions::default()

@@ -63,12 +63,7 @@ fn every_real_sweep_reads_with_the_point_count_its_sources_state() {
     let Some(dir) = folder() else { return };
     let rows = table(&dir);
     assert_eq!(rows.len(), 13, "SOURCES.md lists 13 files: {rows:?}");
-    let mut on_disk: Vec<String> = std::fs::read_dir(&dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().into_string().unwrap())
-        .filter(|n| n.ends_with(".s1p"))
-        .collect();
-    on_disk.sort();
+    let on_disk = henrybook_tests::real_sweep_files(&dir);
     let mut listed: Vec<String> = rows.iter().map(|(f, _)| f.clone()).collect();
     listed.sort();
     assert_eq!(

@@ -28,6 +28,17 @@ pub fn real_sweeps_dir() -> Option<PathBuf> {
     }
 }
 
+/// The Touchstone files in the real-sweeps folder `dir`, sorted by name.
+pub fn real_sweep_files(dir: &std::path::Path) -> Vec<String> {
+    let mut files: Vec<String> = std::fs::read_dir(dir)
+        .unwrap_or_else(|e| panic!("{}: {e}", dir.display()))
+        .map(|e| e.unwrap().file_name().into_string().unwrap())
+        .filter(|n| n.ends_with(".s1p"))
+        .collect();
+    files.sort();
+    files
+}
+
 /// The Python interpreter that has numpy, scipy and scikit-rf: `$HENRYBOOK_PYTHON`, or the venv that
 /// `.ci/setup` makes in `target/pyref`. Panics with the set-up command when neither exists, so a
 /// reference check never passes silently.
