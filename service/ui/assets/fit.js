@@ -8,6 +8,7 @@ import { plot } from "./plot.js";
 import { partHref, fitHref, progressBar, approvalControls } from "./common.js";
 import { LIMIT_FIELDS } from "./part.js";
 import { navigate } from "./nav.js";
+import { reportLinks } from "./part-history.js";
 
 const FINAL = new Set(["succeeded", "failed", "cancelled"]);
 const DEG = 180 / Math.PI;
@@ -167,6 +168,8 @@ function actions(d, rerender) {
       ok ? dl(`${base}/netlist.cir`, `fit-${d.fit_id}.cir`, "SPICE subcircuit") : null,
       ok ? dl(`${base}/model.s1p`, `fit-${d.fit_id}-model.s1p`, "Model Touchstone") : null,
       d.sweep_id != null ? dl(`/sweeps/${encodeURIComponent(d.sweep_id)}/file`, d.file_name ?? `sweep-${d.sweep_id}`, "Original file") : null,
+      ok ? dl(`${base}/report.pdf`, `report-fit-${d.fit_id}.pdf`, "Inspection report (PDF)") : null,
+      ok ? h("span", { class: "muted" }, " printable: ", reportLinks(d.fit_id)) : null,
     ),
     h(
       "div",
