@@ -202,6 +202,23 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
         "{}",
         facts["fit_downloads"]
     );
+    // Every plot of the fit page downloads as SVG and PNG, and the curves as CSV.
+    let plot_dl = strings(&facts["fit_plot_downloads"]);
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "svg").count(),
+        5,
+        "{plot_dl:?}"
+    );
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "png").count(),
+        5,
+        "{plot_dl:?}"
+    );
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "csv").count(),
+        1,
+        "{plot_dl:?}"
+    );
     assert!(
         int(&facts["model_download_bytes"]) > 0,
         "the model JSON download delivers bytes: {}",

@@ -191,7 +191,8 @@ def main():
         facts["fit_param_rows"] = page.eval_on_selector_all("#parameters tr[data-param]", "els => els.map(e => [e.dataset.param, e.dataset.identifiable])")
         facts["fit_check_rows"] = page.eval_on_selector_all("#verdict tr[data-check]", "els => els.map(e => e.dataset.check)")
         facts["fit_api_checks"] = [c["limit"] for c in details[fit_id].get("verdict_checks") or []]
-        facts["fit_downloads"] = page.eval_on_selector_all("[data-download]", "els => els.map(e => e.dataset.download)")
+        facts["fit_downloads"] = page.eval_on_selector_all("[data-download^='/']", "els => els.map(e => e.dataset.download)")
+        facts["fit_plot_downloads"] = page.eval_on_selector_all("#plots [data-download]", "els => els.map(e => e.dataset.download)")
         facts["fit_x_ticks"] = page.eval_on_selector_all('[data-plot="plot-mag"] text.tick-x', "els => els.map(e => e.textContent)")
         box = page.locator('[data-plot="plot-mag"]').bounding_box()
         page.mouse.move(box["x"] + box["width"] * 0.45, box["y"] + box["height"] * 0.5)

@@ -380,13 +380,14 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
                         "1" => "",
                         u => u,
                     };
+                    let v = |x: &Value| fmt_si(x.as_f64(), unit).trim_end().to_string();
                     println!(
                         "  {part:<14} lot {:<7} {}: {} (control limits {} to {})",
                         lot["lot"].as_str().unwrap_or_default(),
                         f["label"].as_str().unwrap_or_default(),
-                        fmt_si(p["value"].as_f64(), unit),
-                        fmt_si(f["control_low"].as_f64(), unit),
-                        fmt_si(f["control_high"].as_f64(), unit)
+                        v(&p["value"]),
+                        v(&f["control_low"]),
+                        v(&f["control_high"])
                     );
                 }
             }
