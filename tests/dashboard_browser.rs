@@ -4,8 +4,10 @@
 //! The script works the pages as a person would and reports what it saw; this test asserts on it:
 //! the queue page shows every demo fit reaching a final state, the fit page draws measured and model
 //! curves with as many points as the curves API returned, an engineer approves a fit from the part page
-//! while a reader sees no such buttons and is refused by the API, and a bad upload shows its error.
-//! Screenshots of every page are left in target/screenshots/ for a person to look at.
+//! while a reader sees no such buttons and is refused by the API, and a bad upload shows its error;
+//! a part's history shows trend plots with the drifting lot flagged and an overlay of lots, and the
+//! failing lot's report prints to PDF (Chromium) and downloads as the service's own PDF.
+//! Screenshots of every page and both PDFs are left in target/screenshots/ for a person to look at.
 
 use henrybook::app::Application;
 use henrybook::settings::Settings;
@@ -196,9 +198,26 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
     );
     assert_eq!(
         facts["fit_downloads"].as_array().unwrap().len(),
-        4,
+        5,
         "{}",
         facts["fit_downloads"]
+    );
+    // Every plot of the fit page downloads as SVG and PNG, and the curves as CSV.
+    let plot_dl = strings(&facts["fit_plot_downloads"]);
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "svg").count(),
+        5,
+        "{plot_dl:?}"
+    );
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "png").count(),
+        5,
+        "{plot_dl:?}"
+    );
+    assert_eq!(
+        plot_dl.iter().filter(|k| *k == "csv").count(),
+        1,
+        "{plot_dl:?}"
     );
     assert!(
         int(&facts["model_download_bytes"]) > 0,
@@ -301,6 +320,121 @@ async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_b
     assert!(err.to_lowercase().contains("line"), "upload error: {err}");
     assert_eq!(int(&facts["upload_safety_note"]), 1);
     assert_eq!(int(&facts["part_safety_note"]), 1);
+
+    // A part's history: a trend plot per figure, the drifting last lot flagged beyond the control
+    // limits on L0, one report link per lot, plot downloads (SVG, PNG) and the curves as CSV.
+    let figures = strings(&facts["history_figures"]);
+    for f in ["l0_h", "l_test_h", "dcr_ohm", "srf_hz"] {
+        assert!(
+            figures.contains(&f.to_string()),
+            "trend of {f}: {figures:?}"
+        );
+    }
+    let lots = strings(&facts["history_lots_in_manifest"]);
+    assert_eq!(strings(&facts["history_lot_rows"]), lots);
+    assert_eq!(int(&facts["history_report_links"]), lots.len() as i64);
+    let l0 = &facts["history_l0_series"];
+    assert_eq!(int(&l0["value"]["points"]), lots.len() as i64, "{l0}");
+    assert!(
+        int(&l0["control-low"]["points"]) == 2 && int(&l0["centre"]["points"]) == 2,
+        "{l0}"
+    );
+    assert_eq!(int(&l0["out-of-control"]["points"]), 1, "{l0}");
+    assert_eq!(
+        strings(&facts["history_flags"]),
+        [lots.last().unwrap().clone()],
+        "only the drifting lot is flagged on L0"
+    );
+    assert!(strings(&facts["history_x_ticks"]).contains(lots.last().unwrap()));
+    let dl = &facts["history_downloads"];
+    assert!(
+        dl["svg"]["name"].as_str().unwrap().ends_with(".svg"),
+        "{dl}"
+    );
+    assert_eq!(dl["svg"]["has_polyline_or_path"], true, "{dl}");
+    // PNG signature: 89 50 4E 47 0D 0A 1A 0A (ISO/IEC 15948, 5.2).
+    assert_eq!(dl["png"]["head"], "89504e470d0a1a0a", "{dl}");
+    assert!(dl["png"]["bytes"].as_i64().unwrap() > 1000, "{dl}");
+    assert!(
+        dl["csv"]["header"]
+            .as_str()
+            .unwrap()
+            .starts_with("frequency_hz,measured_z_real_ohm"),
+        "{dl}"
+    );
+    assert!(dl["csv"]["rows"].as_i64().unwrap() >= 20, "{dl}");
+    let overlay = &facts["overlay_plots"];
+    for pid in ["overlay-zmag", "overlay-l", "overlay-q"] {
+        let series = overlay[pid].as_object().unwrap();
+        assert!(
+            series.len() >= 2,
+            "baseline and the chosen lot in {pid}: {overlay}"
+        );
+        assert!(
+            series.values().all(|s| s["points"].as_i64().unwrap() >= 20),
+            "{overlay}"
+        );
+    }
+
+    // The history's report link opens the lot's report in a tab, styled (the policy admits its sheet).
+    let tab = &facts["report_tab"];
+    assert_eq!(tab["url_scheme"], "blob", "{tab}");
+    assert!(
+        tab["title"]
+            .as_str()
+            .unwrap()
+            .contains(lots.last().unwrap()),
+        "{tab}"
+    );
+    assert_eq!(
+        tab["status_display"], "grid",
+        "the report's style applies: {tab}"
+    );
+
+    // The lot report prints: Chromium's PDF of the HTML page has pages with the part and lot on the
+    // first; the service's own PDF reads back (pypdf, strict) with the same facts.
+    let rf = &facts["report_fit"];
+    assert_eq!(rf["verdict"], "fail", "the demo has a failing lot: {rf}");
+    assert_eq!(int(&facts["report_html_svgs"]), 3);
+    assert!(int(&facts["printed_pdf_pages"]) >= 1);
+    // Words as pypdf extracts them, line breaks as spaces (a table cell may wrap).
+    let words = |v: &Value| {
+        v.as_str()
+            .unwrap()
+            .split_whitespace()
+            .collect::<Vec<_>>()
+            .join(" ")
+    };
+    let page1 = words(&facts["printed_pdf_page1_text"]);
+    let (part, lot) = (rf["part"].as_str().unwrap(), rf["lot"].as_str().unwrap());
+    assert!(
+        page1.contains(part) && page1.contains(lot),
+        "printed page 1: {page1}"
+    );
+    assert!(page1.contains("Fail"), "printed page 1: {page1}");
+    assert_eq!(facts["own_pdf_type"], "application/pdf");
+    assert!(
+        int(&facts["own_pdf_pages"]) >= 2,
+        "text pages and the plot page"
+    );
+    let own = words(&facts["own_pdf_text"]);
+    assert!(
+        own.contains(&format!("Inspection report: {part} lot {lot}")),
+        "own PDF: {own}"
+    );
+    assert!(
+        own.contains("Inductance 220 µH ± 10 % at 10 kHz"),
+        "own PDF: {own}"
+    );
+    for shot in [
+        "part-history.png",
+        "part-overlay.png",
+        "report.png",
+        "report-printed.pdf",
+        "report-download.pdf",
+    ] {
+        assert!(shots.join(shot).exists(), "artefact {shot}");
+    }
 
     assert!(
         facts["console_errors"].as_array().unwrap().is_empty(),

@@ -235,6 +235,9 @@ fn routes() -> Vec<(&'static str, String, Option<usize>)> {
         ("POST", "/api/v1/parts".into(), e),
         ("GET", "/api/v1/parts/P-1".into(), r),
         ("PUT", "/api/v1/parts/P-1/limits".into(), e),
+        ("GET", "/api/v1/parts/P-1/trend".into(), r),
+        ("GET", "/api/v1/fits/1/report".into(), r),
+        ("GET", "/api/v1/fits/1/report.pdf".into(), r),
     ]
 }
 

@@ -86,6 +86,8 @@ struct SweepSpec {
     temperature_c: f64,
     operator: &'static str,
     seed: u64,
+    /// The demo approves this lot (in upload order; the newest approved lot is the baseline).
+    approve: bool,
 }
 
 struct PartSpec {
@@ -186,6 +188,87 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 23.0,
                     operator: "A. Marsh",
                     seed: 11,
+                    approve: true,
+                },
+                SweepSpec {
+                    file: "OMW-L10U-BK/lot-2615A_shunt-thru.s2p",
+                    lot: "2615A",
+                    method: Method::ShuntThru,
+                    layout: ts(V1, DecibelAngle, 1e3),
+                    // Old ferrite: the lot-to-lot spread of a stable supply.
+                    model: buck(1.005e-05, 0.0119, 7.6e-12, 9.2e+03),
+                    start_hz: 1e3,
+                    stop_hz: 200e6,
+                    points: 401,
+                    dcr_ohm: Some(0.012),
+                    temperature_c: 23.5,
+                    operator: "J. Varga",
+                    seed: 13,
+                    approve: true,
+                },
+                SweepSpec {
+                    file: "OMW-L10U-BK/lot-2619B_shunt-thru.s2p",
+                    lot: "2619B",
+                    method: Method::ShuntThru,
+                    layout: ts(V1, DecibelAngle, 1e3),
+                    // Old ferrite: the lot-to-lot spread of a stable supply.
+                    model: buck(1.030e-05, 0.0117, 7.4e-12, 8.8e+03),
+                    start_hz: 1e3,
+                    stop_hz: 200e6,
+                    points: 401,
+                    dcr_ohm: Some(0.0118),
+                    temperature_c: 22.5,
+                    operator: "A. Marsh",
+                    seed: 14,
+                    approve: true,
+                },
+                SweepSpec {
+                    file: "OMW-L10U-BK/lot-2623A_shunt-thru.s2p",
+                    lot: "2623A",
+                    method: Method::ShuntThru,
+                    layout: ts(V1, DecibelAngle, 1e3),
+                    // Old ferrite: the lot-to-lot spread of a stable supply.
+                    model: buck(1.015e-05, 0.012, 7.5e-12, 9.1e+03),
+                    start_hz: 1e3,
+                    stop_hz: 200e6,
+                    points: 401,
+                    dcr_ohm: Some(0.0121),
+                    temperature_c: 23.0,
+                    operator: "T. Ilunga",
+                    seed: 15,
+                    approve: true,
+                },
+                SweepSpec {
+                    file: "OMW-L10U-BK/lot-2628B_shunt-thru.s2p",
+                    lot: "2628B",
+                    method: Method::ShuntThru,
+                    layout: ts(V1, DecibelAngle, 1e3),
+                    // Old ferrite: the lot-to-lot spread of a stable supply.
+                    model: buck(9.950e-06, 0.0118, 7.7e-12, 8.9e+03),
+                    start_hz: 1e3,
+                    stop_hz: 200e6,
+                    points: 401,
+                    dcr_ohm: Some(0.0119),
+                    temperature_c: 24.0,
+                    operator: "A. Marsh",
+                    seed: 16,
+                    approve: true,
+                },
+                SweepSpec {
+                    file: "OMW-L10U-BK/lot-2634A_shunt-thru.s2p",
+                    lot: "2634A",
+                    method: Method::ShuntThru,
+                    layout: ts(V1, DecibelAngle, 1e3),
+                    // Old ferrite: the lot-to-lot spread of a stable supply.
+                    model: buck(1.025e-05, 0.0119, 7.5e-12, 9.0e+03),
+                    start_hz: 1e3,
+                    stop_hz: 200e6,
+                    points: 401,
+                    dcr_ohm: Some(0.012),
+                    temperature_c: 23.0,
+                    operator: "J. Varga",
+                    seed: 17,
+                    approve: true,
                 },
                 SweepSpec {
                     file: "OMW-L10U-BK/lot-2647C_shunt-thru.s2p",
@@ -201,6 +284,7 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 24.5,
                     operator: "J. Varga",
                     seed: 12,
+                    approve: false,
                 },
             ],
         },
@@ -238,6 +322,7 @@ fn parts() -> Vec<PartSpec> {
                 temperature_c: 23.0,
                 operator: "A. Marsh",
                 seed: 21,
+                approve: false,
             }],
         },
         PartSpec {
@@ -266,6 +351,7 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 23.0,
                     operator: "J. Varga",
                     seed: 31,
+                    approve: false,
                 },
                 SweepSpec {
                     file: "OMW-L100N-RF/lot-2651A_reflection.ts",
@@ -280,6 +366,7 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 22.5,
                     operator: "A. Marsh",
                     seed: 32,
+                    approve: false,
                 },
             ],
         },
@@ -324,6 +411,7 @@ fn parts() -> Vec<PartSpec> {
                 temperature_c: 23.5,
                 operator: "T. Ilunga",
                 seed: 41,
+                approve: false,
             }],
         },
         PartSpec {
@@ -352,6 +440,7 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 23.0,
                     operator: "T. Ilunga",
                     seed: 51,
+                    approve: false,
                 },
                 SweepSpec {
                     // The lot with the wrong air gap: L about 17 % low, out of its ±10 %.
@@ -367,6 +456,7 @@ fn parts() -> Vec<PartSpec> {
                     temperature_c: 23.0,
                     operator: "T. Ilunga",
                     seed: 52,
+                    approve: false,
                 },
             ],
         },
@@ -535,6 +625,9 @@ fn main() {
                 "temperature_c": spec.temperature_c,
                 "operator": spec.operator,
             }));
+            if spec.approve {
+                sweeps.last_mut().expect("just pushed")["approve"] = json!(true);
+            }
             truth.insert(
                 spec.file.to_string(),
                 serde_json::to_value(&spec.model).expect("a model serialises"),

@@ -19,6 +19,8 @@
 //!   HTTP, with the same tokens and roles.
 //! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
 //!   the baseline, the fixed grid for queries) and the API's JSON shapes.
+//! - [`report`]: the printable inspection report of a lot's fit, as self-contained HTML and as PDF
+//!   (pure: the stored facts in, text and bytes out).
 //! - [`serve`]: the listeners' connections: limit, header-read and idle timeouts, drain deadline.
 //! - [`app`] builds and runs the whole service; [`settings`] holds its typed settings.
 //!
@@ -33,6 +35,7 @@ pub mod http;
 pub mod jobs;
 pub mod model;
 pub mod registry;
+pub mod report;
 pub mod serve;
 pub mod server_cli;
 pub mod settings;

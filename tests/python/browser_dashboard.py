@@ -191,7 +191,8 @@ def main():
         facts["fit_param_rows"] = page.eval_on_selector_all("#parameters tr[data-param]", "els => els.map(e => [e.dataset.param, e.dataset.identifiable])")
         facts["fit_check_rows"] = page.eval_on_selector_all("#verdict tr[data-check]", "els => els.map(e => e.dataset.check)")
         facts["fit_api_checks"] = [c["limit"] for c in details[fit_id].get("verdict_checks") or []]
-        facts["fit_downloads"] = page.eval_on_selector_all("[data-download]", "els => els.map(e => e.dataset.download)")
+        facts["fit_downloads"] = page.eval_on_selector_all("[data-download^='/']", "els => els.map(e => e.dataset.download)")
+        facts["fit_plot_downloads"] = page.eval_on_selector_all("#plots [data-download]", "els => els.map(e => e.dataset.download)")
         facts["fit_x_ticks"] = page.eval_on_selector_all('[data-plot="plot-mag"] text.tick-x', "els => els.map(e => e.textContent)")
         box = page.locator('[data-plot="plot-mag"]').bounding_box()
         page.mouse.move(box["x"] + box["width"] * 0.45, box["y"] + box["height"] * 0.5)
@@ -283,6 +284,99 @@ def main():
         page.wait_for_timeout(1200)
         facts["parts_approved_rows"] = page.eval_on_selector_all("#parts tr[data-part]", "els => els.map(e => e.dataset.part)")
         facts["parts_requests"] = [u[len(BASE):] for u in requests if "/api/v1/parts" in u]
+
+        # --- a part's history across lots: the engineer releases the lots the manifest marks (as the demo
+        # does), then the part page shows trend plots with control limits and the drifting lot flagged.
+        history_part = next(p for p in manifest["parts"] if sum(1 for sw in p["sweeps"] if sw.get("approve")) >= 2)
+        hp = history_part["part_number"]
+        by_lot = {details[fid]["lot"]: fid for fid in fit_ids if details[fid]["part_number"] == hp}
+        for sw in history_part["sweeps"]:
+            fid = by_lot.get(sw["lot"])
+            if sw.get("approve") and fid in succeeded and call("GET", f"/fits/{fid}", READER)[1]["approval"] != "approved":
+                st, ans = call("POST", f"/fits/{fid}/approve", ENGINEER, body={"reason": "lot released (browser test)"})
+                assert st == 200, f"approving {sw['lot']}: {st} {ans}"
+        facts["history_part"] = hp
+        facts["history_lots_in_manifest"] = [sw["lot"] for sw in history_part["sweeps"]]
+        page.goto(f"{BASE}/ui/parts/{urllib.request.quote(hp, safe='')}")
+        page.wait_for_selector('#history [data-plot="trend-l0_h"] path[data-series="value"]', timeout=30000)
+        facts["history_figures"] = page.eval_on_selector_all("#history .trend[data-figure]", "els => els.map(e => e.dataset.figure)")
+        facts["history_l0_series"] = series_facts(page, "trend-l0_h")
+        facts["history_flags"] = page.eval_on_selector_all('#history .trend[data-figure="l0_h"] li[data-flag-lot]', "els => els.map(e => e.dataset.flagLot)")
+        facts["history_lot_rows"] = page.eval_on_selector_all("#lot-history tr[data-lot]", "els => els.map(e => e.dataset.lot)")
+        facts["history_report_links"] = page.locator("#lot-history [data-report]").count()
+        facts["history_x_ticks"] = page.eval_on_selector_all('[data-plot="trend-l0_h"] text.tick-x', "els => els.map(e => e.textContent)")
+        page.locator("#history").screenshot(path=f"{SHOTS}/part-history.png")
+        # Downloads of a trend plot (SVG, PNG).
+        downloads = {}
+        for kind in ("svg", "png"):
+            try:
+                with page.expect_download(timeout=20000) as dl:
+                    page.click(f'#history .trend[data-figure="l0_h"] [data-download="{kind}"]')
+                with open(dl.value.path(), "rb") as fh:
+                    body = fh.read()
+                downloads[kind] = {"name": dl.value.suggested_filename, "bytes": len(body), "head": body[:8].hex(),
+                                   "has_polyline_or_path": b"<path" in body}
+            except Exception as e:  # reported, and failed on, by the Rust test
+                downloads[kind] = {"problem": str(e)}
+        # The overlay: the drifting (last) lot against the baseline, |Z|, L(f) and Q(f).
+        last_lot = history_part["sweeps"][-1]["lot"]
+        page.check(f'#lot-history input[data-lot="{last_lot}"]')
+        page.click("#show-overlay")
+        page.wait_for_selector('#overlay [data-plot="overlay-q"] path[data-series]', timeout=30000)
+        facts["overlay_plots"] = {pid: series_facts(page, pid) for pid in ("overlay-zmag", "overlay-l", "overlay-q")}
+        try:
+            with page.expect_download(timeout=20000) as dl:
+                page.click('#overlay [data-download="csv"] >> nth=0')
+            with open(dl.value.path(), "r", encoding="utf-8") as fh:
+                lines = fh.read().splitlines()
+            downloads["csv"] = {"name": dl.value.suggested_filename, "header": lines[0], "rows": len(lines) - 1}
+        except Exception as e:
+            downloads["csv"] = {"problem": str(e)}
+        facts["history_downloads"] = downloads
+        page.locator("#overlay").screenshot(path=f"{SHOTS}/part-overlay.png")
+        # The dashboard's own report link: a new tab showing the page from a blob (it needs the token),
+        # styled although the dashboard's content security policy forbids inline styles but this one.
+        last_fit = by_lot[last_lot]
+        with page.context.expect_page(timeout=20000) as popup:
+            page.click(f'#lot-history [data-report="{last_fit}"]')
+        tab = popup.value
+        tab.wait_for_selector("h1", timeout=20000)
+        facts["report_tab"] = {
+            "url_scheme": tab.url.split(":")[0],
+            "title": tab.text_content("h1"),
+            "status_display": tab.evaluate("getComputedStyle(document.querySelector('.status')).display"),
+        }
+        tab.close()
+
+        # --- the printable report of the failing lot: opened as the dashboard's link does (the page with
+        # the token), printed to PDF by Chromium, and the service's own PDF download read back.
+        failing = [fid for fid in succeeded if details[fid].get("verdict") == "fail"]
+        report_fit = failing[0] if failing else succeeded[-1]
+        facts["report_fit"] = {"fit_id": report_fit, "part": details[report_fit]["part_number"], "lot": details[report_fit]["lot"],
+                               "verdict": details[report_fit].get("verdict")}
+        rep = browser.new_context(viewport={"width": 1100, "height": 900}, extra_http_headers={"Authorization": f"Bearer {READER}"})
+        rp = rep.new_page()
+        rp.goto(f"{BASE}/api/v1/fits/{report_fit}/report")
+        rp.wait_for_selector("svg.chart polyline")
+        facts["report_html_svgs"] = rp.locator("svg.chart").count()
+        rp.screenshot(path=f"{SHOTS}/report.png", full_page=True)
+        rp.emulate_media(media="print")
+        rp.pdf(path=f"{SHOTS}/report-printed.pdf", format="A4", print_background=True)
+        rep.close()
+        from pypdf import PdfReader
+
+        printed = PdfReader(f"{SHOTS}/report-printed.pdf")
+        facts["printed_pdf_pages"] = len(printed.pages)
+        facts["printed_pdf_page1_text"] = printed.pages[0].extract_text()
+        req = urllib.request.Request(f"{BASE}/api/v1/fits/{report_fit}/report.pdf", headers={"Authorization": f"Bearer {READER}"})
+        with urllib.request.urlopen(req, timeout=60) as res:
+            own = res.read()
+            facts["own_pdf_type"] = res.headers.get("Content-Type")
+        with open(f"{SHOTS}/report-download.pdf", "wb") as fh:
+            fh.write(own)
+        own_pdf = PdfReader(f"{SHOTS}/report-download.pdf", strict=True)
+        facts["own_pdf_pages"] = len(own_pdf.pages)
+        facts["own_pdf_text"] = "\n".join(pg.extract_text() for pg in own_pdf.pages)
 
         # --- upload a bad file: the page must show the error in words
         page.goto(f"{BASE}/ui/upload")

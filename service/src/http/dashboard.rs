@@ -42,10 +42,18 @@ async fn ui_path(Path(path): Path<String>, headers: HeaderMap) -> Response {
 }
 
 /// Content-Security-Policy: the pages load nothing from anywhere but this server, run no inline script
-/// and cannot be framed. Downloads are built as `blob:` URLs because they need the bearer token.
-const CSP: &str = "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data: blob:; \
-                   connect-src 'self'; object-src 'none'; base-uri 'none'; frame-ancestors 'none'; \
-                   form-action 'self'";
+/// and cannot be framed. Downloads are built as `blob:` URLs because they need the bearer token. The
+/// one inline style admitted (by its hash) is the inspection report's, which the dashboard opens as a
+/// `blob:` page that inherits this policy.
+static CSP: std::sync::LazyLock<HeaderValue> = std::sync::LazyLock::new(|| {
+    HeaderValue::from_str(&format!(
+        "default-src 'self'; script-src 'self'; style-src 'self' {}; img-src 'self' data: blob:; \
+         connect-src 'self'; object-src 'none'; base-uri 'none'; frame-ancestors 'none'; \
+         form-action 'self'",
+        crate::report::html::style_source()
+    ))
+    .expect("the policy is visible ASCII")
+});
 
 fn serve(path: &str, headers: &HeaderMap) -> Response {
     let Some(file) = Assets::get(path) else {
@@ -72,10 +80,7 @@ fn serve(path: &str, headers: &HeaderMap) -> Response {
             header::X_CONTENT_TYPE_OPTIONS,
             HeaderValue::from_static("nosniff"),
         ),
-        (
-            header::CONTENT_SECURITY_POLICY,
-            HeaderValue::from_static(CSP),
-        ),
+        (header::CONTENT_SECURITY_POLICY, CSP.clone()),
         (
             header::ETAG,
             HeaderValue::from_str(&etag).expect("hex digits are a valid header value"),

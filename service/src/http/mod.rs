@@ -11,6 +11,7 @@ pub mod ops;
 pub mod parts;
 pub mod problem;
 pub mod queue;
+pub mod report;
 pub mod session;
 pub mod sweeps;
 
@@ -62,6 +63,7 @@ fn api_router() -> OpenApiRouter<AppState> {
         .merge(fits::router())
         .merge(sweeps::router())
         .merge(parts::router())
+        .merge(report::router())
 }
 
 /// The OpenAPI description of every route, as committed in `api/openapi.yaml`.

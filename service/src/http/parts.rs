@@ -210,9 +210,42 @@ async fn put_limits(
     Ok(Json(state.store.part(&part_number).await?))
 }
 
+/// The trend route takes no query parameters; any given is refused (400), as elsewhere.
+#[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
+#[into_params(parameter_in = Query)]
+#[serde(deny_unknown_fields)]
+pub struct TrendParams {}
+
+/// A part's figures across its lots (one point per lot: its approved fit, else its newest succeeded
+/// one), with the part's limits, Shewhart control limits (mean ± 3σ of the approved lots, σ the
+/// sample standard deviation; none with fewer than two approved lots) and per point: outside the
+/// limits, beyond the control limits (Nelson rule 1), in a run of nine on one side of the centre line
+/// (Nelson rule 2).
+#[utoipa::path(get, path = "/api/v1/parts/{part_number}/trend", tag = "parts",
+    params(("part_number" = String, Path), TrendParams),
+    responses((status = 200, body = crate::registry::trend::PartTrend),
+        (status = 404, body = super::problem::ProblemBody)),
+    security(("bearer" = [])))]
+async fn part_trend(
+    _: Reader,
+    State(state): State<AppState>,
+    Path(part_number): Path<String>,
+    Query(_): Query<TrendParams>,
+) -> ApiResult<Json<crate::registry::trend::PartTrend>> {
+    let part = state.store.part_row(&part_number).await?;
+    let fits = state.store.lot_fits(part.part_id).await?;
+    let trend = tokio::task::spawn_blocking(move || {
+        crate::registry::trend::part_trend(&part.part_number, &part.limits, fits)
+    })
+    .await
+    .map_err(Problem::internal)?;
+    Ok(Json(trend))
+}
+
 pub fn router() -> OpenApiRouter<AppState> {
     OpenApiRouter::new()
         .routes(routes!(query_parts, create_part))
         .routes(routes!(get_part))
+        .routes(routes!(part_trend))
         .routes(routes!(put_limits))
 }

@@ -7,6 +7,7 @@
 //! - [`drift`]: a fit report against the approved baseline (per parameter, in percent and in σ).
 //! - [`figures`]: the figures copied from a report into indexed columns.
 //! - [`assessment`]: all of the above for one succeeded fit, computed before the store writes it.
+//! - [`trend`]: a part's figures across its lots, with Shewhart control limits and run flags.
 //! - [`wire`]: the JSON shapes of the HTTP API (api/openapi.yaml), shared by the store and the routes.
 //!
 //! Everything numeric here is a comparison of figures the engine produced, or an evaluation of the
@@ -17,5 +18,6 @@ pub mod drift;
 pub mod figures;
 pub mod grid;
 pub mod limits;
+pub mod trend;
 pub mod verdict;
 pub mod wire;

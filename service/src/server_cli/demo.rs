@@ -179,6 +179,8 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     let parts = manifest["parts"].as_array().cloned().unwrap_or_default();
     // (part, lot, fit_id)
     let mut fits: Vec<(String, String, i64)> = Vec::new();
+    // Fits the manifest marks `"approve": true`: the engineer releases those lots in upload order.
+    let mut to_approve: Vec<i64> = Vec::new();
     for p in &parts {
         let part_number = p["part_number"].as_str().unwrap_or_default().to_string();
         let (status, body) = c
@@ -228,11 +230,11 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             if status != 202 {
                 bail!("uploading {rel}: {status} {body}");
             }
-            fits.push((
-                part_number.clone(),
-                lot,
-                body["fit_id"].as_i64().unwrap_or_default(),
-            ));
+            let fit_id = body["fit_id"].as_i64().unwrap_or_default();
+            if s["approve"].as_bool() == Some(true) {
+                to_approve.push(fit_id);
+            }
+            fits.push((part_number.clone(), lot, fit_id));
         }
     }
 
@@ -256,20 +258,26 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         }
     }
 
-    // The first lot of each part becomes its approved baseline (what design tools are answered from),
-    // so a later lot shows drift. A first lot that fails its limits or whose model is poor is not
-    // approved: the service refuses it without an override, and the demo says so.
+    // The first lot of each part, and every lot the manifest marks, is approved in upload order (the
+    // newest approved lot is the baseline design tools are answered from), so a later lot shows drift
+    // and the part's trend has control limits. A lot that fails its limits or whose model is poor is
+    // not approved: the service refuses it without an override, and the demo says so.
     let mut baseline_done = std::collections::HashSet::new();
     for (part, _, id) in &fits {
-        if baseline_done.insert(part.clone()) {
+        let first = baseline_done.insert(part.clone());
+        if first || to_approve.contains(id) {
             let part_now = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
-            if part_now["baseline_fit_id"].is_null() {
+            if !first || part_now["baseline_fit_id"].is_null() {
                 let (status, body) = c
                     .json(
                         c.http
                             .post(format!("{base}/api/v1/fits/{id}/approve"))
                             .bearer_auth(engineer)
-                            .json(&json!({"reason": "demo: the first lot is the qualification baseline"})),
+                            .json(&json!({"reason": if first {
+                                "demo: the first lot is the qualification baseline"
+                            } else {
+                                "demo: lot released at incoming inspection"
+                            }})),
                     )
                     .await?;
                 if status != 200 {
@@ -349,6 +357,62 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             p["part_number"].as_str().unwrap_or_default(),
             fmt_si(p["srf_hz"].as_f64(), "Hz"),
             p["description"].as_str().unwrap_or_default()
+        );
+    }
+
+    println!(
+        "\nLots out of statistical control (GET /api/v1/parts/{{part}}/trend; control limits = mean \
+         ± 3σ of the approved lots):"
+    );
+    let mut any = false;
+    for part in &seen_parts {
+        let t = c
+            .get(&format!("/api/v1/parts/{part}/trend"), reader)
+            .await?;
+        let lots = t["lots"].as_array().cloned().unwrap_or_default();
+        for f in t["figures"].as_array().cloned().unwrap_or_default() {
+            for p in f["points"].as_array().cloned().unwrap_or_default() {
+                if p["out_of_control"] == true || p["in_run"] == true {
+                    any = true;
+                    let lot = &lots[p["lot_index"].as_u64().unwrap_or(0) as usize];
+                    let unit = match f["unit"].as_str().unwrap_or("") {
+                        "ohm" => "Ω",
+                        "1" => "",
+                        u => u,
+                    };
+                    let v = |x: &Value| fmt_si(x.as_f64(), unit).trim_end().to_string();
+                    println!(
+                        "  {part:<14} lot {:<7} {}: {} (control limits {} to {})",
+                        lot["lot"].as_str().unwrap_or_default(),
+                        f["label"].as_str().unwrap_or_default(),
+                        v(&p["value"]),
+                        v(&f["control_low"]),
+                        v(&f["control_high"])
+                    );
+                }
+            }
+        }
+    }
+    if !any {
+        println!("  none");
+    }
+    let failing: Vec<i64> = {
+        let page = c
+            .get("/api/v1/fits?status=succeeded&limit=500", reader)
+            .await?;
+        page["items"]
+            .as_array()
+            .cloned()
+            .unwrap_or_default()
+            .iter()
+            .filter(|f| f["verdict"] == "fail")
+            .filter_map(|f| f["fit_id"].as_i64())
+            .collect()
+    };
+    for id in &failing {
+        println!(
+            "Printable inspection report of failing fit {id}: {base}/api/v1/fits/{id}/report \
+             (PDF: …/report.pdf); the dashboard's part page links every lot's report."
         );
     }
 

@@ -565,3 +565,82 @@ async fn refresh_drift(tx: &mut SqliteConnection, part_id: i64) -> StoreResult<(
     }
     Ok(())
 }
+
+impl Store {
+    /// Every succeeded fit of a part with its lot, the lot's place (its first upload), the upload time
+    /// and whether it counts as approved (approved now, or approved earlier and superseded, and not
+    /// rejected since): what [`crate::registry::trend`] draws. At most 2 000, the newest.
+    pub async fn lot_fits(&self, part_id: i64) -> StoreResult<Vec<crate::registry::trend::LotFit>> {
+        let rows = sqlx::query(
+            "SELECT f.fit_id, l.lot, \
+             (SELECT MIN(s2.sweep_id) FROM sweeps s2 WHERE s2.lot_id = f.lot_id) AS lot_order, \
+             s.uploaded_at_ms, f.report_json, \
+             CASE WHEN f.approval = 'approved' THEN 1 \
+                  WHEN f.approval IS NULL AND EXISTS (SELECT 1 FROM audit a WHERE a.fit_id = f.fit_id \
+                      AND a.action IN ('fit-approved', 'fit-approved-override')) THEN 1 \
+                  ELSE 0 END AS approved \
+             FROM fits f JOIN lots l ON l.lot_id = f.lot_id JOIN sweeps s ON s.sweep_id = f.sweep_id \
+             WHERE f.part_id = ? AND f.status = 'succeeded' AND f.report_json IS NOT NULL \
+             ORDER BY f.fit_id DESC LIMIT 2000",
+        )
+        .bind(part_id)
+        .fetch_all(&self.reader)
+        .await?;
+        rows.iter()
+            .map(|row| {
+                let json: String = row.try_get("report_json")?;
+                Ok(crate::registry::trend::LotFit {
+                    fit_id: row.try_get("fit_id")?,
+                    lot: row.try_get("lot")?,
+                    lot_order: row.try_get("lot_order")?,
+                    approved: row.try_get::<i64, _>("approved")? == 1,
+                    uploaded_at: rfc3339(row.try_get("uploaded_at_ms")?),
+                    report: serde_json::from_str(&json)?,
+                })
+            })
+            .collect()
+    }
+
+    /// What the printed report of a fit states besides its detail: the sweep's point count and upload
+    /// (when, by whom), and who approved the fit and when (the newest approval in the audit trail).
+    pub async fn fit_provenance(&self, fit_id: i64) -> StoreResult<FitProvenance> {
+        let row = sqlx::query(
+            "SELECT s.points, s.uploaded_at_ms, s.uploaded_by, p.description, \
+             (SELECT a.actor FROM audit a WHERE a.fit_id = f.fit_id AND a.action IN \
+                ('fit-approved', 'fit-approved-override') ORDER BY a.audit_id DESC LIMIT 1) AS approved_by, \
+             (SELECT a.at_ms FROM audit a WHERE a.fit_id = f.fit_id AND a.action IN \
+                ('fit-approved', 'fit-approved-override') ORDER BY a.audit_id DESC LIMIT 1) AS approved_at_ms, \
+             (SELECT a.reason FROM audit a WHERE a.fit_id = f.fit_id AND a.action IN \
+                ('fit-approved', 'fit-approved-override') ORDER BY a.audit_id DESC LIMIT 1) AS approved_reason \
+             FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id JOIN parts p ON p.part_id = f.part_id \
+             WHERE f.fit_id = ?",
+        )
+        .bind(fit_id)
+        .fetch_optional(&self.reader)
+        .await?
+        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        Ok(FitProvenance {
+            points: row.try_get("points")?,
+            uploaded_at: rfc3339(row.try_get("uploaded_at_ms")?),
+            uploaded_by: row.try_get("uploaded_by")?,
+            part_description: row.try_get("description")?,
+            approved_by: row.try_get("approved_by")?,
+            approved_at: row
+                .try_get::<Option<i64>, _>("approved_at_ms")?
+                .map(rfc3339),
+            approved_reason: row.try_get("approved_reason")?,
+        })
+    }
+}
+
+/// See [`Store::fit_provenance`].
+#[derive(Debug, Clone)]
+pub struct FitProvenance {
+    pub points: i64,
+    pub uploaded_at: String,
+    pub uploaded_by: String,
+    pub part_description: String,
+    pub approved_by: Option<String>,
+    pub approved_at: Option<String>,
+    pub approved_reason: Option<String>,
+}

@@ -8,6 +8,8 @@ import { plot } from "./plot.js";
 import { partHref, fitHref, progressBar, approvalControls } from "./common.js";
 import { LIMIT_FIELDS } from "./part.js";
 import { navigate } from "./nav.js";
+import { reportLinks } from "./part-history.js";
+import { plotDownloads, curvesCsv } from "./plot-export.js";
 
 const FINAL = new Set(["succeeded", "failed", "cancelled"]);
 const DEG = 180 / Math.PI;
@@ -47,7 +49,7 @@ export async function renderFit(main, [fitId]) {
 
   const curves = await api.get(`${base}/curves`).catch((e) => ({ error: e }));
   if (curves.error) main.append(errorBox(curves.error, "The curves could not be loaded"));
-  else main.append(plots(curves, detail.report));
+  else main.append(plots(curves, detail.report, `fit-${detail.fit_id}`));
 
   const report = detail.report;
   if (report) {
@@ -179,6 +181,8 @@ function actions(d, rerender) {
       ok ? dl(`${base}/netlist.cir`, `fit-${d.fit_id}.cir`, "SPICE subcircuit") : null,
       ok ? dl(`${base}/model.s1p`, `fit-${d.fit_id}-model.s1p`, "Model Touchstone") : null,
       d.sweep_id != null ? dl(`/sweeps/${encodeURIComponent(d.sweep_id)}/file`, d.file_name ?? `sweep-${d.sweep_id}`, "Original file") : null,
+      ok ? dl(`${base}/report.pdf`, `report-fit-${d.fit_id}.pdf`, "Inspection report (PDF)") : null,
+      ok ? h("span", { class: "muted" }, " printable: ", reportLinks(d.fit_id)) : null,
     ),
     h(
       "div",
@@ -220,7 +224,7 @@ function refitControls(d, msg) {
 
 // ---------------------------------------------------------------- plots
 
-function plots(c, report) {
+function plots(c, report, name) {
   const f = c.frequency_hz ?? [];
   const n = f.length;
   const hasModel = (c.model_z_real_ohm ?? []).length === n && n > 0;
@@ -338,7 +342,16 @@ function plots(c, report) {
       }),
     ),
   );
-  return h("section", { class: "card plots", id: "plots", "data-points": n, "data-model": hasModel ? "yes" : "no" }, h("h2", {}, "Sweep and model"), !hasModel ? h("p", { class: "muted" }, "No model curve: the fit has not succeeded.") : null, figs);
+  const section = h(
+    "section",
+    { class: "card plots", id: "plots", "data-points": n, "data-model": hasModel ? "yes" : "no" },
+    h("div", { class: "card-head" }, h("h2", {}, "Sweep and model"), h("span", { class: "plot-downloads" }, h("button", { type: "button", class: "small", "data-download": "csv", onclick: () => curvesCsv(c, `${name}-curves`) }, "Curves CSV"))),
+    !hasModel ? h("p", { class: "muted" }, "No model curve: the fit has not succeeded.") : null,
+    figs,
+  );
+  // SVG and PNG of every plot.
+  for (const fig of section.querySelectorAll("figure.plot")) fig.prepend(h("div", { class: "plot-tools" }, plotDownloads(fig, `${name}-${fig.id}`)));
+  return section;
 }
 
 // ---------------------------------------------------------------- tables

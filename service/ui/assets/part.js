@@ -4,6 +4,7 @@ import { api, auth } from "./api.js";
 import { h, link, errorBox, safetyNote } from "./dom.js";
 import { si, parseSI, time } from "./si.js";
 import { fitRows, fitTableHead, fitHref, approvalControls } from "./common.js";
+import { renderHistory } from "./part-history.js";
 
 export const LIMIT_FIELDS = [
   ["l_nominal_h", "Nominal inductance", "H"],
@@ -82,6 +83,9 @@ export async function renderPart(main, [partNumber]) {
   const extra = auth.atLeast("engineer") ? (f) => approvalControls(f, rerender) : null;
   const audit = part.audit ?? [];
 
+  const historyBox = h("section", { class: "card", id: "history" });
+  renderHistory(historyBox, part);
+
   main.append(
     h("div", { class: "page-head" }, h("h1", {}, part.part_number), h("span", { class: "muted" }, part.description ?? "")),
     safetyNote(),
@@ -102,6 +106,7 @@ export async function renderPart(main, [partNumber]) {
         auth.atLeast("engineer") ? null : h("p", { class: "muted", id: "read-only-note" }, `Signed in as ${auth.role() ?? "reader"}: approving, rejecting and editing limits need the engineer role.`),
       ),
     ),
+    historyBox,
     h(
       "section",
       { class: "card" },

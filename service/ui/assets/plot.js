@@ -83,7 +83,7 @@ function makeAxis(cfg, values, pixels) {
       major.push(Math.abs(v) < step * 1e-9 ? 0 : v);
     }
   }
-  return { log, lo, hi, toPx, fromPx, major, minor, unit: cfg.unit ?? "", label: cfg.label ?? "" };
+  return { log, lo, hi, toPx, fromPx, major, minor, unit: cfg.unit ?? "", label: cfg.label ?? "", fmt: cfg.fmt };
 }
 
 function tickLabel(v, unit) {
@@ -175,7 +175,7 @@ function nearestIndex(xs, x) {
 }
 
 /**
- * spec: { id, title, width, height, x: {log, unit, label, range}, y: {...},
+ * spec: { id, title, width, height, x: {log, unit, label, range, step, fmt}, y: {...},
  *         series: [{key, label, type: "line"|"points"|"band", x, y, y0, y1, unit, fmt}],
  *         markers: [{x, label, cls}], hlines: [{y, cls}], note }
  */
@@ -210,7 +210,7 @@ export function plot(spec) {
   const axes = s("g", { class: "axes" });
   axes.append(s("rect", { class: "frame", x: M.left, y: M.top, width: W - M.left - M.right, height: H - M.top - M.bottom }));
   for (const v of xa.major) {
-    axes.append(s("text", { class: "tick tick-x", x: xa.toPx(v), y: H - M.bottom + 15, "text-anchor": "middle" }, tickLabel(v, xa.unit)));
+    axes.append(s("text", { class: "tick tick-x", x: xa.toPx(v), y: H - M.bottom + 15, "text-anchor": "middle" }, xa.fmt ? xa.fmt(v) : tickLabel(v, xa.unit)));
   }
   for (const v of ya.major) {
     axes.append(s("text", { class: "tick tick-y", x: M.left - 6, y: ya.toPx(v) + 4, "text-anchor": "end" }, tickLabel(v, ya.unit)));
@@ -270,7 +270,7 @@ export function plot(spec) {
     cross.setAttribute("x1", px);
     cross.setAttribute("x2", px);
     while (dots.firstChild) dots.firstChild.remove();
-    const lines = [h("div", { class: "ro-x" }, `${xa.label.split(" ")[0]} ${si(xv, xa.unit)}`)];
+    const lines = [h("div", { class: "ro-x" }, xa.fmt ? xa.fmt(Math.round(xv)) : `${xa.label.split(" ")[0]} ${si(xv, xa.unit)}`)];
     for (const sr of hoverable) {
       const i = nearestIndex(sr.x, xv);
       if (i < 0) continue;
