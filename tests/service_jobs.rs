@@ -196,6 +196,8 @@ async fn a_running_fit_can_be_cancelled_and_retried() {
     for id in &ids {
         let f = app.wait_for_fit(*id, Duration::from_secs(20)).await;
         assert_eq!(f["status"], "cancelled", "{f}");
+        // Cancelled by its worker (running) or by the store (queued): the same kind.
+        assert_eq!(f["error_kind"], "cancelled", "{f}");
     }
     let r = app
         .post_json(
@@ -394,6 +396,7 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
         let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
         assert_eq!(f["status"], "failed", "{f}");
         assert!(f["error"].as_str().unwrap().contains(named), "{f}");
+        assert_eq!(f["error_kind"], "invalid_options", "{f}");
     }
     // The worker is still there: a good upload afterwards is fitted.
     let r = upload_one(&app, "R-1", 50).await;
