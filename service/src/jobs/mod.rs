@@ -597,16 +597,20 @@ mod tests {
     #[test]
     fn the_migration_allows_exactly_the_failure_kinds() {
         let sql = include_str!("../../../migrations/0010_fit_error_kind.sql");
-        let check = sql
-            .split_once("CHECK (error_kind IN (")
-            .and_then(|(_, rest)| rest.split_once("))"))
-            .expect("the migration has the CHECK list")
-            .0;
-        let allowed: Vec<&str> = check
-            .split(',')
-            .map(|n| n.trim().trim_matches('\''))
-            .collect();
         let kinds: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
-        assert_eq!(allowed, kinds);
+        let lists: Vec<Vec<&str>> = sql
+            .split("NEW.error_kind NOT IN (")
+            .skip(1)
+            .map(|rest| {
+                let list = rest.split_once(')').expect("the list is closed").0;
+                list.split(',')
+                    .map(|n| n.trim().trim_matches('\''))
+                    .collect()
+            })
+            .collect();
+        assert_eq!(lists.len(), 2, "one list for inserts, one for updates");
+        for list in lists {
+            assert_eq!(list, kinds);
+        }
     }
 }

@@ -829,6 +829,16 @@ mod tests {
                 Some(FailureKind::Cancelled)
             ]
         );
+        let unknown = sqlx::query("UPDATE fits SET error_kind = 'gremlins' WHERE fit_id = ?")
+            .bind(ids[1])
+            .execute(&store.writer)
+            .await;
+        assert!(
+            unknown
+                .unwrap_err()
+                .to_string()
+                .contains("unknown error_kind")
+        );
         store.retry_fit("test", ids[1], None).await.unwrap();
         let again = store.fit_summary(ids[1]).await.unwrap();
         assert_eq!((again.error, again.error_kind), (None, None));
