@@ -46,14 +46,16 @@ fn summary_json(s: &proto::FitSummary) -> Value {
     norm(json!({
         "fit_id": s.fit_id, "revision": s.revision, "sweep_id": s.sweep_id,
         "part_number": s.part_number, "lot": s.lot, "status": state_name(s.state),
-        "progress": s.progress, "error": s.error, "created_at": s.created_at,
+        "progress": s.progress, "error": s.error, "error_kind": s.error_kind,
+        "created_at": s.created_at,
         "started_at": s.started_at, "finished_at": s.finished_at, "srf_hz": s.srf_hz,
         "verdict": s.verdict, "approval": s.approval, "quality": s.quality,
     }))
 }
 
-const SUMMARY_KEYS: [&str; 15] = [
+const SUMMARY_KEYS: [&str; 16] = [
     "quality",
+    "error_kind",
     "fit_id",
     "revision",
     "sweep_id",
@@ -1070,6 +1072,14 @@ async fn bad_arguments_are_invalid_argument_naming_the_field_and_store_nothing()
             },
             "cursor",
         ),
+        (
+            "error_kind=NotAnInductor",
+            proto::ListFitsRequest {
+                error_kind: Some("NotAnInductor".into()),
+                ..Default::default()
+            },
+            "error_kind",
+        ),
     ] {
         let s = assert_invalid(c.fits.list_fits(grpc_request(request, &t)).await, field);
         let r = app.get(&format!("/api/v1/fits?{query}"), &t).await;
@@ -1440,4 +1450,75 @@ async fn a_watch_ends_with_a_cancelled_fit_and_with_unavailable_when_the_service
         .await
         .expect("the service stops")
         .expect("the stop task");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_sweep_the_fit_refuses_fails_with_its_kind_over_both_transports() {
+    // Arrange: a 100 nF capacitor with 20 mΩ ESR, 1 kHz to 10 MHz (invented for this test): Im Z is
+    // negative from the first point, so the fit refuses it as not an inductor.
+    let app = spawn_app().await;
+    let mut c = clients(&app).await;
+    app.create_part("K-1", json!({})).await;
+    let mut csv = String::from("frequency_hz,z_real_ohm,z_imag_ohm,sigma_ohm\n");
+    for i in 0..101 {
+        let f = 1e3 * 1e4f64.powf(i as f64 / 100.0);
+        let x = -1.0 / (2.0 * std::f64::consts::PI * f * 100e-9);
+        csv.push_str(&format!("{f:e},0.02,{x:e},{:e}\n", 2e-3 * x.abs()));
+    }
+    let capacitor = upload_http(&app, "K-1", "1", csv.into_bytes()).await;
+    let good = upload_http(
+        &app,
+        "K-1",
+        "2",
+        synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 201),
+    )
+    .await;
+
+    // Act
+    let failed = app.wait_for_fit(capacitor, FIT_TIMEOUT).await;
+    let fitted = app.wait_for_fit(good, FIT_TIMEOUT).await;
+    let over_grpc = c
+        .fits
+        .get_fit_result(grpc_request(
+            proto::FitRef { fit_id: capacitor },
+            &app.reader,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+
+    // Assert: the kind next to the message, the same over gRPC, and only failures carry one.
+    assert_eq!(failed["status"], "failed", "{failed}");
+    assert_eq!(failed["error_kind"], "not_an_inductor", "{failed}");
+    assert!(
+        failed["error"].as_str().unwrap().contains("capacitive"),
+        "{failed}"
+    );
+    assert_result_equals_detail(&over_grpc, &failed);
+    assert_eq!(fitted["status"], "succeeded", "{fitted}");
+    assert_eq!(fitted["error_kind"], Value::Null, "{fitted}");
+    for (kind, expected) in [
+        ("not_an_inductor", vec![capacitor]),
+        ("too_few_points", vec![]),
+    ] {
+        let http = app
+            .get_json(&format!("/api/v1/fits?error_kind={kind}"), &app.reader)
+            .await;
+        let page = c
+            .fits
+            .list_fits(grpc_request(
+                proto::ListFitsRequest {
+                    error_kind: Some(kind.into()),
+                    ..Default::default()
+                },
+                &app.reader,
+            ))
+            .await
+            .unwrap()
+            .into_inner();
+        assert_eq!(fit_page_json(&page), http, "error_kind={kind}");
+        let ids: Vec<i64> = page.items.iter().map(|f| f.fit_id).collect();
+        assert_eq!(ids, expected, "error_kind={kind}");
+    }
+    app.stop().await;
 }

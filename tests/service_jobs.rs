@@ -196,6 +196,8 @@ async fn a_running_fit_can_be_cancelled_and_retried() {
     for id in &ids {
         let f = app.wait_for_fit(*id, Duration::from_secs(20)).await;
         assert_eq!(f["status"], "cancelled", "{f}");
+        // Cancelled by its worker (running) or by the store (queued): the same kind.
+        assert_eq!(f["error_kind"], "cancelled", "{f}");
     }
     let r = app
         .post_json(
@@ -394,12 +396,49 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
         let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
         assert_eq!(f["status"], "failed", "{f}");
         assert!(f["error"].as_str().unwrap().contains(named), "{f}");
+        assert_eq!(f["error_kind"], "invalid_options", "{f}");
     }
     // The worker is still there: a good upload afterwards is fitted.
     let r = upload_one(&app, "R-1", 50).await;
     let id = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
     let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
     assert_eq!(f["status"], "succeeded", "{f}");
+    app.stop().await;
+}
+
+/// The real engine, except that its reader refuses every file after the first one it reads: a stored
+/// sweep that the reader accepted at upload and no longer accepts when the fit runs (a later build
+/// stricter than the one that stored it).
+struct ReaderChangedAfterUpload {
+    reads: std::sync::atomic::AtomicUsize,
+}
+
+impl Engine for ReaderChangedAfterUpload {
+    fn read_sweep(&self, name: &str, bytes: &[u8], o: &ReadOptions) -> Result<Sweep, SweepError> {
+        if self.reads.fetch_add(1, Ordering::SeqCst) == 0 {
+            CoreEngine.read_sweep(name, bytes, o)
+        } else {
+            Err(SweepError::at(2, "this reader no longer accepts the row"))
+        }
+    }
+    fn fit(&self, s: &Sweep, o: &FitOptions, c: &FitControl) -> Result<FitReport, FitError> {
+        CoreEngine.fit(s, o, c)
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_stored_sweep_that_no_longer_reads_fails_as_unreadable_naming_the_line() {
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let settings = test_settings(dir.path().join("h.db"));
+    let engine = ReaderChangedAfterUpload {
+        reads: std::sync::atomic::AtomicUsize::new(0),
+    };
+    let app = spawn_app_with(dir, settings, Arc::new(engine), None).await;
+    let id = upload_n(&app, 1).await[0];
+    let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
+    assert_eq!(f["status"], "failed", "{f}");
+    assert_eq!(f["error_kind"], "unreadable_sweep", "{f}");
+    assert!(f["error"].as_str().unwrap().contains("line 2"), "{f}");
     app.stop().await;
 }
 

@@ -43,6 +43,7 @@ pub fn fit_summary(s: FitSummary) -> proto::FitSummary {
         state: fit_state(s.status) as i32,
         progress: s.progress,
         error: s.error,
+        error_kind: s.error_kind.map(|k| k.as_str().to_string()),
         created_at: s.created_at,
         started_at: s.started_at,
         finished_at: s.finished_at,

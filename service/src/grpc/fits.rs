@@ -60,6 +60,7 @@ impl FitRegistry for Fits {
         })?;
         let filter = fit_filter(FitListParams {
             status: convert::fit_status(state).map(|s| s.as_str().to_string()),
+            error_kind: r.error_kind,
             part_number: r.part_number,
             lot: r.lot,
             since: r.since,

@@ -6,7 +6,7 @@ use super::problem::{ApiResult, Kind, Problem, json_body};
 use super::sweeps::{checked_options, parse_options_value, safe_file_name};
 use crate::app::AppState;
 use crate::registry::figures::model_curve;
-use crate::registry::wire::{FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
+use crate::registry::wire::{FailureKind, FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
 use crate::store::fits::FitFilter;
 use crate::store::jobs::PartRef;
 use crate::store::parse_rfc3339;
@@ -25,6 +25,13 @@ pub struct FitListParams {
     /// queued, running, succeeded, failed or cancelled.
     #[param(pattern = r"^(queued|running|succeeded|failed|cancelled)?$")]
     pub status: Option<String>,
+    /// Only fits that ended with this failure kind: too_few_points, not_an_inductor,
+    /// invalid_options, non_finite, not_passive, cancelled, unreadable_sweep, attempts_exhausted or
+    /// internal.
+    #[param(
+        pattern = r"^(too_few_points|not_an_inductor|invalid_options|non_finite|not_passive|cancelled|unreadable_sweep|attempts_exhausted|internal)?$"
+    )]
+    pub error_kind: Option<String>,
     pub part_number: Option<String>,
     pub lot: Option<String>,
     /// RFC 3339: fits created at or after.
@@ -43,6 +50,16 @@ pub fn fit_filter(p: FitListParams) -> ApiResult<FitFilter> {
         Some(s) => Some(FitStatus::parse(s).ok_or_else(|| {
             Problem::validation(format!(
                 "status must be queued, running, succeeded, failed or cancelled, not {s:?}"
+            ))
+        })?),
+    };
+    let error_kind = match p.error_kind.as_deref() {
+        None | Some("") => None,
+        Some(k) => Some(FailureKind::parse(k).ok_or_else(|| {
+            let names: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
+            Problem::validation(format!(
+                "error_kind must be one of {}, not {k:?}",
+                names.join(", ")
             ))
         })?),
     };
@@ -65,6 +82,7 @@ pub fn fit_filter(p: FitListParams) -> ApiResult<FitFilter> {
     }
     Ok(FitFilter {
         status,
+        error_kind,
         part_number: p.part_number.filter(|s| !s.is_empty()),
         lot: p.lot.filter(|s| !s.is_empty()),
         since_ms,

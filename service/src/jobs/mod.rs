@@ -12,6 +12,7 @@ pub use engine::{CoreEngine, Engine};
 
 use crate::fit::{DcrReading, FitControl, FitError, FitOptions};
 use crate::registry::assessment;
+use crate::registry::wire::FailureKind;
 use crate::settings::Settings;
 use crate::store::jobs::{Claim, Renewal};
 use crate::store::{Store, sha256_hex};
@@ -232,8 +233,27 @@ struct RunningJob {
 enum Outcome {
     Report(Box<crate::fit::FitReport>),
     Fit(FitError),
+    /// The stored sweep cannot be read as [`job_sweep`] says (kind `unreadable_sweep`).
     Sweep(String),
     Panic,
+}
+
+/// The message stored with a fit that stopped on an internal error (the cause goes to the log).
+const INTERNAL_FAILURE: &str = "the fit stopped on an internal error";
+
+/// The failure kind stored with a fit the numeric core refused: the one place the core's errors map
+/// onto [`FailureKind`]. No wildcard arm, so a new `FitError` variant does not compile until it has
+/// a kind. (A sweep that does not read is `unreadable_sweep`, whatever the reader's message; the
+/// service's own failures, attempts exhausted and internal errors, are named where they happen.)
+pub fn failure_kind(error: &FitError) -> FailureKind {
+    match error {
+        FitError::TooFewPoints(_) => FailureKind::TooFewPoints,
+        FitError::NotAnInductor(_) => FailureKind::NotAnInductor,
+        FitError::InvalidOptions(_) => FailureKind::InvalidOptions,
+        FitError::Cancelled => FailureKind::Cancelled,
+        FitError::NonFinite(_) => FailureKind::NonFinite,
+        FitError::NotPassive(_) => FailureKind::NotPassive,
+    }
 }
 
 impl RunningJob {
@@ -365,25 +385,32 @@ impl RunningJob {
             Outcome::Fit(FitError::Cancelled) => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "cancelled").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, true, "cancelled on request")
+                    .complete_unsuccessful(
+                        &claim,
+                        true,
+                        FailureKind::Cancelled,
+                        "cancelled on request",
+                    )
                     .await
             }
             Outcome::Fit(e) => {
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, false, &e.to_string())
+                    .complete_unsuccessful(&claim, false, failure_kind(&e), &e.to_string())
                     .await
             }
             Outcome::Sweep(text) => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
-                self.store.complete_unsuccessful(&claim, false, &text).await
+                self.store
+                    .complete_unsuccessful(&claim, false, FailureKind::UnreadableSweep, &text)
+                    .await
             }
             Outcome::Panic => {
                 tracing::error!("the engine panicked");
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, false, "the fit stopped on an internal error")
+                    .complete_unsuccessful(&claim, false, FailureKind::Internal, INTERNAL_FAILURE)
                     .await
             }
         };
@@ -415,7 +442,7 @@ impl RunningJob {
             Err(e) => {
                 tracing::error!(error = %e, "the assessment of a succeeded fit panicked");
                 self.store
-                    .complete_unsuccessful(claim, false, "the fit stopped on an internal error")
+                    .complete_unsuccessful(claim, false, FailureKind::Internal, INTERNAL_FAILURE)
                     .await
             }
         }
@@ -516,5 +543,74 @@ fn run_engine(
     match engine.fit(&sweep, &options, control) {
         Ok(r) => Outcome::Report(Box::new(r)),
         Err(e) => Outcome::Fit(e),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn every_core_error_maps_to_its_own_failure_kind() {
+        let cases = [
+            (FitError::TooFewPoints(5), "too_few_points"),
+            (
+                FitError::NotAnInductor("capacitive".into()),
+                "not_an_inductor",
+            ),
+            (
+                FitError::InvalidOptions("max_sections".into()),
+                "invalid_options",
+            ),
+            (FitError::Cancelled, "cancelled"),
+            (FitError::NonFinite("NaN".into()), "non_finite"),
+            (FitError::NotPassive("bound".into()), "not_passive"),
+        ];
+        for (error, name) in &cases {
+            let kind = failure_kind(error);
+            assert_eq!(kind.as_str(), *name, "{error}");
+            assert_eq!(
+                serde_json::to_value(kind).unwrap(),
+                serde_json::json!(name),
+                "the JSON name is the stored name"
+            );
+        }
+        // The kind follows the variant, never the message.
+        assert_eq!(
+            failure_kind(&FitError::NotAnInductor("too few points".into())),
+            FailureKind::NotAnInductor
+        );
+    }
+
+    #[test]
+    fn failure_kind_names_are_distinct_and_read_back() {
+        let names: std::collections::HashSet<_> =
+            FailureKind::ALL.iter().map(|k| k.as_str()).collect();
+        assert_eq!(names.len(), FailureKind::ALL.len());
+        for kind in FailureKind::ALL {
+            assert_eq!(FailureKind::parse(kind.as_str()), Some(kind));
+        }
+        assert_eq!(FailureKind::parse("Not_An_Inductor"), None);
+        assert_eq!(FailureKind::parse(""), None);
+    }
+
+    #[test]
+    fn the_migration_allows_exactly_the_failure_kinds() {
+        let sql = include_str!("../../../migrations/0010_fit_error_kind.sql");
+        let kinds: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
+        let lists: Vec<Vec<&str>> = sql
+            .split("NEW.error_kind NOT IN (")
+            .skip(1)
+            .map(|rest| {
+                let list = rest.split_once(')').expect("the list is closed").0;
+                list.split(',')
+                    .map(|n| n.trim().trim_matches('\''))
+                    .collect()
+            })
+            .collect();
+        assert_eq!(lists.len(), 2, "one list for inserts, one for updates");
+        for list in lists {
+            assert_eq!(list, kinds);
+        }
     }
 }

@@ -39,6 +39,65 @@ impl FitStatus {
     }
 }
 
+/// Why a fit ended without a model: a closed set of stable names, stored with the fit
+/// (`fits.error_kind`, migration 0010) next to its message. The service maps the numeric core's errors
+/// onto these in one place, `jobs::failure_kind`; the message says the details.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, utoipa::ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum FailureKind {
+    /// The sweep has fewer points than a fit needs.
+    TooFewPoints,
+    /// The sweep is not inductive at the bottom of its band (a capacitor, or a sweep that starts
+    /// above the self-resonance).
+    NotAnInductor,
+    /// An option (or a per-point uncertainty) the fit cannot work with.
+    InvalidOptions,
+    /// The fit produced no finite model.
+    NonFinite,
+    /// No passive rational model within the error bound.
+    NotPassive,
+    /// Cancelled on request.
+    Cancelled,
+    /// The stored sweep (or one of its fixture files) no longer reads.
+    UnreadableSweep,
+    /// Started as many times as the service allows and never finished (the worker stopped each time).
+    AttemptsExhausted,
+    /// The fit stopped on an internal error of the service.
+    Internal,
+}
+
+impl FailureKind {
+    pub const ALL: [FailureKind; 9] = [
+        FailureKind::TooFewPoints,
+        FailureKind::NotAnInductor,
+        FailureKind::InvalidOptions,
+        FailureKind::NonFinite,
+        FailureKind::NotPassive,
+        FailureKind::Cancelled,
+        FailureKind::UnreadableSweep,
+        FailureKind::AttemptsExhausted,
+        FailureKind::Internal,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FailureKind::TooFewPoints => "too_few_points",
+            FailureKind::NotAnInductor => "not_an_inductor",
+            FailureKind::InvalidOptions => "invalid_options",
+            FailureKind::NonFinite => "non_finite",
+            FailureKind::NotPassive => "not_passive",
+            FailureKind::Cancelled => "cancelled",
+            FailureKind::UnreadableSweep => "unreadable_sweep",
+            FailureKind::AttemptsExhausted => "attempts_exhausted",
+            FailureKind::Internal => "internal",
+        }
+    }
+
+    pub fn parse(text: &str) -> Option<FailureKind> {
+        FailureKind::ALL.into_iter().find(|k| k.as_str() == text)
+    }
+}
+
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, utoipa::ToSchema)]
 pub struct FitSummary {
     pub fit_id: i64,
@@ -51,6 +110,9 @@ pub struct FitSummary {
     /// 0..1.
     pub progress: f64,
     pub error: Option<String>,
+    /// Why a failed or cancelled fit has no model, as a stable name (see `FailureKind`); null for
+    /// other fits and for failures stored before kinds were.
+    pub error_kind: Option<FailureKind>,
     pub created_at: String,
     pub started_at: Option<String>,
     pub finished_at: Option<String>,

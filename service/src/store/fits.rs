@@ -3,12 +3,12 @@
 use super::{Store, StoreError, StoreResult, audit, now_ms, rfc3339};
 use crate::fit::FitReport;
 use crate::registry::drift;
-use crate::registry::wire::{FitDetail, FitPage, FitStatus, FitSummary, QueueCounts};
+use crate::registry::wire::{FailureKind, FitDetail, FitPage, FitStatus, FitSummary, QueueCounts};
 use sqlx::sqlite::SqliteRow;
 use sqlx::{QueryBuilder, Row, Sqlite, SqliteConnection};
 
 const SUMMARY_SELECT: &str = "SELECT f.fit_id, f.revision, f.sweep_id, p.part_number, l.lot, \
-    f.status, f.progress, f.error, f.created_at_ms, f.started_at_ms, f.finished_at_ms, f.srf_hz, \
+    f.status, f.progress, f.error, f.error_kind, f.created_at_ms, f.started_at_ms, f.finished_at_ms, f.srf_hz, \
     CASE WHEN f.quality = 'poor' AND f.verdict_json IS NOT NULL AND f.verdict_json <> '[]' \
     THEN 'withheld' ELSE f.verdict END AS verdict, f.quality, f.approval FROM fits f JOIN parts p ON p.part_id = f.part_id \
     JOIN lots l ON l.lot_id = f.lot_id";
@@ -27,6 +27,15 @@ fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
         })?,
         progress: row.try_get("progress")?,
         error: row.try_get("error")?,
+        error_kind: match row.try_get::<Option<String>, _>("error_kind")? {
+            None => None,
+            Some(k) => Some(
+                FailureKind::parse(&k).ok_or_else(|| sqlx::Error::ColumnDecode {
+                    index: "error_kind".into(),
+                    source: format!("unknown failure kind {k}").into(),
+                })?,
+            ),
+        },
         created_at: rfc3339(row.try_get("created_at_ms")?),
         started_at: row.try_get::<Option<i64>, _>("started_at_ms")?.map(rfc3339),
         finished_at: row
@@ -43,6 +52,7 @@ fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
 #[derive(Debug, Clone, Default)]
 pub struct FitFilter {
     pub status: Option<FitStatus>,
+    pub error_kind: Option<FailureKind>,
     pub part_number: Option<String>,
     pub lot: Option<String>,
     pub since_ms: Option<i64>,
@@ -159,6 +169,9 @@ impl Store {
         if let Some(s) = filter.status {
             q.push(" AND f.status = ").push_bind(s.as_str());
         }
+        if let Some(k) = filter.error_kind {
+            q.push(" AND f.error_kind = ").push_bind(k.as_str());
+        }
         if let Some(p) = &filter.part_number {
             q.push(" AND p.part_number = ").push_bind(p.clone());
         }
@@ -228,7 +241,8 @@ impl Store {
         let running = match status.as_str() {
             "queued" => {
                 sqlx::query(
-                    "UPDATE fits SET status = 'cancelled', finished_at_ms = ? WHERE fit_id = ?",
+                    "UPDATE fits SET status = 'cancelled', error_kind = 'cancelled', finished_at_ms = ? \
+                     WHERE fit_id = ?",
                 )
                 .bind(now_ms())
                 .bind(fit_id)
@@ -287,8 +301,8 @@ impl Store {
             super::sweeps::check_queue_bounds(&mut tx, b, part_id).await?;
         }
         sqlx::query(
-            "UPDATE fits SET status = 'queued', progress = 0, error = NULL, started_at_ms = NULL, \
-             finished_at_ms = NULL WHERE fit_id = ?",
+            "UPDATE fits SET status = 'queued', progress = 0, error = NULL, error_kind = NULL, \
+             started_at_ms = NULL, finished_at_ms = NULL WHERE fit_id = ?",
         )
         .bind(fit_id)
         .execute(&mut *tx)

@@ -6,6 +6,7 @@
 use super::{Store, StoreResult, audit, now_ms};
 use crate::fit::FitReport;
 use crate::registry::assessment::{Assessment, Basis, judge};
+use crate::registry::wire::FailureKind;
 use rand::RngCore;
 use sqlx::{Row, SqliteConnection};
 use std::time::Duration;
@@ -170,11 +171,12 @@ impl Store {
             .await
     }
 
-    /// Writes a failed or cancelled outcome, if the claim still holds.
+    /// Writes a failed or cancelled outcome with its kind, if the claim still holds.
     pub async fn complete_unsuccessful(
         &self,
         claim: &Claim,
         cancelled: bool,
+        kind: FailureKind,
         error: &str,
     ) -> StoreResult<bool> {
         let (claim, error) = (claim.clone(), error.to_string());
@@ -185,7 +187,7 @@ impl Store {
                         return Ok(false);
                     }
                     let status = if cancelled { "cancelled" } else { "failed" };
-                    settle(conn, claim.fit_id, status, Some(&error), now_ms()).await?;
+                    settle(conn, claim.fit_id, status, kind, Some(&error), now_ms()).await?;
                     Ok(true)
                 })
             })
@@ -234,7 +236,7 @@ async fn claim_in(
     .fetch_all(&mut *conn)
     .await?;
     for fit_id in cancelled {
-        settle(conn, fit_id, "cancelled", None, now).await?;
+        settle(conn, fit_id, "cancelled", FailureKind::Cancelled, None, now).await?;
     }
     let exhausted: Vec<(i64, i64)> = sqlx::query_as(
         "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
@@ -250,7 +252,15 @@ async fn claim_in(
             "the fit was started {attempts} times and never finished (the worker stopped each time); \
              retry it to run it again"
         );
-        settle(conn, fit_id, "failed", Some(&error), now).await?;
+        settle(
+            conn,
+            fit_id,
+            "failed",
+            FailureKind::AttemptsExhausted,
+            Some(&error),
+            now,
+        )
+        .await?;
     }
     let mut claims = Vec::new();
     while claims.len() < n {
@@ -305,7 +315,8 @@ async fn complete_succeeded_in(
     };
     let figures = &assessment.figures;
     sqlx::query(
-        "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, engine_version = ?, \
+        "UPDATE fits SET status = 'succeeded', progress = 1, error = NULL, error_kind = NULL, \
+         engine_version = ?, \
          report_json = ?, finished_at_ms = ?, srf_hz = ?, srf_above_hz = ?, l0_h = ?, \
          rdc_ohm = ?, band_min_hz = ?, band_max_hz = ?, verdict = ?, verdict_json = ?, \
          drift_json = ?, drift_max_sigma = ?, quality = ?, core_corner_hz = ? WHERE fit_id = ?",
@@ -421,19 +432,22 @@ async fn release_claim(tx: &mut SqliteConnection, claim: &Claim) -> StoreResult<
         == 1)
 }
 
-/// Final status of a fit without a result, with its audit entry.
+/// Final status of a fit without a result, with its failure kind and its audit entry.
 async fn settle(
     tx: &mut SqliteConnection,
     fit_id: i64,
     status: &str,
+    kind: FailureKind,
     error: Option<&str>,
     now: i64,
 ) -> StoreResult<()> {
     let part_id: i64 = sqlx::query_scalar(
-        "UPDATE fits SET status = ?, error = ?, finished_at_ms = ? WHERE fit_id = ? RETURNING part_id",
+        "UPDATE fits SET status = ?, error = ?, error_kind = ?, finished_at_ms = ? WHERE fit_id = ? \
+         RETURNING part_id",
     )
     .bind(status)
     .bind(error)
+    .bind(kind.as_str())
     .bind(now)
     .bind(fit_id)
     .fetch_one(&mut *tx)
@@ -792,7 +806,7 @@ mod tests {
         );
         assert!(
             store
-                .complete_unsuccessful(&failed, false, "bad file")
+                .complete_unsuccessful(&failed, false, FailureKind::UnreadableSweep, "bad file")
                 .await
                 .unwrap()
         );
@@ -803,6 +817,31 @@ mod tests {
             (0, 0, 1, 1, 1)
         );
         assert_counts_match(&store).await;
+        let mut kinds = Vec::new();
+        for id in &ids {
+            kinds.push(store.fit_summary(*id).await.unwrap().error_kind);
+        }
+        assert_eq!(
+            kinds,
+            [
+                None,
+                Some(FailureKind::UnreadableSweep),
+                Some(FailureKind::Cancelled)
+            ]
+        );
+        let unknown = sqlx::query("UPDATE fits SET error_kind = 'gremlins' WHERE fit_id = ?")
+            .bind(ids[1])
+            .execute(&store.writer)
+            .await;
+        assert!(
+            unknown
+                .unwrap_err()
+                .to_string()
+                .contains("unknown error_kind")
+        );
+        store.retry_fit("test", ids[1], None).await.unwrap();
+        let again = store.fit_summary(ids[1]).await.unwrap();
+        assert_eq!((again.error, again.error_kind), (None, None));
     }
 
     #[tokio::test]
@@ -822,6 +861,7 @@ mod tests {
         let s = store.fit_summary(a).await.unwrap();
         assert_eq!(s.status.as_str(), "failed");
         assert!(s.error.unwrap().contains("started 2 times"));
+        assert_eq!(s.error_kind, Some(FailureKind::AttemptsExhausted));
     }
 }
 
