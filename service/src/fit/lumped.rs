@@ -871,7 +871,8 @@ pub fn same_cost(a: f64, b: f64, floor: f64) -> bool {
 /// The whole lumped fit of one sweep.
 ///
 /// 1. The base structure with every element (l0, rdc, cp, rp, k_ac, ls) is fitted from each of
-///    [`initial::starts`]: the curve's reading, the rational fit's, and scaled variants; the best is kept.
+///    [`initial::starts`]: the curve's reading, the rational fit's, and scaled variants; the best is kept
+///    (the rest are skipped once two agree on an optimum within the noise, see `Runner::best_of`).
 /// 2. Sections (stage A): every assignment of kinds to the first 1..=`max_sections` resonance pairs the
 ///    curve shows, each started from the fit with one section fewer, once with the new section placed on
 ///    the curve's pair and once with it negligible ([`embed`]); the better is kept.
