@@ -118,10 +118,11 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
         files.len()
     );
     // Every poor fit still owes the user the inductance the data show at the bottom of the band. Not
-    // yet met on all 13 (the measured count is 9; density weights that count a linear sweep's sparse
-    // low points as a log sweep would raised it from 5): this holds the line until it is.
+    // yet met on all 13 (the measured count is 10; density weights that count a linear sweep's sparse
+    // low points as a log sweep would raised it from 5, fitting the core laws also on the structure
+    // with every series element to 10): this holds the line until it is.
     assert!(
-        l_within_5_percent >= 9,
+        l_within_5_percent >= 10,
         "L at the lowest sure points within 5 % on only {l_within_5_percent} of {}",
         files.len()
     );
