@@ -1522,3 +1522,69 @@ async fn a_sweep_the_fit_refuses_fails_with_its_kind_over_both_transports() {
     }
     app.stop().await;
 }
+
+// ---- the layers ----
+
+/// The Rust files under `dir`, recursively.
+fn rust_files(dir: &std::path::Path) -> Vec<std::path::PathBuf> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir).expect("a source directory") {
+        let path = entry.expect("a directory entry").path();
+        if path.is_dir() {
+            out.extend(rust_files(&path));
+        } else if path.extension().is_some_and(|e| e == "rs") {
+            out.push(path);
+        }
+    }
+    out
+}
+
+#[test]
+fn the_transports_never_import_each_other_and_nothing_else_imports_them() {
+    // Both transports call `ops`; neither may reach into the other, and no module besides the one
+    // that assembles the server (app.rs) may reach into either. Comments are left out (doc links
+    // may name a transport).
+    let src = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../service/src");
+    let path_to = |transport: &str| {
+        [
+            format!("crate::{transport}"),
+            format!("super::super::{transport}"),
+            format!("henrybook::{transport}"),
+        ]
+    };
+    let mut offences = Vec::new();
+    let files = rust_files(&src);
+    assert!(files.len() > 40, "the service's sources are found");
+    for file in files {
+        let relative = file
+            .strip_prefix(&src)
+            .unwrap()
+            .to_string_lossy()
+            .to_string();
+        let forbidden: Vec<String> = if relative.starts_with("http/") {
+            path_to("grpc").to_vec()
+        } else if relative.starts_with("grpc/") {
+            path_to("http").to_vec()
+        } else if relative == "app.rs" || relative == "lib.rs" {
+            Vec::new()
+        } else {
+            [path_to("http"), path_to("grpc")].concat()
+        };
+        let text = std::fs::read_to_string(&file).unwrap();
+        for (n, line) in text.lines().enumerate() {
+            if line.trim_start().starts_with("//") {
+                continue;
+            }
+            for f in &forbidden {
+                if line.contains(f.as_str()) {
+                    offences.push(format!("{relative}:{}: {}", n + 1, line.trim()));
+                }
+            }
+        }
+    }
+    assert!(
+        offences.is_empty(),
+        "imports across the layers:\n{}",
+        offences.join("\n")
+    );
+}

@@ -1,13 +1,14 @@
 //! `FitRegistry`: fit status (one, a filtered page, counts, a watch stream), results, text exports
-//! and uploads, each with the role of its HTTP twin.
+//! and uploads, each with the role of its HTTP twin and through the same operation of [`crate::ops`].
 
 use super::proto::fit_registry_server::FitRegistry;
 use super::proto::{self, CountFitsRequest, ExportFitRequest, FitRef, ListFitsRequest};
-use super::{caller, convert, fit_id, status, store_status};
+use super::{caller, convert, fit_id, status};
 use crate::app::AppState;
-use crate::http::fits::{FitListParams, TextExport, export_text, fit_filter};
-use crate::http::problem::Problem;
-use crate::http::sweeps::{UploadInput, accept_upload};
+use crate::ops::exports::TextExport;
+use crate::ops::fits::FitListQuery;
+use crate::ops::sweeps::UploadInput;
+use crate::ops::{self, OpsError};
 use crate::registry::wire::FitStatus;
 use crate::store::sweeps::NamedFile;
 use crate::store::tokens::Role;
@@ -40,12 +41,7 @@ impl FitRegistry for Fits {
     ) -> Result<Response<proto::FitSummary>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
         let id = fit_id(request.into_inner().fit_id)?;
-        let s = self
-            .state
-            .store
-            .fit_summary(id)
-            .await
-            .map_err(store_status)?;
+        let s = ops::fits::summary(&self.state, id).await.map_err(status)?;
         Ok(Response::new(convert::fit_summary(s)))
     }
 
@@ -58,7 +54,7 @@ impl FitRegistry for Fits {
         let state = proto::FitState::try_from(r.state).map_err(|_| {
             Status::invalid_argument(format!("state {} is not a FitState", r.state))
         })?;
-        let filter = fit_filter(FitListParams {
+        let query = FitListQuery {
             status: convert::fit_status(state).map(|s| s.as_str().to_string()),
             error_kind: r.error_kind,
             part_number: r.part_number,
@@ -66,14 +62,8 @@ impl FitRegistry for Fits {
             since: r.since,
             limit: r.limit,
             cursor: r.cursor,
-        })
-        .map_err(status)?;
-        let page = self
-            .state
-            .store
-            .list_fits(&filter)
-            .await
-            .map_err(store_status)?;
+        };
+        let page = ops::fits::list(&self.state, query).await.map_err(status)?;
         Ok(Response::new(convert::fit_page(page)))
     }
 
@@ -82,12 +72,7 @@ impl FitRegistry for Fits {
         request: Request<CountFitsRequest>,
     ) -> Result<Response<proto::FitCounts>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
-        let c = self
-            .state
-            .store
-            .queue_counts()
-            .await
-            .map_err(store_status)?;
+        let c = ops::fits::counts(&self.state).await.map_err(status)?;
         Ok(Response::new(convert::fit_counts(c)))
     }
 
@@ -100,14 +85,9 @@ impl FitRegistry for Fits {
         caller(&self.state, &request, Role::Reader).await?;
         let id = fit_id(request.into_inner().fit_id)?;
         // An unknown fit is NOT_FOUND before any stream starts.
-        let first = self
-            .state
-            .store
-            .fit_summary(id)
-            .await
-            .map_err(store_status)?;
+        let first = ops::fits::summary(&self.state, id).await.map_err(status)?;
         let (tx, rx) = mpsc::channel(4);
-        let store = self.state.store.clone();
+        let state = self.state.clone();
         let mut stop = self.stop.clone();
         tokio::spawn(async move {
             let mut last = first;
@@ -130,7 +110,7 @@ impl FitRegistry for Fits {
                     _ = tx.closed() => return,
                     _ = tokio::time::sleep(WATCH_POLL) => {}
                 }
-                match store.fit_summary(id).await {
+                match ops::fits::summary(&state, id).await {
                     Ok(now) if now == last => {}
                     Ok(now) => {
                         let done = terminal(now.status);
@@ -145,7 +125,7 @@ impl FitRegistry for Fits {
                         last = now;
                     }
                     Err(e) => {
-                        let _ = tx.send(Err(store_status(e))).await;
+                        let _ = tx.send(Err(status(e))).await;
                         return;
                     }
                 }
@@ -160,21 +140,8 @@ impl FitRegistry for Fits {
     ) -> Result<Response<proto::FitResult>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
         let id = fit_id(request.into_inner().fit_id)?;
-        let detail = self
-            .state
-            .store
-            .fit_detail(id)
-            .await
-            .map_err(store_status)?;
-        let report = detail
-            .report
-            .clone()
-            .map(serde_json::from_value)
-            .transpose()
-            .map_err(|e| status(Problem::internal(format!("fit {id}: stored report: {e}"))))?;
-        let result = convert::fit_result(detail, report)
-            .map_err(|e| status(Problem::internal(format!("fit {id}: {e}"))))?;
-        Ok(Response::new(result))
+        let detail = ops::fits::detail(&self.state, id).await.map_err(status)?;
+        Ok(Response::new(fit_result(detail)?))
     }
 
     async fn export_fit(
@@ -193,7 +160,9 @@ impl FitRegistry for Fits {
                 ));
             }
         };
-        let (file_name, text) = export_text(&self.state, id, export).await.map_err(status)?;
+        let (file_name, text) = ops::exports::export_text(&self.state, id, export)
+            .await
+            .map_err(status)?;
         Ok(Response::new(proto::ExportedText { file_name, text }))
     }
 
@@ -204,10 +173,11 @@ impl FitRegistry for Fits {
         let who = caller(&self.state, &request, Role::Inspector).await?;
         let r = request.into_inner();
         // The message is in memory already; its bytes still count against those in flight.
+        let size = r.file.len();
         let _bytes = self
             .state
             .backpressure
-            .reserve_upload_bytes(r.file.len() as u64)
+            .reserve_upload_bytes(size as u64)
             .map_err(status)?;
         let input = UploadInput {
             file: Some(NamedFile {
@@ -225,7 +195,7 @@ impl FitRegistry for Fits {
             // Fixture compensation is not offered over gRPC yet: upload it through HTTP.
             ..UploadInput::default()
         };
-        let accepted = accept_upload(&self.state, &who.label, input)
+        let accepted = ops::sweeps::upload(&self.state, &who.label, input)
             .await
             .map_err(status)?;
         Ok(Response::new(proto::UploadAccepted {
@@ -234,4 +204,17 @@ impl FitRegistry for Fits {
             duplicate: accepted.duplicate,
         }))
     }
+}
+
+/// A fit's detail with its stored report as one message.
+fn fit_result(detail: crate::registry::wire::FitDetail) -> Result<proto::FitResult, Status> {
+    let id = detail.summary.fit_id;
+    let report = detail
+        .report
+        .clone()
+        .map(serde_json::from_value)
+        .transpose()
+        .map_err(|e| status(OpsError::internal(format!("fit {id}: stored report: {e}"))))?;
+    convert::fit_result(detail, report)
+        .map_err(|e| status(OpsError::internal(format!("fit {id}: {e}"))))
 }
