@@ -1,5 +1,6 @@
-//! `FitRegistry`: fit status (one, a filtered page, counts, a watch stream), results, text exports
-//! and uploads, each with the role of its HTTP twin and through the same operation of [`crate::ops`].
+//! `FitRegistry`: fit status (one, a filtered page, counts, a watch stream), results, curves, exports,
+//! reports, uploads and the stored file, and the decisions on a fit (cancel, retry, refit, approve,
+//! reject), each with the role of its HTTP twin and through the same operation of [`crate::ops`].
 
 use super::proto::fit_registry_server::FitRegistry;
 use super::proto::{self, CountFitsRequest, ExportFitRequest, FitRef, ListFitsRequest};
@@ -154,9 +155,19 @@ impl FitRegistry for Fits {
         let export = match proto::ExportFormat::try_from(r.format) {
             Ok(proto::ExportFormat::SpiceSubcircuit) => TextExport::Subcircuit,
             Ok(proto::ExportFormat::Touchstone1port) => TextExport::Touchstone,
+            Ok(proto::ExportFormat::ModelJson) => {
+                let (file_name, body) = ops::exports::model_json(&self.state, id)
+                    .await
+                    .map_err(status)?;
+                let text = serde_json::to_string(&body).map_err(|e| {
+                    status(OpsError::internal(format!("fit {id}: model JSON: {e}")))
+                })?;
+                return Ok(Response::new(proto::ExportedText { file_name, text }));
+            }
             _ => {
                 return Err(Status::invalid_argument(
-                    "format must be EXPORT_FORMAT_SPICE_SUBCIRCUIT or EXPORT_FORMAT_TOUCHSTONE_1PORT",
+                    "format must be EXPORT_FORMAT_SPICE_SUBCIRCUIT, EXPORT_FORMAT_TOUCHSTONE_1PORT \
+                     or EXPORT_FORMAT_MODEL_JSON",
                 ));
             }
         };
@@ -173,17 +184,26 @@ impl FitRegistry for Fits {
         let who = caller(&self.state, &request, Role::Inspector).await?;
         let r = request.into_inner();
         // The message is in memory already; its bytes still count against those in flight.
-        let size = r.file.len();
+        let size = r.file.len()
+            + r.fixture_open.as_ref().map_or(0, |f| f.content.len())
+            + r.fixture_short.as_ref().map_or(0, |f| f.content.len());
         let _bytes = self
             .state
             .backpressure
             .reserve_upload_bytes(size as u64)
             .map_err(status)?;
+        let named = |f: proto::NamedFile| NamedFile {
+            name: f.file_name,
+            bytes: f.content,
+        };
         let input = UploadInput {
             file: Some(NamedFile {
                 name: r.file_name,
                 bytes: r.file,
             }),
+            fixture_open: r.fixture_open.map(named),
+            fixture_short: r.fixture_short.map(named),
+            fixture_topology: r.fixture_topology.unwrap_or_default(),
             part_number: r.part_number,
             lot: r.lot,
             method: r.method.unwrap_or_default(),
@@ -192,8 +212,6 @@ impl FitRegistry for Fits {
             temperature_c: r.temperature_c,
             operator: r.operator.unwrap_or_default(),
             options: r.options_json.unwrap_or_default(),
-            // Fixture compensation is not offered over gRPC yet: upload it through HTTP.
-            ..UploadInput::default()
         };
         let accepted = ops::sweeps::upload(&self.state, &who.label, input)
             .await
@@ -203,6 +221,143 @@ impl FitRegistry for Fits {
             sweep_id: accepted.sweep_id,
             duplicate: accepted.duplicate,
         }))
+    }
+
+    async fn cancel_fit(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<proto::FitSummary>, Status> {
+        let who = caller(&self.state, &request, Role::Inspector).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        let s = ops::fits::cancel(&self.state, &who.label, id)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(convert::fit_summary(s)))
+    }
+
+    async fn retry_fit(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<proto::FitSummary>, Status> {
+        let who = caller(&self.state, &request, Role::Inspector).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        let s = ops::fits::retry(&self.state, &who.label, id)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(convert::fit_summary(s)))
+    }
+
+    async fn refit_fit(
+        &self,
+        request: Request<proto::RefitFitRequest>,
+    ) -> Result<Response<proto::RefitAccepted>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let id = fit_id(r.fit_id)?;
+        let options = match r.options_json.as_deref().map(str::trim) {
+            None | Some("") => serde_json::Value::Null,
+            Some(text) => serde_json::from_str(text)
+                .map_err(|e| status(OpsError::validation(format!("options is not JSON: {e}"))))?,
+        };
+        let new_id = ops::fits::refit(&self.state, &who.label, id, options)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(proto::RefitAccepted { fit_id: new_id }))
+    }
+
+    async fn approve_fit(
+        &self,
+        request: Request<proto::ApproveFitRequest>,
+    ) -> Result<Response<proto::FitResult>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let id = fit_id(r.fit_id)?;
+        let detail = ops::fits::approve(
+            &self.state,
+            &who.label,
+            id,
+            r.reason.as_deref(),
+            r.overriding,
+        )
+        .await
+        .map_err(status)?;
+        Ok(Response::new(fit_result(detail)?))
+    }
+
+    async fn reject_fit(
+        &self,
+        request: Request<proto::RejectFitRequest>,
+    ) -> Result<Response<proto::FitResult>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let id = fit_id(r.fit_id)?;
+        let detail = ops::fits::reject(&self.state, &who.label, id, &r.reason)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(fit_result(detail)?))
+    }
+
+    async fn get_fit_curves(
+        &self,
+        request: Request<FitRef>,
+    ) -> Result<Response<proto::FitCurves>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let id = fit_id(request.into_inner().fit_id)?;
+        let curves = ops::fits::curves(&self.state, id).await.map_err(status)?;
+        Ok(Response::new(convert::fit_curves(curves)))
+    }
+
+    async fn get_sweep_file(
+        &self,
+        request: Request<proto::SweepRef>,
+    ) -> Result<Response<proto::SweepFile>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let id = request.into_inner().sweep_id;
+        if id <= 0 {
+            return Err(Status::invalid_argument(format!(
+                "sweep_id must be a sweep's id (a positive number), not {id}"
+            )));
+        }
+        let f = ops::sweeps::sweep_file(&self.state, id)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(proto::SweepFile {
+            file_name: f.name,
+            content: f.bytes,
+        }))
+    }
+
+    async fn get_fit_report(
+        &self,
+        request: Request<proto::FitReportRequest>,
+    ) -> Result<Response<proto::FitReportDocument>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let r = request.into_inner();
+        let id = fit_id(r.fit_id)?;
+        let document = match proto::ReportFormat::try_from(r.format) {
+            Ok(proto::ReportFormat::Html) => proto::FitReportDocument {
+                content_type: "text/html; charset=utf-8".into(),
+                file_name: None,
+                content: ops::report::html(&self.state, id)
+                    .await
+                    .map_err(status)?
+                    .into_bytes(),
+            },
+            Ok(proto::ReportFormat::Pdf) => {
+                let (name, bytes) = ops::report::pdf(&self.state, id).await.map_err(status)?;
+                proto::FitReportDocument {
+                    content_type: "application/pdf".into(),
+                    file_name: Some(name),
+                    content: bytes,
+                }
+            }
+            _ => {
+                return Err(Status::invalid_argument(
+                    "format must be REPORT_FORMAT_HTML or REPORT_FORMAT_PDF",
+                ));
+            }
+        };
+        Ok(Response::new(document))
     }
 }
 

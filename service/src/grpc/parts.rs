@@ -1,5 +1,5 @@
-//! `PartRegistry`: behavioural part queries and one part's record (reader, as over HTTP), through the
-//! same operations of [`crate::ops`].
+//! `PartRegistry`: behavioural part queries, one part's record and its trend (reader), creating a part
+//! and setting its limits (engineer), as over HTTP and through the same operations of [`crate::ops`].
 
 use super::proto::part_registry_server::PartRegistry;
 use super::proto::{self, GetPartRequest, QueryPartsRequest};
@@ -65,5 +65,48 @@ impl PartRegistry for Parts {
         let pn = part_number(request.into_inner().part_number)?;
         let part = ops::parts::get(&self.state, &pn).await.map_err(status)?;
         Ok(Response::new(convert::part(part)))
+    }
+
+    async fn create_part(
+        &self,
+        request: Request<proto::CreatePartRequest>,
+    ) -> Result<Response<proto::Part>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let limits = convert::limits_from(r.limits);
+        let part = ops::parts::create(
+            &self.state,
+            &who.label,
+            &r.part_number,
+            &r.description,
+            &limits,
+        )
+        .await
+        .map_err(status)?;
+        Ok(Response::new(convert::part(part)))
+    }
+
+    async fn set_limits(
+        &self,
+        request: Request<proto::SetLimitsRequest>,
+    ) -> Result<Response<proto::Part>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let pn = part_number(r.part_number)?;
+        let limits = convert::limits_from(r.limits);
+        let part = ops::parts::set_limits(&self.state, &who.label, &pn, &limits)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(convert::part(part)))
+    }
+
+    async fn get_part_trend(
+        &self,
+        request: Request<GetPartRequest>,
+    ) -> Result<Response<proto::PartTrend>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let pn = part_number(request.into_inner().part_number)?;
+        let trend = ops::parts::trend(&self.state, &pn).await.map_err(status)?;
+        Ok(Response::new(convert::part_trend(trend)))
     }
 }
