@@ -2276,3 +2276,81 @@ async fn every_operation_http_offers_answers_the_same_over_grpc() {
     );
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_fit_cancelled_and_retried_over_grpc_ends_as_over_http() {
+    // Arrange: fits held back for a while, so each is still queued or running when cancelled.
+    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
+    let settings = test_settings(dir.path().join("henrybook.db"));
+    let engine = Arc::new(SlowEngine {
+        delay: Duration::from_secs(4),
+    });
+    let app = spawn_app_with(dir, settings, engine, None).await;
+    let mut c = clients(&app).await;
+    app.create_part("C-1", json!({})).await;
+    let model = simple_model(1e-5, 0.05, 5e-12);
+    let over_grpc = upload_http(&app, "C-1", "1", synthetic_csv(&model, 1e4, 1e8, 201)).await;
+    let over_http = upload_http(&app, "C-1", "2", synthetic_csv(&model, 1e4, 1e8, 203)).await;
+
+    // Act: cancel one over each transport; each answer is the fit's status then.
+    let f = proto::FitRef { fit_id: over_grpc };
+    let answer = c
+        .fits
+        .cancel_fit(grpc_request(f, &app.inspector))
+        .await
+        .expect("a queued or running fit can be cancelled")
+        .into_inner();
+    assert_eq!(answer.fit_id, over_grpc);
+    assert!(
+        ["cancelled", "running"].contains(&state_name(answer.state)),
+        "{answer:?}"
+    );
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{over_http}/cancel"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+
+    // Assert: both end cancelled with the same kind. (The message tells a queued fit cancelled at once
+    // from a running one stopped by its worker, whichever transport asked, so it is not compared.)
+    let a = app.wait_for_fit(over_grpc, FIT_TIMEOUT).await;
+    let b = app.wait_for_fit(over_http, FIT_TIMEOUT).await;
+    for key in ["status", "error_kind"] {
+        assert_eq!(a[key], b[key], "{key}: {a} vs {b}");
+    }
+    assert_eq!(a["status"], "cancelled");
+
+    // Retried over each transport: both are queued again (or already running).
+    let answer = c
+        .fits
+        .retry_fit(grpc_request(f, &app.inspector))
+        .await
+        .expect("a cancelled fit can be retried")
+        .into_inner();
+    assert!(
+        ["queued", "running"].contains(&state_name(answer.state)),
+        "{answer:?}"
+    );
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{over_http}/retry"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let http: Value = r.json().await.unwrap();
+    assert!(
+        ["queued", "running"].contains(&http["status"].as_str().unwrap()),
+        "{http}"
+    );
+    // And they are fitted this time.
+    for id in [over_grpc, over_http] {
+        let done = app.wait_for_fit(id, FIT_TIMEOUT).await;
+        assert_eq!(done["status"], "succeeded", "{done}");
+    }
+    app.stop().await;
+}
