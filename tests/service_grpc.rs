@@ -786,9 +786,11 @@ async fn every_grpc_answer_equals_the_http_answer_to_the_same_question() {
 async fn call_every_method(
     c: &mut Clients,
     authorization: Option<&str>,
-    fit_id: i64,
+    fits: [i64; 2],
+    sweep_id: i64,
     csv: &[u8],
 ) -> Vec<(&'static str, Code)> {
+    let [fit_id, other_fit_id] = fits;
     fn req<T>(m: T, authorization: Option<&str>) -> tonic::Request<T> {
         let mut r = tonic::Request::new(m);
         if let Some(a) = authorization {
@@ -872,6 +874,123 @@ async fn call_every_method(
                     .await,
             ),
         ),
+        (
+            "CancelFit",
+            code(c.fits.cancel_fit(req(f, authorization)).await),
+        ),
+        (
+            "RetryFit",
+            code(c.fits.retry_fit(req(f, authorization)).await),
+        ),
+        (
+            "RefitFit",
+            code(
+                c.fits
+                    .refit_fit(req(
+                        proto::RefitFitRequest {
+                            fit_id,
+                            options_json: Some(r#"{"max_sections": 1}"#.into()),
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "ApproveFit",
+            code(
+                c.fits
+                    .approve_fit(req(
+                        proto::ApproveFitRequest {
+                            fit_id,
+                            ..Default::default()
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "RejectFit",
+            code(
+                c.fits
+                    .reject_fit(req(
+                        proto::RejectFitRequest {
+                            fit_id: other_fit_id,
+                            reason: "ringing".into(),
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "GetFitCurves",
+            code(c.fits.get_fit_curves(req(f, authorization)).await),
+        ),
+        (
+            "GetSweepFile",
+            code(
+                c.fits
+                    .get_sweep_file(req(proto::SweepRef { sweep_id }, authorization))
+                    .await,
+            ),
+        ),
+        (
+            "GetFitReport",
+            code(
+                c.fits
+                    .get_fit_report(req(
+                        proto::FitReportRequest {
+                            fit_id,
+                            format: proto::ReportFormat::Html as i32,
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "CreatePart",
+            code(
+                c.parts
+                    .create_part(req(
+                        proto::CreatePartRequest {
+                            part_number: "R-2".into(),
+                            ..Default::default()
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "SetLimits",
+            code(
+                c.parts
+                    .set_limits(req(
+                        proto::SetLimitsRequest {
+                            part_number: "R-1".into(),
+                            limits: None,
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
+        (
+            "GetPartTrend",
+            code(
+                c.parts
+                    .get_part_trend(req(
+                        proto::GetPartRequest {
+                            part_number: "R-1".into(),
+                        },
+                        authorization,
+                    ))
+                    .await,
+            ),
+        ),
     ]
 }
 
@@ -882,9 +1001,25 @@ async fn every_grpc_method_admits_exactly_the_roles_of_its_http_twin() {
     app.create_part("R-1", json!({})).await;
     let csv = synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 201);
     let fit_id = upload_http(&app, "R-1", "1", csv.clone()).await;
-    app.wait_for_fit(fit_id, FIT_TIMEOUT).await;
-    // The HTTP twins' roles (service/src/http): uploads need an inspector, the rest any token.
-    let needs_inspector = ["UploadSweep"];
+    let other = synthetic_csv(&simple_model(1.1e-5, 0.05, 5e-12), 1e4, 1e8, 201);
+    let other_fit_id = upload_http(&app, "R-1", "2", other).await;
+    let sweep_id = app.wait_for_fit(fit_id, FIT_TIMEOUT).await["sweep_id"]
+        .as_i64()
+        .unwrap();
+    app.wait_for_fit(other_fit_id, FIT_TIMEOUT).await;
+    // The HTTP twins' roles (service/src/http): uploads, cancel and retry need an inspector; refit,
+    // approve, reject, creating a part and setting limits an engineer; the rest any token.
+    let needs_inspector = ["UploadSweep", "CancelFit", "RetryFit"];
+    let needs_engineer = [
+        "RefitFit",
+        "ApproveFit",
+        "RejectFit",
+        "CreatePart",
+        "SetLimits",
+    ];
+    // Admitted, these two find a succeeded fit, which can be neither cancelled nor retried; every
+    // other admitted call succeeds (each engineer-only call runs once, as the engineer).
+    let refused_by_state = ["CancelFit", "RetryFit"];
     let bearer = |t: &str| format!("Bearer {t}");
     let cases: Vec<(&str, Option<String>, Option<u8>)> = vec![
         // (who, authorization, role rank: None = not authenticated)
@@ -898,19 +1033,28 @@ async fn every_grpc_method_admits_exactly_the_roles_of_its_http_twin() {
     ];
     let mut checked = 0;
     for (who, authorization, rank) in &cases {
-        let outcomes = call_every_method(&mut c, authorization.as_deref(), fit_id, &csv).await;
-        assert_eq!(outcomes.len(), 9, "every method of the proto is called");
+        let outcomes = call_every_method(
+            &mut c,
+            authorization.as_deref(),
+            [fit_id, other_fit_id],
+            sweep_id,
+            &csv,
+        )
+        .await;
+        assert_eq!(outcomes.len(), 20, "every method of the proto is called");
         for (method, code) in outcomes {
             let expected = match rank {
                 None => Code::Unauthenticated,
                 Some(0) if needs_inspector.contains(&method) => Code::PermissionDenied,
+                Some(r) if *r < 2 && needs_engineer.contains(&method) => Code::PermissionDenied,
+                Some(_) if refused_by_state.contains(&method) => Code::FailedPrecondition,
                 Some(_) => Code::Ok,
             };
             assert_eq!(code, expected, "{method} as {who}");
             checked += 1;
         }
     }
-    assert_eq!(checked, 63);
+    assert_eq!(checked, 140);
     // The HTTP twin of the one inspector method refuses the reader the same way.
     let form = reqwest::multipart::Form::new().part(
         "file",
@@ -1519,6 +1663,694 @@ async fn a_sweep_the_fit_refuses_fails_with_its_kind_over_both_transports() {
         assert_eq!(fit_page_json(&page), http, "error_kind={kind}");
         let ids: Vec<i64> = page.items.iter().map(|f| f.fit_id).collect();
         assert_eq!(ids, expected, "error_kind={kind}");
+    }
+    app.stop().await;
+}
+
+// ---- the layers ----
+
+/// The Rust files under `dir`, recursively.
+fn rust_files(dir: &std::path::Path) -> Vec<std::path::PathBuf> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir).expect("a source directory") {
+        let path = entry.expect("a directory entry").path();
+        if path.is_dir() {
+            out.extend(rust_files(&path));
+        } else if path.extension().is_some_and(|e| e == "rs") {
+            out.push(path);
+        }
+    }
+    out
+}
+
+#[test]
+fn the_transports_never_import_each_other_and_nothing_else_imports_them() {
+    // Both transports call `ops`; neither may reach into the other, and no module besides the one
+    // that assembles the server (app.rs) may reach into either. Comments are left out (doc links
+    // may name a transport).
+    let src = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../service/src");
+    let path_to = |transport: &str| {
+        [
+            format!("crate::{transport}"),
+            format!("super::super::{transport}"),
+            format!("henrybook::{transport}"),
+        ]
+    };
+    let mut offences = Vec::new();
+    let files = rust_files(&src);
+    assert!(files.len() > 40, "the service's sources are found");
+    for file in files {
+        let relative = file
+            .strip_prefix(&src)
+            .unwrap()
+            .to_string_lossy()
+            .to_string();
+        let forbidden: Vec<String> = if relative.starts_with("http/") {
+            path_to("grpc").to_vec()
+        } else if relative.starts_with("grpc/") {
+            path_to("http").to_vec()
+        } else if relative == "app.rs" || relative == "lib.rs" {
+            Vec::new()
+        } else {
+            [path_to("http"), path_to("grpc")].concat()
+        };
+        let text = std::fs::read_to_string(&file).unwrap();
+        for (n, line) in text.lines().enumerate() {
+            if line.trim_start().starts_with("//") {
+                continue;
+            }
+            for f in &forbidden {
+                if line.contains(f.as_str()) {
+                    offences.push(format!("{relative}:{}: {}", n + 1, line.trim()));
+                }
+            }
+        }
+    }
+    assert!(
+        offences.is_empty(),
+        "imports across the layers:\n{}",
+        offences.join("\n")
+    );
+}
+
+// ---- the operations gRPC gained: the same answers as HTTP ----
+
+/// A refusal over gRPC against the HTTP refusal of the same request: the kind (status code) and the
+/// detail, word for word.
+async fn assert_same_refusal<T: std::fmt::Debug>(
+    grpc: Result<tonic::Response<T>, tonic::Status>,
+    http: reqwest::Response,
+    what: &str,
+) {
+    let s = grpc.expect_err(what);
+    let code = match http.status().as_u16() {
+        401 => Code::Unauthenticated,
+        403 => Code::PermissionDenied,
+        404 => Code::NotFound,
+        409 => Code::FailedPrecondition,
+        422 => Code::InvalidArgument,
+        429 => Code::ResourceExhausted,
+        503 => Code::Unavailable,
+        other => panic!("{what}: HTTP answered {other}"),
+    };
+    assert_eq!(s.code(), code, "{what}: {s:?}");
+    let problem: Value = http.json().await.unwrap();
+    assert_eq!(s.message(), problem["detail"], "{what}");
+}
+
+fn proto_limits(l: &Value) -> proto::Limits {
+    let get = |k: &str| l.get(k).and_then(Value::as_f64);
+    proto::Limits {
+        l_nominal_h: get("l_nominal_h"),
+        l_test_frequency_hz: get("l_test_frequency_hz"),
+        l_tolerance_percent: get("l_tolerance_percent"),
+        dcr_max_ohm: get("dcr_max_ohm"),
+        srf_min_hz: get("srf_min_hz"),
+        ..Default::default()
+    }
+}
+
+fn trend_json(t: &proto::PartTrend) -> Value {
+    norm(json!({
+        "part_number": t.part_number,
+        "lots": t.lots.iter().map(|l| json!({
+            "lot": l.lot, "fit_id": l.fit_id, "approved": l.approved, "quality": l.quality,
+            "uploaded_at": l.uploaded_at,
+        })).collect::<Vec<_>>(),
+        "run_length": t.run_length,
+        "figures": t.figures.iter().map(|f| json!({
+            "figure": f.figure, "label": f.label, "unit": f.unit, "limit_low": f.limit_low,
+            "limit_high": f.limit_high, "centre": f.centre, "sigma": f.sigma,
+            "control_low": f.control_low, "control_high": f.control_high,
+            "approved_lots": f.approved_lots, "control_note": f.control_note,
+            "points": f.points.iter().map(|p| json!({
+                "lot_index": p.lot_index, "value": p.value, "outside_limits": p.outside_limits,
+                "out_of_control": p.out_of_control, "in_run": p.in_run,
+            })).collect::<Vec<_>>(),
+        })).collect::<Vec<_>>(),
+    }))
+}
+
+fn curves_json(c: &proto::FitCurves) -> Value {
+    norm(json!({
+        "frequency_hz": c.frequency_hz, "measured_z_real_ohm": c.measured_z_real_ohm,
+        "measured_z_imag_ohm": c.measured_z_imag_ohm, "sigma_ohm": c.sigma_ohm,
+        "model_z_real_ohm": c.model_z_real_ohm, "model_z_imag_ohm": c.model_z_imag_ohm,
+    }))
+}
+
+/// An L-shaped fixture (invented values): series 50 mΩ + jω·5 nH, stray jω·2 pF across the part;
+/// returns the DUT measured through it, the open and the short as impedance CSV (σ = 0.2 % of |Z|).
+/// Measured through it, Zxm = Zs + 1/(Yo + 1/Zdut) (common practice, no source).
+fn through_fixture() -> [Vec<u8>; 3] {
+    use henrybook::model::ImpedanceModel;
+    use num_complex::Complex64;
+    let two_pi = 2.0 * std::f64::consts::PI;
+    let zs = |f: f64| Complex64::new(0.05, two_pi * f * 5e-9);
+    let yo = |f: f64| Complex64::new(0.0, two_pi * f * 2e-12);
+    let dut = simple_model(1e-5, 0.05, 5e-12);
+    let csv = |z: &dyn Fn(f64) -> Complex64| {
+        let mut out = String::from("frequency_hz,z_real_ohm,z_imag_ohm,sigma_ohm\n");
+        for i in 0..301 {
+            let f = 1e3 * 1e5f64.powf(i as f64 / 300.0);
+            let v = z(f);
+            out.push_str(&format!(
+                "{f:.9e},{:.12e},{:.12e},{:.6e}\n",
+                v.re,
+                v.im,
+                2e-3 * v.norm()
+            ));
+        }
+        out.into_bytes()
+    };
+    [
+        csv(&|f| zs(f) + (yo(f) + dut.impedance(f).inv()).inv()),
+        csv(&|f| zs(f) + yo(f).inv()),
+        csv(&zs),
+    ]
+}
+
+fn named(name: &str, content: &[u8]) -> Option<proto::NamedFile> {
+    Some(proto::NamedFile {
+        file_name: name.into(),
+        content: content.to_vec(),
+    })
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_operation_http_offers_answers_the_same_over_grpc() {
+    // Arrange: a part created over each transport with the same fields.
+    let app = spawn_app().await;
+    let mut c = clients(&app).await;
+    let (e, r) = (app.engineer.clone(), app.reader.clone());
+    let limits = json!({"l_nominal_h": 1e-5, "l_test_frequency_hz": 1e5, "l_tolerance_percent": 20,
+                        "srf_min_hz": 1.5e7});
+    let created = app
+        .post_json(
+            "/api/v1/parts",
+            &e,
+            &json!({"part_number": "Q-H", "description": " coil ", "limits": limits}),
+        )
+        .await;
+    assert_eq!(created.status(), 201);
+    let created: Value = created.json().await.unwrap();
+    let create = |pn: &str, description: &str, limits: &Value| proto::CreatePartRequest {
+        part_number: pn.into(),
+        description: description.into(),
+        limits: Some(proto_limits(limits)),
+    };
+    let part = c
+        .parts
+        .create_part(grpc_request(create("Q-G", " coil ", &limits), &e))
+        .await
+        .expect("a part is created over gRPC")
+        .into_inner();
+    let part = part_json(&part);
+    for key in ["description", "limits", "lots", "fits", "baseline_fit_id"] {
+        assert_eq!(part[key], created[key], "created part: {key}");
+    }
+    assert_eq!(part, app.get_json("/api/v1/parts/Q-G", &r).await);
+
+    // Refusals of parts and limits: the same kind and detail.
+    for (pn, description, what) in [
+        ("Q-H", "", "an existing part"),
+        ("bad part", "", "a bad part number"),
+        ("Q-X", &"d".repeat(501)[..], "a long description"),
+    ] {
+        let http = app
+            .post_json(
+                "/api/v1/parts",
+                &e,
+                &json!({"part_number": pn, "description": description}),
+            )
+            .await;
+        let grpc = c
+            .parts
+            .create_part(grpc_request(create(pn, description, &json!({})), &e))
+            .await;
+        assert_same_refusal(grpc, http, what).await;
+    }
+    let set = |pn: &str, limits: &Value| proto::SetLimitsRequest {
+        part_number: pn.into(),
+        limits: Some(proto_limits(limits)),
+    };
+    for (pn, l, what) in [
+        ("Q-H", json!({"l_nominal_h": -1.0}), "a negative limit"),
+        ("Q-NONE", json!({}), "an unknown part"),
+    ] {
+        let http = app
+            .put_json(
+                &format!("/api/v1/parts/{pn}/limits"),
+                &e,
+                &json!({"limits": l}),
+            )
+            .await;
+        let grpc = c.parts.set_limits(grpc_request(set(pn, &l), &e)).await;
+        assert_same_refusal(grpc, http, what).await;
+    }
+    // Limits set over each transport read back the same.
+    let tighter = json!({"l_nominal_h": 1e-5, "l_test_frequency_hz": 1e5, "l_tolerance_percent": 20,
+                         "srf_min_hz": 1.5e7, "dcr_max_ohm": 0.04});
+    let http = app
+        .put_json("/api/v1/parts/Q-H/limits", &e, &json!({"limits": tighter}))
+        .await;
+    assert_eq!(http.status(), 200);
+    let http: Value = http.json().await.unwrap();
+    let grpc = c
+        .parts
+        .set_limits(grpc_request(set("Q-G", &tighter), &e))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(part_json(&grpc)["limits"], http["limits"]);
+
+    // Uploads with fixture files: over HTTP to Q-H, over gRPC to Q-G, the same files.
+    let [dut, open, short] = through_fixture();
+    let form = reqwest::multipart::Form::new()
+        .part(
+            "file",
+            reqwest::multipart::Part::bytes(dut.clone()).file_name("dut.csv"),
+        )
+        .part(
+            "fixture_open",
+            reqwest::multipart::Part::bytes(open.clone()).file_name("open.csv"),
+        )
+        .part(
+            "fixture_short",
+            reqwest::multipart::Part::bytes(short.clone()).file_name("short.csv"),
+        )
+        .text("part_number", "Q-H")
+        .text("lot", "1")
+        .text("method", "direct");
+    let http = app
+        .client
+        .post(app.url("/api/v1/sweeps"))
+        .bearer_auth(&app.inspector)
+        .multipart(form)
+        .send()
+        .await
+        .unwrap();
+    assert_eq!(http.status(), 202);
+    let h_fit = http.json::<Value>().await.unwrap()["fit_id"]
+        .as_i64()
+        .unwrap();
+    let with_fixture = proto::UploadSweepRequest {
+        file_name: "dut.csv".into(),
+        fixture_open: named("open.csv", &open),
+        fixture_short: named("short.csv", &short),
+        ..upload_message("Q-G", "1", dut.clone())
+    };
+    // Only one fixture file: refused as over HTTP, nothing stored.
+    let one = proto::UploadSweepRequest {
+        fixture_short: None,
+        ..with_fixture.clone()
+    };
+    let form = reqwest::multipart::Form::new()
+        .part(
+            "file",
+            reqwest::multipart::Part::bytes(dut.clone()).file_name("dut.csv"),
+        )
+        .part(
+            "fixture_open",
+            reqwest::multipart::Part::bytes(open.clone()).file_name("open.csv"),
+        )
+        .text("part_number", "Q-G")
+        .text("lot", "1")
+        .text("method", "direct");
+    let http = app
+        .client
+        .post(app.url("/api/v1/sweeps"))
+        .bearer_auth(&app.inspector)
+        .multipart(form)
+        .send()
+        .await
+        .unwrap();
+    let grpc = c.fits.upload_sweep(grpc_request(one, &app.inspector)).await;
+    assert_same_refusal(grpc, http, "one fixture file").await;
+    let accepted = c
+        .fits
+        .upload_sweep(grpc_request(with_fixture, &app.inspector))
+        .await
+        .expect("an upload with fixture files is accepted over gRPC")
+        .into_inner();
+    let g_fit = accepted.fit_id;
+    let h_detail = app.wait_for_fit(h_fit, FIT_TIMEOUT).await;
+    let g_detail = app.wait_for_fit(g_fit, FIT_TIMEOUT).await;
+    assert_eq!(g_detail["status"], "succeeded", "{g_detail}");
+    assert_eq!(g_detail["sweep_id"], json!(accepted.sweep_id));
+
+    // Curves: the same over both transports, and the fixture corrected the gRPC upload exactly as
+    // the HTTP one (the same files give the same measured impedance).
+    let g_curves = c
+        .fits
+        .get_fit_curves(grpc_request(proto::FitRef { fit_id: g_fit }, &r))
+        .await
+        .unwrap()
+        .into_inner();
+    let g_curves = curves_json(&g_curves);
+    assert_eq!(
+        g_curves,
+        app.get_json(&format!("/api/v1/fits/{g_fit}/curves"), &r)
+            .await
+    );
+    let h_curves = app
+        .get_json(&format!("/api/v1/fits/{h_fit}/curves"), &r)
+        .await;
+    for key in [
+        "frequency_hz",
+        "measured_z_real_ohm",
+        "measured_z_imag_ohm",
+        "sigma_ohm",
+    ] {
+        assert_eq!(g_curves[key], h_curves[key], "{key}");
+    }
+    assert_eq!(h_detail["options"], g_detail["options"]);
+
+    // The original file, byte for byte, with the name HTTP offers.
+    let sweep_id = accepted.sweep_id;
+    let file = c
+        .fits
+        .get_sweep_file(grpc_request(proto::SweepRef { sweep_id }, &r))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app
+        .get(&format!("/api/v1/sweeps/{sweep_id}/file"), &r)
+        .await;
+    let disposition = http.headers()["content-disposition"]
+        .to_str()
+        .unwrap()
+        .to_string();
+    assert_eq!(http.bytes().await.unwrap().to_vec(), file.content);
+    assert_eq!(file.content, dut);
+    assert_eq!(
+        disposition,
+        format!("attachment; filename=\"{}\"", file.file_name)
+    );
+    let http = app.get("/api/v1/sweeps/987654/file", &r).await;
+    let grpc = c
+        .fits
+        .get_sweep_file(grpc_request(proto::SweepRef { sweep_id: 987_654 }, &r))
+        .await;
+    assert_same_refusal(grpc, http, "an unknown sweep").await;
+
+    // The model as JSON.
+    let exported = c
+        .fits
+        .export_fit(grpc_request(
+            proto::ExportFitRequest {
+                fit_id: g_fit,
+                format: proto::ExportFormat::ModelJson as i32,
+            },
+            &r,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app
+        .get(&format!("/api/v1/fits/{g_fit}/model.json"), &r)
+        .await;
+    assert!(
+        http.headers()["content-disposition"]
+            .to_str()
+            .unwrap()
+            .contains(&exported.file_name)
+    );
+    let http: Value = http.json().await.unwrap();
+    let grpc: Value = serde_json::from_str(&exported.text).unwrap();
+    assert_eq!(grpc, http);
+
+    // The report: the same kind of document under the same name.
+    let pdf = c
+        .fits
+        .get_fit_report(grpc_request(
+            proto::FitReportRequest {
+                fit_id: g_fit,
+                format: proto::ReportFormat::Pdf as i32,
+            },
+            &r,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app
+        .get(&format!("/api/v1/fits/{g_fit}/report.pdf"), &r)
+        .await;
+    assert_eq!(http.headers()["content-type"], pdf.content_type.as_str());
+    assert_eq!(
+        http.headers()["content-disposition"].to_str().unwrap(),
+        format!("attachment; filename=\"{}\"", pdf.file_name.unwrap())
+    );
+    assert!(pdf.content.starts_with(b"%PDF"));
+    let html = c
+        .fits
+        .get_fit_report(grpc_request(
+            proto::FitReportRequest {
+                fit_id: g_fit,
+                format: proto::ReportFormat::Html as i32,
+            },
+            &r,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app.get(&format!("/api/v1/fits/{g_fit}/report"), &r).await;
+    assert_eq!(http.headers()["content-type"], html.content_type.as_str());
+    assert!(String::from_utf8(html.content).unwrap().contains("Q-G"));
+
+    // Approval: refused the same way (the fit fails DCR 50 mΩ > 40 mΩ; a blank reason), then
+    // approved with an override; the answer is the fit's detail.
+    let approve = |reason: Option<&str>, overriding: bool| proto::ApproveFitRequest {
+        fit_id: g_fit,
+        reason: reason.map(str::to_string),
+        overriding,
+    };
+    for (reason, overriding, body, what) in [
+        (None, false, json!({}), "a failing fit"),
+        (
+            Some("  "),
+            true,
+            json!({"reason": "  ", "override": true}),
+            "a blank reason",
+        ),
+    ] {
+        let grpc = c
+            .fits
+            .approve_fit(grpc_request(approve(reason, overriding), &e))
+            .await;
+        let http = app
+            .post_json(&format!("/api/v1/fits/{g_fit}/approve"), &e, &body)
+            .await;
+        assert_same_refusal(grpc, http, what).await;
+    }
+    let approved = c
+        .fits
+        .approve_fit(grpc_request(approve(Some("first lot"), true), &e))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app.get_json(&format!("/api/v1/fits/{g_fit}"), &r).await;
+    assert_eq!(http["approval"], "approved");
+    assert_result_equals_detail(&approved, &http);
+
+    // Cancel and retry of a succeeded fit: refused the same way.
+    let f = proto::FitRef { fit_id: g_fit };
+    let grpc = c.fits.cancel_fit(grpc_request(f, &app.inspector)).await;
+    let http = app
+        .post_json(
+            &format!("/api/v1/fits/{g_fit}/cancel"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_same_refusal(grpc, http, "cancel a succeeded fit").await;
+    let grpc = c.fits.retry_fit(grpc_request(f, &app.inspector)).await;
+    let http = app
+        .post_json(
+            &format!("/api/v1/fits/{g_fit}/retry"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_same_refusal(grpc, http, "retry a succeeded fit").await;
+
+    // Refit: bad options refused the same way; a new revision over each transport.
+    let refit = |options: &str| proto::RefitFitRequest {
+        fit_id: g_fit,
+        options_json: Some(options.into()),
+    };
+    let grpc = c
+        .fits
+        .refit_fit(grpc_request(refit(r#"{"colour": 1}"#), &e))
+        .await;
+    let http = app
+        .post_json(
+            &format!("/api/v1/fits/{g_fit}/refit"),
+            &e,
+            &json!({"options": {"colour": 1}}),
+        )
+        .await;
+    assert_same_refusal(grpc, http, "unknown options").await;
+    let g_new = c
+        .fits
+        .refit_fit(grpc_request(refit(r#"{"max_sections": 1}"#), &e))
+        .await
+        .unwrap()
+        .into_inner()
+        .fit_id;
+    let http = app
+        .post_json(
+            &format!("/api/v1/fits/{h_fit}/refit"),
+            &e,
+            &json!({"options": {"max_sections": 1}}),
+        )
+        .await;
+    assert_eq!(http.status(), 202);
+    let h_new = http.json::<Value>().await.unwrap()["fit_id"]
+        .as_i64()
+        .unwrap();
+    let g_new_detail = app.wait_for_fit(g_new, FIT_TIMEOUT).await;
+    let h_new_detail = app.wait_for_fit(h_new, FIT_TIMEOUT).await;
+    assert_eq!(g_new_detail["revision"], 2);
+    assert_eq!(g_new_detail["options"], h_new_detail["options"]);
+    assert_eq!(g_new_detail["options"]["max_sections"], 1);
+
+    // Rejection: a blank reason refused the same way, then rejected with one.
+    let reject = |reason: &str| proto::RejectFitRequest {
+        fit_id: g_new,
+        reason: reason.into(),
+    };
+    let grpc = c.fits.reject_fit(grpc_request(reject(" "), &e)).await;
+    let http = app
+        .post_json(
+            &format!("/api/v1/fits/{g_new}/reject"),
+            &e,
+            &json!({"reason": " "}),
+        )
+        .await;
+    assert_same_refusal(grpc, http, "a blank rejection").await;
+    let rejected = c
+        .fits
+        .reject_fit(grpc_request(reject("ringing above 20 MHz"), &e))
+        .await
+        .unwrap()
+        .into_inner();
+    let http = app.get_json(&format!("/api/v1/fits/{g_new}"), &r).await;
+    assert_eq!(http["approval"], "rejected");
+    assert_result_equals_detail(&rejected, &http);
+
+    // The trend across lots and the part's record after all of it.
+    for pn in ["Q-G", "Q-H"] {
+        let trend = c
+            .parts
+            .get_part_trend(grpc_request(
+                proto::GetPartRequest {
+                    part_number: pn.into(),
+                },
+                &r,
+            ))
+            .await
+            .unwrap()
+            .into_inner();
+        assert!(!trend.figures.is_empty());
+        assert_eq!(
+            trend_json(&trend),
+            app.get_json(&format!("/api/v1/parts/{pn}/trend"), &r).await,
+            "trend of {pn}"
+        );
+    }
+    let part = c
+        .parts
+        .get_part(grpc_request(
+            proto::GetPartRequest {
+                part_number: "Q-G".into(),
+            },
+            &r,
+        ))
+        .await
+        .unwrap()
+        .into_inner();
+    assert_eq!(
+        part_json(&part),
+        app.get_json("/api/v1/parts/Q-G", &r).await
+    );
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_fit_cancelled_and_retried_over_grpc_ends_as_over_http() {
+    // Arrange: fits held back for a while, so each is still queued or running when cancelled.
+    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
+    let settings = test_settings(dir.path().join("henrybook.db"));
+    let engine = Arc::new(SlowEngine {
+        delay: Duration::from_secs(4),
+    });
+    let app = spawn_app_with(dir, settings, engine, None).await;
+    let mut c = clients(&app).await;
+    app.create_part("C-1", json!({})).await;
+    let model = simple_model(1e-5, 0.05, 5e-12);
+    let over_grpc = upload_http(&app, "C-1", "1", synthetic_csv(&model, 1e4, 1e8, 201)).await;
+    let over_http = upload_http(&app, "C-1", "2", synthetic_csv(&model, 1e4, 1e8, 203)).await;
+
+    // Act: cancel one over each transport; each answer is the fit's status then.
+    let f = proto::FitRef { fit_id: over_grpc };
+    let answer = c
+        .fits
+        .cancel_fit(grpc_request(f, &app.inspector))
+        .await
+        .expect("a queued or running fit can be cancelled")
+        .into_inner();
+    assert_eq!(answer.fit_id, over_grpc);
+    assert!(
+        ["cancelled", "running"].contains(&state_name(answer.state)),
+        "{answer:?}"
+    );
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{over_http}/cancel"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+
+    // Assert: both end cancelled with the same kind. (The message tells a queued fit cancelled at once
+    // from a running one stopped by its worker, whichever transport asked, so it is not compared.)
+    let a = app.wait_for_fit(over_grpc, FIT_TIMEOUT).await;
+    let b = app.wait_for_fit(over_http, FIT_TIMEOUT).await;
+    for key in ["status", "error_kind"] {
+        assert_eq!(a[key], b[key], "{key}: {a} vs {b}");
+    }
+    assert_eq!(a["status"], "cancelled");
+
+    // Retried over each transport: both are queued again (or already running).
+    let answer = c
+        .fits
+        .retry_fit(grpc_request(f, &app.inspector))
+        .await
+        .expect("a cancelled fit can be retried")
+        .into_inner();
+    assert!(
+        ["queued", "running"].contains(&state_name(answer.state)),
+        "{answer:?}"
+    );
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{over_http}/retry"),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let http: Value = r.json().await.unwrap();
+    assert!(
+        ["queued", "running"].contains(&http["status"].as_str().unwrap()),
+        "{http}"
+    );
+    // And they are fitted this time.
+    for id in [over_grpc, over_http] {
+        let done = app.wait_for_fit(id, FIT_TIMEOUT).await;
+        assert_eq!(done["status"], "succeeded", "{done}");
     }
     app.stop().await;
 }

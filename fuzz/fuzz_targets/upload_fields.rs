@@ -1,10 +1,10 @@
-//! The upload's text fields and fit options, as the HTTP handler parses them: `number` for the numeric
+//! The upload's text fields and fit options, as the upload operation parses them: `number` for the numeric
 //! fields, then `check_upload_fields`. The first byte says which fixture files came with the upload;
 //! the rest is the fields in form order separated by NUL bytes (fixture_topology, part_number, lot,
 //! method, z0_ohm, dcr_ohm, temperature_c, operator, options).
 #![no_main]
 
-use henrybook::http::sweeps::{UploadInput, check_upload_fields, number, parse_options};
+use henrybook::ops::sweeps::{UploadInput, check_upload_fields, number, parse_options};
 use libfuzzer_sys::fuzz_target;
 
 fuzz_target!(|data: &[u8]| {

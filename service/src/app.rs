@@ -21,7 +21,7 @@ pub struct AppState {
     pub settings: Arc<Settings>,
     pub metrics: PrometheusHandle,
     /// The bounds on queued fits and uploads in flight.
-    pub backpressure: Arc<crate::http::backpressure::Backpressure>,
+    pub backpressure: Arc<crate::ops::backpressure::Backpressure>,
 }
 
 /// The process-wide Prometheus recorder (installed once, shared by every application in a process).
@@ -96,7 +96,7 @@ impl Application {
             store,
             jobs: pool.handle(),
             engine,
-            backpressure: Arc::new(crate::http::backpressure::Backpressure::new(&settings)),
+            backpressure: Arc::new(crate::ops::backpressure::Backpressure::new(&settings)),
             settings: Arc::new(settings),
             metrics: metrics_handle(),
         };

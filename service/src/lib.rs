@@ -14,9 +14,11 @@
 //! - [`store`]: SQLite through sqlx: parts, lots, sweeps, fits and revisions, the job table, query
 //!   figures, tokens, the audit trail.
 //! - [`jobs`]: the worker pool that claims jobs with a lease and runs the engine off the runtime.
+//! - [`ops`]: the application layer: one function per operation (upload, refit, approve, queries,
+//!   exports, ...) and one error type; both transports call it and neither imports the other.
 //! - [`http`]: axum routes per resource, bearer-token roles, problem+json errors.
-//! - [`grpc`]: the tonic services of `api/henrybook.proto` over the same store, jobs and helpers as
-//!   HTTP, with the same tokens and roles.
+//! - [`grpc`]: the tonic services of `api/henrybook.proto` over the same operations as HTTP, with the
+//!   same tokens and roles.
 //! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
 //!   the baseline, the fixed grid for queries) and the API's JSON shapes.
 //! - [`report`]: the printable inspection report of a lot's fit, as self-contained HTML and as PDF
@@ -34,6 +36,7 @@ pub mod grpc;
 pub mod http;
 pub mod jobs;
 pub mod model;
+pub mod ops;
 pub mod registry;
 pub mod report;
 pub mod serve;

@@ -6,9 +6,11 @@ use crate::fit::{Derived, FitReport, LumpedUncertainty, Quality};
 use crate::model::{FittedModel, LumpedModel, RationalModel, SectionKind};
 use crate::registry::drift::Drift;
 use crate::registry::limits::Limits;
+use crate::registry::trend::{FigureTrend, PartTrend};
 use crate::registry::verdict::Check;
 use crate::registry::wire::{
-    AuditEntry, FitDetail, FitPage, FitStatus, FitSummary, Part, PartPage, PartSummary, QueueCounts,
+    AuditEntry, FitCurves, FitDetail, FitPage, FitStatus, FitSummary, Part, PartPage, PartSummary,
+    QueueCounts,
 };
 
 pub fn fit_state(s: FitStatus) -> proto::FitState {
@@ -317,4 +319,86 @@ pub fn fit_result(
         out.band_max_hz = Some(r.band_hz[1]);
     }
     Ok(out)
+}
+
+/// Limits as given in a request; an absent message is no limits.
+pub fn limits_from(l: Option<proto::Limits>) -> Limits {
+    let Some(l) = l else {
+        return Limits::default();
+    };
+    Limits {
+        l_nominal_h: l.l_nominal_h,
+        l_test_frequency_hz: l.l_test_frequency_hz,
+        l_tolerance_percent: l.l_tolerance_percent,
+        dcr_max_ohm: l.dcr_max_ohm,
+        srf_min_hz: l.srf_min_hz,
+        q_min: l.q_min,
+        q_test_frequency_hz: l.q_test_frequency_hz,
+        z_min_ohm: l.z_min_ohm,
+        z_band_min_hz: l.z_band_min_hz,
+        z_band_max_hz: l.z_band_max_hz,
+        core_corner_min_hz: l.core_corner_min_hz,
+        core_corner_max_hz: l.core_corner_max_hz,
+    }
+}
+
+pub fn fit_curves(c: FitCurves) -> proto::FitCurves {
+    proto::FitCurves {
+        frequency_hz: c.frequency_hz,
+        measured_z_real_ohm: c.measured_z_real_ohm,
+        measured_z_imag_ohm: c.measured_z_imag_ohm,
+        sigma_ohm: c.sigma_ohm,
+        model_z_real_ohm: c.model_z_real_ohm,
+        model_z_imag_ohm: c.model_z_imag_ohm,
+    }
+}
+
+fn count(n: usize) -> i64 {
+    i64::try_from(n).unwrap_or(i64::MAX)
+}
+
+fn figure_trend(f: FigureTrend) -> proto::FigureTrend {
+    proto::FigureTrend {
+        figure: f.figure,
+        label: f.label,
+        unit: f.unit,
+        limit_low: f.limit_low,
+        limit_high: f.limit_high,
+        centre: f.centre,
+        sigma: f.sigma,
+        control_low: f.control_low,
+        control_high: f.control_high,
+        approved_lots: count(f.approved_lots),
+        control_note: f.control_note,
+        points: f
+            .points
+            .into_iter()
+            .map(|p| proto::TrendPoint {
+                lot_index: count(p.lot_index),
+                value: p.value,
+                outside_limits: p.outside_limits,
+                out_of_control: p.out_of_control,
+                in_run: p.in_run,
+            })
+            .collect(),
+    }
+}
+
+pub fn part_trend(t: PartTrend) -> proto::PartTrend {
+    proto::PartTrend {
+        part_number: t.part_number,
+        lots: t
+            .lots
+            .into_iter()
+            .map(|l| proto::TrendLot {
+                lot: l.lot,
+                fit_id: l.fit_id,
+                approved: l.approved,
+                quality: l.quality,
+                uploaded_at: l.uploaded_at,
+            })
+            .collect(),
+        run_length: count(t.run_length),
+        figures: t.figures.into_iter().map(figure_trend).collect(),
+    }
 }

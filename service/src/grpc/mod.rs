@@ -1,6 +1,6 @@
 //! The gRPC interface (`api/henrybook.proto`, package `henrybook.v1`): a thin tonic shell over the
-//! same store, job and helper functions the HTTP handlers call, with the same bearer tokens and
-//! roles. Errors are the HTTP problems mapped to gRPC status codes in one place ([`status`]);
+//! operations of [`crate::ops`], the same ones the HTTP handlers call, with the same bearer tokens
+//! and roles. The operations' errors are mapped to gRPC status codes in one place ([`status`]);
 //! internal causes go to the log, never to the client. gRPC health (`grpc.health.v1`) reports both
 //! services as serving.
 
@@ -9,8 +9,8 @@ mod fits;
 mod parts;
 
 use crate::app::AppState;
-use crate::http::auth::authorize;
-use crate::http::problem::{Kind, Problem};
+use crate::ops::auth::authorize;
+use crate::ops::{ErrorKind, OpsError};
 use crate::store::tokens::{Caller, Role};
 use tokio::net::TcpListener;
 use tokio::sync::watch;
@@ -21,19 +21,20 @@ pub mod proto {
     tonic::include_proto!("henrybook.v1");
 }
 
-/// A problem (the error type the HTTP handlers and shared helpers return) as a gRPC status.
-pub fn status(p: Problem) -> Status {
+/// An operation's error as a gRPC status (the `retry-after` and `henrybook-line` metadata carry what
+/// HTTP sends as the Retry-After header and the problem's `line`).
+pub fn status(p: OpsError) -> Status {
     let code = match p.kind {
-        Kind::BadSweepFile | Kind::Validation => tonic::Code::InvalidArgument,
-        Kind::Unauthorized => tonic::Code::Unauthenticated,
-        Kind::Forbidden => tonic::Code::PermissionDenied,
-        Kind::NotFound => tonic::Code::NotFound,
-        Kind::Conflict => tonic::Code::FailedPrecondition,
-        Kind::PayloadTooLarge => tonic::Code::ResourceExhausted,
-        Kind::NotImplemented => tonic::Code::Unimplemented,
-        Kind::Unavailable | Kind::Overloaded => tonic::Code::Unavailable,
-        Kind::Throttled => tonic::Code::ResourceExhausted,
-        Kind::Internal => tonic::Code::Internal,
+        ErrorKind::BadSweepFile | ErrorKind::Validation => tonic::Code::InvalidArgument,
+        ErrorKind::Unauthorized => tonic::Code::Unauthenticated,
+        ErrorKind::Forbidden => tonic::Code::PermissionDenied,
+        ErrorKind::NotFound => tonic::Code::NotFound,
+        ErrorKind::Conflict => tonic::Code::FailedPrecondition,
+        ErrorKind::PayloadTooLarge => tonic::Code::ResourceExhausted,
+        ErrorKind::NotImplemented => tonic::Code::Unimplemented,
+        ErrorKind::Unavailable | ErrorKind::Overloaded => tonic::Code::Unavailable,
+        ErrorKind::Throttled => tonic::Code::ResourceExhausted,
+        ErrorKind::Internal => tonic::Code::Internal,
     };
     let mut s = Status::new(code, p.detail);
     if let Some(after) = p.retry_after_s
@@ -110,11 +111,6 @@ pub async fn serve(
         .await
 }
 
-/// A store error as a status, through the same problem mapping HTTP uses.
-fn store_status(e: crate::store::StoreError) -> Status {
-    status(Problem::from(e))
-}
-
 /// A fit id as given: proto3's default 0 means it was not set.
 fn fit_id(id: i64) -> Result<i64, Status> {
     if id <= 0 {
@@ -187,10 +183,10 @@ where
         }
         let Ok(permit) = self.permits.clone().try_acquire_owned() else {
             metrics::counter!("henrybook_refused_total", "bound" => "grpc_uploads").increment(1);
-            let status = status(Problem::busy(
-                Kind::Overloaded,
+            let status = status(OpsError::busy(
+                ErrorKind::Overloaded,
                 "the service is receiving as many uploads as it takes at once; try again shortly",
-                crate::http::backpressure::BYTES_RETRY_AFTER_S,
+                crate::ops::backpressure::BYTES_RETRY_AFTER_S,
             ));
             return Box::pin(std::future::ready(Ok(status.into_http())));
         };

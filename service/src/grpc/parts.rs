@@ -1,15 +1,25 @@
-//! `PartRegistry`: behavioural part queries and one part's record (reader, as over HTTP).
+//! `PartRegistry`: behavioural part queries, one part's record and its trend (reader), creating a part
+//! and setting its limits (engineer), as over HTTP and through the same operations of [`crate::ops`].
 
 use super::proto::part_registry_server::PartRegistry;
 use super::proto::{self, GetPartRequest, QueryPartsRequest};
-use super::{caller, convert, status, store_status};
+use super::{caller, convert, status};
 use crate::app::AppState;
-use crate::http::parts::{PartQueryParams, part_query};
+use crate::ops;
+use crate::ops::parts::PartQueryInput;
 use crate::store::tokens::Role;
 use tonic::{Request, Response, Status};
 
 pub struct Parts {
     pub state: AppState,
+}
+
+/// A part number as given: proto3's default "" means it was not set.
+fn part_number(text: String) -> Result<String, Status> {
+    if text.trim().is_empty() {
+        return Err(Status::invalid_argument("part_number is required"));
+    }
+    Ok(text)
 }
 
 #[tonic::async_trait]
@@ -20,7 +30,7 @@ impl PartRegistry for Parts {
     ) -> Result<Response<proto::PartPage>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
         let r = request.into_inner();
-        let query = part_query(PartQueryParams {
+        let input = PartQueryInput {
             q: r.q,
             answer_from: r.answer_from,
             approved_only: r.approved_only.then_some(true),
@@ -40,14 +50,10 @@ impl PartRegistry for Parts {
             sort: r.sort,
             limit: r.limit,
             cursor: r.cursor,
-        })
-        .map_err(status)?;
-        let page = self
-            .state
-            .store
-            .query_parts(&query)
+        };
+        let page = ops::parts::query(&self.state, input)
             .await
-            .map_err(store_status)?;
+            .map_err(status)?;
         Ok(Response::new(convert::part_page(page)))
     }
 
@@ -56,16 +62,51 @@ impl PartRegistry for Parts {
         request: Request<GetPartRequest>,
     ) -> Result<Response<proto::Part>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
-        let part_number = request.into_inner().part_number;
-        if part_number.trim().is_empty() {
-            return Err(Status::invalid_argument("part_number is required"));
-        }
-        let part = self
-            .state
-            .store
-            .part(&part_number)
-            .await
-            .map_err(store_status)?;
+        let pn = part_number(request.into_inner().part_number)?;
+        let part = ops::parts::get(&self.state, &pn).await.map_err(status)?;
         Ok(Response::new(convert::part(part)))
+    }
+
+    async fn create_part(
+        &self,
+        request: Request<proto::CreatePartRequest>,
+    ) -> Result<Response<proto::Part>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let limits = convert::limits_from(r.limits);
+        let part = ops::parts::create(
+            &self.state,
+            &who.label,
+            &r.part_number,
+            &r.description,
+            &limits,
+        )
+        .await
+        .map_err(status)?;
+        Ok(Response::new(convert::part(part)))
+    }
+
+    async fn set_limits(
+        &self,
+        request: Request<proto::SetLimitsRequest>,
+    ) -> Result<Response<proto::Part>, Status> {
+        let who = caller(&self.state, &request, Role::Engineer).await?;
+        let r = request.into_inner();
+        let pn = part_number(r.part_number)?;
+        let limits = convert::limits_from(r.limits);
+        let part = ops::parts::set_limits(&self.state, &who.label, &pn, &limits)
+            .await
+            .map_err(status)?;
+        Ok(Response::new(convert::part(part)))
+    }
+
+    async fn get_part_trend(
+        &self,
+        request: Request<GetPartRequest>,
+    ) -> Result<Response<proto::PartTrend>, Status> {
+        caller(&self.state, &request, Role::Reader).await?;
+        let pn = part_number(request.into_inner().part_number)?;
+        let trend = ops::parts::trend(&self.state, &pn).await.map_err(status)?;
+        Ok(Response::new(convert::part_trend(trend)))
     }
 }

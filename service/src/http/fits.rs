@@ -1,15 +1,14 @@
 //! Fits: list and status (dashboard polling), detail with verdict and drift, curves, downloads,
-//! cancel/retry (inspector), refit/approve/reject (engineer).
+//! cancel/retry (inspector), refit/approve/reject (engineer). Each handler extracts, calls one
+//! operation of [`crate::ops`] and answers.
 
 use super::auth::{Engineer, Inspector, Reader};
-use super::problem::{ApiResult, Kind, Problem, json_body};
-use super::sweeps::{checked_options, parse_options_value, safe_file_name};
+use super::problem::json_body;
 use crate::app::AppState;
-use crate::registry::figures::model_curve;
-use crate::registry::wire::{FailureKind, FitCurves, FitDetail, FitPage, FitStatus, FitSummary};
-use crate::store::fits::FitFilter;
-use crate::store::jobs::PartRef;
-use crate::store::parse_rfc3339;
+use crate::ops::exports::TextExport;
+use crate::ops::fits::FitListQuery;
+use crate::ops::{self, OpsResult};
+use crate::registry::wire::{FitCurves, FitDetail, FitPage, FitSummary};
 use axum::Json;
 use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
@@ -18,90 +17,16 @@ use axum::response::IntoResponse;
 use serde::{Deserialize, Serialize};
 use utoipa_axum::{router::OpenApiRouter, routes};
 
-#[derive(Debug, Default, Deserialize, utoipa::IntoParams)]
-#[into_params(parameter_in = Query)]
-#[serde(deny_unknown_fields)]
-pub struct FitListParams {
-    /// queued, running, succeeded, failed or cancelled.
-    #[param(pattern = r"^(queued|running|succeeded|failed|cancelled)?$")]
-    pub status: Option<String>,
-    /// Only fits that ended with this failure kind: too_few_points, not_an_inductor,
-    /// invalid_options, non_finite, not_passive, cancelled, unreadable_sweep, attempts_exhausted or
-    /// internal.
-    #[param(
-        pattern = r"^(too_few_points|not_an_inductor|invalid_options|non_finite|not_passive|cancelled|unreadable_sweep|attempts_exhausted|internal)?$"
-    )]
-    pub error_kind: Option<String>,
-    pub part_number: Option<String>,
-    pub lot: Option<String>,
-    /// RFC 3339: fits created at or after.
-    #[param(format = DateTime)]
-    pub since: Option<String>,
-    /// 1..500, default 50.
-    #[param(minimum = 1, maximum = 500)]
-    pub limit: Option<i64>,
-    pub cursor: Option<String>,
-}
-
-/// The validated store filter for these parameters (shared by the HTTP and gRPC interfaces).
-pub fn fit_filter(p: FitListParams) -> ApiResult<FitFilter> {
-    let status = match p.status.as_deref() {
-        None | Some("") => None,
-        Some(s) => Some(FitStatus::parse(s).ok_or_else(|| {
-            Problem::validation(format!(
-                "status must be queued, running, succeeded, failed or cancelled, not {s:?}"
-            ))
-        })?),
-    };
-    let error_kind = match p.error_kind.as_deref() {
-        None | Some("") => None,
-        Some(k) => Some(FailureKind::parse(k).ok_or_else(|| {
-            let names: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
-            Problem::validation(format!(
-                "error_kind must be one of {}, not {k:?}",
-                names.join(", ")
-            ))
-        })?),
-    };
-    let since_ms = match p.since.as_deref() {
-        None => None,
-        Some(s) => Some(parse_rfc3339(s).ok_or_else(|| {
-            Problem::validation(format!("since must be an RFC 3339 time, not {s:?}"))
-        })?),
-    };
-    let before_fit_id = match p.cursor.as_deref() {
-        None | Some("") => None,
-        Some(c) => Some(
-            c.parse::<i64>()
-                .map_err(|_| Problem::validation("cursor is not one this service handed out"))?,
-        ),
-    };
-    let limit = p.limit.unwrap_or(50);
-    if !(1..=500).contains(&limit) {
-        return Err(Problem::validation("limit must be 1 to 500"));
-    }
-    Ok(FitFilter {
-        status,
-        error_kind,
-        part_number: p.part_number.filter(|s| !s.is_empty()),
-        lot: p.lot.filter(|s| !s.is_empty()),
-        since_ms,
-        before_fit_id,
-        limit,
-    })
-}
-
 /// Fits, newest first, filtered and paginated.
-#[utoipa::path(get, path = "/api/v1/fits", tag = "fits", params(FitListParams),
+#[utoipa::path(get, path = "/api/v1/fits", tag = "fits", params(FitListQuery),
     responses((status = 200, body = FitPage), (status = 422, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
 async fn list_fits(
     _: Reader,
     State(state): State<AppState>,
-    Query(p): Query<FitListParams>,
-) -> ApiResult<Json<FitPage>> {
-    let filter = fit_filter(p)?;
-    Ok(Json(state.store.list_fits(&filter).await?))
+    Query(q): Query<FitListQuery>,
+) -> OpsResult<Json<FitPage>> {
+    Ok(Json(ops::fits::list(&state, q).await?))
 }
 
 /// One fit: status, report, verdict per limit, drift against the approved baseline.
@@ -112,8 +37,8 @@ async fn get_fit(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<Json<FitDetail>> {
-    Ok(Json(state.store.fit_detail(fit_id).await?))
+) -> OpsResult<Json<FitDetail>> {
+    Ok(Json(ops::fits::detail(&state, fit_id).await?))
 }
 
 /// Measured impedance with its uncertainty, and the model at the same frequencies.
@@ -124,29 +49,8 @@ async fn curves(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<Json<FitCurves>> {
-    let input = state.store.job_input(fit_id).await?;
-    let report = state.store.fit_report(fit_id).await?;
-    let engine = state.engine.clone();
-    let curves = tokio::task::spawn_blocking(move || -> Result<FitCurves, String> {
-        let sweep = crate::jobs::job_sweep(engine.as_ref(), &input)?;
-        let (model_re, model_im) = match &report {
-            Some(r) => model_curve(&r.model, &sweep.frequency_hz),
-            None => (Vec::new(), Vec::new()),
-        };
-        Ok(FitCurves {
-            measured_z_real_ohm: sweep.impedance_ohm.iter().map(|z| z.re).collect(),
-            measured_z_imag_ohm: sweep.impedance_ohm.iter().map(|z| z.im).collect(),
-            sigma_ohm: sweep.sigma_ohm,
-            frequency_hz: sweep.frequency_hz,
-            model_z_real_ohm: model_re,
-            model_z_imag_ohm: model_im,
-        })
-    })
-    .await
-    .map_err(Problem::internal)?
-    .map_err(|e| Problem::internal(format!("a stored sweep no longer reads: {e}")))?;
-    Ok(Json(curves))
+) -> OpsResult<Json<FitCurves>> {
+    Ok(Json(ops::fits::curves(&state, fit_id).await?))
 }
 
 /// Cancel a queued fit, or ask a running one to stop.
@@ -157,11 +61,10 @@ async fn cancel(
     Inspector(caller): Inspector,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<Json<FitSummary>> {
-    if state.store.cancel_fit(&caller.label, fit_id).await? {
-        state.jobs.cancel_local(fit_id);
-    }
-    Ok(Json(state.store.fit_summary(fit_id).await?))
+) -> OpsResult<Json<FitSummary>> {
+    Ok(Json(
+        ops::fits::cancel(&state, &caller.label, fit_id).await?,
+    ))
 }
 
 /// Queue a failed or cancelled fit again.
@@ -172,16 +75,8 @@ async fn retry(
     Inspector(caller): Inspector,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<Json<FitSummary>> {
-    state
-        .backpressure
-        .check_queue(&state.store, PartRef::OfFit(fit_id))
-        .await?;
-    // Checked again inside the write, so concurrent retries cannot together pass the bound.
-    let bounds = Some(state.backpressure.queue_bounds());
-    state.store.retry_fit(&caller.label, fit_id, bounds).await?;
-    state.jobs.wake();
-    Ok(Json(state.store.fit_summary(fit_id).await?))
+) -> OpsResult<Json<FitSummary>> {
+    Ok(Json(ops::fits::retry(&state, &caller.label, fit_id).await?))
 }
 
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
@@ -210,7 +105,7 @@ async fn refit(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
     body: Bytes,
-) -> ApiResult<impl IntoResponse> {
+) -> OpsResult<impl IntoResponse> {
     let req: RefitRequest = if body.is_empty() {
         RefitRequest {
             options: serde_json::Value::Null,
@@ -218,25 +113,7 @@ async fn refit(
     } else {
         json_body(&body)?
     };
-    let detail = state.store.fit_detail(fit_id).await?;
-    state
-        .backpressure
-        .check_queue(&state.store, PartRef::OfFit(fit_id))
-        .await?;
-    let options = checked_options(parse_options_value(req.options)?, detail.dcr_ohm)?;
-    let options_json = serde_json::to_string(&options).map_err(Problem::internal)?;
-    let key = crate::jobs::job_key(&state.store.job_input(fit_id).await?, &options_json);
-    let new_id = state
-        .store
-        .refit(
-            &caller.label,
-            fit_id,
-            &options_json,
-            &key,
-            Some(state.backpressure.queue_bounds()),
-        )
-        .await?;
-    state.jobs.wake();
+    let new_id = ops::fits::refit(&state, &caller.label, fit_id, req.options).await?;
     Ok((StatusCode::ACCEPTED, Json(RefitAccepted { fit_id: new_id })))
 }
 
@@ -253,7 +130,7 @@ pub struct Decision {
     pub overriding: bool,
 }
 
-fn decision(body: &Bytes) -> ApiResult<Decision> {
+fn decision(body: &Bytes) -> OpsResult<Decision> {
     if body.is_empty() {
         Ok(Decision::default())
     } else {
@@ -273,21 +150,17 @@ async fn approve(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
     body: Bytes,
-) -> ApiResult<Json<FitDetail>> {
+) -> OpsResult<Json<FitDetail>> {
     let d = decision(&body)?;
-    let reason = match d.reason.as_deref().map(str::trim) {
-        Some("") => {
-            return Err(Problem::validation(
-                "the reason is empty: give one or leave it out",
-            ));
-        }
-        r => r,
-    };
-    state
-        .store
-        .approve_fit(&caller.label, fit_id, reason, d.overriding)
-        .await?;
-    Ok(Json(state.store.fit_detail(fit_id).await?))
+    let detail = ops::fits::approve(
+        &state,
+        &caller.label,
+        fit_id,
+        d.reason.as_deref(),
+        d.overriding,
+    )
+    .await?;
+    Ok(Json(detail))
 }
 
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
@@ -309,28 +182,16 @@ async fn reject(
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
     body: Bytes,
-) -> ApiResult<Json<FitDetail>> {
-    if body.is_empty() {
-        return Err(Problem::validation("a rejection needs a reason"));
-    }
-    let d: Rejection = json_body(&body)?;
-    let reason = Some(d.reason.trim())
-        .filter(|r| !r.is_empty())
-        .ok_or_else(|| Problem::validation("a rejection needs a reason"))?;
-    state
-        .store
-        .reject_fit(&caller.label, fit_id, reason)
-        .await?;
-    Ok(Json(state.store.fit_detail(fit_id).await?))
-}
-
-async fn succeeded_report(state: &AppState, fit_id: i64) -> ApiResult<crate::fit::FitReport> {
-    state.store.fit_report(fit_id).await?.ok_or_else(|| {
-        Problem::new(
-            Kind::Conflict,
-            format!("fit {fit_id} has not succeeded: there is no model yet"),
-        )
-    })
+) -> OpsResult<Json<FitDetail>> {
+    // An empty body has no reason: the operation refuses it as it refuses a blank one.
+    let reason = if body.is_empty() {
+        String::new()
+    } else {
+        json_body::<Rejection>(&body)?.reason
+    };
+    Ok(Json(
+        ops::fits::reject(&state, &caller.label, fit_id, &reason).await?,
+    ))
 }
 
 /// The fitted model as JSON (the report's `model`).
@@ -342,51 +203,15 @@ async fn model_json(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<impl IntoResponse> {
-    let report = succeeded_report(&state, fit_id).await?;
-    let detail = state.store.fit_detail(fit_id).await?;
-    let name = format!("fit-{fit_id}-model.json");
-    // The model's own fields at the top (as before), then where it is valid and where it came from:
-    // a figure read from it outside `band_hz` is an extrapolation.
-    let mut body = serde_json::to_value(&report.model).map_err(Problem::internal)?;
-    if let Some(object) = body.as_object_mut() {
-        object.insert("band_hz".into(), serde_json::json!(report.band_hz));
-        object.insert(
-            "provenance".into(),
-            serde_json::json!({
-                "part_number": detail.summary.part_number,
-                "lot": detail.summary.lot,
-                "fit_id": fit_id,
-                "revision": detail.summary.revision,
-                "sweep_sha256": detail.sha256,
-                "file_name": detail.file_name,
-                "method": detail.method,
-                "engine_version": report.engine_version,
-                "quality": report.assessment.status.as_str(),
-                "approval": detail.summary.approval,
-                "fitted_at": detail.summary.finished_at,
-            }),
-        );
-    }
+) -> OpsResult<impl IntoResponse> {
+    let (name, body) = ops::exports::model_json(&state, fit_id).await?;
     Ok((
         [(
             header::CONTENT_DISPOSITION,
-            format!("attachment; filename=\"{}\"", safe_file_name(&name)),
+            format!("attachment; filename=\"{name}\""),
         )],
         Json(body),
     ))
-}
-
-fn export_context(
-    report: &crate::fit::FitReport,
-    detail: &FitDetail,
-) -> crate::export::ExportContext {
-    let mut ctx = crate::export::ExportContext::for_report(report);
-    ctx.part_number = Some(detail.summary.part_number.clone());
-    ctx.fit_id = Some(detail.summary.fit_id.to_string());
-    ctx.revision = u64::try_from(detail.summary.revision).ok();
-    ctx.sweep_sha256 = Some(detail.sha256.clone());
-    ctx
 }
 
 fn text_download(name: String, text: String) -> axum::response::Response {
@@ -398,63 +223,15 @@ fn text_download(name: String, text: String) -> axum::response::Response {
             ),
             (
                 header::CONTENT_DISPOSITION,
-                format!("attachment; filename=\"{}\"", safe_file_name(&name)),
+                format!(
+                    "attachment; filename=\"{}\"",
+                    ops::exports::safe_file_name(&name)
+                ),
             ),
         ],
         text,
     )
         .into_response()
-}
-
-fn export_problem(e: crate::export::ExportError) -> Problem {
-    Problem::new(
-        Kind::Conflict,
-        format!("this model cannot be exported: {e}"),
-    )
-}
-
-/// Points of the Touchstone export, log-spaced over the sweep band.
-const TOUCHSTONE_POINTS: usize = 401;
-
-/// The text exports of a fitted model.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum TextExport {
-    /// A passive SPICE subcircuit.
-    Subcircuit,
-    /// A Touchstone 1-port over the sweep band (reference impedance: the sweep's, or 50 Ω).
-    Touchstone,
-}
-
-/// A succeeded fit's model as export text, with the file name offered for it (shared by the HTTP
-/// and gRPC interfaces). A fit without a model is a conflict; so is a model the exporter refuses.
-pub async fn export_text(
-    state: &AppState,
-    fit_id: i64,
-    export: TextExport,
-) -> ApiResult<(String, String)> {
-    let report = succeeded_report(state, fit_id).await?;
-    let detail = state.store.fit_detail(fit_id).await?;
-    let ctx = export_context(&report, &detail);
-    let z0 = detail.z0_ohm.unwrap_or(50.0);
-    let text = tokio::task::spawn_blocking(move || match export {
-        TextExport::Subcircuit => crate::export::subcircuit(&report.model, &ctx),
-        TextExport::Touchstone => {
-            let grid = crate::export::log_frequency_grid(
-                report.band_hz[0],
-                report.band_hz[1],
-                TOUCHSTONE_POINTS,
-            )?;
-            crate::export::touchstone::touchstone_1port(&report.model, &grid, z0, &ctx)
-        }
-    })
-    .await
-    .map_err(Problem::internal)?
-    .map_err(export_problem)?;
-    let name = match export {
-        TextExport::Subcircuit => format!("fit-{fit_id}.cir"),
-        TextExport::Touchstone => format!("fit-{fit_id}.s1p"),
-    };
-    Ok((name, text))
 }
 
 /// The model as a passive SPICE subcircuit.
@@ -466,8 +243,8 @@ async fn netlist(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<axum::response::Response> {
-    let (name, text) = export_text(&state, fit_id, TextExport::Subcircuit).await?;
+) -> OpsResult<axum::response::Response> {
+    let (name, text) = ops::exports::export_text(&state, fit_id, TextExport::Subcircuit).await?;
     Ok(text_download(name, text))
 }
 
@@ -480,8 +257,8 @@ async fn touchstone(
     _: Reader,
     State(state): State<AppState>,
     Path(fit_id): Path<i64>,
-) -> ApiResult<axum::response::Response> {
-    let (name, text) = export_text(&state, fit_id, TextExport::Touchstone).await?;
+) -> OpsResult<axum::response::Response> {
+    let (name, text) = ops::exports::export_text(&state, fit_id, TextExport::Touchstone).await?;
     Ok(text_download(name, text))
 }
 

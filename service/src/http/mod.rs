@@ -4,10 +4,9 @@
 //! routes ([`openapi`]).
 
 pub mod auth;
-pub mod backpressure;
 pub mod dashboard;
 pub mod fits;
-pub mod ops;
+pub mod health;
 pub mod parts;
 pub mod problem;
 pub mod queue;
@@ -57,7 +56,7 @@ impl utoipa::Modify for BearerScheme {
 
 fn api_router() -> OpenApiRouter<AppState> {
     OpenApiRouter::with_openapi(ApiDoc::openapi())
-        .merge(ops::router())
+        .merge(health::router())
         .merge(session::router())
         .merge(queue::router())
         .merge(fits::router())
@@ -212,7 +211,7 @@ pub fn router(state: AppState) -> Router {
     let (routes, _) = api_router().split_for_parts();
     routes
         .merge(dashboard::router())
-        .fallback(|| async { problem::Problem::not_found("no such route") })
+        .fallback(|| async { problem::OpsError::not_found("no such route") })
         .layer(middleware::from_fn(record_latency))
         .layer(DefaultBodyLimit::max(max_body))
         .with_state(state)

@@ -1,8 +1,8 @@
 //! `GET /api/v1/queue`: how many fits are in each state.
 
 use super::auth::Reader;
-use super::problem::ApiResult;
 use crate::app::AppState;
+use crate::ops::OpsResult;
 use crate::registry::wire::QueueCounts;
 use axum::Json;
 use axum::extract::State;
@@ -12,8 +12,8 @@ use utoipa_axum::{router::OpenApiRouter, routes};
 #[utoipa::path(get, path = "/api/v1/queue", tag = "fits",
     responses((status = 200, body = QueueCounts), (status = 401, body = super::problem::ProblemBody)),
     security(("bearer" = [])))]
-async fn queue(_: Reader, State(state): State<AppState>) -> ApiResult<Json<QueueCounts>> {
-    Ok(Json(state.store.queue_counts().await?))
+async fn queue(_: Reader, State(state): State<AppState>) -> OpsResult<Json<QueueCounts>> {
+    Ok(Json(crate::ops::fits::counts(&state).await?))
 }
 
 pub fn router() -> OpenApiRouter<AppState> {

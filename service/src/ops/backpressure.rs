@@ -10,7 +10,7 @@
 //! flight bounded; uploads wait for one of a few reading slots, so parsing them never takes more CPU
 //! than the worker pool leaves (fits keep running during an upload flood).
 
-use super::problem::{ApiResult, Kind, Problem};
+use super::error::{ErrorKind, OpsError, OpsResult};
 use crate::settings::Settings;
 use crate::store::Store;
 use crate::store::jobs::PartRef;
@@ -50,15 +50,15 @@ impl Backpressure {
     }
 
     /// Reserves `bytes` of the upload bytes in flight, or refuses with 503 when they are taken.
-    pub fn reserve_upload_bytes(&self, bytes: u64) -> ApiResult<OwnedSemaphorePermit> {
+    pub fn reserve_upload_bytes(&self, bytes: u64) -> OpsResult<OwnedSemaphorePermit> {
         let want = kib(bytes).clamp(1, self.upload_kib_total);
         self.upload_kib
             .clone()
             .try_acquire_many_owned(want)
             .map_err(|_| {
                 metrics::counter!("henrybook_refused_total", "bound" => "upload_bytes").increment(1);
-                Problem::busy(
-                    Kind::Overloaded,
+                OpsError::busy(
+                    ErrorKind::Overloaded,
                     format!(
                         "the service is receiving as many upload bytes as it takes at once ({} MiB); \
                          try again shortly",
@@ -87,12 +87,12 @@ impl Backpressure {
     }
 
     /// Refuses when the queue is full: 503 in all, 429 for the part.
-    pub async fn check_queue(&self, store: &Store, part: PartRef<'_>) -> ApiResult<()> {
+    pub async fn check_queue(&self, store: &Store, part: PartRef<'_>) -> OpsResult<()> {
         let depth = store.queue_depth(part).await?;
         if depth.all >= self.max_queued_fits {
             metrics::counter!("henrybook_refused_total", "bound" => "queue").increment(1);
-            return Err(Problem::busy(
-                Kind::Overloaded,
+            return Err(OpsError::busy(
+                ErrorKind::Overloaded,
                 format!(
                     "{} fits are queued or running, the most this service takes; try again later",
                     depth.all
@@ -102,8 +102,8 @@ impl Backpressure {
         }
         if depth.part >= self.max_queued_fits_per_part {
             metrics::counter!("henrybook_refused_total", "bound" => "part_queue").increment(1);
-            return Err(Problem::busy(
-                Kind::Throttled,
+            return Err(OpsError::busy(
+                ErrorKind::Throttled,
                 format!(
                     "{} fits of this part are queued or running, the most one part may have; try \
                      again later",
