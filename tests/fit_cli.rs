@@ -2,14 +2,11 @@
 //! The files are synthetic (invented models, noise drawn at the reader's own uncertainty model) written
 //! as Touchstone 1.x (1-port reflection, 2-port series-thru) and impedance CSV.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::cli;
 use henrybook::fit::derived;
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::sweep::NoiseModel;
+use henrybook_tests::synth::*;
 use num_complex::Complex64;
 use serde_json::Value;
 use std::fmt::Write as _;
