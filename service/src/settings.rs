@@ -274,4 +274,28 @@ mod tests {
             assert!(e.contains(names), "{flags:?}: {e}");
         }
     }
+
+    #[test]
+    fn times_and_sizes_take_si_prefixes() {
+        let s = settings(&[
+            "--lease-s",
+            "500m",
+            "--request-timeout-s",
+            "1.5k",
+            "--max-body-bytes",
+            "64M",
+            "--max-upload-bytes-in-flight",
+            "1G",
+        ])
+        .unwrap();
+        assert_eq!(s.lease, Duration::from_millis(500));
+        assert_eq!(s.request_timeout, Duration::from_secs(1500));
+        assert_eq!(s.max_body_bytes, 64_000_000);
+        assert_eq!(s.max_upload_bytes_in_flight, 1_000_000_000);
+        // A size is a whole number of bytes; a time is a number.
+        for (flag, value) in [("--max-body-bytes", "1.5"), ("--lease-s", "30x")] {
+            let e = settings(&[flag, value]).unwrap_err().to_string();
+            assert!(e.contains(value), "{flag} {value}: {e}");
+        }
+    }
 }
