@@ -310,6 +310,8 @@ fn help_and_version_answer_on_every_command() {
     ] {
         assert!(out.contains(flag), "fit --help names {flag}: {out}");
     }
+    let (_, out, _) = run(&["serve", "--help"]);
+    assert!(out.contains("SI prefixes"), "{out}");
 }
 
 #[test]

@@ -15,7 +15,9 @@ pub enum ServiceCommand {
         long_about = "Serve the HTTP API, the gRPC interface and the dashboard on a SQLite \
 database, and run the queued fits in a worker pool. Every option can also be set by the environment \
 variable named beside it (the flag wins). SIGTERM or Ctrl-C stops accepting, lets running fits \
-finish for the grace period and gives the rest back to the queue."
+finish for the grace period and gives the rest back to the queue.",
+        after_help = "Times and sizes take SI prefixes: --lease-s 500m, --max-body-bytes 64M (M is \
+10^6 bytes, not 2^20)."
     )]
     Serve(ServeArgs),
     /// Create, list and revoke the bearer tokens of a database.
