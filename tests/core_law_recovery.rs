@@ -1,5 +1,5 @@
 //! The dispersive core's own parameters, recovered from synthetic sweeps of a known core (an invented
-//! 47 µH toroid choke, fit_synth.rs, whose core follows each published law in turn; not a
+//! 47 µH toroid choke, tests/common/synth.rs, whose core follows each published law in turn; not a
 //! measurement). Over independent noise draws, per law: how often model selection names the true law,
 //! and, where it does, how often each fitted parameter (L0, the corner, the law's shape parameters)
 //! lies within its stated 1σ and 2σ of the truth. A normal spread puts 68.3 % within 1σ and 95.4 %
@@ -7,13 +7,10 @@
 //! binomial spread of the draw count. Each law is drawn with a skin-effect term (k_ac) beside it, which
 //! a poor single-pole fit has no use for: the laws must be tried on the structure that keeps it.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::fit::{FitControl, FitOptions, fit};
 use henrybook::model::{CoreDispersion, CoreLaw, FittedModel, LumpedModel};
 use henrybook::sweep::Method;
+use henrybook_tests::synth::*;
 
 fn truth(core: CoreDispersion) -> LumpedModel {
     let mut m = power_choke();

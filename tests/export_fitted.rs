@@ -2,8 +2,7 @@
 //! henrybook's lumped fit, and the fitted model's netlist reproduces the fitted model within the error
 //! it states, as read by the independent MNA solver.
 
-#[path = "mna/mod.rs"]
-mod mna;
+use henrybook_tests::mna;
 
 use henrybook::export::spice::ERROR_BOUND_KEY;
 use henrybook::export::{ExportContext, subcircuit};

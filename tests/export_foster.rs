@@ -1,8 +1,7 @@
 //! Rational models out as series Foster subcircuits, checked by the independent MNA solver, against the
 //! closed form of a hand-computable circuit, and refused when not passive.
 
-#[path = "mna/mod.rs"]
-mod mna;
+use henrybook_tests::mna;
 
 use henrybook::export::foster::{FosterForm, foster_realisation, rational_subcircuit};
 use henrybook::export::spice::ERROR_BOUND_KEY;

@@ -2,8 +2,7 @@
 //! always give a netlist the independent MNA solver reproduces within the stated error; random
 //! pole-residue models are either exported that way or refused with an error, never a panic.
 
-#[path = "mna/mod.rs"]
-mod mna;
+use henrybook_tests::mna;
 
 use henrybook::export::spice::ERROR_BOUND_KEY;
 use henrybook::export::{ExportContext, ExportError as HbExportError, subcircuit};

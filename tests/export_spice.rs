@@ -1,7 +1,6 @@
 //! Lumped models out as SPICE subcircuits, checked by an independent MNA solver that reads the text.
 
-#[path = "mna/mod.rs"]
-mod mna;
+use henrybook_tests::mna;
 
 use henrybook::export::ExportContext;
 use henrybook::export::spice::{ERROR_BOUND_KEY, lumped_subcircuit};

@@ -2,14 +2,11 @@
 //! The files are synthetic (invented models, noise drawn at the reader's own uncertainty model) written
 //! as Touchstone 1.x (1-port reflection, 2-port series-thru) and impedance CSV.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::cli;
 use henrybook::fit::derived;
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::sweep::NoiseModel;
+use henrybook_tests::synth::*;
 use num_complex::Complex64;
 use serde_json::Value;
 use std::fmt::Write as _;
@@ -253,5 +250,240 @@ fn impedance_prints_the_arrays_the_file_implies() {
         let d = Complex64::new(re[k].as_f64().unwrap(), im[k].as_f64().unwrap()) - z;
         assert!(d.norm() < 6.0 * sg[k].as_f64().unwrap(), "point {k}: {d}");
     }
+    std::fs::remove_dir_all(dir).ok();
+}
+
+/// Every command path of the command line, for the help and version checks.
+const COMMANDS: [&str; 10] = [
+    "",
+    "fit",
+    "impedance",
+    "serve",
+    "token",
+    "token create",
+    "token list",
+    "token revoke",
+    "demo",
+    "verify",
+];
+
+fn words(cmd: &str, flag: &str) -> Vec<String> {
+    cmd.split_whitespace()
+        .chain([flag])
+        .map(String::from)
+        .collect()
+}
+
+#[test]
+fn help_and_version_answer_on_every_command() {
+    for cmd in COMMANDS {
+        for flag in ["--help", "-h"] {
+            let args = words(cmd, flag);
+            let args: Vec<&str> = args.iter().map(String::as_str).collect();
+            let (code, out, err) = run(&args);
+            assert_eq!(code, 0, "{args:?}: {err}");
+            assert!(out.contains("Usage: henrybook"), "{args:?}: {out}");
+            assert!(err.is_empty(), "{args:?}: {err}");
+        }
+        let args = words(cmd, "--version");
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let (code, out, _) = run(&args);
+        assert_eq!(code, 0, "{args:?}");
+        // `henrybook 0.1.0`, or `henrybook-fit 0.1.0` on a command (the service's own version).
+        let version = out.trim().rsplit(' ').next().unwrap_or_default();
+        assert!(out.starts_with("henrybook"), "{args:?}: {out}");
+        assert_eq!(version, henrybook::fit::ENGINE_VERSION, "{args:?}: {out}");
+    }
+    // The top-level help describes every command in a line of its own.
+    let (_, out, _) = run(&["--help"]);
+    for cmd in ["fit", "impedance", "serve", "token", "demo", "verify"] {
+        assert!(
+            out.lines()
+                .any(|l| l.trim_start().starts_with(cmd) && l.len() > cmd.len() + 20),
+            "the help describes {cmd}: {out}"
+        );
+    }
+    // Every option of `fit` is explained.
+    let (_, out, _) = run(&["fit", "--help"]);
+    for flag in [
+        "--method", "--z0", "--dcr", "--family", "--at", "--json", "--turns", "--toroid",
+    ] {
+        assert!(out.contains(flag), "fit --help names {flag}: {out}");
+    }
+    let (_, out, _) = run(&["serve", "--help"]);
+    assert!(out.contains("SI prefixes"), "{out}");
+}
+
+#[test]
+fn a_file_named_like_an_option_is_read_after_double_dash() {
+    // `-h` asks for help; after `--` it is a file name (here one that does not exist).
+    let (code, out, _) = run(&["fit", "-h"]);
+    assert_eq!(code, 0);
+    assert!(out.contains("Usage:"), "{out}");
+    let (code, out, _) = run(&["fit", "--json", "--", "-h"]);
+    assert_eq!(code, 1, "{out}");
+    let line: Value = serde_json::from_str(out.trim()).unwrap();
+    assert_eq!(line["file"], "-h");
+    assert_eq!(line["status"], "failed");
+    assert!(
+        line["error"].as_str().unwrap().contains("cannot read -h"),
+        "{line}"
+    );
+}
+
+#[test]
+fn values_with_si_prefixes_fit_as_their_plain_numbers() {
+    let dir = temp_dir("si");
+    let choke = dir.join("choke.csv");
+    write_csv(&choke, &power_choke(), [1e3, 200e6], 201, 6);
+    let file = choke.to_str().unwrap();
+    let fit_json = |at: &str, dcr: &str| {
+        let (code, out, err) = run(&["fit", file, "--at", at, "--dcr", dcr, "--json"]);
+        assert_eq!(code, 0, "{err}{out}");
+        serde_json::from_str::<Value>(out.trim()).unwrap()
+    };
+    let prefixed = fit_json("100k,1MHz", "120m");
+    let plain = fit_json("100000,1e6", "0.12");
+    let (a, b) = (&prefixed["at_frequencies"], &plain["at_frequencies"]);
+    assert_eq!(a.as_array().unwrap().len(), 2);
+    for k in 0..2 {
+        assert_eq!(a[k]["frequency_hz"], b[k]["frequency_hz"]);
+        let (la, lb) = (
+            a[k]["l_eff_h"].as_f64().unwrap(),
+            b[k]["l_eff_h"].as_f64().unwrap(),
+        );
+        assert!(rel(la, lb) < 1e-9, "{la} {lb}");
+    }
+    assert_eq!(a[0]["frequency_hz"], 1e5);
+    let rdc = |v: &Value| v["model"]["rdc_ohm"].as_f64().unwrap();
+    assert!(rel(rdc(&prefixed), rdc(&plain)) < 1e-9);
+    // A prefix that is not SI, or a value that is not positive, is a usage error naming it.
+    for (arg, needle) in [
+        ("--at=100q", "\"100q\" is not a number"),
+        ("--dcr=-5m", "-0.005 is not a positive number"),
+        ("--z0=0", "0 is not a positive number"),
+    ] {
+        let (code, _, err) = run(&["fit", file, arg]);
+        assert_eq!(code, 2, "{arg}");
+        assert!(err.contains(needle), "{arg}: {err}");
+    }
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn at_adds_l_and_q_columns_to_the_table() {
+    let dir = temp_dir("at-table");
+    let choke = dir.join("choke.csv");
+    write_csv(&choke, &power_choke(), [1e3, 200e6], 201, 7);
+    let file = choke.to_str().unwrap();
+    let (code, out, _) = run(&["fit", file, "--at", "100k,1M"]);
+    assert_eq!(code, 0, "{out}");
+    let mut lines = out.lines();
+    // Columns are separated by at least two spaces; a cell holds at most one.
+    let cells = |line: &str| -> Vec<String> {
+        line.split("  ")
+            .map(str::trim)
+            .filter(|c| !c.is_empty())
+            .map(String::from)
+            .collect()
+    };
+    let header = cells(lines.next().unwrap());
+    let row = cells(lines.next().unwrap());
+    assert_eq!(header.len(), row.len(), "{header:?} {row:?}");
+    let (code, json, _) = run(&["fit", file, "--at", "100k,1M", "--json"]);
+    assert_eq!(code, 0);
+    let line: Value = serde_json::from_str(json.trim()).unwrap();
+    for (k, label) in ["100 kHz", "1 MHz"].iter().enumerate() {
+        let point = &line["at_frequencies"][k];
+        let l_col = header.iter().position(|h| *h == format!("L @ {label}"));
+        let q_col = header.iter().position(|h| *h == format!("Q @ {label}"));
+        let (l_col, q_col) = (l_col.expect("L column"), q_col.expect("Q column"));
+        assert_eq!(
+            row[l_col],
+            cli::eng(point["l_eff_h"].as_f64().unwrap(), "H")
+        );
+        assert_eq!(row[q_col], format!("{:.2}", point["q"].as_f64().unwrap()));
+    }
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn token_list_shows_every_token_and_revoke_stops_one() {
+    let dir = temp_dir("tokens");
+    let db = dir.join("tokens.db");
+    let db = db.to_str().unwrap();
+    let (code, token, err) = run(&[
+        "token",
+        "create",
+        "--role",
+        "inspector",
+        "--label",
+        "bench 3",
+        "--database",
+        db,
+    ]);
+    assert_eq!(code, 0, "{err}");
+    assert!(err.contains("token 1 (inspector)"), "{err}");
+    let token = token.trim().to_string();
+    let (code, other, _) = run(&["token", "create", "--role", "reader", "--database", db]);
+    assert_eq!(code, 0);
+
+    let rows = |out: &str| -> Vec<Vec<String>> {
+        out.lines()
+            .skip(1)
+            .map(|l| l.split_whitespace().map(String::from).collect())
+            .collect()
+    };
+    let (code, out, _) = run(&["token", "list", "--database", db]);
+    assert_eq!(code, 0);
+    let header: Vec<&str> = out.lines().next().unwrap().split_whitespace().collect();
+    assert_eq!(header, ["id", "role", "created", "revoked", "label"]);
+    assert!(!out.contains(&token), "the list never shows a token");
+    let listed = rows(&out);
+    assert_eq!(listed.len(), 2, "{out}");
+    assert_eq!(listed[0][..2], ["1", "inspector"]);
+    assert_eq!(listed[0][3], "-");
+    assert_eq!(listed[0][4..].join(" "), "bench 3");
+    assert_eq!(listed[1][..2], ["2", "reader"]);
+    assert_eq!(listed[1][4], "reader-2");
+    // Created is an RFC 3339 time.
+    assert!(
+        henrybook::store::parse_rfc3339(&listed[0][2]).is_some(),
+        "{out}"
+    );
+
+    let (code, out, err) = run(&["token", "revoke", "1", "--database", db]);
+    assert_eq!(code, 0, "{err}");
+    assert!(
+        out.contains("token 1 (inspector, bench 3) revoked"),
+        "{out}"
+    );
+    let (_, out, _) = run(&["token", "list", "--database", db]);
+    let listed = rows(&out);
+    assert!(
+        henrybook::store::parse_rfc3339(&listed[0][3]).is_some(),
+        "{out}"
+    );
+    assert_eq!(listed[1][3], "-");
+
+    // Revoking again or an unknown id fails with the reason; a non-number is a usage error.
+    let (code, _, err) = run(&["token", "revoke", "1", "--database", db]);
+    assert_eq!(code, 1);
+    assert!(err.contains("already revoked"), "{err}");
+    let (code, _, err) = run(&["token", "revoke", "99", "--database", db]);
+    assert_eq!(code, 1);
+    assert!(err.contains("no token 99"), "{err}");
+    let (code, _, err) = run(&["token", "revoke", "first", "--database", db]);
+    assert_eq!(code, 2, "{err}");
+
+    // The revoked token authenticates nobody; the other one still does.
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    runtime.block_on(async {
+        let store = henrybook::store::Store::open(Path::new(db)).await.unwrap();
+        assert!(store.authenticate(&token).await.unwrap().is_none());
+        assert!(store.authenticate(other.trim()).await.unwrap().is_some());
+        assert!(store.verify_integrity().await.unwrap().ok());
+        store.close().await;
+    });
     std::fs::remove_dir_all(dir).ok();
 }

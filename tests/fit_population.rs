@@ -1,5 +1,5 @@
 //! The lumped fit on a population of invented parts drawn from the space users produce (see
-//! `tests/population/mod.rs`: 100 nH–10 mH, SRF inside the band or up to 3× above it, sweeps starting
+//! `tests/common/population.rs`: 100 nH–10 mH, SRF inside the band or up to 3× above it, sweeps starting
 //! 3–6 decades below the top, log, linear and segmented grids, every method with its noise), read
 //! through the real readers. A bounded draw of the population the benchmark (`--example population`)
 //! runs in full, with a seed the benchmark does not use.
@@ -10,8 +10,7 @@
 //! honest status calls most found fits `ok` (a found fit may still be `poor` where the method cannot
 //! measure the part).
 
-#[path = "population/mod.rs"]
-mod population;
+use henrybook_tests::population;
 
 use henrybook::fit::lumped::NESTING_TOLERANCE;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit};

@@ -4,13 +4,10 @@
 //! within 4 stated σ where the noise floor hides it).
 //! A modest case count keeps it to seconds.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::synthetic_sweep;
 use henrybook::fit::{FitControl, FitOptions, Termination, derived, fit};
 use henrybook::model::{FittedModel, LumpedModel};
 use henrybook::sweep::Method;
+use henrybook_tests::synth::{self, synthetic_sweep};
 use proptest::prelude::*;
 use std::f64::consts::PI;
 
@@ -107,7 +104,7 @@ fn junk_sweep() -> impl Strategy<Value = henrybook::sweep::Sweep> {
         proptest::collection::vec((-1e4f64..1e4, -1e4f64..1e4, 1e-6f64..1e3), 120),
     )
         .prop_map(|(n, f0, span, pts)| {
-            let frequency_hz = fit_synth::log_grid(f0, f0 * span, n);
+            let frequency_hz = synth::log_grid(f0, f0 * span, n);
             henrybook::sweep::Sweep {
                 impedance_ohm: pts[..n]
                     .iter()

@@ -1,16 +1,13 @@
 //! Parameter recovery: synthetic sweeps made from known, invented models of several part types with
-//! realistic noise for the measurement method (see fit_synth.rs), fitted with the full engine (starting
+//! realistic noise for the measurement method (see tests/common/synth.rs), fitted with the full engine (starting
 //! values, LM, model selection). Targets from the issue: L0 within 0.5 %, Cp 1 %, Rp 3 %, Rdc 3 % where
 //! the method can see it, SRF 0.2 %.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::fit::derived;
 use henrybook::fit::{DcrReading, FitControl, FitOptions, FitReport, Termination, fit};
 use henrybook::model::{FittedModel, ImpedanceModel as _, LumpedModel};
 use henrybook::sweep::Method;
+use henrybook_tests::synth::*;
 
 struct Expect {
     /// Rdc within 3 %; otherwise within 4 stated σ unless `rdc_unchecked`.

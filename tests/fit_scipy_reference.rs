@@ -1,21 +1,18 @@
 //! Reference check against scipy: the same synthetic sweeps (invented models with realistic noise, see
-//! fit_synth.rs) fitted by `scipy.optimize.least_squares` (methods "trf" and "lm", tolerances 1e-12)
+//! tests/common/synth.rs) fitted by `scipy.optimize.least_squares` (methods "trf" and "lm", tolerances 1e-12)
 //! with the same model, the same log-parameters and the same 1/σ weights, written independently in
 //! tests/python/fit_scipy.py. scipy starts from the true parameters (where the chosen structure has an
 //! element the truth lacks, from henrybook's curve-based starting value); henrybook starts from its
 //! own reading of the curve. Requirement: henrybook's weighted cost χ² ≤ scipy's × 1.0001.
 //! Source: scipy.optimize.least_squares (SciPy reference documentation), as the reference optimiser.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::fit::lumped::prepare;
 use henrybook::fit::{FitControl, FitOptions, fit, initial};
 use henrybook::model::lumped::Structure;
 use henrybook::model::{FittedModel, LumpedModel};
 use henrybook::sweep::Method;
 use henrybook_tests::run_reference_script;
+use henrybook_tests::synth::*;
 use serde_json::{Value, json};
 
 #[test]

@@ -1,8 +1,7 @@
 //! Reference check of the derived SRF against the Thomson formula f = 1/(2π√(LC)).
 //! Source: Thomson formula; 10 µH with 5 pF → 22.5079 MHz (value recorded in shared/TOOLBOX.md).
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
+use henrybook_tests::synth;
 
 use henrybook::fit::{FitControl, FitOptions, derived, fit};
 use henrybook::model::{FittedModel, LumpedModel};
@@ -34,7 +33,7 @@ fn derived_srf_of_an_ideal_l_parallel_c_is_the_thomson_frequency() {
 fn srf_of_a_fitted_sweep_of_a_low_loss_l_parallel_c_is_the_thomson_frequency() {
     // A synthetic sweep (invented part, analyser-like noise) of 10 µH ‖ 5 pF with 0.2 Ω series
     // resistance; with that loss the Im Z zero moves by (R²C/L)/2 ≈ 1e-8 relative, far below 0.2 %.
-    let sweep = fit_synth::synthetic_sweep(&ideal(0.2), 10e3, 100e6, 801, Method::Direct, 42);
+    let sweep = synth::synthetic_sweep(&ideal(0.2), 10e3, 100e6, 801, Method::Direct, 42);
     let report = fit(&sweep, &FitOptions::default(), &FitControl::default()).unwrap();
     let srf = report.derived.srf_hz.expect("SRF in band");
     assert!((srf / 22.5079e6 - 1.0).abs() < 2e-3, "{srf}");

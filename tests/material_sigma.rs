@@ -5,16 +5,13 @@
 //! The choke has no lead inductance here: with 3 nH of it the model selection often leaves it out, and
 //! the bias of that misspecified model (not the σ) brings the coverage down to 56 % / 86 %.
 
-#[path = "fit_synth.rs"]
-mod fit_synth;
-
-use fit_synth::*;
 use henrybook::fit::{FitControl, FitOptions, fit};
 use henrybook::model::material::{Construction, CoreShape, material_report};
 use henrybook::model::{CoreDispersion, CoreLaw, LumpedModel};
 use henrybook::sweep::Method;
+use henrybook_tests::synth::*;
 
-/// The invented power choke (fit_synth.rs) without lead inductance, its core a dispersion law.
+/// The invented power choke (tests/common/synth.rs) without lead inductance, its core a dispersion law.
 fn truth(law: CoreLaw, beta: f64) -> LumpedModel {
     let mut m = power_choke();
     m.rp_ohm = None;

@@ -1,18 +1,15 @@
 //! Vector fitting: exact pole recovery, automatic order, passivity enforcement, robustness, bad input.
 
-#[path = "vector_fit_support.rs"]
-mod support;
-
 use henrybook::fit::passivity::check_passivity;
 use henrybook::fit::vector::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitError, FitOptions, ModelFamily, Termination, fit};
 use henrybook::model::rational::{ComplexPole, RealPole};
 use henrybook::model::{FittedModel, ImpedanceModel, RationalModel};
 use henrybook::sweep::{Method, Sweep};
+use henrybook_tests::vector_fit_synth::*;
 use num_complex::Complex64;
 use proptest::prelude::*;
 use std::f64::consts::PI;
-use support::*;
 
 fn rational_options() -> FitOptions {
     FitOptions {

@@ -12,16 +12,13 @@
 //! passivity enforcement (scikit-rf enforces none for Z), by the same RMS error sqrt(mean |Z − Z_fit|²)
 //! in ohm against the given data. henrybook's passive model is reported beside it.
 
-#[path = "vector_fit_support.rs"]
-mod support;
-
 use henrybook::fit::vector::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitOptions, ModelFamily, fit};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::Sweep;
 use henrybook_tests::run_reference_script;
+use henrybook_tests::vector_fit_synth::*;
 use serde_json::json;
-use support::*;
 
 fn rms_ohm(sweep: &Sweep, model: &dyn ImpedanceModel) -> f64 {
     let ss: f64 = sweep

@@ -1,5 +1,5 @@
 //! Benchmarks of the lumped fit on a 1601-point synthetic sweep (an invented 47 µH power choke with
-//! analyser-like noise, see tests/fit_synth.rs):
+//! analyser-like noise, see tests/common/synth.rs):
 //! - `fit_1601/single_structure`: LM on the structure l0+rdc+cp+rp+k_ac+ls from the curve-based
 //!   starting values — the same problem tests/bench/fit_vs_scipy.py gives scipy `least_squares`;
 //! - `fit_1601/normal_equations`: one fused pass (χ², JᵀJ, Jᵀr) over the 1601 points, the unit of
@@ -10,7 +10,10 @@
 //! Before measuring, the sweep, structure and starting point are written to
 //! target/bench-data/fit_1601.json for the scipy side of the comparison.
 
-#[path = "../../tests/fit_synth.rs"]
+// The tests' synthetic sweeps (a benchmark of this crate cannot depend on henrybook-tests, which
+// depends on it).
+#[path = "../../tests/common/synth.rs"]
+#[allow(dead_code)]
 mod fit_synth;
 
 use criterion::{Criterion, criterion_group, criterion_main};

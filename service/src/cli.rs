@@ -1,7 +1,8 @@
-//! The command line. `fit` and `impedance` run the numeric core on files; `serve`, `token` and `demo`
-//! belong to the service (see [`crate::server_cli`]).
+//! The command line: one clap tree for every command. `fit` and `impedance` run the numeric core on
+//! files (here); `serve`, `token`, `demo` and `verify` belong to the service ([`crate::server_cli`]).
 //!
-//! Parsed with clap (`--help` and `--version` on every command; values take SI prefixes).
+//! `--help` (`-h`) and `--version` answer on every command; a file whose name starts with `-` goes
+//! after `--`. Values take SI prefixes through one parser, [`crate::units::parse_si`].
 //!
 //! `henrybook fit FILE... [--method M] [--z0 OHM] [--dcr OHM] [--family lumped|rational]
 //! [--at HZ,...] [--json]` fits every file in one process (`--at`: frequencies for effective L and Q,
@@ -18,21 +19,18 @@
 
 use crate::fit::{self, DcrReading, FitControl, FitOptions, FitReport, ModelFamily};
 use crate::model::FittedModel;
+use crate::server_cli::ServiceCommand;
 use crate::sweep::{self, Method, ReadOptions, Sweep};
+use crate::units::parse_positive_si;
 use clap::{Args, Parser, Subcommand, ValueEnum};
 use serde_json::{Value, json};
 use std::io::Write;
 use std::process::ExitCode;
 
-/// The service's own commands, listed in the top-level help (each has its own `--help`).
-const SERVICE_COMMANDS: &str = "\
-Service commands:
-  serve    Serve the HTTP API and the gRPC interface, and run fits
-  token    Create, list and revoke bearer tokens
-  demo     Run the service on a demo database with invented parts and sweeps
-  verify   Check a database's audit trail and stored verdicts
-
-Values take SI prefixes: --at 100k,1M  --dcr 46.35m  --z0 50";
+/// Shown under the top-level help.
+const AFTER_HELP: &str = "\
+Values take SI prefixes (p, n, u or µ, m, k, M, G): --at 100k,1M  --dcr 46.35m  --z0 50.
+Each command has its own --help. A file whose name starts with '-' goes after '--'.";
 
 #[derive(Debug, Parser)]
 #[command(
@@ -40,7 +38,10 @@ Values take SI prefixes: --at 100k,1M  --dcr 46.35m  --z0 50";
     version,
     propagate_version = true,
     about = "Fit high-frequency models to inductor impedance sweeps; serve the registry",
-    after_help = SERVICE_COMMANDS
+    long_about = "Fit high-frequency models (lumped or rational, with uncertainty) to impedance \
+sweeps of inductors from Touchstone or CSV files, and serve the registry of parts, sweeps and fits \
+that design tools query over HTTP and gRPC.",
+    after_help = AFTER_HELP
 )]
 struct Cli {
     #[command(subcommand)]
@@ -65,6 +66,8 @@ z_real_ohm, z_imag_ohm, sigma_ohm) or one JSON object with --json, for any file 
 (also one too short to fit). The reader's warnings and a 0 Hz row's DC reading go to standard error."
     )]
     Impedance(ImpedanceArgs),
+    #[command(flatten)]
+    Service(ServiceCommand),
 }
 
 /// How a file was measured.
@@ -105,7 +108,7 @@ struct ReadArgs {
     #[arg(long, value_enum)]
     method: Option<MethodArg>,
     /// Reference impedance in ohms, when the file does not state it (SI prefixes: 50, 75, 1k).
-    #[arg(long, value_name = "OHM", value_parser = positive_si)]
+    #[arg(long, value_name = "OHM", value_parser = parse_positive_si)]
     z0: Option<f64>,
     /// One JSON object per file per line instead of a table.
     #[arg(long)]
@@ -120,13 +123,13 @@ struct FitArgs {
     #[command(flatten)]
     read: ReadArgs,
     /// A four-wire DC resistance reading in ohms that pins Rdc (SI prefixes: 46.35m).
-    #[arg(long, value_name = "OHM", value_parser = positive_si)]
+    #[arg(long, value_name = "OHM", value_parser = parse_positive_si)]
     dcr: Option<f64>,
     /// Model family.
     #[arg(long, value_enum, default_value = "lumped")]
     family: FamilyArg,
     /// Frequencies at which to give effective L and Q, comma-separated (SI prefixes: 100k,1M).
-    #[arg(long, value_name = "HZ", value_delimiter = ',', value_parser = positive_si)]
+    #[arg(long, value_name = "HZ", value_delimiter = ',', value_parser = parse_positive_si)]
     at: Vec<f64>,
     #[command(flatten)]
     construction: ConstructionArgs,
@@ -137,22 +140,22 @@ struct FitArgs {
 #[derive(Debug, Args)]
 struct ConstructionArgs {
     /// Turns of the winding (with --toroid or --core-area and --core-path).
-    #[arg(long, value_name = "N", value_parser = positive_si)]
+    #[arg(long, value_name = "N", value_parser = parse_positive_si)]
     turns: Option<f64>,
     /// A toroid's outer diameter, inner diameter and height in metres (SI prefixes: 9.5m,4.75m,3.2m).
-    #[arg(long, value_name = "OD,ID,H", value_delimiter = ',', value_parser = positive_si)]
+    #[arg(long, value_name = "OD,ID,H", value_delimiter = ',', value_parser = parse_positive_si)]
     toroid: Option<Vec<f64>>,
     /// Any core's effective magnetic area in m² (with --core-path).
-    #[arg(long, value_name = "M2", value_parser = positive_si)]
+    #[arg(long, value_name = "M2", value_parser = parse_positive_si)]
     core_area: Option<f64>,
     /// Any core's effective magnetic path length in m (with --core-area).
-    #[arg(long, value_name = "M", value_parser = positive_si)]
+    #[arg(long, value_name = "M", value_parser = parse_positive_si)]
     core_path: Option<f64>,
     /// Air gap in m (gapped cores; shorter than the magnetic path).
-    #[arg(long, value_name = "M", value_parser = positive_si)]
+    #[arg(long, value_name = "M", value_parser = parse_positive_si)]
     gap: Option<f64>,
     /// The material's nominal initial permeability, for the expected L0.
-    #[arg(long, value_name = "MU", value_parser = positive_si)]
+    #[arg(long, value_name = "MU", value_parser = parse_positive_si)]
     initial_permeability: Option<f64>,
 }
 
@@ -211,24 +214,19 @@ struct ImpedanceArgs {
     read: ReadArgs,
 }
 
-/// A positive finite number with an optional SI prefix and unit ([`crate::units::parse_si`]).
-fn positive_si(text: &str) -> Result<f64, String> {
-    match crate::units::parse_si(text) {
-        Ok(x) if x.is_finite() && x > 0.0 => Ok(x),
-        Ok(x) => Err(format!("{x} is not a positive number")),
-        Err(e) => Err(e),
-    }
-}
-
+/// The binary's entry point: parses the arguments, writes to standard output and error (unlocked, so
+/// that the service's log lines are never held up) and returns the exit status.
 pub fn main(args: Vec<String>) -> ExitCode {
-    match args.first().map(String::as_str) {
-        Some("serve" | "token" | "demo" | "verify") => crate::server_cli::main(args),
-        _ => {
-            let stdout = std::io::stdout();
-            let stderr = std::io::stderr();
-            ExitCode::from(run(&args, &mut stdout.lock(), &mut stderr.lock()))
-        }
+    let (mut out, mut err) = (std::io::stdout(), std::io::stderr());
+    let cli = match parse(&args, &mut out, &mut err) {
+        Ok(cli) => cli,
+        Err(code) => return ExitCode::from(code),
+    };
+    if let Cmd::Service(_) = cli.command {
+        // Before the service's runtime starts any thread.
+        crate::server_cli::limit_malloc_arenas();
     }
+    ExitCode::from(execute(cli, &mut out, &mut err))
 }
 
 /// What `fit` and `impedance` were asked to do.
@@ -251,24 +249,31 @@ fn read_options(r: &ReadArgs) -> ReadOptions {
     }
 }
 
-/// Runs `fit` or `impedance` with output to the given writers; returns the exit code (help and
-/// version go to `out` with 0, usage errors to `err` with 2).
+/// Runs a command line (without the program name) with output to the given writers and returns the
+/// exit status: help and version go to `out` with 0, usage errors to `err` with 2.
 pub fn run(args: &[String], out: &mut dyn Write, err: &mut dyn Write) -> u8 {
-    let cli = match Cli::try_parse_from(
-        std::iter::once("henrybook".to_string()).chain(args.iter().cloned()),
-    ) {
-        Ok(c) => c,
-        Err(e) => {
+    match parse(args, out, err) {
+        Ok(cli) => execute(cli, out, err),
+        Err(code) => code,
+    }
+}
+
+/// The parsed command line, or the exit status after help, version or a usage error was written.
+fn parse(args: &[String], out: &mut dyn Write, err: &mut dyn Write) -> Result<Cli, u8> {
+    Cli::try_parse_from(std::iter::once("henrybook".to_string()).chain(args.iter().cloned()))
+        .map_err(|e| {
             let text = e.render().to_string();
-            return if e.use_stderr() {
+            if e.use_stderr() {
                 let _ = write!(err, "{text}");
                 2
             } else {
                 let _ = write!(out, "{text}");
                 0
-            };
-        }
-    };
+            }
+        })
+}
+
+fn execute(cli: Cli, out: &mut dyn Write, err: &mut dyn Write) -> u8 {
     match cli.command {
         Cmd::Fit(a) => {
             let construction = match a.construction.construction() {
@@ -301,6 +306,7 @@ pub fn run(args: &[String], out: &mut dyn Write, err: &mut dyn Write) -> u8 {
             };
             run_impedance(&flags, out, err)
         }
+        Cmd::Service(command) => crate::server_cli::run(command, out, err),
     }
 }
 
@@ -650,7 +656,20 @@ mod tests {
 
     #[test]
     fn help_and_version_answer_on_every_command() {
-        for cmdline in ["--help", "-h", "fit --help", "fit -h", "impedance --help"] {
+        for cmdline in [
+            "--help",
+            "-h",
+            "fit --help",
+            "fit -h",
+            "impedance --help",
+            "serve --help",
+            "token --help",
+            "token create -h",
+            "token list --help",
+            "token revoke --help",
+            "demo --help",
+            "verify --help",
+        ] {
             let (code, out, err) = run_str(cmdline);
             assert_eq!(code, 0, "{cmdline}: {err}");
             assert!(out.contains("Usage:"), "{cmdline}: {out}");
@@ -671,7 +690,7 @@ mod tests {
         for cmd in ["fit", "impedance", "serve", "token", "demo", "verify"] {
             assert!(out.contains(cmd), "the top-level help names {cmd}");
         }
-        for cmdline in ["--version", "fit --version"] {
+        for cmdline in ["--version", "fit --version", "token revoke --version"] {
             let (code, out, _) = run_str(cmdline);
             assert_eq!(code, 0);
             assert!(out.contains(env!("CARGO_PKG_VERSION")), "{cmdline}: {out}");

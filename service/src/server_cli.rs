@@ -1,37 +1,44 @@
-//! `henrybook serve`, `henrybook token create`, `henrybook demo`.
+//! The service's commands: `serve`, `token create|list|revoke`, `demo` (server_cli/demo.rs) and
+//! `verify`. They are part of the one command tree of [`crate::cli`], which parses the arguments and
+//! hands a [`ServiceCommand`] to [`run`].
 
 use crate::settings::{DatabaseArgs, LogFormat, ServeArgs, Settings};
 use crate::store::Store;
 use crate::store::tokens::Role;
-use clap::{Parser, Subcommand};
-use std::process::ExitCode;
-
-#[derive(Debug, Parser)]
-#[command(
-    name = "henrybook",
-    version,
-    propagate_version = true,
-    about = "The henrybook registry service"
-)]
-struct Cli {
-    #[command(subcommand)]
-    command: Command,
-}
+use clap::Subcommand;
+use std::io::Write;
 
 #[derive(Debug, Subcommand)]
-enum Command {
-    /// Serve the HTTP API and the gRPC interface, and run fits.
+pub enum ServiceCommand {
+    /// Serve the HTTP API, the gRPC interface and the dashboard, and run the fits.
+    #[command(
+        long_about = "Serve the HTTP API, the gRPC interface and the dashboard on a SQLite \
+database, and run the queued fits in a worker pool. Every option can also be set by the environment \
+variable named beside it (the flag wins). SIGTERM or Ctrl-C stops accepting, lets running fits \
+finish for the grace period and gives the rest back to the queue.",
+        after_help = "Times and sizes take SI prefixes: --lease-s 500m, --max-body-bytes 64M (M is \
+10^6 bytes, not 2^20)."
+    )]
     Serve(ServeArgs),
-    /// Manage bearer tokens.
+    /// Create, list and revoke the bearer tokens of a database.
     Token {
         #[command(subcommand)]
         command: TokenCommand,
     },
-    /// Start the service on a local demo database, load the demo parts and sweeps through the API,
-    /// print the results, and keep serving until Ctrl-C.
+    /// Run the service on a demo database with the invented parts and sweeps of demo-data/.
+    #[command(
+        long_about = "Start the service on a local demo database, load the invented parts and \
+sweeps of demo-data/manifest.json through its own HTTP API, print the results, verdicts, a band \
+query, the lots out of control and tokens to explore with, then keep serving until Ctrl-C. Run it \
+from the repository root. Running it again reuses the database."
+    )]
     Demo(crate::server_cli::demo::DemoArgs),
-    /// Check the record's integrity: the audit trail's hash chain, the results it recorded, and every
-    /// stored verdict against its result and the part's limits. Exit status 1 when anything is wrong.
+    /// Check a database's audit trail, the results it recorded and every stored verdict.
+    #[command(
+        long_about = "Check the record's integrity: the audit trail's hash chain, the results it \
+recorded, and every stored verdict against its result and the part's limits. Prints the head hash \
+(keep it elsewhere to detect a rewritten file). Exit status 1 when anything is wrong."
+    )]
     Verify {
         #[command(flatten)]
         database: DatabaseArgs,
@@ -39,29 +46,43 @@ enum Command {
 }
 
 #[derive(Debug, Subcommand)]
-enum TokenCommand {
-    /// List every token: id, role, label, when it was created and revoked (never the token itself,
-    /// which is not stored).
+pub enum TokenCommand {
+    /// Create a token and print it once (only its hash is stored).
+    #[command(
+        long_about = "Create a token and print it once on standard output (only its SHA-256 is \
+stored, so it cannot be shown again). Roles: reader (queries and status), inspector (also uploads, \
+cancel and retry), engineer (also limits, approve, reject and refit)."
+    )]
+    Create {
+        /// What the token may do: reader, inspector or engineer.
+        #[arg(long, value_parser = parse_role, value_name = "ROLE")]
+        role: Role,
+        /// Who the token is for (the actor named in the audit trail; default ROLE-ID).
+        #[arg(long)]
+        label: Option<String>,
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
+    /// List every token: id, role, label, when it was created and revoked.
+    #[command(
+        long_about = "List every token, revoked ones included: id, role, when it was created and \
+revoked, and its label. The token itself is never shown (it is not stored), and when a token was \
+last used is not recorded."
+    )]
     List {
         #[command(flatten)]
         database: DatabaseArgs,
     },
-    /// Revoke a token by its id (from `token list`): it stops working at once, also for a running
-    /// service, and the audit trail records it.
+    /// Revoke a token by its id (from `token list`).
+    #[command(
+        long_about = "Revoke a token by its id (from `token list`): it stops working at once, also \
+for a service that is running, and the audit trail records who revoked it. Revoking a token twice or \
+an unknown id is an error (exit status 1)."
+    )]
     Revoke {
-        /// The token's id.
-        #[arg(long)]
+        /// The token's id, as `token list` shows it.
+        #[arg(value_name = "ID")]
         id: i64,
-        #[command(flatten)]
-        database: DatabaseArgs,
-    },
-    /// Create a token and print it once (only its hash is stored).
-    Create {
-        #[arg(long, value_parser = parse_role)]
-        role: Role,
-        /// Who the token is for (named in the audit trail).
-        #[arg(long)]
-        label: Option<String>,
         #[command(flatten)]
         database: DatabaseArgs,
     },
@@ -85,11 +106,11 @@ pub fn init_tracing(format: LogFormat) {
     };
 }
 
-/// Caps glibc's malloc arenas at two before any thread starts. By default every thread that allocates
-/// under contention may get its own arena (up to eight per core) and keeps what it freed: after 16
-/// concurrent 18 MB uploads and their fits the service held 652 MiB, with two arenas 403 MiB
-/// (tests/load/big_uploads.sh). `MALLOC_ARENA_MAX` in the environment still wins.
-fn limit_malloc_arenas() {
+/// Caps glibc's malloc arenas at two; call it from `main` before any thread starts. By default every
+/// thread that allocates under contention may get its own arena (up to eight per core) and keeps what
+/// it freed: after 16 concurrent 18 MB uploads and their fits the service held 652 MiB, with two
+/// arenas 403 MiB (tests/load/big_uploads.sh). `MALLOC_ARENA_MAX` in the environment still wins.
+pub fn limit_malloc_arenas() {
     #[cfg(all(target_os = "linux", target_env = "gnu"))]
     if std::env::var_os("MALLOC_ARENA_MAX").is_none() {
         // SAFETY: mallopt only changes allocator parameters; it is called before other threads exist.
@@ -99,32 +120,23 @@ fn limit_malloc_arenas() {
     }
 }
 
-pub fn main(args: Vec<String>) -> ExitCode {
-    limit_malloc_arenas();
-    let cli = match Cli::try_parse_from(std::iter::once("henrybook".to_string()).chain(args)) {
-        Ok(c) => c,
-        Err(e) => {
-            let _ = e.print();
-            return if e.use_stderr() {
-                ExitCode::from(2)
-            } else {
-                ExitCode::SUCCESS
-            };
-        }
-    };
+/// Runs a service command on a new async runtime. Token and verify output goes to `out` (a new
+/// token's note to `err`); the demo prints to standard output. Returns the exit status: 0, or 1 with
+/// the error on `err`.
+pub fn run(command: ServiceCommand, out: &mut dyn Write, err: &mut dyn Write) -> u8 {
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
     {
         Ok(r) => r,
         Err(e) => {
-            eprintln!("henrybook: cannot start the async runtime: {e}");
-            return ExitCode::FAILURE;
+            let _ = writeln!(err, "henrybook: cannot start the async runtime: {e}");
+            return 1;
         }
     };
-    let result = runtime.block_on(async move {
-        match cli.command {
-            Command::Serve(args) => {
+    let result = runtime.block_on(async {
+        match command {
+            ServiceCommand::Serve(args) => {
                 init_tracing(args.log_format);
                 let settings = Settings::try_from(&args)?;
                 crate::app::Application::build(settings)
@@ -132,95 +144,103 @@ pub fn main(args: Vec<String>) -> ExitCode {
                     .run_until_stopped()
                     .await
             }
-            Command::Token {
-                command:
-                    TokenCommand::Create {
-                        role,
-                        label,
-                        database,
-                    },
-            } => {
-                let store = Store::open(&database.path).await?;
-                let (id, token) = store.create_token(role, label.as_deref()).await?;
-                store.close().await;
-                eprintln!(
-                    "token {id} ({}) created in {}; it is shown only now:",
-                    role.as_str(),
-                    database.path.display()
-                );
-                println!("{token}");
-                Ok(())
-            }
-            Command::Token {
-                command: TokenCommand::List { database },
-            } => {
-                let store = Store::open(&database.path).await?;
-                let tokens = store.list_tokens().await?;
-                store.close().await;
-                let when = crate::store::rfc3339;
-                println!(
-                    "{:<4} {:<10} {:<25} {:<25} label",
-                    "id", "role", "created", "revoked"
-                );
-                for t in tokens {
-                    println!(
-                        "{:<4} {:<10} {:<25} {:<25} {}",
-                        t.token_id,
-                        t.role.as_str(),
-                        when(t.created_at_ms),
-                        t.revoked_at_ms.map_or("-".to_string(), when),
-                        t.label
-                    );
-                }
-                Ok(())
-            }
-            Command::Token {
-                command: TokenCommand::Revoke { id, database },
-            } => {
-                let store = Store::open(&database.path).await?;
-                let actor = std::env::var("USER")
-                    .map(|u| format!("command line ({u})"))
-                    .unwrap_or_else(|_| "command line".into());
-                let result = store.revoke_token(&actor, id).await;
-                store.close().await;
-                let t = result?;
-                eprintln!(
-                    "token {} ({}, {}) revoked in {}",
-                    t.token_id,
-                    t.role.as_str(),
-                    t.label,
-                    database.path.display()
-                );
-                Ok(())
-            }
-            Command::Demo(args) => demo::run(args).await,
-            Command::Verify { database } => {
-                let store = Store::open(&database.path).await?;
-                let report = store.verify_integrity().await?;
-                store.close().await;
-                println!(
-                    "{} audit rows, head hash {}; {} stored verdicts checked",
-                    report.audit_rows,
-                    report.head_hash.as_deref().unwrap_or("none"),
-                    report.verdicts_checked
-                );
-                for p in &report.problems {
-                    println!("problem: {p}");
-                }
-                if report.ok() {
-                    println!("the record is intact");
-                    Ok(())
-                } else {
-                    anyhow::bail!("{} problems found", report.problems.len())
-                }
-            }
+            ServiceCommand::Token { command } => token(command, out, err).await,
+            ServiceCommand::Demo(args) => demo::run(args).await,
+            ServiceCommand::Verify { database } => verify(&database, out).await,
         }
     });
     match result {
-        Ok(()) => ExitCode::SUCCESS,
+        Ok(()) => 0,
         Err(e) => {
-            eprintln!("henrybook: {e:#}");
-            ExitCode::FAILURE
+            let _ = writeln!(err, "henrybook: {e:#}");
+            1
         }
+    }
+}
+
+async fn token(
+    command: TokenCommand,
+    out: &mut dyn Write,
+    err: &mut dyn Write,
+) -> anyhow::Result<()> {
+    match command {
+        TokenCommand::Create {
+            role,
+            label,
+            database,
+        } => {
+            let store = Store::open(&database.path).await?;
+            let (id, token) = store.create_token(role, label.as_deref()).await?;
+            store.close().await;
+            writeln!(
+                err,
+                "token {id} ({}) created in {}; it is shown only now:",
+                role.as_str(),
+                database.path.display()
+            )?;
+            writeln!(out, "{token}")?;
+        }
+        TokenCommand::List { database } => {
+            let store = Store::open(&database.path).await?;
+            let tokens = store.list_tokens().await?;
+            store.close().await;
+            let when = crate::store::rfc3339;
+            writeln!(
+                out,
+                "{:<4} {:<10} {:<25} {:<25} label",
+                "id", "role", "created", "revoked"
+            )?;
+            for t in tokens {
+                writeln!(
+                    out,
+                    "{:<4} {:<10} {:<25} {:<25} {}",
+                    t.token_id,
+                    t.role.as_str(),
+                    when(t.created_at_ms),
+                    t.revoked_at_ms.map_or("-".to_string(), when),
+                    t.label
+                )?;
+            }
+        }
+        TokenCommand::Revoke { id, database } => {
+            let store = Store::open(&database.path).await?;
+            let actor = std::env::var("USER")
+                .map(|u| format!("command line ({u})"))
+                .unwrap_or_else(|_| "command line".into());
+            let result = store.revoke_token(&actor, id).await;
+            store.close().await;
+            let t = result?;
+            writeln!(
+                out,
+                "token {} ({}, {}) revoked in {}",
+                t.token_id,
+                t.role.as_str(),
+                t.label,
+                database.path.display()
+            )?;
+        }
+    }
+    Ok(())
+}
+
+async fn verify(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result<()> {
+    let store = Store::open(&database.path).await?;
+    let report = store.verify_integrity().await?;
+    store.close().await;
+    writeln!(
+        out,
+        "{} audit rows, head hash {}; {} stored verdicts checked",
+        report.audit_rows,
+        report.head_hash.as_deref().unwrap_or("none"),
+        report.verdicts_checked
+    )?;
+    for p in &report.problems {
+        writeln!(out, "problem: {p}")?;
+    }
+    if report.ok() {
+        writeln!(out, "the record is intact")?;
+        Ok(())
+    } else {
+        anyhow::bail!("{} problems found", report.problems.len())
     }
 }

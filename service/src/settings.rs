@@ -4,6 +4,14 @@ use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::time::Duration;
 
+fn si(text: &str) -> Result<f64, String> {
+    crate::units::parse_si(text)
+}
+
+fn si_count(text: &str) -> Result<usize, String> {
+    crate::units::parse_si_count(text)
+}
+
 /// Log output format.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
 pub enum LogFormat {
@@ -25,33 +33,33 @@ pub struct ServeArgs {
     #[arg(long, env = "HENRYBOOK_WORKERS")]
     pub workers: Option<usize>,
     /// Largest accepted request body, in bytes (uploads included).
-    #[arg(long, env = "HENRYBOOK_MAX_BODY_BYTES", default_value_t = 32 * 1024 * 1024)]
+    #[arg(long, env = "HENRYBOOK_MAX_BODY_BYTES", value_name = "BYTES", value_parser = si_count, default_value_t = 32 * 1024 * 1024)]
     pub max_body_bytes: usize,
     /// Longest a request may take, in seconds.
-    #[arg(long, env = "HENRYBOOK_REQUEST_TIMEOUT_S", default_value_t = 30.0)]
+    #[arg(long, env = "HENRYBOOK_REQUEST_TIMEOUT_S", value_name = "S", value_parser = si, default_value_t = 30.0)]
     pub request_timeout_s: f64,
     /// How long a claimed job stays claimed without renewal, in seconds.
-    #[arg(long, env = "HENRYBOOK_LEASE_S", default_value_t = 30.0)]
+    #[arg(long, env = "HENRYBOOK_LEASE_S", value_name = "S", value_parser = si, default_value_t = 30.0)]
     pub lease_s: f64,
     /// Claims of one job before it is failed for good (a fit that keeps crashing the worker).
     #[arg(long, env = "HENRYBOOK_MAX_ATTEMPTS", default_value_t = 3)]
     pub max_attempts: i64,
     /// How long shutdown waits for running fits before releasing their lease, in seconds.
-    #[arg(long, env = "HENRYBOOK_SHUTDOWN_GRACE_S", default_value_t = 20.0)]
+    #[arg(long, env = "HENRYBOOK_SHUTDOWN_GRACE_S", value_name = "S", value_parser = si, default_value_t = 20.0)]
     pub shutdown_grace_s: f64,
     /// Most connections open at once, per listener (HTTP and gRPC each); at the limit a new connection
     /// takes the place of the longest-idle one.
     #[arg(long, env = "HENRYBOOK_MAX_CONNECTIONS", default_value_t = 256)]
     pub max_connections: usize,
     /// Longest a client may take to send a request's head once it started, in seconds (HTTP).
-    #[arg(long, env = "HENRYBOOK_HEADER_READ_TIMEOUT_S", default_value_t = 10.0)]
+    #[arg(long, env = "HENRYBOOK_HEADER_READ_TIMEOUT_S", value_name = "S", value_parser = si, default_value_t = 10.0)]
     pub header_read_timeout_s: f64,
     /// Longest a connection may stay open without a request in flight, in seconds.
-    #[arg(long, env = "HENRYBOOK_IDLE_TIMEOUT_S", default_value_t = 60.0)]
+    #[arg(long, env = "HENRYBOOK_IDLE_TIMEOUT_S", value_name = "S", value_parser = si, default_value_t = 60.0)]
     pub idle_timeout_s: f64,
     /// Hard deadline of shutdown, in seconds from the signal: connections still open and fits still
     /// running then are closed and abandoned (their jobs run again at the next start).
-    #[arg(long, env = "HENRYBOOK_DRAIN_TIMEOUT_S", default_value_t = 30.0)]
+    #[arg(long, env = "HENRYBOOK_DRAIN_TIMEOUT_S", value_name = "S", value_parser = si, default_value_t = 30.0)]
     pub drain_timeout_s: f64,
     /// Most fits queued or running at once; past it uploads, refits and retries get 503.
     #[arg(long, env = "HENRYBOOK_MAX_QUEUED_FITS", default_value_t = 1000)]
@@ -64,7 +72,7 @@ pub struct ServeArgs {
     )]
     pub max_queued_fits_per_part: i64,
     /// Most upload bytes received and read at once (all uploads together); past it uploads get 503.
-    #[arg(long, env = "HENRYBOOK_MAX_UPLOAD_BYTES_IN_FLIGHT", default_value_t = 128 * 1024 * 1024)]
+    #[arg(long, env = "HENRYBOOK_MAX_UPLOAD_BYTES_IN_FLIGHT", value_name = "BYTES", value_parser = si_count, default_value_t = 128 * 1024 * 1024)]
     pub max_upload_bytes_in_flight: usize,
     /// Uploads read (parsed and checked) at once (default: half the workers, at least one), so that
     /// reading uploads leaves the CPU to the fits.
@@ -264,6 +272,30 @@ mod tests {
         ] {
             let e = settings(flags).unwrap_err().to_string();
             assert!(e.contains(names), "{flags:?}: {e}");
+        }
+    }
+
+    #[test]
+    fn times_and_sizes_take_si_prefixes() {
+        let s = settings(&[
+            "--lease-s",
+            "500m",
+            "--request-timeout-s",
+            "1.5k",
+            "--max-body-bytes",
+            "64M",
+            "--max-upload-bytes-in-flight",
+            "1G",
+        ])
+        .unwrap();
+        assert_eq!(s.lease, Duration::from_millis(500));
+        assert_eq!(s.request_timeout, Duration::from_secs(1500));
+        assert_eq!(s.max_body_bytes, 64_000_000);
+        assert_eq!(s.max_upload_bytes_in_flight, 1_000_000_000);
+        // A size is a whole number of bytes; a time is a number.
+        for (flag, value) in [("--max-body-bytes", "1.5"), ("--lease-s", "30x")] {
+            let e = settings(&[flag, value]).unwrap_err().to_string();
+            assert!(e.contains(value), "{flag} {value}: {e}");
         }
     }
 }

@@ -66,6 +66,25 @@ pub fn parse_si(text: &str) -> Result<f64, String> {
     }
 }
 
+/// [`parse_si`] for a quantity that must be finite and above zero (a frequency, a resistance, a length).
+pub fn parse_positive_si(text: &str) -> Result<f64, String> {
+    match parse_si(text) {
+        Ok(x) if x > 0.0 => Ok(x),
+        Ok(x) => Err(format!("{x} is not a positive number")),
+        Err(e) => Err(e),
+    }
+}
+
+/// [`parse_si`] for a whole count such as a number of bytes: "32M" is 32 000 000 (SI prefixes are
+/// powers of ten, not of two).
+pub fn parse_si_count(text: &str) -> Result<usize, String> {
+    let x = parse_si(text)?;
+    if x < 0.0 || x.fract() != 0.0 || x > usize::MAX as f64 {
+        return Err(format!("{text:?} is not a whole number of at least 0"));
+    }
+    Ok(x as usize)
+}
+
 #[cfg(test)]
 mod parse_tests {
     use super::parse_si;
@@ -90,6 +109,24 @@ mod parse_tests {
         }
         for bad in ["", "k", "abc", "1x", "1.2.3", "inf", "NaN"] {
             assert!(parse_si(bad).is_err(), "{bad:?}");
+        }
+    }
+
+    #[test]
+    fn positive_values_and_counts() {
+        use super::{parse_positive_si, parse_si_count};
+        assert_eq!(parse_positive_si("500m"), Ok(0.5));
+        assert!(
+            parse_positive_si("0")
+                .unwrap_err()
+                .contains("not a positive number")
+        );
+        assert!(parse_positive_si("-3k").is_err());
+        assert_eq!(parse_si_count("32M"), Ok(32_000_000));
+        assert_eq!(parse_si_count("1.5k"), Ok(1500));
+        assert_eq!(parse_si_count("4096"), Ok(4096));
+        for bad in ["1.5", "-1", "2.5m", "x"] {
+            assert!(parse_si_count(bad).is_err(), "{bad:?}");
         }
     }
 }

@@ -1,6 +1,10 @@
 //! Shared helpers for the integration tests and reference checks; [`service`] starts the real service.
 
+pub mod mna;
+pub mod population;
 pub mod service;
+pub mod synth;
+pub mod vector_fit_synth;
 
 use std::path::PathBuf;
 use std::process::Command;

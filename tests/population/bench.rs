@@ -9,8 +9,7 @@
 //! `--show-poor` every found part reported poor, and `--only INDEX` fits one part and prints what
 //! the fit saw (the truth's own assessment, the curve's reading and starts, the candidates).
 
-#[path = "mod.rs"]
-mod population;
+use henrybook_tests::population;
 
 use henrybook::fit::{FitControl, FitOptions, fit};
 use population::{chi2, draw, found};

@@ -302,8 +302,41 @@ impl RunningJob {
             .await;
             (outcome, started.elapsed())
         };
-        tokio::pin!(work);
+        let watched = self.supervise(work, &claim, &cancel, &progress).await;
+        self.handle
+            .running
+            .lock()
+            .expect("running map")
+            .remove(&fit_id);
+        drop(claimed);
+        let (joined, took) = watched.done;
+        let outcome = joined.unwrap_or(Outcome::Panic);
+        if watched.lost {
+            metrics::counter!("henrybook_fits_total", "outcome" => "lease_lost").increment(1);
+            return;
+        }
+        // The engine's own time (the sweep parsed and fitted), without the wait for a slot.
+        let seconds = took.as_secs_f64();
+        let written = self
+            .settle(&claim, outcome, seconds, watched.releasing, follow_up)
+            .await;
+        match written {
+            Ok(true) => tracing::debug!(seconds, "fit finished"),
+            Ok(false) => tracing::warn!("the claim was taken over before the result was written"),
+            Err(e) => tracing::error!(error = %e, "cannot write the fit's outcome"),
+        }
+    }
 
+    /// Waits for `work` while renewing the lease every third of it (with the fit's progress), and
+    /// raises `cancel` when a cancel is requested, the lease is lost or the pool releases its jobs.
+    async fn supervise<T>(
+        &mut self,
+        work: impl std::future::Future<Output = T>,
+        claim: &Claim,
+        cancel: &AtomicBool,
+        progress: &AtomicU64,
+    ) -> Watched<T> {
+        tokio::pin!(work);
         let mut ticker =
             tokio::time::interval((self.settings.lease / 3).max(Duration::from_millis(50)));
         ticker.tick().await;
@@ -312,12 +345,12 @@ impl RunningJob {
         if releasing {
             cancel.store(true, Ordering::SeqCst);
         }
-        let joined = loop {
+        let done = loop {
             tokio::select! {
                 done = &mut work => break done,
                 _ = ticker.tick() => {
                     let p = f64::from_bits(progress.load(Ordering::Relaxed));
-                    match self.store.renew_lease(&claim, self.settings.lease, p).await {
+                    match self.store.renew_lease(claim, self.settings.lease, p).await {
                         Ok(Renewal::Held { cancel_requested: true }) => cancel.store(true, Ordering::SeqCst),
                         Ok(Renewal::Held { .. }) => {}
                         Ok(Renewal::Lost) => {
@@ -334,59 +367,47 @@ impl RunningJob {
                 }
             }
         };
-        self.handle
-            .running
-            .lock()
-            .expect("running map")
-            .remove(&fit_id);
-        drop(claimed);
-        let (joined, took) = joined;
-        let outcome = joined.unwrap_or(Outcome::Panic);
-        // The engine's own time (the sweep parsed and fitted), without the wait for a slot.
-        let seconds = took.as_secs_f64();
-        if lost {
-            metrics::counter!("henrybook_fits_total", "outcome" => "lease_lost").increment(1);
-            return;
+        Watched {
+            done,
+            lost,
+            releasing,
         }
-        let written = match outcome {
+    }
+
+    /// Writes the outcome of a fit whose claim still holds (and counts it); a succeeded lumped fit
+    /// that misses its data queues its rational follow-up. `Ok(false)`: the claim was taken over.
+    async fn settle(
+        &self,
+        claim: &Claim,
+        outcome: Outcome,
+        seconds: f64,
+        releasing: bool,
+        follow_up: Option<(f64, String, String)>,
+    ) -> crate::store::StoreResult<bool> {
+        match outcome {
             Outcome::Report(report) => {
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "succeeded").increment(1);
                 let rms_weighted = report.quality.rms_weighted;
                 let poor = report.assessment.status == crate::fit::FitStatus::Poor;
-                let written = self.write_report(&claim, report).await;
+                let written = self.write_report(claim, report).await;
                 if let (Ok(true), Some((limit, options_json, key))) = (&written, &follow_up)
                     && (poor || rms_weighted > *limit)
                 {
-                    match self
-                        .store
-                        // One follow-up per finished fit: not held to the request bounds.
-                        .refit(AUTOMATIC_ACTOR, fit_id, options_json, key, None)
-                        .await
-                    {
-                        Ok(next) => {
-                            tracing::info!(
-                                next_fit_id = next,
-                                rms_weighted,
-                                poor,
-                                "the lumped model misses the data: a rational fit is queued"
-                            );
-                            self.handle.wake();
-                        }
-                        Err(e) => tracing::error!(error = %e, "cannot queue the rational fit"),
-                    }
+                    self.queue_follow_up(claim.fit_id, options_json, key, rms_weighted, poor)
+                        .await;
                 }
                 written
             }
             Outcome::Fit(FitError::Cancelled) if releasing => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "released").increment(1);
-                self.store.release_job(&claim).await
+                self.store.release_job(claim).await
             }
             Outcome::Fit(FitError::Cancelled) => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "cancelled").increment(1);
                 self.store
                     .complete_unsuccessful(
-                        &claim,
+                        claim,
                         true,
                         FailureKind::Cancelled,
                         "cancelled on request",
@@ -397,29 +418,60 @@ impl RunningJob {
                 metrics::histogram!("henrybook_fit_duration_seconds").record(seconds);
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, false, failure_kind(&e), &e.to_string())
+                    .complete_unsuccessful(claim, false, failure_kind(&e), &e.to_string())
                     .await
             }
             Outcome::Sweep(text) => {
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, false, FailureKind::UnreadableSweep, &text)
+                    .complete_unsuccessful(claim, false, FailureKind::UnreadableSweep, &text)
                     .await
             }
             Outcome::Panic => {
                 tracing::error!("the engine panicked");
                 metrics::counter!("henrybook_fits_total", "outcome" => "failed").increment(1);
                 self.store
-                    .complete_unsuccessful(&claim, false, FailureKind::Internal, INTERNAL_FAILURE)
+                    .complete_unsuccessful(claim, false, FailureKind::Internal, INTERNAL_FAILURE)
                     .await
             }
-        };
-        match written {
-            Ok(true) => tracing::debug!(seconds, "fit finished"),
-            Ok(false) => tracing::warn!("the claim was taken over before the result was written"),
-            Err(e) => tracing::error!(error = %e, "cannot write the fit's outcome"),
         }
     }
+
+    /// Queues the rational fit of a lumped fit that missed its data, as its next revision.
+    async fn queue_follow_up(
+        &self,
+        fit_id: i64,
+        options_json: &str,
+        key: &str,
+        rms_weighted: f64,
+        poor: bool,
+    ) {
+        match self
+            .store
+            // One follow-up per finished fit: not held to the request bounds.
+            .refit(AUTOMATIC_ACTOR, fit_id, options_json, key, None)
+            .await
+        {
+            Ok(next) => {
+                tracing::info!(
+                    next_fit_id = next,
+                    rms_weighted,
+                    poor,
+                    "the lumped model misses the data: a rational fit is queued"
+                );
+                self.handle.wake();
+            }
+            Err(e) => tracing::error!(error = %e, "cannot queue the rational fit"),
+        }
+    }
+}
+
+/// What [`RunningJob::supervise`] saw: the work's result, whether the lease was lost, and whether
+/// the pool was releasing its jobs.
+struct Watched<T> {
+    done: T,
+    lost: bool,
+    releasing: bool,
 }
 
 impl RunningJob {

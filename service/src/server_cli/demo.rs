@@ -127,17 +127,25 @@ fn print_fit_row(part: &str, f: &Value) {
     );
 }
 
+/// The demo's tokens, one per role (created in the demo database on every run).
+struct Tokens {
+    reader: String,
+    inspector: String,
+    engineer: String,
+}
+
+/// A sweep uploaded by the demo: its part, lot and fit.
+struct Uploaded {
+    part: String,
+    fit_id: i64,
+}
+
+/// The longest the demo waits for its fits.
+const FIT_DEADLINE: Duration = Duration::from_secs(300);
+
 pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     super::init_tracing(crate::settings::LogFormat::Text);
-    let manifest_path = args.data.join("manifest.json");
-    let manifest: Value =
-        serde_json::from_slice(&std::fs::read(&manifest_path).with_context(|| {
-            format!(
-                "cannot read {} (run the demo from the repository root)",
-                manifest_path.display()
-            )
-        })?)
-        .with_context(|| format!("{} is not JSON", manifest_path.display()))?;
+    let manifest = read_manifest(&args.data)?;
 
     let mut settings = Settings::new(args.folder.join("henrybook-demo.db"));
     settings.listen = args.listen;
@@ -145,17 +153,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     let app = Application::build(settings).await?;
     let base = format!("http://{}", app.address());
     let grpc_address = app.grpc_address();
-    let store = app.store().clone();
-    let mut tokens = Vec::new();
-    for role in Role::ALL {
-        tokens.push(
-            store
-                .create_token(role, Some(&format!("demo-{}", role.as_str())))
-                .await?
-                .1,
-        );
-    }
-    let (reader, inspector, engineer) = (&tokens[0], &tokens[1], &tokens[2]);
+    let tokens = demo_tokens(app.store()).await?;
     let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
     let serve_forever = !args.no_serve;
     let server = tokio::spawn(app.run(async move {
@@ -177,17 +175,91 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         println!("\n{s}\n");
     }
     let parts = manifest["parts"].as_array().cloned().unwrap_or_default();
-    // (part, lot, fit_id)
-    let mut fits: Vec<(String, String, i64)> = Vec::new();
+    let (fits, to_approve) = upload_all(&c, &tokens, &parts, &args.data).await?;
+    println!(
+        "uploaded {} sweeps of {} parts through {base}/api/v1/sweeps; fitting…",
+        fits.len(),
+        parts.len()
+    );
+    let started = Instant::now();
+    wait_for_fits(&c, &tokens.reader, &fits, started).await?;
+    approve_lots(&c, &tokens, &fits, &to_approve).await?;
+    wait_for_queue(&c, &tokens.reader, started).await?;
+
+    let mut seen_parts = Vec::new();
+    for f in &fits {
+        if !seen_parts.contains(&f.part) {
+            seen_parts.push(f.part.clone());
+        }
+    }
+    print_results(&c, &tokens.reader, &seen_parts).await?;
+    let query = print_band_query(&c, &tokens.reader).await?;
+    print_out_of_control(&c, &tokens.reader, &seen_parts).await?;
+    print_failing_reports(&c, &tokens.reader).await?;
+    print_access(&base, grpc_address, &tokens, query);
+    if serve_forever {
+        println!(
+            "\nServing until Ctrl-C (database: {}).",
+            args.folder.display()
+        );
+    } else {
+        let _ = stop_tx.send(());
+    }
+    server.await.context("the demo server stopped")??;
+    Ok(())
+}
+
+fn read_manifest(data: &std::path::Path) -> anyhow::Result<Value> {
+    let manifest_path = data.join("manifest.json");
+    let bytes = std::fs::read(&manifest_path).with_context(|| {
+        format!(
+            "cannot read {} (run the demo from the repository root)",
+            manifest_path.display()
+        )
+    })?;
+    serde_json::from_slice(&bytes)
+        .with_context(|| format!("{} is not JSON", manifest_path.display()))
+}
+
+async fn demo_tokens(store: &crate::store::Store) -> anyhow::Result<Tokens> {
+    let mut tokens = Vec::new();
+    for role in Role::ALL {
+        tokens.push(
+            store
+                .create_token(role, Some(&format!("demo-{}", role.as_str())))
+                .await?
+                .1,
+        );
+    }
+    let [reader, inspector, engineer]: [String; 3] = tokens
+        .try_into()
+        .map_err(|_| anyhow::anyhow!("one token per role"))?;
+    Ok(Tokens {
+        reader,
+        inspector,
+        engineer,
+    })
+}
+
+/// Creates every part of the manifest (or finds it) and uploads its sweeps; returns the fits in
+/// upload order and those the manifest marks `"approve": true`.
+async fn upload_all(
+    c: &Client,
+    tokens: &Tokens,
+    parts: &[Value],
+    data: &std::path::Path,
+) -> anyhow::Result<(Vec<Uploaded>, Vec<i64>)> {
+    let base = &c.base;
+    let mut fits = Vec::new();
     // Fits the manifest marks `"approve": true`: the engineer releases those lots in upload order.
     let mut to_approve: Vec<i64> = Vec::new();
-    for p in &parts {
+    for p in parts {
         let part_number = p["part_number"].as_str().unwrap_or_default().to_string();
         let (status, body) = c
             .json(
                 c.http
                     .post(format!("{base}/api/v1/parts"))
-                    .bearer_auth(engineer)
+                    .bearer_auth(&tokens.engineer)
                     .json(
                         &json!({"part_number": part_number, "description": p["description"],
                                   "limits": p["limits"]}),
@@ -198,111 +270,144 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             bail!("creating part {part_number}: {status} {body}");
         }
         for s in p["sweeps"].as_array().cloned().unwrap_or_default() {
-            let rel = s["file"].as_str().unwrap_or_default();
-            let path = args.data.join(rel);
-            let bytes =
-                std::fs::read(&path).with_context(|| format!("cannot read {}", path.display()))?;
-            let file_name = path
-                .file_name()
-                .map(|n| n.to_string_lossy().to_string())
-                .unwrap_or_else(|| rel.to_string());
-            let lot = field(&s["lot"]).unwrap_or_default();
-            let mut form = reqwest::multipart::Form::new()
-                .part(
-                    "file",
-                    reqwest::multipart::Part::bytes(bytes).file_name(file_name),
-                )
-                .text("part_number", part_number.clone())
-                .text("lot", lot.clone());
-            for key in ["method", "z0_ohm", "dcr_ohm", "temperature_c", "operator"] {
-                if let Some(v) = field(&s[key]) {
-                    form = form.text(key, v);
-                }
-            }
-            let (status, body) = c
-                .json(
-                    c.http
-                        .post(format!("{base}/api/v1/sweeps"))
-                        .bearer_auth(inspector)
-                        .multipart(form),
-                )
-                .await?;
-            if status != 202 {
-                bail!("uploading {rel}: {status} {body}");
-            }
-            let fit_id = body["fit_id"].as_i64().unwrap_or_default();
+            let fit_id = upload_sweep(c, &tokens.inspector, &part_number, &s, data).await?;
             if s["approve"].as_bool() == Some(true) {
                 to_approve.push(fit_id);
             }
-            fits.push((part_number.clone(), lot, fit_id));
+            fits.push(Uploaded {
+                part: part_number.clone(),
+                fit_id,
+            });
         }
     }
+    Ok((fits, to_approve))
+}
 
-    println!(
-        "uploaded {} sweeps of {} parts through {base}/api/v1/sweeps; fitting…",
-        fits.len(),
-        parts.len()
-    );
-    let started = Instant::now();
-    for (_, _, id) in &fits {
+/// Uploads one sweep of the manifest as a multipart form; returns its fit's id.
+async fn upload_sweep(
+    c: &Client,
+    inspector: &str,
+    part_number: &str,
+    s: &Value,
+    data: &std::path::Path,
+) -> anyhow::Result<i64> {
+    let rel = s["file"].as_str().unwrap_or_default();
+    let path = data.join(rel);
+    let bytes = std::fs::read(&path).with_context(|| format!("cannot read {}", path.display()))?;
+    let file_name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().to_string())
+        .unwrap_or_else(|| rel.to_string());
+    let lot = field(&s["lot"]).unwrap_or_default();
+    let mut form = reqwest::multipart::Form::new()
+        .part(
+            "file",
+            reqwest::multipart::Part::bytes(bytes).file_name(file_name),
+        )
+        .text("part_number", part_number.to_string())
+        .text("lot", lot);
+    for key in ["method", "z0_ohm", "dcr_ohm", "temperature_c", "operator"] {
+        if let Some(v) = field(&s[key]) {
+            form = form.text(key, v);
+        }
+    }
+    let (status, body) = c
+        .json(
+            c.http
+                .post(format!("{}/api/v1/sweeps", c.base))
+                .bearer_auth(inspector)
+                .multipart(form),
+        )
+        .await?;
+    if status != 202 {
+        bail!("uploading {rel}: {status} {body}");
+    }
+    Ok(body["fit_id"].as_i64().unwrap_or_default())
+}
+
+async fn wait_for_fits(
+    c: &Client,
+    reader: &str,
+    fits: &[Uploaded],
+    started: Instant,
+) -> anyhow::Result<()> {
+    for f in fits {
         loop {
-            let f = c.get(&format!("/api/v1/fits/{id}"), reader).await?;
+            let f = c.get(&format!("/api/v1/fits/{}", f.fit_id), reader).await?;
             let st = f["status"].as_str().unwrap_or_default();
             if st != "queued" && st != "running" {
                 break;
             }
-            if started.elapsed() > Duration::from_secs(300) {
+            if started.elapsed() > FIT_DEADLINE {
                 bail!("the fits did not finish within 5 minutes");
             }
             tokio::time::sleep(Duration::from_millis(50)).await;
         }
     }
+    Ok(())
+}
 
-    // The first lot of each part, and every lot the manifest marks, is approved in upload order (the
-    // newest approved lot is the baseline design tools are answered from), so a later lot shows drift
-    // and the part's trend has control limits. A lot that fails its limits or whose model is poor is
-    // not approved: the service refuses it without an override, and the demo says so.
+/// The first lot of each part, and every lot the manifest marks, is approved in upload order (the
+/// newest approved lot is the baseline design tools are answered from), so a later lot shows drift
+/// and the part's trend has control limits. A lot that fails its limits or whose model is poor is
+/// not approved: the service refuses it without an override, and the demo says so.
+async fn approve_lots(
+    c: &Client,
+    tokens: &Tokens,
+    fits: &[Uploaded],
+    to_approve: &[i64],
+) -> anyhow::Result<()> {
     let mut baseline_done = std::collections::HashSet::new();
-    for (part, _, id) in &fits {
+    for Uploaded { part, fit_id: id } in fits {
         let first = baseline_done.insert(part.clone());
-        if first || to_approve.contains(id) {
-            let part_now = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
-            if !first || part_now["baseline_fit_id"].is_null() {
-                let (status, body) = c
-                    .json(
-                        c.http
-                            .post(format!("{base}/api/v1/fits/{id}/approve"))
-                            .bearer_auth(engineer)
-                            .json(&json!({"reason": if first {
-                                "demo: the first lot is the qualification baseline"
-                            } else {
-                                "demo: lot released at incoming inspection"
-                            }})),
-                    )
-                    .await?;
-                if status != 200 {
-                    println!(
-                        "  (could not approve fit {id} of {part}: {status} {})",
-                        body["detail"]
-                    );
-                }
-            }
+        if !(first || to_approve.contains(id)) {
+            continue;
+        }
+        let part_now = c
+            .get(&format!("/api/v1/parts/{part}"), &tokens.reader)
+            .await?;
+        if first && !part_now["baseline_fit_id"].is_null() {
+            continue;
+        }
+        let (status, body) = c
+            .json(
+                c.http
+                    .post(format!("{}/api/v1/fits/{id}/approve", c.base))
+                    .bearer_auth(&tokens.engineer)
+                    .json(&json!({"reason": if first {
+                        "demo: the first lot is the qualification baseline"
+                    } else {
+                        "demo: lot released at incoming inspection"
+                    }})),
+            )
+            .await?;
+        if status != 200 {
+            println!(
+                "  (could not approve fit {id} of {part}: {status} {})",
+                body["detail"]
+            );
         }
     }
+    Ok(())
+}
 
-    // Lumped fits that miss their data queue a rational revision: wait for those too.
+/// Lumped fits that miss their data queue a rational revision: waits for those too.
+async fn wait_for_queue(c: &Client, reader: &str, started: Instant) -> anyhow::Result<()> {
     loop {
         let q = c.get("/api/v1/queue", reader).await?;
         let busy = q["queued"].as_i64().unwrap_or(0) + q["running"].as_i64().unwrap_or(0);
         if busy == 0 {
-            break;
+            return Ok(());
         }
-        if started.elapsed() > Duration::from_secs(300) {
+        if started.elapsed() > FIT_DEADLINE {
             bail!("the fits did not finish within 5 minutes");
         }
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
+}
 
+/// The table of every fit of every part, revisions included.
+async fn print_results(c: &Client, reader: &str, parts: &[String]) -> anyhow::Result<()> {
     println!(
         "\n{:<14} {:<7} {:>4} {:>3} {:<8} {:<10} {:<5} {:>11} {:>11} {:>11} {:>6} {:<8} {:<26} failed limits",
         "part",
@@ -319,13 +424,7 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         "verdict",
         "largest drift vs baseline"
     );
-    let mut seen_parts = Vec::new();
-    for (part, _, _) in &fits {
-        if !seen_parts.contains(part) {
-            seen_parts.push(part.clone());
-        }
-    }
-    for part in &seen_parts {
+    for part in parts {
         let p = c.get(&format!("/api/v1/parts/{part}"), reader).await?;
         let mut ids: Vec<i64> = p["fits"]
             .as_array()
@@ -340,7 +439,11 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             print_fit_row(part, &f);
         }
     }
+    Ok(())
+}
 
+/// A band query on the approved baselines; returns the query's path for the curl example.
+async fn print_band_query(c: &Client, reader: &str) -> anyhow::Result<&'static str> {
     let query = "/api/v1/parts?srf_min_hz=1e7&srf_max_hz=1e8&sort=srf_hz";
     let band = c.get(query, reader).await?;
     println!(
@@ -359,13 +462,17 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
             p["description"].as_str().unwrap_or_default()
         );
     }
+    Ok(query)
+}
 
+/// Every lot a part's trend flags: beyond the control limits or in a run on one side.
+async fn print_out_of_control(c: &Client, reader: &str, parts: &[String]) -> anyhow::Result<()> {
     println!(
         "\nLots out of statistical control (GET /api/v1/parts/{{part}}/trend; control limits = mean \
          ± 3σ of the approved lots):"
     );
     let mut any = false;
-    for part in &seen_parts {
+    for part in parts {
         let t = c
             .get(&format!("/api/v1/parts/{part}/trend"), reader)
             .await?;
@@ -396,26 +503,39 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
     if !any {
         println!("  none");
     }
-    let failing: Vec<i64> = {
-        let page = c
-            .get("/api/v1/fits?status=succeeded&limit=500", reader)
-            .await?;
-        page["items"]
-            .as_array()
-            .cloned()
-            .unwrap_or_default()
-            .iter()
-            .filter(|f| f["verdict"] == "fail")
-            .filter_map(|f| f["fit_id"].as_i64())
-            .collect()
-    };
+    Ok(())
+}
+
+/// The report address of every succeeded fit that fails its part's limits.
+async fn print_failing_reports(c: &Client, reader: &str) -> anyhow::Result<()> {
+    let page = c
+        .get("/api/v1/fits?status=succeeded&limit=500", reader)
+        .await?;
+    let failing: Vec<i64> = page["items"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default()
+        .iter()
+        .filter(|f| f["verdict"] == "fail")
+        .filter_map(|f| f["fit_id"].as_i64())
+        .collect();
     for id in &failing {
         println!(
-            "Printable inspection report of failing fit {id}: {base}/api/v1/fits/{id}/report \
-             (PDF: …/report.pdf); the dashboard's part page links every lot's report."
+            "Printable inspection report of failing fit {id}: {}/api/v1/fits/{id}/report \
+             (PDF: …/report.pdf); the dashboard's part page links every lot's report.",
+            c.base
         );
     }
+    Ok(())
+}
 
+/// Where the API is, the tokens of this run, and the caution.
+fn print_access(base: &str, grpc_address: SocketAddr, tokens: &Tokens, query: &str) {
+    let Tokens {
+        reader,
+        inspector,
+        engineer,
+    } = tokens;
     println!("\nThe API is at {base}/api/v1 (description: api/openapi.yaml). Tokens for this run:");
     println!("  reader:    {reader}");
     println!("  inspector: {inspector}");
@@ -429,14 +549,4 @@ pub async fn run(args: DemoArgs) -> anyhow::Result<()> {
         "Caution: measuring energised power parts or parts at high voltage is hazardous; follow local \
          codes and licensed practice. The demo data is invented."
     );
-    if serve_forever {
-        println!(
-            "\nServing until Ctrl-C (database: {}).",
-            args.folder.display()
-        );
-    } else {
-        let _ = stop_tx.send(());
-    }
-    server.await.context("the demo server stopped")??;
-    Ok(())
 }

@@ -1,5 +1,5 @@
 //! A population of invented parts and sweeps drawn from the space users produce, for the fit's
-//! robustness test (`tests/fit_population.rs`) and its benchmark (`tests/population/bench.rs`).
+//! robustness test (`tests/fit_population.rs`) and its benchmark (`tests/population/bench.rs`, the example `population`).
 //!
 //! Each part is drawn from wide, independent distributions (log-uniform unless stated), not from the
 //! region the fitter likes:
@@ -16,8 +16,6 @@
 //! The sweep reaches the fit through the real readers: each part is written as the file an instrument
 //! would write (Touchstone 1.x S-parameters, 1- or 2-port, or an impedance CSV) and read back.
 //! Everything here is invented data for testing, not measurements.
-#![allow(dead_code)]
-
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::sweep::{Method, ReadOptions, Sweep, convert, read_sweep};
 use num_complex::Complex64;

@@ -1,7 +1,5 @@
 //! Synthetic sweeps for the vector-fitting checks (synthetic data from known models, no source).
 
-#![allow(dead_code)]
-
 use henrybook::model::{ImpedanceModel, LumpedModel, Section, SectionKind};
 use henrybook::sweep::{Method, Sweep};
 use num_complex::Complex64;

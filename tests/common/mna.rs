@@ -3,8 +3,6 @@
 //! complex MNA matrix (node voltages plus one branch current per inductor) and solves it by Gaussian
 //! elimination with partial pivoting. It shares no code with the exporter.
 
-#![allow(dead_code)]
-
 use num_complex::Complex64;
 use std::collections::{HashMap, HashSet};
 use std::f64::consts::PI;

@@ -1,8 +1,5 @@
 //! Synthetic sweeps for the fit tests: invented models (not measurements) sampled on a log grid, with
-//! Gaussian noise of the size an instrument of each method would add. Included with `#[path]` by the
-//! fit test files; not a test target of its own.
-
-#![allow(dead_code)]
+//! Gaussian noise of the size an instrument of each method would add (`henrybook_tests::synth`).
 
 use henrybook::model::{ImpedanceModel, LumpedModel, Section, SectionKind};
 use henrybook::sweep::{Method, Sweep};
