@@ -15,7 +15,7 @@
 #[path = "vector_fit_support.rs"]
 mod support;
 
-use henrybook::fit::vector::{VectorFitSettings, vector_fit};
+use henrybook::fit::rational::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitOptions, ModelFamily, fit};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::Sweep;

@@ -1,7 +1,7 @@
 //! Non-negative least squares and least-distance programming (Lawson & Hanson, "Solving Least Squares
 //! Problems", 1974, ch. 23: algorithms NNLS and LDP).
 
-use crate::fit::vector::linalg::PivotedQr;
+use super::linalg::PivotedQr;
 
 /// min ‖G·u − h‖ subject to u ≥ 0, for a column-major `rows × cols` G.
 pub(crate) fn nnls(g: &[f64], rows: usize, cols: usize, h: &[f64]) -> Vec<f64> {
