@@ -7,6 +7,7 @@
 pub mod assess;
 pub mod derived;
 pub mod initial;
+pub(crate) mod linalg;
 pub mod lm;
 pub mod lumped;
 pub mod plausible;

@@ -2,7 +2,7 @@
 //! fitted (s′, data, weights), the partial-fraction basis and its evaluation, and the conversion to and
 //! from the physical [`RationalModel`].
 
-use super::linalg;
+use crate::fit::linalg;
 use crate::model::RationalModel;
 use crate::model::rational::{ComplexPole, RealPole};
 use num_complex::Complex64;

@@ -20,8 +20,6 @@
 //! test). Rows are built 64 points at a time, one pole at a time over the points.
 
 mod basis;
-pub(crate) mod linalg;
-mod nnls;
 pub mod passivity;
 mod refine;
 mod relocation;
@@ -644,9 +642,9 @@ fn check_options(options: &FitOptions, points: usize) -> Result<(), FitError> {
 #[cfg(test)]
 mod tests {
     use super::basis::RANK_TOL;
-    use super::linalg::PivotedQr;
     use super::refine::{gauss_newton_gain, jacobian_row};
     use super::*;
+    use crate::fit::linalg::PivotedQr;
     use num_complex::Complex64;
     use std::f64::consts::PI;
     use std::sync::atomic::Ordering;

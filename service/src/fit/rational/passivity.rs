@@ -15,11 +15,11 @@
 //! problem through NNLS (Lawson & Hanson 1974, ch. 23).
 
 use super::basis::{Coefficients, FitData, Poles, basis_at, from_model};
-use super::linalg::{PivotedQr, rational_zeros};
-use super::nnls;
 use super::relocation::linear_system;
 use super::stop::Stop;
 use crate::fit::derived::golden_minimum;
+use crate::fit::linalg::nnls;
+use crate::fit::linalg::{PivotedQr, rational_zeros};
 use crate::model::RationalModel;
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};

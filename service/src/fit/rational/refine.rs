@@ -1,8 +1,8 @@
 //! The joint refinement of poles and residues on the weighted error itself.
 
 use super::basis::{Coefficients, FitData, Poles, RANK_TOL, evaluate, recip};
-use super::linalg::{GramAccumulator, PivotedQr, RowCompressor, padded};
 use super::stop::Stop;
+use crate::fit::linalg::{GramAccumulator, PivotedQr, RowCompressor, padded};
 use num_complex::Complex64;
 
 /// ∂Z/∂(parameter) at normalised s for the refinement's parameters, in its order: real poles, (Re, Im)

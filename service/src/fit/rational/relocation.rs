@@ -5,7 +5,7 @@
 use super::basis::{
     CHUNK, Coefficients, FitData, Poles, RANK_TOL, basis_at, basis_chunk, rms_weighted,
 };
-use super::linalg::{PivotedQr, RowCompressor, padded, rational_zeros};
+use crate::fit::linalg::{PivotedQr, RowCompressor, padded, rational_zeros};
 use num_complex::Complex64;
 
 /// Log-spaced complex starting pairs across the band with Re = −Im/100 (Gustavsen & Semlyen 1999, §IV),
