@@ -247,7 +247,7 @@ fn the_material_is_reported_from_turns_and_dimensions() {
 /// every model returned is passive, and a `poor` one says why.
 #[test]
 fn the_rational_family_fits_every_real_sweep_with_a_passive_model() {
-    use henrybook::fit::passivity::check_passivity;
+    use henrybook::fit::rational::passivity::check_passivity;
     use henrybook::fit::{ModelFamily, fit};
     use henrybook::model::FittedModel;
     let Some(dir) = folder() else { return };

@@ -1,7 +1,7 @@
 //! Vector fitting: exact pole recovery, automatic order, passivity enforcement, robustness, bad input.
 
-use henrybook::fit::passivity::check_passivity;
-use henrybook::fit::vector::{VectorFitSettings, vector_fit};
+use henrybook::fit::rational::passivity::check_passivity;
+use henrybook::fit::rational::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitError, FitOptions, ModelFamily, Termination, fit};
 use henrybook::model::rational::{ComplexPole, RealPole};
 use henrybook::model::{FittedModel, ImpedanceModel, RationalModel};
@@ -285,7 +285,7 @@ fn over_ordered_fits_of_noisy_data_that_go_non_passive_are_enforced_within_the_b
                     assert!(m.d_ohm >= 0.0 && m.e_h >= 0.0);
                     let dense = dense_min_re_z(m);
                     assert!(dense >= 0.0, "seed {seed} order {order}: Re Z = {dense}");
-                    // The bound of passivity::error_bound: (1 + allowance)·max(naive, 0.001). A
+                    // The bound of rational::passivity::error_bound: (1 + allowance)·max(naive, 0.001). A
                     // model past it is returned only with the warning that says so.
                     let bound =
                         naive.rms_weighted.max(1e-3) * (1.0 + options.passivity_rms_allowance);

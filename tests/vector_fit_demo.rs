@@ -8,7 +8,7 @@
 //! automatic order search finds no passive model closer to the data (enforcement of the closer,
 //! higher-order fits exceeds the 10 % error allowance).
 
-use henrybook::fit::passivity::check_passivity;
+use henrybook::fit::rational::passivity::check_passivity;
 use henrybook::fit::{FitControl, FitOptions, ModelFamily, fit};
 use henrybook::model::FittedModel;
 use henrybook::sweep::{Method, ReadOptions, read_sweep};

@@ -12,7 +12,7 @@
 //! passivity enforcement (scikit-rf enforces none for Z), by the same RMS error sqrt(mean |Z − Z_fit|²)
 //! in ohm against the given data. henrybook's passive model is reported beside it.
 
-use henrybook::fit::vector::{VectorFitSettings, vector_fit};
+use henrybook::fit::rational::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitOptions, ModelFamily, fit};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::Sweep;

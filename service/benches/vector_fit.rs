@@ -7,7 +7,7 @@
 //! and refinement) and of the whole `fit_rational` at that order (with the passivity check/enforcement),
 //! and the RMS error in ohm of each.
 
-use henrybook::fit::vector::{VectorFitSettings, vector_fit};
+use henrybook::fit::rational::{VectorFitSettings, vector_fit};
 use henrybook::fit::{FitControl, FitOptions, ModelFamily, fit};
 use henrybook::model::{ImpedanceModel, LumpedModel, Section, SectionKind};
 use henrybook::sweep::{Method, Sweep};

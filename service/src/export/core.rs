@@ -18,8 +18,8 @@
 //! The relative error of m over the band is stated; the netlist's whole-circuit error (checked against
 //! the model on a dense grid) includes it.
 
-use super::nnls::nnls;
 use super::{ExportError, log_grid};
+use crate::fit::linalg::nnls::nnls;
 use crate::model::{CoreDispersion, CoreLaw};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
@@ -111,7 +111,7 @@ fn debye_weights(
     for (k, s) in norms.iter().enumerate() {
         a.column_mut(k).scale_mut(1.0 / s);
     }
-    let x = nnls(&a, &b);
+    let x = nnls(a.as_slice(), a.nrows(), a.ncols(), b.as_slice());
     let weights: Vec<f64> = (0..n).map(|k| x[k] / norms[k]).collect();
     let value = |f: f64| {
         let w = 2.0 * PI * f;
@@ -135,29 +135,7 @@ pub fn design_core(
     band_hz: [f64; 2],
 ) -> Result<CoreNetwork, ExportError> {
     let [lo, hi] = band_hz;
-    let finite = [
-        core.corner_hz,
-        core.alpha,
-        core.beta,
-        core.damping,
-        core.air_fraction,
-    ];
-    if finite.iter().any(|v| !v.is_finite())
-        || core.corner_hz <= 0.0
-        || !(0.0..1.0).contains(&core.alpha)
-        || !(core.beta > 0.0 && core.beta <= 1.0)
-        || !(0.0..1.0).contains(&core.air_fraction)
-    {
-        return Err(ExportError::NotRealisable(format!(
-            "the {} core's parameters are outside the range whose law is a passive network \
-             (corner {} Hz, α {}, β {}, air fraction {})",
-            core.law.as_str(),
-            core.corner_hz,
-            core.alpha,
-            core.beta,
-            core.air_fraction
-        )));
-    }
+    check_realisable(core)?;
     let mut cells = Vec::new();
     let a = core.air_fraction;
     if a > 0.0 {
@@ -250,6 +228,34 @@ pub fn design_core(
         max_law_error_rel: max_err,
         relaxation_cells,
     })
+}
+
+/// Whether the core's parameters lie in the range whose law is a passive network.
+fn check_realisable(core: &CoreDispersion) -> Result<(), ExportError> {
+    let finite = [
+        core.corner_hz,
+        core.alpha,
+        core.beta,
+        core.damping,
+        core.air_fraction,
+    ];
+    if finite.iter().any(|v| !v.is_finite())
+        || core.corner_hz <= 0.0
+        || !(0.0..1.0).contains(&core.alpha)
+        || !(core.beta > 0.0 && core.beta <= 1.0)
+        || !(0.0..1.0).contains(&core.air_fraction)
+    {
+        return Err(ExportError::NotRealisable(format!(
+            "the {} core's parameters are outside the range whose law is a passive network \
+             (corner {} Hz, α {}, β {}, air fraction {})",
+            core.law.as_str(),
+            core.corner_hz,
+            core.alpha,
+            core.beta,
+            core.air_fraction
+        )));
+    }
+    Ok(())
 }
 
 #[cfg(test)]

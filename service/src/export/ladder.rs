@@ -14,8 +14,8 @@
 //! effect on the whole model's impedance (relative to |Z|), so the error is small where it matters,
 //! including near a high-Q self-resonance.
 
-use super::nnls::nnls;
 use super::{ExportError, grid_with_resonances, log_grid, resonances};
+use crate::fit::linalg::nnls::nnls;
 use crate::model::{LumpedModel, SectionKind};
 use nalgebra::{DMatrix, DVector};
 use num_complex::Complex64;
@@ -135,46 +135,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
     let n_corner = ((hi / lo).log10() + 2.0) * CORNERS_PER_DECADE;
     let corners_hz = log_grid(lo / 10.0, hi * 10.0, n_corner.ceil() as usize + 1);
     let n = corners_hz.len();
-    // Columns: one per cell (its R, for a fixed corner), then ±δ, the amount taken out of L0.
-    let cols = n + 2;
-    let rows = 3 * grid.len();
-    let mut a = DMatrix::<f64>::zeros(rows, cols);
-    let mut b = DVector::<f64>::zeros(rows);
-    for (i, &f) in grid.iter().enumerate() {
-        let w = 2.0 * PI * f;
-        let jw = Complex64::new(0.0, w);
-        let target = k * f.sqrt();
-        let model_skin = Complex64::new(target, 0.0);
-        let (zw, y_par) = winding_and_admittance(m, model_skin, m.core_impedance(f), f);
-        let z_model = impedance_with_skin(m, model_skin, m.l0_h, f);
-        // First-order effect of a change in Zw on Z, relative to |Z|.
-        let g = (zw * zw * y_par * y_par).inv() / z_model;
-        // ∂Zw/∂L0 (a reduction of L0 by δ changes Zw by −δ·∂Zw/∂L0); a dispersive core's impedance
-        // is proportional to L0.
-        let dcore = match (&m.core, m.rp_ohm) {
-            (Some(_), _) => m.core_impedance(f) / m.l0_h,
-            (None, Some(rp)) => jw * rp * rp / ((jw * m.l0_h + rp) * (jw * m.l0_h + rp)),
-            (None, None) => jw,
-        };
-        let r_scale = m.rdc_ohm + target;
-        for (j, &fc) in corners_hz.iter().enumerate() {
-            let x = Complex64::new(0.0, f / fc);
-            let h = x / (1.0 + x);
-            a[(3 * i, j)] = h.re / r_scale;
-            let gh = g * h;
-            a[(3 * i + 1, j)] = gh.re;
-            a[(3 * i + 2, j)] = gh.im;
-        }
-        let gd = -g * dcore;
-        a[(3 * i + 1, n)] = gd.re;
-        a[(3 * i + 2, n)] = gd.im;
-        a[(3 * i + 1, n + 1)] = -gd.re;
-        a[(3 * i + 2, n + 1)] = -gd.im;
-        b[3 * i] = target / r_scale;
-        let gt = g * target;
-        b[3 * i + 1] = gt.re;
-        b[3 * i + 2] = gt.im;
-    }
+    let (a, b) = ladder_system(m, &grid, &corners_hz);
     if !(a.iter().all(|v| v.is_finite()) && b.iter().all(|v| v.is_finite())) {
         return Err(ExportError::InvalidParameter {
             name: "k_ac_ohm_per_sqrt_hz".to_string(),
@@ -182,57 +143,7 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
             reason: "the model's impedance overflows over the band; no ladder can be designed",
         });
     }
-    // Lawson's iteratively reweighted least squares pushes the solution towards the minimax one: the
-    // rows of the points with the largest error gain weight each round.
-    let npts = grid.len();
-    let mut u_a = vec![1.0 / npts as f64; npts];
-    let mut u_b = vec![1.0 / npts as f64; npts];
-    let mut best: Option<(f64, DVector<f64>)> = None;
-    for _round in 0..IRLS_ROUNDS {
-        let mut aw = a.clone();
-        let mut bw = b.clone();
-        for i in 0..npts {
-            let (sa, sb) = (u_a[i].sqrt(), u_b[i].sqrt());
-            aw.row_mut(3 * i).scale_mut(sa);
-            bw[3 * i] *= sa;
-            for r in [3 * i + 1, 3 * i + 2] {
-                aw.row_mut(r).scale_mut(sb);
-                bw[r] *= sb;
-            }
-        }
-        let mut norms = vec![0.0; cols];
-        for (j, norm) in norms.iter_mut().enumerate() {
-            *norm = aw.column(j).norm();
-            if *norm > 0.0 {
-                let s = 1.0 / *norm;
-                aw.column_mut(j).scale_mut(s);
-            }
-        }
-        let mut x = nnls(&aw, &bw);
-        for j in 0..cols {
-            x[j] = if norms[j] > 0.0 { x[j] / norms[j] } else { 0.0 };
-        }
-        let res = &a * &x - &b;
-        let e_a: Vec<f64> = (0..npts).map(|i| res[3 * i].abs()).collect();
-        let e_b: Vec<f64> = (0..npts)
-            .map(|i| res[3 * i + 1].hypot(res[3 * i + 2]))
-            .collect();
-        let worst = e_a.iter().chain(e_b.iter()).fold(0.0f64, |m, &e| m.max(e));
-        if best.as_ref().is_none_or(|(w, _)| worst < *w) {
-            best = Some((worst, x.clone()));
-        }
-        let reweight = |u: &mut Vec<f64>, e: &[f64]| {
-            let total: f64 = u.iter().zip(e).map(|(u, e)| u * e).sum();
-            if total > 0.0 {
-                for (u, e) in u.iter_mut().zip(e) {
-                    *u = (*u * e / total).max(1e-12 / npts as f64);
-                }
-            }
-        };
-        reweight(&mut u_a, &e_a);
-        reweight(&mut u_b, &e_b);
-    }
-    let x = best.map(|(_, x)| x).unwrap_or_else(|| DVector::zeros(cols));
+    let x = minimax_solution(&a, &b, grid.len());
     let value = |j: usize| x[j];
     let r_max = (0..n).map(value).fold(0.0f64, f64::max);
     let cells: Vec<LadderCell> = corners_hz
@@ -286,6 +197,114 @@ pub fn design_skin_ladder(m: &LumpedModel, band_hz: [f64; 2]) -> Result<SkinLadd
         ladder.impedance(hi).im / (2.0 * PI * hi),
     ];
     Ok(ladder)
+}
+
+/// The ladder's linear system on `grid`: three rows per point (the relative real-part error, and the
+/// first-order effect on Z relative to |Z|, real and imaginary), one column per cell (its R, for the
+/// corner in `corners_hz`), then ±δ, the amount taken out of L0.
+fn ladder_system(
+    m: &LumpedModel,
+    grid: &[f64],
+    corners_hz: &[f64],
+) -> (DMatrix<f64>, DVector<f64>) {
+    let k = m.k_ac_ohm_per_sqrt_hz;
+    let n = corners_hz.len();
+    let cols = n + 2;
+    let rows = 3 * grid.len();
+    let mut a = DMatrix::<f64>::zeros(rows, cols);
+    let mut b = DVector::<f64>::zeros(rows);
+    for (i, &f) in grid.iter().enumerate() {
+        let w = 2.0 * PI * f;
+        let jw = Complex64::new(0.0, w);
+        let target = k * f.sqrt();
+        let model_skin = Complex64::new(target, 0.0);
+        let (zw, y_par) = winding_and_admittance(m, model_skin, m.core_impedance(f), f);
+        let z_model = impedance_with_skin(m, model_skin, m.l0_h, f);
+        // First-order effect of a change in Zw on Z, relative to |Z|.
+        let g = (zw * zw * y_par * y_par).inv() / z_model;
+        // ∂Zw/∂L0 (a reduction of L0 by δ changes Zw by −δ·∂Zw/∂L0); a dispersive core's impedance
+        // is proportional to L0.
+        let dcore = match (&m.core, m.rp_ohm) {
+            (Some(_), _) => m.core_impedance(f) / m.l0_h,
+            (None, Some(rp)) => jw * rp * rp / ((jw * m.l0_h + rp) * (jw * m.l0_h + rp)),
+            (None, None) => jw,
+        };
+        let r_scale = m.rdc_ohm + target;
+        for (j, &fc) in corners_hz.iter().enumerate() {
+            let x = Complex64::new(0.0, f / fc);
+            let h = x / (1.0 + x);
+            a[(3 * i, j)] = h.re / r_scale;
+            let gh = g * h;
+            a[(3 * i + 1, j)] = gh.re;
+            a[(3 * i + 2, j)] = gh.im;
+        }
+        let gd = -g * dcore;
+        a[(3 * i + 1, n)] = gd.re;
+        a[(3 * i + 2, n)] = gd.im;
+        a[(3 * i + 1, n + 1)] = -gd.re;
+        a[(3 * i + 2, n + 1)] = -gd.im;
+        b[3 * i] = target / r_scale;
+        let gt = g * target;
+        b[3 * i + 1] = gt.re;
+        b[3 * i + 2] = gt.im;
+    }
+    (a, b)
+}
+
+/// The non-negative solution of `a·x ≈ b` closest to the minimax one, over `npts` points of three
+/// rows each (see [`ladder_system`]).
+fn minimax_solution(a: &DMatrix<f64>, b: &DVector<f64>, npts: usize) -> DVector<f64> {
+    let cols = a.ncols();
+    // Lawson's iteratively reweighted least squares pushes the solution towards the minimax one: the
+    // rows of the points with the largest error gain weight each round.
+    let mut u_a = vec![1.0 / npts as f64; npts];
+    let mut u_b = vec![1.0 / npts as f64; npts];
+    let mut best: Option<(f64, DVector<f64>)> = None;
+    for _round in 0..IRLS_ROUNDS {
+        let mut aw = a.clone();
+        let mut bw = b.clone();
+        for i in 0..npts {
+            let (sa, sb) = (u_a[i].sqrt(), u_b[i].sqrt());
+            aw.row_mut(3 * i).scale_mut(sa);
+            bw[3 * i] *= sa;
+            for r in [3 * i + 1, 3 * i + 2] {
+                aw.row_mut(r).scale_mut(sb);
+                bw[r] *= sb;
+            }
+        }
+        let mut norms = vec![0.0; cols];
+        for (j, norm) in norms.iter_mut().enumerate() {
+            *norm = aw.column(j).norm();
+            if *norm > 0.0 {
+                let s = 1.0 / *norm;
+                aw.column_mut(j).scale_mut(s);
+            }
+        }
+        let mut x = DVector::from_vec(nnls(aw.as_slice(), aw.nrows(), aw.ncols(), bw.as_slice()));
+        for j in 0..cols {
+            x[j] = if norms[j] > 0.0 { x[j] / norms[j] } else { 0.0 };
+        }
+        let res = a * &x - b;
+        let e_a: Vec<f64> = (0..npts).map(|i| res[3 * i].abs()).collect();
+        let e_b: Vec<f64> = (0..npts)
+            .map(|i| res[3 * i + 1].hypot(res[3 * i + 2]))
+            .collect();
+        let worst = e_a.iter().chain(e_b.iter()).fold(0.0f64, |m, &e| m.max(e));
+        if best.as_ref().is_none_or(|(w, _)| worst < *w) {
+            best = Some((worst, x.clone()));
+        }
+        let reweight = |u: &mut Vec<f64>, e: &[f64]| {
+            let total: f64 = u.iter().zip(e).map(|(u, e)| u * e).sum();
+            if total > 0.0 {
+                for (u, e) in u.iter_mut().zip(e) {
+                    *u = (*u * e / total).max(1e-12 / npts as f64);
+                }
+            }
+        };
+        reweight(&mut u_a, &e_a);
+        reweight(&mut u_b, &e_b);
+    }
+    best.map(|(_, x)| x).unwrap_or_else(|| DVector::zeros(cols))
 }
 
 #[cfg(test)]

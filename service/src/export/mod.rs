@@ -16,7 +16,6 @@ pub mod csv;
 pub mod foster;
 pub mod ladder;
 mod netlist;
-mod nnls;
 pub mod spice;
 pub mod touchstone;
 

@@ -931,12 +931,43 @@ pub fn fit_lumped(
     if let Some(f) = runner.best_of(&full_base, &base_starts)? {
         fits.push(f);
     }
-    // Stage A: sections, everything else present.
+    fit_sections(&mut fits, &mut runner, &stage_a, &full_base, &guess)?;
+    fit_subsets(&mut fits, &mut runner, residuals)?;
+    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
+    dispersive_stage(&mut fits, &mut runner, sweep, residuals)?;
+    // The laws are fitted on more than one structure: the same rule among them.
+    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
+    let ran_out_of_time = runner.ran_out_of_time;
+    let last_error = runner.last_error.take();
+    if fits.is_empty() {
+        return Err(last_error
+            .unwrap_or_else(|| FitError::NonFinite("no candidate model could be fitted".into())));
+    }
+    Ok(lumped_report(
+        sweep,
+        options,
+        control,
+        &data,
+        &fits,
+        residuals,
+        ran_out_of_time,
+    ))
+}
+
+/// Stage A of [`fit_lumped`]: sections, everything else present. Each assignment of kinds is started
+/// from the fit with one section fewer (which `fits` must already hold).
+fn fit_sections(
+    fits: &mut Vec<StructureFit>,
+    runner: &mut Runner<'_>,
+    stage_a: &[Vec<SectionKind>],
+    full_base: &Structure,
+    guess: &Guess,
+) -> Result<(), FitError> {
     let mut by_kinds: Vec<(Vec<SectionKind>, usize)> = Vec::new();
     if !fits.is_empty() {
         by_kinds.push((Vec::new(), 0));
     }
-    for kinds in &stage_a {
+    for kinds in stage_a {
         let Some(prefix) = by_kinds
             .iter()
             .find(|(k, _)| k[..] == kinds[..kinds.len() - 1])
@@ -954,15 +985,24 @@ pub fn fit_lumped(
         let mut from_curve = guess.base.clone();
         from_curve.ls_h = (1e-4 * from_curve.l0_h).min(from_curve.ls_h);
         let candidates = [
-            (start_for(kinds, &prefix, &guess), true),
-            (start_for(kinds, &from_curve, &guess), true),
-            (embed(&prefix, &structure, &data, &guess), false),
+            (start_for(kinds, &prefix, guess), true),
+            (start_for(kinds, &from_curve, guess), true),
+            (embed(&prefix, &structure, runner.data, guess), false),
         ];
         if let Some(f) = runner.best_of(&structure, &candidates)? {
             fits.push(f);
             by_kinds.push((kinds.clone(), fits.len() - 1));
         }
     }
+    Ok(())
+}
+
+/// Stage B of [`fit_lumped`]: subsets of {rp, k_ac, ls} on the best section assignment so far.
+fn fit_subsets(
+    fits: &mut Vec<StructureFit>,
+    runner: &mut Runner<'_>,
+    residuals: f64,
+) -> Result<(), FitError> {
     let best_a = (0..fits.len()).min_by(|&a, &b| {
         bic(fits[a].cost, residuals, fits[a].structure.len()).total_cmp(&bic(
             fits[b].cost,
@@ -970,7 +1010,6 @@ pub fn fit_lumped(
             fits[b].structure.len(),
         ))
     });
-    // Stage B: subsets of {rp, k_ac, ls} on the best section assignment.
     if let Some(ia) = best_a {
         let full = fits[ia].model();
         for mask in 0..7u8 {
@@ -990,16 +1029,19 @@ pub fn fit_lumped(
             }
         }
     }
-    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
-    dispersive_stage(&mut fits, &mut runner, sweep, residuals)?;
-    // The laws are fitted on more than one structure: the same rule among them.
-    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
-    let ran_out_of_time = runner.ran_out_of_time;
-    let last_error = runner.last_error.take();
-    if fits.is_empty() {
-        return Err(last_error
-            .unwrap_or_else(|| FitError::NonFinite("no candidate model could be fitted".into())));
-    }
+    Ok(())
+}
+
+/// The report of the fit [`fit_lumped`] chooses by BIC among `fits` (not empty).
+fn lumped_report(
+    sweep: &Sweep,
+    options: &FitOptions,
+    control: &FitControl,
+    data: &FitData,
+    fits: &[StructureFit],
+    residuals: f64,
+    ran_out_of_time: bool,
+) -> FitReport {
     let bics: Vec<f64> = fits
         .iter()
         .map(|f| bic(f.cost, residuals, f.structure.len()))
@@ -1010,7 +1052,7 @@ pub fn fit_lumped(
     let fit = &fits[chosen];
     let model = fit.model();
     let mut assessment = assess::assess(&model, sweep, fit.structure.len());
-    let at_walls = LumpedProblem::new(&data, &fit.structure).exceeded_walls(&fit.theta);
+    let at_walls = LumpedProblem::new(data, &fit.structure).exceeded_walls(&fit.theta);
     for label in &at_walls {
         assessment.findings.push(assess::Finding {
             kind: assess::FindingKind::AtPlausibilityLimit,
@@ -1021,7 +1063,7 @@ pub fn fit_lumped(
     let mut sp = spread(fit, residuals, assessment.sigma_widening);
     include_selection_spread(
         &mut sp,
-        &fits,
+        fits,
         &bics,
         chosen,
         residuals,
@@ -1073,32 +1115,17 @@ pub fn fit_lumped(
     let mut warnings = report_warnings(sweep, options);
     warnings.extend(plausibility_warnings(&model, band_hz));
     let material = options.construction.as_ref().and_then(|c| {
-        let cov = crate::model::material::ParameterCovariance::from_fit(
-            &fit.structure,
-            &fit.theta,
-            &sp.covariance_theta,
-            &sp.sigma_theta,
-        );
-        let r = crate::model::material::material_report(
-            &model,
-            uncertainty.l0_h,
-            Some(&cov),
+        material_of(
             c,
+            fit,
+            &model,
+            &sp,
+            uncertainty.l0_h,
             band_hz,
-        );
-        if r.is_finite() {
-            Some(r)
-        } else {
-            warnings.push(
-                "the core material is not reported: with the stated construction the fitted L0 \
-                 gives no finite permeability (a gap the fitted inductance cannot have, or \
-                 dimensions far from a real core)"
-                    .into(),
-            );
-            None
-        }
+            &mut warnings,
+        )
     });
-    Ok(FitReport {
+    FitReport {
         material,
         engine_version: super::ENGINE_VERSION.to_string(),
         model: FittedModel::Lumped(model),
@@ -1113,7 +1140,44 @@ pub fn fit_lumped(
         iterations,
         candidates,
         band_hz,
-    })
+    }
+}
+
+/// The core material read off the chosen fit for the stated construction, or a warning saying why
+/// there is none.
+fn material_of(
+    construction: &crate::model::material::Construction,
+    fit: &StructureFit,
+    model: &LumpedModel,
+    sp: &Spread,
+    sigma_l0_h: Option<f64>,
+    band_hz: [f64; 2],
+    warnings: &mut Vec<String>,
+) -> Option<crate::model::material::MaterialReport> {
+    let cov = crate::model::material::ParameterCovariance::from_fit(
+        &fit.structure,
+        &fit.theta,
+        &sp.covariance_theta,
+        &sp.sigma_theta,
+    );
+    let r = crate::model::material::material_report(
+        model,
+        sigma_l0_h,
+        Some(&cov),
+        construction,
+        band_hz,
+    );
+    if r.is_finite() {
+        Some(r)
+    } else {
+        warnings.push(
+            "the core material is not reported: with the stated construction the fitted L0 \
+             gives no finite permeability (a gap the fitted inductance cannot have, or \
+             dimensions far from a real core)"
+                .into(),
+        );
+        None
+    }
 }
 
 /// Whether the residuals of a model leave enough misfit that a broader core law is worth trying:

@@ -7,12 +7,12 @@
 pub mod assess;
 pub mod derived;
 pub mod initial;
+pub(crate) mod linalg;
 pub mod lm;
 pub mod lumped;
-pub mod passivity;
 pub mod plausible;
 pub mod problem;
-pub mod vector;
+pub mod rational;
 
 pub use assess::{Assessment, FitStatus};
 
@@ -64,7 +64,7 @@ pub struct FitOptions {
     /// Rational fits: most pole relocations per order.
     pub rational_max_relocations: u64,
     /// Rational fits: passivity enforcement may raise the weighted RMS error by at most this fraction
-    /// (0.1 = 10 %; of at least 0.001, see `passivity::error_bound`). When no order within it reaches
+    /// (0.1 = 10 %; of at least 0.001, see `rational::passivity::error_bound`). When no order within it reaches
     /// the target error, an order enforced past it is kept if it is clearly closer to the data, with a
     /// warning; passive data are never refused for the allowance alone.
     pub passivity_rms_allowance: f64,
@@ -404,5 +404,5 @@ pub fn fit_rational(
     options: &FitOptions,
     control: &FitControl,
 ) -> Result<FitReport, FitError> {
-    vector::fit_rational(sweep, options, control)
+    rational::fit_rational(sweep, options, control)
 }

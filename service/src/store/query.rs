@@ -221,21 +221,7 @@ impl PartQuery {
 impl Store {
     pub async fn query_parts(&self, query: &PartQuery) -> StoreResult<PartPage> {
         query.validate().map_err(StoreError::Invalid)?;
-        let sort_col = query.sort.column();
-        let sort_expr = sort_col.map(|c| {
-            let fill = if query.sort.descending {
-                "-1e308"
-            } else {
-                "1e308"
-            };
-            format!("COALESCE({c}, {fill})")
-        });
-        let l_bracket = query.l_at_hz.and_then(grid::bracket);
-        let z_band = match (query.z_band_min_hz, query.z_band_max_hz) {
-            (Some(a), Some(b)) => Some((a, b)),
-            _ => None,
-        };
-
+        let plan = Plan::of(query);
         // Two steps in one statement: the inner query filters, sorts and cuts the page carrying only
         // keys and the computed figures (so the sort over thousands of matches stays small), the outer
         // one fetches the page's rows.
@@ -251,7 +237,108 @@ impl Store {
              k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
              SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
         );
-        match l_bracket {
+        plan.push_computed_columns(&mut q);
+        push_source(&mut q, query.source);
+        plan.push_grid_joins(&mut q);
+        q.push(" WHERE 1 = 1");
+        if let Some(text) = &query.q {
+            push_text_filter(&mut q, text);
+        }
+        push_srf_filter(&mut q, query.srf_min_hz, query.srf_max_hz);
+        push_series_resonance_filter(
+            &mut q,
+            query.series_resonance_min_hz,
+            query.series_resonance_max_hz,
+        );
+        push_figure_bounds(&mut q, query);
+        plan.push_l_filter(&mut q);
+        plan.push_z_filter(&mut q);
+        if let Some(c) = &query.cursor {
+            plan.push_after_cursor(&mut q, c);
+        }
+        plan.push_inner_order(&mut q);
+        q.push(" LIMIT ").push_bind(query.limit + 1);
+        q.push(
+            ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
+             LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
+        );
+        plan.push_outer_order(&mut q);
+
+        let rows = q.build().fetch_all(&self.reader).await?;
+        let mut items = Vec::with_capacity(rows.len());
+        let mut sort_values = Vec::with_capacity(rows.len());
+        for row in &rows {
+            sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
+            items.push(summary_of(row)?);
+        }
+        let next_cursor = cut_page(&mut items, &sort_values, query.limit);
+        self.attach_series_resonances(&mut items).await?;
+        Ok(PartPage {
+            items,
+            next_cursor,
+            answer_from: query.source.as_str().to_string(),
+        })
+    }
+
+    /// Fills every item's series resonances (ascending) from its answering fit.
+    async fn attach_series_resonances(&self, items: &mut [PartSummary]) -> StoreResult<()> {
+        if items.is_empty() {
+            return Ok(());
+        }
+        let mut r: QueryBuilder<Sqlite> = QueryBuilder::new(
+            "SELECT fit_id, frequency_hz FROM fit_resonances WHERE kind = 'series' AND fit_id IN (",
+        );
+        let mut sep = r.separated(", ");
+        for it in items.iter() {
+            sep.push_bind(it.answered_from_fit_id);
+        }
+        r.push(") ORDER BY frequency_hz");
+        let res: Vec<(i64, f64)> = r.build_query_as().fetch_all(&self.reader).await?;
+        for it in items.iter_mut() {
+            it.series_resonances_hz = res
+                .iter()
+                .filter(|(id, _)| Some(*id) == it.answered_from_fit_id)
+                .map(|(_, f)| *f)
+                .collect();
+        }
+        Ok(())
+    }
+}
+
+/// What the filters of one query share: the sort expression, the grid bracket of `l_at_hz` and the
+/// |Z| band.
+struct Plan<'a> {
+    query: &'a PartQuery,
+    sort_expr: Option<String>,
+    l_bracket: Option<(i64, f64)>,
+    z_band: Option<(f64, f64)>,
+}
+
+impl Plan<'_> {
+    fn of(query: &PartQuery) -> Plan<'_> {
+        let sort_expr = query.sort.column().map(|c| {
+            let fill = if query.sort.descending {
+                "-1e308"
+            } else {
+                "1e308"
+            };
+            format!("COALESCE({c}, {fill})")
+        });
+        let z_band = match (query.z_band_min_hz, query.z_band_max_hz) {
+            (Some(a), Some(b)) => Some((a, b)),
+            _ => None,
+        };
+        Plan {
+            query,
+            sort_expr,
+            l_bracket: query.l_at_hz.and_then(grid::bracket),
+            z_band,
+        }
+    }
+
+    /// The inner query's computed columns: L at `l_at_hz`, the lowest |Z| over the band, the sort value.
+    fn push_computed_columns(&self, q: &mut QueryBuilder<Sqlite>) {
+        match self.l_bracket {
             Some((_, w)) if w > 0.0 => {
                 q.push(", (g1.l_eff_h * (1 - ")
                     .push_bind(w)
@@ -266,31 +353,25 @@ impl Store {
                 q.push(", NULL AS l_eff_h");
             }
         }
-        match z_band {
+        match self.z_band {
             Some((lo, hi)) => {
                 q.push(", ");
-                push_z_min(&mut q, lo, hi);
+                push_z_min(q, lo, hi);
                 q.push(" AS z_min_ohm");
             }
             None => {
                 q.push(", NULL AS z_min_ohm");
             }
         }
-        match &sort_expr {
+        match &self.sort_expr {
             Some(e) => q.push(format!(", {e} AS sort_value")),
             None => q.push(", NULL AS sort_value"),
         };
-        q.push(match query.source {
-            AnswerSource::Approved => " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id",
-            AnswerSource::Latest => " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id",
-            AnswerSource::LatestPassing => {
-                " FROM parts p JOIN fits f ON f.fit_id = (SELECT MAX(fp.fit_id) FROM fits fp \
-                 WHERE fp.part_id = p.part_id AND fp.status = 'succeeded' AND fp.quality = 'ok' \
-                 AND (fp.verdict = 'pass' OR fp.verdict IS NULL) \
-                 AND (fp.approval IS NULL OR fp.approval <> 'rejected'))"
-            }
-        });
-        if let Some((k, w)) = l_bracket {
+    }
+
+    /// The grid rows L at `l_at_hz` is interpolated between.
+    fn push_grid_joins(&self, q: &mut QueryBuilder<Sqlite>) {
+        if let Some((k, w)) = self.l_bracket {
             q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
                 .push_bind(k);
             if w > 0.0 {
@@ -298,187 +379,220 @@ impl Store {
                     .push_bind(k + 1);
             }
         }
-        q.push(" WHERE 1 = 1");
-        if let Some(text) = &query.q {
-            let like = format!(
-                "%{}%",
-                text.replace('\\', "\\\\")
-                    .replace('%', "\\%")
-                    .replace('_', "\\_")
-            );
-            q.push(" AND (p.part_number LIKE ")
-                .push_bind(like.clone())
-                .push(" ESCAPE '\\' OR p.description LIKE ")
-                .push_bind(like)
-                .push(" ESCAPE '\\')");
+    }
+
+    /// L at `l_at_hz` between its bounds (only with `l_at_hz`).
+    fn push_l_filter(&self, q: &mut QueryBuilder<Sqlite>) {
+        let Some((_, w)) = self.l_bracket else {
+            return;
+        };
+        let expr = if w > 0.0 {
+            format!("(g1.l_eff_h * (1 - {w:e}) + g2.l_eff_h * {w:e})")
+        } else {
+            "g1.l_eff_h".to_string()
+        };
+        if let Some(lo) = self.query.l_min_h {
+            q.push(format!(" AND {expr} >= ")).push_bind(lo);
         }
-        match (query.srf_min_hz, query.srf_max_hz) {
-            (Some(lo), Some(hi)) => {
-                q.push(" AND f.srf_hz BETWEEN ")
-                    .push_bind(lo)
-                    .push(" AND ")
-                    .push_bind(hi);
-            }
-            (Some(lo), None) => {
-                // An SRF above the sweep counts when the sweep's top already clears the minimum.
-                q.push(" AND (f.srf_hz >= ")
-                    .push_bind(lo)
-                    .push(" OR (f.srf_hz IS NULL AND f.srf_above_hz >= ")
-                    .push_bind(lo)
+        if let Some(hi) = self.query.l_max_h {
+            q.push(format!(" AND {expr} <= ")).push_bind(hi);
+        }
+    }
+
+    /// The |Z| band inside the fit's sweep, and its lowest |Z| at least `z_min_ohm`.
+    fn push_z_filter(&self, q: &mut QueryBuilder<Sqlite>) {
+        let Some((lo, hi)) = self.z_band else {
+            return;
+        };
+        // The whole band must lie inside the fit's sweep.
+        q.push(" AND f.band_min_hz <= ")
+            .push_bind(lo * (1.0 + 1e-9))
+            .push(" AND f.band_max_hz >= ")
+            .push_bind(hi * (1.0 - 1e-9));
+        if let Some(zmin) = self.query.z_min_ohm {
+            q.push(" AND ");
+            push_z_min(q, lo, hi);
+            q.push(" >= ").push_bind(zmin);
+        }
+    }
+
+    /// Keyset pagination: only rows after the cursor in the query's order.
+    fn push_after_cursor(&self, q: &mut QueryBuilder<Sqlite>, c: &Cursor) {
+        match (&self.sort_expr, c.v) {
+            (Some(e), Some(v)) => {
+                let cmp = if self.query.sort.descending { "<" } else { ">" };
+                q.push(format!(" AND ({e} {cmp} "))
+                    .push_bind(v)
+                    .push(format!(" OR ({e} = "))
+                    .push_bind(v)
+                    .push(" AND p.part_number > ")
+                    .push_bind(c.p.clone())
                     .push("))");
             }
-            (None, Some(hi)) => {
-                q.push(" AND f.srf_hz <= ").push_bind(hi);
-            }
-            (None, None) => {}
-        }
-        if query.series_resonance_min_hz.is_some() || query.series_resonance_max_hz.is_some() {
-            q.push(
-                " AND EXISTS (SELECT 1 FROM fit_resonances r WHERE r.fit_id = f.fit_id \
-                 AND r.kind = 'series' AND r.frequency_hz BETWEEN ",
-            )
-            .push_bind(query.series_resonance_min_hz.unwrap_or(0.0))
-            .push(" AND ")
-            .push_bind(query.series_resonance_max_hz.unwrap_or(f64::MAX))
-            .push(")");
-        }
-        if let Some(max) = query.dcr_max_ohm {
-            q.push(" AND f.rdc_ohm <= ").push_bind(max);
-        }
-        // NULL (no core corner) fails both comparisons: such a fit never matches.
-        if let Some(lo) = query.core_corner_min_hz {
-            q.push(" AND f.core_corner_hz >= ").push_bind(lo);
-        }
-        if let Some(hi) = query.core_corner_max_hz {
-            q.push(" AND f.core_corner_hz <= ").push_bind(hi);
-        }
-        if l_bracket.is_some() {
-            let expr = match l_bracket {
-                Some((_, w)) if w > 0.0 => {
-                    format!("(g1.l_eff_h * (1 - {w:e}) + g2.l_eff_h * {w:e})")
-                }
-                _ => "g1.l_eff_h".to_string(),
-            };
-            if let Some(lo) = query.l_min_h {
-                q.push(format!(" AND {expr} >= ")).push_bind(lo);
-            }
-            if let Some(hi) = query.l_max_h {
-                q.push(format!(" AND {expr} <= ")).push_bind(hi);
+            _ => {
+                q.push(" AND p.part_number > ").push_bind(c.p.clone());
             }
         }
-        if let Some((lo, hi)) = z_band {
-            // The whole band must lie inside the fit's sweep.
-            q.push(" AND f.band_min_hz <= ")
-                .push_bind(lo * (1.0 + 1e-9))
-                .push(" AND f.band_max_hz >= ")
-                .push_bind(hi * (1.0 - 1e-9));
-            if let Some(zmin) = query.z_min_ohm {
-                q.push(" AND ");
-                push_z_min(&mut q, lo, hi);
-                q.push(" >= ").push_bind(zmin);
-            }
-        }
-        if let Some(c) = &query.cursor {
-            match (&sort_expr, c.v) {
-                (Some(e), Some(v)) => {
-                    let cmp = if query.sort.descending { "<" } else { ">" };
-                    q.push(format!(" AND ({e} {cmp} "))
-                        .push_bind(v)
-                        .push(format!(" OR ({e} = "))
-                        .push_bind(v)
-                        .push(" AND p.part_number > ")
-                        .push_bind(c.p.clone())
-                        .push("))");
-                }
-                _ => {
-                    q.push(" AND p.part_number > ").push_bind(c.p.clone());
-                }
-            }
-        }
-        match &sort_expr {
+    }
+
+    fn push_inner_order(&self, q: &mut QueryBuilder<Sqlite>) {
+        match &self.sort_expr {
             Some(e) => {
-                let dir = if query.sort.descending { "DESC" } else { "ASC" };
+                let dir = if self.query.sort.descending {
+                    "DESC"
+                } else {
+                    "ASC"
+                };
                 q.push(format!(" ORDER BY {e} {dir}, p.part_number ASC"));
             }
             None => {
                 q.push(" ORDER BY p.part_number ASC");
             }
         }
-        q.push(" LIMIT ").push_bind(query.limit + 1);
-        q.push(
-            ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
-             LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
-        );
-        match &sort_expr {
+    }
+
+    fn push_outer_order(&self, q: &mut QueryBuilder<Sqlite>) {
+        match &self.sort_expr {
             Some(_) => {
-                let dir = if query.sort.descending { "DESC" } else { "ASC" };
+                let dir = if self.query.sort.descending {
+                    "DESC"
+                } else {
+                    "ASC"
+                };
                 q.push(format!(" ORDER BY k.sort_value {dir}, k.part_number ASC"));
             }
             None => {
                 q.push(" ORDER BY k.part_number ASC");
             }
         }
-
-        let rows = q.build().fetch_all(&self.reader).await?;
-        let mut items = Vec::with_capacity(rows.len());
-        let mut sort_values = Vec::with_capacity(rows.len());
-        for row in &rows {
-            sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
-            items.push(PartSummary {
-                part_number: row.try_get("part_number")?,
-                description: row.try_get("description")?,
-                approved_fit_id: row.try_get("baseline_fit_id")?,
-                latest_fit_id: row.try_get("latest_fit_id")?,
-                latest_verdict: row.try_get("latest_verdict")?,
-                drift_max_sigma: row.try_get("drift_max_sigma")?,
-                drift_l0_percent: row.try_get("drift_l0_percent")?,
-                l_tolerance_percent: row.try_get("l_tolerance_percent")?,
-                srf_hz: row.try_get("srf_hz")?,
-                series_resonances_hz: Vec::new(),
-                l0_h: row.try_get("l0_h")?,
-                rdc_ohm: row.try_get("rdc_ohm")?,
-                core_corner_hz: row.try_get("core_corner_hz")?,
-                l_eff_h: row.try_get("l_eff_h")?,
-                z_min_ohm: row.try_get("z_min_ohm")?,
-                answered_from_fit_id: row.try_get("answered")?,
-            });
-        }
-        let next_cursor = if items.len() as i64 > query.limit {
-            items.truncate(query.limit as usize);
-            items.last().map(|last| {
-                Cursor {
-                    v: sort_values[query.limit as usize - 1],
-                    p: last.part_number.clone(),
-                }
-                .encode()
-            })
-        } else {
-            None
-        };
-        if !items.is_empty() {
-            let mut r: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "SELECT fit_id, frequency_hz FROM fit_resonances WHERE kind = 'series' AND fit_id IN (",
-            );
-            let mut sep = r.separated(", ");
-            for it in &items {
-                sep.push_bind(it.answered_from_fit_id);
-            }
-            r.push(") ORDER BY frequency_hz");
-            let res: Vec<(i64, f64)> = r.build_query_as().fetch_all(&self.reader).await?;
-            for it in &mut items {
-                it.series_resonances_hz = res
-                    .iter()
-                    .filter(|(id, _)| Some(*id) == it.answered_from_fit_id)
-                    .map(|(_, f)| *f)
-                    .collect();
-            }
-        }
-        Ok(PartPage {
-            items,
-            next_cursor,
-            answer_from: query.source.as_str().to_string(),
-        })
     }
+}
+
+/// Which fit of each part answers: the approved baseline, the newest, or the newest that passes.
+fn push_source(q: &mut QueryBuilder<Sqlite>, source: AnswerSource) {
+    q.push(match source {
+        AnswerSource::Approved => " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id",
+        AnswerSource::Latest => " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id",
+        AnswerSource::LatestPassing => {
+            " FROM parts p JOIN fits f ON f.fit_id = (SELECT MAX(fp.fit_id) FROM fits fp \
+             WHERE fp.part_id = p.part_id AND fp.status = 'succeeded' AND fp.quality = 'ok' \
+             AND (fp.verdict = 'pass' OR fp.verdict IS NULL) \
+             AND (fp.approval IS NULL OR fp.approval <> 'rejected'))"
+        }
+    });
+}
+
+/// The text in the part number or the description (LIKE, with its wildcards escaped).
+fn push_text_filter(q: &mut QueryBuilder<Sqlite>, text: &str) {
+    let like = format!(
+        "%{}%",
+        text.replace('\\', "\\\\")
+            .replace('%', "\\%")
+            .replace('_', "\\_")
+    );
+    q.push(" AND (p.part_number LIKE ")
+        .push_bind(like.clone())
+        .push(" ESCAPE '\\' OR p.description LIKE ")
+        .push_bind(like)
+        .push(" ESCAPE '\\')");
+}
+
+fn push_srf_filter(q: &mut QueryBuilder<Sqlite>, min_hz: Option<f64>, max_hz: Option<f64>) {
+    match (min_hz, max_hz) {
+        (Some(lo), Some(hi)) => {
+            q.push(" AND f.srf_hz BETWEEN ")
+                .push_bind(lo)
+                .push(" AND ")
+                .push_bind(hi);
+        }
+        (Some(lo), None) => {
+            // An SRF above the sweep counts when the sweep's top already clears the minimum.
+            q.push(" AND (f.srf_hz >= ")
+                .push_bind(lo)
+                .push(" OR (f.srf_hz IS NULL AND f.srf_above_hz >= ")
+                .push_bind(lo)
+                .push("))");
+        }
+        (None, Some(hi)) => {
+            q.push(" AND f.srf_hz <= ").push_bind(hi);
+        }
+        (None, None) => {}
+    }
+}
+
+/// A series resonance inside the band (either end may be open).
+fn push_series_resonance_filter(
+    q: &mut QueryBuilder<Sqlite>,
+    min_hz: Option<f64>,
+    max_hz: Option<f64>,
+) {
+    if min_hz.is_none() && max_hz.is_none() {
+        return;
+    }
+    q.push(
+        " AND EXISTS (SELECT 1 FROM fit_resonances r WHERE r.fit_id = f.fit_id \
+         AND r.kind = 'series' AND r.frequency_hz BETWEEN ",
+    )
+    .push_bind(min_hz.unwrap_or(0.0))
+    .push(" AND ")
+    .push_bind(max_hz.unwrap_or(f64::MAX))
+    .push(")");
+}
+
+/// DCR at most, and the core corner between its bounds.
+fn push_figure_bounds(q: &mut QueryBuilder<Sqlite>, query: &PartQuery) {
+    if let Some(max) = query.dcr_max_ohm {
+        q.push(" AND f.rdc_ohm <= ").push_bind(max);
+    }
+    // NULL (no core corner) fails both comparisons: such a fit never matches.
+    if let Some(lo) = query.core_corner_min_hz {
+        q.push(" AND f.core_corner_hz >= ").push_bind(lo);
+    }
+    if let Some(hi) = query.core_corner_max_hz {
+        q.push(" AND f.core_corner_hz <= ").push_bind(hi);
+    }
+}
+
+/// One row of the outer query as a summary (its series resonances come later).
+fn summary_of(row: &sqlx::sqlite::SqliteRow) -> Result<PartSummary, sqlx::Error> {
+    Ok(PartSummary {
+        part_number: row.try_get("part_number")?,
+        description: row.try_get("description")?,
+        approved_fit_id: row.try_get("baseline_fit_id")?,
+        latest_fit_id: row.try_get("latest_fit_id")?,
+        latest_verdict: row.try_get("latest_verdict")?,
+        drift_max_sigma: row.try_get("drift_max_sigma")?,
+        drift_l0_percent: row.try_get("drift_l0_percent")?,
+        l_tolerance_percent: row.try_get("l_tolerance_percent")?,
+        srf_hz: row.try_get("srf_hz")?,
+        series_resonances_hz: Vec::new(),
+        l0_h: row.try_get("l0_h")?,
+        rdc_ohm: row.try_get("rdc_ohm")?,
+        core_corner_hz: row.try_get("core_corner_hz")?,
+        l_eff_h: row.try_get("l_eff_h")?,
+        z_min_ohm: row.try_get("z_min_ohm")?,
+        answered_from_fit_id: row.try_get("answered")?,
+    })
+}
+
+/// Cuts the one row fetched beyond the page and returns the cursor after the page's last item (none
+/// when nothing follows).
+fn cut_page(
+    items: &mut Vec<PartSummary>,
+    sort_values: &[Option<f64>],
+    limit: i64,
+) -> Option<String> {
+    if items.len() as i64 <= limit {
+        return None;
+    }
+    items.truncate(limit as usize);
+    items.last().map(|last| {
+        Cursor {
+            v: sort_values[limit as usize - 1],
+            p: last.part_number.clone(),
+        }
+        .encode()
+    })
 }
 
 /// Pushes the SQL for the lowest |Z| of the fit `f` over `[lo, hi]`, from its grid rows (see

@@ -210,315 +210,335 @@ struct Record {
 /// Parses Touchstone text. `ports_hint` is the port count the file name states (`.s2p` → 2); version 2
 /// files state their own, and a version 1 file without a hint is 1- or 2-port by its column count.
 pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network, SweepError> {
-    let mut version = TouchstoneVersion::V1;
-    let mut option: Option<OptionLine> = None;
-    let mut ports: Option<usize> = None;
-    let mut ports_line: Option<usize> = None;
-    let mut order: Option<TwoPortOrder> = None;
-    let mut n_freq: Option<(usize, usize)> = None; // (count, line)
-    let mut reference: Vec<f64> = Vec::new();
-    let mut reference_line: Option<usize> = None;
-    let mut collecting_reference = false;
-    let mut matrix = MatrixFormat::Full;
-    let mut state = State::Header;
-    let mut saw_content = false;
-    let mut saw_network_data = false;
-
-    let mut records: Vec<Record> = Vec::new();
-    let mut current: Option<Record> = None;
-    let mut last_line = 0;
-
+    let mut reader = Reader::new(ports_hint);
     for (idx, raw) in text.split('\n').enumerate() {
-        let ln = idx + 1;
-        last_line = ln;
+        reader.line(idx + 1, raw)?;
+    }
+    reader.finish()
+}
+
+/// The reader's state between lines: what the header has said so far, where in the file it is, and
+/// the data records read (the last one possibly still open across lines).
+struct Reader {
+    ports_hint: Option<usize>,
+    version: TouchstoneVersion,
+    option: Option<OptionLine>,
+    ports: Option<usize>,
+    ports_line: Option<usize>,
+    order: Option<TwoPortOrder>,
+    /// `[Number of Frequencies]` and its line.
+    n_freq: Option<(usize, usize)>,
+    reference: Vec<f64>,
+    reference_line: Option<usize>,
+    /// `[Reference]` may continue on the following lines.
+    collecting_reference: bool,
+    matrix: MatrixFormat,
+    state: State,
+    saw_content: bool,
+    saw_network_data: bool,
+    records: Vec<Record>,
+    current: Option<Record>,
+    last_line: usize,
+}
+
+impl Reader {
+    fn new(ports_hint: Option<usize>) -> Reader {
+        Reader {
+            ports_hint,
+            version: TouchstoneVersion::V1,
+            option: None,
+            ports: None,
+            ports_line: None,
+            order: None,
+            n_freq: None,
+            reference: Vec::new(),
+            reference_line: None,
+            collecting_reference: false,
+            matrix: MatrixFormat::Full,
+            state: State::Header,
+            saw_content: false,
+            saw_network_data: false,
+            records: Vec::new(),
+            current: None,
+            last_line: 0,
+        }
+    }
+
+    /// One line of the file, `ln` 1-based.
+    fn line(&mut self, ln: usize, raw: &str) -> Result<(), SweepError> {
+        self.last_line = ln;
         let body = raw.split('!').next().unwrap_or("").trim();
         if body.is_empty() {
-            continue;
+            return Ok(());
         }
-        let first_content = !saw_content;
-        saw_content = true;
-
-        if state == State::End {
+        let first_content = !self.saw_content;
+        self.saw_content = true;
+        if self.state == State::End {
             return Err(SweepError::at(ln, "content after [End]"));
         }
-
         if let Some(rest) = body.strip_prefix('[') {
-            let (name, value) = match rest.split_once(']') {
-                Some((n, v)) => (n, v.trim()),
-                None => {
-                    return Err(SweepError::at(ln, "a keyword '[' has no closing ']'"));
-                }
-            };
-            let key = name
-                .split_whitespace()
-                .collect::<Vec<_>>()
-                .join(" ")
-                .to_ascii_lowercase();
-            if let Some(rec) = &current {
-                return Err(incomplete(rec, expected_len(ports, matrix)));
-            }
-            if state == State::Information {
-                if key == "end information" {
-                    state = State::Header;
-                }
-                continue;
-            }
-            if saw_network_data && !(key == "end" || (key == "noise data" && state != State::Noise))
-            {
-                return Err(SweepError::at(
-                    ln,
-                    format!(
-                        "keyword [{name}] after [Network Data]: only [Noise Data] and [End] may \
-                         follow the network data"
-                    ),
-                ));
-            }
-            if key == "version" {
-                if !first_content {
-                    return Err(SweepError::at(
-                        ln,
-                        "[Version] must come before everything else except comments",
-                    ));
-                }
-                match value.trim() {
-                    v if v.starts_with("2.") => version = TouchstoneVersion::V2,
-                    v if v.starts_with("1.") => version = TouchstoneVersion::V1,
-                    v => {
-                        return Err(SweepError::at(
-                            ln,
-                            format!("unsupported Touchstone version '{v}': expected 1.x or 2.x"),
-                        ));
-                    }
-                }
-                continue;
-            }
-            if version == TouchstoneVersion::V1 {
-                return Err(SweepError::at(
-                    ln,
-                    format!(
-                        "keyword [{name}] in a version 1 file (a version 2 file starts with [Version] 2.0)"
-                    ),
-                ));
-            }
-            collecting_reference = false;
-            match key.as_str() {
-                "number of ports" => {
-                    if let Some(first) = ports_line {
-                        return Err(SweepError::at(
-                            ln,
-                            format!("[Number of Ports] appears twice (first on line {first})"),
-                        ));
-                    }
-                    let n: usize = value.parse().map_err(|_| {
-                        SweepError::at(
-                            ln,
-                            format!("[Number of Ports] '{value}' is not a whole number"),
-                        )
-                    })?;
-                    if n == 0 {
-                        return Err(SweepError::at(ln, "[Number of Ports] must be at least 1"));
-                    }
-                    if n > 2 {
-                        return Err(SweepError::at(
-                            ln,
-                            format!(
-                                "{n}-port files are not supported: an inductor is measured as a \
-                                 1-port or a 2-port"
-                            ),
-                        ));
-                    }
-                    ports = Some(n);
-                    ports_line = Some(ln);
-                }
-                "two-port data order" => {
-                    order = Some(match value.to_ascii_lowercase().as_str() {
-                        "12_21" => TwoPortOrder::N12First,
-                        "21_12" => TwoPortOrder::N21First,
-                        _ => {
-                            return Err(SweepError::at(
-                                ln,
-                                format!("[Two-Port Data Order] '{value}': expected 12_21 or 21_12"),
-                            ));
-                        }
-                    });
-                }
-                "number of frequencies" => {
-                    let n: usize = value.parse().map_err(|_| {
-                        SweepError::at(
-                            ln,
-                            format!("[Number of Frequencies] '{value}' is not a whole number"),
-                        )
-                    })?;
-                    n_freq = Some((n, ln));
-                }
-                "number of noise frequencies" => {}
-                "reference" => {
-                    reference.clear();
-                    push_reference(&mut reference, value, ln)?;
-                    reference_line = Some(ln);
-                    collecting_reference = true;
-                }
-                "matrix format" => {
-                    matrix = match value.to_ascii_lowercase().as_str() {
-                        "full" => MatrixFormat::Full,
-                        "lower" => MatrixFormat::Lower,
-                        "upper" => MatrixFormat::Upper,
-                        _ => {
-                            return Err(SweepError::at(
-                                ln,
-                                format!("[Matrix Format] '{value}': expected Full, Lower or Upper"),
-                            ));
-                        }
-                    };
-                }
-                "mixed-mode order" => {
-                    return Err(SweepError::at(
-                        ln,
-                        "mixed-mode (differential) data are not supported",
-                    ));
-                }
-                "begin information" => state = State::Information,
-                "network data" => {
-                    if option.is_none() {
-                        return Err(SweepError::at(
-                            ln,
-                            "[Network Data] before the option line ('# <unit> <parameter> <format> R <ohm>')",
-                        ));
-                    }
-                    let n = ports.ok_or_else(|| {
-                        SweepError::at(ln, "[Network Data] before [Number of Ports]")
-                    })?;
-                    if n_freq.is_none() {
-                        return Err(SweepError::at(
-                            ln,
-                            "[Network Data] before [Number of Frequencies]",
-                        ));
-                    }
-                    if n == 2 && order.is_none() {
-                        return Err(SweepError::at(
-                            ln,
-                            "a 2-port version 2 file needs [Two-Port Data Order] before [Network Data]",
-                        ));
-                    }
-                    state = State::NetworkData;
-                    saw_network_data = true;
-                }
-                "noise data" => {
-                    if !saw_network_data {
-                        return Err(SweepError::at(ln, "[Noise Data] before [Network Data]"));
-                    }
-                    state = State::Noise;
-                }
-                "end" => state = State::End,
-                _ => {
-                    return Err(SweepError::at(ln, format!("unknown keyword [{name}]")));
-                }
-            }
-            continue;
+            return self.keyword(ln, rest, first_content);
         }
-
-        if state == State::Information || state == State::Noise {
-            continue;
+        if self.state == State::Information || self.state == State::Noise {
+            return Ok(());
         }
-
         if let Some(rest) = body.strip_prefix('#') {
-            let opt = parse_option_line(rest, ln)?;
-            match &option {
-                None => option = Some(opt),
-                Some(first) if first.same_as(&opt) => {}
-                Some(first) => {
-                    return Err(SweepError::at(
-                        ln,
-                        format!(
-                            "mixed units: this option line disagrees with the one on line {}; \
-                             the file would read differently depending on which one is meant",
-                            first.line
-                        ),
-                    ));
-                }
-            }
-            continue;
+            return self.option_line(ln, rest);
         }
+        self.numbers(ln, body)
+    }
 
-        // A line of numbers: reference continuation, network data, or noise data.
-        if collecting_reference {
-            if reference.len() < ports.unwrap_or(1) && state == State::Header {
-                push_reference(&mut reference, body, ln)?;
-                continue;
+    /// A line starting with `[` (`rest` is what follows it).
+    fn keyword(&mut self, ln: usize, rest: &str, first_content: bool) -> Result<(), SweepError> {
+        let (name, value) = match rest.split_once(']') {
+            Some((n, v)) => (n, v.trim()),
+            None => {
+                return Err(SweepError::at(ln, "a keyword '[' has no closing ']'"));
             }
-            collecting_reference = false;
+        };
+        let key = name
+            .split_whitespace()
+            .collect::<Vec<_>>()
+            .join(" ")
+            .to_ascii_lowercase();
+        if let Some(rec) = &self.current {
+            return Err(incomplete(rec, expected_len(self.ports, self.matrix)));
         }
-        if version == TouchstoneVersion::V2 && state != State::NetworkData {
+        if self.state == State::Information {
+            if key == "end information" {
+                self.state = State::Header;
+            }
+            return Ok(());
+        }
+        if self.saw_network_data
+            && !(key == "end" || (key == "noise data" && self.state != State::Noise))
+        {
+            return Err(SweepError::at(
+                ln,
+                format!(
+                    "keyword [{name}] after [Network Data]: only [Noise Data] and [End] may \
+                     follow the network data"
+                ),
+            ));
+        }
+        if key == "version" {
+            return self.version_keyword(ln, value, first_content);
+        }
+        if self.version == TouchstoneVersion::V1 {
+            return Err(SweepError::at(
+                ln,
+                format!(
+                    "keyword [{name}] in a version 1 file (a version 2 file starts with [Version] 2.0)"
+                ),
+            ));
+        }
+        self.collecting_reference = false;
+        self.header_keyword(ln, &key, name, value)
+    }
+
+    fn version_keyword(
+        &mut self,
+        ln: usize,
+        value: &str,
+        first_content: bool,
+    ) -> Result<(), SweepError> {
+        if !first_content {
+            return Err(SweepError::at(
+                ln,
+                "[Version] must come before everything else except comments",
+            ));
+        }
+        match value.trim() {
+            v if v.starts_with("2.") => self.version = TouchstoneVersion::V2,
+            v if v.starts_with("1.") => self.version = TouchstoneVersion::V1,
+            v => {
+                return Err(SweepError::at(
+                    ln,
+                    format!("unsupported Touchstone version '{v}': expected 1.x or 2.x"),
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// A version 2 keyword other than `[Version]`: `key` normalised, `name` as written.
+    fn header_keyword(
+        &mut self,
+        ln: usize,
+        key: &str,
+        name: &str,
+        value: &str,
+    ) -> Result<(), SweepError> {
+        match key {
+            "number of ports" => self.number_of_ports(ln, value)?,
+            "two-port data order" => {
+                self.order = Some(match value.to_ascii_lowercase().as_str() {
+                    "12_21" => TwoPortOrder::N12First,
+                    "21_12" => TwoPortOrder::N21First,
+                    _ => {
+                        return Err(SweepError::at(
+                            ln,
+                            format!("[Two-Port Data Order] '{value}': expected 12_21 or 21_12"),
+                        ));
+                    }
+                });
+            }
+            "number of frequencies" => {
+                let n: usize = value.parse().map_err(|_| {
+                    SweepError::at(
+                        ln,
+                        format!("[Number of Frequencies] '{value}' is not a whole number"),
+                    )
+                })?;
+                self.n_freq = Some((n, ln));
+            }
+            "number of noise frequencies" => {}
+            "reference" => {
+                self.reference.clear();
+                push_reference(&mut self.reference, value, ln)?;
+                self.reference_line = Some(ln);
+                self.collecting_reference = true;
+            }
+            "matrix format" => {
+                self.matrix = match value.to_ascii_lowercase().as_str() {
+                    "full" => MatrixFormat::Full,
+                    "lower" => MatrixFormat::Lower,
+                    "upper" => MatrixFormat::Upper,
+                    _ => {
+                        return Err(SweepError::at(
+                            ln,
+                            format!("[Matrix Format] '{value}': expected Full, Lower or Upper"),
+                        ));
+                    }
+                };
+            }
+            "mixed-mode order" => {
+                return Err(SweepError::at(
+                    ln,
+                    "mixed-mode (differential) data are not supported",
+                ));
+            }
+            "begin information" => self.state = State::Information,
+            "network data" => self.network_data(ln)?,
+            "noise data" => {
+                if !self.saw_network_data {
+                    return Err(SweepError::at(ln, "[Noise Data] before [Network Data]"));
+                }
+                self.state = State::Noise;
+            }
+            "end" => self.state = State::End,
+            _ => {
+                return Err(SweepError::at(ln, format!("unknown keyword [{name}]")));
+            }
+        }
+        Ok(())
+    }
+
+    fn number_of_ports(&mut self, ln: usize, value: &str) -> Result<(), SweepError> {
+        if let Some(first) = self.ports_line {
+            return Err(SweepError::at(
+                ln,
+                format!("[Number of Ports] appears twice (first on line {first})"),
+            ));
+        }
+        let n: usize = value.parse().map_err(|_| {
+            SweepError::at(
+                ln,
+                format!("[Number of Ports] '{value}' is not a whole number"),
+            )
+        })?;
+        if n == 0 {
+            return Err(SweepError::at(ln, "[Number of Ports] must be at least 1"));
+        }
+        if n > 2 {
+            return Err(SweepError::at(
+                ln,
+                format!(
+                    "{n}-port files are not supported: an inductor is measured as a \
+                     1-port or a 2-port"
+                ),
+            ));
+        }
+        self.ports = Some(n);
+        self.ports_line = Some(ln);
+        Ok(())
+    }
+
+    /// `[Network Data]`: everything the data need must have been stated.
+    fn network_data(&mut self, ln: usize) -> Result<(), SweepError> {
+        if self.option.is_none() {
+            return Err(SweepError::at(
+                ln,
+                "[Network Data] before the option line ('# <unit> <parameter> <format> R <ohm>')",
+            ));
+        }
+        let n = self
+            .ports
+            .ok_or_else(|| SweepError::at(ln, "[Network Data] before [Number of Ports]"))?;
+        if self.n_freq.is_none() {
+            return Err(SweepError::at(
+                ln,
+                "[Network Data] before [Number of Frequencies]",
+            ));
+        }
+        if n == 2 && self.order.is_none() {
+            return Err(SweepError::at(
+                ln,
+                "a 2-port version 2 file needs [Two-Port Data Order] before [Network Data]",
+            ));
+        }
+        self.state = State::NetworkData;
+        self.saw_network_data = true;
+        Ok(())
+    }
+
+    /// A line starting with `#` (`rest` is what follows it).
+    fn option_line(&mut self, ln: usize, rest: &str) -> Result<(), SweepError> {
+        let opt = parse_option_line(rest, ln)?;
+        match &self.option {
+            None => self.option = Some(opt),
+            Some(first) if first.same_as(&opt) => {}
+            Some(first) => {
+                return Err(SweepError::at(
+                    ln,
+                    format!(
+                        "mixed units: this option line disagrees with the one on line {}; \
+                         the file would read differently depending on which one is meant",
+                        first.line
+                    ),
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// A line of numbers: reference continuation, network data, or noise data.
+    fn numbers(&mut self, ln: usize, body: &str) -> Result<(), SweepError> {
+        if self.collecting_reference {
+            if self.reference.len() < self.ports.unwrap_or(1) && self.state == State::Header {
+                return push_reference(&mut self.reference, body, ln);
+            }
+            self.collecting_reference = false;
+        }
+        if self.version == TouchstoneVersion::V2 && self.state != State::NetworkData {
             return Err(SweepError::at(
                 ln,
                 "numbers before [Network Data] in a version 2 file",
             ));
         }
-        let opt = option.ok_or_else(|| {
+        let opt = self.option.ok_or_else(|| {
             SweepError::at(
                 ln,
                 "data before the option line ('# <unit> <parameter> <format> R <ohm>')",
             )
         })?;
         let values = parse_numbers(body, ln)?;
-
-        if current.is_none() {
-            // Version 1 2-port noise block: a 5-number line whose frequency is not above the last.
-            if version == TouchstoneVersion::V1
-                && ports.or(ports_hint) == Some(2)
-                && values.len() == 5
-                && let (Some(&f), Some(&last)) = (
-                    values.first(),
-                    records.last().and_then(|r| r.values.first()),
-                )
-                && f * opt.unit_hz <= last * opt.unit_hz
-            {
-                state = State::Noise;
-                continue;
-            }
-            if version == TouchstoneVersion::V2
-                && let Some((n, _)) = n_freq
-                && records.len() >= n
-            {
-                return Err(SweepError::at(
-                    ln,
-                    format!("more frequencies than [Number of Frequencies] = {n}"),
-                ));
-            }
-            if ports.is_none() {
-                ports = Some(match ports_hint {
-                    Some(n) => n,
-                    None => match values.len() {
-                        3 => 1,
-                        9 => 2,
-                        c => {
-                            return Err(SweepError::at(
-                                ln,
-                                format!(
-                                    "{c} numbers on the first data line: a 1-port line has 3 \
-                                     (frequency and one pair), a 2-port line 9"
-                                ),
-                            ));
-                        }
-                    },
-                });
-            }
-            if !(1..=2).contains(&ports.unwrap_or(1)) {
-                return Err(SweepError::at(
-                    ln,
-                    format!(
-                        "{}-port data are not supported: an inductor is measured as a 1-port or a 2-port",
-                        ports.unwrap_or(0)
-                    ),
-                ));
-            }
-            current = Some(Record {
-                start_line: ln,
-                values: Vec::new(),
-            });
+        if self.current.is_none() && !self.open_record(ln, &values, &opt)? {
+            return Ok(());
         }
-        let want = expected_len(ports, matrix);
-        let rec = current.as_mut().expect("a record is open");
+        let ports = self.ports;
+        let want = expected_len(ports, self.matrix);
+        let rec = self.current.as_mut().expect("a record is open");
         rec.values.extend_from_slice(&values);
         if rec.values.len() > want {
             return Err(SweepError::at(
@@ -538,148 +558,241 @@ pub fn parse_touchstone(text: &str, ports_hint: Option<usize>) -> Result<Network
             ));
         }
         if rec.values.len() == want {
-            records.push(current.take().expect("a record is open"));
+            self.records
+                .push(self.current.take().expect("a record is open"));
         }
+        Ok(())
     }
 
-    if let Some(rec) = &current {
-        return Err(incomplete(rec, expected_len(ports, matrix)));
-    }
-    if state == State::Information {
-        return Err(SweepError::at(
-            last_line,
-            "[Begin Information] without [End Information]",
-        ));
-    }
-    let opt = option.ok_or_else(|| {
-        SweepError::file(
-            "no option line ('# <unit> <parameter> <format> R <ohm>'): not a Touchstone file",
-        )
-    })?;
-    if version == TouchstoneVersion::V2 {
-        if !saw_network_data {
-            return Err(SweepError::file("a version 2 file needs [Network Data]"));
+    /// The first line of a frequency's numbers `values`: opens its record, or returns false when the
+    /// line starts a version 1 noise block instead (which is then skipped to the end).
+    fn open_record(
+        &mut self,
+        ln: usize,
+        values: &[f64],
+        opt: &OptionLine,
+    ) -> Result<bool, SweepError> {
+        // Version 1 2-port noise block: a 5-number line whose frequency is not above the last.
+        if self.version == TouchstoneVersion::V1
+            && self.ports.or(self.ports_hint) == Some(2)
+            && values.len() == 5
+            && let (Some(&f), Some(&last)) = (
+                values.first(),
+                self.records.last().and_then(|r| r.values.first()),
+            )
+            && f * opt.unit_hz <= last * opt.unit_hz
+        {
+            self.state = State::Noise;
+            return Ok(false);
         }
-        if let Some((n, line)) = n_freq
-            && records.len() != n
+        if self.version == TouchstoneVersion::V2
+            && let Some((n, _)) = self.n_freq
+            && self.records.len() >= n
         {
             return Err(SweepError::at(
-                line,
+                ln,
+                format!("more frequencies than [Number of Frequencies] = {n}"),
+            ));
+        }
+        if self.ports.is_none() {
+            self.ports = Some(match self.ports_hint {
+                Some(n) => n,
+                None => match values.len() {
+                    3 => 1,
+                    9 => 2,
+                    c => {
+                        return Err(SweepError::at(
+                            ln,
+                            format!(
+                                "{c} numbers on the first data line: a 1-port line has 3 \
+                                 (frequency and one pair), a 2-port line 9"
+                            ),
+                        ));
+                    }
+                },
+            });
+        }
+        if !(1..=2).contains(&self.ports.unwrap_or(1)) {
+            return Err(SweepError::at(
+                ln,
                 format!(
-                    "[Number of Frequencies] says {n} but the file holds {}",
-                    records.len()
+                    "{}-port data are not supported: an inductor is measured as a 1-port or a 2-port",
+                    self.ports.unwrap_or(0)
                 ),
             ));
         }
+        self.current = Some(Record {
+            start_line: ln,
+            values: Vec::new(),
+        });
+        Ok(true)
     }
-    if records.is_empty() {
-        return Err(SweepError::file("the file holds no data points"));
-    }
-    let n = ports.unwrap_or(1);
-    if !(1..=2).contains(&n) {
-        return Err(SweepError::file(format!(
-            "{n}-port files are not supported: an inductor is measured as a 1-port or a 2-port"
-        )));
-    }
-    if version == TouchstoneVersion::V2 && !reference.is_empty() {
-        if reference.len() != n {
+
+    /// After the last line: the checks that need the whole file, then the network.
+    fn finish(mut self) -> Result<Network, SweepError> {
+        if let Some(rec) = &self.current {
+            return Err(incomplete(rec, expected_len(self.ports, self.matrix)));
+        }
+        if self.state == State::Information {
             return Err(SweepError::at(
-                reference_line.unwrap_or(last_line),
-                format!("[Reference] gives {} values for {n} ports", reference.len()),
+                self.last_line,
+                "[Begin Information] without [End Information]",
             ));
         }
-    } else {
-        reference = match (n, opt.r_port2_ohm) {
-            (2, Some(r2)) => vec![opt.r_ohm, r2],
-            (_, Some(_)) => {
+        let opt = self.option.ok_or_else(|| {
+            SweepError::file(
+                "no option line ('# <unit> <parameter> <format> R <ohm>'): not a Touchstone file",
+            )
+        })?;
+        if self.version == TouchstoneVersion::V2 {
+            if !self.saw_network_data {
+                return Err(SweepError::file("a version 2 file needs [Network Data]"));
+            }
+            if let Some((n, line)) = self.n_freq
+                && self.records.len() != n
+            {
                 return Err(SweepError::at(
-                    opt.line,
-                    format!("the option line gives two reference resistances for a {n}-port file"),
+                    line,
+                    format!(
+                        "[Number of Frequencies] says {n} but the file holds {}",
+                        self.records.len()
+                    ),
                 ));
             }
-            _ => vec![opt.r_ohm; n],
-        };
-    }
-    if version == TouchstoneVersion::V1
-        && opt.parameter != Parameter::S
-        && reference.iter().any(|&r| r != opt.r_ohm)
-    {
-        return Err(SweepError::at(
-            opt.line,
-            "version 1 Z or Y data normalised by different resistances per port are not supported",
-        ));
-    }
-    let order = if n == 2 {
-        Some(order.unwrap_or(TwoPortOrder::N21First))
-    } else {
-        None
-    };
-
-    let mut net = Network {
-        version,
-        ports: n,
-        parameter: opt.parameter,
-        format: opt.format,
-        frequency_unit_hz: opt.unit_hz,
-        reference_ohm: reference,
-        two_port_order: order,
-        frequency_hz: Vec::with_capacity(records.len()),
-        data: Vec::with_capacity(records.len()),
-        line: Vec::with_capacity(records.len()),
-    };
-    // Version 1 Z and Y are normalised by R (spec 2.0, "Option line"); version 2 data are not.
-    let denorm = match (version, opt.parameter) {
-        (TouchstoneVersion::V1, Parameter::Z) => opt.r_ohm,
-        (TouchstoneVersion::V1, Parameter::Y) => 1.0 / opt.r_ohm,
-        _ => 1.0,
-    };
-    let want = expected_len(Some(n), matrix);
-    for rec in records {
-        let wrong_count = || {
-            SweepError::at(
-                rec.start_line,
-                format!(
-                    "wrong column count: a {n}-port frequency needs {want} numbers, this one has {}",
-                    rec.values.len()
-                ),
-            )
-        };
-        let Some((&f_unit, numbers)) = rec.values.split_first() else {
-            return Err(wrong_count());
-        };
-        if numbers.len() % 2 != 0 {
-            return Err(wrong_count());
         }
-        let f = f_unit * opt.unit_hz;
-        let pairs: Vec<Complex64> = numbers
-            .chunks_exact(2)
-            .map(|p| to_complex(opt.format, p[0], p[1]) * denorm)
-            .collect();
-        if let Some(bad) = pairs
-            .iter()
-            .find(|c| !(c.re.is_finite() && c.im.is_finite()))
+        if self.records.is_empty() {
+            return Err(SweepError::file("the file holds no data points"));
+        }
+        let n = self.ports.unwrap_or(1);
+        if !(1..=2).contains(&n) {
+            return Err(SweepError::file(format!(
+                "{n}-port files are not supported: an inductor is measured as a 1-port or a 2-port"
+            )));
+        }
+        self.settle_reference(n, &opt)?;
+        let order = if n == 2 {
+            Some(self.order.unwrap_or(TwoPortOrder::N21First))
+        } else {
+            None
+        };
+        let records = std::mem::take(&mut self.records);
+        let mut net = Network {
+            version: self.version,
+            ports: n,
+            parameter: opt.parameter,
+            format: opt.format,
+            frequency_unit_hz: opt.unit_hz,
+            reference_ohm: std::mem::take(&mut self.reference),
+            two_port_order: order,
+            frequency_hz: Vec::with_capacity(records.len()),
+            data: Vec::with_capacity(records.len()),
+            line: Vec::with_capacity(records.len()),
+        };
+        // Version 1 Z and Y are normalised by R (spec 2.0, "Option line"); version 2 data are not.
+        let denorm = match (self.version, opt.parameter) {
+            (TouchstoneVersion::V1, Parameter::Z) => opt.r_ohm,
+            (TouchstoneVersion::V1, Parameter::Y) => 1.0 / opt.r_ohm,
+            _ => 1.0,
+        };
+        for rec in records {
+            let f = rec.values.first().copied().unwrap_or(f64::NAN) * opt.unit_hz;
+            let m = matrix_of(&rec, n, self.matrix, order, opt.format, denorm)?;
+            net.frequency_hz.push(f);
+            net.data.push(m);
+            net.line.push(rec.start_line);
+        }
+        check_grid(&net.frequency_hz, &net.line, Repeats::Allow)?;
+        Ok(net)
+    }
+
+    /// The ports' reference resistances: version 2's `[Reference]` when given (one per port), else
+    /// the option line's R (one, or one per port of a 2-port file).
+    fn settle_reference(&mut self, n: usize, opt: &OptionLine) -> Result<(), SweepError> {
+        if self.version == TouchstoneVersion::V2 && !self.reference.is_empty() {
+            if self.reference.len() != n {
+                return Err(SweepError::at(
+                    self.reference_line.unwrap_or(self.last_line),
+                    format!(
+                        "[Reference] gives {} values for {n} ports",
+                        self.reference.len()
+                    ),
+                ));
+            }
+        } else {
+            self.reference = match (n, opt.r_port2_ohm) {
+                (2, Some(r2)) => vec![opt.r_ohm, r2],
+                (_, Some(_)) => {
+                    return Err(SweepError::at(
+                        opt.line,
+                        format!(
+                            "the option line gives two reference resistances for a {n}-port file"
+                        ),
+                    ));
+                }
+                _ => vec![opt.r_ohm; n],
+            };
+        }
+        if self.version == TouchstoneVersion::V1
+            && opt.parameter != Parameter::S
+            && self.reference.iter().any(|&r| r != opt.r_ohm)
         {
             return Err(SweepError::at(
-                rec.start_line,
-                format!("value {bad} overflows (a dB magnitude too large?)"),
+                opt.line,
+                "version 1 Z or Y data normalised by different resistances per port are not supported",
             ));
         }
-        let m = match (n, matrix, pairs.as_slice()) {
-            (1, _, &[a]) => vec![a],
-            (2, MatrixFormat::Full, &[a, b, c, d]) => match order {
-                Some(TwoPortOrder::N12First) => vec![a, b, c, d],
-                _ => vec![a, c, b, d],
-            },
-            // Lower lists N11 N21 N22, upper N11 N12 N22: either way the off-diagonal is shared.
-            (2, MatrixFormat::Lower | MatrixFormat::Upper, &[a, b, c]) => vec![a, b, b, c],
-            _ => return Err(wrong_count()),
-        };
-        net.frequency_hz.push(f);
-        net.data.push(m);
-        net.line.push(rec.start_line);
+        Ok(())
     }
-    check_grid(&net.frequency_hz, &net.line, Repeats::Allow)?;
-    Ok(net)
+}
+
+/// One frequency's record as its n×n matrix (row-major) in physical units.
+fn matrix_of(
+    rec: &Record,
+    n: usize,
+    matrix: MatrixFormat,
+    order: Option<TwoPortOrder>,
+    format: DataFormat,
+    denorm: f64,
+) -> Result<Vec<Complex64>, SweepError> {
+    let want = expected_len(Some(n), matrix);
+    let wrong_count = || {
+        SweepError::at(
+            rec.start_line,
+            format!(
+                "wrong column count: a {n}-port frequency needs {want} numbers, this one has {}",
+                rec.values.len()
+            ),
+        )
+    };
+    let Some((_, numbers)) = rec.values.split_first() else {
+        return Err(wrong_count());
+    };
+    if numbers.len() % 2 != 0 {
+        return Err(wrong_count());
+    }
+    let pairs: Vec<Complex64> = numbers
+        .chunks_exact(2)
+        .map(|p| to_complex(format, p[0], p[1]) * denorm)
+        .collect();
+    if let Some(bad) = pairs
+        .iter()
+        .find(|c| !(c.re.is_finite() && c.im.is_finite()))
+    {
+        return Err(SweepError::at(
+            rec.start_line,
+            format!("value {bad} overflows (a dB magnitude too large?)"),
+        ));
+    }
+    match (n, matrix, pairs.as_slice()) {
+        (1, _, &[a]) => Ok(vec![a]),
+        (2, MatrixFormat::Full, &[a, b, c, d]) => Ok(match order {
+            Some(TwoPortOrder::N12First) => vec![a, b, c, d],
+            _ => vec![a, c, b, d],
+        }),
+        // Lower lists N11 N21 N22, upper N11 N12 N22: either way the off-diagonal is shared.
+        (2, MatrixFormat::Lower | MatrixFormat::Upper, &[a, b, c]) => Ok(vec![a, b, b, c]),
+        _ => Err(wrong_count()),
+    }
 }
 
 /// Writes a network as Touchstone text: version 1 (Z and Y normalised by R, two-port order N11 N21

@@ -14,11 +14,12 @@
 //! constraint set grows until the check passes. The quadratic programme is solved as a least-distance
 //! problem through NNLS (Lawson & Hanson 1974, ch. 23).
 
-mod nnls;
-
+use super::basis::{Coefficients, FitData, Poles, basis_at, from_model};
+use super::relocation::linear_system;
+use super::stop::Stop;
 use crate::fit::derived::golden_minimum;
-use crate::fit::vector::linalg::{PivotedQr, rational_zeros};
-use crate::fit::vector::{Coefficients, FitData, Poles, Stop, basis_at, from_model, linear_system};
+use crate::fit::linalg::nnls;
+use crate::fit::linalg::{PivotedQr, rational_zeros};
 use crate::model::RationalModel;
 use num_complex::Complex64;
 use serde::{Deserialize, Serialize};
@@ -433,24 +434,7 @@ pub(crate) fn enforce(
         let c = to_coef(&x);
         let minima = negative_minima(poles, &c, &crossings(poles, &c));
         for m in &minima {
-            // The minimum itself, and from the second round on a spread of points across the band
-            // (bounded to two decades around the minimum), so narrow dips beside a constraint are caught.
-            let mut points = vec![m.at];
-            if round > 1 {
-                let lo = m.from.max(m.at / 100.0);
-                let hi = m.to.min(m.at * 100.0);
-                if hi > lo && lo > 0.0 {
-                    let count = 4 * round.min(8);
-                    for i in 0..=count {
-                        points.push(lo * (hi / lo).powf(i as f64 / count as f64));
-                    }
-                }
-                for t in [1e-9, 1e-7, 1e-5] {
-                    points.push(m.at * (1.0 - t));
-                    points.push(m.at * (1.0 + t));
-                }
-            }
-            for w in points {
+            for w in constraint_points(m, round) {
                 basis_at(Complex64::new(0.0, w), poles, &mut phi);
                 let mut g: Vec<f64> = phi.iter().map(|p| p.re).collect();
                 g.push(1.0);
@@ -461,28 +445,7 @@ pub(crate) fn enforce(
                 cons.push((g, margin));
             }
         }
-        // Transform to y = R·z (z: pivoted, scaled coordinates of Δ = x − x₀): ‖A·Δ‖ = ‖y‖.
-        let mut e_rows = Vec::with_capacity(cons.len());
-        let mut f = Vec::with_capacity(cons.len());
-        for (g, h) in &cons {
-            let gx0: f64 = g.iter().zip(&x0).map(|(a, b)| a * b).sum();
-            let mut gt: Vec<f64> = (0..rank)
-                .map(|k| {
-                    let (j, sc) = qr.column_at(k);
-                    g[j] * sc
-                })
-                .collect();
-            // Solve Rᵀ·e = g̃ (forward substitution).
-            for i in 0..rank {
-                let mut s = gt[i];
-                for (k, gk) in gt.iter().enumerate().take(i) {
-                    s -= qr.r(k, i) * gk;
-                }
-                gt[i] = s / qr.r(i, i);
-            }
-            e_rows.push(gt);
-            f.push(h - gx0);
-        }
+        let (e_rows, f) = distance_constraints(&cons, &x0, &qr);
         let y = nnls::ldp(&e_rows, &f, rank).ok_or(EnforceFailure::Infeasible)?;
         let z = qr.back_substitute(&y);
         let delta = qr.unpermute(&z);
@@ -508,6 +471,60 @@ pub(crate) fn enforce(
         }
     }
     Err(EnforceFailure::NotConverged { rounds: max_rounds })
+}
+
+/// Where a negative minimum is constrained in round `round`: the minimum itself, and from the second
+/// round on a spread of points across the band (bounded to two decades around the minimum), so narrow
+/// dips beside a constraint are caught.
+fn constraint_points(m: &Minimum, round: usize) -> Vec<f64> {
+    let mut points = vec![m.at];
+    if round > 1 {
+        let lo = m.from.max(m.at / 100.0);
+        let hi = m.to.min(m.at * 100.0);
+        if hi > lo && lo > 0.0 {
+            let count = 4 * round.min(8);
+            for i in 0..=count {
+                points.push(lo * (hi / lo).powf(i as f64 / count as f64));
+            }
+        }
+        for t in [1e-9, 1e-7, 1e-5] {
+            points.push(m.at * (1.0 - t));
+            points.push(m.at * (1.0 + t));
+        }
+    }
+    points
+}
+
+/// The constraints gᵀx ≥ h as constraints E·y ≥ f on y = R·z (z: pivoted, scaled coordinates of
+/// Δ = x − x₀), so that ‖A·Δ‖ = ‖y‖.
+fn distance_constraints(
+    cons: &[(Vec<f64>, f64)],
+    x0: &[f64],
+    qr: &PivotedQr,
+) -> (Vec<Vec<f64>>, Vec<f64>) {
+    let rank = qr.rank();
+    let mut e_rows = Vec::with_capacity(cons.len());
+    let mut f = Vec::with_capacity(cons.len());
+    for (g, h) in cons {
+        let gx0: f64 = g.iter().zip(x0).map(|(a, b)| a * b).sum();
+        let mut gt: Vec<f64> = (0..rank)
+            .map(|k| {
+                let (j, sc) = qr.column_at(k);
+                g[j] * sc
+            })
+            .collect();
+        // Solve Rᵀ·e = g̃ (forward substitution).
+        for i in 0..rank {
+            let mut s = gt[i];
+            for (k, gk) in gt.iter().enumerate().take(i) {
+                s -= qr.r(k, i) * gk;
+            }
+            gt[i] = s / qr.r(i, i);
+        }
+        e_rows.push(gt);
+        f.push(h - gx0);
+    }
+    (e_rows, f)
 }
 
 #[cfg(test)]

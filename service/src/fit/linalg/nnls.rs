@@ -1,12 +1,19 @@
 //! Non-negative least squares and least-distance programming (Lawson & Hanson, "Solving Least Squares
-//! Problems", 1974, ch. 23: algorithms NNLS and LDP).
+//! Problems", 1974, ch. 23: algorithms NNLS and LDP), the one active-set solver of the crate: passivity
+//! enforcement solves its least-distance programme with it, and the exported ladder and core networks
+//! get their non-negative element values from it (which is what makes them passive).
 
-use crate::fit::vector::linalg::PivotedQr;
+use super::PivotedQr;
 
-/// min ‖G·u − h‖ subject to u ≥ 0, for a column-major `rows × cols` G.
+/// min ‖G·u − h‖ subject to u ≥ 0, for a column-major `rows × cols` G (a nalgebra `DMatrix`'s
+/// `as_slice()`). Columns should be scaled to comparable norms by the caller. Non-finite input gives
+/// u = 0.
 pub(crate) fn nnls(g: &[f64], rows: usize, cols: usize, h: &[f64]) -> Vec<f64> {
     let col = |j: usize| &g[j * rows..(j + 1) * rows];
     let mut x = vec![0.0; cols];
+    if !(g.iter().all(|v| v.is_finite()) && h.iter().all(|v| v.is_finite())) {
+        return x;
+    }
     let mut in_p = vec![false; cols];
     let gnorm = g.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-300);
     let tol = 1e-12 * gnorm * h.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(1e-300);
@@ -117,6 +124,32 @@ mod tests {
         let g = vec![1.0, 0.0, 0.0, 1.0];
         let u = nnls(&g, 2, 2, &[1.0, -2.0]);
         assert!((u[0] - 1.0).abs() < 1e-12 && u[1].abs() < 1e-12, "{u:?}");
+    }
+
+    #[test]
+    fn an_unconstrained_optimum_inside_the_orthant_is_found() {
+        // Rows (1, 0), (0, 1), (1, 1), right-hand side (1, 2, 3): the least-squares solution (1, 2).
+        let g = vec![1.0, 0.0, 1.0, 0.0, 1.0, 1.0];
+        let u = nnls(&g, 3, 2, &[1.0, 2.0, 3.0]);
+        assert!(
+            (u[0] - 1.0).abs() < 1e-12 && (u[1] - 2.0).abs() < 1e-12,
+            "{u:?}"
+        );
+    }
+
+    #[test]
+    fn a_negative_unconstrained_component_is_clamped_to_zero() {
+        // Rows (1, 1), (1, 0), right-hand side (1, 2): unconstrained (2, −1); with u ≥ 0 the optimum is
+        // u = (b·a₁/|a₁|², 0) = (1.5, 0).
+        let g = vec![1.0, 1.0, 1.0, 0.0];
+        let u = nnls(&g, 2, 2, &[1.0, 2.0]);
+        assert!((u[0] - 1.5).abs() < 1e-12 && u[1] == 0.0, "{u:?}");
+    }
+
+    #[test]
+    fn non_finite_input_gives_zero() {
+        let g = vec![1.0, f64::NAN];
+        assert_eq!(nnls(&g, 2, 1, &[1.0, 2.0]), vec![0.0]);
     }
 
     #[test]

@@ -1,4 +1,4 @@
-//! Small dense linear algebra for the rational fit: Householder QR with column pivoting for least squares
+//! Small dense linear algebra for the rational fit and the exported networks: Householder QR with column pivoting for least squares
 //! (never the normal equations), a streaming QR that compresses a tall system to its triangle as its rows
 //! are produced, and the zeros of a pole–residue sum as eigenvalues of a real matrix.
 //!
@@ -9,6 +9,8 @@
 
 // Index loops over rows and lanes read more plainly than iterator chains in these kernels.
 #![allow(clippy::needless_range_loop)]
+
+pub(crate) mod nnls;
 
 use nalgebra::{DMatrix, Schur};
 use num_complex::Complex64;
