@@ -437,20 +437,46 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
     let (code, out, _) = run(&["token", "list", "--database", db]);
     assert_eq!(code, 0);
     let header: Vec<&str> = out.lines().next().unwrap().split_whitespace().collect();
-    assert_eq!(header, ["id", "role", "created", "revoked", "label"]);
+    assert_eq!(
+        header,
+        ["id", "role", "created", "last-used", "revoked", "label"]
+    );
     assert!(!out.contains(&token), "the list never shows a token");
     let listed = rows(&out);
     assert_eq!(listed.len(), 2, "{out}");
     assert_eq!(listed[0][..2], ["1", "inspector"]);
-    assert_eq!(listed[0][3], "-");
-    assert_eq!(listed[0][4..].join(" "), "bench 3");
+    assert_eq!(
+        listed[0][3..5],
+        ["-", "-"],
+        "never used, not revoked: {out}"
+    );
+    assert_eq!(listed[0][5..].join(" "), "bench 3");
     assert_eq!(listed[1][..2], ["2", "reader"]);
-    assert_eq!(listed[1][4], "reader-2");
+    assert_eq!(listed[1][5], "reader-2");
     // Created is an RFC 3339 time.
     assert!(
         henrybook::store::parse_rfc3339(&listed[0][2]).is_some(),
         "{out}"
     );
+
+    // The inspector's token authenticates a request (as the service checks it): the list shows
+    // when, and the reader's token stays unused.
+    let before = henrybook::store::now_ms();
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    runtime.block_on(async {
+        let store = henrybook::store::Store::open(Path::new(db)).await.unwrap();
+        assert!(store.authenticate(&token).await.unwrap().is_some());
+        store.close().await;
+    });
+    let (_, out, _) = run(&["token", "list", "--database", db]);
+    let listed = rows(&out);
+    let used = henrybook::store::parse_rfc3339(&listed[0][3]).expect("a last-used time");
+    // RFC 3339 with milliseconds: the time is the one just written.
+    assert!(
+        used >= before && used <= henrybook::store::now_ms(),
+        "{out}"
+    );
+    assert_eq!(listed[1][3], "-", "{out}");
 
     let (code, out, err) = run(&["token", "revoke", "1", "--database", db]);
     assert_eq!(code, 0, "{err}");
@@ -461,10 +487,10 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
     let (_, out, _) = run(&["token", "list", "--database", db]);
     let listed = rows(&out);
     assert!(
-        henrybook::store::parse_rfc3339(&listed[0][3]).is_some(),
+        henrybook::store::parse_rfc3339(&listed[0][4]).is_some(),
         "{out}"
     );
-    assert_eq!(listed[1][3], "-");
+    assert_eq!(listed[1][4], "-");
 
     // Revoking again or an unknown id fails with the reason; a non-number is a usage error.
     let (code, _, err) = run(&["token", "revoke", "1", "--database", db]);
@@ -477,7 +503,6 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
     assert_eq!(code, 2, "{err}");
 
     // The revoked token authenticates nobody; the other one still does.
-    let runtime = tokio::runtime::Runtime::new().unwrap();
     runtime.block_on(async {
         let store = henrybook::store::Store::open(Path::new(db)).await.unwrap();
         assert!(store.authenticate(&token).await.unwrap().is_none());

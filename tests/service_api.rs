@@ -307,6 +307,51 @@ async fn every_route_admits_exactly_its_roles_and_refuses_no_token() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_token_records_when_it_last_authenticated_a_request_at_most_once_a_minute() {
+    use henrybook::store::now_ms;
+    use henrybook::store::tokens::Role;
+    let app = spawn_app().await;
+    let last_used = |tokens: &[henrybook::store::tokens::TokenInfo], role: Role| {
+        tokens
+            .iter()
+            .find(|t| t.role == role)
+            .unwrap()
+            .last_used_at_ms
+    };
+    let tokens = app.store.list_tokens().await.unwrap();
+    assert!(tokens.iter().all(|t| t.last_used_at_ms.is_none()));
+
+    let before = now_ms();
+    let who = app.get_json("/api/v1/whoami", &app.reader).await;
+    assert_eq!(who["role"], "reader");
+    // A token whose role is too low for the route still authenticated the request.
+    let r = app
+        .post_json(
+            "/api/v1/parts",
+            &app.inspector,
+            &json!({"part_number": "U-1"}),
+        )
+        .await;
+    assert_eq!(r.status(), 403);
+    let after = now_ms();
+    let tokens = app.store.list_tokens().await.unwrap();
+    let reader = last_used(&tokens, Role::Reader).expect("the reader's request is recorded");
+    assert!((before..=after).contains(&reader), "{reader}");
+    let inspector = last_used(&tokens, Role::Inspector).expect("the refused request too");
+    assert!((before..=after).contains(&inspector), "{inspector}");
+    assert_eq!(last_used(&tokens, Role::Engineer), None);
+
+    // Polls within the minute do not write it again (a write now would store a later time).
+    tokio::time::sleep(Duration::from_millis(20)).await;
+    for _ in 0..5 {
+        app.get_json("/api/v1/whoami", &app.reader).await;
+    }
+    let tokens = app.store.list_tokens().await.unwrap();
+    assert_eq!(last_used(&tokens, Role::Reader), Some(reader));
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
     let dir = Arc::new(tempfile::tempdir().unwrap());
     let mut settings = test_settings(dir.path().join("h.db"));

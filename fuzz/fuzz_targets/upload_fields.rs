@@ -49,8 +49,10 @@ fuzz_target!(|data: &[u8]| {
     };
     match check_upload_fields(&input, flags & 1 != 0, flags & 2 != 0) {
         Ok(f) => {
-            assert!(!f.part_number.is_empty() && f.part_number.len() <= 64);
-            assert!(f.lot.chars().count() <= 64 && !f.lot.chars().any(char::is_control));
+            let (part_number, lot) = (f.part_number.as_str(), f.lot.as_str());
+            assert!(!part_number.is_empty() && part_number.len() <= 64);
+            assert!(!lot.is_empty() && lot == lot.trim());
+            assert!(lot.chars().count() <= 64 && !lot.chars().any(char::is_control));
             assert!(f.z0_ohm.is_none_or(|z| z > 0.0));
             assert!(f.dcr_ohm.is_none_or(|r| r > 0.0));
             // What is stored must read back as the same options (the worker parses it again).

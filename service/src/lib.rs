@@ -20,7 +20,8 @@
 //! - [`grpc`]: the tonic services of `api/henrybook.proto` over the same operations as HTTP, with the
 //!   same tokens and roles.
 //! - [`registry`]: the pure comparisons the registry stores (verdict against limits, drift against
-//!   the baseline, the fixed grid for queries) and the API's JSON shapes.
+//!   the baseline, the fixed grid for queries), the typed part numbers and lot codes, and the API's
+//!   JSON shapes.
 //! - [`report`]: the printable inspection report of a lot's fit, as self-contained HTML and as PDF
 //!   (pure: the stored facts in, text and bytes out).
 //! - [`serve`]: the listeners' connections: limit, header-read and idle timeouts, drain deadline.

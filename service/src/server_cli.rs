@@ -63,11 +63,11 @@ cancel and retry), engineer (also limits, approve, reject and refit)."
         #[command(flatten)]
         database: DatabaseArgs,
     },
-    /// List every token: id, role, label, when it was created and revoked.
+    /// List every token: id, role, label, when it was created, last used and revoked.
     #[command(
-        long_about = "List every token, revoked ones included: id, role, when it was created and \
-revoked, and its label. The token itself is never shown (it is not stored), and when a token was \
-last used is not recorded."
+        long_about = "List every token, revoked ones included: id, role, when it was created, when \
+it last authenticated a request (kept to within a minute; - if never) and when it was revoked, and \
+its label. The token itself is never shown (it is not stored)."
     )]
     List {
         #[command(flatten)]
@@ -187,16 +187,17 @@ async fn token(
             let when = crate::store::rfc3339;
             writeln!(
                 out,
-                "{:<4} {:<10} {:<25} {:<25} label",
-                "id", "role", "created", "revoked"
+                "{:<4} {:<10} {:<25} {:<25} {:<25} label",
+                "id", "role", "created", "last-used", "revoked"
             )?;
             for t in tokens {
                 writeln!(
                     out,
-                    "{:<4} {:<10} {:<25} {:<25} {}",
+                    "{:<4} {:<10} {:<25} {:<25} {:<25} {}",
                     t.token_id,
                     t.role.as_str(),
                     when(t.created_at_ms),
+                    t.last_used_at_ms.map_or("-".to_string(), when),
                     t.revoked_at_ms.map_or("-".to_string(), when),
                     t.label
                 )?;

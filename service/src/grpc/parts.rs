@@ -7,6 +7,7 @@ use super::{caller, convert, status};
 use crate::app::AppState;
 use crate::ops;
 use crate::ops::parts::PartQueryInput;
+use crate::registry::ids::PartNumber;
 use crate::store::tokens::Role;
 use tonic::{Request, Response, Status};
 
@@ -14,12 +15,13 @@ pub struct Parts {
     pub state: AppState,
 }
 
-/// A part number as given: proto3's default "" means it was not set.
-fn part_number(text: String) -> Result<String, Status> {
+/// The part a request names, as HTTP reads its path ([`ops::parts::named`]); proto3's default ""
+/// means the field was not set.
+fn part_number(text: &str) -> Result<PartNumber, Status> {
     if text.trim().is_empty() {
         return Err(Status::invalid_argument("part_number is required"));
     }
-    Ok(text)
+    ops::parts::named(text).map_err(status)
 }
 
 #[tonic::async_trait]
@@ -62,7 +64,7 @@ impl PartRegistry for Parts {
         request: Request<GetPartRequest>,
     ) -> Result<Response<proto::Part>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
-        let pn = part_number(request.into_inner().part_number)?;
+        let pn = part_number(&request.into_inner().part_number)?;
         let part = ops::parts::get(&self.state, &pn).await.map_err(status)?;
         Ok(Response::new(convert::part(part)))
     }
@@ -92,7 +94,7 @@ impl PartRegistry for Parts {
     ) -> Result<Response<proto::Part>, Status> {
         let who = caller(&self.state, &request, Role::Engineer).await?;
         let r = request.into_inner();
-        let pn = part_number(r.part_number)?;
+        let pn = part_number(&r.part_number)?;
         let limits = convert::limits_from(r.limits);
         let part = ops::parts::set_limits(&self.state, &who.label, &pn, &limits)
             .await
@@ -105,7 +107,7 @@ impl PartRegistry for Parts {
         request: Request<GetPartRequest>,
     ) -> Result<Response<proto::PartTrend>, Status> {
         caller(&self.state, &request, Role::Reader).await?;
-        let pn = part_number(request.into_inner().part_number)?;
+        let pn = part_number(&request.into_inner().part_number)?;
         let trend = ops::parts::trend(&self.state, &pn).await.map_err(status)?;
         Ok(Response::new(convert::part_trend(trend)))
     }

@@ -1,5 +1,7 @@
 //! Parts: behavioural queries for design tools (from stored figures), create, read, set limits, the
-//! trend across lots. Each handler extracts, calls one operation of [`crate::ops`] and answers.
+//! trend across lots. Each handler extracts, calls one operation of [`crate::ops`] and answers; the
+//! part in the path becomes a `PartNumber` through [`ops::parts::named`] (text that is none names
+//! no part: 404).
 
 use super::auth::{Engineer, Reader};
 use super::problem::json_body;
@@ -72,6 +74,7 @@ async fn get_part(
     State(state): State<AppState>,
     Path(part_number): Path<String>,
 ) -> OpsResult<Json<Part>> {
+    let part_number = ops::parts::named(&part_number)?;
     Ok(Json(ops::parts::get(&state, &part_number).await?))
 }
 
@@ -95,6 +98,7 @@ async fn put_limits(
     body: Bytes,
 ) -> OpsResult<Json<Part>> {
     let update: LimitsUpdate = json_body(&body)?;
+    let part_number = ops::parts::named(&part_number)?;
     let part = ops::parts::set_limits(&state, &caller.label, &part_number, &update.limits).await?;
     Ok(Json(part))
 }
@@ -121,6 +125,7 @@ async fn part_trend(
     Path(part_number): Path<String>,
     Query(_): Query<TrendParams>,
 ) -> OpsResult<Json<crate::registry::trend::PartTrend>> {
+    let part_number = ops::parts::named(&part_number)?;
     Ok(Json(ops::parts::trend(&state, &part_number).await?))
 }
 

@@ -8,6 +8,7 @@ use super::auth::{Inspector, Reader};
 use crate::app::AppState;
 use crate::ops::sweeps::{Accepted, UploadInput, number};
 use crate::ops::{self, OpsError, OpsResult};
+use crate::registry::ids::PartNumber;
 use crate::store::jobs::PartRef;
 use crate::store::sweeps::NamedFile;
 use axum::Json;
@@ -128,7 +129,7 @@ async fn upload(
     };
     if let Err(p) = state
         .backpressure
-        .check_queue(&state.store, PartRef::Number(""))
+        .check_queue(&state.store, PartRef::Unnamed)
         .await
     {
         return Err(drained(&mut form, p).await);
@@ -186,11 +187,18 @@ async fn read_form(state: &AppState, form: &mut Multipart) -> OpsResult<UploadIn
                         e.utf8_error().valid_up_to()
                     ))
                 })?;
+                // A part number that does not parse names no part: only the service's bound
+                // applies until the upload is refused for it.
                 if name == "part_number"
                     && file.is_none()
                     && let Err(p) = state
                         .backpressure
-                        .check_queue(&state.store, PartRef::Number(text.trim()))
+                        .check_queue(
+                            &state.store,
+                            PartNumber::parse(text.trim())
+                                .as_ref()
+                                .map_or(PartRef::Unnamed, PartRef::Number),
+                        )
                         .await
                 {
                     return Err(drained(form, p).await);

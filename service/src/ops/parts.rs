@@ -1,8 +1,13 @@
 //! Parts: behavioural queries for design tools (from stored figures), create, read, set limits, and
 //! the figures across lots.
+//!
+//! A new part's number is taken as given and parsed here, after its description and before its
+//! limits (the order in which a create is refused). The operations on an existing part take its
+//! [`PartNumber`], which both transports get from [`named`].
 
 use super::error::{OpsError, OpsResult};
 use crate::app::AppState;
+use crate::registry::ids::PartNumber;
 use crate::registry::limits::Limits;
 use crate::registry::trend::PartTrend;
 use crate::registry::wire::{Part, PartPage};
@@ -118,10 +123,18 @@ pub async fn query(state: &AppState, input: PartQueryInput) -> OpsResult<PartPag
     Ok(state.store.query_parts(&query).await?)
 }
 
+/// The part a request names (a path segment, a gRPC field). Text that is no part number names no
+/// part, since none could have been created under it: it is refused as any unknown part is (not
+/// found), not as invalid input.
+pub fn named(text: &str) -> OpsResult<PartNumber> {
+    PartNumber::parse(text).map_err(|_| OpsError::not_found(format!("no part {text}")))
+}
+
 /// The longest part description.
 const MAX_DESCRIPTION_CHARS: usize = 500;
 
-/// Creates a part with its limits (the description trimmed).
+/// Creates a part with its limits (the description trimmed; the part number as given, parsed by
+/// [`PartNumber::parse`]).
 pub async fn create(
     state: &AppState,
     actor: &str,
@@ -135,15 +148,16 @@ pub async fn create(
             "description must be at most 500 characters",
         ));
     }
+    let part_number = PartNumber::parse(part_number).map_err(OpsError::validation)?;
     state
         .store
-        .create_part(actor, part_number, description, limits)
+        .create_part(actor, &part_number, description, limits)
         .await?;
-    Ok(state.store.part(part_number).await?)
+    Ok(state.store.part(&part_number).await?)
 }
 
 /// A part with its limits, lots, baseline, fits and audit trail.
-pub async fn get(state: &AppState, part_number: &str) -> OpsResult<Part> {
+pub async fn get(state: &AppState, part_number: &PartNumber) -> OpsResult<Part> {
     Ok(state.store.part(part_number).await?)
 }
 
@@ -151,7 +165,7 @@ pub async fn get(state: &AppState, part_number: &str) -> OpsResult<Part> {
 pub async fn set_limits(
     state: &AppState,
     actor: &str,
-    part_number: &str,
+    part_number: &PartNumber,
     limits: &Limits,
 ) -> OpsResult<Part> {
     state
@@ -163,7 +177,7 @@ pub async fn set_limits(
 
 /// A part's figures across its lots with its limits and control limits
 /// ([`crate::registry::trend::part_trend`]).
-pub async fn trend(state: &AppState, part_number: &str) -> OpsResult<PartTrend> {
+pub async fn trend(state: &AppState, part_number: &PartNumber) -> OpsResult<PartTrend> {
     let part = state.store.part_row(part_number).await?;
     let fits = state.store.lot_fits(part.part_id).await?;
     tokio::task::spawn_blocking(move || {
@@ -171,4 +185,21 @@ pub async fn trend(state: &AppState, part_number: &str) -> OpsResult<PartTrend> 
     })
     .await
     .map_err(OpsError::internal)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::ops::ErrorKind;
+
+    #[test]
+    fn text_that_is_no_part_number_names_no_part() {
+        assert_eq!(named("EMI-220/3").unwrap().as_str(), "EMI-220/3");
+        for text in ["bad part", " EMI-220/3", "", "Ω"] {
+            let e = named(text).unwrap_err();
+            assert_eq!(e.kind, ErrorKind::NotFound, "{text:?}");
+            // The store's words for an unknown part.
+            assert_eq!(e.detail, format!("no part {text}"));
+        }
+    }
 }

@@ -16,7 +16,10 @@ async fn input(state: &AppState, fit_id: i64) -> OpsResult<ReportInput> {
     };
     let fit_report: crate::fit::FitReport =
         serde_json::from_value(json).map_err(OpsError::internal)?;
-    let part = state.store.part_row(&detail.summary.part_number).await?;
+    // A stored part number passed `PartNumber::parse` when it was created.
+    let part_number = crate::registry::ids::PartNumber::parse(&detail.summary.part_number)
+        .map_err(OpsError::internal)?;
+    let part = state.store.part_row(&part_number).await?;
     let provenance = state.store.fit_provenance(fit_id).await?;
     let job = state.store.job_input(fit_id).await?;
     let engine = state.engine.clone();

@@ -10,6 +10,7 @@ use crate::app::AppState;
 use crate::fit::FitOptions;
 use crate::jobs::engine::{FixtureFiles, FixtureTopology, InputError, InputFile, read_input};
 use crate::jobs::{duplicate_key_with_fixture, effective_options, parse_method};
+use crate::registry::ids::{LotCode, PART_NUMBER_MAX_CHARS, PartNumber};
 use crate::store::jobs::PartRef;
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
@@ -165,8 +166,8 @@ fn checked_file(f: NamedFile) -> OpsResult<NamedFile> {
 #[derive(Debug, Clone, PartialEq)]
 pub struct UploadFields {
     pub topology: Option<FixtureTopology>,
-    pub part_number: String,
-    pub lot: String,
+    pub part_number: PartNumber,
+    pub lot: LotCode,
     pub method: Option<Method>,
     pub z0_ohm: Option<f64>,
     pub dcr_ohm: Option<f64>,
@@ -207,9 +208,16 @@ pub fn check_upload_fields(
             ));
         }
     };
-    let part_number = short_text("part_number", &input.part_number, 64, true)?;
-    crate::store::parts::validate_part_number(&part_number).map_err(OpsError::validation)?;
-    let lot = short_text("lot", &input.lot, 64, true)?;
+    // Trimmed and refused as any text field is (required, short, no control characters), then
+    // parsed: the part number rule itself is `PartNumber::parse`.
+    let part_number = short_text(
+        "part_number",
+        &input.part_number,
+        PART_NUMBER_MAX_CHARS,
+        true,
+    )?;
+    let part_number = PartNumber::parse(&part_number).map_err(OpsError::validation)?;
+    let lot = LotCode::parse(&input.lot).map_err(OpsError::validation)?;
     let method = match input.method.trim() {
         "" => None,
         m => Some(parse_method(m).ok_or_else(|| {
@@ -363,6 +371,46 @@ pub async fn sweep_file(state: &AppState, sweep_id: i64) -> OpsResult<NamedFile>
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn fields(part_number: &str, lot: &str) -> OpsResult<UploadFields> {
+        let input = UploadInput {
+            part_number: part_number.into(),
+            lot: lot.into(),
+            ..UploadInput::default()
+        };
+        check_upload_fields(&input, false, false)
+    }
+
+    #[test]
+    fn an_uploads_part_number_and_lot_are_trimmed_then_parsed_with_their_own_refusals() {
+        let f = fields(" PC-100 ", "  2024 W17 ").unwrap();
+        assert_eq!(f.part_number.as_str(), "PC-100");
+        assert_eq!(f.lot.as_str(), "2024 W17");
+        for (part_number, lot, detail) in [
+            ("", "L", "part_number is required".to_string()),
+            (
+                &"P".repeat(65)[..],
+                "L",
+                "part_number must be at most 64 characters without control characters".into(),
+            ),
+            (
+                "bad part",
+                "L",
+                r#"part_number "bad part" must be 1 to 64 characters of letters, digits and -_.+/#"#
+                    .into(),
+            ),
+            ("P-1", " ", "lot is required".into()),
+            (
+                "P-1",
+                "L\u{0}1",
+                "lot must be at most 64 characters without control characters".into(),
+            ),
+        ] {
+            let e = fields(part_number, lot).unwrap_err();
+            assert_eq!(e.kind, ErrorKind::Validation, "{part_number:?} {lot:?}");
+            assert_eq!(e.detail, detail);
+        }
+    }
 
     #[test]
     fn stored_options_read_back_to_the_same_json() {

@@ -1,5 +1,7 @@
 //! The registry's pure logic: what the service stores and compares, with no I/O.
 //!
+//! - [`ids`]: the names a part and a lot go by ([`ids::PartNumber`], [`ids::LotCode`]), each parsed
+//!   once by its one constructor where it enters the service.
 //! - [`limits`]: a part's acceptance limits and their validation.
 //! - [`grid`]: the fixed log-frequency grid on which |Z| and effective L of every fitted model are
 //!   stored, so behavioural queries read stored figures instead of refitting.
@@ -17,6 +19,7 @@ pub mod assessment;
 pub mod drift;
 pub mod figures;
 pub mod grid;
+pub mod ids;
 pub mod limits;
 pub mod trend;
 pub mod verdict;

@@ -467,16 +467,21 @@ async fn settle(
 mod tests {
     use super::*;
     use crate::registry::assessment;
+    use crate::registry::ids::{LotCode, PartNumber};
     use crate::registry::limits::Limits;
     use crate::registry::verdict::tests::report;
     use crate::store::sweeps::{NamedFile, NewSweep};
     use crate::store::testing::temp_store;
 
+    fn part_j1() -> PartNumber {
+        PartNumber::parse("J-1").unwrap()
+    }
+
     /// A store holding the part J-1 with no limits.
     async fn store_with_part() -> (Store, tempfile::TempDir) {
         let (store, dir) = temp_store().await;
         store
-            .create_part("test", "J-1", "", &Limits::default())
+            .create_part("test", &part_j1(), "", &Limits::default())
             .await
             .unwrap();
         (store, dir)
@@ -484,8 +489,8 @@ mod tests {
 
     async fn queue_one(store: &Store, i: usize) -> i64 {
         let new = NewSweep {
-            part_number: "J-1".into(),
-            lot: "L".into(),
+            part_number: part_j1(),
+            lot: LotCode::parse("L").unwrap(),
             file: NamedFile {
                 name: format!("{i}.csv"),
                 bytes: format!("bytes {i}").into_bytes(),
@@ -514,8 +519,8 @@ mod tests {
         let (store, _dir) = store_with_part().await;
         let first = queue_one(&store, 0).await;
         let new = |i: usize| NewSweep {
-            part_number: "J-1".into(),
-            lot: "L".into(),
+            part_number: part_j1(),
+            lot: LotCode::parse("L").unwrap(),
             file: NamedFile {
                 name: format!("{i}.csv"),
                 bytes: format!("bytes {i}").into_bytes(),
@@ -870,7 +875,8 @@ mod tests {
 pub struct QueueDepth {
     /// Queued and running fits of every part.
     pub all: i64,
-    /// Queued and running fits of the part asked about (0 when it has none or does not exist).
+    /// Queued and running fits of the part asked about (0 when it has none, does not exist or none
+    /// was named).
     pub part: i64,
 }
 
@@ -888,9 +894,10 @@ impl Store {
         let by_fit_sql = "SELECT COUNT(*) FROM fits WHERE part_id = (SELECT part_id FROM fits WHERE \
                           fit_id = ?) AND status IN ('queued', 'running')";
         let part: i64 = match part {
+            PartRef::Unnamed => 0,
             PartRef::Number(n) => {
                 sqlx::query_scalar(part_sql)
-                    .bind(n)
+                    .bind(n.as_str())
                     .fetch_one(&self.reader)
                     .await?
             }
@@ -905,9 +912,10 @@ impl Store {
     }
 }
 
-/// A part, by its number or by one of its fits.
+/// A part, by its number or by one of its fits; or none, when only the count of every part matters.
 #[derive(Debug, Clone, Copy)]
 pub enum PartRef<'a> {
-    Number(&'a str),
+    Number(&'a crate::registry::ids::PartNumber),
     OfFit(i64),
+    Unnamed,
 }

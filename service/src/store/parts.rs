@@ -2,6 +2,7 @@
 
 use super::{Store, StoreError, StoreResult, audit, now_ms, rfc3339};
 use crate::fit::FitReport;
+use crate::registry::ids::PartNumber;
 use crate::registry::limits::Limits;
 use crate::registry::verdict;
 use crate::registry::wire::{AuditEntry, Part};
@@ -29,22 +30,6 @@ pub(crate) fn limits_from_row(row: &SqliteRow) -> Result<Limits, sqlx::Error> {
     })
 }
 
-/// A validated part number: 1 to 64 characters of letters, digits and `-_.+/#`, no spaces.
-pub fn validate_part_number(text: &str) -> Result<(), String> {
-    let ok = !text.is_empty()
-        && text.len() <= 64
-        && text
-            .chars()
-            .all(|c| c.is_ascii_alphanumeric() || "-_.+/#".contains(c));
-    if ok {
-        Ok(())
-    } else {
-        Err(format!(
-            "part_number {text:?} must be 1 to 64 characters of letters, digits and -_.+/#"
-        ))
-    }
-}
-
 type AuditRow = (i64, String, String, Option<i64>, Option<String>);
 
 #[derive(Debug, Clone)]
@@ -60,18 +45,17 @@ impl Store {
     pub async fn create_part(
         &self,
         actor: &str,
-        part_number: &str,
+        part_number: &PartNumber,
         description: &str,
         limits: &Limits,
     ) -> StoreResult<()> {
-        validate_part_number(part_number).map_err(StoreError::Invalid)?;
         limits.validate().map_err(StoreError::Invalid)?;
         let mut tx = self.write().await?;
         let inserted = sqlx::query(sqlx::AssertSqlSafe(format!(
             "INSERT INTO parts (part_number, description, {LIMIT_COLUMNS}, created_at_ms) \
              VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING part_id"
         )))
-        .bind(part_number)
+        .bind(part_number.as_str())
         .bind(description)
         .bind(limits.l_nominal_h)
         .bind(limits.l_test_frequency_hz)
@@ -102,12 +86,12 @@ impl Store {
         Ok(())
     }
 
-    pub async fn part_row(&self, part_number: &str) -> StoreResult<PartRow> {
+    pub async fn part_row(&self, part_number: &PartNumber) -> StoreResult<PartRow> {
         let row = sqlx::query(sqlx::AssertSqlSafe(format!(
             "SELECT part_id, part_number, description, baseline_fit_id, {LIMIT_COLUMNS} \
              FROM parts WHERE part_number = ?"
         )))
-        .bind(part_number)
+        .bind(part_number.as_str())
         .fetch_optional(&self.reader)
         .await?
         .ok_or_else(|| StoreError::NotFound(format!("no part {part_number}")))?;
@@ -120,7 +104,7 @@ impl Store {
         })
     }
 
-    pub async fn part(&self, part_number: &str) -> StoreResult<Part> {
+    pub async fn part(&self, part_number: &PartNumber) -> StoreResult<Part> {
         let p = self.part_row(part_number).await?;
         let lots: Vec<String> =
             sqlx::query_scalar("SELECT lot FROM lots WHERE part_id = ? ORDER BY lot")
@@ -160,13 +144,13 @@ impl Store {
     pub async fn update_limits(
         &self,
         actor: &str,
-        part_number: &str,
+        part_number: &PartNumber,
         limits: &Limits,
     ) -> StoreResult<()> {
         limits.validate().map_err(StoreError::Invalid)?;
         let mut tx = self.write().await?;
         let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
-            .bind(part_number)
+            .bind(part_number.as_str())
             .fetch_optional(&mut *tx)
             .await?
             .ok_or_else(|| StoreError::NotFound(format!("no part {part_number}")))?;
@@ -234,26 +218,20 @@ mod tests {
             dcr_max_ohm: Some(0.05),
             ..Limits::default()
         };
+        let pn = PartNumber::parse("PC-100").unwrap();
         store
-            .create_part("eng", "PC-100", "choke", &limits)
+            .create_part("eng", &pn, "choke", &limits)
             .await
             .unwrap();
-        let again = store.create_part("eng", "PC-100", "choke", &limits).await;
+        let again = store.create_part("eng", &pn, "choke", &limits).await;
         assert!(matches!(again, Err(StoreError::Conflict(_))));
-        let p = store.part("PC-100").await.unwrap();
+        let p = store.part(&pn).await.unwrap();
         assert_eq!(p.limits, limits);
         assert_eq!(p.audit.len(), 1);
         assert_eq!(p.audit[0].action, "part-created");
         assert!(matches!(
-            store.part("nope").await,
+            store.part(&PartNumber::parse("nope").unwrap()).await,
             Err(StoreError::NotFound(_))
         ));
-    }
-
-    #[test]
-    fn part_numbers_are_checked() {
-        assert!(validate_part_number("EMI-220/3").is_ok());
-        assert!(validate_part_number("").is_err());
-        assert!(validate_part_number("has space").is_err());
     }
 }

@@ -1,6 +1,7 @@
 //! Uploaded sweeps (kept byte-for-byte with their SHA-256) and the first fit each upload queues.
 
 use super::{Store, StoreError, StoreResult, audit, now_ms};
+use crate::registry::ids::{LotCode, PartNumber};
 use sqlx::Row;
 
 /// A named file: its name as uploaded and its bytes.
@@ -13,8 +14,8 @@ pub struct NamedFile {
 /// An upload whose file the engine has already read successfully.
 #[derive(Debug, Clone)]
 pub struct NewSweep {
-    pub part_number: String,
-    pub lot: String,
+    pub part_number: PartNumber,
+    pub lot: LotCode,
     pub file: NamedFile,
     pub sha256: String,
     pub method: String,
@@ -214,7 +215,7 @@ async fn upload_in(
     bounds: Option<QueueBounds>,
 ) -> StoreResult<Uploaded> {
     let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
-        .bind(&new.part_number)
+        .bind(new.part_number.as_str())
         .fetch_optional(&mut *conn)
         .await?
         .ok_or_else(|| {
@@ -249,7 +250,7 @@ async fn upload_in(
          ON CONFLICT (part_id, lot) DO UPDATE SET lot = excluded.lot RETURNING lot_id",
     )
     .bind(part_id)
-    .bind(&new.lot)
+    .bind(new.lot.as_str())
     .fetch_one(&mut *conn)
     .await?;
     let (open_name, open_bytes) = new

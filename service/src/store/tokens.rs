@@ -1,4 +1,5 @@
-//! Bearer tokens: random, shown once at creation, stored only as their SHA-256.
+//! Bearer tokens: random, shown once at creation, stored only as their SHA-256, with when each last
+//! authenticated a request (to within a minute: see [`LAST_USED_RESOLUTION_MS`]).
 
 use super::{Store, StoreResult, now_ms, sha256_hex};
 use rand::RngCore;
@@ -49,8 +50,21 @@ pub struct TokenInfo {
     pub role: Role,
     pub label: String,
     pub created_at_ms: i64,
+    /// When the token last authenticated a request, to within a minute; `None` if it never has (or
+    /// not since this was recorded).
+    pub last_used_at_ms: Option<i64>,
     pub revoked_at_ms: Option<i64>,
 }
+
+/// A token's last use is written at most once per this many milliseconds: a request finds it older
+/// than this before the write is made, so status polls do not write on every call.
+pub const LAST_USED_RESOLUTION_MS: i64 = 60_000;
+
+/// The columns of a [`TokenRow`], in its order.
+const TOKEN_COLUMNS: &str = "token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms";
+
+/// A token's row as [`TOKEN_COLUMNS`] reads it.
+type TokenRow = (i64, String, String, i64, Option<i64>, Option<i64>);
 
 /// Prefix that makes a henrybook token recognisable in logs and secret scanners.
 const PREFIX: &str = "hbk_";
@@ -89,19 +103,21 @@ impl Store {
 
     /// Every token, oldest first, revoked ones included.
     pub async fn list_tokens(&self) -> StoreResult<Vec<TokenInfo>> {
-        let rows: Vec<(i64, String, String, i64, Option<i64>)> = sqlx::query_as(
-            "SELECT token_id, role, label, created_at_ms, revoked_at_ms FROM tokens ORDER BY token_id",
-        )
+        let rows: Vec<TokenRow> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {TOKEN_COLUMNS} FROM tokens ORDER BY token_id"
+        )))
         .fetch_all(&self.reader)
         .await?;
         Ok(rows
             .into_iter()
-            .filter_map(|(token_id, role, label, created_at_ms, revoked_at_ms)| {
+            .filter_map(|row| {
+                let (token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms) = row;
                 Role::parse(&role).map(|role| TokenInfo {
                     token_id,
                     role,
                     label,
                     created_at_ms,
+                    last_used_at_ms,
                     revoked_at_ms,
                 })
             })
@@ -112,13 +128,13 @@ impl Store {
     /// request, so this holds at once). Recorded in the audit trail; revoking twice is a conflict.
     pub async fn revoke_token(&self, actor: &str, token_id: i64) -> StoreResult<TokenInfo> {
         let mut tx = self.write().await?;
-        let row: Option<(String, String, i64, Option<i64>)> = sqlx::query_as(
-            "SELECT role, label, created_at_ms, revoked_at_ms FROM tokens WHERE token_id = ?",
-        )
+        let row: Option<TokenRow> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {TOKEN_COLUMNS} FROM tokens WHERE token_id = ?"
+        )))
         .bind(token_id)
         .fetch_optional(&mut *tx)
         .await?;
-        let Some((role, label, created_at_ms, revoked)) = row else {
+        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked)) = row else {
             return Err(super::StoreError::NotFound(format!("no token {token_id}")));
         };
         if revoked.is_some() {
@@ -147,25 +163,54 @@ impl Store {
             role: Role::parse(&role).unwrap_or(Role::Reader),
             label,
             created_at_ms,
+            last_used_at_ms,
             revoked_at_ms: Some(now),
         })
     }
 
-    /// The caller a presented token belongs to, or `None` for an unknown or revoked token.
+    /// The caller a presented token belongs to, or `None` for an unknown or revoked token. A token
+    /// that authenticates has its last use recorded when the stored time is older than
+    /// [`LAST_USED_RESOLUTION_MS`]; a failure of that write is logged and does not fail the caller.
     pub async fn authenticate(&self, token: &str) -> StoreResult<Option<Caller>> {
-        let row: Option<(i64, String, String)> = sqlx::query_as(
-            "SELECT token_id, role, label FROM tokens WHERE token_sha256 = ? AND revoked_at_ms IS NULL",
+        let row: Option<(i64, String, String, Option<i64>)> = sqlx::query_as(
+            "SELECT token_id, role, label, last_used_at_ms FROM tokens \
+             WHERE token_sha256 = ? AND revoked_at_ms IS NULL",
         )
         .bind(sha256_hex(token.as_bytes()))
         .fetch_optional(&self.reader)
         .await?;
-        Ok(row.and_then(|(token_id, role, label)| {
-            Role::parse(&role).map(|role| Caller {
-                token_id,
-                role,
-                label,
-            })
+        let Some((token_id, role, label, last_used_at_ms)) = row else {
+            return Ok(None);
+        };
+        let Some(role) = Role::parse(&role) else {
+            return Ok(None);
+        };
+        let now = now_ms();
+        if last_used_at_ms.is_none_or(|t| t < now - LAST_USED_RESOLUTION_MS)
+            && let Err(e) = self.record_token_use(token_id, now).await
+        {
+            tracing::warn!(token_id, error = %e, "cannot record when the token was last used");
+        }
+        Ok(Some(Caller {
+            token_id,
+            role,
+            label,
         }))
+    }
+
+    /// Sets a token's last use to `now_ms` unless another request did within the last minute (the
+    /// condition is in the UPDATE, so requests arriving together write once).
+    async fn record_token_use(&self, token_id: i64, now_ms: i64) -> StoreResult<()> {
+        sqlx::query(
+            "UPDATE tokens SET last_used_at_ms = ? WHERE token_id = ? \
+             AND (last_used_at_ms IS NULL OR last_used_at_ms < ?)",
+        )
+        .bind(now_ms)
+        .bind(token_id)
+        .bind(now_ms - LAST_USED_RESOLUTION_MS)
+        .execute(&self.writer)
+        .await?;
+        Ok(())
     }
 }
 
@@ -219,6 +264,99 @@ mod tests {
         assert_eq!(caller.role, Role::Inspector);
         assert_eq!(caller.label, format!("inspector-{id}"));
         assert_eq!(store.authenticate("hbk_nope").await.unwrap(), None);
+    }
+
+    async fn last_used(store: &Store, token_id: i64) -> Option<i64> {
+        let list = store.list_tokens().await.unwrap();
+        list.iter()
+            .find(|t| t.token_id == token_id)
+            .unwrap()
+            .last_used_at_ms
+    }
+
+    async fn set_last_used(store: &Store, token_id: i64, at_ms: i64) {
+        sqlx::query("UPDATE tokens SET last_used_at_ms = ? WHERE token_id = ?")
+            .bind(at_ms)
+            .bind(token_id)
+            .execute(&store.writer)
+            .await
+            .unwrap();
+    }
+
+    #[tokio::test]
+    async fn a_token_records_its_last_use_at_most_once_a_minute() {
+        let (store, _dir) = temp_store().await;
+        let (id, token) = store.create_token(Role::Reader, None).await.unwrap();
+        let (unused, _) = store.create_token(Role::Engineer, None).await.unwrap();
+        assert_eq!(last_used(&store, id).await, None);
+
+        let before = now_ms();
+        assert!(store.authenticate(&token).await.unwrap().is_some());
+        let first = last_used(&store, id).await.expect("set by the first use");
+        assert!((before..=now_ms()).contains(&first), "{first}");
+
+        // Used 30 s ago: another request within the minute does not write it again.
+        set_last_used(&store, id, first - 30_000).await;
+        assert!(store.authenticate(&token).await.unwrap().is_some());
+        assert_eq!(last_used(&store, id).await, Some(first - 30_000));
+
+        // Used more than a minute ago: the next request writes it.
+        set_last_used(&store, id, first - LAST_USED_RESOLUTION_MS - 1_000).await;
+        let before = now_ms();
+        assert!(store.authenticate(&token).await.unwrap().is_some());
+        let again = last_used(&store, id).await.unwrap();
+        assert!((before..=now_ms()).contains(&again), "{again}");
+
+        // An unknown token writes nothing; the unused token was never used.
+        assert!(store.authenticate("hbk_nope").await.unwrap().is_none());
+        assert_eq!(last_used(&store, unused).await, None);
+    }
+
+    /// Log lines written by a `tracing` subscriber, for the test that reads them.
+    #[derive(Clone, Default)]
+    struct Captured(std::sync::Arc<std::sync::Mutex<Vec<u8>>>);
+
+    impl std::io::Write for Captured {
+        fn write(&mut self, bytes: &[u8]) -> std::io::Result<usize> {
+            self.0.lock().unwrap().extend_from_slice(bytes);
+            Ok(bytes.len())
+        }
+        fn flush(&mut self) -> std::io::Result<()> {
+            Ok(())
+        }
+    }
+
+    #[tokio::test]
+    async fn a_failed_write_of_the_last_use_is_logged_and_the_token_still_authenticates() {
+        let (store, _dir) = temp_store().await;
+        let (id, token) = store.create_token(Role::Inspector, None).await.unwrap();
+        // Every write of the column fails, as it would on a read-only database.
+        sqlx::query(
+            "CREATE TRIGGER tokens_last_used_frozen BEFORE UPDATE OF last_used_at_ms ON tokens \
+             BEGIN SELECT RAISE(ABORT, 'attempt to write a readonly database'); END",
+        )
+        .execute(&store.writer)
+        .await
+        .unwrap();
+        let log = Captured::default();
+        let writer = log.clone();
+        let subscriber = tracing_subscriber::fmt()
+            .with_max_level(tracing::Level::WARN)
+            .with_ansi(false)
+            .with_writer(move || writer.clone())
+            .finish();
+        // The test runtime has one thread: the subscriber sees everything `authenticate` logs.
+        let guard = tracing::subscriber::set_default(subscriber);
+        let caller = store.authenticate(&token).await.unwrap();
+        drop(guard);
+        assert_eq!(caller.map(|c| c.token_id), Some(id));
+        assert_eq!(last_used(&store, id).await, None);
+        let log = String::from_utf8(log.0.lock().unwrap().clone()).unwrap();
+        assert!(log.contains("WARN"), "{log}");
+        assert!(
+            log.contains("cannot record when the token was last used") && log.contains("readonly"),
+            "{log}"
+        );
     }
 
     #[test]
