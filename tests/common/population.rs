@@ -162,8 +162,46 @@ fn grid(rng: &mut Rng, spacing: Spacing, f_lo: f64, f_hi: f64, n: usize) -> Vec<
     }
 }
 
+/// A drawn truth whose √f term also carries its reactive half: the winding's series impedance is
+/// rdc + k·√f·(1 + j) + core instead of rdc + k·√f + core. A resistance that grows as √f with no
+/// reactance is not the impedance of any causal element (its Hilbert transform is not zero); a
+/// conductor's internal impedance in the skin-effect regime has equal resistance and internal
+/// reactance (the surface impedance (1 + j)/(σδ); common practice, no source). The lumped model keeps
+/// the usual resistance-only term; this form is for checking a causal model family (the rational fit)
+/// on sweeps a causal part could produce. Parts drawn here have no extra sections.
+pub struct CausalSkin<'a>(pub &'a LumpedModel);
+
+impl ImpedanceModel for CausalSkin<'_> {
+    fn impedance(&self, frequency_hz: f64) -> Complex64 {
+        let t = self.0;
+        assert!(
+            t.sections.is_empty(),
+            "CausalSkin takes a truth without sections"
+        );
+        let bare = LumpedModel {
+            cp_f: 0.0,
+            ls_h: 0.0,
+            ..t.clone()
+        };
+        let w = 2.0 * PI * frequency_hz;
+        let zw = bare.impedance(frequency_hz)
+            + Complex64::new(0.0, t.k_ac_ohm_per_sqrt_hz * frequency_hz.sqrt());
+        1.0 / (1.0 / zw + Complex64::new(0.0, w * t.cp_f)) + Complex64::new(0.0, w * t.ls_h)
+    }
+}
+
 /// Draws part `index` of the population with `seed`.
 pub fn draw(seed: u64, index: usize) -> Part {
+    draw_as(seed, index, false)
+}
+
+/// Draws part `index` as [`draw`] does (the same parameters, grid and method), but measures the truth
+/// with the causal skin term of [`CausalSkin`].
+pub fn draw_causal(seed: u64, index: usize) -> Part {
+    draw_as(seed, index, true)
+}
+
+fn draw_as(seed: u64, index: usize, causal_skin: bool) -> Part {
     let mut rng = Rng::new(seed.wrapping_mul(1_000_003).wrapping_add(index as u64));
     let l0_h = rng.log_between(100e-9, 10e-3);
     let cp_f = rng.log_between(0.2e-12, 200e-12);
@@ -189,7 +227,12 @@ pub fn draw(seed: u64, index: usize) -> Part {
     let spacing = rng.pick(&[Spacing::Log, Spacing::Linear, Spacing::Segmented]);
     let method = rng.pick(&METHODS);
     let f = grid(&mut rng, spacing, f_lo, f_hi, points);
-    let (file_name, file_text) = write_file(&mut rng, &truth, method, &f, index);
+    let measured: &dyn ImpedanceModel = if causal_skin {
+        &CausalSkin(&truth)
+    } else {
+        &truth
+    };
+    let (file_name, file_text) = write_file(&mut rng, measured, method, &f, index);
     Part {
         index,
         truth,
@@ -205,7 +248,7 @@ pub fn draw(seed: u64, index: usize) -> Part {
 
 /// The measured impedance of `truth` at `f` with the method's noise, and the S-parameter an analyser
 /// would record (the impedance itself for the direct method).
-fn measure(rng: &mut Rng, truth: &LumpedModel, method: Method, f: f64) -> Complex64 {
+fn measure(rng: &mut Rng, truth: &dyn ImpedanceModel, method: Method, f: f64) -> Complex64 {
     let z0 = 50.0;
     let z = truth.impedance(f);
     let rel = 2e-3 * z.norm();
@@ -220,7 +263,7 @@ fn measure(rng: &mut Rng, truth: &LumpedModel, method: Method, f: f64) -> Comple
 
 fn write_file(
     rng: &mut Rng,
-    truth: &LumpedModel,
+    truth: &dyn ImpedanceModel,
     method: Method,
     f: &[f64],
     index: usize,
