@@ -319,6 +319,28 @@ fn without_negligible_terms(m: &RationalModel) -> RationalModel {
 
 /// Each partial-fraction term of `m` (read as an impedance) as a positive-element cell.
 fn terms_to_cells(m: &RationalModel) -> Result<Vec<FosterCell>, ExportError> {
+    let (mut cells, d) = real_pole_cells(m)?;
+    for (i, p) in m.complex_poles.iter().enumerate() {
+        cells.push(pair_cell(i, p)?);
+    }
+    if m.e_h > 0.0 {
+        cells.insert(0, FosterCell::Inductor { l_h: m.e_h });
+    }
+    if d > 0.0 {
+        cells.insert(0, FosterCell::Resistor { r_ohm: d });
+    }
+    if cells.is_empty() {
+        return Err(ExportError::NotRealisable(
+            "the model is identically zero (a short circuit)".to_string(),
+        ));
+    }
+    check_element_values(&cells)?;
+    Ok(cells)
+}
+
+/// The cells of the real poles, and the share of `d_ohm` left for a series resistor once the R‖L
+/// cells' constant parts are taken from it (refused when that share is negative).
+fn real_pole_cells(m: &RationalModel) -> Result<(Vec<FosterCell>, f64), ExportError> {
     let mut cells = Vec::new();
     let mut d = m.d_ohm;
     let mut d_scale = m.d_ohm.abs();
@@ -357,67 +379,64 @@ fn terms_to_cells(m: &RationalModel) -> Result<Vec<FosterCell>, ExportError> {
             m.d_ohm
         )));
     }
-    for (i, p) in m.complex_poles.iter().enumerate() {
-        let (alpha, beta) = (-p.pole_rad_per_s.re, p.pole_rad_per_s.im);
-        let (a, b) = (p.residue_ohm_rad_per_s.re, p.residue_ohm_rad_per_s.im);
-        let b1 = 2.0 * a;
-        let mut b0 = 2.0 * (a * alpha - b * beta);
-        let a1 = 2.0 * alpha;
-        let a0 = alpha * alpha + beta * beta;
-        let edge = EDGE_TOL
-            * (a1 * b1)
-                .abs()
-                .max(2.0 * (a * alpha).abs() + 2.0 * (b * beta).abs());
-        if b1 <= 0.0 {
-            return Err(ExportError::NotRealisable(format!(
-                "complex_poles[{i}] (s/2π = {:e} ± j{:e} Hz): 2·Re(residue) = {b1:e} ≤ 0",
-                -alpha / (2.0 * PI),
-                beta / (2.0 * PI)
-            )));
-        }
-        // On the edge within rounding: snap, so no resistor of 1e-16 Ω (or 1e16 Ω) is written; such a
-        // value would only make a simulator's matrix ill-conditioned.
-        if b0.abs() <= edge {
-            b0 = 0.0;
-        }
-        if (b0 - a1 * b1).abs() <= edge {
-            b0 = a1 * b1;
-        }
-        if b0 < 0.0 || b0 > a1 * b1 {
-            return Err(ExportError::NotRealisable(format!(
-                "complex_poles[{i}] (s/2π = {:e} ± j{:e} Hz): its pair term (b1·s + b0)/(s² + a1·s + a0) \
-                 has b0 = {b0:e} outside [0, a1·b1 = {:e}], so its real part is negative at {} \
-                 frequencies",
-                -alpha / (2.0 * PI),
-                beta / (2.0 * PI),
-                a1 * b1,
-                if b0 < 0.0 { "low" } else { "high" }
-            )));
-        }
-        let c_f = 1.0 / b1;
-        let x = b0 / b1;
-        let y = (a1 - x).max(0.0);
-        let l_h = b1 / (a0 - x * y);
-        let rs = x * l_h;
-        let rp = 1.0 / (y * c_f);
-        cells.push(FosterCell::Resonator {
-            c_f,
-            rp_ohm: (y > 0.0).then_some(rp),
-            rs_ohm: (x > 0.0).then_some(rs),
-            l_h,
-        });
+    Ok((cells, d))
+}
+
+/// The C ‖ Rp ‖ (Rs + L) cell of `complex_poles[i]` (see the module notes), refused when the pair
+/// is not positive-real.
+fn pair_cell(i: usize, p: &ComplexPole) -> Result<FosterCell, ExportError> {
+    let (alpha, beta) = (-p.pole_rad_per_s.re, p.pole_rad_per_s.im);
+    let (a, b) = (p.residue_ohm_rad_per_s.re, p.residue_ohm_rad_per_s.im);
+    let b1 = 2.0 * a;
+    let mut b0 = 2.0 * (a * alpha - b * beta);
+    let a1 = 2.0 * alpha;
+    let a0 = alpha * alpha + beta * beta;
+    let edge = EDGE_TOL
+        * (a1 * b1)
+            .abs()
+            .max(2.0 * (a * alpha).abs() + 2.0 * (b * beta).abs());
+    if b1 <= 0.0 {
+        return Err(ExportError::NotRealisable(format!(
+            "complex_poles[{i}] (s/2π = {:e} ± j{:e} Hz): 2·Re(residue) = {b1:e} ≤ 0",
+            -alpha / (2.0 * PI),
+            beta / (2.0 * PI)
+        )));
     }
-    if m.e_h > 0.0 {
-        cells.insert(0, FosterCell::Inductor { l_h: m.e_h });
+    // On the edge within rounding: snap, so no resistor of 1e-16 Ω (or 1e16 Ω) is written; such a
+    // value would only make a simulator's matrix ill-conditioned.
+    if b0.abs() <= edge {
+        b0 = 0.0;
     }
-    if d > 0.0 {
-        cells.insert(0, FosterCell::Resistor { r_ohm: d });
+    if (b0 - a1 * b1).abs() <= edge {
+        b0 = a1 * b1;
     }
-    if cells.is_empty() {
-        return Err(ExportError::NotRealisable(
-            "the model is identically zero (a short circuit)".to_string(),
-        ));
+    if b0 < 0.0 || b0 > a1 * b1 {
+        return Err(ExportError::NotRealisable(format!(
+            "complex_poles[{i}] (s/2π = {:e} ± j{:e} Hz): its pair term (b1·s + b0)/(s² + a1·s + a0) \
+             has b0 = {b0:e} outside [0, a1·b1 = {:e}], so its real part is negative at {} \
+             frequencies",
+            -alpha / (2.0 * PI),
+            beta / (2.0 * PI),
+            a1 * b1,
+            if b0 < 0.0 { "low" } else { "high" }
+        )));
     }
+    let c_f = 1.0 / b1;
+    let x = b0 / b1;
+    let y = (a1 - x).max(0.0);
+    let l_h = b1 / (a0 - x * y);
+    let rs = x * l_h;
+    let rp = 1.0 / (y * c_f);
+    Ok(FosterCell::Resonator {
+        c_f,
+        rp_ohm: (y > 0.0).then_some(rp),
+        rs_ohm: (x > 0.0).then_some(rs),
+        l_h,
+    })
+}
+
+/// Refuses a cell whose element values (an absent resistor aside) are not positive and finite.
+fn check_element_values(cells: &[FosterCell]) -> Result<(), ExportError> {
     for (i, cell) in cells.iter().enumerate() {
         let values = match *cell {
             FosterCell::Resistor { r_ohm } => vec![r_ohm],
@@ -438,50 +457,91 @@ fn terms_to_cells(m: &RationalModel) -> Result<Vec<FosterCell>, ExportError> {
             )));
         }
     }
-    Ok(cells)
+    Ok(())
+}
+
+/// Z(s) = d + s·e + Σ r/(s − p) with every pole listed, conjugates of the complex pairs included.
+struct PoleResidues {
+    poles: Vec<Complex64>,
+    residues: Vec<Complex64>,
+    d_ohm: f64,
+    e_h: f64,
+}
+
+impl PoleResidues {
+    fn new(m: &RationalModel) -> PoleResidues {
+        let mut poles: Vec<Complex64> = Vec::new();
+        let mut residues: Vec<Complex64> = Vec::new();
+        for p in &m.real_poles {
+            poles.push(p.pole_rad_per_s.into());
+            residues.push(p.residue_ohm_rad_per_s.into());
+        }
+        for p in &m.complex_poles {
+            poles.push(p.pole_rad_per_s);
+            residues.push(p.residue_ohm_rad_per_s);
+            poles.push(p.pole_rad_per_s.conj());
+            residues.push(p.residue_ohm_rad_per_s.conj());
+        }
+        PoleResidues {
+            poles,
+            residues,
+            d_ohm: m.d_ohm,
+            e_h: m.e_h,
+        }
+    }
+
+    fn z(&self, s: Complex64) -> Complex64 {
+        let mut z = self.d_ohm + s * self.e_h;
+        for (p, r) in self.poles.iter().zip(&self.residues) {
+            z += r / (s - p);
+        }
+        z
+    }
+
+    /// dZ/ds.
+    fn dz(&self, s: Complex64) -> Complex64 {
+        let mut dz = Complex64::new(self.e_h, 0.0);
+        for (p, r) in self.poles.iter().zip(&self.residues) {
+            dz -= r / ((s - p) * (s - p));
+        }
+        dz
+    }
 }
 
 /// Y = 1/Z in the same pole-residue form: Y's poles are Z's zeros, found as the eigenvalues of the
 /// state-space zero matrix (A − B·C/d, or its pencil forms when d = 0 or e > 0), polished by Newton
 /// steps on Z itself; residues 1/Z'(z).
 fn admittance_expansion(m: &RationalModel) -> Result<RationalModel, String> {
-    use nalgebra::DMatrix;
-    let mut poles: Vec<Complex64> = Vec::new();
-    let mut residues: Vec<Complex64> = Vec::new();
-    for p in &m.real_poles {
-        poles.push(p.pole_rad_per_s.into());
-        residues.push(p.residue_ohm_rad_per_s.into());
-    }
-    for p in &m.complex_poles {
-        poles.push(p.pole_rad_per_s);
-        residues.push(p.residue_ohm_rad_per_s);
-        poles.push(p.pole_rad_per_s.conj());
-        residues.push(p.residue_ohm_rad_per_s.conj());
-    }
-    let n = poles.len();
-    let z_of = |s: Complex64| -> Complex64 {
-        let mut z = m.d_ohm + s * m.e_h;
-        for (p, r) in poles.iter().zip(&residues) {
-            z += r / (s - p);
-        }
-        z
-    };
-    let dz_of = |s: Complex64| -> Complex64 {
-        let mut dz = Complex64::new(m.e_h, 0.0);
-        for (p, r) in poles.iter().zip(&residues) {
-            dz -= r / ((s - p) * (s - p));
-        }
-        dz
-    };
-    let m1: Complex64 = residues.iter().sum();
-    let m2: Complex64 = poles.iter().zip(&residues).map(|(p, r)| p * r).sum();
-    let scale = poles
+    let z = PoleResidues::new(m);
+    let scale = z
+        .poles
         .iter()
         .map(|p| p.norm())
         .fold(0.0f64, f64::max)
         .max(f64::MIN_POSITIVE);
+    let (mut zeros, d_y, e_y) = zeros_of(&z)?;
+    for zero in zeros.iter_mut() {
+        polish_zero(&z, zero, scale);
+    }
+    let (real_poles, complex_poles) = admittance_poles(&z, &zeros, scale)?;
+    Ok(RationalModel {
+        d_ohm: d_y,
+        e_h: e_y,
+        real_poles,
+        complex_poles,
+    })
+}
+
+/// Z's zeros as the eigenvalues of the state-space zero matrix, with Y's constant and
+/// proportional terms (d and e of Y = 1/Z).
+fn zeros_of(z: &PoleResidues) -> Result<(Vec<Complex64>, f64, f64), String> {
+    use nalgebra::DMatrix;
+    let (poles, residues) = (&z.poles, &z.residues);
+    let n = poles.len();
+    let m1: Complex64 = residues.iter().sum();
+    let m2: Complex64 = poles.iter().zip(residues).map(|(p, r)| p * r).sum();
     let zero = Complex64::new(0.0, 0.0);
-    let (mut zeros, d_y, e_y): (Vec<Complex64>, f64, f64) = if m.e_h > 0.0 {
+    if z.e_h > 0.0 {
         // Pencil [[A, B], [C, d]] − s·diag(I, −e): eig of [[A, B], [−C/e, −d/e]].
         let mat = DMatrix::from_fn(n + 1, n + 1, |i, j| match (i < n, j < n) {
             (true, true) => {
@@ -492,16 +552,16 @@ fn admittance_expansion(m: &RationalModel) -> Result<RationalModel, String> {
                 }
             }
             (true, false) => Complex64::new(1.0, 0.0),
-            (false, true) => -residues[j] / m.e_h,
-            (false, false) => Complex64::new(-m.d_ohm / m.e_h, 0.0),
+            (false, true) => -residues[j] / z.e_h,
+            (false, false) => Complex64::new(-z.d_ohm / z.e_h, 0.0),
         });
-        (eigenvalues(mat)?, 0.0, 0.0)
-    } else if m.d_ohm > 0.0 {
+        Ok((eigenvalues(mat)?, 0.0, 0.0))
+    } else if z.d_ohm > 0.0 {
         let mat = DMatrix::from_fn(n, n, |i, j| {
             let diag = if i == j { poles[i] } else { zero };
-            diag - residues[j] / m.d_ohm
+            diag - residues[j] / z.d_ohm
         });
-        (eigenvalues(mat)?, 1.0 / m.d_ohm, 0.0)
+        Ok((eigenvalues(mat)?, 1.0 / z.d_ohm, 0.0))
     } else {
         if m1.re.is_nan() || m1.re <= 0.0 {
             return Err("Z vanishes at infinity without a positive sum of residues".to_string());
@@ -516,42 +576,56 @@ fn admittance_expansion(m: &RationalModel) -> Result<RationalModel, String> {
             .min_by(|&a, &b| ev[a].norm().total_cmp(&ev[b].norm()))
             .ok_or("no zeros")?;
         ev.remove(k);
-        (ev, (-m2 / (m1 * m1)).re, 1.0 / m1.re)
-    };
-    for z in zeros.iter_mut() {
-        for _ in 0..30 {
-            let step = z_of(*z) / dz_of(*z);
-            if !(step.re.is_finite() && step.im.is_finite()) {
-                break;
-            }
-            let next = *z - step;
-            if z_of(next).norm() >= z_of(*z).norm() {
-                break;
-            }
-            *z = next;
-        }
-        if z.norm() < 1e-12 * scale {
-            *z = zero;
-        }
+        Ok((ev, (-m2 / (m1 * m1)).re, 1.0 / m1.re))
     }
+}
+
+/// Newton steps on Z from `zero` while they lower |Z|; a zero within 1e-12 of `scale` of the
+/// origin is set to it.
+fn polish_zero(z: &PoleResidues, zero: &mut Complex64, scale: f64) {
+    for _ in 0..30 {
+        let step = z.z(*zero) / z.dz(*zero);
+        if !(step.re.is_finite() && step.im.is_finite()) {
+            break;
+        }
+        let next = *zero - step;
+        if z.z(next).norm() >= z.z(*zero).norm() {
+            break;
+        }
+        *zero = next;
+    }
+    if zero.norm() < 1e-12 * scale {
+        *zero = Complex64::new(0.0, 0.0);
+    }
+}
+
+/// Z's zeros as Y's poles with residues 1/Z'(zero): real ones, and one of each conjugate pair.
+/// Refused when a zero lies in the right half-plane or the pairs do not match up.
+fn admittance_poles(
+    z: &PoleResidues,
+    zeros: &[Complex64],
+    scale: f64,
+) -> Result<(Vec<RealPole>, Vec<ComplexPole>), String> {
     let mut real_poles = Vec::new();
     let mut complex_poles = Vec::new();
     let mut n_upper = 0;
     let mut n_lower = 0;
-    for &z in &zeros {
-        if z.re > 1e-6 * scale.max(z.norm()) {
-            return Err(format!("Z has a zero in the right half-plane at {z} rad/s"));
+    for &zero in zeros {
+        if zero.re > 1e-6 * scale.max(zero.norm()) {
+            return Err(format!(
+                "Z has a zero in the right half-plane at {zero} rad/s"
+            ));
         }
-        let rho = dz_of(z).inv();
-        if z.im.abs() <= 1e-9 * z.norm().max(f64::MIN_POSITIVE) {
+        let rho = z.dz(zero).inv();
+        if zero.im.abs() <= 1e-9 * zero.norm().max(f64::MIN_POSITIVE) {
             real_poles.push(RealPole {
-                pole_rad_per_s: z.re.min(0.0),
+                pole_rad_per_s: zero.re.min(0.0),
                 residue_ohm_rad_per_s: rho.re,
             });
-        } else if z.im > 0.0 {
+        } else if zero.im > 0.0 {
             n_upper += 1;
             complex_poles.push(ComplexPole {
-                pole_rad_per_s: Complex64::new(z.re.min(0.0), z.im),
+                pole_rad_per_s: Complex64::new(zero.re.min(0.0), zero.im),
                 residue_ohm_rad_per_s: rho,
             });
         } else {
@@ -561,12 +635,7 @@ fn admittance_expansion(m: &RationalModel) -> Result<RationalModel, String> {
     if n_upper != n_lower {
         return Err("the zeros of Z do not come in conjugate pairs (numerically lost)".to_string());
     }
-    Ok(RationalModel {
-        d_ohm: d_y,
-        e_h: e_y,
-        real_poles,
-        complex_poles,
-    })
+    Ok((real_poles, complex_poles))
 }
 
 fn eigenvalues(mat: nalgebra::DMatrix<Complex64>) -> Result<Vec<Complex64>, String> {

@@ -25,32 +25,7 @@ pub const ERROR_BOUND_KEY: &str = "max_relative_error_bound:";
 pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<String, ExportError> {
     let band = ctx.checked_band()?;
     validate(model)?;
-    let ladder = if model.k_ac_ohm_per_sqrt_hz > 0.0 {
-        Some(design_skin_ladder(model, band)?)
-    } else {
-        None
-    };
-    let l0_h = ladder.as_ref().map_or(model.l0_h, |l| l.l0_h);
-    let core_net = match &model.core {
-        Some(c) => Some(design_core(c, l0_h, band)?),
-        None => None,
-    };
-    let realised = |f: f64| {
-        let skin = ladder
-            .as_ref()
-            .map_or(Complex64::new(0.0, 0.0), |l| l.impedance(f));
-        let core = match &core_net {
-            Some(n) => n.impedance(f),
-            None => {
-                let jwl0 = Complex64::new(0.0, 2.0 * std::f64::consts::PI * f * l0_h);
-                match model.rp_ohm {
-                    Some(rp) => jwl0 * rp / (jwl0 + rp),
-                    None => jwl0,
-                }
-            }
-        };
-        impedance_with_core(model, skin, core, f)
-    };
+    let winding = Winding::design(model, band)?;
     let mut net = Netlist::new();
     let a = if model.ls_h > 0.0 {
         let a = net.node();
@@ -64,54 +39,133 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         .iter()
         .any(|s| s.kind == SectionKind::Parallel);
     let b = if has_tanks { net.node() } else { PIN_B };
-
-    // Winding branch: rdc, ladder cells, core, in series from a to b.
-    let mut at = a;
-    if model.rdc_ohm > 0.0 {
-        let next = net.node();
-        net.element("RDC", at, next, model.rdc_ohm);
-        at = next;
-    }
-    if let Some(l) = &ladder {
-        for (i, cell) in l.cells.iter().enumerate() {
-            let next = net.node();
-            net.element(&format!("RSK{}", i + 1), at, next, cell.r_ohm);
-            net.element(&format!("LSK{}", i + 1), at, next, cell.l_h);
-            at = next;
-        }
-    }
-    match &core_net {
-        Some(cn) => {
-            let last = cn.cells.len();
-            for (i, cell) in cn.cells.iter().enumerate() {
-                let next = if i + 1 == last { b } else { net.node() };
-                let k = i + 1;
-                match *cell {
-                    CoreCell::Inductor { l_h } => net.element(&format!("LC{k}"), at, next, l_h),
-                    CoreCell::Relaxation { l_h, r_ohm } => {
-                        net.element(&format!("LC{k}"), at, next, l_h);
-                        net.element(&format!("RC{k}"), at, next, r_ohm);
-                    }
-                    CoreCell::Tank { l_h, c_f, r_ohm } => {
-                        net.element(&format!("LC{k}"), at, next, l_h);
-                        net.element(&format!("CC{k}"), at, next, c_f);
-                        net.element(&format!("RC{k}"), at, next, r_ohm);
-                    }
-                }
-                at = next;
-            }
-        }
-        None => {
-            net.element("L0", at, b, l0_h);
-            if let Some(rp) = model.rp_ohm {
-                net.element("RP", at, b, rp);
-            }
-        }
-    }
+    winding.write(&mut net, model, a, b);
     if model.cp_f > 0.0 {
         net.element("CP", a, b, model.cp_f);
     }
+    write_sections(&mut net, model, a, b);
+    let accuracy = Accuracy::measure(model, &net, band, |f| winding.impedance(model, f))?;
 
+    net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
+    for line in provenance_lines(ctx) {
+        net.comment(line);
+    }
+    net.comment(format!(
+        "model: l0_h={:e} rdc_ohm={:e} k_ac_ohm_per_sqrt_hz={:e} rp_ohm={} cp_f={:e} ls_h={:e} sections={}",
+        model.l0_h,
+        model.rdc_ohm,
+        model.k_ac_ohm_per_sqrt_hz,
+        model.rp_ohm.map_or("none".to_string(), |r| format!("{r:e}")),
+        model.cp_f,
+        model.ls_h,
+        model.sections.len()
+    ));
+    if let Some(l) = &winding.ladder {
+        ladder_comments(&mut net, l, model);
+    }
+    if let (Some(c), Some(cn)) = (&model.core, &winding.core) {
+        core_comments(&mut net, c, cn);
+    }
+    accuracy.comments(&mut net);
+    net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
+    net.comment("");
+
+    Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
+}
+
+/// The winding branch as realised: the skin-effect ladder (when the model has a √f term), the L0
+/// left once the ladder's internal inductance is taken off, and the dispersive core's cells.
+struct Winding {
+    ladder: Option<SkinLadder>,
+    l0_h: f64,
+    core: Option<CoreNetwork>,
+}
+
+impl Winding {
+    fn design(model: &LumpedModel, band: [f64; 2]) -> Result<Winding, ExportError> {
+        let ladder = if model.k_ac_ohm_per_sqrt_hz > 0.0 {
+            Some(design_skin_ladder(model, band)?)
+        } else {
+            None
+        };
+        let l0_h = ladder.as_ref().map_or(model.l0_h, |l| l.l0_h);
+        let core = match &model.core {
+            Some(c) => Some(design_core(c, l0_h, band)?),
+            None => None,
+        };
+        Ok(Winding { ladder, l0_h, core })
+    }
+
+    /// The impedance of the whole subcircuit with this winding branch at `f`.
+    fn impedance(&self, model: &LumpedModel, f: f64) -> Complex64 {
+        let skin = self
+            .ladder
+            .as_ref()
+            .map_or(Complex64::new(0.0, 0.0), |l| l.impedance(f));
+        let core = match &self.core {
+            Some(n) => n.impedance(f),
+            None => {
+                let jwl0 = Complex64::new(0.0, 2.0 * std::f64::consts::PI * f * self.l0_h);
+                match model.rp_ohm {
+                    Some(rp) => jwl0 * rp / (jwl0 + rp),
+                    None => jwl0,
+                }
+            }
+        };
+        impedance_with_core(model, skin, core, f)
+    }
+
+    /// Writes rdc, the ladder cells and the core (L0 ‖ rp, or the core's cells) in series from `a`
+    /// to `b`.
+    fn write(&self, net: &mut Netlist, model: &LumpedModel, a: u32, b: u32) {
+        let mut at = a;
+        if model.rdc_ohm > 0.0 {
+            let next = net.node();
+            net.element("RDC", at, next, model.rdc_ohm);
+            at = next;
+        }
+        if let Some(l) = &self.ladder {
+            for (i, cell) in l.cells.iter().enumerate() {
+                let next = net.node();
+                net.element(&format!("RSK{}", i + 1), at, next, cell.r_ohm);
+                net.element(&format!("LSK{}", i + 1), at, next, cell.l_h);
+                at = next;
+            }
+        }
+        match &self.core {
+            Some(cn) => {
+                let last = cn.cells.len();
+                for (i, cell) in cn.cells.iter().enumerate() {
+                    let next = if i + 1 == last { b } else { net.node() };
+                    let k = i + 1;
+                    match *cell {
+                        CoreCell::Inductor { l_h } => net.element(&format!("LC{k}"), at, next, l_h),
+                        CoreCell::Relaxation { l_h, r_ohm } => {
+                            net.element(&format!("LC{k}"), at, next, l_h);
+                            net.element(&format!("RC{k}"), at, next, r_ohm);
+                        }
+                        CoreCell::Tank { l_h, c_f, r_ohm } => {
+                            net.element(&format!("LC{k}"), at, next, l_h);
+                            net.element(&format!("CC{k}"), at, next, c_f);
+                            net.element(&format!("RC{k}"), at, next, r_ohm);
+                        }
+                    }
+                    at = next;
+                }
+            }
+            None => {
+                net.element("L0", at, b, self.l0_h);
+                if let Some(rp) = model.rp_ohm {
+                    net.element("RP", at, b, rp);
+                }
+            }
+        }
+    }
+}
+
+/// The sections: each series kind as an R–L–C chain from `a` to `b`, each parallel kind as an
+/// R‖L‖C tank in a chain from `b` to pin 2.
+fn write_sections(net: &mut Netlist, model: &LumpedModel, a: u32, b: u32) {
     let mut n_series = 0;
     let mut n_tank = 0;
     let mut tank_at = b;
@@ -153,63 +207,75 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
             }
         }
     }
-    let [lo, hi] = band;
-    let model_z = |f: f64| model.impedance(f);
-    let res = resonances(&model_z, lo, hi);
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
-    let mut max_err = 0.0f64;
-    let mut max_err_at = lo;
-    let mut spread = 1.0f64;
-    for &f in &check {
-        let z_model = model.impedance(f);
-        if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
-            return Err(ExportError::NotFinite { frequency_hz: f });
-        }
-        spread = spread.max(z_model.norm() / net.min_element_impedance(f));
-        let e = (realised(f) - z_model).norm() / z_model.norm();
-        if !e.is_finite() {
-            return Err(ExportError::NotFinite { frequency_hz: f });
-        }
-        if e > max_err {
-            max_err = e;
-            max_err_at = f;
-        }
-    }
-    let bound = stated_bound(max_err, spread);
+}
 
-    net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
-    for line in provenance_lines(ctx) {
-        net.comment(line);
-    }
-    net.comment(format!(
-        "model: l0_h={:e} rdc_ohm={:e} k_ac_ohm_per_sqrt_hz={:e} rp_ohm={} cp_f={:e} ls_h={:e} sections={}",
-        model.l0_h,
-        model.rdc_ohm,
-        model.k_ac_ohm_per_sqrt_hz,
-        model.rp_ohm.map_or("none".to_string(), |r| format!("{r:e}")),
-        model.cp_f,
-        model.ls_h,
-        model.sections.len()
-    ));
-    if let Some(l) = &ladder {
-        ladder_comments(&mut net, l, model);
-    }
-    if let (Some(c), Some(cn)) = (&model.core, &core_net) {
-        core_comments(&mut net, c, cn);
-    }
-    net.comment(format!(
-        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
-        check.len(),
-        res.len()
-    ));
-    net.comment(format!(
-        "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
-    ));
-    net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
-    net.comment("pins: 1 and 2 (the part is symmetric); values in ohm, henry, farad");
-    net.comment("");
+/// How closely the netlist follows the model over the band, on a log grid made dense around the
+/// model's resonances.
+struct Accuracy {
+    max_err: f64,
+    max_err_at: f64,
+    /// max over f of |Z| over the smallest single-element impedance (see [`stated_bound`]).
+    spread: f64,
+    points: usize,
+    resonances: usize,
+}
 
-    Ok(net.render(&subckt_name(ctx.part_number.as_deref())))
+impl Accuracy {
+    fn measure(
+        model: &LumpedModel,
+        net: &Netlist,
+        band: [f64; 2],
+        realised: impl Fn(f64) -> Complex64,
+    ) -> Result<Accuracy, ExportError> {
+        let [lo, hi] = band;
+        let model_z = |f: f64| model.impedance(f);
+        let res = resonances(&model_z, lo, hi);
+        let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
+        let mut max_err = 0.0f64;
+        let mut max_err_at = lo;
+        let mut spread = 1.0f64;
+        for &f in &check {
+            let z_model = model.impedance(f);
+            if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
+                return Err(ExportError::NotFinite { frequency_hz: f });
+            }
+            spread = spread.max(z_model.norm() / net.min_element_impedance(f));
+            let e = (realised(f) - z_model).norm() / z_model.norm();
+            if !e.is_finite() {
+                return Err(ExportError::NotFinite { frequency_hz: f });
+            }
+            if e > max_err {
+                max_err = e;
+                max_err_at = f;
+            }
+        }
+        Ok(Accuracy {
+            max_err,
+            max_err_at,
+            spread,
+            points: check.len(),
+            resonances: res.len(),
+        })
+    }
+
+    /// The measured error, how the stated error follows from it, and the machine-readable line.
+    fn comments(&self, net: &mut Netlist) {
+        let Accuracy {
+            max_err,
+            max_err_at,
+            spread,
+            ..
+        } = *self;
+        let bound = stated_bound(max_err, spread);
+        net.comment(format!(
+            "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
+            self.points, self.resonances
+        ));
+        net.comment(format!(
+            "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
+        ));
+        net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
+    }
 }
 
 fn ladder_comments(net: &mut Netlist, l: &SkinLadder, model: &LumpedModel) {

@@ -377,13 +377,7 @@ fn stretches(n: usize, kept: &[usize]) -> Vec<(usize, usize)> {
 fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usize) -> Assessment {
     let f = &sweep.frequency_hz;
     let n = f.len();
-    let mut r = Vec::with_capacity(n);
-    let mut rel = Vec::with_capacity(n);
-    for ((&fk, &zk), &sk) in f.iter().zip(&sweep.impedance_ohm).zip(&sweep.sigma_ohm) {
-        let d = model.impedance(fk) - zk;
-        r.push(d / sk);
-        rel.push(d.norm() / zk.norm());
-    }
+    let (r, rel) = residuals(model, sweep);
     let scatter = scatter_ratio(f, &sweep.impedance_ohm, &sweep.sigma_ohm);
     let mut findings = Vec::new();
     let noise_scale = match scatter {
@@ -417,7 +411,64 @@ fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usiz
             ),
         });
     }
+    let (bands, worst) = band_qualities(f, &r, &rel, s2);
+    if let Some(i) = worst {
+        findings.push(band_misfit(&bands, i, s2, noise_scale));
+    }
+    let (runs, structured) = runs_test(f, &r, rms / noise_scale);
+    findings.extend(structured);
 
+    let lag1 = lag1_correlation(&r);
+    let sigma_widening = if lag1 > 3.0 / (n as f64).sqrt() {
+        ((1.0 + lag1) / (1.0 - lag1).max(1e-6))
+            .sqrt()
+            .min(MAX_CORRELATION_WIDENING)
+    } else {
+        1.0
+    };
+    let poor = findings.iter().any(|x| x.kind.makes_poor());
+    let summary = summary(&findings, poor, noise_scale);
+    Assessment {
+        status: if poor { FitStatus::Poor } else { FitStatus::Ok },
+        summary,
+        findings,
+        scatter_ratio: scatter,
+        noise_scale,
+        overall_z,
+        runs_z: runs,
+        lag1_correlation: lag1,
+        sigma_widening,
+        bands,
+    }
+}
+
+/// The residual of each point in units of its σ, (Z_model − Z_meas)/σ, and its relative error
+/// |Z_model − Z_meas|/|Z_meas|.
+fn residuals(model: &dyn ImpedanceModel, sweep: &Sweep) -> (Vec<Complex64>, Vec<f64>) {
+    let n = sweep.frequency_hz.len();
+    let mut r = Vec::with_capacity(n);
+    let mut rel = Vec::with_capacity(n);
+    for ((&fk, &zk), &sk) in sweep
+        .frequency_hz
+        .iter()
+        .zip(&sweep.impedance_ohm)
+        .zip(&sweep.sigma_ohm)
+    {
+        let d = model.impedance(fk) - zk;
+        r.push(d / sk);
+        rel.push(d.norm() / zk.norm());
+    }
+    (r, rel)
+}
+
+/// The quality of each band, and the index of the one that misses the data most when any misses
+/// by more than [`BAND_Z_LIMIT`].
+fn band_qualities(
+    f: &[f64],
+    r: &[Complex64],
+    rel: &[f64],
+    s2: f64,
+) -> (Vec<BandQuality>, Option<usize>) {
     let mut bands = Vec::new();
     let mut worst: Option<(f64, usize)> = None;
     for (a, b) in band_edges(f) {
@@ -434,37 +485,45 @@ fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usiz
             worst = Some((z, bands.len() - 1));
         }
     }
-    if let Some((_, i)) = worst {
-        let bq = &bands[i];
-        let others = bands
-            .iter()
-            .enumerate()
-            .filter(|(j, b)| {
-                *j != i && {
-                    let c = b.rms_weighted * b.rms_weighted * (2 * b.points) as f64;
-                    (c / s2 - 2.0 * b.points as f64) / (4.0 * b.points as f64).sqrt() > BAND_Z_LIMIT
-                }
-            })
-            .count();
-        findings.push(Finding {
-            kind: FindingKind::BandMisfit,
-            band_hz: Some(bq.band_hz),
-            message: format!(
-                "between {} and {} the model misses the data by {:.2}× the noise (median error \
-                 {:.2} % of |Z|){}",
-                engineering(bq.band_hz[0]),
-                engineering(bq.band_hz[1]),
-                bq.rms_weighted / noise_scale,
-                100.0 * bq.median_relative_error,
-                match others {
-                    0 => String::new(),
-                    1 => "; one other band misses too".into(),
-                    k => format!("; {k} other bands miss too"),
-                }
-            ),
-        });
-    }
+    (bands, worst.map(|(_, i)| i))
+}
 
+/// The finding for the worst band `i`, with a count of the other bands that miss too.
+fn band_misfit(bands: &[BandQuality], i: usize, s2: f64, noise_scale: f64) -> Finding {
+    let bq = &bands[i];
+    let others = bands
+        .iter()
+        .enumerate()
+        .filter(|(j, b)| {
+            *j != i && {
+                let c = b.rms_weighted * b.rms_weighted * (2 * b.points) as f64;
+                (c / s2 - 2.0 * b.points as f64) / (4.0 * b.points as f64).sqrt() > BAND_Z_LIMIT
+            }
+        })
+        .count();
+    Finding {
+        kind: FindingKind::BandMisfit,
+        band_hz: Some(bq.band_hz),
+        message: format!(
+            "between {} and {} the model misses the data by {:.2}× the noise (median error \
+             {:.2} % of |Z|){}",
+            engineering(bq.band_hz[0]),
+            engineering(bq.band_hz[1]),
+            bq.rms_weighted / noise_scale,
+            100.0 * bq.median_relative_error,
+            match others {
+                0 => String::new(),
+                1 => "; one other band misses too".into(),
+                k => format!("; {k} other bands miss too"),
+            }
+        ),
+    }
+}
+
+/// The runs test z of the residual signs (real and imaginary parts combined), and a finding when
+/// they keep their sign too long while the residuals (`rms_in_noise`, the weighted RMS over the
+/// noise scale) are not far below the noise.
+fn runs_test(f: &[f64], r: &[Complex64], rms_in_noise: f64) -> (f64, Option<Finding>) {
     let re: Vec<bool> = r.iter().map(|x| x.re > 0.0).collect();
     let im: Vec<bool> = r.iter().map(|x| x.im > 0.0).collect();
     let runs = match (runs_z(&re), runs_z(&im)) {
@@ -472,31 +531,28 @@ fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usiz
         (Some(a), None) | (None, Some(a)) => a,
         (None, None) => 0.0,
     };
-    if runs < -RUNS_Z_LIMIT && rms / noise_scale >= RUNS_RMS_FLOOR {
-        let longest = longest_run(&re).max(longest_run(&im));
-        findings.push(Finding {
-            kind: FindingKind::StructuredResiduals,
-            band_hz: Some([f[longest.1], f[longest.2]]),
-            message: format!(
-                "the residuals keep their sign over long stretches (runs test z = {runs:.1}; the \
-                 longest, {} points, from {} to {}): the model leaves a systematic shape in the data",
-                longest.0,
-                engineering(f[longest.1]),
-                engineering(f[longest.2])
-            ),
-        });
+    if !(runs < -RUNS_Z_LIMIT && rms_in_noise >= RUNS_RMS_FLOOR) {
+        return (runs, None);
     }
-
-    let lag1 = lag1_correlation(&r);
-    let sigma_widening = if lag1 > 3.0 / (n as f64).sqrt() {
-        ((1.0 + lag1) / (1.0 - lag1).max(1e-6))
-            .sqrt()
-            .min(MAX_CORRELATION_WIDENING)
-    } else {
-        1.0
+    let longest = longest_run(&re).max(longest_run(&im));
+    let finding = Finding {
+        kind: FindingKind::StructuredResiduals,
+        band_hz: Some([f[longest.1], f[longest.2]]),
+        message: format!(
+            "the residuals keep their sign over long stretches (runs test z = {runs:.1}; the \
+             longest, {} points, from {} to {}): the model leaves a systematic shape in the data",
+            longest.0,
+            engineering(f[longest.1]),
+            engineering(f[longest.2])
+        ),
     };
-    let poor = findings.iter().any(|x| x.kind.makes_poor());
-    let summary = if poor {
+    (runs, Some(finding))
+}
+
+/// The one sentence for people: the main miss when the fit is poor, else which noise the model
+/// is within.
+fn summary(findings: &[Finding], poor: bool, noise_scale: f64) -> String {
+    if poor {
         let worst_message = findings
             .iter()
             .find(|x| x.kind == FindingKind::BandMisfit)
@@ -511,18 +567,6 @@ fn assess_determined(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usiz
         )
     } else {
         "the model describes the data within their stated uncertainty".into()
-    };
-    Assessment {
-        status: if poor { FitStatus::Poor } else { FitStatus::Ok },
-        summary,
-        findings,
-        scatter_ratio: scatter,
-        noise_scale,
-        overall_z,
-        runs_z: runs,
-        lag1_correlation: lag1,
-        sigma_widening,
-        bands,
     }
 }
 

@@ -214,21 +214,66 @@ pub fn read_curve(data: &FitData) -> (Guess, Vec<LumpedModel>) {
     (g, starts)
 }
 
+/// The curve's reading: every element of the base model read off the measured curve (see the
+/// module notes).
 pub fn guess(data: &FitData) -> Guess {
     let f = &data.frequency_hz;
     let n = f.len();
     let top = n - 1;
-    let w = |k: usize| 2.0 * PI * f[k];
     let feats = features(data);
     let srf = feats.crossings.iter().find(|c| c.1).map(|c| c.0);
     let stretch_top = srf.map_or(f[top], |s| s / 3.0);
-
-    // L0: precision-weighted median of Im Z/ω over the lowest 1.5 decades of the inductive stretch
-    // where Im Z stands above its noise.
-    let corr = |k: usize| srf.map_or(1.0, |s| (1.0 - (f[k] / s).powi(2)).max(0.1));
     let stretch: Vec<usize> = (0..n)
         .filter(|&k| f[k] <= stretch_top && data.z[k].im > 0.0)
         .collect();
+    let (l0, l_at) = read_l0(data, srf, &stretch);
+    let cp = read_cp(data, srf, &stretch, l0);
+    let srf_est = 1.0 / (2.0 * PI * (l0 * cp).sqrt());
+    let floor_r = 1e-6 * omega(f, 0) * l0;
+    let (rdc, k_ac, rp) = read_resistances(data, srf, l0, cp, srf_est, floor_r);
+    let (mut pairs, last_series) = resonance_pairs(data, srf, &feats.crossings, floor_r);
+    let ls = read_ls(data, last_series, l0, cp, srf_est);
+    if let Some(fs) = last_series {
+        // The series resonance may also be the notch of a section whose peak lies above the band.
+        pairs.push((
+            fs,
+            2.0 * f[top].max(fs),
+            data.z[nearest(data, fs)].re.max(floor_r),
+            rp,
+        ));
+    }
+
+    Guess {
+        base: LumpedModel {
+            l0_h: l0,
+            rdc_ohm: rdc,
+            k_ac_ohm_per_sqrt_hz: k_ac,
+            rp_ohm: Some(rp),
+            cp_f: cp,
+            ls_h: ls,
+            sections: Vec::new(),
+            core: None,
+        },
+        pairs,
+        srf_hz: srf,
+        l_reading_h: l0,
+        l_reading_at_hz: l_at,
+        l_readings_h: [l0, l0],
+    }
+}
+
+/// ω at point k.
+fn omega(f: &[f64], k: usize) -> f64 {
+    2.0 * PI * f[k]
+}
+
+/// L0 and the frequency it was read at: the precision-weighted median of Im Z/ω over the lowest
+/// 1.5 decades of the inductive `stretch` where Im Z stands above its noise, corrected for Cp.
+fn read_l0(data: &FitData, srf: Option<f64>, stretch: &[usize]) -> (f64, f64) {
+    let f = &data.frequency_hz;
+    let n = f.len();
+    let w = |k: usize| omega(f, k);
+    let corr = |k: usize| srf.map_or(1.0, |s| (1.0 - (f[k] / s).powi(2)).max(0.1));
     // Points where Im Z stands clear of its noise (as the running median) and the measurement
     // determines Z to 10 %: near an open or a short a method's error is heavy-tailed, and the few
     // points that pass 3σ there are the ones the noise inflated.
@@ -244,11 +289,11 @@ pub fn guess(data: &FitData) -> Guess {
         .filter(|&k| data.sigma[k] <= 0.1 * data.z[k].norm())
         .collect();
     let pool = if !determined.is_empty() {
-        &determined
+        determined.as_slice()
     } else if !clear.is_empty() {
-        &clear
+        clear.as_slice()
     } else {
-        &stretch
+        stretch
     };
     let (mut l0, mut l_at) = (f64::NAN, f[0]);
     if let Some(&first) = pool.first() {
@@ -277,9 +322,15 @@ pub fn guess(data: &FitData) -> Guess {
             .max(data.z[0].norm() / w(0) * 1e-3)
             .max(1e-15);
     }
+    (l0, l_at)
+}
 
-    // Cp: Thomson from the SRF, else the rise of L_eff over the inductive stretch.
-    let cp = match srf {
+/// Cp: Thomson from the SRF, else the rise of L_eff over the inductive `stretch`.
+fn read_cp(data: &FitData, srf: Option<f64>, stretch: &[usize], l0: f64) -> f64 {
+    let f = &data.frequency_hz;
+    let top = f.len() - 1;
+    let w = |k: usize| omega(f, k);
+    match srf {
         Some(s) => 1.0 / ((2.0 * PI * s).powi(2) * l0),
         None => {
             let rows: Vec<(Vec<f64>, f64, f64)> = stretch
@@ -302,25 +353,24 @@ pub fn guess(data: &FitData) -> Guess {
                 _ => 1.0 / ((2.0 * PI * 30.0 * f[top]).powi(2) * l0),
             }
         }
-    };
-    let srf_est = 1.0 / (2.0 * PI * (l0 * cp).sqrt());
-
-    // Rdc, k_ac, Rp from Re Zw below SRF/2.
-    let floor_r = 1e-6 * w(0) * l0;
-    let half = srf_est / 2.0;
-    let mut rows = Vec::new();
-    for (k, &fk) in f.iter().enumerate() {
-        if fk > half {
-            break;
-        }
-        let jwc = Complex64::new(0.0, w(k) * cp);
-        let den = Complex64::new(1.0, 0.0) - jwc * data.z[k];
-        let zw = data.z[k] / den;
-        let sigma = data.sigma[k] / den.norm_sqr();
-        let x = w(k) * l0;
-        rows.push((vec![1.0, fk.sqrt(), x * x], zw.re, 1.0 / sigma));
     }
-    let coef = nnls_small(&rows).unwrap_or_else(|| vec![0.0; 3]);
+}
+
+/// (Rdc, k_ac, Rp) from Re Zw below SRF/2, each with its fallback where the fit gives none;
+/// a DCR reading replaces the fitted Rdc.
+fn read_resistances(
+    data: &FitData,
+    srf: Option<f64>,
+    l0: f64,
+    cp: f64,
+    srf_est: f64,
+    floor_r: f64,
+) -> (f64, f64, f64) {
+    let f = &data.frequency_hz;
+    let n = f.len();
+    let top = n - 1;
+    let w = |k: usize| omega(f, k);
+    let coef = winding_resistance_fit(data, l0, cp, srf_est);
     let mut rdc = coef[0];
     if let Some((value, _)) = data.dcr_prior {
         rdc = value;
@@ -353,15 +403,44 @@ pub fn guess(data: &FitData) -> Guess {
     } else {
         0.1 * rdc / f_mid.sqrt()
     };
+    (rdc, k_ac, rp)
+}
 
-    // Pairs after the SRF: (series crossing, following parallel crossing).
+/// The coefficients of Re Zw ≈ Rdc + k·√f + (ωL0)²/Rp below SRF/2 (the winding impedance
+/// Zw = 1/(1/Z − jωCp)), non-negative; zeros when the fit fails.
+fn winding_resistance_fit(data: &FitData, l0: f64, cp: f64, srf_est: f64) -> Vec<f64> {
+    let f = &data.frequency_hz;
+    let w = |k: usize| omega(f, k);
+    let half = srf_est / 2.0;
+    let mut rows = Vec::new();
+    for (k, &fk) in f.iter().enumerate() {
+        if fk > half {
+            break;
+        }
+        let jwc = Complex64::new(0.0, w(k) * cp);
+        let den = Complex64::new(1.0, 0.0) - jwc * data.z[k];
+        let zw = data.z[k] / den;
+        let sigma = data.sigma[k] / den.norm_sqr();
+        let x = w(k) * l0;
+        rows.push((vec![1.0, fk.sqrt(), x * x], zw.re, 1.0 / sigma));
+    }
+    nnls_small(&rows).unwrap_or_else(|| vec![0.0; 3])
+}
+
+/// (notch frequency, peak frequency, resistance at notch, resistance at peak), as in
+/// [`Guess::pairs`].
+type ResonancePair = (f64, f64, f64, f64);
+
+/// The resonance pairs after the SRF (a series crossing and the parallel one after it), and a last
+/// series crossing that has no parallel one after it.
+fn resonance_pairs(
+    data: &FitData,
+    srf: Option<f64>,
+    crossings: &[(f64, bool)],
+    floor_r: f64,
+) -> (Vec<ResonancePair>, Option<f64>) {
     let after: Vec<(f64, bool)> = match srf {
-        Some(s) => feats
-            .crossings
-            .iter()
-            .copied()
-            .filter(|c| c.0 > s)
-            .collect(),
+        Some(s) => crossings.iter().copied().filter(|c| c.0 > s).collect(),
         None => Vec::new(),
     };
     let mut pairs = Vec::new();
@@ -383,8 +462,15 @@ pub fn guess(data: &FitData) -> Guess {
         }
         i += 1;
     }
+    (pairs, last_series)
+}
 
-    // ls: from a trailing series resonance with Cp, else the capacitive stretch above 2·SRF.
+/// ls: from a trailing series resonance with Cp, else the capacitive stretch above 2·SRF; a small
+/// share of L0 when neither gives a plausible value.
+fn read_ls(data: &FitData, last_series: Option<f64>, l0: f64, cp: f64, srf_est: f64) -> f64 {
+    let f = &data.frequency_hz;
+    let n = f.len();
+    let w = |k: usize| omega(f, k);
     let mut ls = match last_series {
         Some(fs) => 1.0 / ((2.0 * PI * fs).powi(2) * cp),
         None => {
@@ -408,33 +494,7 @@ pub fn guess(data: &FitData) -> Guess {
     if !(ls.is_finite() && ls > 1e-5 * l0 && ls < 0.1 * l0) {
         ls = 1e-3 * l0;
     }
-    if let Some(fs) = last_series {
-        // The series resonance may also be the notch of a section whose peak lies above the band.
-        pairs.push((
-            fs,
-            2.0 * f[top].max(fs),
-            data.z[nearest(data, fs)].re.max(floor_r),
-            rp,
-        ));
-    }
-
-    Guess {
-        base: LumpedModel {
-            l0_h: l0,
-            rdc_ohm: rdc,
-            k_ac_ohm_per_sqrt_hz: k_ac,
-            rp_ohm: Some(rp),
-            cp_f: cp,
-            ls_h: ls,
-            sections: Vec::new(),
-            core: None,
-        },
-        pairs,
-        srf_hz: srf,
-        l_reading_h: l0,
-        l_reading_at_hz: l_at,
-        l_readings_h: [l0, l0],
-    }
+    ls
 }
 
 /// The base elements read off a rational fit Z = N(s)/D(s), deg N = 3, deg D = 2, of the whole sweep by

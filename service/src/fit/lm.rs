@@ -148,6 +148,13 @@ impl Work {
             scale: DVector::zeros(n),
         }
     }
+
+    /// Raises Marquardt's scale D to diag(JᵀJ) where that is larger, keeping it above zero.
+    fn raise_scale(&mut self, jtj: &DMatrix<f64>) {
+        for i in 0..self.scale.len() {
+            self.scale[i] = self.scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
+        }
+    }
 }
 
 fn all_finite(jtj: &DMatrix<f64>, g: &DVector<f64>) -> bool {
@@ -318,56 +325,127 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
         let jtj = state.take_hessian().expect("init sets JᵀJ");
         let cost = state.get_cost();
         let n = x.len();
-        let w = self.work.get_or_insert_with(|| Work::new(n));
-
-        for i in 0..n {
-            w.scale[i] = w.scale[i].max(jtj[(i, i)]).max(f64::MIN_POSITIVE);
-        }
-        let r_norm = cost.sqrt();
-        let g_cos = (0..n)
-            .map(|i| g[i].abs() / (jtj[(i, i)].sqrt() * r_norm).max(f64::MIN_POSITIVE))
-            .fold(0.0, f64::max);
+        self.work
+            .get_or_insert_with(|| Work::new(n))
+            .raise_scale(&jtj);
+        let g_cos = gradient_cosine(&jtj, &g, cost);
         if cost == 0.0 || g_cos < self.gtol {
             self.stop = Some(TerminationReason::SolverConverged);
             return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
         }
         if self.ptol > 0.0 {
-            // The undamped step δ = −(JᵀJ)⁻¹g predicts the decrease −(2δᵀg + δᵀJᵀJδ) = −δᵀg. A
-            // singular JᵀJ (no Cholesky factor) or a non-finite step skips the test.
-            w.a.copy_from(&jtj);
-            for i in 0..n {
-                w.delta[i] = -g[i];
-            }
-            if cholesky_solve(&mut w.a, &mut w.delta) {
-                let predicted = -w.delta.dot(&g);
-                if predicted.is_finite() && predicted <= self.ptol * cost {
+            match self.gauss_newton_test(problem, &x, &g, &jtj, cost)? {
+                GaussNewton::Undecided => {}
+                GaussNewton::AtMinimum => {
                     self.stop = Some(TerminationReason::SolverConverged);
                     return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
                 }
-                if predicted > 0.0
-                    && predicted <= self.last_step * cost
-                    && w.delta.amax() <= self.max_step
-                {
-                    w.x_new.copy_from(&x);
-                    w.x_new += &w.delta;
-                    let x_new = &w.x_new;
-                    let cost_new = problem.problem("cost", |p| p.cost(x_new.as_slice()))?;
-                    let actual = cost - cost_new;
-                    if cost_new.is_finite()
-                        && actual > 0.0
-                        && (actual - predicted).abs() <= self.ptol * cost
-                    {
-                        self.stop = Some(TerminationReason::SolverConverged);
-                        let mut x = x;
-                        std::mem::swap(&mut x, &mut w.x_new);
-                        return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
-                    }
+                GaussNewton::LastStep(cost_new) => {
+                    self.stop = Some(TerminationReason::SolverConverged);
+                    let w = self.work.as_mut().expect("set above");
+                    let mut x = x;
+                    std::mem::swap(&mut x, &mut w.x_new);
+                    return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
                 }
             }
         }
+        if let Some(cost_new) = self.damped_step(problem, &x, &g, &jtj, cost)? {
+            // Swap the accepted point in; the old buffers become next iteration's scratch.
+            let w = self.work.as_mut().expect("set above");
+            let mut x = x;
+            let mut g = g;
+            let mut jtj = jtj;
+            std::mem::swap(&mut x, &mut w.x_new);
+            std::mem::swap(&mut g, &mut w.g_new);
+            std::mem::swap(&mut jtj, &mut w.jtj_new);
+            return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
+        }
+        // Damping exhausted: at a minimum to rounding when the gradient is orthogonal to the residual.
+        self.stop = Some(if g_cos < 1e-6 {
+            TerminationReason::SolverConverged
+        } else {
+            TerminationReason::SolverExit(NO_PROGRESS.into())
+        });
+        Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None))
+    }
 
+    fn terminate(&mut self, _state: &LmState) -> TerminationStatus {
+        match &self.stop {
+            Some(reason) => TerminationStatus::Terminated(reason.clone()),
+            None => TerminationStatus::NotTerminated,
+        }
+    }
+}
+
+/// What the undamped Gauss–Newton step says about the current point.
+enum GaussNewton {
+    /// It predicts no worthwhile decrease: the point is the minimum.
+    AtMinimum,
+    /// It was taken on a cost-only evaluation that confirmed the predicted decrease: the run
+    /// ends at the new point (in `Work::x_new`) with this cost.
+    LastStep(f64),
+    /// Neither: damped steps follow.
+    Undecided,
+}
+
+impl LevenbergMarquardt {
+    /// The `ptol` and `last_step` tests of the module notes on the undamped step at `x`.
+    fn gauss_newton_test<O: NormalEquations>(
+        &mut self,
+        problem: &mut Problem<O>,
+        x: &DVector<f64>,
+        g: &DVector<f64>,
+        jtj: &DMatrix<f64>,
+        cost: f64,
+    ) -> Result<GaussNewton, Error> {
+        let n = x.len();
+        let w = self.work.as_mut().expect("next_iter sets the buffers");
+        // The undamped step δ = −(JᵀJ)⁻¹g predicts the decrease −(2δᵀg + δᵀJᵀJδ) = −δᵀg. A
+        // singular JᵀJ (no Cholesky factor) or a non-finite step skips the test.
+        w.a.copy_from(jtj);
+        for i in 0..n {
+            w.delta[i] = -g[i];
+        }
+        if !cholesky_solve(&mut w.a, &mut w.delta) {
+            return Ok(GaussNewton::Undecided);
+        }
+        let predicted = -w.delta.dot(g);
+        if predicted.is_finite() && predicted <= self.ptol * cost {
+            return Ok(GaussNewton::AtMinimum);
+        }
+        if predicted > 0.0 && predicted <= self.last_step * cost && w.delta.amax() <= self.max_step
+        {
+            w.x_new.copy_from(x);
+            w.x_new += &w.delta;
+            let x_new = &w.x_new;
+            let cost_new = problem.problem("cost", |p| p.cost(x_new.as_slice()))?;
+            let actual = cost - cost_new;
+            if cost_new.is_finite()
+                && actual > 0.0
+                && (actual - predicted).abs() <= self.ptol * cost
+            {
+                return Ok(GaussNewton::LastStep(cost_new));
+            }
+        }
+        Ok(GaussNewton::Undecided)
+    }
+
+    /// Trial steps with growing damping until one lowers the cost. Returns that cost, with the new
+    /// point and its normal equations in `Work::x_new`, `Work::jtj_new` and `Work::g_new`;
+    /// `None` when the damping runs out first. Marks the run converged when the accepted step, near
+    /// Gauss–Newton, gained or moved too little.
+    fn damped_step<O: NormalEquations>(
+        &mut self,
+        problem: &mut Problem<O>,
+        x: &DVector<f64>,
+        g: &DVector<f64>,
+        jtj: &DMatrix<f64>,
+        cost: f64,
+    ) -> Result<Option<f64>, Error> {
+        let n = x.len();
+        let w = self.work.as_mut().expect("next_iter sets the buffers");
         for _ in 0..self.max_trials {
-            w.a.copy_from(&jtj);
+            w.a.copy_from(jtj);
             for i in 0..n {
                 w.a[(i, i)] += self.lambda * w.scale[i];
                 w.delta[i] = -g[i];
@@ -383,16 +461,9 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
                 w.delta *= self.max_step / biggest;
             }
             // Predicted decrease of χ² from the linear model: −(2δᵀg + δᵀJᵀJδ).
-            let mut quad = 0.0;
-            for i in 0..n {
-                let mut row = 0.0;
-                for k in 0..n {
-                    row += jtj[(i, k)] * w.delta[k];
-                }
-                quad += w.delta[i] * row;
-            }
-            let predicted = -(2.0 * w.delta.dot(&g) + quad);
-            w.x_new.copy_from(&x);
+            let quad = quadratic_form(jtj, &w.delta);
+            let predicted = -(2.0 * w.delta.dot(g) + quad);
+            w.x_new.copy_from(x);
             w.x_new += &w.delta;
             let (x_new, jtj_new, g_new) = (&w.x_new, &mut w.jtj_new, &mut w.g_new);
             let cost_new = problem.problem("normal_equations", |p| {
@@ -418,14 +489,7 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
                 {
                     self.stop = Some(TerminationReason::SolverConverged);
                 }
-                // Swap the accepted point in; the old buffers become next iteration's scratch.
-                let mut x = x;
-                let mut g = g;
-                let mut jtj = jtj;
-                std::mem::swap(&mut x, &mut w.x_new);
-                std::mem::swap(&mut g, &mut w.g_new);
-                std::mem::swap(&mut jtj, &mut w.jtj_new);
-                return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost_new), None));
+                return Ok(Some(cost_new));
             }
             self.lambda *= self.nu;
             self.nu *= 2.0;
@@ -433,21 +497,30 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
                 break;
             }
         }
-        // Damping exhausted: at a minimum to rounding when the gradient is orthogonal to the residual.
-        self.stop = Some(if g_cos < 1e-6 {
-            TerminationReason::SolverConverged
-        } else {
-            TerminationReason::SolverExit(NO_PROGRESS.into())
-        });
-        Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None))
+        Ok(None)
     }
+}
 
-    fn terminate(&mut self, _state: &LmState) -> TerminationStatus {
-        match &self.stop {
-            Some(reason) => TerminationStatus::Terminated(reason.clone()),
-            None => TerminationStatus::NotTerminated,
+/// The largest cosine between the residual and a column of J, |gᵢ| / (‖Jᵢ‖·‖r‖).
+fn gradient_cosine(jtj: &DMatrix<f64>, g: &DVector<f64>, cost: f64) -> f64 {
+    let r_norm = cost.sqrt();
+    (0..g.len())
+        .map(|i| g[i].abs() / (jtj[(i, i)].sqrt() * r_norm).max(f64::MIN_POSITIVE))
+        .fold(0.0, f64::max)
+}
+
+/// vᵀAv, row by row.
+fn quadratic_form(a: &DMatrix<f64>, v: &DVector<f64>) -> f64 {
+    let n = v.len();
+    let mut quad = 0.0;
+    for i in 0..n {
+        let mut row = 0.0;
+        for k in 0..n {
+            row += a[(i, k)] * v[k];
         }
+        quad += v[i] * row;
     }
+    quad
 }
 
 #[cfg(test)]

@@ -39,10 +39,25 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
     let f = &data.frequency_hz;
     let (f_lo, f_hi) = (f[0], f[f.len() - 1]);
     let z_max = data.z.iter().map(|z| z.norm()).fold(0.0f64, f64::max);
+    let mut out = inductance_walls(guess, f_lo, f_hi);
+    out.extend(resistance_walls(f_lo, f_hi, z_max));
+    out.extend(lead_walls());
+    out.extend(core_walls(f_lo, f_hi));
+    for i in 0..max_sections {
+        out.extend(section_walls(i, f_hi, z_max));
+    }
+    out
+}
+
+fn omega(frequency_hz: f64) -> f64 {
+    2.0 * PI * frequency_hz
+}
+
+/// L0 around the curve's reading, the L0–Cp resonance within the band's reach, Cp above 1 aF.
+fn inductance_walls(guess: &Guess, f_lo: f64, f_hi: f64) -> Vec<Wall> {
     let [l_low, l_high] = guess.l_readings_h;
-    let w = |x: f64| 2.0 * PI * x;
     use Param::*;
-    let mut out = vec![
+    vec![
         wall(
             &[(L0, 1.0)],
             (l_high * L0_RANGE).ln(),
@@ -55,15 +70,22 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
         ),
         wall(
             &[(L0, 1.0), (Cp, 1.0)],
-            -2.0 * w(guess.l_reading_at_hz.max(f_lo)).ln(),
+            -2.0 * omega(guess.l_reading_at_hz.max(f_lo)).ln(),
             "the L0–Cp resonance above the frequency where the data are inductive".into(),
         ),
         wall(
             &[(L0, -1.0), (Cp, -1.0)],
-            2.0 * w(1000.0 * f_hi).ln(),
+            2.0 * omega(1000.0 * f_hi).ln(),
             "the L0–Cp resonance at most 1000× the top of the sweep".into(),
         ),
         wall(&[(Cp, -1.0)], -(1e-18f64).ln(), "Cp above 1 aF".into()),
+    ]
+}
+
+/// Rdc, Rp and the √f term within what the sweep's |Z| and band allow.
+fn resistance_walls(f_lo: f64, f_hi: f64, z_max: f64) -> Vec<Wall> {
+    use Param::*;
+    vec![
         wall(&[(Rdc, -1.0)], -(1e-9f64).ln(), "Rdc above 1 nΩ".into()),
         wall(
             &[(Rdc, 1.0)],
@@ -72,7 +94,7 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
         ),
         wall(
             &[(L0, 1.0), (Rp, -1.0)],
-            -(0.1 * w(f_lo)).ln(),
+            -(0.1 * omega(f_lo)).ln(),
             "Rp above a tenth of ωL0 at the bottom of the band".into(),
         ),
         wall(
@@ -90,12 +112,27 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
             -(1e-12 / f_hi.sqrt()).ln(),
             "the √f resistance above 1 pΩ at the top of the band".into(),
         ),
+    ]
+}
+
+/// The lead inductance ls below half of L0 and above 0.1 fH.
+fn lead_walls() -> Vec<Wall> {
+    use Param::*;
+    vec![
         wall(
             &[(Ls, 1.0), (L0, -1.0)],
             (0.5f64).ln(),
             "ls below half of L0".into(),
         ),
         wall(&[(Ls, -1.0)], -(1e-16f64).ln(), "ls above 0.1 fH".into()),
+    ]
+}
+
+/// A dispersive core's frequencies within three decades of the sweep, its shape parameters and
+/// shares inside their ranges.
+fn core_walls(f_lo: f64, f_hi: f64) -> Vec<Wall> {
+    use Param::*;
+    vec![
         wall(
             &[(CoreCorner, 1.0)],
             (1e3 * f_hi).ln(),
@@ -166,40 +203,43 @@ pub fn walls(data: &FitData, guess: &Guess, max_sections: usize) -> Vec<Wall> {
             -(1e-9f64).ln(),
             "the non-dispersing share of L0 above 1e-9".into(),
         ),
-    ];
-    for i in 0..max_sections {
-        out.extend([
-            wall(
-                &[
-                    (SectionL(i), 1.0),
-                    (SectionC(i), 1.0),
-                    (L0, -1.0),
-                    (Cp, -1.0),
-                ],
-                -2.0 * (1.2f64).ln(),
-                format!("section {i} resonating at least 1.2× above the L0–Cp resonance"),
-            ),
-            wall(
-                &[(SectionL(i), -1.0), (SectionC(i), -1.0)],
-                2.0 * w(100.0 * f_hi).ln(),
-                format!("section {i} resonating below 100× the top of the sweep"),
-            ),
-            wall(
-                &[(SectionL(i), 1.0), (L0, -1.0)],
-                0.0,
-                format!("section {i} inductance below L0"),
-            ),
-            wall(
-                &[(SectionR(i), -1.0)],
-                -(1e-9f64).ln(),
-                format!("section {i} resistance above 1 nΩ"),
-            ),
-            wall(
-                &[(SectionR(i), 1.0)],
-                (1e9 * z_max).ln(),
-                format!("section {i} resistance below 10⁹× the largest |Z|"),
-            ),
-        ]);
-    }
-    out
+    ]
+}
+
+/// Section `i` (0-based): its resonance above the L0–Cp one and below 100× the top of the sweep,
+/// its inductance below L0, its resistance within bounds.
+fn section_walls(i: usize, f_hi: f64, z_max: f64) -> [Wall; 5] {
+    use Param::*;
+    [
+        wall(
+            &[
+                (SectionL(i), 1.0),
+                (SectionC(i), 1.0),
+                (L0, -1.0),
+                (Cp, -1.0),
+            ],
+            -2.0 * (1.2f64).ln(),
+            format!("section {i} resonating at least 1.2× above the L0–Cp resonance"),
+        ),
+        wall(
+            &[(SectionL(i), -1.0), (SectionC(i), -1.0)],
+            2.0 * omega(100.0 * f_hi).ln(),
+            format!("section {i} resonating below 100× the top of the sweep"),
+        ),
+        wall(
+            &[(SectionL(i), 1.0), (L0, -1.0)],
+            0.0,
+            format!("section {i} inductance below L0"),
+        ),
+        wall(
+            &[(SectionR(i), -1.0)],
+            -(1e-9f64).ln(),
+            format!("section {i} resistance above 1 nΩ"),
+        ),
+        wall(
+            &[(SectionR(i), 1.0)],
+            (1e9 * z_max).ln(),
+            format!("section {i} resistance below 10⁹× the largest |Z|"),
+        ),
+    ]
 }

@@ -120,19 +120,48 @@ fn linear_ticks(lo: f64, hi: f64) -> Vec<f64> {
     (first..=last).map(|k| k as f64 * step).collect()
 }
 
-/// The chart in a `width` × `height` box at the origin.
-pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
-    let (left, right, top, bottom) = (62.0, 12.0, 22.0, 34.0);
-    let (x0, x1, y0, y1) = (left, width - right, top, height - bottom);
-    let mut out = vec![Prim::Text {
-        at: (x0, 14.0),
-        size: 10.0,
-        anchor: Anchor::Start,
-        text: chart.title.clone(),
-        colour: INK,
-    }];
+/// The plot area inside the margins and the value ranges its edges stand for: x on a log scale, y
+/// on a log or a linear one.
+struct Axes {
+    x0: f64,
+    x1: f64,
+    y0: f64,
+    y1: f64,
+    xlo: f64,
+    xhi: f64,
+    ylo: f64,
+    yhi: f64,
+    y_log: bool,
+}
+
+impl Axes {
+    fn px(&self, x: f64) -> f64 {
+        self.x0 + (x / self.xlo).log10() / (self.xhi / self.xlo).log10() * (self.x1 - self.x0)
+    }
+
+    fn py(&self, y: f64) -> f64 {
+        if self.y_log {
+            self.y1 - (y / self.ylo).log10() / (self.yhi / self.ylo).log10() * (self.y1 - self.y0)
+        } else {
+            self.y1 - (y - self.ylo) / (self.yhi - self.ylo) * (self.y1 - self.y0)
+        }
+    }
+}
+
+/// The x range of the data, widened to an octave each side when it is a single frequency.
+fn x_span(chart: &Chart) -> (f64, f64) {
     let xr =
         range(chart.series.iter().flat_map(|s| s.x.iter().copied()), true).unwrap_or([1.0, 10.0]);
+    if xr[0] == xr[1] {
+        (xr[0] / 2.0, xr[1] * 2.0)
+    } else {
+        (xr[0], xr[1])
+    }
+}
+
+/// The y range: the chart's fixed one as given, else the data's with 5 % room (in decades on a log
+/// axis); a single value is widened around itself.
+fn y_span(chart: &Chart) -> (f64, f64) {
     let yr = chart
         .y_range
         .or_else(|| {
@@ -142,12 +171,7 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
             )
         })
         .unwrap_or([1.0, 10.0]);
-    let (xlo, xhi) = if xr[0] == xr[1] {
-        (xr[0] / 2.0, xr[1] * 2.0)
-    } else {
-        (xr[0], xr[1])
-    };
-    let (ylo, yhi) = if chart.y_log {
+    if chart.y_log {
         let (a, b) = if yr[0] == yr[1] {
             (yr[0] / 2.0, yr[1] * 2.0)
         } else {
@@ -165,17 +189,63 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
     } else {
         let pad = (yr[1] - yr[0]) * 0.05;
         (yr[0] - pad, yr[1] + pad)
+    }
+}
+
+/// The chart in a `width` × `height` box at the origin.
+pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
+    let (left, right, top, bottom) = (62.0, 12.0, 22.0, 34.0);
+    let (x0, x1, y0, y1) = (left, width - right, top, height - bottom);
+    let mut out = vec![Prim::Text {
+        at: (x0, 14.0),
+        size: 10.0,
+        anchor: Anchor::Start,
+        text: chart.title.clone(),
+        colour: INK,
+    }];
+    let (xlo, xhi) = x_span(chart);
+    let (ylo, yhi) = y_span(chart);
+    let axes = Axes {
+        x0,
+        x1,
+        y0,
+        y1,
+        xlo,
+        xhi,
+        ylo,
+        yhi,
+        y_log: chart.y_log,
     };
-    let px = |x: f64| x0 + (x / xlo).log10() / (xhi / xlo).log10() * (x1 - x0);
-    let py = |y: f64| {
-        if chart.y_log {
-            y1 - (y / ylo).log10() / (yhi / ylo).log10() * (y1 - y0)
-        } else {
-            y1 - (y - ylo) / (yhi - ylo) * (y1 - y0)
+    grid(&mut out, chart, &axes);
+    frame(&mut out, &axes, height);
+    out.push(Prim::Clip([x0, y0, x1 - x0, y1 - y0]));
+    for s in &chart.series {
+        for points in drawable_runs(s, &axes) {
+            out.push(Prim::Poly {
+                points,
+                colour: s.colour,
+                width: s.width,
+                dashed: s.dashed,
+            });
         }
-    };
-    for t in log_ticks(xlo, xhi) {
-        let x = px(t);
+    }
+    out.push(Prim::Unclip);
+    legend(&mut out, chart, &axes);
+    out.push(Prim::Text {
+        at: (12.0, (y0 + y1) / 2.0),
+        size: 8.0,
+        anchor: Anchor::Middle,
+        text: chart.y_label.clone(),
+        colour: INK,
+    });
+    out
+}
+
+/// Grid lines with their tick labels: the frequency ticks, then the y ticks.
+fn grid(out: &mut Vec<Prim>, chart: &Chart, axes: &Axes) {
+    let Axes { x0, x1, y0, y1, .. } = *axes;
+    for t in log_ticks(axes.xlo, axes.xhi) {
+        let x = axes.px(t);
         out.push(Prim::Line {
             from: (x, y0),
             to: (x, y1),
@@ -191,12 +261,12 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
         });
     }
     let yticks = if chart.y_log {
-        log_ticks(ylo, yhi)
+        log_ticks(axes.ylo, axes.yhi)
     } else {
-        linear_ticks(ylo, yhi)
+        linear_ticks(axes.ylo, axes.yhi)
     };
     for t in yticks {
-        let y = py(t);
+        let y = axes.py(t);
         out.push(Prim::Line {
             from: (x0, y),
             to: (x1, y),
@@ -215,6 +285,11 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
             colour: MUTED,
         });
     }
+}
+
+/// The border of the plot area and the frequency axis' caption below it.
+fn frame(out: &mut Vec<Prim>, axes: &Axes, height: f64) {
+    let Axes { x0, x1, y0, y1, .. } = *axes;
     for (a, b) in [
         ((x0, y0), (x1, y0)),
         ((x1, y0), (x1, y1)),
@@ -235,38 +310,40 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
         text: "Frequency".into(),
         colour: INK,
     });
-    out.push(Prim::Clip([x0, y0, x1 - x0, y1 - y0]));
-    let (cx0, cx1, cy0, cy1) = (x0 - 50.0, x1 + 50.0, y0 - 50.0, y1 + 50.0);
-    for s in &chart.series {
-        // Runs of drawable points; a point far outside the box is clamped just outside it, so a
-        // line leaving the box keeps its direction and the clip cuts it cleanly.
-        let mut run: Vec<(f64, f64)> = Vec::new();
-        let mut runs = Vec::new();
-        for (&x, &y) in s.x.iter().zip(&s.y) {
-            let ok = x.is_finite() && x > 0.0 && y.is_finite() && (!chart.y_log || y > 0.0);
-            if !ok {
-                if run.len() > 1 {
-                    runs.push(std::mem::take(&mut run));
-                }
-                run.clear();
-                continue;
+}
+
+/// A series as runs of drawable points (of two points or more), broken where a value cannot be
+/// drawn; a point far outside the box is clamped just outside it, so a line leaving the box keeps
+/// its direction and the clip cuts it cleanly.
+fn drawable_runs(s: &Series, axes: &Axes) -> Vec<Vec<(f64, f64)>> {
+    let (cx0, cx1, cy0, cy1) = (
+        axes.x0 - 50.0,
+        axes.x1 + 50.0,
+        axes.y0 - 50.0,
+        axes.y1 + 50.0,
+    );
+    let mut run: Vec<(f64, f64)> = Vec::new();
+    let mut runs = Vec::new();
+    for (&x, &y) in s.x.iter().zip(&s.y) {
+        let ok = x.is_finite() && x > 0.0 && y.is_finite() && (!axes.y_log || y > 0.0);
+        if !ok {
+            if run.len() > 1 {
+                runs.push(std::mem::take(&mut run));
             }
-            run.push((px(x).clamp(cx0, cx1), py(y).clamp(cy0, cy1)));
+            run.clear();
+            continue;
         }
-        if run.len() > 1 {
-            runs.push(run);
-        }
-        for points in runs {
-            out.push(Prim::Poly {
-                points,
-                colour: s.colour,
-                width: s.width,
-                dashed: s.dashed,
-            });
-        }
+        run.push((axes.px(x).clamp(cx0, cx1), axes.py(y).clamp(cy0, cy1)));
     }
-    out.push(Prim::Unclip);
-    // The legend, top right inside the frame.
+    if run.len() > 1 {
+        runs.push(run);
+    }
+    runs
+}
+
+/// The legend, top right inside the frame.
+fn legend(out: &mut Vec<Prim>, chart: &Chart, axes: &Axes) {
+    let (x1, y0) = (axes.x1, axes.y0);
     let mut lx = x1 - 6.0;
     for s in chart.series.iter().rev() {
         let w = crate::report::pdf::text_width(&s.label, 7.5) + 22.0;
@@ -285,14 +362,6 @@ pub fn layout(chart: &Chart, width: f64, height: f64) -> Vec<Prim> {
             colour: INK,
         });
     }
-    out.push(Prim::Text {
-        at: (12.0, (y0 + y1) / 2.0),
-        size: 8.0,
-        anchor: Anchor::Middle,
-        text: chart.y_label.clone(),
-        colour: INK,
-    });
-    out
 }
 
 fn trim_number(v: f64) -> String {

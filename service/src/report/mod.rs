@@ -11,7 +11,7 @@ pub mod pdf;
 
 use crate::fit::FitReport;
 use crate::model::FittedModel;
-use crate::registry::drift::Drift;
+use crate::registry::drift::{Drift, ParameterDrift};
 use crate::registry::limits::Limits;
 use crate::registry::verdict::Check;
 use crate::units::eng;
@@ -365,18 +365,58 @@ fn tolerance_for(name: &str, limits: &Limits) -> Option<f64> {
 /// The report as blocks, in reading order.
 pub fn build(input: &ReportInput) -> Vec<Block> {
     let r = &input.report;
-    let mut out = Vec::new();
-    out.push(Block::Title {
-        title: format!("Inspection report: {} lot {}", input.part_number, input.lot),
-        subtitle: input.part_description.clone(),
-    });
+    let mut out = vec![
+        Block::Title {
+            title: format!("Inspection report: {} lot {}", input.part_number, input.lot),
+            subtitle: input.part_description.clone(),
+        },
+        status_boxes(input),
+        Block::Heading("Part, lot and sweep".into()),
+        Block::KeyValues(provenance(input)),
+        Block::Heading("Verdict per limit".into()),
+    ];
+    out.extend(verdict_section(input));
+    out.push(Block::Heading("Model parameters".into()));
+    out.extend(parameter_section(r));
+    out.push(Block::KeyValues(figures(r)));
+    out.push(Block::Heading("Drift against the approved baseline".into()));
+    out.extend(drift_section(input));
+    out.push(Block::Heading("Model quality".into()));
+    out.extend(quality_section(r));
+    out.push(Block::Heading("Approval".into()));
+    out.push(Block::KeyValues(approval_record(input)));
+    out.push(Block::Signatures(vec![
+        "Inspected by".into(),
+        "Released by".into(),
+    ]));
+
+    out.push(Block::PageBreak);
+    out.push(Block::Heading(format!(
+        "Plots: {} lot {}",
+        input.part_number, input.lot
+    )));
+    for c in curves(input) {
+        out.push(Block::Chart(c));
+    }
+    out.push(Block::Muted(format!(
+        "Report made {} by henrybook from the stored sweep and fit. Caution: a choke removed from \
+         its circuit stores no energy; the hazards at test are the equipment's charged capacitors, \
+         the voltage kick when current through an inductor is interrupted, and bias supplies. \
+         Follow local electrical codes and licensed practice.",
+        input.generated_at
+    )));
+    out
+}
+
+/// The three status boxes at the top: verdict, model quality, approval.
+fn status_boxes(input: &ReportInput) -> Block {
     let verdict = match input.verdict.as_deref() {
         Some("pass") => ("Pass".to_string(), Tone::Good),
         Some("fail") => ("Fail".to_string(), Tone::Bad),
         Some("withheld") => ("Withheld (model not trustworthy)".to_string(), Tone::Warn),
         _ => ("No limits set".to_string(), Tone::Plain),
     };
-    let quality = if crate::registry::verdict::trustworthy(r) {
+    let quality = if crate::registry::verdict::trustworthy(&input.report) {
         ("OK: the model follows the data".to_string(), Tone::Good)
     } else {
         ("Poor: the model misses the data".to_string(), Tone::Bad)
@@ -398,7 +438,7 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
             None => ("Not approved".to_string(), Tone::Plain),
         },
     };
-    out.push(Block::Status(vec![
+    Block::Status(vec![
         (
             "Verdict against the part's limits".into(),
             verdict.0,
@@ -406,9 +446,12 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
         ),
         ("Model quality".into(), quality.0, quality.1),
         ("Approval".into(), approval.0, approval.1),
-    ]));
+    ])
+}
 
-    out.push(Block::Heading("Part, lot and sweep".into()));
+/// Part, lot and sweep: which file, how it was measured and by whom, and the engine that fitted it.
+fn provenance(input: &ReportInput) -> Vec<(String, String)> {
+    let r = &input.report;
     let mut kv = vec![
         ("Part".to_string(), input.part_number.clone()),
         ("Lot".into(), input.lot.clone()),
@@ -454,101 +497,115 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
             .clone()
             .unwrap_or_else(|| r.engine_version.clone()),
     ));
-    out.push(Block::KeyValues(kv));
+    kv
+}
 
-    out.push(Block::Heading("Verdict per limit".into()));
+/// One row per check against the part's limits, or a note that the part has none.
+fn verdict_section(input: &ReportInput) -> Vec<Block> {
     if input.checks.is_empty() {
-        out.push(Block::Muted("The part has no limits set.".into()));
-    } else {
-        if let Some(note) = &input.verdict_note {
-            out.push(Block::Para(note.clone()));
-        }
-        let withheld = input.verdict.as_deref() == Some("withheld");
-        let rows = input
-            .checks
-            .iter()
-            .map(|c| {
-                let result = if withheld {
-                    Cell::text("withheld").tone(Tone::Warn)
-                } else if c.pass {
-                    Cell::text("pass").tone(Tone::Good)
-                } else {
-                    Cell::text("fail").tone(Tone::Bad)
-                };
-                vec![
-                    Cell::text(limit_caption(&c.limit, &input.limits)),
-                    Cell::num(c.measured.map_or("—".into(), |m| value(m, &c.unit))),
-                    Cell::num(c.margin.map_or("—".into(), |m| value(m, &c.unit))),
-                    result,
-                    Cell::text(c.note.clone().unwrap_or_default()),
-                ]
-            })
-            .collect();
-        out.push(Block::Table {
-            head: ["Limit", "Measured", "Margin", "Result", "Note"]
-                .map(String::from)
-                .to_vec(),
-            rows,
-        });
+        return vec![Block::Muted("The part has no limits set.".into())];
     }
+    let mut out = Vec::new();
+    if let Some(note) = &input.verdict_note {
+        out.push(Block::Para(note.clone()));
+    }
+    let withheld = input.verdict.as_deref() == Some("withheld");
+    let rows = input
+        .checks
+        .iter()
+        .map(|c| check_row(c, &input.limits, withheld))
+        .collect();
+    out.push(Block::Table {
+        head: ["Limit", "Measured", "Margin", "Result", "Note"]
+            .map(String::from)
+            .to_vec(),
+        rows,
+    });
+    out
+}
 
-    out.push(Block::Heading("Model parameters".into()));
+fn check_row(c: &Check, limits: &Limits, withheld: bool) -> Vec<Cell> {
+    let result = if withheld {
+        Cell::text("withheld").tone(Tone::Warn)
+    } else if c.pass {
+        Cell::text("pass").tone(Tone::Good)
+    } else {
+        Cell::text("fail").tone(Tone::Bad)
+    };
+    vec![
+        Cell::text(limit_caption(&c.limit, limits)),
+        Cell::num(c.measured.map_or("—".into(), |m| value(m, &c.unit))),
+        Cell::num(c.margin.map_or("—".into(), |m| value(m, &c.unit))),
+        result,
+        Cell::text(c.note.clone().unwrap_or_default()),
+    ]
+}
+
+/// The lumped model's parameters with their uncertainty (and those the selection left out), or a
+/// note for a rational model.
+fn parameter_section(r: &FitReport) -> Vec<Block> {
     let params = parameters(r);
     if params.is_empty() {
-        out.push(Block::Para(format!(
+        return vec![Block::Para(format!(
             "A rational (pole–residue) model: its parameters are poles and residues, given in \
              model.json. Figures from it: SRF {}, peak Q {}.",
             r.derived
                 .srf_hz
                 .map_or("above the sweep".into(), |v| eng(v, "Hz")),
             r.derived.q_peak.map_or("—".into(), |v| value(v, ""))
-        )));
-    } else {
-        let rows = params
-            .iter()
-            .filter(|(_, v, _)| *v != 0.0)
-            .map(|(name, v, u)| {
-                let unit = section_unit(name);
-                let shown = |x: f64| {
-                    if unit.is_empty() {
-                        value(x, "")
-                    } else {
-                        eng(x, unit)
-                    }
-                };
-                vec![
-                    Cell::text(parameter_label(name)),
-                    Cell::num(shown(*v)),
-                    Cell::num(u.map_or("not determined".into(), shown)),
-                    Cell::num(u.filter(|_| *v != 0.0).map_or("—".into(), |u| {
-                        format!("{} %", value(u / v.abs() * 100.0, ""))
-                    })),
-                ]
-            })
-            .collect();
-        out.push(Block::Table {
-            head: [
-                "Parameter",
-                "Value",
-                "σ (one standard uncertainty)",
-                "σ relative",
-            ]
-            .map(String::from)
-            .to_vec(),
-            rows,
-        });
-        let left_out: Vec<String> = params
-            .iter()
-            .filter(|(_, v, _)| *v == 0.0)
-            .map(|(n, _, _)| parameter_label(n))
-            .collect();
-        if !left_out.is_empty() {
-            out.push(Block::Muted(format!(
-                "Not in the selected model (the data did not call for them): {}.",
-                left_out.join(", ")
-            )));
-        }
+        ))];
     }
+    let rows = params
+        .iter()
+        .filter(|(_, v, _)| *v != 0.0)
+        .map(|(name, v, u)| parameter_row(name, *v, *u))
+        .collect();
+    let mut out = vec![Block::Table {
+        head: [
+            "Parameter",
+            "Value",
+            "σ (one standard uncertainty)",
+            "σ relative",
+        ]
+        .map(String::from)
+        .to_vec(),
+        rows,
+    }];
+    let left_out: Vec<String> = params
+        .iter()
+        .filter(|(_, v, _)| *v == 0.0)
+        .map(|(n, _, _)| parameter_label(n))
+        .collect();
+    if !left_out.is_empty() {
+        out.push(Block::Muted(format!(
+            "Not in the selected model (the data did not call for them): {}.",
+            left_out.join(", ")
+        )));
+    }
+    out
+}
+
+fn parameter_row(name: &str, v: f64, u: Option<f64>) -> Vec<Cell> {
+    let unit = section_unit(name);
+    let shown = |x: f64| {
+        if unit.is_empty() {
+            value(x, "")
+        } else {
+            eng(x, unit)
+        }
+    };
+    vec![
+        Cell::text(parameter_label(name)),
+        Cell::num(shown(v)),
+        Cell::num(u.map_or("not determined".into(), shown)),
+        Cell::num(u.filter(|_| v != 0.0).map_or("—".into(), |u| {
+            format!("{} %", value(u / v.abs() * 100.0, ""))
+        })),
+    ]
+}
+
+/// The figures read off the model (SRF, peak Q) and how closely it follows the data.
+fn figures(r: &FitReport) -> Vec<(String, String)> {
     let mut figures = vec![(
         "Self-resonant frequency".to_string(),
         match (r.derived.srf_hz, r.derived.srf_above_hz) {
@@ -575,75 +632,81 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
             eng(r.quality.max_relative_error_at_hz, "Hz")
         ),
     ));
-    out.push(Block::KeyValues(figures));
+    figures
+}
 
-    out.push(Block::Heading("Drift against the approved baseline".into()));
-    match &input.drift {
-        None => out.push(Block::Muted(
+/// The change of each parameter since the approved baseline, or a note that there is none to
+/// compare with.
+fn drift_section(input: &ReportInput) -> Vec<Block> {
+    let Some(d) = &input.drift else {
+        return vec![Block::Muted(
             "No approved baseline to compare with, or this fit is the baseline.".into(),
+        )];
+    };
+    let rows = d
+        .parameters
+        .iter()
+        .map(|p| drift_row(p, &input.limits))
+        .collect();
+    vec![
+        Block::Para(format!(
+            "Baseline: fit #{}. Change in percent of the part's tolerance first (where the part \
+             sets one), then in percent of the baseline, then in combined standard \
+             uncertainties σ.",
+            d.baseline_fit_id
         )),
-        Some(d) => {
-            out.push(Block::Para(format!(
-                "Baseline: fit #{}. Change in percent of the part's tolerance first (where the part \
-                 sets one), then in percent of the baseline, then in combined standard \
-                 uncertainties σ.",
-                d.baseline_fit_id
-            )));
-            let rows = d
-                .parameters
-                .iter()
-                .map(|p| {
-                    let unit = parameter_unit(&p.name);
-                    let tol = tolerance_for(&p.name, &input.limits);
-                    let of_tol = match (p.percent, tol) {
-                        (Some(pc), Some(t)) => {
-                            let share = pc / t * 100.0;
-                            let tone = if share.abs() > 100.0 {
-                                Tone::Bad
-                            } else if share.abs() > 50.0 {
-                                Tone::Warn
-                            } else {
-                                Tone::Plain
-                            };
-                            Cell::num(format!("{} % of ±{} %", value(share, ""), value(t, "")))
-                                .tone(tone)
-                        }
-                        _ => Cell::num("no tolerance set"),
-                    };
-                    vec![
-                        Cell::text(parameter_label(&p.name)),
-                        Cell::num(eng(p.baseline, unit)),
-                        Cell::num(eng(p.current, unit)),
-                        of_tol,
-                        Cell::num(
-                            p.percent
-                                .map_or("—".into(), |v| format!("{} %", value(v, ""))),
-                        ),
-                        Cell::num(
-                            p.sigma
-                                .map_or("—".into(), |v| format!("{} σ", value(v, ""))),
-                        ),
-                    ]
-                })
-                .collect();
-            out.push(Block::Table {
-                head: [
-                    "Parameter",
-                    "Baseline",
-                    "This lot",
-                    "Of tolerance",
-                    "Change",
-                    "In σ",
-                ]
-                .map(String::from)
-                .to_vec(),
-                rows,
-            });
-        }
-    }
+        Block::Table {
+            head: [
+                "Parameter",
+                "Baseline",
+                "This lot",
+                "Of tolerance",
+                "Change",
+                "In σ",
+            ]
+            .map(String::from)
+            .to_vec(),
+            rows,
+        },
+    ]
+}
 
-    out.push(Block::Heading("Model quality".into()));
-    out.push(Block::Para(r.assessment.summary.clone()));
+fn drift_row(p: &ParameterDrift, limits: &Limits) -> Vec<Cell> {
+    let unit = parameter_unit(&p.name);
+    let tol = tolerance_for(&p.name, limits);
+    let of_tol = match (p.percent, tol) {
+        (Some(pc), Some(t)) => {
+            let share = pc / t * 100.0;
+            let tone = if share.abs() > 100.0 {
+                Tone::Bad
+            } else if share.abs() > 50.0 {
+                Tone::Warn
+            } else {
+                Tone::Plain
+            };
+            Cell::num(format!("{} % of ±{} %", value(share, ""), value(t, ""))).tone(tone)
+        }
+        _ => Cell::num("no tolerance set"),
+    };
+    vec![
+        Cell::text(parameter_label(&p.name)),
+        Cell::num(eng(p.baseline, unit)),
+        Cell::num(eng(p.current, unit)),
+        of_tol,
+        Cell::num(
+            p.percent
+                .map_or("—".into(), |v| format!("{} %", value(v, ""))),
+        ),
+        Cell::num(
+            p.sigma
+                .map_or("—".into(), |v| format!("{} σ", value(v, ""))),
+        ),
+    ]
+}
+
+/// The assessment's summary and findings, and the notes from the reader and the fit.
+fn quality_section(r: &FitReport) -> Vec<Block> {
+    let mut out = vec![Block::Para(r.assessment.summary.clone())];
     if !r.assessment.findings.is_empty() {
         out.push(Block::Table {
             head: vec!["Finding".into(), "Where".into()],
@@ -668,8 +731,11 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
             r.warnings.join(" ")
         )));
     }
+    out
+}
 
-    out.push(Block::Heading("Approval".into()));
+/// Who approved the fit, when and why, or that nobody has.
+fn approval_record(input: &ReportInput) -> Vec<(String, String)> {
     let mut ap = vec![(
         "Status".to_string(),
         match input.approval.as_deref() {
@@ -690,28 +756,7 @@ pub fn build(input: &ReportInput) -> Vec<Block> {
     if let Some(why) = &input.approved_reason {
         ap.push(("Reason given".into(), why.clone()));
     }
-    out.push(Block::KeyValues(ap));
-    out.push(Block::Signatures(vec![
-        "Inspected by".into(),
-        "Released by".into(),
-    ]));
-
-    out.push(Block::PageBreak);
-    out.push(Block::Heading(format!(
-        "Plots: {} lot {}",
-        input.part_number, input.lot
-    )));
-    for c in curves(input) {
-        out.push(Block::Chart(c));
-    }
-    out.push(Block::Muted(format!(
-        "Report made {} by henrybook from the stored sweep and fit. Caution: a choke removed from \
-         its circuit stores no energy; the hazards at test are the equipment's charged capacitors, \
-         the voltage kick when current through an inductor is interrupted, and bias supplies. \
-         Follow local electrical codes and licensed practice.",
-        input.generated_at
-    )));
-    out
+    ap
 }
 
 /// The text of every block, for checks and search: what a reader of the page sees, in order.

@@ -45,18 +45,148 @@ pub fn parse_csv(text: &str) -> Result<ImpedanceTable, SweepError> {
     let (header_line, header) = lines
         .next()
         .ok_or_else(|| SweepError::file("the CSV file is empty"))?;
-    let sep = if header.contains(',') {
-        ','
-    } else if header.contains(';') {
-        ';'
-    } else {
-        '\t'
+    let header = Header::parse(header_line, header)?;
+    let mut table = ImpedanceTable {
+        frequency_hz: Vec::new(),
+        impedance_ohm: Vec::new(),
+        sigma_ohm: header.sigma_col.map(|_| Vec::new()),
+        line: Vec::new(),
     };
-    let names: Vec<String> = header
-        .split(sep)
-        .map(|n| unquote(n).to_ascii_lowercase())
-        .collect();
-    let find = |name: &str| names.iter().position(|n| n == name);
+    for (ln, row) in lines {
+        header.read_row(ln, row, &mut table)?;
+    }
+    if table.frequency_hz.is_empty() {
+        return Err(SweepError::at(
+            header_line,
+            "the CSV file has a header but no data rows",
+        ));
+    }
+    check_grid(&table.frequency_hz, &table.line, Repeats::Allow)?;
+    Ok(table)
+}
+
+/// What the header line says: the separator, the column names and which column holds what.
+struct Header {
+    line: usize,
+    sep: char,
+    names: Vec<String>,
+    f_col: usize,
+    style: Style,
+    /// The two impedance columns: real and imaginary part, or magnitude and phase.
+    a_col: usize,
+    b_col: usize,
+    sigma_col: Option<usize>,
+}
+
+impl Header {
+    /// Reads the header on line `header_line`, refusing repeated, unknown or non-SI columns and an
+    /// incomplete set.
+    fn parse(header_line: usize, header: &str) -> Result<Header, SweepError> {
+        let sep = if header.contains(',') {
+            ','
+        } else if header.contains(';') {
+            ';'
+        } else {
+            '\t'
+        };
+        let names: Vec<String> = header
+            .split(sep)
+            .map(|n| unquote(n).to_ascii_lowercase())
+            .collect();
+        check_column_names(header_line, &names)?;
+        let find = |name: &str| names.iter().position(|n| n == name);
+        let f_col = find("frequency_hz").ok_or_else(|| {
+            SweepError::at(header_line, format!("no frequency_hz column; {EXPECTED}"))
+        })?;
+        let ri = (find("z_real_ohm"), find("z_imag_ohm"));
+        let mp = (find("z_mag_ohm"), find("z_phase_deg"));
+        let (style, a_col, b_col) = match (ri, mp) {
+            ((Some(a), Some(b)), (None, None)) => (Style::RealImag, a, b),
+            ((None, None), (Some(a), Some(b))) => (Style::MagPhase, a, b),
+            ((None, None), (None, None)) => {
+                return Err(SweepError::at(
+                    header_line,
+                    format!("no impedance columns; {EXPECTED}"),
+                ));
+            }
+            _ => {
+                return Err(SweepError::at(
+                    header_line,
+                    format!("the impedance columns mix or miss a pair; {EXPECTED}"),
+                ));
+            }
+        };
+        let sigma_col = find("sigma_ohm");
+        Ok(Header {
+            line: header_line,
+            sep,
+            names,
+            f_col,
+            style,
+            a_col,
+            b_col,
+            sigma_col,
+        })
+    }
+
+    /// Reads data row `row` on line `ln` into `table`.
+    fn read_row(&self, ln: usize, row: &str, table: &mut ImpedanceTable) -> Result<(), SweepError> {
+        let fields: Vec<&str> = row.split(self.sep).map(unquote).collect();
+        if fields.len() != self.names.len() {
+            return Err(SweepError::at(
+                ln,
+                format!(
+                    "wrong column count: {} fields, the header (line {}) has {}",
+                    fields.len(),
+                    self.line,
+                    self.names.len()
+                ),
+            ));
+        }
+        let num = |col: usize| -> Result<f64, SweepError> {
+            let tok = fields[col];
+            let v: f64 = tok.parse().map_err(|_| {
+                SweepError::at(ln, format!("{} '{tok}' is not a number", self.names[col]))
+            })?;
+            if v.is_finite() {
+                Ok(v)
+            } else {
+                Err(SweepError::at(
+                    ln,
+                    format!("{} '{tok}' is not finite", self.names[col]),
+                ))
+            }
+        };
+        let f = num(self.f_col)?;
+        let (a, b) = (num(self.a_col)?, num(self.b_col)?);
+        let z = match self.style {
+            Style::RealImag => Complex64::new(a, b),
+            Style::MagPhase => {
+                if a < 0.0 {
+                    return Err(SweepError::at(ln, format!("z_mag_ohm {a} is negative")));
+                }
+                Complex64::from_polar(a, b.to_radians())
+            }
+        };
+        if let (Some(col), Some(s)) = (self.sigma_col, table.sigma_ohm.as_mut()) {
+            let v = num(col)?;
+            if v <= 0.0 {
+                return Err(SweepError::at(
+                    ln,
+                    format!("sigma_ohm {v} must be positive"),
+                ));
+            }
+            s.push(v);
+        }
+        table.frequency_hz.push(f);
+        table.impedance_ohm.push(z);
+        table.line.push(ln);
+        Ok(())
+    }
+}
+
+/// Refuses a column named twice, one in another unit than the SI one, and an unknown one.
+fn check_column_names(header_line: usize, names: &[String]) -> Result<(), SweepError> {
     for (i, n) in names.iter().enumerate() {
         if names[..i].contains(n) {
             return Err(SweepError::at(
@@ -83,94 +213,7 @@ pub fn parse_csv(text: &str) -> Result<ImpedanceTable, SweepError> {
             }
         }
     }
-    let f_col = find("frequency_hz").ok_or_else(|| {
-        SweepError::at(header_line, format!("no frequency_hz column; {EXPECTED}"))
-    })?;
-    let ri = (find("z_real_ohm"), find("z_imag_ohm"));
-    let mp = (find("z_mag_ohm"), find("z_phase_deg"));
-    let (style, a_col, b_col) = match (ri, mp) {
-        ((Some(a), Some(b)), (None, None)) => (Style::RealImag, a, b),
-        ((None, None), (Some(a), Some(b))) => (Style::MagPhase, a, b),
-        ((None, None), (None, None)) => {
-            return Err(SweepError::at(
-                header_line,
-                format!("no impedance columns; {EXPECTED}"),
-            ));
-        }
-        _ => {
-            return Err(SweepError::at(
-                header_line,
-                format!("the impedance columns mix or miss a pair; {EXPECTED}"),
-            ));
-        }
-    };
-    let sigma_col = find("sigma_ohm");
-
-    let mut table = ImpedanceTable {
-        frequency_hz: Vec::new(),
-        impedance_ohm: Vec::new(),
-        sigma_ohm: sigma_col.map(|_| Vec::new()),
-        line: Vec::new(),
-    };
-    for (ln, row) in lines {
-        let fields: Vec<&str> = row.split(sep).map(unquote).collect();
-        if fields.len() != names.len() {
-            return Err(SweepError::at(
-                ln,
-                format!(
-                    "wrong column count: {} fields, the header (line {header_line}) has {}",
-                    fields.len(),
-                    names.len()
-                ),
-            ));
-        }
-        let num = |col: usize| -> Result<f64, SweepError> {
-            let tok = fields[col];
-            let v: f64 = tok.parse().map_err(|_| {
-                SweepError::at(ln, format!("{} '{tok}' is not a number", names[col]))
-            })?;
-            if v.is_finite() {
-                Ok(v)
-            } else {
-                Err(SweepError::at(
-                    ln,
-                    format!("{} '{tok}' is not finite", names[col]),
-                ))
-            }
-        };
-        let f = num(f_col)?;
-        let (a, b) = (num(a_col)?, num(b_col)?);
-        let z = match style {
-            Style::RealImag => Complex64::new(a, b),
-            Style::MagPhase => {
-                if a < 0.0 {
-                    return Err(SweepError::at(ln, format!("z_mag_ohm {a} is negative")));
-                }
-                Complex64::from_polar(a, b.to_radians())
-            }
-        };
-        if let (Some(col), Some(s)) = (sigma_col, table.sigma_ohm.as_mut()) {
-            let v = num(col)?;
-            if v <= 0.0 {
-                return Err(SweepError::at(
-                    ln,
-                    format!("sigma_ohm {v} must be positive"),
-                ));
-            }
-            s.push(v);
-        }
-        table.frequency_hz.push(f);
-        table.impedance_ohm.push(z);
-        table.line.push(ln);
-    }
-    if table.frequency_hz.is_empty() {
-        return Err(SweepError::at(
-            header_line,
-            "the CSV file has a header but no data rows",
-        ));
-    }
-    check_grid(&table.frequency_hz, &table.line, Repeats::Allow)?;
-    Ok(table)
+    Ok(())
 }
 
 /// Reads the CSV into a sweep. The data are the DUT impedance; when the options state an S-method the
