@@ -155,8 +155,10 @@ pub fn prepare(sweep: &Sweep, options: &FitOptions) -> Result<FitData, FitError>
             return Err(FitError::NotAnInductor(format!(
                 "the lowest frequency where Im Z stands clear of its noise, {} Hz, is capacitive \
                  (Im Z = {:.4e} Ω): the sweep starts above the self-resonance or the part is not an \
-                 inductor",
-                sweep.frequency_hz[k], sweep.impedance_ohm[k].im
+                 inductor{}",
+                sweep.frequency_hz[k],
+                sweep.impedance_ohm[k].im,
+                unresolved_below(sweep, k)
             )));
         }
         Some(_) => {}
@@ -856,6 +858,27 @@ impl Runner<'_> {
         }
         Ok(best)
     }
+}
+
+/// When the points below `k` (the first whose Im Z stands clear of its noise) are buried in noise, a
+/// clause saying so with the median |Z| there: a method far from its reference impedance (shunt-thru on
+/// a part of kilohms, series-thru on one of milliohms) may not resolve the part's inductive region at
+/// all, and the user should know that rather than read only "not an inductor".
+fn unresolved_below(sweep: &Sweep, k: usize) -> String {
+    if k == 0 || sweep.method == crate::sweep::Method::Direct {
+        return String::new();
+    }
+    let mut magnitudes: Vec<f64> = sweep.impedance_ohm[..k].iter().map(|z| z.norm()).collect();
+    magnitudes.sort_by(f64::total_cmp);
+    format!(
+        "; below it, from {} Hz, Im Z is within its noise: the {} measurement does not resolve \
+         |Z| of about {:.4e} Ω against a reference impedance of {} Ω there, so the part may be an \
+         inductor this method cannot measure (an impedance analyser or another method would tell)",
+        sweep.frequency_hz[0],
+        sweep.method.as_str(),
+        magnitudes[magnitudes.len() / 2],
+        sweep.z0_ohm
+    )
 }
 
 /// Relative cost tolerance of the nesting rule: a larger candidate may end at most this fraction above
