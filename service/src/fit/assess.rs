@@ -96,6 +96,10 @@ pub enum FindingKind {
     Undetermined,
     /// Too few points determine Z for any judgement.
     TooFewDetermined,
+    /// The measurement resolves no inductive stretch: below the first point whose Im Z stands clear
+    /// of its noise, Im Z is buried in noise, and that point is already capacitive. L0 then rests on
+    /// the resonance and the capacitive side alone, not on inductive data.
+    InductanceUnresolved,
 }
 
 impl FindingKind {
@@ -107,6 +111,7 @@ impl FindingKind {
                 | FindingKind::BandMisfit
                 | FindingKind::StructuredResiduals
                 | FindingKind::TooFewDetermined
+                | FindingKind::InductanceUnresolved
         )
     }
 }
@@ -260,7 +265,8 @@ fn runs_z(signs: &[bool]) -> Option<f64> {
     Some((runs as f64 - mean) / var.sqrt())
 }
 
-fn engineering(f: f64) -> String {
+/// A frequency with an SI prefix for people, e.g. "12.5 MHz".
+pub(crate) fn engineering(f: f64) -> String {
     let (v, p) = match f {
         f if f >= 1e9 => (f / 1e9, "GHz"),
         f if f >= 1e6 => (f / 1e6, "MHz"),
@@ -549,13 +555,26 @@ fn runs_test(f: &[f64], r: &[Complex64], rms_in_noise: f64) -> (f64, Option<Find
     (runs, Some(finding))
 }
 
+impl Assessment {
+    /// Adds a finding; one that makes a fit poor makes this one poor, and the summary follows.
+    pub fn add_finding(&mut self, finding: Finding) {
+        let poor = finding.kind.makes_poor();
+        self.findings.push(finding);
+        if poor {
+            self.status = FitStatus::Poor;
+            self.summary = summary(&self.findings, true, self.noise_scale);
+        }
+    }
+}
+
 /// The one sentence for people: the main miss when the fit is poor, else which noise the model
 /// is within.
 fn summary(findings: &[Finding], poor: bool, noise_scale: f64) -> String {
     if poor {
         let worst_message = findings
             .iter()
-            .find(|x| x.kind == FindingKind::BandMisfit)
+            .find(|x| x.kind == FindingKind::InductanceUnresolved)
+            .or_else(|| findings.iter().find(|x| x.kind == FindingKind::BandMisfit))
             .or_else(|| findings.iter().find(|x| x.kind.makes_poor()))
             .map(|x| x.message.clone())
             .unwrap_or_default();

@@ -137,32 +137,6 @@ pub fn prepare(sweep: &Sweep, options: &FitOptions) -> Result<FitData, FitError>
         (None, Some(dc)) if dc.resistance_ohm > 0.0 => Some((dc.resistance_ohm, dc.sigma_ohm)),
         _ => None,
     };
-    // An inductor is inductive at the bottom of its band: the lowest point whose Im Z stands clear of
-    // its noise (3σ, as the running median over five points) must be inductive. Points buried in noise
-    // say nothing either way.
-    let smooth = initial::smoothed_significance(&sweep.impedance_ohm, &sweep.sigma_ohm);
-    let first_clear = (0..n).find(|&k| smooth[k].abs() > 3.0);
-    match first_clear {
-        None => {
-            return Err(FitError::NotAnInductor(format!(
-                "Im Z stays within three times its uncertainty from {} Hz to {} Hz: nothing in the \
-                 sweep is inductive",
-                sweep.frequency_hz[0],
-                sweep.frequency_hz[n - 1]
-            )));
-        }
-        Some(k) if smooth[k] < 0.0 => {
-            return Err(FitError::NotAnInductor(format!(
-                "the lowest frequency where Im Z stands clear of its noise, {} Hz, is capacitive \
-                 (Im Z = {:.4e} Ω): the sweep starts above the self-resonance or the part is not an \
-                 inductor{}",
-                sweep.frequency_hz[k],
-                sweep.impedance_ohm[k].im,
-                unresolved_below(sweep, k)
-            )));
-        }
-        Some(_) => {}
-    }
     let g = density_weights(&sweep.frequency_hz);
     Ok(FitData {
         frequency_hz: sweep.frequency_hz.clone(),
@@ -860,25 +834,60 @@ impl Runner<'_> {
     }
 }
 
+/// An inductor is inductive at the bottom of its band: the lowest point whose Im Z stands clear of its
+/// noise (3σ, as the running median over five points) must be inductive. Points buried in noise say
+/// nothing either way. Refuses a sweep whose clear points are all within noise, and one whose first
+/// clear point is capacitive while the measurement resolves the points below it (a direct impedance
+/// reading, or nothing below). When the method does not resolve the points below (a network-analyser
+/// method far from its reference impedance), the part may be an inductor the method cannot measure:
+/// it is fitted, and `Ok(Some(reason))` says why the fit is `poor` whatever its residuals.
+fn inductive_bottom(sweep: &Sweep) -> Result<Option<String>, FitError> {
+    let n = sweep.frequency_hz.len();
+    let smooth = initial::smoothed_significance(&sweep.impedance_ohm, &sweep.sigma_ohm);
+    match (0..n).find(|&k| smooth[k].abs() > 3.0) {
+        None => Err(FitError::NotAnInductor(format!(
+            "Im Z stays within three times its uncertainty from {} Hz to {} Hz: nothing in the \
+             sweep is inductive",
+            sweep.frequency_hz[0],
+            sweep.frequency_hz[n - 1]
+        ))),
+        Some(k) if smooth[k] < 0.0 => match unresolved_below(sweep, k) {
+            Some(reason) => Ok(Some(format!(
+                "the lowest frequency where Im Z stands clear of its noise, {} Hz, is already \
+                 capacitive{reason}; L0 rests on the resonance and the capacitive side, not on \
+                 inductive data",
+                assess::engineering(sweep.frequency_hz[k])
+            ))),
+            None => Err(FitError::NotAnInductor(format!(
+                "the lowest frequency where Im Z stands clear of its noise, {} Hz, is capacitive \
+                 (Im Z = {:.4e} Ω): the sweep starts above the self-resonance or the part is not an \
+                 inductor",
+                sweep.frequency_hz[k], sweep.impedance_ohm[k].im,
+            ))),
+        },
+        Some(_) => Ok(None),
+    }
+}
+
 /// When the points below `k` (the first whose Im Z stands clear of its noise) are buried in noise, a
 /// clause saying so with the median |Z| there: a method far from its reference impedance (shunt-thru on
 /// a part of kilohms, series-thru on one of milliohms) may not resolve the part's inductive region at
 /// all, and the user should know that rather than read only "not an inductor".
-fn unresolved_below(sweep: &Sweep, k: usize) -> String {
+fn unresolved_below(sweep: &Sweep, k: usize) -> Option<String> {
     if k == 0 || sweep.method == crate::sweep::Method::Direct {
-        return String::new();
+        return None;
     }
     let mut magnitudes: Vec<f64> = sweep.impedance_ohm[..k].iter().map(|z| z.norm()).collect();
     magnitudes.sort_by(f64::total_cmp);
-    format!(
-        "; below it, from {} Hz, Im Z is within its noise: the {} measurement does not resolve \
-         |Z| of about {:.4e} Ω against a reference impedance of {} Ω there, so the part may be an \
-         inductor this method cannot measure (an impedance analyser or another method would tell)",
-        sweep.frequency_hz[0],
+    Some(format!(
+        "; below it, from {}, Im Z is within its noise: the {} measurement does not resolve |Z| of \
+         about {:.4e} Ω against a reference impedance of {} Ω there, so the part may be an inductor \
+         this method cannot measure (an impedance analyser or another method would tell)",
+        assess::engineering(sweep.frequency_hz[0]),
         sweep.method.as_str(),
         magnitudes[magnitudes.len() / 2],
         sweep.z0_ohm
-    )
+    ))
 }
 
 /// Relative cost tolerance of the nesting rule: a larger candidate may end at most this fraction above
@@ -917,6 +926,7 @@ pub fn fit_lumped(
     let started = Instant::now();
     let deadline = started + Duration::from_secs_f64(options.time_limit_s.min(1e6));
     let mut data = prepare(sweep, options)?;
+    let unresolved = inductive_bottom(sweep)?;
     let (guess, starts) = initial::read_curve(&data);
     data.walls = plausible::walls(&data, &guess, options.max_sections);
     let residuals = data.effective_residuals();
@@ -966,7 +976,7 @@ pub fn fit_lumped(
         return Err(last_error
             .unwrap_or_else(|| FitError::NonFinite("no candidate model could be fitted".into())));
     }
-    Ok(lumped_report(
+    let mut report = lumped_report(
         sweep,
         options,
         control,
@@ -974,7 +984,15 @@ pub fn fit_lumped(
         &fits,
         residuals,
         ran_out_of_time,
-    ))
+    );
+    if let Some(reason) = unresolved {
+        report.assessment.add_finding(assess::Finding {
+            kind: assess::FindingKind::InductanceUnresolved,
+            band_hz: None,
+            message: reason,
+        });
+    }
+    Ok(report)
 }
 
 /// Stage A of [`fit_lumped`]: sections, everything else present. Each assignment of kinds is started

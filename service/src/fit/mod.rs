@@ -14,7 +14,7 @@ pub mod plausible;
 pub mod problem;
 pub mod rational;
 
-pub use assess::{Assessment, FitStatus};
+pub use assess::{Assessment, Finding, FindingKind, FitStatus};
 
 use crate::model::FittedModel;
 use serde::{Deserialize, Serialize};
