@@ -331,3 +331,75 @@ async fn grpc_uploads_beyond_what_the_bytes_in_flight_hold_are_unavailable_with_
     assert_eq!(fits["items"].as_array().unwrap().len(), taken);
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn during_the_unready_notice_the_service_answers_but_is_unready_and_claims_nothing() {
+    // A replica behind a load balancer: at the signal /readyz turns 503 (draining) while requests
+    // are still served for the notice, and fits uploaded meanwhile stay queued for another replica
+    // or the next start; then the listeners close. Nothing uploaded is lost.
+    let notice = Duration::from_secs(3);
+    let dir = Arc::new(tempfile::tempdir().unwrap());
+    let mut settings = test_settings(dir.path().join("h.db"));
+    settings.unready_notice = notice;
+    settings.shutdown_grace = Duration::from_secs(2);
+    settings.drain_timeout = Duration::from_secs(10);
+    let mut app = spawn_app_with(dir.clone(), settings.clone(), Arc::new(CoreEngine), None).await;
+    app.create_part("N-1", serde_json::json!({})).await;
+    let ready = app.client.get(app.url("/readyz")).send().await.unwrap();
+    assert_eq!(ready.status(), 200);
+    assert_eq!(
+        ready.json::<serde_json::Value>().await.unwrap()["draining"],
+        false
+    );
+
+    let signalled = std::time::Instant::now();
+    app.signal_stop();
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(2);
+    let body = loop {
+        let r = app.client.get(app.url("/readyz")).send().await.unwrap();
+        if r.status() == 503 {
+            break r.json::<serde_json::Value>().await.unwrap();
+        }
+        assert!(
+            tokio::time::Instant::now() < deadline,
+            "never turned unready"
+        );
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    };
+    assert_eq!(body["draining"], true, "{body}");
+    assert_eq!(body["database"], true, "{body}");
+    // Still served: an upload is taken and queued, but this replica claims nothing any more.
+    // Synthetic sweep of a known model (invented values).
+    let csv = synthetic_csv(&simple_model(10e-6, 0.05, 5e-12), 1e4, 1e8, 101);
+    let r = app
+        .upload("n.csv", csv, &[("part_number", "N-1"), ("lot", "L1")])
+        .await;
+    assert_eq!(r.status(), 202);
+    let fit_id = r.json::<serde_json::Value>().await.unwrap()["fit_id"]
+        .as_i64()
+        .unwrap();
+    // The pool polls every 50 ms in these settings: a claiming pool would have taken it by now.
+    tokio::time::sleep(Duration::from_millis(800)).await;
+    let fit = app
+        .get_json(&format!("/api/v1/fits/{fit_id}"), &app.reader)
+        .await;
+    assert_eq!(fit["status"], "queued", "{fit}");
+    assert!(
+        signalled.elapsed() < notice,
+        "the check ran past the notice"
+    );
+    let tokens = app.tokens();
+    tokio::time::timeout(PATIENCE, app.stop())
+        .await
+        .expect("shutdown ends after the notice");
+    assert!(
+        signalled.elapsed() >= notice,
+        "the listeners closed before the notice was over ({:?})",
+        signalled.elapsed()
+    );
+    // The next start runs the queued fit.
+    let again = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let done = again.wait_for_fit(fit_id, PATIENCE).await;
+    assert_eq!(done["status"], "succeeded", "{done}");
+    again.stop().await;
+}

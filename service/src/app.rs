@@ -22,6 +22,8 @@ pub struct AppState {
     pub metrics: PrometheusHandle,
     /// The bounds on queued fits and uploads in flight.
     pub backpressure: Arc<crate::ops::backpressure::Backpressure>,
+    /// Set at the shutdown signal: /readyz answers 503 from then on.
+    pub draining: Arc<std::sync::atomic::AtomicBool>,
 }
 
 /// The process-wide Prometheus recorder (installed once, shared by every application in a process).
@@ -99,6 +101,7 @@ impl Application {
             backpressure: Arc::new(crate::ops::backpressure::Backpressure::new(&settings)),
             settings: Arc::new(settings),
             metrics: metrics_handle(),
+            draining: Arc::new(std::sync::atomic::AtomicBool::new(false)),
         };
         Ok(Application {
             listener,
@@ -139,18 +142,32 @@ impl Application {
         shutdown: impl Future<Output = ()> + Send + 'static,
     ) -> anyhow::Result<()> {
         let (stop_tx, stop_rx) = watch::channel(false);
+        // At the signal the service turns unready and the pool stops claiming; the listeners close
+        // `unready_notice` later (so a load balancer that polls /readyz stops sending first).
+        let (pool_stop_tx, pool_stop_rx) = watch::channel(false);
         // The instant shutdown was asked for: everything below ends `drain_timeout` after it.
         let (stopped_tx, stopped_at) = tokio::sync::oneshot::channel::<tokio::time::Instant>();
+        let draining = self.state.draining.clone();
+        let notice = self.state.settings.unready_notice;
         tokio::spawn(async move {
             shutdown.await;
             let _ = stopped_tx.send(tokio::time::Instant::now());
+            draining.store(true, std::sync::atomic::Ordering::SeqCst);
+            let _ = pool_stop_tx.send(true);
+            if !notice.is_zero() {
+                tracing::info!(
+                    notice_s = notice.as_secs_f64(),
+                    "shutdown asked for: unready, closing the listeners after the notice"
+                );
+                tokio::time::sleep(notice).await;
+            }
             let _ = stop_tx.send(true);
         });
         let drain = self.state.settings.drain_timeout;
         let limits = self.state.settings.connection_limits();
         // Dropping `run` (as an aborted task does) stops the pool too: its running fits are then
         // abandoned with their leases, exactly as in a crash.
-        let mut pool = AbortOnDrop(Some(tokio::spawn(self.pool.run(stop_rx.clone()))));
+        let mut pool = AbortOnDrop(Some(tokio::spawn(self.pool.run(pool_stop_rx))));
         let store = self.state.store.clone();
         let mut grpc = AbortOnGrpcDrop(Some(tokio::spawn(crate::grpc::serve(
             self.grpc_listener,
@@ -159,7 +176,9 @@ impl Application {
         ))));
         let router = crate::http::router(self.state);
         tracing::info!(address = %self.address, grpc_address = %self.grpc_address, "henrybook is serving");
-        crate::serve::serve_http(self.listener, router, limits, stop_rx, drain).await;
+        // The listeners close `notice` after the signal; what is left of the drain is theirs.
+        let connection_drain = drain.saturating_sub(notice);
+        crate::serve::serve_http(self.listener, router, limits, stop_rx, connection_drain).await;
         // Shutdown was asked for (the HTTP loop only ends then); gRPC and the pool get what is left of
         // the drain deadline, then are aborted: a fit abandoned so keeps its lease, which expires and
         // runs it again at the next start, as after a crash.

@@ -61,6 +61,11 @@ pub struct ServeArgs {
     /// running then are closed and abandoned (their jobs run again at the next start).
     #[arg(long, env = "HENRYBOOK_DRAIN_TIMEOUT_S", value_name = "S", value_parser = si, default_value_t = 30.0)]
     pub drain_timeout_s: f64,
+    /// Seconds between the shutdown signal and closing the listeners. Meanwhile /readyz answers 503
+    /// with `draining: true` (so a load balancer stops sending new requests), requests are still
+    /// served, and the worker pool claims nothing new. Part of --drain-timeout-s.
+    #[arg(long, env = "HENRYBOOK_UNREADY_NOTICE_S", value_name = "S", value_parser = si, default_value_t = 0.0)]
+    pub unready_notice_s: f64,
     /// Most fits queued or running at once; past it uploads, refits and retries get 503.
     #[arg(long, env = "HENRYBOOK_MAX_QUEUED_FITS", default_value_t = 1000)]
     pub max_queued_fits: i64,
@@ -117,6 +122,8 @@ pub struct Settings {
     pub idle_timeout: Duration,
     /// Shutdown ends this long after the signal at the latest.
     pub drain_timeout: Duration,
+    /// From the signal, how long the service stays reachable but unready before closing its listeners.
+    pub unready_notice: Duration,
     /// How often an idle worker pool looks for work it was not told about (e.g. expired leases).
     pub poll_interval: Duration,
 }
@@ -142,6 +149,7 @@ impl Settings {
             header_read_timeout: Duration::from_secs(10),
             idle_timeout: Duration::from_secs(60),
             drain_timeout: Duration::from_secs(30),
+            unready_notice: Duration::ZERO,
             poll_interval: Duration::from_millis(500),
         }
     }
@@ -202,6 +210,19 @@ impl TryFrom<&ServeArgs> for Settings {
             a.shutdown_grace_s,
             a.drain_timeout_s
         );
+        anyhow::ensure!(
+            a.unready_notice_s.is_finite() && a.unready_notice_s >= 0.0,
+            "--unready-notice-s must be zero or a positive number of seconds (got {})",
+            a.unready_notice_s
+        );
+        let unready_notice = Duration::from_secs_f64(a.unready_notice_s);
+        anyhow::ensure!(
+            unready_notice < drain_timeout,
+            "--unready-notice-s ({} s) must be shorter than --drain-timeout-s ({} s): the notice is \
+             the first part of the drain",
+            a.unready_notice_s,
+            a.drain_timeout_s
+        );
         Ok(Settings {
             listen: a.listen,
             grpc_listen: a.grpc_listen,
@@ -220,6 +241,7 @@ impl TryFrom<&ServeArgs> for Settings {
             header_read_timeout: seconds("--header-read-timeout-s", a.header_read_timeout_s)?,
             idle_timeout: seconds("--idle-timeout-s", a.idle_timeout_s)?,
             drain_timeout,
+            unready_notice,
             poll_interval: (lease / 4).min(Duration::from_millis(500)),
         })
     }

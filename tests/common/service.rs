@@ -105,6 +105,13 @@ impl TestApp {
         ]
     }
 
+    /// Sends the shutdown signal without waiting for the server to stop ([`TestApp::stop`] waits).
+    pub fn signal_stop(&mut self) {
+        if let Some(tx) = self.stop.take() {
+            let _ = tx.send(());
+        }
+    }
+
     /// Graceful shutdown; waits for the server to stop.
     pub async fn stop(mut self) {
         if let Some(tx) = self.stop.take() {

@@ -24,15 +24,20 @@ pub struct Readiness {
     pub audit_chain: bool,
     /// The hash of the newest audit row: keep it elsewhere to detect a rewritten database.
     pub audit_head_hash: Option<String>,
+    /// Shutdown was asked for: the service still answers but takes no new work (see
+    /// `--unready-notice-s`), so it is not ready.
+    pub draining: bool,
 }
 
-/// Ready to serve: database reachable, migrations applied and the audit chain intact (503 otherwise).
+/// Ready to serve: database reachable, migrations applied, the audit chain intact and no shutdown under
+/// way (503 otherwise).
 #[utoipa::path(get, path = "/readyz", tag = "ops",
     responses((status = 200, body = Readiness), (status = 503, body = Readiness)))]
 async fn readyz(State(state): State<AppState>) -> impl IntoResponse {
     let (database, migrations) = state.store.readiness().await;
     let (audit_chain, audit_head_hash) = state.store.audit_chain_ok().await;
-    let status = if database && migrations && audit_chain {
+    let draining = state.draining.load(std::sync::atomic::Ordering::SeqCst);
+    let status = if database && migrations && audit_chain && !draining {
         StatusCode::OK
     } else {
         StatusCode::SERVICE_UNAVAILABLE
@@ -44,6 +49,7 @@ async fn readyz(State(state): State<AppState>) -> impl IntoResponse {
             migrations,
             audit_chain,
             audit_head_hash,
+            draining,
         }),
     )
 }

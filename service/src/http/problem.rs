@@ -147,11 +147,13 @@ pub async fn problem_for_plain_errors(
 ) -> Response {
     let res = next.run(req).await;
     let status = res.status();
-    let is_problem = res
-        .headers()
-        .get(header::CONTENT_TYPE)
-        .is_some_and(|v| v.as_bytes().starts_with(PROBLEM_JSON.as_bytes()));
-    if !(status.is_client_error() || status.is_server_error()) || is_problem {
+    // Problems pass as they are, and so does a JSON body a handler chose to send with an error status
+    // (the readiness report with 503): only axum's plain-text rejections and empty bodies are turned.
+    let is_json = res.headers().get(header::CONTENT_TYPE).is_some_and(|v| {
+        v.as_bytes().starts_with(PROBLEM_JSON.as_bytes())
+            || v.as_bytes().starts_with(b"application/json")
+    });
+    if !(status.is_client_error() || status.is_server_error()) || is_json {
         return res;
     }
     let kind = match status {
