@@ -1224,6 +1224,23 @@ async fn bad_arguments_are_invalid_argument_naming_the_field_and_store_nothing()
             },
             "error_kind",
         ),
+        // A name filter is held to the rules of the name (registry::ids), not matched as any text.
+        (
+            "part_number=B%201",
+            proto::ListFitsRequest {
+                part_number: Some("B 1".into()),
+                ..Default::default()
+            },
+            "part_number",
+        ),
+        (
+            "lot=a%01b",
+            proto::ListFitsRequest {
+                lot: Some("a\u{1}b".into()),
+                ..Default::default()
+            },
+            "lot",
+        ),
     ] {
         let s = assert_invalid(c.fits.list_fits(grpc_request(request, &t)).await, field);
         let r = app.get(&format!("/api/v1/fits?{query}"), &t).await;

@@ -29,12 +29,9 @@
 //! (e.g. a pair whose real part turns negative at high frequency, b0 > a1·b1, which needs a
 //! Bott–Duffin-type network) is refused with [`ExportError::NotRealisable`], naming why each failed.
 
+use super::accuracy::band_accuracy;
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
-use super::spice::ERROR_BOUND_KEY;
-use super::{
-    ExportContext, ExportError, grid_with_resonances, log_grid, provenance_lines, resonances,
-    stated_bound,
-};
+use super::{ExportContext, ExportError, log_grid, provenance_lines};
 use crate::model::rational::{ComplexPole, RealPole};
 use crate::model::{ImpedanceModel, RationalModel};
 use num_complex::Complex64;
@@ -771,7 +768,7 @@ pub fn rational_subcircuit(
     model: &RationalModel,
     ctx: &ExportContext,
 ) -> Result<String, ExportError> {
-    let [lo, hi] = ctx.checked_band()?;
+    let band = ctx.checked_band()?;
     let real = foster_realisation(model)?;
     let mut net = Netlist::new();
     match real.form {
@@ -783,25 +780,7 @@ pub fn rational_subcircuit(
             write_parallel(&mut net, &real.block, x, PIN_B);
         }
     }
-    let model_z = |f: f64| model.impedance(f);
-    let res = resonances(&model_z, lo, hi);
-    let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
-    let mut max_err = 0.0f64;
-    let mut max_err_at = lo;
-    let mut spread = 1.0f64;
-    for &f in &check {
-        let z_model = model.impedance(f);
-        if z_model.norm() == 0.0 || !z_model.norm().is_finite() {
-            return Err(ExportError::NotFinite { frequency_hz: f });
-        }
-        spread = spread.max(z_model.norm() / net.min_element_impedance(f));
-        let e = (real.impedance(f) - z_model).norm() / z_model.norm();
-        if e > max_err {
-            max_err = e;
-            max_err_at = f;
-        }
-    }
-    let bound = stated_bound(max_err, spread);
+    let accuracy = band_accuracy(|f| model.impedance(f), |f| real.impedance(f), &net, band)?;
 
     net.comment(
         "henrybook rational (pole-residue) model as a passive Foster subcircuit (R, L, C only)",
@@ -841,15 +820,7 @@ pub fn rational_subcircuit(
             parallel_legend(&mut net);
         }
     }
-    net.comment(format!(
-        "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
-        check.len(),
-        res.len()
-    ));
-    net.comment(format!(
-        "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
-    ));
-    net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
+    accuracy.comments(&mut net);
     net.comment("pins: 1 and 2; values in ohm, henry, farad");
     net.comment("");
 

@@ -11,6 +11,7 @@
 //! - [`foster::rational_subcircuit`]: the rational model as a series Foster realisation.
 //! - [`touchstone::touchstone_1port`] and [`csv::impedance_csv`]: the model evaluated on a grid.
 
+mod accuracy;
 pub mod core;
 pub mod csv;
 pub mod foster;
@@ -86,6 +87,11 @@ pub enum ExportError {
          cannot be stated to a relative error; give the model a loss (e.g. rdc_ohm or rp_ohm)"
     )]
     NotFinite { frequency_hz: f64 },
+    #[error(
+        "the realised network's impedance is not finite at {frequency_hz} Hz: an element value is out \
+         of floating-point range, so the netlist's error against the model cannot be stated"
+    )]
+    NetworkNotFinite { frequency_hz: f64 },
 }
 
 /// `n` log-spaced points from `lo` to `hi` inclusive (n ≥ 2).

@@ -7,18 +7,15 @@
 //! Absent elements (zero `ls_h`, `cp_f`, `rdc_ohm`, `k_ac_ohm_per_sqrt_hz`, a zero section R or L,
 //! `rp_ohm = None`) are left out rather than written as zero-valued elements.
 
+use super::accuracy::band_accuracy;
 use super::core::{CoreCell, CoreNetwork, design_core};
 use super::ladder::{SkinLadder, design_skin_ladder, impedance_with_core};
 use super::netlist::{Netlist, PIN_A, PIN_B, subckt_name};
-use super::{
-    ExportContext, ExportError, check_param, grid_with_resonances, provenance_lines, resonances,
-    stated_bound,
-};
+use super::{ExportContext, ExportError, check_param, provenance_lines};
 use crate::model::{ImpedanceModel, LumpedModel, SectionKind};
 use num_complex::Complex64;
 
-/// The machine-readable comment line carrying the stated error of every netlist.
-pub const ERROR_BOUND_KEY: &str = "max_relative_error_bound:";
+pub use super::accuracy::ERROR_BOUND_KEY;
 
 /// Writes `model` as a `.SUBCKT` whose impedance between its two pins matches the model's within the
 /// error stated in its comments over `ctx.band_hz`.
@@ -44,7 +41,12 @@ pub fn lumped_subcircuit(model: &LumpedModel, ctx: &ExportContext) -> Result<Str
         net.element("CP", a, b, model.cp_f);
     }
     write_sections(&mut net, model, a, b);
-    let accuracy = Accuracy::measure(model, &net, band, |f| winding.impedance(model, f))?;
+    let accuracy = band_accuracy(
+        |f| model.impedance(f),
+        |f| winding.impedance(model, f),
+        &net,
+        band,
+    )?;
 
     net.comment("henrybook lumped inductor model as a passive subcircuit (R, L, C only)");
     for line in provenance_lines(ctx) {
@@ -206,75 +208,6 @@ fn write_sections(net: &mut Netlist, model: &LumpedModel, a: u32, b: u32) {
                 tank_at = next;
             }
         }
-    }
-}
-
-/// How closely the netlist follows the model over the band, on a log grid made dense around the
-/// model's resonances.
-struct Accuracy {
-    max_err: f64,
-    max_err_at: f64,
-    /// max over f of |Z| over the smallest single-element impedance (see [`stated_bound`]).
-    spread: f64,
-    points: usize,
-    resonances: usize,
-}
-
-impl Accuracy {
-    fn measure(
-        model: &LumpedModel,
-        net: &Netlist,
-        band: [f64; 2],
-        realised: impl Fn(f64) -> Complex64,
-    ) -> Result<Accuracy, ExportError> {
-        let [lo, hi] = band;
-        let model_z = |f: f64| model.impedance(f);
-        let res = resonances(&model_z, lo, hi);
-        let check = grid_with_resonances(lo, hi, 200.0, 400, 6000, &res, 300);
-        let mut max_err = 0.0f64;
-        let mut max_err_at = lo;
-        let mut spread = 1.0f64;
-        for &f in &check {
-            let z_model = model.impedance(f);
-            if !(z_model.re.is_finite() && z_model.im.is_finite()) || z_model.norm() == 0.0 {
-                return Err(ExportError::NotFinite { frequency_hz: f });
-            }
-            spread = spread.max(z_model.norm() / net.min_element_impedance(f));
-            let e = (realised(f) - z_model).norm() / z_model.norm();
-            if !e.is_finite() {
-                return Err(ExportError::NotFinite { frequency_hz: f });
-            }
-            if e > max_err {
-                max_err = e;
-                max_err_at = f;
-            }
-        }
-        Ok(Accuracy {
-            max_err,
-            max_err_at,
-            spread,
-            points: check.len(),
-            resonances: res.len(),
-        })
-    }
-
-    /// The measured error, how the stated error follows from it, and the machine-readable line.
-    fn comments(&self, net: &mut Netlist) {
-        let Accuracy {
-            max_err,
-            max_err_at,
-            spread,
-            ..
-        } = *self;
-        let bound = stated_bound(max_err, spread);
-        net.comment(format!(
-            "whole subcircuit: max |Z_net - Z_model| / |Z_model| = {max_err:.3e} (at {max_err_at:.4e} Hz, {} points: log-spaced over the band and dense around its {} resonances)",
-            self.points, self.resonances
-        ));
-        net.comment(format!(
-            "stated error = 1.25 x that maximum + 2e-15 x max over f of |Z|/|z_min| (= {spread:.3e}: a simulator's rounding, z_min the smallest single-element impedance) + 1e-8"
-        ));
-        net.comment(format!("{ERROR_BOUND_KEY} {bound:.3e}"));
     }
 }
 

@@ -5,6 +5,7 @@ use super::error::{OpsError, OpsResult};
 use super::sweeps::{checked_options, parse_options_value};
 use crate::app::AppState;
 use crate::registry::figures::model_curve;
+use crate::registry::ids::{LotCode, PartNumber};
 use crate::registry::wire::{
     FailureKind, FitCurves, FitDetail, FitPage, FitStatus, FitSummary, QueueCounts,
 };
@@ -27,7 +28,12 @@ pub struct FitListQuery {
         pattern = r"^(too_few_points|not_an_inductor|invalid_options|non_finite|not_passive|cancelled|unreadable_sweep|attempts_exhausted|internal)?$"
     )]
     pub error_kind: Option<String>,
+    /// Only fits of this part: 1 to 64 letters, digits and -_.+/# (empty: any part).
+    #[param(pattern = r"^([A-Za-z0-9_.+/#-]{1,64})?$")]
     pub part_number: Option<String>,
+    /// Only fits of this lot: up to 64 characters without control characters, whitespace around it
+    /// dropped (blank: any lot).
+    #[param(pattern = r"^\s*([^\x00-\x1f\x7f\s][^\x00-\x1f\x7f]{0,63})?\s*$")]
     pub lot: Option<String>,
     /// RFC 3339: fits created at or after.
     #[param(format = DateTime)]
@@ -75,11 +81,21 @@ pub fn fit_filter(p: FitListQuery) -> OpsResult<FitFilter> {
     if !(1..=500).contains(&limit) {
         return Err(OpsError::validation("limit must be 1 to 500"));
     }
+    // An empty filter is no filter; any other text must be a name the registry could hold.
+    let part_number = match p.part_number.as_deref() {
+        None | Some("") => None,
+        Some(t) => Some(PartNumber::parse(t).map_err(OpsError::validation)?),
+    };
+    let lot = match p.lot.as_deref() {
+        None => None,
+        Some(t) if t.trim().is_empty() => None,
+        Some(t) => Some(LotCode::parse(t).map_err(OpsError::validation)?),
+    };
     Ok(FitFilter {
         status,
         error_kind,
-        part_number: p.part_number.filter(|s| !s.is_empty()),
-        lot: p.lot.filter(|s| !s.is_empty()),
+        part_number,
+        lot,
         since_ms,
         before_fit_id,
         limit,
@@ -219,4 +235,45 @@ pub async fn reject(
         .ok_or_else(|| OpsError::validation("a rejection needs a reason"))?;
     state.store.reject_fit(actor, fit_id, reason).await?;
     Ok(state.store.fit_detail(fit_id).await?)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::ops::ErrorKind;
+
+    fn filter_of(part_number: Option<&str>, lot: Option<&str>) -> OpsResult<FitFilter> {
+        fit_filter(FitListQuery {
+            part_number: part_number.map(str::to_string),
+            lot: lot.map(str::to_string),
+            ..Default::default()
+        })
+    }
+
+    #[test]
+    fn part_number_and_lot_filters_are_parsed_once_into_their_types() {
+        let f = filter_of(Some("EMI-220/3"), Some(" 2024 W17 ")).unwrap();
+        assert_eq!(f.part_number.unwrap().as_str(), "EMI-220/3");
+        // A lot code's surrounding whitespace is not part of it (as when it was stored).
+        assert_eq!(f.lot.unwrap().as_str(), "2024 W17");
+        // Empty (or, for a lot, blank) text is no filter.
+        let f = filter_of(Some(""), Some("  ")).unwrap();
+        assert_eq!((f.part_number, f.lot), (None, None));
+    }
+
+    #[test]
+    fn a_filter_that_is_no_name_is_refused_naming_the_parameter_and_why() {
+        let e = filter_of(Some("has space"), None).unwrap_err();
+        assert_eq!(e.kind, ErrorKind::Validation);
+        assert_eq!(
+            e.detail,
+            "part_number \"has space\" must be 1 to 64 characters of letters, digits and -_.+/#"
+        );
+        let e = filter_of(None, Some("a\u{1}b")).unwrap_err();
+        assert_eq!(e.kind, ErrorKind::Validation);
+        assert_eq!(
+            e.detail,
+            "lot must be at most 64 characters without control characters"
+        );
+    }
 }

@@ -3,6 +3,7 @@
 use super::{Store, StoreError, StoreResult, audit, now_ms, rfc3339};
 use crate::fit::FitReport;
 use crate::registry::drift;
+use crate::registry::ids::{LotCode, PartNumber};
 use crate::registry::wire::{FailureKind, FitDetail, FitPage, FitStatus, FitSummary, QueueCounts};
 use sqlx::sqlite::SqliteRow;
 use sqlx::{QueryBuilder, Row, Sqlite, SqliteConnection};
@@ -53,8 +54,8 @@ fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
 pub struct FitFilter {
     pub status: Option<FitStatus>,
     pub error_kind: Option<FailureKind>,
-    pub part_number: Option<String>,
-    pub lot: Option<String>,
+    pub part_number: Option<PartNumber>,
+    pub lot: Option<LotCode>,
     pub since_ms: Option<i64>,
     /// Fits older than this id (the cursor of the previous page).
     pub before_fit_id: Option<i64>,
@@ -173,10 +174,11 @@ impl Store {
             q.push(" AND f.error_kind = ").push_bind(k.as_str());
         }
         if let Some(p) = &filter.part_number {
-            q.push(" AND p.part_number = ").push_bind(p.clone());
+            q.push(" AND p.part_number = ")
+                .push_bind(p.as_str().to_owned());
         }
         if let Some(l) = &filter.lot {
-            q.push(" AND l.lot = ").push_bind(l.clone());
+            q.push(" AND l.lot = ").push_bind(l.as_str().to_owned());
         }
         if let Some(t) = filter.since_ms {
             q.push(" AND f.created_at_ms >= ").push_bind(t);
