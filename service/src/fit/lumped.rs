@@ -282,9 +282,12 @@ pub fn thinned(data: &FitData, target: usize) -> FitData {
 ///
 /// A sweep of more than [`COARSE_ABOVE_POINTS`] points is first fitted on about [`COARSE_POINTS`]
 /// points picked evenly in ln f (a structure without sections first on about [`COARSEST_POINTS`]); LM then
-/// continues on the full sweep from there, so the result is the full-data optimum (the thinning only
+/// continues on the full sweep from there, so the result is a full-data optimum (the thinning only
 /// saves iterations on the full data: from the thinned optimum the full stage usually takes one
-/// Gauss–Newton step and stops on the predicted decrease, two passes over the sweep).
+/// Gauss–Newton step and stops on the predicted decrease, two passes over the sweep). The thinned
+/// optimum may lie in another basin than the full data's (the points that decide it dropped); when
+/// the staged path ends above the start's own full-data cost, LM runs again on the full data from
+/// the start and the better end is kept, so a fit never ends above its start.
 pub fn fit_structure(
     data: &FitData,
     structure: &Structure,
@@ -331,6 +334,10 @@ fn fit_structure_staged(
     } else {
         Vec::new()
     };
+    // The start's own cost on the full data (one cost-only pass), when thinned stages run: their
+    // optimum may lie in another basin than the full data's (points the thinning dropped decide it,
+    // as near a resonance that a network-analyser method barely resolves).
+    let start_theta = (!sizes.is_empty()).then(|| theta.clone());
     for size in sizes {
         let coarse = thinned(data, size);
         // Only a starting point: loose tolerances are enough. After a coarser stage the start is
@@ -370,7 +377,7 @@ fn fit_structure_staged(
     } else {
         LevenbergMarquardt::default()
     };
-    let fine = run_lm(
+    let mut fine = run_lm(
         LumpedProblem::new(data, structure),
         solver,
         theta,
@@ -378,6 +385,31 @@ fn fit_structure_staged(
         remaining.max(Duration::from_millis(1)),
         control,
     )?;
+    // A fit never ends above its start: when the staged path did, LM runs again on the full data
+    // from the start itself and the better end is kept.
+    if let Some(start_theta) = start_theta {
+        let problem = LumpedProblem::new(data, structure);
+        let start_cost = problem.cost_at(&start_theta);
+        if start_cost.is_finite() && fine.cost > start_cost {
+            let direct = run_lm(
+                problem,
+                LevenbergMarquardt::default(),
+                start_theta,
+                max_iterations.saturating_sub(iterations).max(1),
+                time_limit
+                    .saturating_sub(started.elapsed())
+                    .max(Duration::from_millis(1)),
+                control,
+            )?;
+            // Every iteration spent counts, on whichever path is kept.
+            if direct.cost < fine.cost {
+                iterations += fine.iterations;
+                fine = direct;
+            } else {
+                iterations += direct.iterations;
+            }
+        }
+    }
     let jtgj = density_weighted_jtj(data, structure, &fine.theta);
     Ok(StructureFit {
         structure: structure.clone(),
@@ -853,7 +885,7 @@ fn inductive_bottom(sweep: &Sweep) -> Result<Option<String>, FitError> {
         ))),
         Some(k) if smooth[k] < 0.0 => match unresolved_below(sweep, k) {
             Some(reason) => Ok(Some(format!(
-                "the lowest frequency where Im Z stands clear of its noise, {} Hz, is already \
+                "the lowest frequency where Im Z stands clear of its noise, {}, is already \
                  capacitive{reason}; L0 rests on the resonance and the capacitive side, not on \
                  inductive data",
                 assess::engineering(sweep.frequency_hz[k])
