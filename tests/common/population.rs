@@ -318,6 +318,22 @@ pub fn chi2(model: &dyn ImpedanceModel, sweep: &Sweep) -> f64 {
         .sum()
 }
 
+/// χ² with each point counted by its density weight (`henrybook::fit::problem::density_weights`), the
+/// data part of the objective the lumped fit minimises: on a linear or segmented sweep it differs from
+/// [`chi2`], which counts the dense top of the band more, so a fit at the weighted optimum can sit a
+/// little above the truth's plain χ² while below its weighted one.
+pub fn chi2_weighted(model: &dyn ImpedanceModel, sweep: &Sweep) -> f64 {
+    let g = henrybook::fit::problem::density_weights(&sweep.frequency_hz);
+    sweep
+        .frequency_hz
+        .iter()
+        .zip(&sweep.impedance_ohm)
+        .zip(&sweep.sigma_ohm)
+        .zip(&g)
+        .map(|(((&f, &z), &s), &g)| g * (model.impedance(f) - z).norm_sqr() / (s * s))
+        .sum()
+}
+
 /// The found criterion: the fit reached the data's best basin when its χ² is no worse than
 /// 1.1 × the truth's χ² + 20.
 pub fn found(chi2_fit: f64, chi2_truth: f64) -> bool {
