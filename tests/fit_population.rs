@@ -184,7 +184,7 @@ fn a_part_the_method_cannot_resolve_is_fitted_and_reported_poor_with_that_reason
 }
 
 /// A structure fit never ends above its own start: fitted from the truth (the structure the truth
-/// has), LM ends no higher than the truth's cost on the full data. The thinned stages that start a
+/// has), LM ends no higher than the truth's cost on the full data (up to rounding). The thinned stages that start a
 /// long sweep can lead into another basin than the full data's (seed 2, part 397: a shunt-thru
 /// part whose informative points near its resonance the thinning drops, from the truth's 2.2e3 to
 /// 2.8e3); the full data then decide from the start itself.
@@ -215,8 +215,9 @@ fn a_structure_fit_never_ends_above_its_start() {
             &FitControl::default(),
         )
         .unwrap_or_else(|e| panic!("{}: {e}", part.describe()));
+        // Up to rounding: a millionth of the χ² the noise implies, as the fit itself counts costs.
         assert!(
-            f.cost <= at_truth,
+            f.cost <= at_truth || same_cost(f.cost, at_truth, data.effective_residuals()),
             "{}: started at cost {at_truth:.6e}, ended at {:.6e}",
             part.describe(),
             f.cost
