@@ -309,13 +309,7 @@ fn write_file(
 
 /// χ² = Σ |Z_model − Z_meas|²/σ² over the sweep (both parts of each point).
 pub fn chi2(model: &dyn ImpedanceModel, sweep: &Sweep) -> f64 {
-    sweep
-        .frequency_hz
-        .iter()
-        .zip(&sweep.impedance_ohm)
-        .zip(&sweep.sigma_ohm)
-        .map(|((&f, &z), &s)| (model.impedance(f) - z).norm_sqr() / (s * s))
-        .sum()
+    weighted_sum(model, sweep, std::iter::repeat(1.0))
 }
 
 /// χ² with each point counted by its density weight (`henrybook::fit::problem::density_weights`), the
@@ -324,13 +318,22 @@ pub fn chi2(model: &dyn ImpedanceModel, sweep: &Sweep) -> f64 {
 /// little above the truth's plain χ² while below its weighted one.
 pub fn chi2_weighted(model: &dyn ImpedanceModel, sweep: &Sweep) -> f64 {
     let g = henrybook::fit::problem::density_weights(&sweep.frequency_hz);
+    weighted_sum(model, sweep, g)
+}
+
+/// Σ gₖ·|Z_model − Z_k|²/σₖ² over the sweep's points.
+fn weighted_sum(
+    model: &dyn ImpedanceModel,
+    sweep: &Sweep,
+    g: impl IntoIterator<Item = f64>,
+) -> f64 {
     sweep
         .frequency_hz
         .iter()
         .zip(&sweep.impedance_ohm)
         .zip(&sweep.sigma_ohm)
-        .zip(&g)
-        .map(|(((&f, &z), &s), &g)| g * (model.impedance(f) - z).norm_sqr() / (s * s))
+        .zip(g)
+        .map(|(((&f, &z), &s), g)| g * (model.impedance(f) - z).norm_sqr() / (s * s))
         .sum()
 }
 

@@ -392,10 +392,9 @@ fn fit_structure_staged(
         let start_cost = problem.cost_at(&start_theta);
         // Costs within rounding of each other (relative to the χ² the noise implies, as in the
         // nesting rule) are one cost: a noise-free sweep's start already at its optimum is no miss.
-        let floor = data.effective_residuals();
         if start_cost.is_finite()
             && fine.cost > start_cost
-            && !same_cost(fine.cost, start_cost, floor)
+            && !same_cost(fine.cost, start_cost, data.effective_residuals())
         {
             let direct = run_lm(
                 problem,
