@@ -10,50 +10,13 @@
 //! honest status calls most found fits `ok` (a found fit may still be `poor` where the method cannot
 //! measure the part).
 
+use henrybook_tests::nesting::contains;
 use henrybook_tests::population;
 
 use henrybook::fit::lumped::same_cost;
 use henrybook::fit::problem::density_weights;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit};
 use population::{METHODS, chi2, draw, found};
-
-/// The elements a candidate label such as `l0+rdc+cp+rp+ls+1s+1p` or `l0+rdc+cp+k_ac+cole_cole+air`
-/// names: (rp, k_ac, ls, series sections, parallel sections, core law and air share).
-fn elements(label: &str) -> (bool, bool, bool, usize, usize, String) {
-    let mut e = (false, false, false, 0, 0, String::new());
-    for part in label.split('+') {
-        match part {
-            "rp" => e.0 = true,
-            "k_ac" => e.1 = true,
-            "ls" => e.2 = true,
-            "l0" | "rdc" | "cp" => {}
-            p if p.ends_with('s') && p[..p.len() - 1].parse::<usize>().is_ok() => {
-                e.3 = p[..p.len() - 1].parse().unwrap()
-            }
-            p if p.ends_with('p') && p[..p.len() - 1].parse::<usize>().is_ok() => {
-                e.4 = p[..p.len() - 1].parse().unwrap()
-            }
-            law => {
-                e.5.push('+');
-                e.5.push_str(law);
-            }
-        }
-    }
-    e
-}
-
-/// Whether candidate `b` contains candidate `a` in the sense the fit enforces: the same core law (or
-/// none in both), every other element of `a` in `b`, and `a` with either the same sections or none
-/// (labels give section counts, not order, and these two cases need no order).
-fn contains(b: &str, a: &str) -> bool {
-    let (x, y) = (elements(a), elements(b));
-    a != b
-        && x.5 == y.5
-        && (!x.0 || y.0)
-        && (!x.1 || y.1)
-        && (!x.2 || y.2)
-        && ((x.3, x.4) == (y.3, y.4) || x.3 + x.4 == 0)
-}
 
 #[test]
 fn the_lumped_fit_finds_the_best_basin_on_a_drawn_population_and_flags_every_miss() {

@@ -8,9 +8,12 @@
 //! error of at most 2 % below the SRF. The files are read where they lie and never copied into the
 //! repository; without that folder the test prints a note and checks nothing.
 
+use henrybook::fit::lumped::same_cost;
+use henrybook::fit::problem::density_weights;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit_lumped};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::{ReadOptions, Sweep, read_sweep};
+use henrybook_tests::nesting::contains;
 use std::f64::consts::PI;
 use std::path::PathBuf;
 
@@ -51,6 +54,23 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
             .unwrap_or_else(|e| panic!("{file} refused: {e}"));
         let a = &report.assessment;
         let model = &report.model;
+        // The nesting rule where it matters most: real sweeps are where the core laws, which nest in
+        // one another, are fitted (up to rounding, as `same_cost` allows).
+        let floor = 2.0 * density_weights(&sweep.frequency_hz).iter().sum::<f64>();
+        for small in &report.candidates {
+            for large in &report.candidates {
+                if contains(&large.label, &small.label) {
+                    assert!(
+                        large.cost <= small.cost || same_cost(large.cost, small.cost, floor),
+                        "{file}: {} (cost {}) contains {} (cost {}) but ends higher",
+                        large.label,
+                        large.cost,
+                        small.label,
+                        small.cost
+                    );
+                }
+            }
+        }
 
         let sure = lowest_sure_points(&sweep);
         assert!(sure.len() >= 5, "{file}: the data show an inductance");
@@ -118,12 +138,58 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
         files.len()
     );
     // Every poor fit still owes the user the inductance the data show at the bottom of the band. Not
-    // yet met on all 13 (the measured count is 10; density weights that count a linear sweep's sparse
-    // low points as a log sweep would raised it from 5, fitting the core laws also on the structure
-    // with every series element to 10): this holds the line until it is.
+    // yet met on all 13; the measured count is 8. It was 10 while the fit often stopped in poorer
+    // basins: since collapsed elements are revived and the core laws nest (fit/lumped.rs), χ² fell
+    // on eight files, by 1.08× to 3.5×, and two of them (9x5x3.44, 13x8x6) went from within 5 % to
+    // +6.0 % and +5.2 %. On 9x5x3.44 the data's own Im Z/ω rises from 0.86 µH at 98 kHz to 1.22 µH at
+    // 600 kHz, far below the SRF, which no element of the model produces there (a falling
+    // permeability only lowers L, and Cp raises it by about (f/SRF)²): a reading at a few ohms against
+    // the 50 Ω port that the better fit no longer bends to. This holds the line until the bottom is met.
     assert!(
-        l_within_5_percent >= 10,
+        l_within_5_percent >= 8,
         "L at the lowest sure points within 5 % on only {l_within_5_percent} of {}",
+        files.len()
+    );
+}
+
+/// A fit must not swing between basins on a change no measurement can make: every file is fitted
+/// as read and with every impedance scaled by 1 + 1e-12, and the chosen candidate's χ² must agree within
+/// 1 %. Before collapsed elements were revived (fit/lumped.rs, stage D), scaling one start (the
+/// curve's resistance reading) by 1 + 1e-12 moved the chosen χ² of three files by 2× to 3.8×. Scaling
+/// the data by 1 ± 1e-12, 1 + 3e-12 or 1 ± 1e-9 now moves at most two files by more than 1 % (13x8x6
+/// by 28 %, gray by 7 %, 9x5x3.44 by 18 %, one or two at a time); the bound below is 11.
+#[test]
+fn a_real_sweep_fit_does_not_move_with_a_rounding_level_change() {
+    let Some(dir) = folder() else { return };
+    let files = henrybook_tests::real_sweep_files(&dir);
+    let chosen_cost = |sweep: &Sweep| {
+        let report = fit_lumped(sweep, &FitOptions::default(), &FitControl::default()).unwrap();
+        let chosen = report
+            .candidates
+            .iter()
+            .find(|c| c.chosen)
+            .expect("a chosen candidate");
+        (chosen.cost, chosen.label.clone())
+    };
+    let mut steady = 0;
+    for file in &files {
+        let bytes = std::fs::read(dir.join(file)).unwrap();
+        let sweep = read_sweep(file, &bytes, &ReadOptions::default()).unwrap();
+        let mut nudged = sweep.clone();
+        for z in nudged.impedance_ohm.iter_mut() {
+            *z *= 1.0 + 1e-12;
+        }
+        let ((a, label_a), (b, label_b)) = (chosen_cost(&sweep), chosen_cost(&nudged));
+        let moved = (a - b).abs() / a.min(b);
+        eprintln!(
+            "{file}: χ² {a:.6e} ({label_a}) and {b:.6e} ({label_b}): {:.2} %",
+            100.0 * moved
+        );
+        steady += (moved <= 0.01) as usize;
+    }
+    assert!(
+        steady >= 11,
+        "only {steady} of {} fits stay within 1 % of χ² when the data change by 1e-12",
         files.len()
     );
 }

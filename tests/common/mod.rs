@@ -1,6 +1,7 @@
 //! Shared helpers for the integration tests and reference checks; [`service`] starts the real service.
 
 pub mod mna;
+pub mod nesting;
 pub mod population;
 pub mod service;
 pub mod synth;

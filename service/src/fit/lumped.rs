@@ -495,6 +495,9 @@ fn embed(model: &LumpedModel, target: &Structure, data: &FitData, guess: &Guess)
     let z_max = data.z.iter().map(|z| z.norm()).fold(0.0f64, f64::max);
     let sigma_min = data.sigma.iter().copied().fold(f64::INFINITY, f64::min);
     let mut m = model.clone();
+    if target.dispersion.is_some() || m.core.is_some() {
+        carry_core(&mut m, target);
+    }
     if target.has_rp && m.rp_ohm.is_none() {
         m.rp_ohm = Some(1e5 * z_max);
     }
@@ -542,17 +545,77 @@ fn embed(model: &LumpedModel, target: &Structure, data: &FitData, guess: &Guess)
     m
 }
 
-/// Does structure `small` have a subset of `large`'s elements (sections as a prefix, kinds equal; the
-/// same core law, or none, and the same air share)?
+/// Does structure `small` have a subset of `large`'s elements (sections as a prefix, kinds equal; a core
+/// that [`core_nested`] puts inside `large`'s)?
 fn nested_in(small: &Structure, large: &Structure) -> bool {
     small != large
-        && small.dispersion == large.dispersion
-        && small.has_air == large.has_air
-        && (!small.has_rp || large.has_rp)
+        && core_nested(small, large)
         && (!small.has_k_ac || large.has_k_ac)
         && (!small.has_ls || large.has_ls)
         && small.sections.len() <= large.sections.len()
         && large.sections.starts_with(&small.sections)
+}
+
+/// Whether `small`'s core is `large`'s with some parameters at a limit (model/lumped.rs): no core loss is
+/// rp → ∞; a single pole (rp) is Cole–Cole with α → 0; Cole–Cole is Havriliak–Negami with 1 − β → 0
+/// and resonance-plus-relaxation with the resonant share → 0; no air path is an air fraction → 0. The
+/// resonance law holds a single pole only approximately (overdamped), so nothing nests in it but
+/// itself.
+fn core_nested(small: &Structure, large: &Structure) -> bool {
+    use CoreLaw::{ColeCole, HavriliakNegami, ResonanceRelaxation};
+    let relaxing = |law: CoreLaw| matches!(law, ColeCole | HavriliakNegami | ResonanceRelaxation);
+    (!small.has_air || large.has_air)
+        && match (small.dispersion, large.dispersion) {
+            (None, None) => !small.has_rp || large.has_rp,
+            (None, Some(law)) => small.has_rp && relaxing(law),
+            (Some(a), Some(b)) => {
+                a == b || (a == ColeCole && matches!(b, HavriliakNegami | ResonanceRelaxation))
+            }
+            (Some(_), None) => false,
+        }
+}
+
+/// How far [`embed`] sets a core parameter from its nesting limit: α, 1 − β, the resonant share and
+/// the air fraction. The core's m(f) then changes by about this much relative (times |ln f/f_c| for
+/// α), far below any sweep's noise, and each of these is fitted on a log scale, so LM can still move it
+/// by decades in a step.
+const NEGLIGIBLE_CORE: f64 = 1e-8;
+
+/// `model`'s core carried into `target`'s law along [`core_nested`], the new parameters negligible;
+/// the core is removed when `target` has none.
+fn carry_core(m: &mut LumpedModel, target: &Structure) {
+    let Some(law) = target.dispersion else {
+        m.core = None;
+        return;
+    };
+    let mut core = m.core.unwrap_or_else(|| CoreDispersion {
+        // L0 ‖ Rp is a single pole at Rp/(2π·L0).
+        law: CoreLaw::ColeCole,
+        corner_hz: m.rp_ohm.unwrap_or(f64::INFINITY) / (2.0 * std::f64::consts::PI * m.l0_h),
+        alpha: NEGLIGIBLE_CORE,
+        beta: 1.0,
+        damping: 0.0,
+        air_fraction: 0.0,
+        resonance_hz: 0.0,
+        resonance_share: 0.0,
+    });
+    match (core.law, law) {
+        (CoreLaw::ColeCole, CoreLaw::HavriliakNegami) => core.beta = 1.0 - NEGLIGIBLE_CORE,
+        (CoreLaw::ColeCole, CoreLaw::ResonanceRelaxation) => {
+            core.resonance_hz = core.corner_hz;
+            core.damping = 0.5;
+            core.resonance_share = NEGLIGIBLE_CORE;
+        }
+        _ => {}
+    }
+    core.law = law;
+    core.air_fraction = match (target.has_air, core.air_fraction > 0.0) {
+        (false, _) => 0.0,
+        (true, true) => core.air_fraction,
+        (true, false) => NEGLIGIBLE_CORE,
+    };
+    m.core = Some(core);
+    m.rp_ohm = None;
 }
 
 /// Uncertainty, identifiability and correlation of a structure fit.
@@ -953,7 +1016,13 @@ pub fn same_cost(a: f64, b: f64, floor: f64) -> bool {
 ///    one's solution with the extra elements negligible, so no larger candidate reports a higher cost
 ///    than a smaller one inside it ([`NESTING_TOLERANCE`]); model selection then compares structures,
 ///    not failed optimisations.
-/// 5. Selection by BIC; uncertainty, identifiability, derived figures and the assessment
+/// 5. Core laws (stage C, [`dispersive_stage`]) when the best single-pole model leaves misfit; the
+///    laws nest in one another and in the single pole ([`core_nested`]), and the nesting rule holds
+///    across them too.
+/// 6. Collapsed elements (stage D, [`revive_stage`]): when the best candidate still leaves misfit,
+///    the best few are fitted again with any element a log-scale step drove to its wall set back to a
+///    moderate value.
+/// 7. Selection by BIC; uncertainty, identifiability, derived figures and the assessment
 ///    ([`super::assess`]) of the chosen model.
 pub fn fit_lumped(
     sweep: &Sweep,
@@ -1005,7 +1074,11 @@ pub fn fit_lumped(
     fit_subsets(&mut fits, &mut runner, residuals)?;
     enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
     dispersive_stage(&mut fits, &mut runner, sweep, residuals)?;
-    // The laws are fitted on more than one structure: the same rule among them.
+    // The laws are fitted on more than one structure and nest in each other: the same rule among
+    // them, before and after the collapsed elements are revived (a law carried up from the one it
+    // contains starts with its new parameter negligible, which is a collapsed element).
+    enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
+    revive_stage(&mut fits, &mut runner, sweep, &guess, residuals)?;
     enforce_nesting(&mut fits, &mut runner, &data, &guess)?;
     let ran_out_of_time = runner.ran_out_of_time;
     let last_error = runner.last_error.take();
@@ -1371,6 +1444,95 @@ fn dispersive_stage(
     Ok(())
 }
 
+/// How many of the best candidates (by BIC) [`revive_stage`] looks at.
+const REVIVED_CANDIDATES: usize = 3;
+
+/// Stage D of [`fit_lumped`]: elements that collapsed. Every element is fitted as the logarithm of its
+/// value, so one that an early step drove to its lower wall (ls at 0.1 fH, a resonant share at 1e-9)
+/// has a vanishing derivative there and no later step brings it back, though the data may want it:
+/// on real toroids a collapsed ls left χ² twice what the structure reaches with ls of tens of nH.
+/// When the best candidate still leaves misfit, each of the best [`REVIVED_CANDIDATES`] with such an
+/// element is fitted again with the element at a moderate value (the curve's reading, or a share of
+/// a few per cent), and the better end is kept.
+fn revive_stage(
+    fits: &mut [StructureFit],
+    runner: &mut Runner<'_>,
+    sweep: &Sweep,
+    guess: &Guess,
+    residuals: f64,
+) -> Result<(), FitError> {
+    let bic_of = |f: &StructureFit| bic(f.cost, residuals, f.structure.len());
+    let mut order: Vec<usize> = (0..fits.len()).collect();
+    order.sort_by(|&a, &b| bic_of(&fits[a]).total_cmp(&bic_of(&fits[b])));
+    let Some(&first) = order.first() else {
+        return Ok(());
+    };
+    let best = fits[first].model();
+    let rms_weighted = super::derived::quality(&best, sweep).rms_weighted;
+    if !leaves_misfit(
+        &assess::assess(&best, sweep, fits[first].structure.len()),
+        rms_weighted,
+    ) {
+        return Ok(());
+    }
+    for &i in order.iter().take(REVIVED_CANDIDATES) {
+        let starts: Vec<(LumpedModel, bool)> = revived(&fits[i].model(), &fits[i].structure, guess)
+            .into_iter()
+            .map(|m| (m, true))
+            .collect();
+        let structure = fits[i].structure.clone();
+        if let Some(f) = runner.best_of(&structure, &starts)?
+            && f.cost < fits[i].cost
+        {
+            fits[i] = f;
+        }
+    }
+    Ok(())
+}
+
+/// Starts from `model` with each element of `structure` that collapsed (below a millionth of where it
+/// matters) set back to a moderate value; none when nothing collapsed. A collapsed resonant share
+/// of the core comes back at two places, at the relaxation's corner and a decade above it (where the
+/// real toroids put it).
+fn revived(model: &LumpedModel, structure: &Structure, guess: &Guess) -> Vec<LumpedModel> {
+    const COLLAPSED: f64 = 1e-6;
+    let mut m = model.clone();
+    let mut changed = false;
+    if structure.has_ls && m.ls_h < COLLAPSED * m.l0_h {
+        m.ls_h = guess.base.ls_h.clamp(1e-4 * m.l0_h, 1e-2 * m.l0_h);
+        changed = true;
+    }
+    if structure.has_k_ac
+        && guess.base.k_ac_ohm_per_sqrt_hz > 0.0
+        && m.k_ac_ohm_per_sqrt_hz < COLLAPSED * guess.base.k_ac_ohm_per_sqrt_hz
+    {
+        m.k_ac_ohm_per_sqrt_hz = 0.1 * guess.base.k_ac_ohm_per_sqrt_hz;
+        changed = true;
+    }
+    if let Some(c) = m.core.as_mut() {
+        if c.law != CoreLaw::Resonance && c.alpha < COLLAPSED {
+            c.alpha = 0.05;
+            changed = true;
+        }
+        if structure.has_air && c.air_fraction < COLLAPSED {
+            c.air_fraction = 0.05;
+            changed = true;
+        }
+        if c.law == CoreLaw::ResonanceRelaxation && c.resonance_share < COLLAPSED {
+            c.resonance_share = 0.05;
+            c.resonance_hz = c.corner_hz;
+            c.damping = 0.5;
+            let mut above = m.clone();
+            if let Some(c) = above.core.as_mut() {
+                c.resonance_hz = 10.0 * c.corner_hz;
+                c.damping = 1.0;
+            }
+            return vec![m, above];
+        }
+    }
+    if changed { vec![m] } else { Vec::new() }
+}
+
 /// The core laws of [`dispersive_stage`] on one single-pole structure, each candidate pushed to `fits`.
 fn fit_laws(
     fits: &mut Vec<StructureFit>,
@@ -1445,7 +1607,7 @@ fn fit_laws(
         fits.push(f);
     }
     // A resonant mechanism beside the relaxing one, from the fitted Cole–Cole with a negligible share
-    // and with shares that matter at a few places below and at its corner.
+    // and with shares that matter at a few places below, at and a decade above its corner.
     let mixed_start = |share: f64, at: f64| {
         let mut m = cc_model.clone();
         if let Some(c) = m.core.as_mut() {
@@ -1464,6 +1626,7 @@ fn fit_laws(
                 (mixed_start(1e-3, 0.5), false),
                 (mixed_start(0.3, 0.3), true),
                 (mixed_start(0.3, 1.0), true),
+                (mixed_start(0.1, 10.0), true),
             ],
         )?
         .map(|f| {
@@ -1768,6 +1931,68 @@ mod tests {
         ] {
             assert!((got / want - 1.0).abs() < 1e-3, "{got} vs {want}");
         }
+    }
+
+    /// Each step of the chain of core laws that [`embed`] takes (rp → Cole–Cole → Havriliak–Negami,
+    /// Cole–Cole → resonance plus relaxation, no air path → one) changes Z by no more than about
+    /// [`NEGLIGIBLE_CORE`] relative over the band, so a refit from there starts at the smaller
+    /// candidate's cost; and only those steps count as nesting.
+    #[test]
+    fn a_core_carried_up_the_chain_of_laws_keeps_its_impedance() {
+        let sweep = synthetic(&choke(), 100.0, 300e6, 401, 3);
+        let data = prepare(&sweep, &FitOptions::default()).unwrap();
+        let (guess, _) = initial::read_curve(&data);
+        let single = choke();
+        let of = |law: Option<CoreLaw>, air: bool| Structure {
+            has_rp: law.is_none(),
+            dispersion: law,
+            has_air: air,
+            ..Structure::of(&single)
+        };
+        let worst = |a: &LumpedModel, b: &LumpedModel| {
+            sweep
+                .frequency_hz
+                .iter()
+                .map(|&f| (a.impedance(f) - b.impedance(f)).norm() / a.impedance(f).norm())
+                .fold(0.0f64, f64::max)
+        };
+        let cc = embed(&single, &of(Some(CoreLaw::ColeCole), false), &data, &guess);
+        assert!(
+            worst(&single, &cc) < 1e-6,
+            "rp → Cole–Cole: {}",
+            worst(&single, &cc)
+        );
+        for (law, air) in [
+            (CoreLaw::HavriliakNegami, false),
+            (CoreLaw::ResonanceRelaxation, false),
+            (CoreLaw::ColeCole, true),
+            (CoreLaw::HavriliakNegami, true),
+        ] {
+            let target = of(Some(law), air);
+            assert!(nested_in(&of(Some(CoreLaw::ColeCole), false), &target));
+            let up = embed(&cc, &target, &data, &guess);
+            assert_eq!(Structure::of(&up), target, "{law:?} air {air}");
+            let moved = worst(&cc, &up);
+            assert!(moved < 1e-6, "Cole–Cole → {law:?} (air {air}): {moved}");
+        }
+        for (small, large) in [
+            (
+                Some(CoreLaw::HavriliakNegami),
+                Some(CoreLaw::ResonanceRelaxation),
+            ),
+            (Some(CoreLaw::ColeCole), Some(CoreLaw::Resonance)),
+            (None, Some(CoreLaw::Resonance)),
+            (Some(CoreLaw::ColeCole), None),
+        ] {
+            assert!(
+                !nested_in(&of(small, false), &of(large, false)),
+                "{small:?} in {large:?}"
+            );
+        }
+        assert!(!nested_in(
+            &of(Some(CoreLaw::ColeCole), true),
+            &of(Some(CoreLaw::ColeCole), false)
+        ));
     }
 
     #[test]
