@@ -14,7 +14,7 @@
 //!   stretch.
 //! - Rdc, k_ac, Rp: the winding impedance Zw = 1/(1/Z − jωCp) below SRF/2 has
 //!   Re Zw ≈ Rdc + k·√f + (ωL0)²/Rp while ωL0 ≪ Rp; the three coefficients come from a weighted
-//!   non-negative least-squares fit of that line (exhaustive over the eight active sets).
+//!   non-negative least-squares fit of that line (the crate's active-set NNLS on unit-norm columns).
 //! - ls: from the series resonance of ls with Cp when one shows above the SRF, else from the capacitive
 //!   stretch, ω·Im Z = ω²·ls − 1/Cp, by least squares.
 //! - Extra sections: from the pairs (series resonance, next parallel resonance) above the SRF, solved for
@@ -26,6 +26,7 @@
 //! with the SRF kept, the core loss and series resistances moved by a decade) as the starts of the base
 //! structure; the fit keeps the best.
 
+use super::linalg::nnls::nnls;
 use super::problem::FitData;
 use crate::model::{LumpedModel, Section, SectionKind};
 use nalgebra::{DMatrix, DVector};
@@ -168,44 +169,21 @@ fn lstsq(rows: &[(Vec<f64>, f64, f64)]) -> Option<Vec<f64>> {
     out.iter().all(|v| v.is_finite()).then_some(out)
 }
 
-/// Non-negative weighted least squares for a few columns, by trying every active set.
-///
-/// Kept beside the crate's active-set solver (`linalg::nnls`) on purpose. That solver, on unit-norm
-/// columns, returns the same coefficients here to 3e-10 relative (the same active set on every curve
-/// of the drawn population, the demo data and the real sweeps), yet the lumped fit of a real sweep
-/// reaches a different local minimum from a start that differs at that level: the real-sweep test's
-/// count of fits with L within 5 % falls from 10 to 9 of 13. Scaling this function's own result by
-/// 1 + 1e-12 drops the count to 9 as well, so the cause is the fit's sensitivity to its start, which
-/// has to be settled before the solver here can change.
-fn nnls_small(rows: &[(Vec<f64>, f64, f64)]) -> Option<Vec<f64>> {
+/// Non-negative weighted least squares (columns × weights) by the crate's active-set solver
+/// ([`nnls`], Lawson & Hanson), on columns scaled to unit norm; `None` without rows.
+fn nnls_weighted(rows: &[(Vec<f64>, f64, f64)]) -> Option<Vec<f64>> {
     let n = rows.first()?.0.len();
-    let mut best: Option<(f64, Vec<f64>)> = None;
-    for mask in 1..(1usize << n) {
-        let cols: Vec<usize> = (0..n).filter(|j| mask >> j & 1 == 1).collect();
-        let sub: Vec<(Vec<f64>, f64, f64)> = rows
-            .iter()
-            .map(|(x, y, w)| (cols.iter().map(|&j| x[j]).collect(), *y, *w))
-            .collect();
-        let Some(x) = lstsq(&sub) else { continue };
-        if x.iter().any(|v| *v < 0.0) {
-            continue;
-        }
-        let mut full = vec![0.0; n];
-        for (c, v) in cols.iter().zip(&x) {
-            full[*c] = *v;
-        }
-        let cost: f64 = rows
-            .iter()
-            .map(|(xr, y, w)| {
-                let p: f64 = xr.iter().zip(&full).map(|(a, b)| a * b).sum();
-                ((p - y) * w).powi(2)
-            })
-            .sum();
-        if best.as_ref().is_none_or(|b| cost < b.0) {
-            best = Some((cost, full));
-        }
+    let m = rows.len();
+    let mut g = DMatrix::from_fn(m, n, |i, j| rows[i].0[j] * rows[i].2);
+    let h: Vec<f64> = rows.iter().map(|r| r.1 * r.2).collect();
+    let scale: Vec<f64> = (0..n)
+        .map(|j| g.column(j).norm().max(f64::MIN_POSITIVE))
+        .collect();
+    for (j, sc) in scale.iter().enumerate() {
+        g.column_mut(j).scale_mut(1.0 / sc);
     }
-    best.map(|b| b.1)
+    let u = nnls(g.as_slice(), m, n, &h);
+    Some(u.iter().zip(&scale).map(|(v, sc)| v / sc).collect())
 }
 
 /// The curve's reading ([`guess`]) with the rational fit's L0 added to the readings the plausibility
@@ -432,7 +410,7 @@ fn winding_resistance_fit(data: &FitData, l0: f64, cp: f64, srf_est: f64) -> Vec
         let x = w(k) * l0;
         rows.push((vec![1.0, fk.sqrt(), x * x], zw.re, 1.0 / sigma));
     }
-    nnls_small(&rows).unwrap_or_else(|| vec![0.0; 3])
+    nnls_weighted(&rows).unwrap_or_else(|| vec![0.0; 3])
 }
 
 /// (notch frequency, peak frequency, resistance at notch, resistance at peak), as in
