@@ -6,6 +6,7 @@
 
 use super::{Store, StoreError, StoreResult};
 use crate::registry::grid;
+use crate::registry::ids::PartNumber;
 use crate::registry::wire::{PartPage, PartSummary};
 use sqlx::{QueryBuilder, Row, Sqlite};
 
@@ -65,7 +66,8 @@ impl Sort {
 pub struct Cursor {
     /// Sort value of the last item (absent when sorting by part number).
     pub v: Option<f64>,
-    pub p: String,
+    /// Part number of the last item (a cursor naming no valid part number does not decode).
+    pub p: PartNumber,
 }
 
 impl Cursor {
@@ -271,7 +273,7 @@ impl Store {
             sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
             items.push(summary_of(row)?);
         }
-        let next_cursor = cut_page(&mut items, &sort_values, query.limit);
+        let next_cursor = cut_page(&mut items, &sort_values, query.limit)?;
         self.attach_series_resonances(&mut items).await?;
         Ok(PartPage {
             items,
@@ -426,11 +428,12 @@ impl Plan<'_> {
                     .push(format!(" OR ({e} = "))
                     .push_bind(v)
                     .push(" AND p.part_number > ")
-                    .push_bind(c.p.clone())
+                    .push_bind(c.p.as_str().to_owned())
                     .push("))");
             }
             _ => {
-                q.push(" AND p.part_number > ").push_bind(c.p.clone());
+                q.push(" AND p.part_number > ")
+                    .push_bind(c.p.as_str().to_owned());
             }
         }
     }
@@ -581,18 +584,25 @@ fn cut_page(
     items: &mut Vec<PartSummary>,
     sort_values: &[Option<f64>],
     limit: i64,
-) -> Option<String> {
+) -> StoreResult<Option<String>> {
     if items.len() as i64 <= limit {
-        return None;
+        return Ok(None);
     }
     items.truncate(limit as usize);
-    items.last().map(|last| {
+    let Some(last) = items.last() else {
+        return Ok(None);
+    };
+    // Stored part numbers passed `PartNumber::parse` on the way in; one that does not now is a
+    // stored value that does not decode, an internal error rather than a cursor that never could.
+    let p = PartNumber::parse(&last.part_number)
+        .map_err(|e| StoreError::Database(sqlx::Error::Decode(e.into())))?;
+    Ok(Some(
         Cursor {
             v: sort_values[limit as usize - 1],
-            p: last.part_number.clone(),
+            p,
         }
-        .encode()
-    })
+        .encode(),
+    ))
 }
 
 /// Pushes the SQL for the lowest |Z| of the fit `f` over `[lo, hi]`, from its grid rows (see
@@ -646,4 +656,22 @@ fn push_z_min(q: &mut QueryBuilder<Sqlite>, lo: f64, hi: f64) {
         }
     }
     q.push("), ").push_bind(NONE).push(")");
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_cursor_decodes_only_to_a_valid_part_number() {
+        let c = Cursor {
+            v: Some(4.7e-6),
+            p: PartNumber::parse("CH-1205/47u").unwrap(),
+        };
+        assert_eq!(Cursor::decode(&c.encode()), Ok(c));
+        // Well-formed hex JSON, but the part number has a space: not a cursor this service hands out.
+        let forged = hex::encode(br#"{"v":null,"p":"CH 1205"}"#);
+        assert!(Cursor::decode(&forged).is_err());
+        assert!(Cursor::decode("zz").is_err());
+    }
 }
