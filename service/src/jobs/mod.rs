@@ -648,7 +648,7 @@ mod tests {
 
     #[test]
     fn the_migration_allows_exactly_the_failure_kinds() {
-        let sql = include_str!("../../../migrations/0010_fit_error_kind.sql");
+        let sql = include_str!("../../../migrations/sqlite/0010_fit_error_kind.sql");
         let kinds: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
         let lists: Vec<Vec<&str>> = sql
             .split("NEW.error_kind NOT IN (")

@@ -1,5 +1,5 @@
 //! Storage on SQLite through sqlx: parts, lots, sweeps, fits and their revisions, the job table,
-//! query figures, tokens and the audit trail (schema in `migrations/`).
+//! query figures, tokens and the audit trail (schema in `migrations/sqlite/`).
 //!
 //! Writes go through a single-connection writer pool, so write transactions never race each other into
 //! SQLITE_BUSY_SNAPSHOT; reads use a separate pool of WAL readers. The store translates between rows and
@@ -22,7 +22,7 @@ use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, S
 use std::path::Path;
 use std::time::Duration;
 
-pub static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../migrations");
+pub static MIGRATOR: sqlx::migrate::Migrator = sqlx::migrate!("../migrations/sqlite");
 
 /// Errors the HTTP layer maps to problems; anything else is an internal error (logged, not shown).
 #[derive(Debug, thiserror::Error)]
