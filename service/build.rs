@@ -1,6 +1,7 @@
 //! Generates the gRPC messages and services from `api/henrybook.proto` with protox (pure Rust, so no
 //! `protoc` is needed) and tonic-prost-build. Also tells cargo to rebuild the crate when a migration
-//! is added or changed: `sqlx::migrate!` embeds `migrations/sqlite/` at compile time (cargo watches the whole `migrations/` tree).
+//! is added or changed: `sqlx::migrate!` embeds `migrations/sqlite/` (and `migrations/postgres/`) at
+//! compile time; cargo watches the whole `migrations/` tree.
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
     let crate_dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));

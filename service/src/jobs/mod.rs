@@ -647,22 +647,33 @@ mod tests {
     }
 
     #[test]
-    fn the_migration_allows_exactly_the_failure_kinds() {
-        let sql = include_str!("../../../migrations/sqlite/0010_fit_error_kind.sql");
+    fn the_migrations_allow_exactly_the_failure_kinds() {
         let kinds: Vec<&str> = FailureKind::ALL.iter().map(|k| k.as_str()).collect();
-        let lists: Vec<Vec<&str>> = sql
-            .split("NEW.error_kind NOT IN (")
-            .skip(1)
-            .map(|rest| {
-                let list = rest.split_once(')').expect("the list is closed").0;
-                list.split(',')
-                    .map(|n| n.trim().trim_matches('\''))
-                    .collect()
-            })
-            .collect();
-        assert_eq!(lists.len(), 2, "one list for inserts, one for updates");
-        for list in lists {
-            assert_eq!(list, kinds);
+        // SQLite: one trigger for inserts, one for updates; PostgreSQL: one function both call.
+        for (sql, expected_lists) in [
+            (
+                include_str!("../../../migrations/sqlite/0010_fit_error_kind.sql"),
+                2,
+            ),
+            (
+                include_str!("../../../migrations/postgres/0010_fit_error_kind.sql"),
+                1,
+            ),
+        ] {
+            let lists: Vec<Vec<&str>> = sql
+                .split("NEW.error_kind NOT IN (")
+                .skip(1)
+                .map(|rest| {
+                    let list = rest.split_once(')').expect("the list is closed").0;
+                    list.split(',')
+                        .map(|n| n.trim().trim_matches('\''))
+                        .collect()
+                })
+                .collect();
+            assert_eq!(lists.len(), expected_lists);
+            for list in lists {
+                assert_eq!(list, kinds);
+            }
         }
     }
 }

@@ -12,6 +12,7 @@ pub mod fits;
 pub mod integrity;
 pub mod jobs;
 pub mod parts;
+pub mod pg;
 pub mod query;
 pub mod sweeps;
 pub mod tokens;
