@@ -397,7 +397,8 @@ async fn an_expired_lease_is_reclaimed_with_a_larger_token_and_the_old_worker_wr
         PgQueue::new(db.pool.clone()),
         PgQueue::new(db.replica().await),
     );
-    let short = Duration::from_millis(50);
+    // Leases of a second: the claims before the expiry are far quicker even on a loaded machine.
+    let short = Duration::from_millis(1000);
 
     let first = q.claim_job(short, 3).await.unwrap().unwrap();
     assert_eq!((first.fit_id, first.token, first.attempt), (ids[0], 1, 1));
@@ -411,7 +412,7 @@ async fn an_expired_lease_is_reclaimed_with_a_larger_token_and_the_old_worker_wr
     assert_eq!(other.claim_job(short, 3).await.unwrap(), None, "both held");
 
     // The first worker stops renewing; another replica's claim takes the job over.
-    tokio::time::sleep(Duration::from_millis(120)).await;
+    tokio::time::sleep(Duration::from_millis(1200)).await;
     let again = other
         .claim_job(Duration::from_secs(60), 3)
         .await
@@ -497,7 +498,8 @@ async fn attempts_run_out_cancels_settle_and_a_release_is_not_counted() {
     let db = TestDb::new().await;
     let ids = queue_fits(&db.pool, 3).await;
     let q = PgQueue::new(db.pool.clone());
-    let short = Duration::from_millis(20);
+    // Leases of a second, as above.
+    let short = Duration::from_millis(1000);
     let long = Duration::from_secs(60);
 
     // A released claim goes back without counting; the next claim's token is larger still.
@@ -510,10 +512,10 @@ async fn attempts_run_out_cancels_settle_and_a_release_is_not_counted() {
     let b = q.claim_job(long, 2).await.unwrap().unwrap();
     let running = q.claim_job(long, 2).await.unwrap().unwrap();
     assert!(q.mark_started(&running).await.unwrap());
-    tokio::time::sleep(Duration::from_millis(50)).await;
+    tokio::time::sleep(Duration::from_millis(1200)).await;
     let c3 = q.claim_job(short, 2).await.unwrap().unwrap();
     assert_eq!((c3.fit_id, c3.attempt, c3.token), (ids[0], 2, 3));
-    tokio::time::sleep(Duration::from_millis(50)).await;
+    tokio::time::sleep(Duration::from_millis(1200)).await;
     assert_eq!(q.claim_job(short, 2).await.unwrap(), None);
     let (status, _, kind) = fit_row(&db.pool, ids[0]).await;
     assert_eq!(
