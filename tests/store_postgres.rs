@@ -721,3 +721,28 @@ async fn a_batch_of_many_outcomes_is_one_transaction_without_savepoints() {
     .to_string();
     assert!(twice.contains("more than one outcome"), "{twice}");
 }
+
+#[tokio::test]
+async fn a_listener_whose_connection_is_ended_polls_and_then_wakes_again() {
+    let db = TestDb::new().await;
+    let mut waker = JobWaker::listen(&db.pool).await.unwrap();
+    let ended: Vec<bool> = sqlx::query_scalar(
+        "SELECT pg_terminate_backend(pid) FROM pg_stat_activity \
+         WHERE datname = current_database() AND query LIKE 'LISTEN%'",
+    )
+    .fetch_all(&db.pool)
+    .await
+    .unwrap();
+    assert_eq!(ended, [true], "the listener's session was found and ended");
+    // No notification can arrive on the lost connection: the wait ends by polling.
+    assert_eq!(waker.wait(Duration::from_millis(300)).await, Wake::Polled);
+    // The listener connects and listens again by itself; an enqueue wakes it as before.
+    let waiting = tokio::spawn(async move { waker.wait(Duration::from_secs(30)).await });
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    queue_fits(&db.pool, 1).await;
+    let wake = tokio::time::timeout(Duration::from_secs(10), waiting)
+        .await
+        .expect("woken well before the 30 s poll")
+        .unwrap();
+    assert_eq!(wake, Wake::Notified);
+}
