@@ -746,3 +746,85 @@ async fn a_listener_whose_connection_is_ended_polls_and_then_wakes_again() {
         .unwrap();
     assert_eq!(wake, Wake::Notified);
 }
+
+/// Waits until some session of this database waits for a row lock (the statement under test).
+async fn until_one_waits_for_a_lock(pool: &PgPool) {
+    for _ in 0..200 {
+        let waiting: i64 = sqlx::query_scalar(
+            "SELECT COUNT(*) FROM pg_stat_activity \
+             WHERE datname = current_database() AND wait_event_type = 'Lock'",
+        )
+        .fetch_one(pool)
+        .await
+        .unwrap();
+        if waiting > 0 {
+            return;
+        }
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    panic!("the statement under test never waited for the row lock");
+}
+
+#[tokio::test]
+async fn writes_racing_a_takeover_or_a_cancel_wait_for_it_and_then_write_nothing() {
+    let db = TestDb::new().await;
+    let ids = queue_fits(&db.pool, 2).await;
+    let q = PgQueue::new(db.pool.clone());
+    let long = Duration::from_secs(60);
+    let a = q.claim_job(long, 3).await.unwrap().unwrap();
+    let b = q.claim_job(long, 3).await.unwrap().unwrap();
+    assert_eq!((a.fit_id, b.fit_id), (ids[0], ids[1]));
+    assert!(q.mark_started(&a).await.unwrap());
+
+    // Another replica takes job a over (what its claim does to an expired row), not yet committed;
+    // a's outcome, sent meanwhile, waits for that row and then finds its token gone.
+    let mut takeover = db.pool.begin().await.unwrap();
+    sqlx::query(
+        "UPDATE jobs SET claim_token = claim_token + 1, attempts = attempts + 1 WHERE fit_id = $1",
+    )
+    .bind(a.fit_id)
+    .execute(&mut *takeover)
+    .await
+    .unwrap();
+    let racing = {
+        let q = q.clone();
+        tokio::spawn(async move { q.complete(&[(a, succeeded("{\"late\":1}"))]).await })
+    };
+    until_one_waits_for_a_lock(&db.pool).await;
+    takeover.commit().await.unwrap();
+    assert_eq!(racing.await.unwrap().unwrap(), [false]);
+    assert_eq!(
+        fit_row(&db.pool, a.fit_id).await,
+        ("running".to_string(), None, None)
+    );
+
+    // A cancel of the claimed, not yet started job b, not yet committed; b's worker starting it
+    // meanwhile waits for the job row and then does not show it as running.
+    let mut cancel = db.pool.begin().await.unwrap();
+    sqlx::query("SELECT state FROM jobs WHERE fit_id = $1 FOR UPDATE")
+        .bind(b.fit_id)
+        .execute(&mut *cancel)
+        .await
+        .unwrap();
+    sqlx::query("UPDATE jobs SET state = 'done', lease_until_ms = NULL WHERE fit_id = $1")
+        .bind(b.fit_id)
+        .execute(&mut *cancel)
+        .await
+        .unwrap();
+    sqlx::query("UPDATE fits SET status = 'cancelled', error_kind = 'cancelled' WHERE fit_id = $1")
+        .bind(b.fit_id)
+        .execute(&mut *cancel)
+        .await
+        .unwrap();
+    let starting = {
+        let q = q.clone();
+        tokio::spawn(async move { q.mark_started(&b).await })
+    };
+    until_one_waits_for_a_lock(&db.pool).await;
+    cancel.commit().await.unwrap();
+    assert!(!starting.await.unwrap().unwrap());
+    assert_eq!(
+        fit_row(&db.pool, b.fit_id).await,
+        ("cancelled".to_string(), None, Some("cancelled".to_string()))
+    );
+}
