@@ -6,6 +6,9 @@
 //! the wire types in [`crate::registry::wire`]; it computes nothing beyond calling the pure
 //! [`crate::registry`] functions when a stored verdict or drift must follow a change of limits or
 //! baseline.
+//!
+//! [`pg`] holds the PostgreSQL schema and job queue for several replicas; the service does not use it
+//! yet.
 
 pub mod batch;
 pub mod fits;
