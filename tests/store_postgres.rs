@@ -527,7 +527,12 @@ async fn attempts_run_out_cancels_settle_and_a_release_is_not_counted() {
         .fetch_one(&db.pool)
         .await
         .unwrap();
-    assert!(error.contains("started 2 times"), "{error}");
+    // The same words as the SQLite queue's (store::jobs).
+    assert_eq!(
+        error,
+        "the fit was started 2 times and never finished (the worker stopped each time); \
+         retry it to run it again"
+    );
 
     // Cancelling a claimed but not started fit ends it at once: its worker cannot start it.
     assert_eq!(q.cancel(b.fit_id).await.unwrap(), Cancel::Cancelled);
