@@ -10,7 +10,7 @@
 //! honest status calls most found fits `ok` (a found fit may still be `poor` where the method cannot
 //! measure the part).
 
-use henrybook_tests::nesting::contains;
+use henrybook_tests::nesting::assert_nested_costs;
 use henrybook_tests::population;
 
 use henrybook::fit::lumped::same_cost;
@@ -62,21 +62,7 @@ fn the_lumped_fit_finds_the_best_basin_on_a_drawn_population_and_flags_every_mis
         // it contains, up to rounding (a millionth of the larger cost or of the χ² the stated noise
         // implies, 2·Σg over the points with their density weights g; `same_cost`).
         let floor = 2.0 * density_weights(&sweep.frequency_hz).iter().sum::<f64>();
-        for a in &report.candidates {
-            for b in &report.candidates {
-                if contains(&b.label, &a.label) {
-                    assert!(
-                        b.cost <= a.cost || same_cost(b.cost, a.cost, floor),
-                        "{}: {} (cost {}) contains {} (cost {}) but ends higher",
-                        part.describe(),
-                        b.label,
-                        b.cost,
-                        a.label,
-                        a.cost
-                    );
-                }
-            }
-        }
+        assert_nested_costs(&report.candidates, floor, &part.describe());
     }
     let rate = found_count as f64 / PARTS as f64;
     println!(

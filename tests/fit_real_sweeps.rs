@@ -8,12 +8,11 @@
 //! error of at most 2 % below the SRF. The files are read where they lie and never copied into the
 //! repository; without that folder the test prints a note and checks nothing.
 
-use henrybook::fit::lumped::same_cost;
 use henrybook::fit::problem::density_weights;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit_lumped};
 use henrybook::model::ImpedanceModel;
 use henrybook::sweep::{ReadOptions, Sweep, read_sweep};
-use henrybook_tests::nesting::contains;
+use henrybook_tests::nesting::assert_nested_costs;
 use std::f64::consts::PI;
 use std::path::PathBuf;
 
@@ -57,20 +56,7 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
         // The nesting rule where it matters most: real sweeps are where the core laws, which nest in
         // one another, are fitted (up to rounding, as `same_cost` allows).
         let floor = 2.0 * density_weights(&sweep.frequency_hz).iter().sum::<f64>();
-        for small in &report.candidates {
-            for large in &report.candidates {
-                if contains(&large.label, &small.label) {
-                    assert!(
-                        large.cost <= small.cost || same_cost(large.cost, small.cost, floor),
-                        "{file}: {} (cost {}) contains {} (cost {}) but ends higher",
-                        large.label,
-                        large.cost,
-                        small.label,
-                        small.cost
-                    );
-                }
-            }
-        }
+        assert_nested_costs(&report.candidates, floor, file);
 
         let sure = lowest_sure_points(&sweep);
         assert!(sure.len() >= 5, "{file}: the data show an inductance");

@@ -76,6 +76,27 @@ pub fn contains(large: &str, small: &str) -> bool {
         && ((a.series, a.parallel) == (b.series, b.parallel) || a.series + a.parallel == 0)
 }
 
+/// Asserts the nesting rule on a fit's candidates: no candidate ends with a higher cost than one it
+/// [`contains`], up to rounding (a millionth of the larger cost or of `floor`, the χ² the stated noise
+/// implies: `same_cost`). `what` names the sweep in the failure.
+pub fn assert_nested_costs(candidates: &[henrybook::fit::Candidate], floor: f64, what: &str) {
+    for small in candidates {
+        for large in candidates {
+            if contains(&large.label, &small.label) {
+                assert!(
+                    large.cost <= small.cost
+                        || henrybook::fit::lumped::same_cost(large.cost, small.cost, floor),
+                    "{what}: {} (cost {}) contains {} (cost {}) but ends higher",
+                    large.label,
+                    large.cost,
+                    small.label,
+                    small.cost
+                );
+            }
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::contains;

@@ -1342,6 +1342,16 @@ fn leaves_misfit(a: &assess::Assessment, rms_weighted: f64) -> bool {
         || (a.runs_z < -3.0 && rms_weighted / a.noise_scale >= assess::RUNS_RMS_FLOOR)
 }
 
+/// [`leaves_misfit`] for a structure fit's model on `sweep`.
+fn fit_leaves_misfit(fit: &StructureFit, sweep: &Sweep) -> bool {
+    let model = fit.model();
+    let rms_weighted = super::derived::quality(&model, sweep).rms_weighted;
+    leaves_misfit(
+        &assess::assess(&model, sweep, fit.structure.len()),
+        rms_weighted,
+    )
+}
+
 /// A core law started from a fitted single-pole (rp) model: the same corner, the law's extra
 /// parameters at `shape` (negligible when small).
 fn law_start(single_pole: &LumpedModel, law: CoreLaw, shape: f64, air: Option<f64>) -> LumpedModel {
@@ -1414,12 +1424,7 @@ fn dispersive_stage(
     else {
         return Ok(());
     };
-    let single = fits[best].model();
-    let rms_weighted = super::derived::quality(&single, sweep).rms_weighted;
-    if !leaves_misfit(
-        &assess::assess(&single, sweep, fits[best].structure.len()),
-        rms_weighted,
-    ) {
+    if !fit_leaves_misfit(&fits[best], sweep) {
         return Ok(());
     }
     // The laws are fitted on the best single-pole structure and also on the one with every series
@@ -1467,12 +1472,7 @@ fn revive_stage(
     let Some(&first) = order.first() else {
         return Ok(());
     };
-    let best = fits[first].model();
-    let rms_weighted = super::derived::quality(&best, sweep).rms_weighted;
-    if !leaves_misfit(
-        &assess::assess(&best, sweep, fits[first].structure.len()),
-        rms_weighted,
-    ) {
+    if !fit_leaves_misfit(&fits[first], sweep) {
         return Ok(());
     }
     for &i in order.iter().take(REVIVED_CANDIDATES) {
