@@ -1,5 +1,6 @@
 //! Shared helpers for the integration tests and reference checks; [`service`] starts the real service.
 
+pub mod chaos;
 pub mod mna;
 pub mod nesting;
 pub mod population;
