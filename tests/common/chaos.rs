@@ -11,7 +11,7 @@
 use serde_json::{Value, json};
 use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
+use std::process::{Child, Command};
 use std::sync::Arc;
 use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
@@ -218,7 +218,8 @@ impl Replica {
             // Shutdown at the end of the run is quick; a graceful stop is not what is tested here.
             .args(["--shutdown-grace-s", "2", "--drain-timeout-s", "5"])
             .env("RUST_LOG", "warn")
-            .stdout(Stdio::null())
+            // The service logs on standard output.
+            .stdout(log.try_clone()?)
             .stderr(log);
         let child = cmd.spawn().map_err(|e| {
             anyhow::anyhow!(
@@ -573,7 +574,8 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
 ///   (trigger `fits_report_written_once`: an UPDATE of `report_json` once set aborts its whole
 ///   transaction), every result write appends one `fit-succeeded` audit row in that same
 ///   transaction (the audit trail is append-only), so one such row per fit, never two, means one
-///   write committed; and its resonance rows, which no key keeps unique, are not repeated;
+///   write committed; no fit has two outcomes of any kind (a failure and a success, say); and its
+///   resonance rows, which no key keeps unique, are not repeated (its grid rows are keyed by fit);
 /// - the chaos did make work run again: some job was claimed more than once (`attempts > 1`), so the
 ///   single write above held while a fit really ran twice;
 /// - SQLite's integrity check and `henrybook verify` (audit hash chain, stored results) are clean.
@@ -649,6 +651,21 @@ async fn check(
             "{} fits have more than one result write: {:?}",
             twice.len(),
             &twice[..twice.len().min(10)]
+        ));
+    }
+    // Every outcome (succeeded, failed, cancelled) appends one audit row with the outcome it wrote;
+    // the harness never retries a fit, so two such rows for one fit are two outcomes written.
+    let outcomes: Vec<(i64, String)> = sqlx::query_as(
+        "SELECT fit_id, GROUP_CONCAT(action) FROM audit WHERE action IN \
+         ('fit-succeeded', 'fit-failed', 'fit-cancelled') GROUP BY fit_id HAVING COUNT(*) > 1",
+    )
+    .fetch_all(&mut db)
+    .await?;
+    if !outcomes.is_empty() {
+        v.push(format!(
+            "{} fits have more than one outcome written: {:?}",
+            outcomes.len(),
+            &outcomes[..outcomes.len().min(10)]
         ));
     }
     let never = distinct
