@@ -524,6 +524,7 @@ impl RowCompressor {
     }
 
     /// The next row, zeroed: `cols` entries of A, then one per right-hand side.
+    #[cfg(test)]
     pub(crate) fn row(&mut self) -> &mut [f64] {
         let width = self.pending.width;
         let row = &mut self.rows_unzeroed(1)[..width];

@@ -30,6 +30,13 @@
 //! less than 1e-4 relative), which is what the covariance then uses. The state carries x,
 //! the cost, Jᵀr in the gradient slot (half the gradient of χ²) and JᵀJ in the Hessian slot (half
 //! the Gauss–Newton Hessian). Buffers are allocated once per run, not per iteration.
+//!
+//! A problem may keep its parameters in an admissible set ([`NormalEquations::admit`]): every trial
+//! point is offered to it first, and it may move the point (onto a bound, say: the step is then the
+//! one actually taken) or refuse it (a failed step, as a higher cost would be). It may also end the
+//! run at its current point ([`NormalEquations::halt`], asked once per iteration), which is how a
+//! deadline or a cancel flag stops a run without losing the last accepted step. Both the lumped fit
+//! and the rational family's refinement run on this solver.
 
 use argmin::core::{
     Error, IterState, Jacobian, KV, Operator, Problem, Solver, State, TerminationReason,
@@ -58,6 +65,19 @@ pub trait NormalEquations {
         let n = x.len();
         let (mut jtj, mut g) = (DMatrix::zeros(n, n), DVector::zeros(n));
         self.normal_equations(x, &mut jtj, &mut g)
+    }
+
+    /// Brings a trial point into the admissible set in place (for example onto a bound) and says
+    /// whether it is admissible at all; the solver treats an inadmissible point as a failed step and
+    /// raises the damping. By default every point is admissible and none is moved.
+    fn admit(&self, _x: &mut [f64]) -> bool {
+        true
+    }
+
+    /// Whether the run should end now (cancelled, past a deadline); it then ends at the current
+    /// point, the last accepted one. Asked once per iteration. By default never.
+    fn halt(&self) -> bool {
+        false
     }
 }
 
@@ -135,6 +155,8 @@ struct Work {
     jtj_new: DMatrix<f64>,
     g_new: DVector<f64>,
     scale: DVector<f64>,
+    /// The trial point as the step made it, before [`NormalEquations::admit`].
+    x_step: DVector<f64>,
 }
 
 impl Work {
@@ -146,6 +168,7 @@ impl Work {
             jtj_new: DMatrix::zeros(n, n),
             g_new: DVector::zeros(n),
             scale: DVector::zeros(n),
+            x_step: DVector::zeros(n),
         }
     }
 
@@ -169,6 +192,10 @@ pub const NEAR_GAUSS_NEWTON: f64 = 1e-2;
 /// The message of [`TerminationReason::SolverExit`] when damping grew without any cost decrease.
 pub const NO_PROGRESS: &str = "no further progress";
 
+/// The message of [`TerminationReason::SolverExit`] when the problem asked the run to end
+/// ([`NormalEquations::halt`]).
+pub const HALTED: &str = "halted by the problem";
+
 #[derive(Debug, Clone)]
 pub struct LevenbergMarquardt {
     /// Converged when a step lowers the cost by less than `ftol`·cost.
@@ -190,6 +217,15 @@ pub struct LevenbergMarquardt {
     pub max_step: f64,
     /// Trial steps tried per iteration before giving up.
     pub max_trials: usize,
+    /// Damping (relative to Marquardt's scale) at or below which an accepted step may end the run by
+    /// the `ftol` and `xtol` tests; [`NEAR_GAUSS_NEWTON`] by default, infinite to let any step end it.
+    pub near_gauss_newton: f64,
+    /// Evaluates each trial point's cost alone first ([`NormalEquations::cost`]) and forms its normal
+    /// equations only when the step is accepted: for a problem whose cost-only pass is much cheaper
+    /// than a full one and whose trials are often rejected. Off by default (one pass per trial).
+    pub cost_first: bool,
+    /// Steps accepted in the current (or last) run, the cost-only last step included.
+    accepted: u64,
     lambda: f64,
     nu: f64,
     work: Option<Work>,
@@ -206,6 +242,9 @@ impl Default for LevenbergMarquardt {
             last_step: 1e-4,
             max_step: 5.0,
             max_trials: 40,
+            near_gauss_newton: NEAR_GAUSS_NEWTON,
+            cost_first: false,
+            accepted: 0,
             lambda: 1e-3,
             nu: 2.0,
             work: None,
@@ -233,6 +272,12 @@ impl LevenbergMarquardt {
     pub fn with_predicted_tolerance(mut self, ptol: f64) -> Self {
         self.ptol = ptol;
         self
+    }
+
+    /// Steps accepted in the last run (read from the solver an argmin result hands back). An
+    /// iteration that only finds the point at its minimum accepts none.
+    pub fn accepted_steps(&self) -> u64 {
+        self.accepted
     }
 }
 
@@ -312,6 +357,7 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
         self.work = Some(Work::new(n));
         self.stop = None;
         self.nu = 2.0;
+        self.accepted = 0;
         Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None))
     }
 
@@ -325,6 +371,10 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
         let jtj = state.take_hessian().expect("init sets JᵀJ");
         let cost = state.get_cost();
         let n = x.len();
+        if problem.problem("halt", |p| Ok(p.halt()))? {
+            self.stop = Some(TerminationReason::SolverExit(HALTED.into()));
+            return Ok((state.param(x).gradient(g).hessian(jtj).cost(cost), None));
+        }
         self.work
             .get_or_insert_with(|| Work::new(n))
             .raise_scale(&jtj);
@@ -342,6 +392,7 @@ impl<O: NormalEquations> Solver<O, LmState> for LevenbergMarquardt {
                 }
                 GaussNewton::LastStep(cost_new) => {
                     self.stop = Some(TerminationReason::SolverConverged);
+                    self.accepted += 1;
                     let w = self.work.as_mut().expect("set above");
                     let mut x = x;
                     std::mem::swap(&mut x, &mut w.x_new);
@@ -417,7 +468,14 @@ impl LevenbergMarquardt {
         {
             w.x_new.copy_from(x);
             w.x_new += &w.delta;
-            let x_new = &w.x_new;
+            // Only a step the problem admits unchanged is the step the prediction is for.
+            w.x_step.copy_from(&w.x_new);
+            let x_new = &mut w.x_new;
+            if !problem.problem("admit", |p| Ok(p.admit(x_new.as_mut_slice())))?
+                || *x_new != w.x_step
+            {
+                return Ok(GaussNewton::Undecided);
+            }
             let cost_new = problem.problem("cost", |p| p.cost(x_new.as_slice()))?;
             let actual = cost - cost_new;
             if cost_new.is_finite()
@@ -460,15 +518,55 @@ impl LevenbergMarquardt {
             if biggest > self.max_step {
                 w.delta *= self.max_step / biggest;
             }
+            w.x_new.copy_from(x);
+            w.x_new += &w.delta;
+            w.x_step.copy_from(&w.x_new);
+            let x_new = &mut w.x_new;
+            if !problem.problem("admit", |p| Ok(p.admit(x_new.as_mut_slice())))? {
+                self.lambda *= self.nu;
+                self.nu *= 2.0;
+                continue;
+            }
+            // A point the problem moved (onto a bound, say): the moved parameters keep where it put
+            // them and the others take the damped step that is best given that, so a bound on one
+            // parameter does not leave the ones correlated with it where the free step sent them.
+            // The step is then the one actually taken.
+            if w.x_new != w.x_step {
+                let moved: Vec<bool> = (0..n).map(|i| w.x_new[i] != w.x_step[i]).collect();
+                let damping = (self.lambda, self.max_step);
+                if let Some(free_step) = step_given(damping, jtj, g, &w.scale, x, &w.x_new, &moved)
+                {
+                    w.x_step.copy_from(x);
+                    w.x_step += &free_step;
+                    for (i, _) in moved.iter().enumerate().filter(|(_, m)| **m) {
+                        w.x_step[i] = w.x_new[i];
+                    }
+                    let candidate = &mut w.x_step;
+                    if problem.problem("admit", |p| Ok(p.admit(candidate.as_mut_slice())))? {
+                        w.x_new.copy_from(&w.x_step);
+                    }
+                }
+                w.delta.copy_from(&w.x_new);
+                w.delta -= x;
+            }
             // Predicted decrease of χ² from the linear model: −(2δᵀg + δᵀJᵀJδ).
             let quad = quadratic_form(jtj, &w.delta);
             let predicted = -(2.0 * w.delta.dot(g) + quad);
-            w.x_new.copy_from(x);
-            w.x_new += &w.delta;
             let (x_new, jtj_new, g_new) = (&w.x_new, &mut w.jtj_new, &mut w.g_new);
-            let cost_new = problem.problem("normal_equations", |p| {
-                p.normal_equations(x_new.as_slice(), jtj_new, g_new)
-            })?;
+            let mut cost_new = f64::NAN;
+            if self.cost_first {
+                cost_new = problem.problem("cost", |p| p.cost(x_new.as_slice()))?;
+            }
+            let worth_a_pass = !self.cost_first
+                || (cost_new.is_finite()
+                    && cost_new < cost
+                    && predicted > 0.0
+                    && (cost - cost_new) / predicted > 1e-4);
+            if worth_a_pass {
+                cost_new = problem.problem("normal_equations", |p| {
+                    p.normal_equations(x_new.as_slice(), jtj_new, g_new)
+                })?;
+            }
             let rho = (cost - cost_new) / predicted;
             if cost_new.is_finite()
                 && cost_new < cost
@@ -479,11 +577,12 @@ impl LevenbergMarquardt {
                 self.lambda *= (1.0 - (2.0 * rho - 1.0).powi(3)).max(1.0 / 3.0);
                 self.lambda = self.lambda.max(1e-15);
                 self.nu = 2.0;
+                self.accepted += 1;
                 // A small decrease or step says "converged" only for a step near Gauss–Newton: a
                 // heavily damped step is short and gains little far from the minimum too (seen on a
                 // sweep whose DC resistance lies below the noise: damping stopped a fit 30 % above
                 // the minimum in χ²).
-                if self.lambda <= NEAR_GAUSS_NEWTON
+                if self.lambda <= self.near_gauss_newton
                     && (cost - cost_new <= self.ftol * cost
                         || w.delta.norm() <= self.xtol * (x.norm() + self.xtol))
                 {
@@ -499,6 +598,47 @@ impl LevenbergMarquardt {
         }
         Ok(None)
     }
+}
+
+/// The damped step (`damping` = (λ, largest change of a parameter)) with the `moved` parameters held
+/// at `x_moved`: the free parameters F solve (JᵀJ + λD)_FF δ_F = −g_F − (JᵀJ + λD)_FA δ_A with
+/// δ_A = (x_moved − x)_A. `None` when nothing is free or the reduced system has no Cholesky factor.
+fn step_given(
+    (lambda, max_step): (f64, f64),
+    jtj: &DMatrix<f64>,
+    g: &DVector<f64>,
+    scale: &DVector<f64>,
+    x: &DVector<f64>,
+    x_moved: &DVector<f64>,
+    moved: &[bool],
+) -> Option<DVector<f64>> {
+    let n = x.len();
+    let free: Vec<usize> = (0..n).filter(|&i| !moved[i]).collect();
+    if free.is_empty() {
+        return None;
+    }
+    let damped = |i: usize, j: usize| jtj[(i, j)] + if i == j { lambda * scale[i] } else { 0.0 };
+    let mut a = DMatrix::from_fn(free.len(), free.len(), |r, c| damped(free[r], free[c]));
+    let mut b = DVector::from_fn(free.len(), |r, _| {
+        let i = free[r];
+        -g[i]
+            - (0..n)
+                .filter(|&j| moved[j])
+                .map(|j| damped(i, j) * (x_moved[j] - x[j]))
+                .sum::<f64>()
+    });
+    if !cholesky_solve(&mut a, &mut b) || !b.iter().all(|v| v.is_finite()) {
+        return None;
+    }
+    let mut step = DVector::zeros(n);
+    for (r, &i) in free.iter().enumerate() {
+        step[i] = b[r];
+    }
+    let biggest = step.amax();
+    if biggest > max_step {
+        step *= max_step / biggest;
+    }
+    Some(step)
 }
 
 /// The largest cosine between the residual and a column of J, |gᵢ| / (‖Jᵢ‖·‖r‖).
@@ -609,6 +749,105 @@ mod tests {
             .configure(|s| s.param(DVector::from_vec(vec![1.0, -1e6])).max_iters(10))
             .run();
         assert!(res.is_err());
+    }
+
+    /// The decay problem with its rate held at or below `cap` (a step beyond is projected onto it) and
+    /// its amplitude positive (a step to a negative one is refused), ending when `halt_after` passes
+    /// have run.
+    struct Capped {
+        inner: Dense<Decay>,
+        cap: f64,
+        passes: std::cell::Cell<usize>,
+        halt_after: usize,
+    }
+
+    impl NormalEquations for Capped {
+        fn normal_equations(
+            &self,
+            x: &[f64],
+            jtj: &mut DMatrix<f64>,
+            g: &mut DVector<f64>,
+        ) -> Result<f64, Error> {
+            self.passes.set(self.passes.get() + 1);
+            self.inner.normal_equations(x, jtj, g)
+        }
+
+        fn admit(&self, x: &mut [f64]) -> bool {
+            x[1] = x[1].min(self.cap);
+            x[0] > 0.0
+        }
+
+        fn halt(&self) -> bool {
+            self.passes.get() >= self.halt_after
+        }
+    }
+
+    fn capped(cap: f64, halt_after: usize) -> Capped {
+        let t: Vec<f64> = (0..40).map(|i| i as f64 * 0.1).collect();
+        let y = t.iter().map(|t| 3.0 * (-1.7 * t).exp()).collect();
+        Capped {
+            inner: Dense(Decay { t, y }),
+            cap,
+            passes: std::cell::Cell::new(0),
+            halt_after,
+        }
+    }
+
+    #[test]
+    fn a_projected_run_ends_on_its_bound_at_the_constrained_minimum() {
+        // Rate capped at 1.2 below the data's 1.7: the constrained optimum has b = 1.2 and the
+        // amplitude that is then linear least squares, a = Σ y·e / Σ e² with e = exp(−1.2 t).
+        let res = Executor::new(capped(1.2, usize::MAX), LevenbergMarquardt::default())
+            .configure(|s| s.param(DVector::from_vec(vec![1.0, 0.1])).max_iters(200))
+            .run()
+            .unwrap();
+        let p = res.state().get_param().unwrap().clone();
+        let Dense(Decay { t, y }) = &res.problem.problem.as_ref().unwrap().inner;
+        let e: Vec<f64> = t.iter().map(|t| (-1.2 * t).exp()).collect();
+        let a =
+            e.iter().zip(y).map(|(e, y)| e * y).sum::<f64>() / e.iter().map(|e| e * e).sum::<f64>();
+        let c_min: f64 = e.iter().zip(y).map(|(e, y)| (a * e - y).powi(2)).sum();
+        let cost = res.state().get_cost();
+        eprintln!(
+            "cost {cost} c_min {c_min} reason {:?} steps {}",
+            res.state().get_termination_reason(),
+            res.solver.accepted_steps()
+        );
+        assert_eq!(p[1], 1.2, "{p}");
+        assert!((p[0] - a).abs() <= 1e-6 * a, "{p} against a = {a}");
+        assert!(
+            (cost - c_min).abs() <= 1e-9 * c_min,
+            "{cost} against {c_min}"
+        );
+        assert!(res.solver.accepted_steps() > 0);
+    }
+
+    #[test]
+    fn a_halted_run_keeps_its_last_accepted_point() {
+        // Unhindered the run takes several steps; halted after its first pass it takes none and
+        // returns the start; halted later it returns a point of lower cost than the start.
+        let start = vec![1.0, 0.1];
+        let run = |halt_after: usize| {
+            let res = Executor::new(capped(10.0, halt_after), LevenbergMarquardt::default())
+                .configure(|s| s.param(DVector::from_vec(start.clone())).max_iters(200))
+                .run()
+                .unwrap();
+            let x = res.state().get_param().unwrap().clone();
+            let reason = res.state().get_termination_reason().cloned();
+            (
+                x,
+                res.state().get_cost(),
+                res.solver.accepted_steps(),
+                reason,
+            )
+        };
+        let (x, _, steps, reason) = run(1);
+        assert_eq!((x.as_slice(), steps), (&start[..], 0));
+        assert_eq!(reason, Some(TerminationReason::SolverExit(HALTED.into())));
+        let (free_x, free_cost, free_steps, _) = run(usize::MAX);
+        let (x, cost, steps, _) = run(3);
+        assert!(free_steps > steps && steps > 0, "{free_steps} vs {steps}");
+        assert!(cost > free_cost && x != free_x, "{cost} vs {free_cost}");
     }
 
     /// Counts the full passes a run makes and, apart, its cost-only evaluations.
