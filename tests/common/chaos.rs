@@ -4,7 +4,7 @@
 //! resumed. At the end every replica is stopped and the database is read to check that no work was
 //! lost or done twice ([`check`]).
 //!
-//! Used by the bounded test `tests/service_chaos.rs` and the full run `tests/chaos/main.rs`
+//! Used by the bounded test `tests/service/chaos.rs` and the full run `tests/chaos/main.rs`
 //! (see tests/chaos/README.md). SQLite with one replica now; the PostgreSQL run with several replicas
 //! and a database restart is refused with a clear message until the service runs on PostgreSQL.
 

@@ -1,5 +1,5 @@
 //! A population of invented parts and sweeps drawn from the space users produce, for the fit's
-//! robustness test (`tests/fit_population.rs`) and its benchmark (`tests/population/bench.rs`, the example `population`).
+//! robustness test (`tests/fit/population.rs`) and its benchmark (`tests/population/bench.rs`, the example `population`).
 //!
 //! Each part is drawn from wide, independent distributions (log-uniform unless stated), not from the
 //! region the fitter likes:

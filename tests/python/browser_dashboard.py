@@ -1,6 +1,6 @@
 """Drives the dashboard in Debian's headless Chromium with Playwright against a running henrybook server.
 
-Called by tests/dashboard_browser.rs, which starts the real server and makes the tokens. This script loads
+Called by tests/service/dashboard_browser.rs, which starts the real server and makes the tokens. This script loads
 the demo data through the public API (parts, then every sweep of demo-data/manifest.json), then works
 through the pages as a person would and prints one JSON object with what it saw; the Rust test asserts
 on it. Screenshots of every page go to the directory given.

@@ -1,5 +1,5 @@
 """Mean, sample standard deviation (ddof=1) and mean ± 3σ of the numbers on stdin (a JSON list),
-with numpy: the reference for the trend's Shewhart control limits (tests/service_trend_report.rs)."""
+with numpy: the reference for the trend's Shewhart control limits (tests/service/trend_report.rs)."""
 import json
 import sys
 

@@ -31,7 +31,7 @@
 //!
 //! The limits are several standard deviations of each statistic under a correct model (false alarms
 //! below about one fit in ten thousand per test), chosen on the fit population test
-//! (`tests/fit_population.rs`) so that every fit that misses the data's best basin is caught.
+//! (`tests/fit/population.rs`) so that every fit that misses the data's best basin is caught.
 //!
 //! Parameter uncertainty follows the misfit: besides the usual max(1, χ²/ν) scaling of the covariance
 //! (see `fit::lumped`), residuals correlated from point to point (lag-1 correlation ρ > 0) carry fewer

@@ -144,7 +144,7 @@ mod tests {
     #[test]
     fn conversion_check_values() {
         // Source: the team's gathered check values, computed from the relations above and agreeing
-        // with scikit-rf to 5e-15 (tests/sweep_skrf.rs checks scikit-rf live): Z = 0.5 + j62.8319 Ω,
+        // with scikit-rf to 5e-15 (tests/sweep/skrf.rs checks scikit-rf live): Z = 0.5 + j62.8319 Ω,
         // Z0 = 50.
         let z = Complex64::new(0.5, 62.8319);
         let s11 = s_from_z(Method::Reflection, z, 50.0);

@@ -1,6 +1,6 @@
 //! `api/openapi.yaml` is generated from the code: this test fails when the committed file differs
 //! from what the routes generate. Regenerate with `HENRYBOOK_WRITE_OPENAPI=1 cargo test -p
-//! henrybook-tests --test service_openapi`.
+//! henrybook-tests --test service openapi::`.
 
 use henrybook_tests::repo_root;
 
@@ -14,7 +14,7 @@ fn the_committed_openapi_description_matches_the_code() {
     let committed = std::fs::read_to_string(&path).unwrap_or_default();
     assert!(
         committed == generated,
-        "api/openapi.yaml is out of date; regenerate it with HENRYBOOK_WRITE_OPENAPI=1 cargo test -p henrybook-tests --test service_openapi"
+        "api/openapi.yaml is out of date; regenerate it with HENRYBOOK_WRITE_OPENAPI=1 cargo test -p henrybook-tests --test service openapi::"
     );
 }
 

@@ -112,7 +112,7 @@ fn assert_covers(r: &Rates, min_named: f64) {
     );
     // Binomial spread on 150–200 estimates (correlated within a draw) is a few percent. Measured
     // (seeds below): 78–84 % within 1σ and 96.5–98.6 % within 2σ, σ a little on the safe side because
-    // the reported σ carries the spread over nearly equal structures (see tests/material_sigma.rs;
+    // the reported σ carries the spread over nearly equal structures (see tests/fit/material_sigma.rs;
     // without it 68–79 % and 95.5–98 %); the bounds still fail a σ half or twice the right size (38 %
     // or 95 % within 1σ).
     assert!((0.55..=0.90).contains(&r1), "within 1σ: {r1}");

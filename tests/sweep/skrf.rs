@@ -153,7 +153,7 @@ fn cases() -> Vec<Case> {
         ),
         // Version 2 only: the scikit-rf read here multiplies version 1 Y data by R, where a
         // normalised admittance y = Y·R (the specification's normalisation, from memory) means dividing (henrybook's reading is checked against
-        // the specification in sweep_touchstone_spec.rs).
+        // the specification in sweep/touchstone_spec.rs).
         c(
             "series_v2_y_ri.s2p",
             SeriesThru,

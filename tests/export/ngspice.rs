@@ -240,7 +240,7 @@ fn ngspice_reproduces_a_foster_netlist() {
 
 #[test]
 fn ngspice_reproduces_a_parallel_block_netlist() {
-    // R0 + s·Ls + R ‖ (Rs + sL + 1/(sC)) (see export_foster.rs notch_model): its pole pair's residue
+    // R0 + s·Ls + R ‖ (Rs + sL + 1/(sC)) (see export/foster.rs notch_model): its pole pair's residue
     // has a negative real part, so the export uses a series chain with a parallel block.
     let (r0, ls, r, rs, l, c) = (0.05, 1e-9, 200.0, 0.1, 0.2e-6, 2e-12);
     let a1 = (r + rs) / l;
