@@ -645,16 +645,9 @@ async fn check(
     .fetch_all(&mut db)
     .await?;
     let written: HashMap<i64, i64> = written.into_iter().collect();
-    let twice: Vec<(&i64, &i64)> = written.iter().filter(|(_, n)| **n > 1).collect();
-    if !twice.is_empty() {
-        v.push(format!(
-            "{} fits have more than one result write: {:?}",
-            twice.len(),
-            &twice[..twice.len().min(10)]
-        ));
-    }
     // Every outcome (succeeded, failed, cancelled) appends one audit row with the outcome it wrote;
-    // the harness never retries a fit, so two such rows for one fit are two outcomes written.
+    // the harness never retries a fit, so two such rows for one fit are two outcomes written (two
+    // result writes among them: the list shows `fit-succeeded,fit-succeeded`).
     let outcomes: Vec<(i64, String)> = sqlx::query_as(
         "SELECT fit_id, GROUP_CONCAT(action) FROM audit WHERE action IN \
          ('fit-succeeded', 'fit-failed', 'fit-cancelled') GROUP BY fit_id HAVING COUNT(*) > 1",
