@@ -186,6 +186,48 @@ fn coarse_sizes(points: usize, structure: &Structure) -> Vec<usize> {
     }
 }
 
+/// Whether [`fit_structure_staged`] fits thinned copies first, and where they come from.
+#[derive(Clone, Copy)]
+enum Thinning<'a> {
+    /// Straight to the full data (a start that is already a good point of it).
+    None,
+    /// Thinned stages, each copy made for this fit.
+    Make,
+    /// Thinned stages on copies made once for many candidates.
+    Shared(&'a ThinnedCopies),
+}
+
+impl Thinning<'_> {
+    fn shared(&self) -> Option<&ThinnedCopies> {
+        match self {
+            Thinning::Shared(c) => Some(c),
+            _ => None,
+        }
+    }
+}
+
+/// The thinned copies of one sweep's data at every size [`coarse_sizes`] may ask for, made once per
+/// fit and shared by all its candidates (each copy depends on the data alone, not on the structure).
+struct ThinnedCopies(Vec<(usize, FitData)>);
+
+impl ThinnedCopies {
+    fn of(data: &FitData) -> ThinnedCopies {
+        let n = data.frequency_hz.len();
+        let mut sizes = Vec::new();
+        if n > COARSE_ABOVE_POINTS {
+            if n >= 4 * COARSEST_POINTS {
+                sizes.push(COARSEST_POINTS);
+            }
+            sizes.push(COARSE_POINTS);
+        }
+        ThinnedCopies(sizes.into_iter().map(|k| (k, thinned(data, k))).collect())
+    }
+
+    fn get(&self, size: usize) -> Option<&FitData> {
+        self.0.iter().find(|(k, _)| *k == size).map(|(_, d)| d)
+    }
+}
+
 struct LmRun {
     theta: Vec<f64>,
     cost: f64,
@@ -303,7 +345,7 @@ pub fn fit_structure(
         max_iterations,
         time_limit,
         control,
-        true,
+        Thinning::Make,
     )
 }
 
@@ -317,7 +359,7 @@ fn fit_structure_staged(
     max_iterations: u64,
     time_limit: Duration,
     control: &FitControl,
-    coarse: bool,
+    thinning: Thinning<'_>,
 ) -> Result<StructureFit, FitError> {
     let started = Instant::now();
     let mut theta = structure.pack(start);
@@ -329,7 +371,7 @@ fn fit_structure_staged(
     }
     let n = data.frequency_hz.len();
     let mut iterations = 0;
-    let sizes = if coarse {
+    let sizes = if !matches!(thinning, Thinning::None) {
         coarse_sizes(n, structure)
     } else {
         Vec::new()
@@ -339,7 +381,10 @@ fn fit_structure_staged(
     // as near a resonance that a network-analyser method barely resolves).
     let start_theta = (!sizes.is_empty()).then(|| theta.clone());
     for size in sizes {
-        let coarse = thinned(data, size);
+        let coarse = match thinning.shared().and_then(|c| c.get(size)) {
+            Some(copy) => std::borrow::Cow::Borrowed(copy),
+            None => std::borrow::Cow::Owned(thinned(data, size)),
+        };
         // Only a starting point: loose tolerances are enough. After a coarser stage the start is
         // close: begin nearly Gauss–Newton.
         let mut solver = LevenbergMarquardt::default()
@@ -816,6 +861,10 @@ fn kind_assignments(n: usize) -> Vec<Vec<SectionKind>> {
 /// (its error kept), only cancellation stops the whole fit.
 struct Runner<'a> {
     data: &'a FitData,
+    copies: ThinnedCopies,
+    /// The last [`fit_leaves_misfit`] answer, with the structure and parameters it was for: the
+    /// stages ask it of the same best fit when nothing between them improved on it.
+    misfit_seen: Option<(Structure, Vec<f64>, bool)>,
     options: &'a FitOptions,
     control: &'a FitControl,
     deadline: Instant,
@@ -873,7 +922,11 @@ impl Runner<'_> {
             self.options.max_iterations,
             budget,
             self.control,
-            coarse,
+            if coarse {
+                Thinning::Shared(&self.copies)
+            } else {
+                Thinning::None
+            },
         ) {
             Ok(f) => {
                 self.any_fitted = true;
@@ -887,6 +940,19 @@ impl Runner<'_> {
         };
         self.tick();
         out
+    }
+
+    /// [`fit_leaves_misfit`], answered again without a second assessment for the same fit.
+    fn leaves_misfit(&mut self, fit: &StructureFit, sweep: &Sweep) -> bool {
+        if let Some((structure, theta, answer)) = &self.misfit_seen
+            && *structure == fit.structure
+            && *theta == fit.theta
+        {
+            return *answer;
+        }
+        let answer = fit_leaves_misfit(fit, sweep);
+        self.misfit_seen = Some((fit.structure.clone(), fit.theta.clone(), answer));
+        answer
     }
 
     fn tick(&mut self) {
@@ -1047,6 +1113,8 @@ pub fn fit_lumped(
     let stage_a: Vec<Vec<SectionKind>> = (1..=max_sec).flat_map(kind_assignments).collect();
     let mut runner = Runner {
         data: &data,
+        copies: ThinnedCopies::of(&data),
+        misfit_seen: None,
         options,
         control,
         deadline,
@@ -1424,7 +1492,7 @@ fn dispersive_stage(
     else {
         return Ok(());
     };
-    if !fit_leaves_misfit(&fits[best], sweep) {
+    if !runner.leaves_misfit(&fits[best], sweep) {
         return Ok(());
     }
     // The laws are fitted on the best single-pole structure and also on the one with every series
@@ -1472,7 +1540,7 @@ fn revive_stage(
     let Some(&first) = order.first() else {
         return Ok(());
     };
-    if !fit_leaves_misfit(&fits[first], sweep) {
+    if !runner.leaves_misfit(&fits[first], sweep) {
         return Ok(());
     }
     for &i in order.iter().take(REVIVED_CANDIDATES) {
