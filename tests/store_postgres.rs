@@ -1,98 +1,20 @@
 //! The PostgreSQL schema and job queue (henrybook::store::pg) against a real server. Each test makes
-//! a database of its own with a random name, applies migrations/postgres/ and drops the database at
-//! the end (also when the test fails). The server is the one RULES.md and .ci/setup name:
-//! 127.0.0.1:5432, user postgres, trust authentication (HENRYBOOK_TEST_PG_ADMIN overrides the URL of
-//! the `postgres` database used to create and drop the test databases). An unreachable server fails
-//! the tests with a message saying how to start it; they are never skipped.
+//! a database of its own ([`henrybook_tests::pg::TestDb`]: a random name, migrations/postgres/
+//! applied, dropped at the end also when the test fails). An unreachable server fails the tests with
+//! a message saying how to start it; they are never skipped. The rest of the PostgreSQL store is
+//! held to the SQLite store in tests/store_parity.rs.
 
 use henrybook::registry::wire::FailureKind;
 use henrybook::store::jobs::Renewal;
+use henrybook::store::pg::IDLE_IN_TRANSACTION_TIMEOUT;
 use henrybook::store::pg::queue::{
     self, Cancel, Claim, JobWaker, Outcome, PgQueue, Wake, complete_in,
 };
-use henrybook::store::pg::{self, IDLE_IN_TRANSACTION_TIMEOUT};
+use henrybook_tests::pg::TestDb;
 use henrybook_tests::repo_root;
-use sqlx::{Connection, PgConnection, PgPool};
+use sqlx::PgPool;
 use std::collections::HashSet;
 use std::time::{Duration, Instant};
-
-fn admin_url() -> String {
-    std::env::var("HENRYBOOK_TEST_PG_ADMIN")
-        .unwrap_or_else(|_| "postgres://postgres@127.0.0.1:5432/postgres".into())
-}
-
-/// A fresh, migrated database, dropped when this guard is dropped.
-struct TestDb {
-    name: String,
-    url: String,
-    pool: PgPool,
-}
-
-impl TestDb {
-    async fn new() -> TestDb {
-        let admin = admin_url();
-        let mut conn = PgConnection::connect(&admin).await.unwrap_or_else(|e| {
-            panic!(
-                "PostgreSQL is not reachable at {admin}: {e}\n\
-                 Start it with `pg_ctlcluster --skip-systemctl-redirect $(ls /etc/postgresql) main start` \
-                 (or run `bash .ci/setup` as root, which starts it when it is down)."
-            )
-        });
-        let name: String = sqlx::query_scalar(
-            "SELECT 'henrybook_test_' || substr(md5(random()::text || clock_timestamp()::text), 1, 16)",
-        )
-        .fetch_one(&mut conn)
-        .await
-        .unwrap();
-        sqlx::raw_sql(sqlx::AssertSqlSafe(format!("CREATE DATABASE {name}")))
-            .execute(&mut conn)
-            .await
-            .unwrap_or_else(|e| panic!("cannot create the test database {name}: {e}"));
-        conn.close().await.ok();
-        let url = match admin.rsplit_once('/') {
-            Some((server, _)) => format!("{server}/{name}"),
-            None => panic!("{admin} names no database"),
-        };
-        let pool = pg::connect(&url, 8)
-            .await
-            .expect("connect to the test database");
-        pg::migrate(&pool).await.expect("the migrations apply");
-        TestDb { name, url, pool }
-    }
-
-    /// A second pool on the same database: another replica.
-    async fn replica(&self) -> PgPool {
-        pg::connect(&self.url, 8).await.expect("connect a replica")
-    }
-}
-
-impl Drop for TestDb {
-    fn drop(&mut self) {
-        let name = self.name.clone();
-        // Drop runs inside the test's runtime, which is blocked meanwhile: a thread and runtime of
-        // its own, touching none of the test's connections (FORCE ends their sessions).
-        std::thread::spawn(move || {
-            let rt = tokio::runtime::Builder::new_current_thread()
-                .enable_all()
-                .build()
-                .unwrap();
-            rt.block_on(async move {
-                if let Ok(mut conn) = PgConnection::connect(&admin_url()).await {
-                    let dropped = sqlx::raw_sql(sqlx::AssertSqlSafe(format!(
-                        "DROP DATABASE IF EXISTS {name} WITH (FORCE)"
-                    )))
-                    .execute(&mut conn)
-                    .await;
-                    if let Err(e) = dropped {
-                        eprintln!("cannot drop the test database {name}: {e}");
-                    }
-                }
-            });
-        })
-        .join()
-        .ok();
-    }
-}
 
 /// Inserts one part, one lot, and `n` sweeps with one queued fit each, and queues their jobs; the
 /// fit ids, oldest first.

@@ -3,6 +3,7 @@
 pub mod chaos;
 pub mod mna;
 pub mod nesting;
+pub mod pg;
 pub mod population;
 pub mod service;
 pub mod synth;

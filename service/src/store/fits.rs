@@ -5,16 +5,24 @@ use crate::fit::FitReport;
 use crate::registry::drift;
 use crate::registry::ids::{LotCode, PartNumber};
 use crate::registry::wire::{FailureKind, FitDetail, FitPage, FitStatus, FitSummary, QueueCounts};
-use sqlx::sqlite::SqliteRow;
 use sqlx::{QueryBuilder, Row, Sqlite, SqliteConnection};
 
-const SUMMARY_SELECT: &str = "SELECT f.fit_id, f.revision, f.sweep_id, p.part_number, l.lot, \
+/// The columns of a [`FitSummary`] (the same SQL on both backends; the caller adds the condition).
+pub(crate) const SUMMARY_SELECT: &str = "SELECT f.fit_id, f.revision, f.sweep_id, p.part_number, l.lot, \
     f.status, f.progress, f.error, f.error_kind, f.created_at_ms, f.started_at_ms, f.finished_at_ms, f.srf_hz, \
     CASE WHEN f.quality = 'poor' AND f.verdict_json IS NOT NULL AND f.verdict_json <> '[]' \
     THEN 'withheld' ELSE f.verdict END AS verdict, f.quality, f.approval FROM fits f JOIN parts p ON p.part_id = f.part_id \
     JOIN lots l ON l.lot_id = f.lot_id";
 
-fn summary_from_row(row: &SqliteRow) -> Result<FitSummary, sqlx::Error> {
+/// A [`SUMMARY_SELECT`] row (of either backend) as the wire shows it.
+pub(crate) fn summary_from_row<'r, R>(row: &'r R) -> Result<FitSummary, sqlx::Error>
+where
+    R: Row,
+    &'r str: sqlx::ColumnIndex<R>,
+    String: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
     let status: String = row.try_get("status")?;
     Ok(FitSummary {
         fit_id: row.try_get("fit_id")?,
@@ -73,7 +81,7 @@ async fn summary_on(
     .bind(fit_id)
     .fetch_optional(conn)
     .await?
-    .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+    .ok_or_else(|| no_fit(fit_id))?;
     Ok(summary_from_row(&row)?)
 }
 
@@ -86,58 +94,14 @@ impl Store {
         // Both reads in one read transaction, so they see the same snapshot: read one after the
         // other, a fit finishing in between showed as succeeded with no report.
         let mut tx = self.reader.begin().await?;
-        let row = sqlx::query(
-            "SELECT f.report_json, f.verdict_json, f.drift_json, f.options_json, f.engine_version, \
-             s.method, s.z0_ohm, s.dcr_ohm, s.temperature_c, s.operator, s.file_name, s.sha256, \
-             j.attempts FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
-             JOIN jobs j ON j.fit_id = f.fit_id WHERE f.fit_id = ?",
-        )
-        .bind(fit_id)
-        .fetch_optional(&mut *tx)
-        .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!("{DETAIL_SELECT}?")))
+            .bind(fit_id)
+            .fetch_optional(&mut *tx)
+            .await?
+            .ok_or_else(|| no_fit(fit_id))?;
         let summary = summary_on(&mut *tx, fit_id).await?;
         tx.commit().await?;
-        let parse = |col: &str| -> StoreResult<Option<serde_json::Value>> {
-            let text: Option<String> = row.try_get(col)?;
-            Ok(text.map(|t| serde_json::from_str(&t)).transpose()?)
-        };
-        let verdict_checks = match row.try_get::<Option<String>, _>("verdict_json")? {
-            Some(t) => serde_json::from_str(&t)?,
-            None => Vec::new(),
-        };
-        let drift = match row.try_get::<Option<String>, _>("drift_json")? {
-            Some(t) => Some(serde_json::from_str(&t)?),
-            None => None,
-        };
-        let report = parse("report_json")?;
-        let parsed: Option<FitReport> = report
-            .as_ref()
-            .map(|v| serde_json::from_value(v.clone()))
-            .transpose()?;
-        let verdict_note = parsed
-            .as_ref()
-            .filter(|_| !verdict_checks.is_empty())
-            .and_then(crate::registry::verdict::withheld_note);
-        let quality_summary = parsed.as_ref().map(|r| r.assessment.summary.clone());
-        Ok(FitDetail {
-            summary,
-            report,
-            verdict_checks,
-            verdict_note,
-            quality_summary,
-            drift,
-            options: parse("options_json")?.unwrap_or(serde_json::Value::Null),
-            method: row.try_get("method")?,
-            z0_ohm: row.try_get("z0_ohm")?,
-            dcr_ohm: row.try_get("dcr_ohm")?,
-            temperature_c: row.try_get("temperature_c")?,
-            operator: row.try_get("operator")?,
-            file_name: row.try_get("file_name")?,
-            sha256: row.try_get("sha256")?,
-            engine_version: row.try_get("engine_version")?,
-            attempts: row.try_get("attempts")?,
-        })
+        detail_from_row(&row, summary)
     }
 
     /// The stored report of a succeeded fit.
@@ -148,7 +112,7 @@ impl Store {
                 .fetch_optional(&self.reader)
                 .await?;
         match text {
-            None => Err(StoreError::NotFound(format!("no fit {fit_id}"))),
+            None => Err(no_fit(fit_id)),
             Some(None) => Ok(None),
             Some(Some(t)) => Ok(Some(serde_json::from_str(&t)?)),
         }
@@ -160,7 +124,7 @@ impl Store {
             .bind(fit_id)
             .fetch_optional(&self.reader)
             .await?
-            .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))
+            .ok_or_else(|| no_fit(fit_id))
     }
 
     /// Newest first, filtered, one page.
@@ -266,11 +230,7 @@ impl Store {
                     .await?;
                 true
             }
-            other => {
-                return Err(StoreError::Conflict(format!(
-                    "fit {fit_id} is {other}: only queued or running fits can be cancelled"
-                )));
-            }
+            other => return Err(not_now(fit_id, other, "queued or running", "cancelled")),
         };
         audit(
             &mut tx,
@@ -295,9 +255,7 @@ impl Store {
         let mut tx = self.write().await?;
         let (status, part_id) = status_of(&mut tx, fit_id).await?;
         if status != "failed" && status != "cancelled" {
-            return Err(StoreError::Conflict(format!(
-                "fit {fit_id} is {status}: only failed or cancelled fits can be retried"
-            )));
+            return Err(not_now(fit_id, &status, "failed or cancelled", "retried"));
         }
         if let Some(b) = bounds {
             super::sweeps::check_queue_bounds(&mut tx, b, part_id).await?;
@@ -345,8 +303,7 @@ impl Store {
                 .bind(fit_id)
                 .fetch_optional(&mut *tx)
                 .await?;
-        let (sweep_id, part_id, lot_id) =
-            row.ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        let (sweep_id, part_id, lot_id) = row.ok_or_else(|| no_fit(fit_id))?;
         if let Some(b) = bounds {
             super::sweeps::check_queue_bounds(&mut tx, b, part_id).await?;
         }
@@ -371,13 +328,7 @@ impl Store {
             "refit-requested",
             Some(part_id),
             Some(new_id),
-            Some(&format!(
-                "revision {revision} of the sweep fitted by fit {fit_id} ({} family)",
-                serde_json::from_str::<serde_json::Value>(options_json)
-                    .ok()
-                    .and_then(|o| o["family"].as_str().map(str::to_owned))
-                    .unwrap_or_else(|| "lumped".into())
-            )),
+            Some(&refit_reason(revision, fit_id, options_json)),
         )
         .await?;
         tx.commit().await?;
@@ -398,9 +349,7 @@ impl Store {
         let mut tx = self.write().await?;
         let (status, part_id) = status_of(&mut tx, fit_id).await?;
         if status != "succeeded" {
-            return Err(StoreError::Conflict(format!(
-                "fit {fit_id} is {status}: only succeeded fits can be approved"
-            )));
+            return Err(not_now(fit_id, &status, "succeeded", "approved"));
         }
         let (approval, verdict, quality, baseline): (
             Option<String>,
@@ -414,33 +363,17 @@ impl Store {
         .bind(fit_id)
         .fetch_one(&mut *tx)
         .await?;
-        if approval.as_deref() == Some("approved") && baseline == Some(fit_id) {
-            return Err(StoreError::Conflict(format!(
-                "fit {fit_id} is already the part's approved baseline"
-            )));
-        }
-        let concern = if quality.as_deref() == Some("poor") {
-            Some("its model does not describe the data within their uncertainty (quality poor)")
-        } else if verdict.as_deref() == Some("fail") {
-            Some("it fails the part's limits")
-        } else {
-            None
-        };
-        let action = match (concern, overriding) {
-            (Some(why), false) => {
-                return Err(StoreError::Conflict(format!(
-                    "fit {fit_id} cannot be approved as it stands: {why}; approving it anyway needs \
-                     `override: true` and a reason"
-                )));
-            }
-            (Some(_), true) if reason.is_none() => {
-                return Err(StoreError::Invalid(
-                    "an approval with `override: true` needs a reason".into(),
-                ));
-            }
-            (Some(_), true) => "fit-approved-override",
-            (None, _) => "fit-approved",
-        };
+        let decision = approval_decision(
+            fit_id,
+            (
+                approval.as_deref(),
+                verdict.as_deref(),
+                quality.as_deref(),
+                baseline,
+            ),
+            reason,
+            overriding,
+        )?;
         let superseded: Vec<i64> = sqlx::query_scalar(
             "SELECT fit_id FROM fits WHERE part_id = ? AND approval = 'approved' AND fit_id <> ?",
         )
@@ -459,7 +392,7 @@ impl Store {
                 "approval-superseded",
                 Some(part_id),
                 Some(old),
-                Some(&format!("fit {fit_id} approved as the new baseline")),
+                Some(&superseded_reason(fit_id)),
             )
             .await?;
         }
@@ -472,20 +405,13 @@ impl Store {
             .bind(part_id)
             .execute(&mut *tx)
             .await?;
-        let recorded = match concern {
-            Some(why) => Some(format!(
-                "{} (approved although {why})",
-                reason.unwrap_or_default()
-            )),
-            None => reason.map(str::to_owned),
-        };
         audit(
             &mut tx,
             actor,
-            action,
+            decision.action,
             Some(part_id),
             Some(fit_id),
-            recorded.as_deref(),
+            decision.recorded.as_deref(),
         )
         .await?;
         refresh_drift(&mut tx, part_id).await?;
@@ -498,9 +424,7 @@ impl Store {
         let mut tx = self.write().await?;
         let (status, part_id) = status_of(&mut tx, fit_id).await?;
         if status != "succeeded" {
-            return Err(StoreError::Conflict(format!(
-                "fit {fit_id} is {status}: only succeeded fits can be rejected"
-            )));
+            return Err(not_now(fit_id, &status, "succeeded", "rejected"));
         }
         sqlx::query("UPDATE fits SET approval = 'rejected' WHERE fit_id = ?")
             .bind(fit_id)
@@ -528,12 +452,165 @@ impl Store {
     }
 }
 
+/// A fit's detail from its summary and a [`DETAIL_SELECT`] row (of either backend).
+pub(crate) fn detail_from_row<'r, R>(row: &'r R, summary: FitSummary) -> StoreResult<FitDetail>
+where
+    R: Row,
+    &'r str: sqlx::ColumnIndex<R>,
+    String: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
+    let parse = |col: &'r str| -> StoreResult<Option<serde_json::Value>> {
+        let text: Option<String> = row.try_get(col)?;
+        Ok(text.map(|t| serde_json::from_str(&t)).transpose()?)
+    };
+    let verdict_checks = match row.try_get::<Option<String>, _>("verdict_json")? {
+        Some(t) => serde_json::from_str(&t)?,
+        None => Vec::new(),
+    };
+    let drift = match row.try_get::<Option<String>, _>("drift_json")? {
+        Some(t) => Some(serde_json::from_str(&t)?),
+        None => None,
+    };
+    let report = parse("report_json")?;
+    let parsed: Option<FitReport> = report
+        .as_ref()
+        .map(|v| serde_json::from_value(v.clone()))
+        .transpose()?;
+    let verdict_note = parsed
+        .as_ref()
+        .filter(|_| !verdict_checks.is_empty())
+        .and_then(crate::registry::verdict::withheld_note);
+    let quality_summary = parsed.as_ref().map(|r| r.assessment.summary.clone());
+    Ok(FitDetail {
+        summary,
+        report,
+        verdict_checks,
+        verdict_note,
+        quality_summary,
+        drift,
+        options: parse("options_json")?.unwrap_or(serde_json::Value::Null),
+        method: row.try_get("method")?,
+        z0_ohm: row.try_get("z0_ohm")?,
+        dcr_ohm: row.try_get("dcr_ohm")?,
+        temperature_c: row.try_get("temperature_c")?,
+        operator: row.try_get("operator")?,
+        file_name: row.try_get("file_name")?,
+        sha256: row.try_get("sha256")?,
+        engine_version: row.try_get("engine_version")?,
+        attempts: row.try_get("attempts")?,
+    })
+}
+
+/// What the detail reads besides the summary (one bound parameter: the fit id).
+pub(crate) const DETAIL_SELECT: &str = "SELECT f.report_json, f.verdict_json, f.drift_json, \
+    f.options_json, f.engine_version, s.method, s.z0_ohm, s.dcr_ohm, s.temperature_c, s.operator, \
+    s.file_name, s.sha256, j.attempts FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
+    JOIN jobs j ON j.fit_id = f.fit_id WHERE f.fit_id = ";
+
+/// The refusal of an action the fit's status does not allow.
+pub(crate) fn not_now(fit_id: i64, status: &str, allowed: &str, done: &str) -> StoreError {
+    StoreError::Conflict(format!(
+        "fit {fit_id} is {status}: only {allowed} fits can be {done}"
+    ))
+}
+
+/// The answer for a fit id no fit has.
+pub(crate) fn no_fit(fit_id: i64) -> StoreError {
+    StoreError::NotFound(format!("no fit {fit_id}"))
+}
+
+/// The audit reason of a refit: its revision, the fit it came from and its family.
+pub(crate) fn refit_reason(revision: i64, fit_id: i64, options_json: &str) -> String {
+    format!(
+        "revision {revision} of the sweep fitted by fit {fit_id} ({} family)",
+        serde_json::from_str::<serde_json::Value>(options_json)
+            .ok()
+            .and_then(|o| o["family"].as_str().map(str::to_owned))
+            .unwrap_or_else(|| "lumped".into())
+    )
+}
+
+/// The audit reason of an approval superseded by the approval of `fit_id`.
+pub(crate) fn superseded_reason(fit_id: i64) -> String {
+    format!("fit {fit_id} approved as the new baseline")
+}
+
+/// What an approval records: its audit action and reason.
+pub(crate) struct Approval {
+    pub action: &'static str,
+    pub recorded: Option<String>,
+}
+
+/// Whether a succeeded fit may be approved, from its (approval, verdict, quality) and the part's
+/// baseline; the refusal, or what the approval records.
+pub(crate) fn approval_decision(
+    fit_id: i64,
+    (approval, verdict, quality, baseline): (Option<&str>, Option<&str>, Option<&str>, Option<i64>),
+    reason: Option<&str>,
+    overriding: bool,
+) -> StoreResult<Approval> {
+    if approval == Some("approved") && baseline == Some(fit_id) {
+        return Err(StoreError::Conflict(format!(
+            "fit {fit_id} is already the part's approved baseline"
+        )));
+    }
+    let concern = if quality == Some("poor") {
+        Some("its model does not describe the data within their uncertainty (quality poor)")
+    } else if verdict == Some("fail") {
+        Some("it fails the part's limits")
+    } else {
+        None
+    };
+    let action = match (concern, overriding) {
+        (Some(why), false) => {
+            return Err(StoreError::Conflict(format!(
+                "fit {fit_id} cannot be approved as it stands: {why}; approving it anyway needs \
+                 `override: true` and a reason"
+            )));
+        }
+        (Some(_), true) if reason.is_none() => {
+            return Err(StoreError::Invalid(
+                "an approval with `override: true` needs a reason".into(),
+            ));
+        }
+        (Some(_), true) => "fit-approved-override",
+        (None, _) => "fit-approved",
+    };
+    let recorded = match concern {
+        Some(why) => Some(format!(
+            "{} (approved although {why})",
+            reason.unwrap_or_default()
+        )),
+        None => reason.map(str::to_owned),
+    };
+    Ok(Approval { action, recorded })
+}
+
+/// The stored drift of the succeeded fit `fit_id` (its report `json`) against the part's baseline:
+/// none for the baseline itself or when the part has none.
+pub(crate) fn drift_of(
+    baseline: Option<&(i64, FitReport)>,
+    fit_id: i64,
+    json: &str,
+) -> StoreResult<(Option<String>, Option<f64>)> {
+    Ok(match baseline {
+        Some((bid, b)) if *bid != fit_id => {
+            let report: FitReport = serde_json::from_str(json)?;
+            let d = drift::drift(*bid, b, &report);
+            (Some(serde_json::to_string(&d)?), d.max_sigma())
+        }
+        _ => (None, None),
+    })
+}
+
 async fn status_of(tx: &mut SqliteConnection, fit_id: i64) -> StoreResult<(String, i64)> {
     sqlx::query_as("SELECT status, part_id FROM fits WHERE fit_id = ?")
         .bind(fit_id)
         .fetch_optional(tx)
         .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))
+        .ok_or_else(|| no_fit(fit_id))
 }
 
 /// The baseline's report of a part, if it has one.
@@ -564,14 +641,7 @@ async fn refresh_drift(tx: &mut SqliteConnection, part_id: i64) -> StoreResult<(
     .fetch_all(&mut *tx)
     .await?;
     for (fit_id, json) in fits {
-        let (json_out, max) = match &baseline {
-            Some((bid, b)) if *bid != fit_id => {
-                let report: FitReport = serde_json::from_str(&json)?;
-                let d = drift::drift(*bid, b, &report);
-                (Some(serde_json::to_string(&d)?), d.max_sigma())
-            }
-            _ => (None, None),
-        };
+        let (json_out, max) = drift_of(baseline.as_ref(), fit_id, &json)?;
         sqlx::query("UPDATE fits SET drift_json = ?, drift_max_sigma = ? WHERE fit_id = ?")
             .bind(json_out)
             .bind(max)
@@ -634,7 +704,7 @@ impl Store {
         .bind(fit_id)
         .fetch_optional(&self.reader)
         .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
+        .ok_or_else(|| no_fit(fit_id))?;
         Ok(FitProvenance {
             points: row.try_get("points")?,
             uploaded_at: rfc3339(row.try_get("uploaded_at_ms")?),

@@ -7,13 +7,18 @@ use crate::registry::limits::Limits;
 use crate::registry::verdict;
 use crate::registry::wire::{AuditEntry, Part};
 use sqlx::Row;
-use sqlx::sqlite::SqliteRow;
 
 pub(crate) const LIMIT_COLUMNS: &str = "l_nominal_h, l_test_frequency_hz, l_tolerance_percent, \
     dcr_max_ohm, srf_min_hz, q_min, q_test_frequency_hz, z_min_ohm, z_band_min_hz, z_band_max_hz, \
     core_corner_min_hz, core_corner_max_hz";
 
-pub(crate) fn limits_from_row(row: &SqliteRow) -> Result<Limits, sqlx::Error> {
+/// A part's limits from a row holding [`LIMIT_COLUMNS`] (of either backend).
+pub(crate) fn limits_from_row<'r, R>(row: &'r R) -> Result<Limits, sqlx::Error>
+where
+    R: Row,
+    &'r str: sqlx::ColumnIndex<R>,
+    f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
     Ok(Limits {
         l_nominal_h: row.try_get("l_nominal_h")?,
         l_test_frequency_hz: row.try_get("l_test_frequency_hz")?,
@@ -30,7 +35,31 @@ pub(crate) fn limits_from_row(row: &SqliteRow) -> Result<Limits, sqlx::Error> {
     })
 }
 
-type AuditRow = (i64, String, String, Option<i64>, Option<String>);
+/// An audit row as a part's trail shows it: at_ms, actor, action, fit_id, reason.
+pub(crate) type AuditRow = (i64, String, String, Option<i64>, Option<String>);
+
+/// A part's audit rows, oldest first, as the wire shows them.
+pub(crate) fn audit_entries(rows: Vec<AuditRow>) -> Vec<AuditEntry> {
+    rows.into_iter()
+        .map(|(at, actor, action, fit_id, reason)| AuditEntry {
+            at: rfc3339(at),
+            actor,
+            action,
+            fit_id,
+            reason,
+        })
+        .collect()
+}
+
+/// The refusal of a second part with the same number.
+pub(crate) fn part_exists(part_number: &PartNumber) -> StoreError {
+    StoreError::Conflict(format!("part {part_number} already exists"))
+}
+
+/// The answer for a part number no part has.
+pub(crate) fn no_part(part_number: &PartNumber) -> StoreError {
+    StoreError::NotFound(format!("no part {part_number}"))
+}
 
 #[derive(Debug, Clone)]
 pub struct PartRow {
@@ -75,9 +104,7 @@ impl Store {
         let part_id: i64 = match inserted {
             Ok(row) => row.get(0),
             Err(sqlx::Error::Database(e)) if e.is_unique_violation() => {
-                return Err(StoreError::Conflict(format!(
-                    "part {part_number} already exists"
-                )));
+                return Err(part_exists(part_number));
             }
             Err(e) => return Err(e.into()),
         };
@@ -94,7 +121,7 @@ impl Store {
         .bind(part_number.as_str())
         .fetch_optional(&self.reader)
         .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no part {part_number}")))?;
+        .ok_or_else(|| no_part(part_number))?;
         Ok(PartRow {
             part_id: row.try_get("part_id")?,
             part_number: row.try_get("part_number")?,
@@ -127,16 +154,7 @@ impl Store {
             lots,
             baseline_fit_id: p.baseline_fit_id,
             fits,
-            audit: audit_rows
-                .into_iter()
-                .map(|(at, actor, action, fit_id, reason)| AuditEntry {
-                    at: rfc3339(at),
-                    actor,
-                    action,
-                    fit_id,
-                    reason,
-                })
-                .collect(),
+            audit: audit_entries(audit_rows),
         })
     }
 
@@ -153,7 +171,7 @@ impl Store {
             .bind(part_number.as_str())
             .fetch_optional(&mut *tx)
             .await?
-            .ok_or_else(|| StoreError::NotFound(format!("no part {part_number}")))?;
+            .ok_or_else(|| no_part(part_number))?;
         sqlx::query(
             "UPDATE parts SET l_nominal_h = ?, l_test_frequency_hz = ?, l_tolerance_percent = ?, \
              dcr_max_ohm = ?, srf_min_hz = ?, q_min = ?, q_test_frequency_hz = ?, z_min_ohm = ?, \
@@ -182,11 +200,10 @@ impl Store {
         .fetch_all(&mut *tx)
         .await?;
         for (fit_id, json) in reports {
-            let report: FitReport = serde_json::from_str(&json)?;
-            let checks = verdict::checks(limits, &report);
+            let (verdict, verdict_json) = verdict_of(limits, &json)?;
             sqlx::query("UPDATE fits SET verdict = ?, verdict_json = ? WHERE fit_id = ?")
-                .bind(verdict::overall(&checks, &report))
-                .bind(serde_json::to_string(&checks)?)
+                .bind(verdict)
+                .bind(verdict_json)
                 .bind(fit_id)
                 .execute(&mut *tx)
                 .await?;
@@ -204,6 +221,19 @@ impl Store {
         tx.commit().await?;
         Ok(())
     }
+}
+
+/// A stored report judged against `limits`: the verdict and the checks as stored JSON.
+pub(crate) fn verdict_of(
+    limits: &Limits,
+    report_json: &str,
+) -> StoreResult<(Option<&'static str>, String)> {
+    let report: FitReport = serde_json::from_str(report_json)?;
+    let checks = verdict::checks(limits, &report);
+    Ok((
+        verdict::overall(&checks, &report),
+        serde_json::to_string(&checks)?,
+    ))
 }
 
 #[cfg(test)]

@@ -65,6 +65,79 @@ pub struct JobInput {
     pub options_json: String,
 }
 
+/// The SQL of a [`JobInput`] (one bound parameter: the fit id, to be appended).
+pub(crate) const JOB_INPUT_SELECT: &str = "SELECT f.fit_id, f.part_id, f.options_json, s.file_name, \
+    s.file_bytes, s.method, s.z0_ohm, s.fixture_open_name, s.fixture_open_bytes, \
+    s.fixture_short_name, s.fixture_short_bytes, s.fixture_topology \
+    FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id WHERE f.fit_id = ";
+
+/// A [`JOB_INPUT_SELECT`] row (of either backend).
+pub(crate) fn job_input_from_row<'r, R>(row: &'r R) -> Result<JobInput, sqlx::Error>
+where
+    R: Row,
+    &'r str: sqlx::ColumnIndex<R>,
+    String: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    Vec<u8>: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
+    Ok(JobInput {
+        fit_id: row.try_get("fit_id")?,
+        part_id: row.try_get("part_id")?,
+        file: NamedFile {
+            name: row.try_get("file_name")?,
+            bytes: row.try_get("file_bytes")?,
+        },
+        method: row.try_get("method")?,
+        z0_ohm: row.try_get("z0_ohm")?,
+        fixture_open: named(
+            row.try_get("fixture_open_name")?,
+            row.try_get("fixture_open_bytes")?,
+        ),
+        fixture_short: named(
+            row.try_get("fixture_short_name")?,
+            row.try_get("fixture_short_bytes")?,
+        ),
+        fixture_topology: row.try_get("fixture_topology")?,
+        options_json: row.try_get("options_json")?,
+    })
+}
+
+/// The refusal of an upload for a part that does not exist.
+pub(crate) fn no_part_to_upload_to(part_number: &PartNumber) -> StoreError {
+    StoreError::Invalid(format!(
+        "no part {part_number}: an engineer creates the part before sweeps are uploaded"
+    ))
+}
+
+/// The audit reason of an upload: the file and its lot.
+pub(crate) fn upload_reason(new: &NewSweep) -> String {
+    format!("{} (lot {})", new.file.name, new.lot)
+}
+
+/// The answer for a sweep id no sweep has.
+pub(crate) fn no_sweep(sweep_id: i64) -> StoreError {
+    StoreError::NotFound(format!("no sweep {sweep_id}"))
+}
+
+/// [`StoreError::QueueFull`] when `all` (queued or running fits of every part) or `part` (of the
+/// part) is at its bound.
+pub(crate) fn within_bounds(b: QueueBounds, all: i64, part: i64) -> StoreResult<()> {
+    if all >= b.all {
+        return Err(StoreError::QueueFull {
+            part: false,
+            queued: all,
+        });
+    }
+    if part >= b.part {
+        return Err(StoreError::QueueFull {
+            part: true,
+            queued: part,
+        });
+    }
+    Ok(())
+}
+
 fn named(name: Option<String>, bytes: Option<Vec<u8>>) -> Option<NamedFile> {
     match (name, bytes) {
         (Some(name), Some(bytes)) => Some(NamedFile { name, bytes }),
@@ -103,41 +176,17 @@ impl Store {
                 .fetch_optional(&self.reader)
                 .await?;
         row.map(|(name, bytes)| NamedFile { name, bytes })
-            .ok_or_else(|| StoreError::NotFound(format!("no sweep {sweep_id}")))
+            .ok_or_else(|| no_sweep(sweep_id))
     }
 
     /// Everything a worker needs for one fit.
     pub async fn job_input(&self, fit_id: i64) -> StoreResult<JobInput> {
-        let row = sqlx::query(
-            "SELECT f.fit_id, f.part_id, f.options_json, s.file_name, s.file_bytes, s.method, \
-             s.z0_ohm, s.fixture_open_name, s.fixture_open_bytes, s.fixture_short_name, \
-             s.fixture_short_bytes, s.fixture_topology FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
-             WHERE f.fit_id = ?",
-        )
-        .bind(fit_id)
-        .fetch_optional(&self.reader)
-        .await?
-        .ok_or_else(|| StoreError::NotFound(format!("no fit {fit_id}")))?;
-        Ok(JobInput {
-            fit_id: row.try_get("fit_id")?,
-            part_id: row.try_get("part_id")?,
-            file: NamedFile {
-                name: row.try_get("file_name")?,
-                bytes: row.try_get("file_bytes")?,
-            },
-            method: row.try_get("method")?,
-            z0_ohm: row.try_get("z0_ohm")?,
-            fixture_open: named(
-                row.try_get("fixture_open_name")?,
-                row.try_get("fixture_open_bytes")?,
-            ),
-            fixture_short: named(
-                row.try_get("fixture_short_name")?,
-                row.try_get("fixture_short_bytes")?,
-            ),
-            fixture_topology: row.try_get("fixture_topology")?,
-            options_json: row.try_get("options_json")?,
-        })
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!("{JOB_INPUT_SELECT}?")))
+            .bind(fit_id)
+            .fetch_optional(&self.reader)
+            .await?
+            .ok_or_else(|| super::fits::no_fit(fit_id))?;
+        Ok(job_input_from_row(&row)?)
     }
 }
 
@@ -187,10 +236,8 @@ pub(crate) async fn check_queue_bounds(
         .fetch_one(&mut *conn)
         .await?;
     if all >= b.all {
-        return Err(StoreError::QueueFull {
-            part: false,
-            queued: all,
-        });
+        // Refused on the count of every part: the part's own count is not needed.
+        return within_bounds(b, all, 0);
     }
     let part: i64 = sqlx::query_scalar(
         "SELECT COUNT(*) FROM fits WHERE part_id = ? AND status IN ('queued', 'running')",
@@ -198,13 +245,7 @@ pub(crate) async fn check_queue_bounds(
     .bind(part_id)
     .fetch_one(&mut *conn)
     .await?;
-    if part >= b.part {
-        return Err(StoreError::QueueFull {
-            part: true,
-            queued: part,
-        });
-    }
-    Ok(())
+    within_bounds(b, all, part)
 }
 
 /// The body of [`Store::upload`], inside the caller's transaction.
@@ -218,12 +259,7 @@ async fn upload_in(
         .bind(new.part_number.as_str())
         .fetch_optional(&mut *conn)
         .await?
-        .ok_or_else(|| {
-            StoreError::Invalid(format!(
-                "no part {}: an engineer creates the part before sweeps are uploaded",
-                new.part_number
-            ))
-        })?;
+        .ok_or_else(|| no_part_to_upload_to(&new.part_number))?;
     let existing: Option<(i64, i64)> = sqlx::query_as(
         "SELECT f.fit_id, f.sweep_id FROM sweeps s JOIN fits f ON f.sweep_id = s.sweep_id \
          WHERE s.part_id = ? AND s.sha256 = ? AND f.options_key = ? \
@@ -306,7 +342,7 @@ async fn upload_in(
         "sweep-uploaded",
         Some(part_id),
         Some(fit_id),
-        Some(&format!("{} (lot {})", new.file.name, new.lot)),
+        Some(&upload_reason(new)),
     )
     .await?;
     Ok(Uploaded {

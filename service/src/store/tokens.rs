@@ -60,14 +60,58 @@ pub struct TokenInfo {
 /// than this before the write is made, so status polls do not write on every call.
 pub const LAST_USED_RESOLUTION_MS: i64 = 60_000;
 
-/// The columns of a [`TokenRow`], in its order.
-const TOKEN_COLUMNS: &str = "token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms";
+/// The columns of a [`TokenRow`], in its order (both backends).
+pub(crate) const TOKEN_COLUMNS: &str =
+    "token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms";
 
 /// A token's row as [`TOKEN_COLUMNS`] reads it.
-type TokenRow = (i64, String, String, i64, Option<i64>, Option<i64>);
+pub(crate) type TokenRow = (i64, String, String, i64, Option<i64>, Option<i64>);
 
 /// Prefix that makes a henrybook token recognisable in logs and secret scanners.
 const PREFIX: &str = "hbk_";
+
+/// A new random token in plain text.
+pub(crate) fn new_token() -> String {
+    let mut raw = [0u8; 32];
+    rand::rng().fill_bytes(&mut raw);
+    format!("{PREFIX}{}", hex::encode(raw))
+}
+
+/// The label given, trimmed, or `<role>-<id>` when none (or only blanks) was.
+pub(crate) fn label_or_default(label: Option<&str>, role: Role, id: i64) -> String {
+    match label {
+        Some(l) if !l.trim().is_empty() => l.trim().to_string(),
+        _ => format!("{}-{id}", role.as_str()),
+    }
+}
+
+/// A token's row as `henrybook token list` shows it; `None` for a role this build does not know.
+pub(crate) fn token_info(row: TokenRow) -> Option<TokenInfo> {
+    let (token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms) = row;
+    Role::parse(&role).map(|role| TokenInfo {
+        token_id,
+        role,
+        label,
+        created_at_ms,
+        last_used_at_ms,
+        revoked_at_ms,
+    })
+}
+
+/// The answer for a token id no token has.
+pub(crate) fn no_token(token_id: i64) -> super::StoreError {
+    super::StoreError::NotFound(format!("no token {token_id}"))
+}
+
+/// The refusal of a second revocation.
+pub(crate) fn already_revoked(token_id: i64, label: &str) -> super::StoreError {
+    super::StoreError::Conflict(format!("token {token_id} ({label}) is already revoked"))
+}
+
+/// The audit reason of a revocation.
+pub(crate) fn revoked_reason(token_id: i64, role: &str, label: &str) -> String {
+    format!("token {token_id} ({role}, {label})")
+}
 
 impl Store {
     /// Creates a token and returns it in plain text; only its hash is kept.
@@ -76,9 +120,7 @@ impl Store {
         role: Role,
         label: Option<&str>,
     ) -> StoreResult<(i64, String)> {
-        let mut raw = [0u8; 32];
-        rand::rng().fill_bytes(&mut raw);
-        let token = format!("{PREFIX}{}", hex::encode(raw));
+        let token = new_token();
         let mut tx = self.write().await?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO tokens (token_sha256, role, label, created_at_ms) VALUES (?, ?, '', ?) RETURNING token_id",
@@ -88,10 +130,7 @@ impl Store {
         .bind(now_ms())
         .fetch_one(&mut *tx)
         .await?;
-        let label = match label {
-            Some(l) if !l.trim().is_empty() => l.trim().to_string(),
-            _ => format!("{}-{id}", role.as_str()),
-        };
+        let label = label_or_default(label, role, id);
         sqlx::query("UPDATE tokens SET label = ? WHERE token_id = ?")
             .bind(&label)
             .bind(id)
@@ -108,20 +147,7 @@ impl Store {
         )))
         .fetch_all(&self.reader)
         .await?;
-        Ok(rows
-            .into_iter()
-            .filter_map(|row| {
-                let (token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms) = row;
-                Role::parse(&role).map(|role| TokenInfo {
-                    token_id,
-                    role,
-                    label,
-                    created_at_ms,
-                    last_used_at_ms,
-                    revoked_at_ms,
-                })
-            })
-            .collect())
+        Ok(rows.into_iter().filter_map(token_info).collect())
     }
 
     /// Revokes a token: from now on it authenticates nobody (a running service reads tokens on every
@@ -135,12 +161,10 @@ impl Store {
         .fetch_optional(&mut *tx)
         .await?;
         let Some((_, role, label, created_at_ms, last_used_at_ms, revoked)) = row else {
-            return Err(super::StoreError::NotFound(format!("no token {token_id}")));
+            return Err(no_token(token_id));
         };
         if revoked.is_some() {
-            return Err(super::StoreError::Conflict(format!(
-                "token {token_id} ({label}) is already revoked"
-            )));
+            return Err(already_revoked(token_id, &label));
         }
         let now = now_ms();
         sqlx::query("UPDATE tokens SET revoked_at_ms = ? WHERE token_id = ?")
@@ -154,7 +178,7 @@ impl Store {
             "token-revoked",
             None,
             None,
-            Some(&format!("token {token_id} ({role}, {label})")),
+            Some(&revoked_reason(token_id, &role, &label)),
         )
         .await?;
         tx.commit().await?;
