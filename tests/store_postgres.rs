@@ -16,6 +16,11 @@ use sqlx::PgPool;
 use std::collections::HashSet;
 use std::time::{Duration, Instant};
 
+/// The rest of the PostgreSQL store held to the SQLite store: a module of this binary, so the store's
+/// tests stay one binary.
+#[path = "store_parity.rs"]
+mod parity;
+
 /// Inserts one part, one lot, and `n` sweeps with one queued fit each, and queues their jobs; the
 /// fit ids, oldest first.
 async fn queue_fits(pool: &PgPool, n: usize) -> Vec<i64> {

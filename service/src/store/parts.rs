@@ -12,6 +12,24 @@ pub(crate) const LIMIT_COLUMNS: &str = "l_nominal_h, l_test_frequency_hz, l_tole
     dcr_max_ohm, srf_min_hz, q_min, q_test_frequency_hz, z_min_ohm, z_band_min_hz, z_band_max_hz, \
     core_corner_min_hz, core_corner_max_hz";
 
+/// A part's limits in the order of [`LIMIT_COLUMNS`].
+pub(crate) fn limit_values(l: &Limits) -> [Option<f64>; 12] {
+    [
+        l.l_nominal_h,
+        l.l_test_frequency_hz,
+        l.l_tolerance_percent,
+        l.dcr_max_ohm,
+        l.srf_min_hz,
+        l.q_min,
+        l.q_test_frequency_hz,
+        l.z_min_ohm,
+        l.z_band_min_hz,
+        l.z_band_max_hz,
+        l.core_corner_min_hz,
+        l.core_corner_max_hz,
+    ]
+}
+
 /// A part's limits from a row holding [`LIMIT_COLUMNS`] (of either backend).
 pub(crate) fn limits_from_row<'r, R>(row: &'r R) -> Result<Limits, sqlx::Error>
 where

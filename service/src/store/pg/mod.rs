@@ -1,14 +1,28 @@
-//! Storage on PostgreSQL, for several replicas sharing one database. What exists so far: the schema
-//! (`migrations/postgres/`, the same versions and names as `migrations/sqlite/`) and the job queue
-//! ([`queue`]), both tested against a real server (tests/store_postgres.rs). The rest of the store
-//! (parts, uploads, queries, tokens, the audit chain) runs on SQLite only, and the service does not
-//! open PostgreSQL yet.
+//! Storage on PostgreSQL, for several replicas sharing one database. The schema is
+//! `migrations/postgres/` (the same versions and names as `migrations/sqlite/`); [`queue`] is the job
+//! queue; [`PgStore`] has the store's operations with the SQLite store's answers, errors and audit
+//! rows: parts and limits ([`parts`]), uploads with the duplicate rule and the queue bounds
+//! ([`sweeps`]) and a succeeded fit's result with its figures, grid and verdict ([`results`]), every
+//! audit row chained as on SQLite ([`audit`]). Row decoders, messages and rules that do not depend on
+//! the SQL are shared with the SQLite modules. tests/store_postgres.rs tests the queue against a real
+//! server and tests/store_parity.rs runs the same operations on both stores and compares the answers.
+//!
+//! Not on PostgreSQL yet: fits (lists, details, refits, cancel, retry, approval), tokens, the part
+//! queries ([`crate::store::query`]), the audit rows of the queue's own outcomes, the integrity check
+//! and /readyz's chain check, readiness. The service does not open PostgreSQL yet.
+//!
+//! Every transaction takes its locks in one order: job rows, the part's row, fit rows, the queue-bound
+//! lock ([`sweeps::QUEUE_BOUND_LOCK`]), the audit lock ([`audit::AUDIT_LOCK`], always last).
 //!
 //! Every connection of a pool made by [`connect`] sets `idle_in_transaction_session_timeout` as a
 //! startup parameter (per connection, whatever the role's or database's settings), so a replica that
 //! stalls inside a transaction cannot hold the queue's row locks for longer than that.
 
+pub mod audit;
+pub mod parts;
 pub mod queue;
+pub mod results;
+pub mod sweeps;
 
 use anyhow::Context;
 use sqlx::PgPool;
@@ -51,6 +65,44 @@ pub async fn migrate(pool: &PgPool) -> anyhow::Result<()> {
         .run(pool)
         .await
         .context("cannot apply the PostgreSQL migrations")
+}
+
+/// The store on PostgreSQL: the same operations and answers as [`crate::store::Store`] for the
+/// modules ported so far (see the module notes), over one pool that every replica has its own of.
+#[derive(Clone, Debug)]
+pub struct PgStore {
+    pub(crate) pool: PgPool,
+    pub(crate) queue: queue::PgQueue,
+}
+
+impl PgStore {
+    /// A store over `pool`, whose database is already migrated ([`migrate`]).
+    pub fn new(pool: PgPool) -> PgStore {
+        PgStore {
+            queue: queue::PgQueue::new(pool.clone()),
+            pool,
+        }
+    }
+
+    /// Connects to `url` with at most `max_connections` connections and applies the migrations.
+    pub async fn open(url: &str, max_connections: u32) -> anyhow::Result<PgStore> {
+        let pool = connect(url, max_connections).await?;
+        migrate(&pool).await?;
+        Ok(PgStore::new(pool))
+    }
+
+    pub fn pool(&self) -> &PgPool {
+        &self.pool
+    }
+
+    /// The job queue on the same pool.
+    pub fn queue(&self) -> &queue::PgQueue {
+        &self.queue
+    }
+
+    pub async fn close(&self) {
+        self.pool.close().await;
+    }
 }
 
 #[cfg(test)]

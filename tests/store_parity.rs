@@ -1,0 +1,599 @@
+//! The PostgreSQL store (henrybook::store::pg::PgStore) held to the SQLite store
+//! (henrybook::store::Store), a module of the store_postgres test binary: each test runs the same
+//! operations, in the same order, on a SQLite store in a temporary folder and
+//! on a PostgreSQL store in a fresh database ([`henrybook_tests::pg::TestDb`]; the server must be
+//! running: these tests fail, never skip, without it), and asserts the same answers: the same wire
+//! values with timestamps masked (their presence is compared, not their value), and the same error kind
+//! and message. Ids are compared as they are: both stores number from 1 and the sequences are the same.
+//! The audit trails are compared row by row (all but the time and the chain hashes, which cover the
+//! time), and the PostgreSQL chain is checked with the SQLite store's own hash.
+//!
+//! The fitted reports are fits of synthetic sweeps of the invented `power_choke` model
+//! (henrybook_tests::synth), made once and written to both stores.
+
+use henrybook::fit::{FitControl, FitOptions, FitReport, fit};
+use henrybook::registry::assessment::assess;
+use henrybook::registry::ids::{LotCode, PartNumber};
+use henrybook::registry::limits::Limits;
+use henrybook::store::integrity::{AuditRow, GENESIS, row_hash};
+use henrybook::store::jobs::PartRef;
+use henrybook::store::pg::PgStore;
+use henrybook::store::sweeps::{NamedFile, NewSweep, QueueBounds};
+use henrybook::store::{Store, StoreError, StoreResult, sha256_hex};
+use henrybook::sweep::Method;
+use henrybook_tests::pg::TestDb;
+use henrybook_tests::synth::{power_choke, synthetic_sweep};
+use serde_json::{Value, json};
+use sqlx::Row;
+use std::sync::OnceLock;
+use std::time::{Duration, Instant};
+
+/// A SQLite store and a PostgreSQL store, both empty.
+struct Both {
+    sq: Store,
+    pg: PgStore,
+    dir: tempfile::TempDir,
+    db: TestDb,
+}
+
+impl Both {
+    async fn new() -> Both {
+        let dir = tempfile::tempdir().unwrap();
+        let sq = Store::open(&dir.path().join("parity.db")).await.unwrap();
+        let db = TestDb::new().await;
+        let pg = PgStore::new(db.pool.clone());
+        Both { sq, pg, dir, db }
+    }
+
+    /// Every audit row of each store as (id, actor, action, part, fit, reason, result hash).
+    async fn audit_rows(&self) -> (Vec<AuditView>, Vec<AuditView>) {
+        let sqlite = sqlx::SqlitePool::connect(&format!(
+            "sqlite://{}?mode=ro",
+            self.dir.path().join("parity.db").display()
+        ))
+        .await
+        .unwrap();
+        let sql = "SELECT audit_id, actor, action, part_id, fit_id, reason, result_sha256 \
+                   FROM audit ORDER BY audit_id";
+        let a: Vec<AuditView> = sqlx::query_as(sql).fetch_all(&sqlite).await.unwrap();
+        sqlite.close().await;
+        let p: Vec<AuditView> = sqlx::query_as(sql).fetch_all(&self.db.pool).await.unwrap();
+        (a, p)
+    }
+
+    /// The audit trails are the same row for row, and both chains hold.
+    async fn assert_same_audit(&self) {
+        let (a, p) = self.audit_rows().await;
+        assert!(!a.is_empty());
+        assert_eq!(a, p, "the audit trails differ");
+        let report = self.sq.verify_integrity().await.unwrap();
+        assert!(report.ok(), "{:?}", report.problems);
+        assert_pg_chain_holds(&self.db.pool).await;
+    }
+}
+
+type AuditView = (
+    i64,
+    String,
+    String,
+    Option<i64>,
+    Option<i64>,
+    Option<String>,
+    Option<String>,
+);
+
+/// Checks the PostgreSQL audit chain with the SQLite store's hash ([`row_hash`]): ids 1..n without
+/// gaps, each row's prev_hash the hash before it, each hash the row's own.
+async fn assert_pg_chain_holds(pool: &sqlx::PgPool) {
+    let rows = sqlx::query(
+        "SELECT audit_id, at_ms, actor, action, part_id, fit_id, reason, result_sha256, prev_hash, \
+         hash FROM audit ORDER BY audit_id",
+    )
+    .fetch_all(pool)
+    .await
+    .unwrap();
+    let mut prev = GENESIS.to_string();
+    for (i, r) in rows.iter().enumerate() {
+        let row = AuditRow {
+            audit_id: r.get("audit_id"),
+            at_ms: r.get("at_ms"),
+            actor: r.get("actor"),
+            action: r.get("action"),
+            part_id: r.get("part_id"),
+            fit_id: r.get("fit_id"),
+            reason: r.get("reason"),
+            result_sha256: r.get("result_sha256"),
+        };
+        assert_eq!(row.audit_id, i as i64 + 1, "audit ids have no gap");
+        let stored_prev: String = r.get("prev_hash");
+        let hash: String = r.get("hash");
+        assert_eq!(
+            stored_prev, prev,
+            "row {} follows the one before",
+            row.audit_id
+        );
+        assert_eq!(hash, row_hash(&prev, &row), "row {} hashes", row.audit_id);
+        prev = hash;
+    }
+}
+
+/// A store error as the transports see it: its kind and message. A database error is not an answer.
+fn error_view(e: &StoreError) -> Value {
+    match e {
+        StoreError::NotFound(m) => json!({"not_found": m}),
+        StoreError::Conflict(m) => json!({"conflict": m}),
+        StoreError::Invalid(m) => json!({"invalid": m}),
+        StoreError::QueueFull { part, queued } => {
+            json!({"queue_full": {"part": part, "queued": queued}})
+        }
+        other => panic!("a database error where a store answer was due: {other}"),
+    }
+}
+
+const TIME_KEYS: [&str; 9] = [
+    "created_at",
+    "started_at",
+    "finished_at",
+    "at",
+    "uploaded_at",
+    "approved_at",
+    "created_at_ms",
+    "last_used_at_ms",
+    "revoked_at_ms",
+];
+
+/// `v` with every timestamp replaced by a mark of its presence.
+fn mask_times(v: Value) -> Value {
+    match v {
+        Value::Object(map) => Value::Object(
+            map.into_iter()
+                .map(|(k, v)| {
+                    let v = if TIME_KEYS.contains(&k.as_str()) && !v.is_null() {
+                        json!("<time>")
+                    } else {
+                        mask_times(v)
+                    };
+                    (k, v)
+                })
+                .collect(),
+        ),
+        Value::Array(items) => Value::Array(items.into_iter().map(mask_times).collect()),
+        other => other,
+    }
+}
+
+fn view<T, F: FnOnce(&T) -> Value>(r: &StoreResult<T>, f: F) -> Value {
+    match r {
+        Ok(v) => json!({"ok": mask_times(f(v))}),
+        Err(e) => json!({"err": error_view(e)}),
+    }
+}
+
+/// Runs the same call on both stores and asserts the same answer (seen through `$view`); the
+/// SQLite store's result.
+macro_rules! same {
+    ($b:expr, $s:ident => $call:expr) => {
+        same!($b, $s => $call, |v| serde_json::to_value(v).unwrap())
+    };
+    ($b:expr, $s:ident => $call:expr, $view:expr) => {{
+        let a = {
+            let $s = &$b.sq;
+            $call.await
+        };
+        let p = {
+            let $s = &$b.pg;
+            $call.await
+        };
+        let (va, vp) = (view(&a, $view), view(&p, $view));
+        assert_eq!(va, vp, "SQLite (left) and PostgreSQL (right) answer {}", stringify!($call));
+        a
+    }};
+}
+
+fn part_number(text: &str) -> PartNumber {
+    PartNumber::parse(text).unwrap()
+}
+
+fn new_sweep(pn: &PartNumber, lot: &str, i: usize, options_key: &str) -> NewSweep {
+    let bytes = format!("frequency_hz,z_real_ohm,z_imag_ohm\n{i},1,2\n").into_bytes();
+    NewSweep {
+        part_number: pn.clone(),
+        lot: LotCode::parse(lot).unwrap(),
+        sha256: sha256_hex(&bytes),
+        file: NamedFile {
+            name: format!("sweep-{i}.csv"),
+            bytes,
+        },
+        method: "direct".into(),
+        z0_ohm: Some(50.0),
+        dcr_ohm: i.is_multiple_of(2).then_some(0.12),
+        temperature_c: Some(23.5),
+        operator: format!("bench {i}"),
+        fixture_open: None,
+        fixture_short: None,
+        fixture_topology: None,
+        points: 3,
+        options_json: format!("{{\"key\":\"{options_key}\"}}"),
+        options_key: options_key.into(),
+    }
+}
+
+fn uploaded_view(u: &henrybook::store::sweeps::Uploaded) -> Value {
+    json!([u.fit_id, u.sweep_id, u.duplicate])
+}
+
+fn debug_view<T: std::fmt::Debug>(v: &T) -> Value {
+    json!(format!("{v:?}"))
+}
+
+fn unit(_: &()) -> Value {
+    Value::Null
+}
+
+/// Two fitted reports of the invented power choke: its own DC resistance (0.12 Ω) and a copy wound
+/// with a thinner wire (0.30 Ω).
+fn reports() -> &'static (FitReport, FitReport) {
+    static REPORTS: OnceLock<(FitReport, FitReport)> = OnceLock::new();
+    REPORTS.get_or_init(|| {
+        let run = |rdc_ohm: f64, seed: u64| {
+            let mut model = power_choke();
+            model.rdc_ohm = rdc_ohm;
+            let sweep = synthetic_sweep(&model, 1e3, 100e6, 201, Method::Direct, seed);
+            fit(&sweep, &FitOptions::default(), &FitControl::default()).unwrap()
+        };
+        (run(0.12, 1), run(0.30, 2))
+    })
+}
+
+/// Claims the oldest runnable fit on both stores (the same one), starts it and writes `report` as its
+/// result, assessed on each store against that store's part.
+async fn succeed_next(b: &Both, report: &FitReport) -> i64 {
+    let lease = Duration::from_secs(60);
+    let a =
+        b.sq.claim_job(lease, 3)
+            .await
+            .unwrap()
+            .expect("a job on SQLite");
+    let p =
+        b.pg.queue()
+            .claim_job(lease, 3)
+            .await
+            .unwrap()
+            .expect("a job on PostgreSQL");
+    assert_eq!(a.fit_id, p.fit_id);
+    assert!(b.sq.mark_started(&a).await.unwrap());
+    assert!(b.pg.queue().mark_started(&p).await.unwrap());
+    let (basis_a, base_a) = b.sq.assessment_basis(a.fit_id).await.unwrap();
+    let (basis_p, base_p) = b.pg.assessment_basis(p.fit_id).await.unwrap();
+    assert_eq!((&basis_a, &base_a), (&basis_p, &base_p));
+    let assessment = assess(report, basis_a, base_a.as_deref()).unwrap();
+    assert!(
+        b.sq.complete_succeeded(&a, report.clone(), assessment.clone())
+            .await
+            .unwrap()
+    );
+    assert!(
+        b.pg.complete_succeeded(&p, report, &assessment)
+            .await
+            .unwrap()
+    );
+    // Written once: a second write of the same claim is refused on both.
+    assert!(
+        !b.sq
+            .complete_succeeded(&a, report.clone(), assessment.clone())
+            .await
+            .unwrap()
+    );
+    assert!(
+        !b.pg
+            .complete_succeeded(&p, report, &assessment)
+            .await
+            .unwrap()
+    );
+    a.fit_id
+}
+
+#[tokio::test]
+async fn parts_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let pn = part_number("PX-100");
+    let limits = Limits {
+        dcr_max_ohm: Some(0.2),
+        srf_min_hz: Some(5e6),
+        ..Limits::default()
+    };
+    same!(b, s => s.create_part("eng", &pn, "output choke", &limits), unit).unwrap();
+    // A second part with the same number, bad limits, parts that do not exist.
+    let again = same!(b, s => s.create_part("eng", &pn, "again", &Limits::default()), unit);
+    assert!(matches!(again, Err(StoreError::Conflict(_))), "{again:?}");
+    let bad = Limits {
+        dcr_max_ohm: Some(-1.0),
+        ..Limits::default()
+    };
+    let refused = same!(b, s => s.create_part("eng", &part_number("PX-101"), "", &bad), unit);
+    assert!(
+        matches!(refused, Err(StoreError::Invalid(_))),
+        "{refused:?}"
+    );
+    let missing = part_number("PX-404");
+    let none = same!(b, s => s.part(&missing));
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let none = same!(b, s => s.part_row(&missing), debug_view);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let none = same!(b, s => s.update_limits("eng", &missing, &limits), unit);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let bad_update = same!(b, s => s.update_limits("eng", &pn, &bad), unit);
+    assert!(
+        matches!(bad_update, Err(StoreError::Invalid(_))),
+        "{bad_update:?}"
+    );
+
+    // Lots are listed in byte order on both (PostgreSQL's locale would sort them otherwise).
+    for (i, lot) in ["b", "B", "a", "2024 W17", "Ä-7", "a "]
+        .into_iter()
+        .enumerate()
+    {
+        let new = new_sweep(&pn, lot, i, "k");
+        same!(b, s => s.upload("insp", new.clone()), uploaded_view).unwrap();
+    }
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert_eq!(part.lots, ["2024 W17", "B", "a", "b", "Ä-7"]);
+    assert_eq!(part.fits.len(), 6);
+    assert_eq!(part.limits, limits);
+    let row = same!(b, s => s.part_row(&pn), debug_view).unwrap();
+    assert_eq!((row.part_id, row.baseline_fit_id), (1, None));
+
+    // New limits re-judge every succeeded fit.
+    let (pass, _) = reports();
+    assert_eq!(succeed_next(&b, pass).await, 1);
+    let verdict_of_fit_1 = |part: &henrybook::registry::wire::Part| {
+        let fit = part.fits.iter().find(|f| f.fit_id == 1).unwrap();
+        fit.verdict.clone()
+    };
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert_eq!(verdict_of_fit_1(&part).as_deref(), Some("pass"));
+    let tighter = Limits {
+        dcr_max_ohm: Some(0.05),
+        ..limits.clone()
+    };
+    same!(b, s => s.update_limits("eng", &pn, &tighter), unit).unwrap();
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert_eq!(part.limits, tighter);
+    assert_eq!(verdict_of_fit_1(&part).as_deref(), Some("fail"));
+    let actions: Vec<&str> = part.audit.iter().map(|a| a.action.as_str()).collect();
+    assert_eq!(actions.first(), Some(&"part-created"));
+    assert_eq!(actions.last(), Some(&"limits-changed"));
+    b.assert_same_audit().await;
+}
+
+#[tokio::test]
+async fn uploads_duplicates_and_queue_bounds_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let pn = part_number("SW-1");
+    let other = part_number("SW-2");
+    let missing = part_number("SW-404");
+    let refused = same!(b, s => s.upload("insp", new_sweep(&missing, "L1", 0, "k")), uploaded_view);
+    assert!(
+        matches!(refused, Err(StoreError::Invalid(_))),
+        "{refused:?}"
+    );
+    same!(b, s => s.create_part("eng", &pn, "", &Limits::default()), unit).unwrap();
+    same!(b, s => s.create_part("eng", &other, "", &Limits::default()), unit).unwrap();
+
+    let first =
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", 0, "k")), uploaded_view).unwrap();
+    assert!(!first.duplicate);
+    // The same file with the same options: the existing fit, nothing stored.
+    let dup = same!(b, s => s.upload("insp", new_sweep(&pn, "L2", 0, "k")), uploaded_view).unwrap();
+    assert_eq!(
+        (dup.fit_id, dup.sweep_id, dup.duplicate),
+        (first.fit_id, first.sweep_id, true)
+    );
+    // The same file with other options, or for another part: stored.
+    let other_options =
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", 0, "k2")), uploaded_view).unwrap();
+    assert!(!other_options.duplicate && other_options.fit_id != first.fit_id);
+    let other_part =
+        same!(b, s => s.upload("insp", new_sweep(&other, "L1", 0, "k")), uploaded_view).unwrap();
+    assert!(!other_part.duplicate);
+
+    // Fixture sweeps are kept byte for byte and reach the worker.
+    let mut with_fixture = new_sweep(&pn, "L3", 9, "k");
+    with_fixture.fixture_open = Some(NamedFile {
+        name: "open.s1p".into(),
+        bytes: vec![0, 1, 2, 255],
+    });
+    with_fixture.fixture_short = Some(NamedFile {
+        name: "short.s1p".into(),
+        bytes: b"short".to_vec(),
+    });
+    with_fixture.fixture_topology = Some("series-then-shunt".into());
+    let fixtured = same!(b, s => s.upload("insp", with_fixture.clone()), uploaded_view).unwrap();
+    let input = same!(b, s => s.job_input(fixtured.fit_id), debug_view).unwrap();
+    assert_eq!(input.fixture_open.unwrap().bytes, [0, 1, 2, 255]);
+    assert_eq!(input.fixture_topology.as_deref(), Some("series-then-shunt"));
+    let file = same!(b, s => s.sweep_file(fixtured.sweep_id), debug_view).unwrap();
+    assert_eq!(file.bytes, with_fixture.file.bytes);
+    let none = same!(b, s => s.sweep_file(99), debug_view);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let none = same!(b, s => s.job_input(99), debug_view);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+
+    // Bounds: SW-1 has 3 queued fits, there are 4 in all.
+    let depth = same!(b, s => s.queue_depth(PartRef::Number(&pn)), debug_view).unwrap();
+    assert_eq!((depth.all, depth.part), (4, 3));
+    same!(b, s => s.queue_depth(PartRef::OfFit(other_part.fit_id)), debug_view).unwrap();
+    same!(b, s => s.queue_depth(PartRef::Number(&missing)), debug_view).unwrap();
+    same!(b, s => s.queue_depth(PartRef::Unnamed), debug_view).unwrap();
+    let per_part = Some(QueueBounds { all: 10, part: 3 });
+    let full = same!(b, s => s.upload_bounded("insp", new_sweep(&pn, "L1", 5, "k"), per_part), uploaded_view);
+    assert!(
+        matches!(
+            full,
+            Err(StoreError::QueueFull {
+                part: true,
+                queued: 3
+            })
+        ),
+        "{full:?}"
+    );
+    let all = Some(QueueBounds { all: 4, part: 10 });
+    let full = same!(b, s => s.upload_bounded("insp", new_sweep(&other, "L1", 5, "k"), all), uploaded_view);
+    assert!(
+        matches!(
+            full,
+            Err(StoreError::QueueFull {
+                part: false,
+                queued: 4
+            })
+        ),
+        "{full:?}"
+    );
+    // A duplicate is answered whatever the bounds.
+    let dup =
+        same!(b, s => s.upload_bounded("insp", new_sweep(&pn, "L1", 0, "k"), all), uploaded_view)
+            .unwrap();
+    assert!(dup.duplicate);
+    let room = Some(QueueBounds { all: 5, part: 4 });
+    same!(b, s => s.upload_bounded("insp", new_sweep(&pn, "L1", 6, "k"), room), uploaded_view)
+        .unwrap();
+    let counts = same!(b, s => s.queue_counts()).unwrap();
+    assert_eq!(counts.queued, 5);
+    same!(b, s => s.part(&pn)).unwrap();
+    same!(b, s => s.part(&other)).unwrap();
+    b.assert_same_audit().await;
+}
+
+#[tokio::test]
+async fn replicas_uploading_at_once_store_one_duplicate_once_and_keep_the_bound() {
+    let db = TestDb::new().await;
+    let stores = [
+        PgStore::new(db.pool.clone()),
+        PgStore::new(db.replica().await),
+    ];
+    let parts: Vec<PartNumber> = (0..3).map(|i| part_number(&format!("RP-{i}"))).collect();
+    for pn in &parts {
+        stores[0]
+            .create_part("eng", pn, "", &Limits::default())
+            .await
+            .unwrap();
+    }
+    // The same file 16 times at once from two replicas: stored once, every answer names that fit.
+    let mut set = tokio::task::JoinSet::new();
+    for i in 0..16 {
+        let store = stores[i % 2].clone();
+        let new = new_sweep(&parts[0], "L1", 0, "k");
+        set.spawn(async move { store.upload("insp", new).await.unwrap() });
+    }
+    let mut answers = Vec::new();
+    while let Some(a) = set.join_next().await {
+        answers.push(a.unwrap());
+    }
+    assert_eq!(answers.iter().filter(|a| !a.duplicate).count(), 1);
+    assert!(answers.iter().all(|a| a.fit_id == answers[0].fit_id));
+
+    // 60 different files at once on three parts under a bound of 25 in all: exactly 25 queued.
+    let bound = Some(QueueBounds { all: 25, part: 100 });
+    let started = Instant::now();
+    let mut set = tokio::task::JoinSet::new();
+    for i in 0..60 {
+        let store = stores[i % 2].clone();
+        let new = new_sweep(&parts[i % 3], "L1", 100 + i, "k");
+        set.spawn(async move { store.upload_bounded("insp", new, bound).await });
+    }
+    let (mut stored, mut full) = (0, 0);
+    while let Some(r) = set.join_next().await {
+        match r.unwrap() {
+            Ok(u) => {
+                assert!(!u.duplicate);
+                stored += 1;
+            }
+            Err(StoreError::QueueFull {
+                part: false,
+                queued,
+            }) => {
+                assert_eq!(queued, 25);
+                full += 1;
+            }
+            Err(e) => panic!("{e}"),
+        }
+    }
+    let elapsed = started.elapsed();
+    assert_eq!(
+        (stored, full),
+        (24, 36),
+        "1 fit was queued before: 24 more reach the bound of 25"
+    );
+    let counts = stores[1].queue_counts().await.unwrap();
+    assert_eq!(counts.queued, 25);
+    let fits: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM fits")
+        .fetch_one(&db.pool)
+        .await
+        .unwrap();
+    assert_eq!(fits, 25);
+    eprintln!(
+        "60 bounded uploads from 2 replicas (24 stored, 36 refused) in {:.1} ms",
+        elapsed.as_secs_f64() * 1e3
+    );
+    assert_pg_chain_holds(&db.pool).await;
+    let audit: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM audit")
+        .fetch_one(&db.pool)
+        .await
+        .unwrap();
+    assert_eq!(audit, 3 + 25, "three parts created, 25 uploads");
+}
+
+#[tokio::test]
+async fn two_hundred_uploads_at_once_give_one_chain_on_each_store() {
+    let b = Both::new().await;
+    let replica = PgStore::new(b.db.replica().await);
+    let pn = part_number("TP-1");
+    same!(b, s => s.create_part("eng", &pn, "", &Limits::default()), unit).unwrap();
+    let n = 200;
+    // SQLite: every request waiting at once shares a group commit.
+    let started = Instant::now();
+    let mut set = tokio::task::JoinSet::new();
+    for i in 0..n {
+        let store = b.sq.clone();
+        let new = new_sweep(&pn, "L1", i, "k");
+        set.spawn(async move { store.upload("insp", new).await.unwrap() });
+    }
+    while let Some(u) = set.join_next().await {
+        assert!(!u.unwrap().duplicate);
+    }
+    let sqlite = started.elapsed();
+    // PostgreSQL: one transaction per upload from two replicas' pools, the audit appends in turn.
+    let started = Instant::now();
+    let mut set = tokio::task::JoinSet::new();
+    for i in 0..n {
+        let store = if i % 2 == 0 {
+            b.pg.clone()
+        } else {
+            replica.clone()
+        };
+        let new = new_sweep(&pn, "L1", i, "k");
+        set.spawn(async move { store.upload("insp", new).await.unwrap() });
+    }
+    while let Some(u) = set.join_next().await {
+        assert!(!u.unwrap().duplicate);
+    }
+    let postgres = started.elapsed();
+    eprintln!(
+        "{n} concurrent uploads: SQLite {:.0} ms, PostgreSQL (2 pools of 8) {:.0} ms",
+        sqlite.as_secs_f64() * 1e3,
+        postgres.as_secs_f64() * 1e3
+    );
+    // The same fits (ids aside: they follow the order the uploads arrived in) and two intact chains.
+    let counts = same!(b, s => s.queue_counts()).unwrap();
+    assert_eq!(counts.queued, n as i64);
+    let (a, p) = b.audit_rows().await;
+    assert_eq!((a.len(), p.len()), (n + 1, n + 1));
+    let reasons = |rows: &[AuditView]| {
+        let mut r: Vec<Option<String>> = rows.iter().map(|r| r.5.clone()).collect();
+        r.sort();
+        r
+    };
+    assert_eq!(reasons(&a), reasons(&p));
+    assert!(b.sq.verify_integrity().await.unwrap().ok());
+    assert_pg_chain_holds(&b.db.pool).await;
+}
