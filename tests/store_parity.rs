@@ -15,6 +15,8 @@ use henrybook::fit::{FitControl, FitOptions, FitReport, fit};
 use henrybook::registry::assessment::assess;
 use henrybook::registry::ids::{LotCode, PartNumber};
 use henrybook::registry::limits::Limits;
+use henrybook::registry::wire::{FailureKind, FitStatus};
+use henrybook::store::fits::FitFilter;
 use henrybook::store::integrity::{AuditRow, GENESIS, row_hash};
 use henrybook::store::jobs::PartRef;
 use henrybook::store::pg::PgStore;
@@ -360,9 +362,40 @@ async fn parts_answer_the_same_on_both_stores() {
     let part = same!(b, s => s.part(&pn)).unwrap();
     assert_eq!(part.limits, tighter);
     assert_eq!(verdict_of_fit_1(&part).as_deref(), Some("fail"));
+
+    // A result assessed before the limits changed is judged again when it is written.
+    let lease = Duration::from_secs(60);
+    let a = b.sq.claim_job(lease, 3).await.unwrap().unwrap();
+    let p = b.pg.queue().claim_job(lease, 3).await.unwrap().unwrap();
+    assert_eq!((a.fit_id, p.fit_id), (2, 2));
+    let (basis, baseline) = b.sq.assessment_basis(2).await.unwrap();
+    let stale = assess(pass, basis, baseline.as_deref()).unwrap();
+    assert_eq!(
+        stale.judgement.verdict,
+        Some("fail"),
+        "0.12 Ω against 0.05 Ω"
+    );
+    same!(b, s => s.update_limits("eng", &pn, &limits), unit).unwrap();
+    assert!(
+        b.sq.complete_succeeded(&a, pass.clone(), stale.clone())
+            .await
+            .unwrap()
+    );
+    assert!(b.pg.complete_succeeded(&p, pass, &stale).await.unwrap());
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    let fit_2 = part.fits.iter().find(|f| f.fit_id == 2).unwrap();
+    assert_eq!(
+        fit_2.verdict.as_deref(),
+        Some("pass"),
+        "judged against 0.2 Ω"
+    );
     let actions: Vec<&str> = part.audit.iter().map(|a| a.action.as_str()).collect();
     assert_eq!(actions.first(), Some(&"part-created"));
-    assert_eq!(actions.last(), Some(&"limits-changed"));
+    assert_eq!(actions.last(), Some(&"fit-succeeded"));
+    assert_eq!(
+        actions.iter().filter(|a| **a == "limits-changed").count(),
+        2
+    );
     b.assert_same_audit().await;
 }
 
@@ -462,6 +495,228 @@ async fn uploads_duplicates_and_queue_bounds_answer_the_same_on_both_stores() {
     same!(b, s => s.part(&pn)).unwrap();
     same!(b, s => s.part(&other)).unwrap();
     b.assert_same_audit().await;
+}
+
+#[tokio::test]
+async fn fits_revisions_and_approvals_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let (pass, fail) = reports();
+    let pn = part_number("FX-7");
+    let limits = Limits {
+        dcr_max_ohm: Some(0.2),
+        ..Limits::default()
+    };
+    same!(b, s => s.create_part("eng", &pn, "filter choke", &limits), unit).unwrap();
+    for (i, lot) in ["L2", "L1", "L1", "L10"].into_iter().enumerate() {
+        same!(b, s => s.upload("insp", new_sweep(&pn, lot, i, "k")), uploaded_view).unwrap();
+    }
+    assert_eq!(succeed_next(&b, pass).await, 1);
+    assert_eq!(succeed_next(&b, fail).await, 2);
+    let one = same!(b, s => s.fit_detail(1)).unwrap();
+    assert_eq!(one.summary.status, FitStatus::Succeeded);
+    assert_eq!(
+        one.summary.verdict.as_deref(),
+        Some("pass"),
+        "{:?}",
+        one.verdict_checks
+    );
+    let two = same!(b, s => s.fit_summary(2)).unwrap();
+    assert_eq!(two.verdict.as_deref(), Some("fail"));
+
+    // Cancel: a queued fit at once, a running one by request; the rest are conflicts.
+    assert!(!same!(b, s => s.cancel_fit("insp", 3), debug_view).unwrap());
+    let again = same!(b, s => s.cancel_fit("insp", 3), debug_view);
+    assert!(matches!(again, Err(StoreError::Conflict(_))), "{again:?}");
+    let none = same!(b, s => s.cancel_fit("insp", 99), debug_view);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let lease = Duration::from_secs(60);
+    let a =
+        b.sq.claim_job(lease, 3)
+            .await
+            .unwrap()
+            .expect("fit 4 runnable");
+    let p =
+        b.pg.queue()
+            .claim_job(lease, 3)
+            .await
+            .unwrap()
+            .expect("fit 4 runnable");
+    assert_eq!((a.fit_id, p.fit_id), (4, 4));
+    assert!(b.sq.mark_started(&a).await.unwrap() && b.pg.queue().mark_started(&p).await.unwrap());
+    assert!(same!(b, s => s.cancel_fit("insp", 4), debug_view).unwrap());
+
+    // Retry: only failed or cancelled fits, within the bounds.
+    let full = same!(b, s => s.retry_fit("insp", 3, Some(QueueBounds { all: 10, part: 1 })), unit);
+    assert!(
+        matches!(
+            full,
+            Err(StoreError::QueueFull {
+                part: true,
+                queued: 1
+            })
+        ),
+        "{full:?}"
+    );
+    same!(b, s => s.retry_fit("insp", 3, Some(QueueBounds { all: 10, part: 2 })), unit).unwrap();
+    for id in [1, 3] {
+        let refused = same!(b, s => s.retry_fit("insp", id, None), unit);
+        assert!(
+            matches!(refused, Err(StoreError::Conflict(_))),
+            "{refused:?}"
+        );
+    }
+    let none = same!(b, s => s.retry_fit("insp", 99, None), unit);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+
+    // Approval: a failing fit needs an override with a reason; a baseline cannot be approved twice.
+    let refused = same!(b, s => s.approve_fit("eng", 2, None, false), unit);
+    assert!(
+        matches!(refused, Err(StoreError::Conflict(_))),
+        "{refused:?}"
+    );
+    let refused = same!(b, s => s.approve_fit("eng", 2, None, true), unit);
+    assert!(
+        matches!(refused, Err(StoreError::Invalid(_))),
+        "{refused:?}"
+    );
+    same!(b, s => s.approve_fit("eng", 1, Some("first lot"), false), unit).unwrap();
+    let twice = same!(b, s => s.approve_fit("eng", 1, None, false), unit);
+    assert!(matches!(twice, Err(StoreError::Conflict(_))), "{twice:?}");
+    // Fit 2 now drifts from the baseline fit 1.
+    let drifting = same!(b, s => s.fit_detail(2)).unwrap();
+    assert_eq!(drifting.drift.as_ref().map(|d| d.baseline_fit_id), Some(1));
+    same!(b, s => s.approve_fit("eng", 2, Some("accepted at review"), true), unit).unwrap();
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert_eq!(part.baseline_fit_id, Some(2));
+    for id in [3, 99] {
+        let refused = same!(b, s => s.approve_fit("eng", id, None, false), unit);
+        assert!(refused.is_err(), "{refused:?}");
+    }
+    same!(b, s => s.reject_fit("eng", 2, "the winding was damaged"), unit).unwrap();
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert_eq!(part.baseline_fit_id, None);
+    for id in [3, 99] {
+        let refused = same!(b, s => s.reject_fit("eng", id, "no"), unit);
+        assert!(refused.is_err(), "{refused:?}");
+    }
+
+    // Refit: a new revision of the same sweep, within the bounds.
+    let options = "{\"family\":\"rational\"}";
+    let full = same!(b, s => s.refit("eng", 1, options, "r", Some(QueueBounds { all: 2, part: 10 })), debug_view);
+    assert!(
+        matches!(
+            full,
+            Err(StoreError::QueueFull {
+                part: false,
+                queued: 2
+            })
+        ),
+        "{full:?}"
+    );
+    let new_id = same!(b, s => s.refit("eng", 1, options, "r", None), debug_view).unwrap();
+    let revision = same!(b, s => s.fit_summary(new_id)).unwrap();
+    assert_eq!((revision.revision, revision.sweep_id), (2, 1));
+    let none = same!(b, s => s.refit("eng", 99, options, "r", None), debug_view);
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+
+    // Every read of every fit, the lists, the counts, the part and its trend.
+    for id in 1..=new_id + 1 {
+        // The last id has no fit: NotFound from each.
+        let found = same!(b, s => s.fit_summary(id)).is_ok();
+        assert_eq!(found, id <= new_id);
+        let _ = same!(b, s => s.fit_detail(id));
+        let _ = same!(b, s => s.fit_report(id));
+        let _ = same!(b, s => s.fit_sweep_id(id), debug_view);
+        let _ = same!(b, s => s.fit_provenance(id), debug_view_masked);
+    }
+    let filters = [
+        FitFilter {
+            limit: 50,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            limit: 2,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            limit: 2,
+            before_fit_id: Some(4),
+            ..FitFilter::default()
+        },
+        FitFilter {
+            status: Some(FitStatus::Succeeded),
+            limit: 50,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            error_kind: Some(FailureKind::Cancelled),
+            limit: 50,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            lot: Some(LotCode::parse("L1").unwrap()),
+            limit: 50,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            part_number: Some(pn.clone()),
+            since_ms: Some(0),
+            limit: 50,
+            ..FitFilter::default()
+        },
+        FitFilter {
+            part_number: Some(part_number("NONE")),
+            limit: 50,
+            ..FitFilter::default()
+        },
+    ];
+    for filter in &filters {
+        same!(b, s => s.list_fits(filter)).unwrap();
+    }
+    let page = same!(b, s => s.list_fits(&filters[1])).unwrap();
+    assert_eq!(page.next_cursor.as_deref(), Some("4"));
+    let counts = same!(b, s => s.queue_counts()).unwrap();
+    assert_eq!((counts.succeeded, counts.queued, counts.running), (2, 2, 1));
+    let trend = same!(b, s => s.lot_fits(1), |v| lot_fits_view(v)).unwrap();
+    // Fit 1 was approved and then superseded (still counts); fit 2 was rejected.
+    let approved: Vec<(i64, bool)> = trend.iter().map(|f| (f.fit_id, f.approved)).collect();
+    assert_eq!(approved, [(2, false), (1, true)]);
+    let provenance = same!(b, s => s.fit_provenance(2), debug_view_masked).unwrap();
+    assert_eq!(provenance.approved_by.as_deref(), Some("eng"));
+    let part = same!(b, s => s.part(&pn)).unwrap();
+    assert!(part.audit.iter().any(|a| a.action == "approval-superseded"));
+    b.assert_same_audit().await;
+}
+
+/// Debug text with the RFC 3339 timestamps masked.
+fn debug_view_masked<T: std::fmt::Debug>(v: &T) -> Value {
+    let text = format!("{v:?}");
+    let masked: String = text
+        .split('"')
+        .map(|piece| {
+            if henrybook::store::parse_rfc3339(piece).is_some() {
+                "<time>"
+            } else {
+                piece
+            }
+        })
+        .collect::<Vec<_>>()
+        .join("\"");
+    json!(masked)
+}
+
+fn lot_fits_view(v: &[henrybook::registry::trend::LotFit]) -> Value {
+    Value::Array(
+        v.iter()
+            .map(|f| {
+                json!({
+                    "fit_id": f.fit_id, "lot": f.lot, "lot_order": f.lot_order,
+                    "approved": f.approved, "uploaded_at": f.uploaded_at,
+                    "report": serde_json::to_value(&f.report).unwrap(),
+                })
+            })
+            .collect(),
+    )
 }
 
 #[tokio::test]
@@ -596,4 +851,105 @@ async fn two_hundred_uploads_at_once_give_one_chain_on_each_store() {
     assert_eq!(reasons(&a), reasons(&p));
     assert!(b.sq.verify_integrity().await.unwrap().ok());
     assert_pg_chain_holds(&b.db.pool).await;
+}
+
+#[tokio::test]
+async fn approvals_limits_and_results_racing_on_two_replicas_leave_one_consistent_state() {
+    let db = TestDb::new().await;
+    let (a, b) = (
+        PgStore::new(db.pool.clone()),
+        PgStore::new(db.replica().await),
+    );
+    let (pass, fail) = reports();
+    let pn = part_number("RC-1");
+    let old = Limits {
+        dcr_max_ohm: Some(0.2),
+        ..Limits::default()
+    };
+    a.create_part("eng", &pn, "", &old).await.unwrap();
+    for i in 0..6 {
+        a.upload("insp", new_sweep(&pn, "L1", i, "k"))
+            .await
+            .unwrap();
+    }
+    let lease = Duration::from_secs(60);
+    // Fits 1-3 succeed; 4-6 are running, their results assessed against the old limits (0.30 Ω
+    // fails 0.2 Ω).
+    let mut running = Vec::new();
+    for i in 0..6 {
+        let claim = a.queue().claim_job(lease, 3).await.unwrap().unwrap();
+        assert!(a.queue().mark_started(&claim).await.unwrap());
+        let report = if i < 3 { pass } else { fail };
+        let (basis, baseline) = a.assessment_basis(claim.fit_id).await.unwrap();
+        let assessment = assess(report, basis, baseline.as_deref()).unwrap();
+        if i < 3 {
+            assert!(
+                a.complete_succeeded(&claim, report, &assessment)
+                    .await
+                    .unwrap()
+            );
+        } else {
+            assert_eq!(assessment.judgement.verdict, Some("fail"));
+            running.push((claim, assessment));
+        }
+    }
+    // At once, on two replicas: two approvals, new limits under which 0.30 Ω passes, three results.
+    let new = Limits {
+        dcr_max_ohm: Some(0.35),
+        ..Limits::default()
+    };
+    let mut set = tokio::task::JoinSet::new();
+    for (store, fit_id) in [(a.clone(), 1), (b.clone(), 2)] {
+        set.spawn(async move { store.approve_fit("eng", fit_id, None, false).await });
+    }
+    {
+        let (store, pn, new) = (b.clone(), pn.clone(), new.clone());
+        set.spawn(async move { store.update_limits("eng", &pn, &new).await });
+    }
+    for (i, (claim, assessment)) in running.into_iter().enumerate() {
+        let store = if i % 2 == 0 { a.clone() } else { b.clone() };
+        set.spawn(async move {
+            assert!(store.complete_succeeded(&claim, fail, &assessment).await?);
+            Ok(())
+        });
+    }
+    while let Some(r) = set.join_next().await {
+        r.unwrap().unwrap();
+    }
+    // One approved fit, the part's baseline; every verdict under the new limits; every drift from
+    // that baseline.
+    let approved: Vec<i64> =
+        sqlx::query_scalar("SELECT fit_id FROM fits WHERE approval = 'approved'")
+            .fetch_all(&db.pool)
+            .await
+            .unwrap();
+    let baseline = a.part_row(&pn).await.unwrap().baseline_fit_id;
+    assert_eq!(approved.len(), 1);
+    assert_eq!(baseline, Some(approved[0]));
+    let rows: Vec<(i64, String, Option<String>, Option<String>)> = sqlx::query_as(
+        "SELECT fit_id, report_json, verdict, drift_json FROM fits WHERE status = 'succeeded' \
+         ORDER BY fit_id",
+    )
+    .fetch_all(&db.pool)
+    .await
+    .unwrap();
+    assert_eq!(rows.len(), 6);
+    for (fit_id, json, verdict, drift) in rows {
+        let report: FitReport = serde_json::from_str(&json).unwrap();
+        let checks = henrybook::registry::verdict::checks(&new, &report);
+        let want = henrybook::registry::verdict::overall(&checks, &report);
+        assert_eq!(verdict.as_deref(), want, "fit {fit_id}");
+        assert_eq!(want, Some("pass"), "fit {fit_id}");
+        let from: Option<i64> = drift.map(|d| {
+            serde_json::from_str::<Value>(&d).unwrap()["baseline_fit_id"]
+                .as_i64()
+                .unwrap()
+        });
+        if Some(fit_id) == baseline {
+            assert_eq!(from, None, "the baseline has no drift");
+        } else {
+            assert_eq!(from, baseline, "fit {fit_id}'s drift is from the baseline");
+        }
+    }
+    assert_pg_chain_holds(&db.pool).await;
 }

@@ -2,14 +2,16 @@
 //! `migrations/postgres/` (the same versions and names as `migrations/sqlite/`); [`queue`] is the job
 //! queue; [`PgStore`] has the store's operations with the SQLite store's answers, errors and audit
 //! rows: parts and limits ([`parts`]), uploads with the duplicate rule and the queue bounds
-//! ([`sweeps`]) and a succeeded fit's result with its figures, grid and verdict ([`results`]), every
-//! audit row chained as on SQLite ([`audit`]). Row decoders, messages and rules that do not depend on
-//! the SQL are shared with the SQLite modules. tests/store_postgres.rs tests the queue against a real
-//! server and tests/store_parity.rs runs the same operations on both stores and compares the answers.
+//! ([`sweeps`]), fits with refits, cancel, retry, approval and rejection ([`fits`]) and a succeeded
+//! fit's result with its figures, grid and verdict ([`results`]), every audit row chained as on SQLite
+//! ([`audit`]). Row decoders, messages and rules that do not depend on the SQL are shared with the
+//! SQLite modules. tests/store_postgres.rs tests the queue against a real server and
+//! tests/store_parity.rs runs the same operations on both stores and compares the answers.
 //!
-//! Not on PostgreSQL yet: fits (lists, details, refits, cancel, retry, approval), tokens, the part
-//! queries ([`crate::store::query`]), the audit rows of the queue's own outcomes, the integrity check
-//! and /readyz's chain check, readiness. The service does not open PostgreSQL yet.
+//! Not on PostgreSQL yet: tokens, the part queries ([`crate::store::query`]), the audit rows of the
+//! queue's own outcomes (failed, cancelled, out of attempts: [`queue::PgQueue::complete`] writes
+//! none), the integrity check and /readyz's chain check, readiness. The service does not open
+//! PostgreSQL yet.
 //!
 //! Every transaction takes its locks in one order: job rows, the part's row, fit rows, the queue-bound
 //! lock ([`sweeps::QUEUE_BOUND_LOCK`]), the audit lock ([`audit::AUDIT_LOCK`], always last).
@@ -19,6 +21,7 @@
 //! stalls inside a transaction cannot hold the queue's row locks for longer than that.
 
 pub mod audit;
+pub mod fits;
 pub mod parts;
 pub mod queue;
 pub mod results;

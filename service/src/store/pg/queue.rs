@@ -28,8 +28,9 @@
 //! - **Lock order**: every statement that changes both tables changes `jobs` before `fits`, and the
 //!   claim waits on nothing (SKIP LOCKED), so the queue's statements cannot deadlock each other.
 //!
-//! Not done here yet (the rest of the store): audit entries for what workers do, the figures, grid,
-//! resonances and verdict of a succeeded fit, queue bounds, retries.
+//! Elsewhere: a succeeded fit's figures, grid, resonances, verdict and audit row
+//! ([`super::results`]); queue bounds ([`super::sweeps`]) and retries ([`super::fits`]). Not done yet:
+//! the audit rows of the outcomes written here.
 
 use crate::registry::wire::FailureKind;
 use crate::store::jobs::Renewal;
@@ -386,57 +387,63 @@ time); retry it to run it again', s.attempts) END, \
     /// Cancels a queued fit at once, or asks the worker of a running one to stop.
     pub async fn cancel(&self, fit_id: i64) -> StoreResult<Cancel> {
         let mut tx = self.pool.begin().await?;
-        // Jobs before fits, as everywhere in the queue.
-        let job: Option<String> =
-            sqlx::query_scalar("SELECT state FROM jobs WHERE fit_id = $1 FOR UPDATE")
-                .bind(fit_id)
-                .fetch_optional(&mut *tx)
-                .await?;
-        let status: Option<String> =
-            sqlx::query_scalar("SELECT status FROM fits WHERE fit_id = $1")
-                .bind(fit_id)
-                .fetch_optional(&mut *tx)
-                .await?;
-        let (Some(_), Some(status)) = (job, status) else {
-            return Err(StoreError::NotFound(format!(
-                "no fit {fit_id} in the queue"
-            )));
-        };
-        let answer = match status.as_str() {
-            "queued" => {
-                sqlx::query(
-                    "UPDATE jobs SET state = 'done', lease_until_ms = NULL WHERE fit_id = $1",
-                )
-                .bind(fit_id)
-                .execute(&mut *tx)
-                .await?;
-                sqlx::query(
-                    "UPDATE fits SET status = 'cancelled', error_kind = $2, finished_at_ms = $3 \
-                     WHERE fit_id = $1",
-                )
-                .bind(fit_id)
-                .bind(FailureKind::Cancelled.as_str())
-                .bind(now_ms())
-                .execute(&mut *tx)
-                .await?;
-                Cancel::Cancelled
-            }
-            "running" => {
-                sqlx::query("UPDATE jobs SET cancel_requested = true WHERE fit_id = $1")
-                    .bind(fit_id)
-                    .execute(&mut *tx)
-                    .await?;
-                Cancel::Requested
-            }
-            other => {
-                return Err(StoreError::Conflict(format!(
-                    "fit {fit_id} is {other}: only queued or running fits can be cancelled"
-                )));
-            }
-        };
+        let answer = cancel_in(&mut tx, fit_id).await?;
         tx.commit().await?;
         Ok(answer)
     }
+}
+
+/// The body of [`PgQueue::cancel`], inside the caller's transaction (its first lock is the job row).
+pub async fn cancel_in(conn: &mut PgConnection, fit_id: i64) -> StoreResult<Cancel> {
+    // Jobs before fits, as everywhere in the queue.
+    let job: Option<String> =
+        sqlx::query_scalar("SELECT state FROM jobs WHERE fit_id = $1 FOR UPDATE")
+            .bind(fit_id)
+            .fetch_optional(&mut *conn)
+            .await?;
+    let status: Option<String> = sqlx::query_scalar("SELECT status FROM fits WHERE fit_id = $1")
+        .bind(fit_id)
+        .fetch_optional(&mut *conn)
+        .await?;
+    let (Some(_), Some(status)) = (job, status) else {
+        return Err(StoreError::NotFound(format!(
+            "no fit {fit_id} in the queue"
+        )));
+    };
+    let answer = match status.as_str() {
+        "queued" => {
+            sqlx::query("UPDATE jobs SET state = 'done', lease_until_ms = NULL WHERE fit_id = $1")
+                .bind(fit_id)
+                .execute(&mut *conn)
+                .await?;
+            sqlx::query(
+                "UPDATE fits SET status = 'cancelled', error_kind = $2, finished_at_ms = $3 \
+                 WHERE fit_id = $1",
+            )
+            .bind(fit_id)
+            .bind(FailureKind::Cancelled.as_str())
+            .bind(now_ms())
+            .execute(&mut *conn)
+            .await?;
+            Cancel::Cancelled
+        }
+        "running" => {
+            sqlx::query("UPDATE jobs SET cancel_requested = true WHERE fit_id = $1")
+                .bind(fit_id)
+                .execute(&mut *conn)
+                .await?;
+            Cancel::Requested
+        }
+        other => {
+            return Err(crate::store::fits::not_now(
+                fit_id,
+                other,
+                "queued or running",
+                "cancelled",
+            ));
+        }
+    };
+    Ok(answer)
 }
 
 /// Why [`JobWaker::wait`] returned.

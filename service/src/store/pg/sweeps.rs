@@ -48,6 +48,37 @@ pub(crate) async fn check_queue_bounds(
     within_bounds(b, all, part)
 }
 
+/// Inserts a queued fit of an existing sweep and its job row in one statement; the new fit's id.
+pub(crate) async fn insert_fit(
+    conn: &mut PgConnection,
+    sweep_id: i64,
+    part_id: i64,
+    lot_id: i64,
+    revision: i64,
+    options_json: &str,
+    options_key: &str,
+) -> StoreResult<i64> {
+    Ok(sqlx::query_scalar(
+        "WITH f AS ( \
+             INSERT INTO fits (sweep_id, part_id, lot_id, revision, status, options_json, \
+                               options_key, created_at_ms) \
+             VALUES ($1, $2, $3, $4, 'queued', $5, $6, $7) RETURNING fit_id \
+         ), j AS ( \
+             INSERT INTO jobs (fit_id, state, enqueued_at_ms) SELECT fit_id, 'queued', $7 FROM f \
+         ) \
+         SELECT fit_id FROM f",
+    )
+    .bind(sweep_id)
+    .bind(part_id)
+    .bind(lot_id)
+    .bind(revision)
+    .bind(options_json)
+    .bind(options_key)
+    .bind(now_ms())
+    .fetch_one(&mut *conn)
+    .await?)
+}
+
 impl PgStore {
     /// Stores the sweep, queues its first fit and records the upload, all in one transaction; or
     /// returns the existing fit for a duplicate.
