@@ -21,7 +21,8 @@ use henrybook::store::integrity::{AuditRow, GENESIS, row_hash};
 use henrybook::store::jobs::PartRef;
 use henrybook::store::pg::PgStore;
 use henrybook::store::sweeps::{NamedFile, NewSweep, QueueBounds};
-use henrybook::store::{Store, StoreError, StoreResult, sha256_hex};
+use henrybook::store::tokens::{LAST_USED_RESOLUTION_MS, Role};
+use henrybook::store::{Store, StoreError, StoreResult, now_ms, sha256_hex};
 use henrybook::sweep::Method;
 use henrybook_tests::pg::TestDb;
 use henrybook_tests::synth::{power_choke, synthetic_sweep};
@@ -717,6 +718,117 @@ fn lot_fits_view(v: &[henrybook::registry::trend::LotFit]) -> Value {
             })
             .collect(),
     )
+}
+
+#[tokio::test]
+async fn tokens_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let mut plain = Vec::new();
+    for (role, label) in [
+        (Role::Inspector, Some("  bench 3 ")),
+        (Role::Reader, None),
+        (Role::Engineer, Some("   ")),
+    ] {
+        let a = b.sq.create_token(role, label).await.unwrap();
+        let p = b.pg.create_token(role, label).await.unwrap();
+        assert_eq!(a.0, p.0, "the same id");
+        assert!(p.1.starts_with("hbk_") && p.1.len() == 4 + 64 && p.1 != a.1);
+        plain.push((a, p));
+    }
+    let list = same!(b, s => s.list_tokens()).unwrap();
+    let labels: Vec<&str> = list.iter().map(|t| t.label.as_str()).collect();
+    assert_eq!(labels, ["bench 3", "reader-2", "engineer-3"]);
+    // Only the hash is stored.
+    let stored: Vec<String> =
+        sqlx::query_scalar("SELECT token_sha256 FROM tokens ORDER BY token_id")
+            .fetch_all(&b.db.pool)
+            .await
+            .unwrap();
+    let hashes: Vec<String> = plain
+        .iter()
+        .map(|(_, p)| sha256_hex(p.1.as_bytes()))
+        .collect();
+    assert_eq!(stored, hashes);
+
+    for (a, p) in &plain {
+        let callers = (
+            b.sq.authenticate(&a.1).await.unwrap(),
+            b.pg.authenticate(&p.1).await.unwrap(),
+        );
+        assert!(callers.0.is_some());
+        assert_eq!(callers.0, callers.1);
+    }
+    for token in ["hbk_nope", ""] {
+        same!(b, s => s.authenticate(token), debug_view).unwrap();
+    }
+    let revoked = same!(b, s => s.revoke_token("admin", 1)).unwrap();
+    assert!(revoked.revoked_at_ms.is_some());
+    let again = same!(b, s => s.revoke_token("admin", 1));
+    assert!(matches!(again, Err(StoreError::Conflict(_))), "{again:?}");
+    let none = same!(b, s => s.revoke_token("admin", 99));
+    assert!(matches!(none, Err(StoreError::NotFound(_))), "{none:?}");
+    let (a, p) = (&plain[0].0.1, &plain[0].1.1);
+    assert_eq!(b.sq.authenticate(a).await.unwrap(), None);
+    assert_eq!(b.pg.authenticate(p).await.unwrap(), None);
+    let list = same!(b, s => s.list_tokens()).unwrap();
+    // Each token authenticated once before the revocation: each has its last use.
+    assert!(list.iter().all(|t| t.last_used_at_ms.is_some()));
+    b.assert_same_audit().await;
+}
+
+#[tokio::test]
+async fn a_postgresql_token_records_its_last_use_at_most_once_a_minute() {
+    let db = TestDb::new().await;
+    let store = PgStore::new(db.pool.clone());
+    let (id, token) = store.create_token(Role::Reader, None).await.unwrap();
+    let last_used = || async {
+        let list = store.list_tokens().await.unwrap();
+        list.iter()
+            .find(|t| t.token_id == id)
+            .unwrap()
+            .last_used_at_ms
+    };
+    let set = |at_ms: i64| {
+        sqlx::query("UPDATE tokens SET last_used_at_ms = $1 WHERE token_id = $2")
+            .bind(at_ms)
+            .bind(id)
+            .execute(&db.pool)
+    };
+    assert_eq!(last_used().await, None);
+    let before = now_ms();
+    assert!(store.authenticate(&token).await.unwrap().is_some());
+    let first = last_used().await.expect("set by the first use");
+    assert!((before..=now_ms()).contains(&first), "{first}");
+    // Used 30 s ago: not written again within the minute.
+    set(first - 30_000).await.unwrap();
+    assert!(store.authenticate(&token).await.unwrap().is_some());
+    assert_eq!(last_used().await, Some(first - 30_000));
+    // Used more than a minute ago: written.
+    set(first - LAST_USED_RESOLUTION_MS - 1_000).await.unwrap();
+    let before = now_ms();
+    assert!(store.authenticate(&token).await.unwrap().is_some());
+    let again = last_used().await.unwrap();
+    assert!((before..=now_ms()).contains(&again), "{again}");
+    // A failing write of the last use does not fail the request.
+    sqlx::raw_sql(
+        "CREATE FUNCTION frozen() RETURNS trigger LANGUAGE plpgsql AS $$ \
+         BEGIN RAISE EXCEPTION 'read-only for this test'; END; $$; \
+         CREATE TRIGGER tokens_frozen BEFORE UPDATE OF last_used_at_ms ON tokens \
+         FOR EACH ROW EXECUTE FUNCTION frozen();",
+    )
+    .execute(&db.pool)
+    .await
+    .unwrap();
+    set(0).await.expect_err("the column is frozen");
+    assert_eq!(
+        store
+            .authenticate(&token)
+            .await
+            .unwrap()
+            .map(|c| c.token_id),
+        Some(id)
+    );
+    assert_eq!(last_used().await, Some(again));
 }
 
 #[tokio::test]

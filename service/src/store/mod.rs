@@ -7,8 +7,8 @@
 //! [`crate::registry`] functions when a stored verdict or drift must follow a change of limits or
 //! baseline.
 //!
-//! [`pg`] is the store on PostgreSQL for several replicas (schema, job queue, and so far parts,
-//! uploads and fits with this store's answers); the service does not use it yet.
+//! [`pg`] is the store on PostgreSQL for several replicas (schema, job queue, and parts, uploads, fits
+//! and tokens with this store's answers); the service does not use it yet.
 
 pub mod batch;
 pub mod fits;

@@ -2,13 +2,13 @@
 //! `migrations/postgres/` (the same versions and names as `migrations/sqlite/`); [`queue`] is the job
 //! queue; [`PgStore`] has the store's operations with the SQLite store's answers, errors and audit
 //! rows: parts and limits ([`parts`]), uploads with the duplicate rule and the queue bounds
-//! ([`sweeps`]), fits with refits, cancel, retry, approval and rejection ([`fits`]) and a succeeded
-//! fit's result with its figures, grid and verdict ([`results`]), every audit row chained as on SQLite
-//! ([`audit`]). Row decoders, messages and rules that do not depend on the SQL are shared with the
-//! SQLite modules. tests/store_postgres.rs tests the queue against a real server and
-//! tests/store_parity.rs runs the same operations on both stores and compares the answers.
+//! ([`sweeps`]), fits with refits, cancel, retry, approval and rejection ([`fits`]), a succeeded
+//! fit's result with its figures, grid and verdict ([`results`]) and tokens ([`tokens`]), every audit
+//! row chained as on SQLite ([`audit`]). Row decoders, messages and rules that do not depend on the
+//! SQL are shared with the SQLite modules. tests/store_postgres.rs tests the queue against a real
+//! server and tests/store_parity.rs runs the same operations on both stores and compares the answers.
 //!
-//! Not on PostgreSQL yet: tokens, the part queries ([`crate::store::query`]), the audit rows of the
+//! Not on PostgreSQL yet: the part queries ([`crate::store::query`]), the audit rows of the
 //! queue's own outcomes (failed, cancelled, out of attempts: [`queue::PgQueue::complete`] writes
 //! none), the integrity check and /readyz's chain check, readiness. The service does not open
 //! PostgreSQL yet.
@@ -26,6 +26,7 @@ pub mod parts;
 pub mod queue;
 pub mod results;
 pub mod sweeps;
+pub mod tokens;
 
 use anyhow::Context;
 use sqlx::PgPool;

@@ -1,0 +1,137 @@
+//! Bearer tokens on PostgreSQL: the operations of [`crate::store::tokens`] with the same answers and
+//! errors (only the SHA-256 is stored; a token's last use is written at most once a minute, and a
+//! failure of that write never fails the request).
+
+use super::PgStore;
+use super::audit::{self, Entry};
+use crate::store::tokens::{
+    Caller, LAST_USED_RESOLUTION_MS, Role, TOKEN_COLUMNS, TokenInfo, TokenRow, already_revoked,
+    label_or_default, new_token, no_token, revoked_reason, token_info,
+};
+use crate::store::{StoreResult, now_ms, sha256_hex};
+
+impl PgStore {
+    /// Creates a token and returns it in plain text; only its hash is kept.
+    pub async fn create_token(
+        &self,
+        role: Role,
+        label: Option<&str>,
+    ) -> StoreResult<(i64, String)> {
+        let token = new_token();
+        let mut tx = self.pool.begin().await?;
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO tokens (token_sha256, role, label, created_at_ms) VALUES ($1, $2, '', $3) \
+             RETURNING token_id",
+        )
+        .bind(sha256_hex(token.as_bytes()))
+        .bind(role.as_str())
+        .bind(now_ms())
+        .fetch_one(&mut *tx)
+        .await?;
+        sqlx::query("UPDATE tokens SET label = $1 WHERE token_id = $2")
+            .bind(label_or_default(label, role, id))
+            .bind(id)
+            .execute(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        Ok((id, token))
+    }
+
+    /// Every token, oldest first, revoked ones included.
+    pub async fn list_tokens(&self) -> StoreResult<Vec<TokenInfo>> {
+        let rows: Vec<TokenRow> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {TOKEN_COLUMNS} FROM tokens ORDER BY token_id"
+        )))
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows.into_iter().filter_map(token_info).collect())
+    }
+
+    /// Revokes a token (recorded in the audit trail); revoking twice is a conflict. The row is
+    /// locked, so two replicas revoking it at once record one revocation.
+    pub async fn revoke_token(&self, actor: &str, token_id: i64) -> StoreResult<TokenInfo> {
+        let mut tx = self.pool.begin().await?;
+        let row: Option<TokenRow> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {TOKEN_COLUMNS} FROM tokens WHERE token_id = $1 FOR UPDATE"
+        )))
+        .bind(token_id)
+        .fetch_optional(&mut *tx)
+        .await?;
+        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked)) = row else {
+            return Err(no_token(token_id));
+        };
+        if revoked.is_some() {
+            return Err(already_revoked(token_id, &label));
+        }
+        let now = now_ms();
+        sqlx::query("UPDATE tokens SET revoked_at_ms = $1 WHERE token_id = $2")
+            .bind(now)
+            .bind(token_id)
+            .execute(&mut *tx)
+            .await?;
+        audit::append(
+            &mut tx,
+            &[Entry::new(
+                actor,
+                "token-revoked",
+                None,
+                None,
+                Some(&revoked_reason(token_id, &role, &label)),
+            )],
+        )
+        .await?;
+        tx.commit().await?;
+        Ok(TokenInfo {
+            token_id,
+            role: Role::parse(&role).unwrap_or(Role::Reader),
+            label,
+            created_at_ms,
+            last_used_at_ms,
+            revoked_at_ms: Some(now),
+        })
+    }
+
+    /// The caller a presented token belongs to, or `None` for an unknown or revoked token; its last
+    /// use is recorded as on SQLite ([`crate::store::Store::authenticate`]).
+    pub async fn authenticate(&self, token: &str) -> StoreResult<Option<Caller>> {
+        let row: Option<(i64, String, String, Option<i64>)> = sqlx::query_as(
+            "SELECT token_id, role, label, last_used_at_ms FROM tokens \
+             WHERE token_sha256 = $1 AND revoked_at_ms IS NULL",
+        )
+        .bind(sha256_hex(token.as_bytes()))
+        .fetch_optional(&self.pool)
+        .await?;
+        let Some((token_id, role, label, last_used_at_ms)) = row else {
+            return Ok(None);
+        };
+        let Some(role) = Role::parse(&role) else {
+            return Ok(None);
+        };
+        let now = now_ms();
+        if last_used_at_ms.is_none_or(|t| t < now - LAST_USED_RESOLUTION_MS)
+            && let Err(e) = self.record_token_use(token_id, now).await
+        {
+            tracing::warn!(token_id, error = %e, "cannot record when the token was last used");
+        }
+        Ok(Some(Caller {
+            token_id,
+            role,
+            label,
+        }))
+    }
+
+    /// Sets a token's last use unless another request did within the last minute (the condition is
+    /// in the UPDATE, so requests on several replicas at once write once).
+    async fn record_token_use(&self, token_id: i64, now_ms: i64) -> StoreResult<()> {
+        sqlx::query(
+            "UPDATE tokens SET last_used_at_ms = $1 WHERE token_id = $2 \
+             AND (last_used_at_ms IS NULL OR last_used_at_ms < $3)",
+        )
+        .bind(now_ms)
+        .bind(token_id)
+        .bind(now_ms - LAST_USED_RESOLUTION_MS)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+}
