@@ -5,13 +5,11 @@
 //! ([`sweeps`]), fits with refits, cancel, retry, approval and rejection ([`fits`]), a succeeded
 //! fit's result with its figures, grid and verdict ([`results`]) and tokens ([`tokens`]), every audit
 //! row chained as on SQLite ([`audit`]). Row decoders, messages and rules that do not depend on the
-//! SQL are shared with the SQLite modules. tests/store_postgres.rs tests the queue against a real
-//! server and tests/store_parity.rs runs the same operations on both stores and compares the answers.
+//! SQL are shared with the SQLite modules. tests/store/queue.rs tests the queue against a real
+//! server and tests/store/parity.rs runs the same operations on both stores and compares the answers.
 //!
-//! Not on PostgreSQL yet: the part queries ([`crate::store::query`]), the audit rows of the
-//! queue's own outcomes (failed, cancelled, out of attempts: [`queue::PgQueue::complete`] writes
-//! none), the integrity check and /readyz's chain check, readiness. The service does not open
-//! PostgreSQL yet.
+//! Not on PostgreSQL yet: the part queries ([`crate::store::query`]), the integrity check and
+//! /readyz's chain check, readiness. The service does not open PostgreSQL yet.
 //!
 //! Every transaction takes its locks in one order: job rows, the part's row, fit rows, the queue-bound
 //! lock ([`sweeps::QUEUE_BOUND_LOCK`]), the audit lock ([`audit::AUDIT_LOCK`], always last).

@@ -28,12 +28,16 @@
 //! - **Lock order**: every statement that changes both tables changes `jobs` before `fits`, and the
 //!   claim waits on nothing (SKIP LOCKED), so the queue's statements cannot deadlock each other.
 //!
+//! - **Audit**: every failed or cancelled outcome written here, by a worker or by a claim settling an
+//!   expired job, appends its `fit-failed` or `fit-cancelled` row by the worker, as the SQLite queue
+//!   does, in the same transaction and last in it ([`super::audit`]).
+//!
 //! Elsewhere: a succeeded fit's figures, grid, resonances, verdict and audit row
-//! ([`super::results`]); queue bounds ([`super::sweeps`]) and retries ([`super::fits`]). Not done yet:
-//! the audit rows of the outcomes written here.
+//! ([`super::results`]); queue bounds ([`super::sweeps`]) and retries ([`super::fits`]).
 
+use super::audit::{self, Entry};
 use crate::registry::wire::FailureKind;
-use crate::store::jobs::Renewal;
+use crate::store::jobs::{Renewal, WORKER_ACTOR};
 use crate::store::{StoreError, StoreResult, now_ms};
 use sqlx::postgres::PgListener;
 use sqlx::{PgConnection, PgPool};
@@ -102,7 +106,9 @@ pub async fn enqueue(conn: &mut PgConnection, fit_ids: &[i64]) -> StoreResult<()
 }
 
 /// Writes outcomes inside the caller's transaction, in one statement; the answer tells, for each
-/// claim in order, whether it still held (and so whether its outcome was written).
+/// claim in order, whether it still held (and so whether its outcome was written). The audit rows of
+/// the failed and cancelled outcomes written are appended last (a succeeded one's row is its
+/// result's, [`super::results`]), so the caller writes nothing after this.
 pub async fn complete_in(
     conn: &mut PgConnection,
     outcomes: &[(Claim, Outcome)],
@@ -156,7 +162,7 @@ pub async fn complete_in(
         engines.push(engine);
         reports.push(report);
     }
-    let written: Vec<i64> = sqlx::query_scalar(
+    let written: Vec<(i64, i64, String, Option<String>)> = sqlx::query_as(
         "WITH outcome AS ( \
              SELECT * FROM unnest($1::bigint[], $2::bigint[], $3::text[], $4::text[], $5::text[], \
                                   $6::text[], $7::text[]) \
@@ -175,7 +181,7 @@ pub async fn complete_in(
              finished_at_ms = $8 \
          FROM outcome AS o, won AS w \
          WHERE f.fit_id = o.fit_id AND w.fit_id = o.fit_id \
-         RETURNING f.fit_id",
+         RETURNING f.fit_id, f.part_id, f.status, f.error",
     )
     .bind(&ids)
     .bind(&tokens)
@@ -187,8 +193,35 @@ pub async fn complete_in(
     .bind(now_ms())
     .fetch_all(&mut *conn)
     .await?;
-    let written: HashSet<i64> = written.into_iter().collect();
+    let entries = settled_entries(
+        ids.iter()
+            .filter_map(|id| written.iter().find(|w| w.0 == *id))
+            .map(|(fit_id, part_id, status, error)| {
+                (*fit_id, *part_id, status.as_str(), error.as_deref())
+            }),
+    );
+    audit::append(conn, &entries).await?;
+    let written: HashSet<i64> = written.iter().map(|w| w.0).collect();
     Ok(ids.iter().map(|id| written.contains(id)).collect())
+}
+
+/// The worker's audit entries for outcomes without a result, in the given order: (fit, part, status,
+/// error) → `fit-<status>` with the error as its reason. Succeeded outcomes have their own row.
+fn settled_entries<'a>(
+    outcomes: impl Iterator<Item = (i64, i64, &'a str, Option<&'a str>)>,
+) -> Vec<Entry> {
+    outcomes
+        .filter(|(_, _, status, _)| *status != "succeeded")
+        .map(|(fit_id, part_id, status, error)| {
+            Entry::new(
+                WORKER_ACTOR,
+                &format!("fit-{status}"),
+                Some(part_id),
+                Some(fit_id),
+                error,
+            )
+        })
+        .collect()
 }
 
 impl PgQueue {
@@ -220,8 +253,9 @@ impl PgQueue {
     ) -> StoreResult<Vec<Claim>> {
         let now = now_ms();
         let mut tx = self.pool.begin().await?;
-        // Expired and cancelled, or expired with no attempt left: settled, jobs before fits.
-        sqlx::query(
+        // Expired and cancelled, or expired with no attempt left: settled, jobs before fits. Their
+        // audit rows are appended after the claim, last in the transaction.
+        let settled: Vec<(i64, i64, String, Option<String>)> = sqlx::query_as(
             "WITH expired AS ( \
                  SELECT fit_id FROM jobs \
                  WHERE state = 'running' AND lease_until_ms < $1 \
@@ -239,13 +273,14 @@ impl PgQueue {
                      'the fit was started %s times and never finished (the worker stopped each \
 time); retry it to run it again', s.attempts) END, \
                  finished_at_ms = $1 \
-             FROM settled AS s WHERE f.fit_id = s.fit_id",
+             FROM settled AS s WHERE f.fit_id = s.fit_id \
+             RETURNING f.fit_id, f.part_id, f.status, f.error",
         )
         .bind(now)
         .bind(max_attempts)
         .bind(FailureKind::Cancelled.as_str())
         .bind(FailureKind::AttemptsExhausted.as_str())
-        .execute(&mut *tx)
+        .fetch_all(&mut *tx)
         .await?;
         let mut claims: Vec<Claim> = sqlx::query_as::<_, (i64, i64, i64)>(
             "WITH runnable AS ( \
@@ -276,6 +311,13 @@ time); retry it to run it again', s.attempts) END, \
             attempt,
         })
         .collect();
+        // As the SQLite queue: the cancelled ones first, each group by fit id.
+        let mut settled = settled;
+        settled.sort_by_key(|s| (s.2 != "cancelled", s.0));
+        let entries = settled_entries(settled.iter().map(|(fit_id, part_id, status, error)| {
+            (*fit_id, *part_id, status.as_str(), error.as_deref())
+        }));
+        audit::append(&mut tx, &entries).await?;
         tx.commit().await?;
         claims.sort_by_key(|c| c.fit_id);
         Ok(claims)

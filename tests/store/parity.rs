@@ -1,5 +1,5 @@
 //! The PostgreSQL store (henrybook::store::pg::PgStore) held to the SQLite store
-//! (henrybook::store::Store), a module of the store_postgres test binary: each test runs the same
+//! (henrybook::store::Store), a module of the store test binary: each test runs the same
 //! operations, in the same order, on a SQLite store in a temporary folder and
 //! on a PostgreSQL store in a fresh database ([`henrybook_tests::pg::TestDb`]; the server must be
 //! running: these tests fail, never skip, without it), and asserts the same answers: the same wire
@@ -87,7 +87,7 @@ type AuditView = (
 
 /// Checks the PostgreSQL audit chain with the SQLite store's hash ([`row_hash`]): ids 1..n without
 /// gaps, each row's prev_hash the hash before it, each hash the row's own.
-async fn assert_pg_chain_holds(pool: &sqlx::PgPool) {
+pub(crate) async fn assert_pg_chain_holds(pool: &sqlx::PgPool) {
     let rows = sqlx::query(
         "SELECT audit_id, at_ms, actor, action, part_id, fit_id, reason, result_sha256, prev_hash, \
          hash FROM audit ORDER BY audit_id",

@@ -2,7 +2,7 @@
 //! a database of its own ([`henrybook_tests::pg::TestDb`]: a random name, migrations/postgres/
 //! applied, dropped at the end also when the test fails). An unreachable server fails the tests with
 //! a message saying how to start it; they are never skipped. The rest of the PostgreSQL store is
-//! held to the SQLite store in tests/store_parity.rs.
+//! held to the SQLite store in the module `parity`.
 
 use henrybook::registry::wire::FailureKind;
 use henrybook::store::jobs::Renewal;
@@ -15,11 +15,6 @@ use henrybook_tests::repo_root;
 use sqlx::PgPool;
 use std::collections::HashSet;
 use std::time::{Duration, Instant};
-
-/// The rest of the PostgreSQL store held to the SQLite store: a module of this binary, so the store's
-/// tests stay one binary.
-#[path = "store_parity.rs"]
-mod parity;
 
 /// Inserts one part, one lot, and `n` sweeps with one queued fit each, and queues their jobs; the
 /// fit ids, oldest first.
@@ -492,6 +487,35 @@ async fn attempts_run_out_cancels_settle_and_a_release_is_not_counted() {
     );
     let refused = q.cancel(running.fit_id).await.unwrap_err().to_string();
     assert!(refused.contains("only queued or running"), "{refused}");
+
+    // Each outcome without a result left its audit row by the worker, as on SQLite (store::jobs):
+    // the claim that found the first job out of attempts wrote `fit-failed` with the error as its
+    // reason, and the cancelled outcome its worker wrote, `fit-cancelled`. (The queue's own cancel of
+    // a claimed job is the store's to audit: PgStore's cancel writes the user's row.) The rows are
+    // chained as the SQLite store chains them.
+    let rows: Vec<(String, String, Option<i64>, Option<String>)> =
+        sqlx::query_as("SELECT actor, action, fit_id, reason FROM audit ORDER BY audit_id")
+            .fetch_all(&db.pool)
+            .await
+            .unwrap();
+    assert_eq!(
+        rows,
+        [
+            (
+                "worker".to_string(),
+                "fit-failed".to_string(),
+                Some(ids[0]),
+                Some(error)
+            ),
+            (
+                "worker".to_string(),
+                "fit-cancelled".to_string(),
+                Some(running.fit_id),
+                None
+            ),
+        ]
+    );
+    crate::parity::assert_pg_chain_holds(&db.pool).await;
 }
 
 #[tokio::test]
