@@ -174,12 +174,13 @@ pub const COARSE_POINTS: usize = 200;
 /// copy could step over).
 pub const COARSEST_POINTS: usize = 50;
 
-/// The sizes of the thinned copies [`fit_structure`] fits before the full sweep, coarsest first.
-fn coarse_sizes(points: usize, structure: &Structure) -> Vec<usize> {
+/// The sizes of the thinned copies [`fit_structure`] fits before the full sweep, coarsest first, for
+/// a structure with or without sections.
+fn coarse_sizes(points: usize, has_sections: bool) -> Vec<usize> {
     if points <= COARSE_ABOVE_POINTS {
         return Vec::new();
     }
-    if structure.sections.is_empty() && points >= 4 * COARSEST_POINTS {
+    if !has_sections && points >= 4 * COARSEST_POINTS {
         vec![COARSEST_POINTS, COARSE_POINTS]
     } else {
         vec![COARSE_POINTS]
@@ -212,14 +213,8 @@ struct ThinnedCopies(Vec<(usize, FitData)>);
 
 impl ThinnedCopies {
     fn of(data: &FitData) -> ThinnedCopies {
-        let n = data.frequency_hz.len();
-        let mut sizes = Vec::new();
-        if n > COARSE_ABOVE_POINTS {
-            if n >= 4 * COARSEST_POINTS {
-                sizes.push(COARSEST_POINTS);
-            }
-            sizes.push(COARSE_POINTS);
-        }
+        // A structure without sections asks for every size there is.
+        let sizes = coarse_sizes(data.frequency_hz.len(), false);
         ThinnedCopies(sizes.into_iter().map(|k| (k, thinned(data, k))).collect())
     }
 
@@ -372,7 +367,7 @@ fn fit_structure_staged(
     let n = data.frequency_hz.len();
     let mut iterations = 0;
     let sizes = if !matches!(thinning, Thinning::None) {
-        coarse_sizes(n, structure)
+        coarse_sizes(n, !structure.sections.is_empty())
     } else {
         Vec::new()
     };

@@ -129,41 +129,13 @@ impl Store {
 
     /// Newest first, filtered, one page.
     pub async fn list_fits(&self, filter: &FitFilter) -> StoreResult<FitPage> {
-        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(SUMMARY_SELECT);
-        q.push(" WHERE 1 = 1");
-        if let Some(s) = filter.status {
-            q.push(" AND f.status = ").push_bind(s.as_str());
-        }
-        if let Some(k) = filter.error_kind {
-            q.push(" AND f.error_kind = ").push_bind(k.as_str());
-        }
-        if let Some(p) = &filter.part_number {
-            q.push(" AND p.part_number = ")
-                .push_bind(p.as_str().to_owned());
-        }
-        if let Some(l) = &filter.lot {
-            q.push(" AND l.lot = ").push_bind(l.as_str().to_owned());
-        }
-        if let Some(t) = filter.since_ms {
-            q.push(" AND f.created_at_ms >= ").push_bind(t);
-        }
-        if let Some(c) = filter.before_fit_id {
-            q.push(" AND f.fit_id < ").push_bind(c);
-        }
-        q.push(" ORDER BY f.fit_id DESC LIMIT ")
-            .push_bind(filter.limit + 1);
+        let mut q: QueryBuilder<Sqlite> = list_query(filter);
         let rows = q.build().fetch_all(&self.reader).await?;
-        let mut items = rows
+        let items = rows
             .iter()
             .map(summary_from_row)
             .collect::<Result<Vec<_>, _>>()?;
-        let next_cursor = if items.len() as i64 > filter.limit {
-            items.truncate(filter.limit as usize);
-            items.last().map(|f| f.fit_id.to_string())
-        } else {
-            None
-        };
-        Ok(FitPage { items, next_cursor })
+        Ok(fit_page(items, filter.limit))
     }
 
     pub(crate) async fn fits_of_part(
@@ -517,6 +489,53 @@ pub(crate) fn not_now(fit_id: i64, status: &str, allowed: &str, done: &str) -> S
 }
 
 /// The answer for a fit id no fit has.
+/// The query of one page of fits, newest first, as `filter` asks (either backend: the SQL is common
+/// to both); one row more than the page, which says whether another page follows.
+pub(crate) fn list_query<DB>(filter: &FitFilter) -> QueryBuilder<DB>
+where
+    DB: sqlx::Database,
+    &'static str: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+    String: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+    i64: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+{
+    let mut q = QueryBuilder::new(SUMMARY_SELECT);
+    q.push(" WHERE 1 = 1");
+    if let Some(s) = filter.status {
+        q.push(" AND f.status = ").push_bind(s.as_str());
+    }
+    if let Some(k) = filter.error_kind {
+        q.push(" AND f.error_kind = ").push_bind(k.as_str());
+    }
+    if let Some(p) = &filter.part_number {
+        q.push(" AND p.part_number = ")
+            .push_bind(p.as_str().to_owned());
+    }
+    if let Some(l) = &filter.lot {
+        q.push(" AND l.lot = ").push_bind(l.as_str().to_owned());
+    }
+    if let Some(t) = filter.since_ms {
+        q.push(" AND f.created_at_ms >= ").push_bind(t);
+    }
+    if let Some(c) = filter.before_fit_id {
+        q.push(" AND f.fit_id < ").push_bind(c);
+    }
+    q.push(" ORDER BY f.fit_id DESC LIMIT ")
+        .push_bind(filter.limit + 1);
+    q
+}
+
+/// A page of at most `limit` fits from the rows of [`list_query`], with the cursor of the next page
+/// when there was one row more.
+pub(crate) fn fit_page(mut items: Vec<FitSummary>, limit: i64) -> FitPage {
+    let next_cursor = if items.len() as i64 > limit {
+        items.truncate(limit as usize);
+        items.last().map(|f| f.fit_id.to_string())
+    } else {
+        None
+    };
+    FitPage { items, next_cursor }
+}
+
 pub(crate) fn no_fit(fit_id: i64) -> StoreError {
     StoreError::NotFound(format!("no fit {fit_id}"))
 }

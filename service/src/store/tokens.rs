@@ -113,6 +113,25 @@ pub(crate) fn revoked_reason(token_id: i64, role: &str, label: &str) -> String {
     format!("token {token_id} ({role}, {label})")
 }
 
+/// The caller a token row (id, role, label, last use) names at `now` (ms), and whether its last use
+/// is due to be written (older than [`LAST_USED_RESOLUTION_MS`]); `None` for a role no longer known.
+/// Both backends authenticate through it.
+pub(crate) fn caller_of(
+    (token_id, role, label, last_used_at_ms): (i64, String, String, Option<i64>),
+    now: i64,
+) -> Option<(Caller, bool)> {
+    let role = Role::parse(&role)?;
+    let record = last_used_at_ms.is_none_or(|t| t < now - LAST_USED_RESOLUTION_MS);
+    Some((
+        Caller {
+            token_id,
+            role,
+            label,
+        },
+        record,
+    ))
+}
+
 impl Store {
     /// Creates a token and returns it in plain text; only its hash is kept.
     pub async fn create_token(
@@ -203,23 +222,15 @@ impl Store {
         .bind(sha256_hex(token.as_bytes()))
         .fetch_optional(&self.reader)
         .await?;
-        let Some((token_id, role, label, last_used_at_ms)) = row else {
-            return Ok(None);
-        };
-        let Some(role) = Role::parse(&role) else {
-            return Ok(None);
-        };
         let now = now_ms();
-        if last_used_at_ms.is_none_or(|t| t < now - LAST_USED_RESOLUTION_MS)
-            && let Err(e) = self.record_token_use(token_id, now).await
-        {
+        let Some((caller, record)) = row.and_then(|r| caller_of(r, now)) else {
+            return Ok(None);
+        };
+        if record && let Err(e) = self.record_token_use(caller.token_id, now).await {
+            let token_id = caller.token_id;
             tracing::warn!(token_id, error = %e, "cannot record when the token was last used");
         }
-        Ok(Some(Caller {
-            token_id,
-            role,
-            label,
-        }))
+        Ok(Some(caller))
     }
 
     /// Sets a token's last use to `now_ms` unless another request did within the last minute (the

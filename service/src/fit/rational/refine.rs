@@ -109,8 +109,8 @@ impl NormalEquations for PoleResidueProblem<'_> {
     ) -> Result<f64, Error> {
         let (poles, coef) = self.unpack(x);
         let params = self.params();
+        // Poles first, then the residues: as many as the order.
         let lin = self.nr + 2 * self.np;
-        let n = lin;
         let mut vals = vec![Complex64::new(0.0, 0.0); params];
         let mut gram = GramAccumulator::new(params + 1);
         let mut cost = 0.0;
@@ -118,7 +118,7 @@ impl NormalEquations for PoleResidueProblem<'_> {
             let s = self.data.s[i];
             jacobian_row(s, &poles, &coef, &mut vals);
             let mut zf = Complex64::new(coef.d, 0.0) + s * coef.e;
-            for (b, c) in vals[lin..lin + n].iter().zip(&coef.c) {
+            for (b, c) in vals[lin..2 * lin].iter().zip(&coef.c) {
                 zf += b * c;
             }
             let w = self.data.w[i];

@@ -20,7 +20,8 @@ use crate::fit::FitReport;
 use crate::registry::wire::{FitDetail, FitPage, FitSummary};
 use crate::store::fits::{
     DETAIL_SELECT, FitFilter, FitProvenance, SUMMARY_SELECT, approval_decision, detail_from_row,
-    drift_of, no_fit, not_now, refit_reason, summary_from_row, superseded_reason,
+    drift_of, fit_page, list_query, no_fit, not_now, refit_reason, summary_from_row,
+    superseded_reason,
 };
 use crate::store::sweeps::QueueBounds;
 use crate::store::{StoreResult, now_ms, rfc3339};
@@ -124,41 +125,13 @@ impl PgStore {
 
     /// Newest first, filtered, one page.
     pub async fn list_fits(&self, filter: &FitFilter) -> StoreResult<FitPage> {
-        let mut q: QueryBuilder<Postgres> = QueryBuilder::new(SUMMARY_SELECT);
-        q.push(" WHERE true");
-        if let Some(s) = filter.status {
-            q.push(" AND f.status = ").push_bind(s.as_str());
-        }
-        if let Some(k) = filter.error_kind {
-            q.push(" AND f.error_kind = ").push_bind(k.as_str());
-        }
-        if let Some(p) = &filter.part_number {
-            q.push(" AND p.part_number = ")
-                .push_bind(p.as_str().to_owned());
-        }
-        if let Some(l) = &filter.lot {
-            q.push(" AND l.lot = ").push_bind(l.as_str().to_owned());
-        }
-        if let Some(t) = filter.since_ms {
-            q.push(" AND f.created_at_ms >= ").push_bind(t);
-        }
-        if let Some(c) = filter.before_fit_id {
-            q.push(" AND f.fit_id < ").push_bind(c);
-        }
-        q.push(" ORDER BY f.fit_id DESC LIMIT ")
-            .push_bind(filter.limit + 1);
+        let mut q: QueryBuilder<Postgres> = list_query(filter);
         let rows = q.build().fetch_all(&self.pool).await?;
-        let mut items = rows
+        let items = rows
             .iter()
             .map(summary_from_row)
             .collect::<Result<Vec<_>, _>>()?;
-        let next_cursor = if items.len() as i64 > filter.limit {
-            items.truncate(filter.limit as usize);
-            items.last().map(|f| f.fit_id.to_string())
-        } else {
-            None
-        };
-        Ok(FitPage { items, next_cursor })
+        Ok(fit_page(items, filter.limit))
     }
 
     /// Cancels a queued fit at once; asks a running one to stop (its worker sees the request at the

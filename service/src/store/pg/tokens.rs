@@ -6,7 +6,7 @@ use super::PgStore;
 use super::audit::{self, Entry};
 use crate::store::tokens::{
     Caller, LAST_USED_RESOLUTION_MS, Role, TOKEN_COLUMNS, TokenInfo, TokenRow, already_revoked,
-    label_or_default, new_token, no_token, revoked_reason, token_info,
+    caller_of, label_or_default, new_token, no_token, revoked_reason, token_info,
 };
 use crate::store::{StoreResult, now_ms, sha256_hex};
 
@@ -101,23 +101,15 @@ impl PgStore {
         .bind(sha256_hex(token.as_bytes()))
         .fetch_optional(&self.pool)
         .await?;
-        let Some((token_id, role, label, last_used_at_ms)) = row else {
-            return Ok(None);
-        };
-        let Some(role) = Role::parse(&role) else {
-            return Ok(None);
-        };
         let now = now_ms();
-        if last_used_at_ms.is_none_or(|t| t < now - LAST_USED_RESOLUTION_MS)
-            && let Err(e) = self.record_token_use(token_id, now).await
-        {
+        let Some((caller, record)) = row.and_then(|r| caller_of(r, now)) else {
+            return Ok(None);
+        };
+        if record && let Err(e) = self.record_token_use(caller.token_id, now).await {
+            let token_id = caller.token_id;
             tracing::warn!(token_id, error = %e, "cannot record when the token was last used");
         }
-        Ok(Some(Caller {
-            token_id,
-            role,
-            label,
-        }))
+        Ok(Some(caller))
     }
 
     /// Sets a token's last use unless another request did within the last minute (the condition is
