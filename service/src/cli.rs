@@ -1,5 +1,6 @@
 //! The command line: one clap tree for every command. `fit` and `impedance` run the numeric core on
-//! files (here); `serve`, `token`, `demo` and `verify` belong to the service ([`crate::server_cli`]).
+//! files (here); `serve`, `token`, `demo`, `verify` and `migrate` belong to the service
+//! ([`crate::server_cli`]).
 //!
 //! `--help` (`-h`) and `--version` answer on every command; a file whose name starts with `-` goes
 //! after `--`. Values take SI prefixes through one parser, [`crate::units::parse_si`].
@@ -669,6 +670,7 @@ mod tests {
             "token revoke --help",
             "demo --help",
             "verify --help",
+            "migrate --help",
         ] {
             let (code, out, err) = run_str(cmdline);
             assert_eq!(code, 0, "{cmdline}: {err}");
@@ -687,7 +689,15 @@ mod tests {
             assert!(out.contains(flag), "fit --help names {flag}: {out}");
         }
         let (_, out, _) = run_str("--help");
-        for cmd in ["fit", "impedance", "serve", "token", "demo", "verify"] {
+        for cmd in [
+            "fit",
+            "impedance",
+            "serve",
+            "token",
+            "demo",
+            "verify",
+            "migrate",
+        ] {
             assert!(out.contains(cmd), "the top-level help names {cmd}");
         }
         for cmdline in ["--version", "fit --version", "token revoke --version"] {

@@ -1,5 +1,5 @@
-//! The service's commands: `serve`, `token create|list|revoke`, `demo` (server_cli/demo.rs) and
-//! `verify`. They are part of the one command tree of [`crate::cli`], which parses the arguments and
+//! The service's commands: `serve`, `token create|list|revoke`, `demo` (server_cli/demo.rs),
+//! `verify` and `migrate` (server_cli/migrate.rs). They are part of the one command tree of [`crate::cli`], which parses the arguments and
 //! hands a [`ServiceCommand`] to [`run`].
 
 use crate::settings::{DatabaseArgs, LogFormat, ServeArgs, Settings};
@@ -40,6 +40,19 @@ recorded, and every stored verdict against its result and the part's limits. Pri
 (keep it elsewhere to detect a rewritten file). Exit status 1 when anything is wrong."
     )]
     Verify {
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
+    /// Apply the database migrations and exit (a deployment's migration step).
+    #[command(
+        long_about = "Create the database when it is a missing SQLite file, apply every migration \
+this build carries and exit, printing the versions now applied. `serve` applies them too; a \
+deployment with several replicas runs this once before starting them, so no replica starts against \
+a half-migrated schema. On PostgreSQL (a postgres:// URL) the migrations take an advisory lock, so \
+two runs at once apply each migration once. Exit status 1 when the database cannot be reached or a \
+migration fails."
+    )]
+    Migrate {
         #[command(flatten)]
         database: DatabaseArgs,
     },
@@ -94,6 +107,7 @@ fn parse_role(text: &str) -> Result<Role, String> {
 }
 
 pub mod demo;
+mod migrate;
 
 /// Installs the tracing subscriber (text or JSON lines; filter from `RUST_LOG`, default info).
 pub fn init_tracing(format: LogFormat) {
@@ -147,6 +161,7 @@ pub fn run(command: ServiceCommand, out: &mut dyn Write, err: &mut dyn Write) ->
             ServiceCommand::Token { command } => token(command, out, err).await,
             ServiceCommand::Demo(args) => demo::run(args).await,
             ServiceCommand::Verify { database } => verify(&database, out).await,
+            ServiceCommand::Migrate { database } => migrate::run(&database, out).await,
         }
     });
     match result {

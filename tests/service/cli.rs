@@ -254,7 +254,7 @@ fn impedance_prints_the_arrays_the_file_implies() {
 }
 
 /// Every command path of the command line, for the help and version checks.
-const COMMANDS: [&str; 10] = [
+const COMMANDS: [&str; 11] = [
     "",
     "fit",
     "impedance",
@@ -265,6 +265,7 @@ const COMMANDS: [&str; 10] = [
     "token revoke",
     "demo",
     "verify",
+    "migrate",
 ];
 
 fn words(cmd: &str, flag: &str) -> Vec<String> {
@@ -296,7 +297,15 @@ fn help_and_version_answer_on_every_command() {
     }
     // The top-level help describes every command in a line of its own.
     let (_, out, _) = run(&["--help"]);
-    for cmd in ["fit", "impedance", "serve", "token", "demo", "verify"] {
+    for cmd in [
+        "fit",
+        "impedance",
+        "serve",
+        "token",
+        "demo",
+        "verify",
+        "migrate",
+    ] {
         assert!(
             out.lines()
                 .any(|l| l.trim_start().starts_with(cmd) && l.len() > cmd.len() + 20),
@@ -510,5 +519,46 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
         assert!(store.verify_integrity().await.unwrap().ok());
         store.close().await;
     });
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
+fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
+    let dir = temp_dir("migrate");
+    let db = dir.join("fresh.db");
+    let (code, out, err) = run(&["migrate", "--database", db.to_str().unwrap()]);
+    assert_eq!(code, 0, "{err}");
+    let versions = henrybook::store::MIGRATOR.iter().count();
+    assert!(db.exists(), "the file is created");
+    assert!(
+        out.contains(&format!("{versions} migrations applied")),
+        "{out}"
+    );
+    // Again: nothing left to apply, the same answer.
+    let (code, again, _) = run(&["migrate", "--database", db.to_str().unwrap()]);
+    assert_eq!((code, again.as_str()), (0, out.as_str()));
+
+    // PostgreSQL, on a database of the test server (the same versions: the two migration folders are
+    // held to each other by a unit test); a second run applies nothing and says so the same way.
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    let pg = runtime.block_on(henrybook_tests::pg::TestDb::new());
+    for _ in 0..2 {
+        let (code, out, err) = run(&["migrate", "--database", &pg.url]);
+        assert_eq!(code, 0, "{err}");
+        assert!(
+            out.starts_with("PostgreSQL: ")
+                && out.contains(&format!("{versions} migrations applied")),
+            "{out}"
+        );
+    }
+    // An unreachable server is an error with the reason, exit status 1.
+    let (code, _, err) = run(&[
+        "migrate",
+        "--database",
+        "postgres://postgres@127.0.0.1:1/none",
+    ]);
+    assert_eq!(code, 1);
+    assert!(err.contains("cannot connect to PostgreSQL"), "{err}");
+    drop(pg);
     std::fs::remove_dir_all(dir).ok();
 }

