@@ -25,6 +25,9 @@
 //!   the wait is not missed.
 //! - **Batching**: set-based statements over arrays; no savepoints, so a batch of any size uses one
 //!   transaction ID and never overflows PostgreSQL's cache of 64 subtransactions per backend.
+//! - **Clock**: leases are measured on the database server's clock (`clock_timestamp()`), which every
+//!   replica shares, never on a replica's own: a replica whose clock runs ahead can neither take
+//!   another's live lease nor keep its own past its end.
 //! - **Lock order**: every statement that changes both tables changes `jobs` before `fits`, and the
 //!   claim waits on nothing (SKIP LOCKED), so the queue's statements cannot deadlock each other.
 //!
@@ -84,6 +87,9 @@ pub enum Cancel {
 fn ms(d: Duration) -> i64 {
     d.as_millis().min(i64::MAX as u128) as i64
 }
+
+/// The database server's clock in milliseconds since the Unix epoch: what leases are measured on.
+const SERVER_NOW_MS: &str = "SELECT (extract(epoch FROM clock_timestamp()) * 1000)::bigint";
 
 /// The PostgreSQL job queue over a pool (every replica has its own; they share the tables).
 #[derive(Clone, Debug)]
@@ -251,8 +257,13 @@ impl PgQueue {
         max_attempts: i64,
         n: usize,
     ) -> StoreResult<Vec<Claim>> {
-        let now = now_ms();
         let mut tx = self.pool.begin().await?;
+        // Leases are read and written on the database server's clock, the one clock every replica
+        // shares: a replica whose own clock runs ahead can neither take live leases nor keep its own
+        // past their end.
+        let now: i64 = sqlx::query_scalar(SERVER_NOW_MS)
+            .fetch_one(&mut *tx)
+            .await?;
         // Expired and cancelled, or expired with no attempt left: settled, jobs before fits. Their
         // audit rows are appended after the claim, last in the transaction.
         let settled: Vec<(i64, i64, String, Option<String>)> = sqlx::query_as(
@@ -369,7 +380,8 @@ time); retry it to run it again', s.attempts) END, \
                  SELECT * FROM unnest($1::bigint[], $2::bigint[], $3::float8[]) \
                      AS c(fit_id, token, progress) \
              ), held AS ( \
-                 UPDATE jobs AS j SET lease_until_ms = $4 \
+                 UPDATE jobs AS j \
+                 SET lease_until_ms = (extract(epoch FROM clock_timestamp()) * 1000)::bigint + $4 \
                  FROM claim AS c \
                  WHERE j.fit_id = c.fit_id AND j.claim_token = c.token AND j.state = 'running' \
                  RETURNING j.fit_id, j.cancel_requested \
@@ -383,7 +395,7 @@ time); retry it to run it again', s.attempts) END, \
         .bind(&ids)
         .bind(&tokens)
         .bind(&progress)
-        .bind(now_ms().saturating_add(ms(lease)))
+        .bind(ms(lease))
         .fetch_all(&self.pool)
         .await?;
         Ok(ids
