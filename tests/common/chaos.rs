@@ -18,6 +18,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
 use tokio::sync::Semaphore;
 
+use crate::procstat::{clock_ticks, cpu_times, parent_pid};
 use crate::service::{simple_model, synthetic_csv};
 
 /// Where the replicas keep their data.
@@ -114,6 +115,12 @@ pub struct ChaosReport {
     /// lease lost), counted from the replicas' logs.
     pub late_writes_refused: usize,
     pub elapsed: Duration,
+    /// CPU seconds the replica processes used, all of them, from the start of the run until each was
+    /// stopped (the children this process waited for).
+    pub replica_cpu_s: f64,
+    /// CPU seconds the PostgreSQL server used over the run, its postmaster and every backend (on
+    /// PostgreSQL without a restart of the server; `None` otherwise).
+    pub database_cpu_s: Option<f64>,
     /// Broken invariants, each with what was found. Empty: the run passed.
     pub violations: Vec<String>,
 }
@@ -124,7 +131,8 @@ impl ChaosReport {
             "seed {}: {} kills (fits to go at each: {:?}), {} restarts, {} stops past the lease, \
              {} database restarts; \
              {} uploads accepted ({} sent again); {} fits re-run (most claims of one job: {}); \
-             {} late writes refused; {:.1} s, {:.1} fits/s; {}",
+             {} late writes refused; {:.1} s, {:.1} fits/s; CPU per fit: replicas {:.2} ms, \
+             database {}; {}",
             self.seed,
             self.kills,
             self.to_go_at_kills,
@@ -138,6 +146,12 @@ impl ChaosReport {
             self.late_writes_refused,
             self.elapsed.as_secs_f64(),
             self.accepted as f64 / self.elapsed.as_secs_f64().max(1e-9),
+            1e3 * self.replica_cpu_s / self.accepted.max(1) as f64,
+            self.database_cpu_s
+                .map_or("not measured".to_string(), |c| format!(
+                    "{:.2} ms",
+                    1e3 * c / self.accepted.max(1) as f64
+                )),
             if self.violations.is_empty() {
                 "every invariant holds".to_string()
             } else {
@@ -416,6 +430,41 @@ enum Event {
     DatabaseRestart,
 }
 
+/// CPU seconds used by the children this process has waited for (the replicas, the token command).
+fn children_cpu_s() -> Option<f64> {
+    cpu_times("self", clock_ticks()).map(|c| c[2] + c[3])
+}
+
+/// CPU seconds the PostgreSQL server has used so far: its postmaster (with the backends it reaped)
+/// and the backends alive now. `None` on SQLite, or when the server's processes cannot be read
+/// (another machine, another user's /proc).
+async fn database_cpu_s(cfg: &ChaosConfig) -> Option<f64> {
+    let ChaosDatabase::Postgres(url) = &cfg.database else {
+        return None;
+    };
+    use sqlx::Connection;
+    let mut conn = sqlx::PgConnection::connect(url).await.ok()?;
+    let dir: String = sqlx::query_scalar("SHOW data_directory")
+        .fetch_one(&mut conn)
+        .await
+        .ok()?;
+    conn.close().await.ok()?;
+    let pid_file = std::fs::read_to_string(format!("{dir}/postmaster.pid")).ok()?;
+    let postmaster = pid_file.lines().next()?.trim().to_string();
+    let ticks = clock_ticks();
+    let mut total: f64 = cpu_times(&postmaster, ticks)?.iter().sum();
+    for entry in std::fs::read_dir("/proc").ok()?.flatten() {
+        let name = entry.file_name().to_string_lossy().into_owned();
+        if name.bytes().all(|b| b.is_ascii_digit())
+            && parent_pid(&name).as_deref() == Some(postmaster.as_str())
+            && let Some(c) = cpu_times(&name, ticks)
+        {
+            total += c[0] + c[1];
+        }
+    }
+    Some(total)
+}
+
 /// Restarts the machine's PostgreSQL server (the cluster `pg_ctlcluster` finds under
 /// /etc/postgresql), waiting until it has stopped and started again: every replica's connections
 /// break at once and new ones are refused meanwhile.
@@ -449,6 +498,8 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
     };
     std::fs::create_dir_all(&cfg.log_dir)?;
     let token = make_token(cfg, "engineer")?;
+    let children_cpu_before = children_cpu_s().unwrap_or(0.0);
+    let database_cpu_before = database_cpu_s(cfg).await;
     let http = reqwest::Client::builder()
         .timeout(Duration::from_secs(60))
         .build()?;
@@ -579,6 +630,12 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
     report.elapsed = started.elapsed();
     for r in &mut replicas {
         r.terminate()?;
+    }
+    report.replica_cpu_s = children_cpu_s().unwrap_or(0.0) - children_cpu_before;
+    if cfg.database_restarts == 0
+        && let (Some(before), Some(after)) = (database_cpu_before, database_cpu_s(cfg).await)
+    {
+        report.database_cpu_s = Some(after - before);
     }
     report.late_writes_refused = replicas
         .iter()
