@@ -16,8 +16,10 @@ const USAGE: &str = "options (defaults in brackets):
   --lease-s S            the replicas' --lease-s [5]
   --workers N            the replicas' --workers [2]
   --replicas N           replica processes on the database [1; SQLite runs one]
-  --database-url URL     a PostgreSQL database instead of a fresh SQLite file (not yet supported)
-  --database-restarts N  restarts of the database server mid-run (PostgreSQL only) [0]
+  --database-url URL     a PostgreSQL database (existing; migrated by the replicas) instead of a
+                         fresh SQLite file
+  --database-restarts N  restarts of the machine's PostgreSQL server mid-run (PostgreSQL only;
+                         needs root, and breaks whatever else uses that server) [0]
   --seed N               the chaos plan's seed [from the clock; printed]
   --time-bound-s S       the whole run must end within this [900]
   --keep DIR             keep the database and the replica logs in DIR [a temporary folder]";
@@ -83,7 +85,7 @@ fn main() -> anyhow::Result<()> {
     cfg.validate()?;
     println!(
         "chaos: {} on {:?}, {replicas} replica(s), {fits} fits of {points} points, {kills} kills, \
-         {stops} stops, lease {lease_s} s, seed {seed}",
+         {stops} stops, {restarts} database restarts, lease {lease_s} s, seed {seed}",
         cfg.binary.display(),
         cfg.database
     );

@@ -5,8 +5,9 @@
 //! lost or done twice ([`check`]).
 //!
 //! Used by the bounded test `tests/service/chaos.rs` and the full run `tests/chaos/main.rs`
-//! (see tests/chaos/README.md). SQLite with one replica now; the PostgreSQL run with several replicas
-//! and a database restart is refused with a clear message until the service runs on PostgreSQL.
+//! (see tests/chaos/README.md). On SQLite with one replica; on PostgreSQL with several replicas on one
+//! database, and there also restarts of the database server mid-run (`pg_ctlcluster ... restart`, which
+//! needs root and restarts the machine's server: run it where nothing else uses that server).
 
 use serde_json::{Value, json};
 use std::collections::{HashMap, HashSet};
@@ -17,6 +18,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
 use tokio::sync::Semaphore;
 
+use crate::procstat::{clock_ticks, cpu_times, parent_pid};
 use crate::service::{simple_model, synthetic_csv};
 
 /// Where the replicas keep their data.
@@ -24,7 +26,7 @@ use crate::service::{simple_model, synthetic_csv};
 pub enum ChaosDatabase {
     /// A SQLite file (one replica: SQLite has one writer).
     Sqlite(PathBuf),
-    /// A PostgreSQL URL: refused until the service runs on PostgreSQL.
+    /// A PostgreSQL URL (a database of the machine's server, already created).
     Postgres(String),
 }
 
@@ -62,10 +64,12 @@ impl ChaosConfig {
     /// Refuses what cannot be run yet, with the reason.
     pub fn validate(&self) -> anyhow::Result<()> {
         match &self.database {
-            ChaosDatabase::Postgres(_) => anyhow::bail!(
-                "the service does not run on PostgreSQL yet (only its schema and job queue exist, \
-                 service/src/store/pg/): the PostgreSQL run of the chaos harness cannot start"
-            ),
+            ChaosDatabase::Postgres(_) => {
+                anyhow::ensure!(
+                    (1..=8).contains(&self.replicas),
+                    "1 to 8 replicas on PostgreSQL"
+                );
+            }
             ChaosDatabase::Sqlite(_) => {
                 anyhow::ensure!(
                     self.replicas == 1,
@@ -97,6 +101,7 @@ pub struct ChaosReport {
     pub kills: usize,
     pub restarts: usize,
     pub stops: usize,
+    pub database_restarts: usize,
     /// Fits queued or running (by the API) when each kill came.
     pub to_go_at_kills: Vec<i64>,
     /// Uploads sent again after a connection error or a 429/503.
@@ -110,6 +115,12 @@ pub struct ChaosReport {
     /// lease lost), counted from the replicas' logs.
     pub late_writes_refused: usize,
     pub elapsed: Duration,
+    /// CPU seconds the replica processes used, all of them, from the start of the run until each was
+    /// stopped (the children this process waited for).
+    pub replica_cpu_s: f64,
+    /// CPU seconds the PostgreSQL server used over the run, its postmaster and every backend (on
+    /// PostgreSQL without a restart of the server; `None` otherwise).
+    pub database_cpu_s: Option<f64>,
     /// Broken invariants, each with what was found. Empty: the run passed.
     pub violations: Vec<String>,
 }
@@ -117,14 +128,17 @@ pub struct ChaosReport {
 impl ChaosReport {
     pub fn summary(&self) -> String {
         format!(
-            "seed {}: {} kills (fits to go at each: {:?}), {} restarts, {} stops past the lease; \
+            "seed {}: {} kills (fits to go at each: {:?}), {} restarts, {} stops past the lease, \
+             {} database restarts; \
              {} uploads accepted ({} sent again); {} fits re-run (most claims of one job: {}); \
-             {} late writes refused; {:.1} s, {:.1} fits/s; {}",
+             {} late writes refused; {:.1} s, {:.1} fits/s; CPU per fit: replicas {:.2} ms, \
+             database {}; {}",
             self.seed,
             self.kills,
             self.to_go_at_kills,
             self.restarts,
             self.stops,
+            self.database_restarts,
             self.accepted,
             self.upload_retries,
             self.fits_rerun,
@@ -132,6 +146,12 @@ impl ChaosReport {
             self.late_writes_refused,
             self.elapsed.as_secs_f64(),
             self.accepted as f64 / self.elapsed.as_secs_f64().max(1e-9),
+            1e3 * self.replica_cpu_s / self.accepted.max(1) as f64,
+            self.database_cpu_s
+                .map_or("not measured".to_string(), |c| format!(
+                    "{:.2} ms",
+                    1e3 * c / self.accepted.max(1) as f64
+                )),
             if self.violations.is_empty() {
                 "every invariant holds".to_string()
             } else {
@@ -186,8 +206,7 @@ fn free_port() -> anyhow::Result<u16> {
 fn database_args(db: &ChaosDatabase) -> Vec<String> {
     match db {
         ChaosDatabase::Sqlite(path) => vec!["--database".into(), path.display().to_string()],
-        // Refused by validate(); the flag the service will take is not decided yet.
-        ChaosDatabase::Postgres(url) => vec!["--database-url".into(), url.clone()],
+        ChaosDatabase::Postgres(url) => vec!["--database".into(), url.clone()],
     }
 }
 
@@ -408,6 +427,62 @@ async fn to_go(http: &reqwest::Client, urls: &[String], token: &str) -> Option<(
 enum Event {
     Kill,
     Stop,
+    DatabaseRestart,
+}
+
+/// CPU seconds used by the children this process has waited for (the replicas, the token command).
+fn children_cpu_s() -> Option<f64> {
+    cpu_times("self", clock_ticks()).map(|c| c[2] + c[3])
+}
+
+/// CPU seconds the PostgreSQL server has used so far: its postmaster (with the backends it reaped)
+/// and the backends alive now. `None` on SQLite, or when the server's processes cannot be read
+/// (another machine, another user's /proc).
+async fn database_cpu_s(cfg: &ChaosConfig) -> Option<f64> {
+    let ChaosDatabase::Postgres(url) = &cfg.database else {
+        return None;
+    };
+    use sqlx::Connection;
+    let mut conn = sqlx::PgConnection::connect(url).await.ok()?;
+    let dir: String = sqlx::query_scalar("SHOW data_directory")
+        .fetch_one(&mut conn)
+        .await
+        .ok()?;
+    conn.close().await.ok()?;
+    let pid_file = std::fs::read_to_string(format!("{dir}/postmaster.pid")).ok()?;
+    let postmaster = pid_file.lines().next()?.trim().to_string();
+    let ticks = clock_ticks();
+    let mut total: f64 = cpu_times(&postmaster, ticks)?.iter().sum();
+    for entry in std::fs::read_dir("/proc").ok()?.flatten() {
+        let name = entry.file_name().to_string_lossy().into_owned();
+        if name.bytes().all(|b| b.is_ascii_digit())
+            && parent_pid(&name).as_deref() == Some(postmaster.as_str())
+            && let Some(c) = cpu_times(&name, ticks)
+        {
+            total += c[0] + c[1];
+        }
+    }
+    Some(total)
+}
+
+/// Restarts the machine's PostgreSQL server (the cluster `pg_ctlcluster` finds under
+/// /etc/postgresql), waiting until it has stopped and started again: every replica's connections
+/// break at once and new ones are refused meanwhile.
+fn restart_postgres() -> anyhow::Result<()> {
+    let version = std::fs::read_dir("/etc/postgresql")?
+        .filter_map(|e| e.ok())
+        .filter_map(|e| e.file_name().into_string().ok())
+        .max()
+        .ok_or_else(|| anyhow::anyhow!("no cluster under /etc/postgresql"))?;
+    let out = Command::new("pg_ctlcluster")
+        .args(["--skip-systemctl-redirect", &version, "main", "restart"])
+        .output()?;
+    anyhow::ensure!(
+        out.status.success(),
+        "pg_ctlcluster {version} main restart: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    Ok(())
 }
 
 /// Runs the whole harness; the report lists every broken invariant (an error is a run that could not
@@ -423,6 +498,8 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
     };
     std::fs::create_dir_all(&cfg.log_dir)?;
     let token = make_token(cfg, "engineer")?;
+    let children_cpu_before = children_cpu_s().unwrap_or(0.0);
+    let database_cpu_before = database_cpu_s(cfg).await;
     let http = reqwest::Client::builder()
         .timeout(Duration::from_secs(60))
         .build()?;
@@ -454,6 +531,7 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
     let mut plan: Vec<(i64, Event)> = (0..cfg.kills)
         .map(|_| Event::Kill)
         .chain((0..cfg.stops).map(|_| Event::Stop))
+        .chain((0..cfg.database_restarts).map(|_| Event::DatabaseRestart))
         .map(|e| ((rng.uniform(0.03, 0.85) * cfg.fits as f64) as i64, e))
         .collect();
     plan.sort_by_key(|p| p.0);
@@ -516,6 +594,10 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
                 signal(pid, "CONT")?;
                 report.stops += 1;
             }
+            Event::DatabaseRestart => {
+                tokio::task::spawn_blocking(restart_postgres).await??;
+                report.database_restarts += 1;
+            }
         }
     }
 
@@ -549,6 +631,12 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
     for r in &mut replicas {
         r.terminate()?;
     }
+    report.replica_cpu_s = children_cpu_s().unwrap_or(0.0) - children_cpu_before;
+    if cfg.database_restarts == 0
+        && let (Some(before), Some(after)) = (database_cpu_before, database_cpu_s(cfg).await)
+    {
+        report.database_cpu_s = Some(after - before);
+    }
     report.late_writes_refused = replicas
         .iter()
         .map(|r| {
@@ -578,28 +666,19 @@ pub async fn run(cfg: &ChaosConfig) -> anyhow::Result<ChaosReport> {
 ///   resonance rows, which no key keeps unique, are not repeated (its grid rows are keyed by fit);
 /// - the chaos did make work run again: some job was claimed more than once (`attempts > 1`), so the
 ///   single write above held while a fit really ran twice;
-/// - SQLite's integrity check and `henrybook verify` (audit hash chain, stored results) are clean.
+/// - SQLite's integrity check (on SQLite) and `henrybook verify` (audit hash chain, stored results)
+///   are clean.
 async fn check(
     cfg: &ChaosConfig,
     fit_of_upload: &HashMap<usize, i64>,
     report: &mut ChaosReport,
 ) -> anyhow::Result<()> {
-    let ChaosDatabase::Sqlite(path) = &cfg.database else {
-        anyhow::bail!("only SQLite is checked so far");
-    };
-    use sqlx::sqlite::SqliteConnectOptions;
-    use sqlx::{ConnectOptions, Connection};
-    let mut db = SqliteConnectOptions::new()
-        .filename(path)
-        .read_only(true)
-        .connect()
-        .await?;
+    let mut db = Db::open(&cfg.database).await?;
     let v = &mut report.violations;
 
-    let fits: Vec<(i64, String, bool)> =
-        sqlx::query_as("SELECT fit_id, status, report_json IS NOT NULL FROM fits")
-            .fetch_all(&mut db)
-            .await?;
+    let fits: Vec<(i64, String, bool)> = db
+        .rows("SELECT fit_id, status, report_json IS NOT NULL FROM fits")
+        .await?;
     let by_id: HashMap<i64, (String, bool)> =
         fits.into_iter().map(|(id, s, r)| (id, (s, r))).collect();
     let mut distinct = HashSet::new();
@@ -622,16 +701,13 @@ async fn check(
             distinct.len()
         ));
     }
-    let sweeps: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM sweeps")
-        .fetch_one(&mut db)
-        .await?;
+    let (sweeps,): (i64,) = db.one("SELECT COUNT(*) FROM sweeps").await?;
     if sweeps != cfg.fits as i64 {
         v.push(format!("{sweeps} sweeps stored for {} uploaded", cfg.fits));
     }
-    let unfinished: Vec<(i64, String)> =
-        sqlx::query_as("SELECT fit_id, state FROM jobs WHERE state <> 'done' ORDER BY fit_id")
-            .fetch_all(&mut db)
-            .await?;
+    let unfinished: Vec<(i64, String)> = db
+        .rows("SELECT fit_id, state FROM jobs WHERE state <> 'done' ORDER BY fit_id")
+        .await?;
     if !unfinished.is_empty() {
         v.push(format!(
             "{} jobs not done: {:?}",
@@ -639,21 +715,20 @@ async fn check(
             &unfinished[..unfinished.len().min(10)]
         ));
     }
-    let written: Vec<(i64, i64)> = sqlx::query_as(
-        "SELECT fit_id, COUNT(*) FROM audit WHERE action = 'fit-succeeded' GROUP BY fit_id",
-    )
-    .fetch_all(&mut db)
-    .await?;
+    let written: Vec<(i64, i64)> = db
+        .rows("SELECT fit_id, COUNT(*) FROM audit WHERE action = 'fit-succeeded' GROUP BY fit_id")
+        .await?;
     let written: HashMap<i64, i64> = written.into_iter().collect();
     // Every outcome (succeeded, failed, cancelled) appends one audit row with the outcome it wrote;
     // the harness never retries a fit, so two such rows for one fit are two outcomes written (two
     // result writes among them: the list shows `fit-succeeded,fit-succeeded`).
-    let outcomes: Vec<(i64, String)> = sqlx::query_as(
-        "SELECT fit_id, GROUP_CONCAT(action) FROM audit WHERE action IN \
-         ('fit-succeeded', 'fit-failed', 'fit-cancelled') GROUP BY fit_id HAVING COUNT(*) > 1",
-    )
-    .fetch_all(&mut db)
-    .await?;
+    let outcomes: Vec<(i64, String)> = db
+        .rows(&format!(
+            "SELECT fit_id, {} FROM audit WHERE action IN \
+             ('fit-succeeded', 'fit-failed', 'fit-cancelled') GROUP BY fit_id HAVING COUNT(*) > 1",
+            db.joined("action")
+        ))
+        .await?;
     if !outcomes.is_empty() {
         v.push(format!(
             "{} fits have more than one outcome written: {:?}",
@@ -668,21 +743,20 @@ async fn check(
     if never > 0 {
         v.push(format!("{never} fits of uploads have no result write"));
     }
-    let repeated: i64 = sqlx::query_scalar(
-        "SELECT COUNT(*) FROM (SELECT 1 FROM fit_resonances GROUP BY fit_id, kind, frequency_hz \
-         HAVING COUNT(*) > 1)",
-    )
-    .fetch_one(&mut db)
-    .await?;
+    let (repeated,): (i64,) = db
+        .one(
+            "SELECT COUNT(*) FROM (SELECT 1 FROM fit_resonances GROUP BY fit_id, kind, \
+             frequency_hz HAVING COUNT(*) > 1) AS r",
+        )
+        .await?;
     if repeated > 0 {
         v.push(format!(
             "{repeated} resonance rows are stored more than once"
         ));
     }
-    let (rerun, most): (i64, Option<i64>) =
-        sqlx::query_as("SELECT COUNT(*) FILTER (WHERE attempts > 1), MAX(attempts) FROM jobs")
-            .fetch_one(&mut db)
-            .await?;
+    let (rerun, most): (i64, Option<i64>) = db
+        .one("SELECT COUNT(*) FILTER (WHERE attempts > 1), MAX(attempts) FROM jobs")
+        .await?;
     report.fits_rerun = rerun;
     report.max_attempts_seen = most.unwrap_or(0);
     if cfg.kills + cfg.stops > 0 && rerun == 0 {
@@ -690,13 +764,8 @@ async fn check(
             "no job was claimed twice: the chaos re-ran no work, so it proved nothing".into(),
         );
     }
-    let integrity: String = sqlx::query_scalar("PRAGMA integrity_check")
-        .fetch_one(&mut db)
-        .await?;
-    if integrity != "ok" {
-        report
-            .violations
-            .push(format!("SQLite integrity check: {integrity}"));
+    if let Some(problem) = db.integrity().await? {
+        report.violations.push(problem);
     }
     db.close().await?;
     let out = Command::new(&cfg.binary)
@@ -711,6 +780,88 @@ async fn check(
         ));
     }
     Ok(())
+}
+
+/// One connection to the run's database, for [`check`]'s queries (the same SQL on both, except
+/// where a function is named differently).
+enum Db {
+    Sqlite(sqlx::SqliteConnection),
+    Postgres(sqlx::PgConnection),
+}
+
+impl Db {
+    async fn open(database: &ChaosDatabase) -> anyhow::Result<Db> {
+        use sqlx::{ConnectOptions, Connection};
+        Ok(match database {
+            ChaosDatabase::Sqlite(path) => Db::Sqlite(
+                sqlx::sqlite::SqliteConnectOptions::new()
+                    .filename(path)
+                    .read_only(true)
+                    .connect()
+                    .await?,
+            ),
+            ChaosDatabase::Postgres(url) => Db::Postgres(sqlx::PgConnection::connect(url).await?),
+        })
+    }
+
+    async fn rows<T>(&mut self, sql: &str) -> anyhow::Result<Vec<T>>
+    where
+        T: for<'r> sqlx::FromRow<'r, sqlx::sqlite::SqliteRow>
+            + for<'r> sqlx::FromRow<'r, sqlx::postgres::PgRow>
+            + Send
+            + Unpin,
+    {
+        let sql = sqlx::AssertSqlSafe(sql.to_string());
+        Ok(match self {
+            Db::Sqlite(c) => sqlx::query_as(sql).fetch_all(c).await?,
+            Db::Postgres(c) => sqlx::query_as(sql).fetch_all(c).await?,
+        })
+    }
+
+    async fn one<T>(&mut self, sql: &str) -> anyhow::Result<T>
+    where
+        T: for<'r> sqlx::FromRow<'r, sqlx::sqlite::SqliteRow>
+            + for<'r> sqlx::FromRow<'r, sqlx::postgres::PgRow>
+            + Send
+            + Unpin,
+    {
+        self.rows(sql)
+            .await?
+            .into_iter()
+            .next()
+            .ok_or_else(|| anyhow::anyhow!("no row from {sql}"))
+    }
+
+    /// The values of `column` in a group, joined by commas.
+    fn joined(&self, column: &str) -> String {
+        match self {
+            Db::Sqlite(_) => format!("GROUP_CONCAT({column})"),
+            Db::Postgres(_) => format!("string_agg({column}, ',' ORDER BY audit_id)"),
+        }
+    }
+
+    /// SQLite's own integrity check (what it found, when not clean). PostgreSQL has no such check
+    /// of a whole database; its pages carry no checksums unless the cluster was made with them.
+    async fn integrity(&mut self) -> anyhow::Result<Option<String>> {
+        Ok(match self {
+            Db::Sqlite(c) => {
+                let found: String = sqlx::query_scalar("PRAGMA integrity_check")
+                    .fetch_one(c)
+                    .await?;
+                (found != "ok").then(|| format!("SQLite integrity check: {found}"))
+            }
+            Db::Postgres(_) => None,
+        })
+    }
+
+    async fn close(self) -> anyhow::Result<()> {
+        use sqlx::Connection;
+        match self {
+            Db::Sqlite(c) => c.close().await?,
+            Db::Postgres(c) => c.close().await?,
+        }
+        Ok(())
+    }
 }
 
 /// The service binary: `$HENRYBOOK_BIN`, else `henrybook` in the profile folder (`target/debug/`,

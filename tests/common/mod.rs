@@ -5,6 +5,7 @@ pub mod mna;
 pub mod nesting;
 pub mod pg;
 pub mod population;
+pub mod procstat;
 pub mod service;
 pub mod synth;
 pub mod vector_fit_synth;

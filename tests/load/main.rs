@@ -9,6 +9,7 @@
 
 use henrybook::store::Store;
 use henrybook::store::tokens::Role;
+use henrybook_tests::procstat::{clock_ticks, cpu_times};
 use henrybook_tests::repo_root;
 use henrybook_tests::service::{simple_model, synthetic_csv};
 use serde_json::{Value, json};
@@ -38,27 +39,9 @@ fn proc_status_kib(pid: u32, key: &str) -> Option<u64> {
 }
 
 /// Clock ticks per second of the CPU times in /proc/PID/stat.
-fn clock_ticks() -> f64 {
-    Command::new("getconf")
-        .arg("CLK_TCK")
-        .output()
-        .ok()
-        .and_then(|o| String::from_utf8(o.stdout).ok())
-        .and_then(|t| t.trim().parse().ok())
-        .unwrap_or(100.0)
-}
-
-/// CPU time (user, system) a process has used so far, in seconds, from /proc/PID/stat.
+/// CPU time (user, system) a process has used so far, in seconds.
 fn cpu_seconds(pid: &str, ticks: f64) -> Option<(f64, f64)> {
-    let text = std::fs::read_to_string(format!("/proc/{pid}/stat")).ok()?;
-    // The command name (field 2) is in parentheses and may hold spaces: count fields after it.
-    let rest = &text[text.rfind(')')? + 1..];
-    let fields: Vec<&str> = rest.split_whitespace().collect();
-    // utime and stime are fields 14 and 15 of the whole line, 12 and 13 after the name.
-    Some((
-        fields.get(11)?.parse::<f64>().ok()? / ticks,
-        fields.get(12)?.parse::<f64>().ok()? / ticks,
-    ))
+    cpu_times(pid, ticks).map(|c| (c[0], c[1]))
 }
 
 /// Invented figures for the seeded parts: SRF log-uniform in 100 kHz–2 GHz (a fixed LCG, no I/O).

@@ -1,7 +1,7 @@
-//! The bounded chaos run (the full one is `tests/chaos/`, see its README): the real service binary on
-//! SQLite with one replica, 150 sweeps uploaded through the HTTP API, the replica killed with SIGKILL
-//! three times at random moments and restarted, and once stopped with SIGSTOP past its 1.5 s lease and
-//! resumed. Then, from the database: every upload has its fit, every fit succeeded, no job is left,
+//! The bounded chaos runs (the full one is `tests/chaos/`, see its README): the real service binary on
+//! SQLite with one replica, and on PostgreSQL with three replicas; 150 sweeps uploaded through the HTTP API, the replica killed with SIGKILL
+//! three times at random moments and restarted, and a replica once stopped with SIGSTOP past its
+//! 1.5 s lease and resumed. Then, from the database: every upload has its fit, every fit succeeded, no job is left,
 //! each result was written once (one `fit-succeeded` row per fit, which the schema's
 //! `fits_report_written_once` trigger backs), some jobs really ran more than once, and the database
 //! and its audit chain are intact. The seed is printed; `HENRYBOOK_CHAOS_SEED` replays a run.
@@ -26,10 +26,9 @@ fn build_service_binary() {
     assert!(status.success(), "cargo build -p henrybook failed");
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn kills_and_a_stop_past_the_lease_lose_no_fit_and_write_none_twice() {
+/// One bounded run on `database` with `replicas` replicas: 150 fits, 3 kills, 1 stop past the lease.
+async fn bounded_run(database: ChaosDatabase, replicas: usize, dir: tempfile::TempDir) {
     build_service_binary();
-    let dir = tempfile::tempdir().unwrap();
     let seed = std::env::var("HENRYBOOK_CHAOS_SEED")
         .ok()
         .and_then(|s| s.parse().ok())
@@ -37,8 +36,8 @@ async fn kills_and_a_stop_past_the_lease_lose_no_fit_and_write_none_twice() {
     println!("chaos seed {seed} (HENRYBOOK_CHAOS_SEED={seed} replays the plan)");
     let cfg = ChaosConfig {
         binary: service_binary(),
-        database: ChaosDatabase::Sqlite(dir.path().join("chaos.db")),
-        replicas: 1,
+        database,
+        replicas,
         fits: 150,
         points: 1601,
         kills: 3,
@@ -55,10 +54,10 @@ async fn kills_and_a_stop_past_the_lease_lose_no_fit_and_write_none_twice() {
     println!("{}", report.summary());
     assert_eq!((report.kills, report.restarts, report.stops), (3, 3, 1));
     if !report.violations.is_empty() {
-        // A failing run keeps its database and the replica logs for a look.
+        // A failing run keeps its database (SQLite) and the replica logs for a look.
         let kept = dir.keep();
         panic!(
-            "broken invariants (seed {seed}; database and replica logs kept in {}):\n{}",
+            "broken invariants (seed {seed}; replica logs kept in {}):\n{}",
             kept.display(),
             report.violations.join("\n")
         );
@@ -66,8 +65,27 @@ async fn kills_and_a_stop_past_the_lease_lose_no_fit_and_write_none_twice() {
     assert_eq!(report.accepted, 150);
 }
 
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn kills_and_a_stop_past_the_lease_lose_no_fit_and_write_none_twice() {
+    let dir = tempfile::tempdir().unwrap();
+    let database = ChaosDatabase::Sqlite(dir.path().join("chaos.db"));
+    bounded_run(database, 1, dir).await;
+}
+
+/// The same on PostgreSQL with three replicas on one fresh database, so a stopped replica's jobs are
+/// taken over by another process and its late writes must be refused. The database server's
+/// restart is left to the full run (`tests/chaos/`): it would break the other tests of this binary
+/// that use the same server.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn three_replicas_on_postgres_lose_no_fit_and_write_none_twice() {
+    let db = henrybook_tests::pg::TestDb::new().await;
+    let dir = tempfile::tempdir().unwrap();
+    bounded_run(ChaosDatabase::Postgres(db.url.clone()), 3, dir).await;
+    drop(db);
+}
+
 #[test]
-fn what_cannot_run_yet_is_refused_with_the_reason() {
+fn what_cannot_run_is_refused_with_the_reason() {
     let cfg = |database, replicas, database_restarts| ChaosConfig {
         binary: "henrybook".into(),
         database,
@@ -88,7 +106,8 @@ fn what_cannot_run_yet_is_refused_with_the_reason() {
     let err = |c: ChaosConfig| c.validate().unwrap_err().to_string();
     assert!(err(cfg(sqlite(), 1, 1)).contains("no separate server to restart"));
     assert!(err(cfg(sqlite(), 3, 0)).contains("--replicas must be 1"));
-    let pg = ChaosDatabase::Postgres("postgres://postgres@127.0.0.1/chaos".into());
-    assert!(err(cfg(pg, 3, 1)).contains("does not run on PostgreSQL yet"));
+    let pg = || ChaosDatabase::Postgres("postgres://postgres@127.0.0.1/chaos".into());
+    assert!(err(cfg(pg(), 9, 0)).contains("1 to 8 replicas"));
+    assert!(cfg(pg(), 3, 1).validate().is_ok());
     assert!(cfg(sqlite(), 1, 0).validate().is_ok());
 }
