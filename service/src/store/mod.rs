@@ -8,8 +8,10 @@
 //! baseline.
 //!
 //! [`pg`] is the store on PostgreSQL for several replicas, with this store's operations and answers;
-//! the service does not use it yet.
+//! [`backend::Backend`] is the one the service uses, over whichever of the two the database location
+//! names.
 
+pub mod backend;
 pub mod batch;
 pub mod fits;
 pub mod integrity;
@@ -19,6 +21,8 @@ pub mod pg;
 pub mod query;
 pub mod sweeps;
 pub mod tokens;
+
+pub use backend::{Backend, JobClaim};
 
 use anyhow::Context;
 use sqlx::SqlitePool;
