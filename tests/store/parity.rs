@@ -19,12 +19,12 @@ use henrybook::registry::wire::PartSummary;
 use henrybook::registry::wire::{FailureKind, FitStatus};
 use henrybook::store::fits::FitFilter;
 use henrybook::store::integrity::{AuditRow, GENESIS, IntegrityReport, row_hash};
-use henrybook::store::jobs::PartRef;
+use henrybook::store::jobs::{PartRef, Renewal};
 use henrybook::store::pg::PgStore;
 use henrybook::store::query::{AnswerSource, Cursor, PartQuery, Sort};
 use henrybook::store::sweeps::{NamedFile, NewSweep, QueueBounds};
 use henrybook::store::tokens::{LAST_USED_RESOLUTION_MS, Role};
-use henrybook::store::{Store, StoreError, StoreResult, now_ms, sha256_hex};
+use henrybook::store::{Backend, JobClaim, Store, StoreError, StoreResult, now_ms, sha256_hex};
 use henrybook::sweep::Method;
 use henrybook_tests::pg::TestDb;
 use henrybook_tests::synth::{power_choke, synthetic_sweep};
@@ -1316,4 +1316,69 @@ async fn integrity_checks_answer_the_same_and_see_a_changed_row_on_postgresql() 
         .await
         .unwrap();
     assert_eq!(b.pg.readiness().await, (true, false));
+}
+
+#[tokio::test]
+async fn worker_outcomes_through_the_backend_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let pn = part_number("WX-1");
+    same!(b, s => s.create_part("eng", &pn, "", &Limits::default()), unit).unwrap();
+    for i in 0..3 {
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", i, "k")), uploaded_view).unwrap();
+    }
+    // The worker pool's calls, on each store through the one interface the service uses.
+    let backends = [
+        Backend::Sqlite(b.sq.clone()),
+        Backend::Postgres(b.pg.clone()),
+    ];
+    let lease = Duration::from_secs(60);
+    for store in &backends {
+        let claims = store.claim_jobs(lease, 3, 3).await.unwrap();
+        let ids: Vec<i64> = claims.iter().map(JobClaim::fit_id).collect();
+        assert_eq!(ids, [1, 2, 3], "{}", store.kind());
+        for c in &claims {
+            assert!(store.mark_started(c).await.unwrap());
+            assert_eq!(
+                store.renew_lease(c, lease, 0.5).await.unwrap(),
+                Renewal::Held {
+                    cancel_requested: false
+                }
+            );
+        }
+        let cancelled = store.complete_unsuccessful(
+            &claims[0],
+            true,
+            FailureKind::Cancelled,
+            "cancelled on request",
+        );
+        assert!(cancelled.await.unwrap());
+        let failed = store.complete_unsuccessful(
+            &claims[1],
+            false,
+            FailureKind::NotAnInductor,
+            "the sweep is capacitive",
+        );
+        assert!(failed.await.unwrap());
+        assert!(store.release_job(&claims[2]).await.unwrap());
+        // Written once: the same claims write nothing more.
+        assert!(!store.release_job(&claims[0]).await.unwrap());
+        assert!(
+            !store
+                .complete_unsuccessful(&claims[1], false, FailureKind::Internal, "again")
+                .await
+                .unwrap()
+        );
+    }
+    // A claim handed to the other store is refused.
+    let sqlite_claim = backends[0].claim_jobs(lease, 3, 1).await.unwrap();
+    let foreign = backends[1].release_job(&sqlite_claim[0]).await;
+    assert!(
+        matches!(foreign, Err(StoreError::Invalid(_))),
+        "{foreign:?}"
+    );
+    assert!(backends[0].release_job(&sqlite_claim[0]).await.unwrap());
+    for id in 1..=3 {
+        same!(b, s => s.fit_detail(id)).unwrap();
+    }
+    b.assert_same_audit().await;
 }

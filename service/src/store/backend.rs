@@ -293,7 +293,9 @@ impl Backend {
             }
             (Backend::Postgres(p), JobClaim::Postgres(c)) => {
                 let outcome = if cancelled {
-                    pg::queue::Outcome::Cancelled
+                    pg::queue::Outcome::Cancelled {
+                        reason: Some(error.to_string()),
+                    }
                 } else {
                     pg::queue::Outcome::Failed {
                         kind,
