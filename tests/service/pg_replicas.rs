@@ -206,3 +206,81 @@ async fn two_servers_on_one_postgresql_database_run_each_fit_exactly_once() {
     one.stop();
     two.stop();
 }
+
+/// A job queued by another replica (here: written straight through a second `PgStore`, so the
+/// server's own pool is not told in-process) wakes the server's idle pool through LISTEN/NOTIFY long
+/// before its poll interval (60 s here) would find it.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_job_queued_by_another_replica_wakes_an_idle_pool_before_its_poll() {
+    use henrybook::app::Application;
+    use henrybook::registry::ids::{LotCode, PartNumber};
+    use henrybook::registry::limits::Limits;
+    use henrybook::store::pg::PgStore;
+    use henrybook::store::sweeps::{NamedFile, NewSweep};
+
+    let db = TestDb::new().await;
+    let mut settings = henrybook::settings::Settings::new(db.url.clone());
+    settings.workers = 1;
+    settings.poll_interval = Duration::from_secs(60);
+    let app = Application::build(settings)
+        .await
+        .expect("the application builds");
+    let (stop_tx, stop_rx) = tokio::sync::oneshot::channel::<()>();
+    let server = tokio::spawn(app.run(async move {
+        let _ = stop_rx.await;
+    }));
+    // Let the pool make its first (empty) claim and go idle.
+    tokio::time::sleep(Duration::from_millis(500)).await;
+
+    let other = PgStore::new(db.replica().await);
+    let pn = PartNumber::parse("NW-1").unwrap();
+    other
+        .create_part("eng", &pn, "", &Limits::default())
+        .await
+        .unwrap();
+    let csv = synthetic_csv(&simple_model(1e-5, 0.05, 5e-12), 1e4, 1e8, 201);
+    let options_json = "{}".to_string();
+    let up = other
+        .upload(
+            "insp",
+            NewSweep {
+                part_number: pn,
+                lot: LotCode::parse("1").unwrap(),
+                sha256: henrybook::store::sha256_hex(&csv),
+                file: NamedFile {
+                    name: "nw-1.csv".into(),
+                    bytes: csv,
+                },
+                method: "direct".into(),
+                z0_ohm: None,
+                dcr_ohm: None,
+                temperature_c: None,
+                operator: String::new(),
+                fixture_open: None,
+                fixture_short: None,
+                fixture_topology: None,
+                points: 201,
+                options_key: henrybook::jobs::duplicate_key(&options_json, "direct", None),
+                options_json,
+            },
+        )
+        .await
+        .unwrap();
+    let queued_at = tokio::time::Instant::now();
+    loop {
+        let fit = other.fit_summary(up.fit_id).await.unwrap();
+        if !matches!(fit.status.as_str(), "queued" | "running") {
+            assert_eq!(fit.status.as_str(), "succeeded", "{fit:?}");
+            break;
+        }
+        assert!(
+            queued_at.elapsed() < Duration::from_secs(20),
+            "fit {} still {:?} after 20 s: the idle pool was not woken",
+            up.fit_id,
+            fit.status
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let _ = stop_tx.send(());
+    server.await.unwrap().unwrap();
+}
