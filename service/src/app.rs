@@ -3,7 +3,7 @@
 
 use crate::jobs::{CoreEngine, Engine, JobsHandle, Pool, PoolSettings};
 use crate::settings::Settings;
-use crate::store::Store;
+use crate::store::Backend;
 use anyhow::Context;
 use metrics_exporter_prometheus::{Matcher, PrometheusBuilder, PrometheusHandle};
 use std::future::Future;
@@ -15,7 +15,7 @@ use tokio::sync::watch;
 /// What every handler reads through axum's `State`.
 #[derive(Clone)]
 pub struct AppState {
-    pub store: Store,
+    pub store: Backend,
     pub jobs: JobsHandle,
     pub engine: Arc<dyn Engine>,
     pub settings: Arc<Settings>,
@@ -84,7 +84,12 @@ impl Application {
         settings: Settings,
         engine: Arc<dyn Engine>,
     ) -> anyhow::Result<Application> {
-        let store = Store::open(&settings.database_path).await?;
+        let store = Backend::open(&settings.database_path).await?;
+        tracing::info!(
+            database = %crate::store::backend::shown(&settings.database_path),
+            backend = store.kind(),
+            "the store is open"
+        );
         let listener = TcpListener::bind(settings.listen)
             .await
             .with_context(|| format!("cannot listen on {}", settings.listen))?;
@@ -126,7 +131,7 @@ impl Application {
         self.grpc_address
     }
 
-    pub fn store(&self) -> &Store {
+    pub fn store(&self) -> &Backend {
         &self.state.store
     }
 

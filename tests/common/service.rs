@@ -274,3 +274,225 @@ pub fn grpc_request<T>(message: T, token: &str) -> tonic::Request<T> {
     );
     r
 }
+
+/// A `henrybook serve` process of the built service binary ([`crate::chaos::service_binary`]: build it
+/// first with `cargo build -p henrybook`), on a database given as the server takes it (a path, a
+/// `sqlite:` URL or a PostgreSQL URL), with its log in a file of its own. Killed when dropped.
+pub struct ServerProcess {
+    child: Option<std::process::Child>,
+    pub base_url: String,
+    pub log: PathBuf,
+    pub client: reqwest::Client,
+}
+
+/// Runs the service binary with `args`; its standard output, or a panic with its error output.
+pub fn run_service_command(args: &[&str]) -> String {
+    let bin = crate::chaos::service_binary();
+    let out = std::process::Command::new(&bin)
+        .args(args)
+        .output()
+        .unwrap_or_else(|e| {
+            panic!(
+                "cannot run {}: {e} (build it first: cargo build -p henrybook)",
+                bin.display()
+            )
+        });
+    assert!(
+        out.status.success(),
+        "henrybook {args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).expect("UTF-8 output")
+}
+
+/// A token of `role` made with the service's own `token create` on `database`.
+pub fn service_token(database: &str, role: &str) -> String {
+    run_service_command(&["token", "create", "--role", role, "--database", database])
+        .trim()
+        .to_string()
+}
+
+impl ServerProcess {
+    /// Starts the server with `workers` workers and a 2 s lease and waits (at most 60 s) until it
+    /// answers /readyz with 200.
+    pub async fn start(database: &str, workers: usize, log: PathBuf) -> ServerProcess {
+        let port = std::net::TcpListener::bind("127.0.0.1:0")
+            .and_then(|l| l.local_addr())
+            .expect("a free port")
+            .port();
+        let file = std::fs::File::create(&log).expect("the log file");
+        let bin = crate::chaos::service_binary();
+        let child = std::process::Command::new(&bin)
+            .arg("serve")
+            .args(["--listen", &format!("127.0.0.1:{port}")])
+            .args(["--grpc-listen", "127.0.0.1:0"])
+            .args(["--database", database])
+            .args(["--workers", &workers.to_string()])
+            .args([
+                "--lease-s",
+                "2",
+                "--shutdown-grace-s",
+                "5",
+                "--drain-timeout-s",
+                "10",
+            ])
+            .env("RUST_LOG", "info")
+            .stdout(file.try_clone().expect("the log file"))
+            .stderr(file)
+            .spawn()
+            .unwrap_or_else(|e| {
+                panic!(
+                    "cannot start {}: {e} (build it first: cargo build -p henrybook)",
+                    bin.display()
+                )
+            });
+        let mut server = ServerProcess {
+            child: Some(child),
+            base_url: format!("http://127.0.0.1:{port}"),
+            log,
+            client: reqwest::Client::new(),
+        };
+        let deadline = tokio::time::Instant::now() + Duration::from_secs(60);
+        loop {
+            if let Ok(r) = server.client.get(server.url("/readyz")).send().await
+                && r.status() == 200
+            {
+                return server;
+            }
+            if let Some(status) = server
+                .child
+                .as_mut()
+                .and_then(|c| c.try_wait().ok().flatten())
+            {
+                panic!(
+                    "the server exited at start ({status}): {}",
+                    server.log_text()
+                );
+            }
+            assert!(
+                tokio::time::Instant::now() < deadline,
+                "the server was not ready within 60 s: {}",
+                server.log_text()
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+
+    pub fn url(&self, path: &str) -> String {
+        format!("{}{}", self.base_url, path)
+    }
+
+    pub fn log_text(&self) -> String {
+        std::fs::read_to_string(&self.log).unwrap_or_default()
+    }
+
+    /// SIGTERM, then waits (at most 30 s) for a clean exit.
+    pub fn stop(mut self) {
+        let Some(mut child) = self.child.take() else {
+            return;
+        };
+        let sent = std::process::Command::new("kill")
+            .args(["-TERM", &child.id().to_string()])
+            .status()
+            .expect("kill -TERM");
+        assert!(sent.success());
+        let deadline = std::time::Instant::now() + Duration::from_secs(30);
+        loop {
+            if let Some(status) = child.try_wait().expect("the server's status") {
+                assert!(
+                    status.success(),
+                    "the server stopped with {status}: {}",
+                    self.log_text()
+                );
+                return;
+            }
+            assert!(
+                std::time::Instant::now() < deadline,
+                "the server did not stop within 30 s"
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+
+    pub async fn get_json(&self, path: &str, token: &str) -> Value {
+        let r = self
+            .client
+            .get(self.url(path))
+            .bearer_auth(token)
+            .send()
+            .await
+            .expect("request");
+        let status = r.status();
+        let body: Value = r.json().await.expect("JSON body");
+        assert!(status.is_success(), "GET {path}: {status} {body}");
+        body
+    }
+
+    /// POSTs JSON and asserts the status; the answer's body.
+    pub async fn post_json(&self, path: &str, token: &str, body: &Value, status: u16) -> Value {
+        let r = self
+            .client
+            .post(self.url(path))
+            .bearer_auth(token)
+            .json(body)
+            .send()
+            .await
+            .expect("request");
+        let got = r.status();
+        let text = r.text().await.unwrap_or_default();
+        assert_eq!(got, status, "POST {path}: {text}");
+        serde_json::from_str(&text).unwrap_or(Value::Null)
+    }
+
+    /// Uploads a CSV sweep of `part` (lot `lot`, method direct) and asserts the 202; the fit's id.
+    pub async fn upload_csv(&self, token: &str, part: &str, lot: &str, csv: Vec<u8>) -> i64 {
+        let form = reqwest::multipart::Form::new()
+            .part(
+                "file",
+                reqwest::multipart::Part::bytes(csv).file_name(format!("{part}-{lot}.csv")),
+            )
+            .text("part_number", part.to_string())
+            .text("lot", lot.to_string())
+            .text("method", "direct");
+        let r = self
+            .client
+            .post(self.url("/api/v1/sweeps"))
+            .bearer_auth(token)
+            .multipart(form)
+            .send()
+            .await
+            .expect("request");
+        let status = r.status();
+        let body: Value = r.json().await.expect("JSON body");
+        assert_eq!(status, 202, "upload: {body}");
+        body["fit_id"].as_i64().expect("a fit id")
+    }
+
+    /// Polls a fit until it leaves queued/running (at most `timeout`).
+    pub async fn wait_for_fit(&self, fit_id: i64, token: &str, timeout: Duration) -> Value {
+        let deadline = tokio::time::Instant::now() + timeout;
+        loop {
+            let fit = self
+                .get_json(&format!("/api/v1/fits/{fit_id}"), token)
+                .await;
+            let status = fit["status"].as_str().unwrap_or_default().to_string();
+            if status != "queued" && status != "running" {
+                return fit;
+            }
+            assert!(
+                tokio::time::Instant::now() < deadline,
+                "fit {fit_id} still {status} after {timeout:?}"
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+    }
+}
+
+impl Drop for ServerProcess {
+    fn drop(&mut self) {
+        if let Some(c) = self.child.as_mut() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}

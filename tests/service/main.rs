@@ -15,5 +15,6 @@ mod fixture;
 mod grpc;
 mod jobs;
 mod openapi;
+mod pg_replicas;
 mod schemathesis;
 mod trend_report;

@@ -15,14 +15,16 @@ use henrybook::fit::{FitControl, FitOptions, FitReport, fit};
 use henrybook::registry::assessment::assess;
 use henrybook::registry::ids::{LotCode, PartNumber};
 use henrybook::registry::limits::Limits;
+use henrybook::registry::wire::PartSummary;
 use henrybook::registry::wire::{FailureKind, FitStatus};
 use henrybook::store::fits::FitFilter;
-use henrybook::store::integrity::{AuditRow, GENESIS, row_hash};
-use henrybook::store::jobs::PartRef;
+use henrybook::store::integrity::{AuditRow, GENESIS, IntegrityReport, row_hash};
+use henrybook::store::jobs::{PartRef, Renewal};
 use henrybook::store::pg::PgStore;
+use henrybook::store::query::{AnswerSource, Cursor, PartQuery, Sort};
 use henrybook::store::sweeps::{NamedFile, NewSweep, QueueBounds};
 use henrybook::store::tokens::{LAST_USED_RESOLUTION_MS, Role};
-use henrybook::store::{Store, StoreError, StoreResult, now_ms, sha256_hex};
+use henrybook::store::{Backend, JobClaim, Store, StoreError, StoreResult, now_ms, sha256_hex};
 use henrybook::sweep::Method;
 use henrybook_tests::pg::TestDb;
 use henrybook_tests::synth::{power_choke, synthetic_sweep};
@@ -1064,4 +1066,319 @@ async fn approvals_limits_and_results_racing_on_two_replicas_leave_one_consisten
         }
     }
     assert_pg_chain_holds(&db.pool).await;
+}
+
+/// A query of `source` with no filter, sorted by part number, 50 to a page.
+fn part_query(source: AnswerSource) -> PartQuery {
+    PartQuery {
+        q: None,
+        source,
+        srf_min_hz: None,
+        srf_max_hz: None,
+        series_resonance_min_hz: None,
+        series_resonance_max_hz: None,
+        l_at_hz: None,
+        l_min_h: None,
+        l_max_h: None,
+        dcr_max_ohm: None,
+        z_min_ohm: None,
+        z_band_min_hz: None,
+        z_band_max_hz: None,
+        core_corner_min_hz: None,
+        core_corner_max_hz: None,
+        sort: Sort::parse("part_number").unwrap(),
+        limit: 50,
+        cursor: None,
+    }
+}
+
+/// Runs `query` on both stores page by page (following the cursors, asserting the same pages,
+/// cursors included); the SQLite store's items of all pages.
+async fn same_pages(b: &Both, mut query: PartQuery) -> Vec<PartSummary> {
+    let mut all = Vec::new();
+    for _ in 0..20 {
+        let page = same!(b, s => s.query_parts(&query)).unwrap();
+        all.extend(page.items);
+        match page.next_cursor {
+            Some(c) => query.cursor = Some(Cursor::decode(&c).unwrap()),
+            None => return all,
+        }
+    }
+    panic!("more than 20 pages");
+}
+
+fn numbers(items: &[PartSummary]) -> Vec<&str> {
+    items.iter().map(|i| i.part_number.as_str()).collect()
+}
+
+#[tokio::test]
+async fn part_queries_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let (pass, fail) = reports();
+    let limits = Limits {
+        dcr_max_ohm: Some(0.2),
+        ..Limits::default()
+    };
+    // Part numbers whose byte order differs from a language's order (upper case before lower case,
+    // punctuation counted), and descriptions that differ in case or hold LIKE's wildcards.
+    let parts = [
+        ("b-1", "Output Choke"),
+        ("B-2", "output choke"),
+        ("a_3", "filter 50%_x"),
+        ("A.4", "filter 50 x"),
+        ("a-5", "common mode"),
+    ];
+    for (i, (number, description)) in parts.iter().enumerate() {
+        let pn = part_number(number);
+        same!(b, s => s.create_part("eng", &pn, description, &limits), unit).unwrap();
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", i, "k")), uploaded_view).unwrap();
+    }
+    // Fits 1..5 in part order: b-1 and a_3 fail their limits (the thinner wire), the others pass.
+    for i in 0..parts.len() {
+        let report = if i % 2 == 0 && i != 4 { fail } else { pass };
+        assert_eq!(succeed_next(&b, report).await, i as i64 + 1);
+    }
+    // Approved baselines: B-2 and A.4 (passing), and b-1 by override.
+    same!(b, s => s.approve_fit("eng", 2, None, false), unit).unwrap();
+    same!(b, s => s.approve_fit("eng", 4, None, false), unit).unwrap();
+    same!(b, s => s.approve_fit("eng", 1, Some("bench check"), true), unit).unwrap();
+
+    let latest = same_pages(&b, part_query(AnswerSource::Latest)).await;
+    assert_eq!(numbers(&latest), ["A.4", "B-2", "a-5", "a_3", "b-1"]);
+    assert!(latest.iter().all(|i| i.l_eff_h.is_none()));
+    let approved = same_pages(&b, part_query(AnswerSource::Approved)).await;
+    assert_eq!(numbers(&approved), ["A.4", "B-2", "b-1"]);
+    let passing = same_pages(&b, part_query(AnswerSource::LatestPassing)).await;
+    assert_eq!(numbers(&passing), ["A.4", "B-2", "a-5"]);
+
+    // Pages of two, by part number and by figures both ways (ties broken by part number).
+    for sort in [
+        "part_number",
+        "-part_number",
+        "rdc_ohm",
+        "-rdc_ohm",
+        "srf_hz",
+        "-l0_h",
+    ] {
+        let mut q = part_query(AnswerSource::Latest);
+        q.sort = Sort::parse(sort).unwrap();
+        q.limit = 2;
+        let items = same_pages(&b, q).await;
+        assert_eq!(items.len(), 5, "{sort}");
+    }
+    let mut by_dcr = part_query(AnswerSource::Latest);
+    by_dcr.sort = Sort::parse("-rdc_ohm").unwrap();
+    by_dcr.limit = 2;
+    let items = same_pages(&b, by_dcr).await;
+    // The thinner wire first, then the rest, each group in byte order.
+    assert_eq!(numbers(&items), ["a_3", "b-1", "A.4", "B-2", "a-5"]);
+
+    // Text: the case of ASCII letters is ignored, LIKE's wildcards are plain characters.
+    let mut text = part_query(AnswerSource::Latest);
+    text.q = Some("OUTPUT".into());
+    assert_eq!(numbers(&same_pages(&b, text.clone()).await), ["B-2", "b-1"]);
+    text.q = Some("50%_".into());
+    assert_eq!(numbers(&same_pages(&b, text.clone()).await), ["a_3"]);
+    text.q = Some("a_".into());
+    assert_eq!(numbers(&same_pages(&b, text).await), ["a_3"]);
+
+    // Figures: DCR at most, L at a frequency on the grid, |Z| over a band, SRF and resonance bands.
+    let mut dcr = part_query(AnswerSource::Latest);
+    dcr.dcr_max_ohm = Some(0.2);
+    assert_eq!(numbers(&same_pages(&b, dcr).await), ["A.4", "B-2", "a-5"]);
+    let mut l = part_query(AnswerSource::Latest);
+    l.l_at_hz = Some(123_456.0);
+    let with_l = same_pages(&b, l.clone()).await;
+    assert!(with_l.iter().all(|i| i.l_eff_h.is_some_and(|h| h > 0.0)));
+    let l_eff = with_l[0].l_eff_h.unwrap();
+    l.l_min_h = Some(l_eff * 0.9);
+    l.l_max_h = Some(l_eff * 1.1);
+    assert_eq!(same_pages(&b, l.clone()).await.len(), 5);
+    l.l_min_h = Some(l_eff * 2.0);
+    l.l_max_h = None;
+    assert!(same_pages(&b, l).await.is_empty());
+    let mut z = part_query(AnswerSource::Approved);
+    z.z_band_min_hz = Some(20e3);
+    z.z_band_max_hz = Some(2e6);
+    let banded = same_pages(&b, z.clone()).await;
+    assert_eq!(banded.len(), 3);
+    let z_min = banded[0].z_min_ohm.expect("the lowest |Z| over the band");
+    z.z_min_ohm = Some(z_min * 0.5);
+    assert_eq!(same_pages(&b, z.clone()).await.len(), 3);
+    z.z_min_ohm = Some(z_min * 1e3);
+    assert!(same_pages(&b, z).await.is_empty());
+    // An SRF of at least 1 Hz (or above the sweep, which clears it): every part.
+    let mut s = part_query(AnswerSource::Latest);
+    s.srf_min_hz = Some(1.0);
+    s.sort = Sort::parse("-srf_hz").unwrap();
+    assert_eq!(same_pages(&b, s).await.len(), 5);
+    // A series resonance, a core corner anywhere: the parts whose answering fit has one.
+    let mut r = part_query(AnswerSource::Latest);
+    r.series_resonance_min_hz = Some(1.0);
+    let resonant = same_pages(&b, r).await;
+    let want: Vec<&str> = latest
+        .iter()
+        .filter(|i| !i.series_resonances_hz.is_empty())
+        .map(|i| i.part_number.as_str())
+        .collect();
+    assert_eq!(numbers(&resonant), want);
+    let mut c = part_query(AnswerSource::Latest);
+    c.core_corner_min_hz = Some(1.0);
+    let cornered = same_pages(&b, c).await;
+    let want: Vec<&str> = latest
+        .iter()
+        .filter(|i| i.core_corner_hz.is_some())
+        .map(|i| i.part_number.as_str())
+        .collect();
+    assert_eq!(numbers(&cornered), want);
+
+    // A newer fit of B-2 against its approved baseline: its drift shows on the latest answers.
+    let b2 = part_number("B-2");
+    same!(b, s => s.upload("insp", new_sweep(&b2, "L2", 9, "k")), uploaded_view).unwrap();
+    assert_eq!(succeed_next(&b, fail).await, 6);
+    let drifted = same_pages(&b, part_query(AnswerSource::Latest)).await;
+    let b2_row = drifted.iter().find(|i| i.part_number == "B-2").unwrap();
+    assert_eq!(b2_row.answered_from_fit_id, Some(6));
+    assert!(b2_row.drift_l0_percent.is_some(), "{b2_row:?}");
+    assert_eq!(b2_row.latest_verdict.as_deref(), Some("fail"));
+
+    // A bad query is refused the same way by both.
+    let mut bad = part_query(AnswerSource::Latest);
+    bad.l_min_h = Some(1e-6);
+    let refused = same!(b, s => s.query_parts(&bad));
+    assert!(
+        matches!(refused, Err(StoreError::Invalid(_))),
+        "{refused:?}"
+    );
+}
+
+#[tokio::test]
+async fn integrity_checks_answer_the_same_and_see_a_changed_row_on_postgresql() {
+    let b = Both::new().await;
+    let (pass, fail) = reports();
+    let pn = part_number("IX-1");
+    let limits = Limits {
+        dcr_max_ohm: Some(0.2),
+        ..Limits::default()
+    };
+    same!(b, s => s.create_part("eng", &pn, "", &limits), unit).unwrap();
+    for i in 0..2 {
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", i, "k")), uploaded_view).unwrap();
+    }
+    succeed_next(&b, pass).await;
+    succeed_next(&b, fail).await;
+    same!(b, s => s.approve_fit("eng", 1, None, false), unit).unwrap();
+    let whole = same!(b, s => s.verify_integrity(), |r: &IntegrityReport| {
+        json!([r.audit_rows, r.verdicts_checked, r.problems])
+    })
+    .unwrap();
+    assert!(whole.ok() && whole.verdicts_checked == 2, "{whole:?}");
+    assert_eq!(b.pg.readiness().await, (true, true));
+    let (ok, head) = b.pg.audit_chain_ok().await;
+    assert!(ok);
+    assert_eq!(head, b.pg.verify_integrity().await.unwrap().head_hash);
+
+    // Around the store (the triggers switched off, as only the database's owner can): a changed audit
+    // row, and a stored verdict that is not what its result gives.
+    sqlx::raw_sql(
+        "ALTER TABLE audit DISABLE TRIGGER USER; \
+         UPDATE audit SET actor = 'someone else' WHERE audit_id = 2; \
+         UPDATE fits SET verdict = 'pass' WHERE fit_id = 2",
+    )
+    .execute(&b.db.pool)
+    .await
+    .unwrap();
+    let report = b.pg.verify_integrity().await.unwrap();
+    assert_eq!(
+        report.problems,
+        [
+            "audit row 2 was changed after it was written",
+            "fit 2's stored verdict (pass) is not what its result and the part's limits give (fail)"
+        ]
+    );
+    // /readyz's check goes on from the last row it checked (so it does not see row 2): a row written
+    // since and then changed it sees, and it stays broken.
+    assert!(b.pg.audit_chain_ok().await.0);
+    b.pg.create_part("eng", &part_number("IX-2"), "", &Limits::default())
+        .await
+        .unwrap();
+    sqlx::raw_sql(
+        "UPDATE audit SET reason = 'x' WHERE audit_id = (SELECT MAX(audit_id) FROM audit)",
+    )
+    .execute(&b.db.pool)
+    .await
+    .unwrap();
+    assert!(!b.pg.audit_chain_ok().await.0);
+    assert!(!b.pg.audit_chain_ok().await.0);
+    // Readiness names a missing migration.
+    sqlx::raw_sql("DELETE FROM _sqlx_migrations WHERE version = 11")
+        .execute(&b.db.pool)
+        .await
+        .unwrap();
+    assert_eq!(b.pg.readiness().await, (true, false));
+}
+
+#[tokio::test]
+async fn worker_outcomes_through_the_backend_answer_the_same_on_both_stores() {
+    let b = Both::new().await;
+    let pn = part_number("WX-1");
+    same!(b, s => s.create_part("eng", &pn, "", &Limits::default()), unit).unwrap();
+    for i in 0..3 {
+        same!(b, s => s.upload("insp", new_sweep(&pn, "L1", i, "k")), uploaded_view).unwrap();
+    }
+    // The worker pool's calls, on each store through the one interface the service uses.
+    let backends = [
+        Backend::Sqlite(b.sq.clone()),
+        Backend::Postgres(b.pg.clone()),
+    ];
+    let lease = Duration::from_secs(60);
+    for store in &backends {
+        let claims = store.claim_jobs(lease, 3, 3).await.unwrap();
+        let ids: Vec<i64> = claims.iter().map(JobClaim::fit_id).collect();
+        assert_eq!(ids, [1, 2, 3], "{}", store.kind());
+        for c in &claims {
+            assert!(store.mark_started(c).await.unwrap());
+            assert_eq!(
+                store.renew_lease(c, lease, 0.5).await.unwrap(),
+                Renewal::Held {
+                    cancel_requested: false
+                }
+            );
+        }
+        let cancelled = store.complete_unsuccessful(
+            &claims[0],
+            true,
+            FailureKind::Cancelled,
+            "cancelled on request",
+        );
+        assert!(cancelled.await.unwrap());
+        let failed = store.complete_unsuccessful(
+            &claims[1],
+            false,
+            FailureKind::NotAnInductor,
+            "the sweep is capacitive",
+        );
+        assert!(failed.await.unwrap());
+        assert!(store.release_job(&claims[2]).await.unwrap());
+        // Written once: the same claims write nothing more.
+        assert!(!store.release_job(&claims[0]).await.unwrap());
+        assert!(
+            !store
+                .complete_unsuccessful(&claims[1], false, FailureKind::Internal, "again")
+                .await
+                .unwrap()
+        );
+    }
+    // A claim handed to the other store is refused.
+    let sqlite_claim = backends[0].claim_jobs(lease, 3, 1).await.unwrap();
+    let foreign = backends[1].release_job(&sqlite_claim[0]).await;
+    assert!(
+        matches!(foreign, Err(StoreError::Invalid(_))),
+        "{foreign:?}"
+    );
+    assert!(backends[0].release_job(&sqlite_claim[0]).await.unwrap());
+    for id in 1..=3 {
+        same!(b, s => s.fit_detail(id)).unwrap();
+    }
+    b.assert_same_audit().await;
 }

@@ -478,7 +478,9 @@ async fn attempts_run_out_cancels_settle_and_a_release_is_not_counted() {
         .unwrap();
     assert_eq!(progress, 0.25);
     assert_eq!(
-        q.complete(&[(running, Outcome::Cancelled)]).await.unwrap(),
+        q.complete(&[(running, Outcome::Cancelled { reason: None })])
+            .await
+            .unwrap(),
         [true]
     );
     assert_eq!(
@@ -669,7 +671,7 @@ async fn a_batch_of_many_outcomes_is_one_transaction_without_savepoints() {
         &mut db.pool.acquire().await.unwrap(),
         &[
             (claims[7], succeeded("{}")),
-            (claims[7], Outcome::Cancelled),
+            (claims[7], Outcome::Cancelled { reason: None }),
         ],
     )
     .await

@@ -2,6 +2,11 @@
 //! (`spawn_blocking`, at most `workers` at once under a semaphore), renew the lease while it runs, and
 //! write the outcome only while the claim still holds.
 //!
+//! The queue is the open store's ([`Backend`]): SQLite's job table, or PostgreSQL's shared by every
+//! replica (claims with `FOR UPDATE SKIP LOCKED`, per-job claim tokens, outcomes written only while
+//! the token matches, expired leases reaped by any claim), where an idle pool also wakes on
+//! `LISTEN`/`NOTIFY` when any replica queues a job, with polling as the fallback.
+//!
 //! On shutdown the pool stops claiming, lets running fits finish for a grace period, then cancels the
 //! rest and gives their jobs back to the queue (the next start runs them). A worker that dies without
 //! shutting down leaves its lease to expire; the next claim after expiry re-runs the job.
@@ -14,8 +19,8 @@ use crate::fit::{DcrReading, FitControl, FitError, FitOptions};
 use crate::registry::assessment;
 use crate::registry::wire::FailureKind;
 use crate::settings::Settings;
-use crate::store::jobs::{Claim, Renewal};
-use crate::store::{Store, sha256_hex};
+use crate::store::jobs::Renewal;
+use crate::store::{Backend, JobClaim, sha256_hex};
 use crate::sweep::{Method, ReadOptions};
 use std::collections::HashMap;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
@@ -116,14 +121,14 @@ impl JobsHandle {
 }
 
 pub struct Pool {
-    store: Store,
+    store: Backend,
     engine: Arc<dyn Engine>,
     settings: PoolSettings,
     handle: JobsHandle,
 }
 
 impl Pool {
-    pub fn new(store: Store, engine: Arc<dyn Engine>, settings: PoolSettings) -> Pool {
+    pub fn new(store: Backend, engine: Arc<dyn Engine>, settings: PoolSettings) -> Pool {
         Pool {
             store,
             engine,
@@ -148,6 +153,15 @@ impl Pool {
         let permits = Arc::new(Semaphore::new(4 * self.settings.workers));
         let (release_tx, release_rx) = watch::channel(false);
         let mut tasks = JoinSet::new();
+        // On PostgreSQL, jobs queued by other replicas wake this pool too; polling stays the
+        // fallback (and finds expired leases, which announce nothing).
+        let mut waker = match self.store.job_waker().await {
+            Ok(w) => w,
+            Err(e) => {
+                tracing::warn!(error = %e, "cannot listen for queued jobs; polling only");
+                None
+            }
+        };
         loop {
             if *stop.borrow() {
                 break;
@@ -180,17 +194,26 @@ impl Pool {
                         };
                         let span = tracing::info_span!(
                             "fit",
-                            fit_id = claim.fit_id,
-                            attempt = claim.attempt
+                            fit_id = claim.fit_id(),
+                            attempt = claim.attempt()
                         );
                         tasks.spawn(async move { job.run(claim, permit).await }.instrument(span));
                     }
                 }
                 Ok(_) => {
                     drop(free);
+                    let poll = self.settings.poll_interval;
+                    let announced = async {
+                        match waker.as_mut() {
+                            Some(w) => {
+                                w.wait(poll).await;
+                            }
+                            None => tokio::time::sleep(poll).await,
+                        }
+                    };
                     tokio::select! {
                         _ = self.handle.notify.notified() => {}
-                        _ = tokio::time::sleep(self.settings.poll_interval) => {}
+                        _ = announced => {}
                         _ = stop.changed() => break,
                     }
                 }
@@ -221,7 +244,7 @@ impl Pool {
 }
 
 struct RunningJob {
-    store: Store,
+    store: Backend,
     engine: Arc<dyn Engine>,
     settings: PoolSettings,
     handle: JobsHandle,
@@ -260,8 +283,8 @@ impl RunningJob {
     /// Runs one claimed job: waits for a worker slot, fits, gives the slot back and writes the
     /// outcome. `claimed` counts the job among those claimed ahead of a slot; it is given back with
     /// the slot, so jobs still writing their outcome do not hold up the next claims.
-    async fn run(mut self, claim: Claim, claimed: tokio::sync::OwnedSemaphorePermit) {
-        let fit_id = claim.fit_id;
+    async fn run(mut self, claim: JobClaim, claimed: tokio::sync::OwnedSemaphorePermit) {
+        let fit_id = claim.fit_id();
         let input = match self.store.job_input(fit_id).await {
             Ok(i) => i,
             Err(e) => {
@@ -332,7 +355,7 @@ impl RunningJob {
     async fn supervise<T>(
         &mut self,
         work: impl std::future::Future<Output = T>,
-        claim: &Claim,
+        claim: &JobClaim,
         cancel: &AtomicBool,
         progress: &AtomicU64,
     ) -> Watched<T> {
@@ -378,7 +401,7 @@ impl RunningJob {
     /// that misses its data queues its rational follow-up. `Ok(false)`: the claim was taken over.
     async fn settle(
         &self,
-        claim: &Claim,
+        claim: &JobClaim,
         outcome: Outcome,
         seconds: f64,
         releasing: bool,
@@ -394,7 +417,7 @@ impl RunningJob {
                 if let (Ok(true), Some((limit, options_json, key))) = (&written, &follow_up)
                     && (poor || rms_weighted > *limit)
                 {
-                    self.queue_follow_up(claim.fit_id, options_json, key, rms_weighted, poor)
+                    self.queue_follow_up(claim.fit_id(), options_json, key, rms_weighted, poor)
                         .await;
                 }
                 written
@@ -479,10 +502,10 @@ impl RunningJob {
     /// writes it; the writer only stores what is already computed.
     async fn write_report(
         &self,
-        claim: &Claim,
+        claim: &JobClaim,
         report: Box<crate::fit::FitReport>,
     ) -> crate::store::StoreResult<bool> {
-        let (basis, baseline_json) = self.store.assessment_basis(claim.fit_id).await?;
+        let (basis, baseline_json) = self.store.assessment_basis(claim.fit_id()).await?;
         let assessed = tokio::task::spawn_blocking(move || {
             let a = assessment::assess(&report, basis, baseline_json.as_deref());
             a.map(|a| (report, a))

@@ -3,14 +3,14 @@
 //! [`authorize`].
 
 use super::error::{ErrorKind, OpsError};
-use crate::store::Store;
+use crate::store::Backend;
 use crate::store::tokens::{Caller, Role};
 
 /// The caller behind an `Authorization` value, if its role is at least `needed`: absent, malformed or
 /// unknown → [`ErrorKind::Unauthorized`]; too low → [`ErrorKind::Forbidden`]. A value that is not
 /// visible ASCII is passed as `""`.
 pub async fn authorize(
-    store: &Store,
+    store: &Backend,
     authorization: Option<&str>,
     needed: Role,
 ) -> Result<Caller, OpsError> {

@@ -12,7 +12,7 @@
 
 use super::error::{ErrorKind, OpsError, OpsResult};
 use crate::settings::Settings;
-use crate::store::Store;
+use crate::store::Backend;
 use crate::store::jobs::PartRef;
 use std::sync::Arc;
 use tokio::sync::{OwnedSemaphorePermit, Semaphore};
@@ -87,7 +87,7 @@ impl Backpressure {
     }
 
     /// Refuses when the queue is full: 503 in all, 429 for the part.
-    pub async fn check_queue(&self, store: &Store, part: PartRef<'_>) -> OpsResult<()> {
+    pub async fn check_queue(&self, store: &Backend, part: PartRef<'_>) -> OpsResult<()> {
         let depth = store.queue_depth(part).await?;
         if depth.all >= self.max_queued_fits {
             metrics::counter!("henrybook_refused_total", "bound" => "queue").increment(1);

@@ -221,7 +221,7 @@ fn read_manifest(data: &std::path::Path) -> anyhow::Result<Value> {
         .with_context(|| format!("{} is not JSON", manifest_path.display()))
 }
 
-async fn demo_tokens(store: &crate::store::Store) -> anyhow::Result<Tokens> {
+async fn demo_tokens(store: &crate::store::Backend) -> anyhow::Result<Tokens> {
     let mut tokens = Vec::new();
     for role in Role::ALL {
         tokens.push(

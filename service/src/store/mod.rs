@@ -7,9 +7,11 @@
 //! [`crate::registry`] functions when a stored verdict or drift must follow a change of limits or
 //! baseline.
 //!
-//! [`pg`] is the store on PostgreSQL for several replicas (schema, job queue, and parts, uploads, fits
-//! and tokens with this store's answers); the service does not use it yet.
+//! [`pg`] is the store on PostgreSQL for several replicas, with this store's operations and answers;
+//! [`backend::Backend`] is the one the service uses, over whichever of the two the database location
+//! names.
 
+pub mod backend;
 pub mod batch;
 pub mod fits;
 pub mod integrity;
@@ -19,6 +21,8 @@ pub mod pg;
 pub mod query;
 pub mod sweeps;
 pub mod tokens;
+
+pub use backend::{Backend, JobClaim};
 
 use anyhow::Context;
 use sqlx::SqlitePool;
@@ -56,8 +60,8 @@ pub struct Store {
     pub(crate) reader: SqlitePool,
     /// Group commit on the writer for the busy paths (uploads, claims, outcomes).
     pub(crate) batch: batch::Batcher,
-    /// The last audit row /readyz has verified, with its hash: each check continues from there.
-    pub(crate) chain_checked: std::sync::Arc<tokio::sync::Mutex<(i64, Option<String>, bool)>>,
+    /// What /readyz's audit check has verified: each check continues from there.
+    pub(crate) chain_checked: integrity::ChainWatch,
 }
 
 impl Store {
@@ -108,43 +112,20 @@ impl Store {
             .seal_audit()
             .await
             .context("cannot seal the audit trail")?;
-        let (report, last, head) = store
+        let checked = store
             .verify_audit(0, None)
             .await
             .context("cannot read the audit trail")?;
-        if report.ok() {
-            tracing::info!(
-                audit_rows = report.audit_rows,
-                head_hash = head.as_deref().unwrap_or("none"),
-                "the audit trail's hash chain is intact"
-            );
-        } else {
-            tracing::error!(problems = ?report.problems, "the audit trail's hash chain is broken");
-        }
-        *store.chain_checked.lock().await = (last, head, report.ok());
+        store.chain_checked.start(checked).await;
         Ok(store)
     }
 
     /// /readyz's audit check: continues the chain from the last row it verified (cheap); once broken
     /// it stays broken until the service restarts and the full check passes.
     pub async fn audit_chain_ok(&self) -> (bool, Option<String>) {
-        let mut state = self.chain_checked.lock().await;
-        if !state.2 {
-            return (false, state.1.clone());
-        }
-        match self.verify_audit(state.0, state.1.as_deref()).await {
-            Ok((report, last, head)) => {
-                if !report.ok() {
-                    tracing::error!(problems = ?report.problems, "the audit trail's hash chain is broken");
-                }
-                *state = (last, head, report.ok());
-            }
-            Err(e) => {
-                tracing::warn!(error = %e, "cannot read the audit trail");
-                return (false, state.1.clone());
-            }
-        }
-        (state.2, state.1.clone())
+        self.chain_checked
+            .advance(|after, hash| async move { self.verify_audit(after, hash.as_deref()).await })
+            .await
     }
 
     /// Readiness: the database answers and every embedded migration is applied.
@@ -158,11 +139,7 @@ impl Store {
         )
         .fetch_all(&self.reader)
         .await;
-        let migrations = match applied {
-            Ok(v) => MIGRATOR.iter().all(|m| v.contains(&m.version)),
-            Err(_) => false,
-        };
-        (database, migrations)
+        (database, all_applied(&MIGRATOR, applied.ok()))
     }
 
     pub async fn close(&self) {
@@ -174,6 +151,12 @@ impl Store {
     pub(crate) async fn write(&self) -> StoreResult<sqlx::Transaction<'static, sqlx::Sqlite>> {
         Ok(self.writer.begin().await?)
     }
+}
+
+/// Whether every migration of `migrator` is among the `applied` versions (`None`: they could not be
+/// read).
+pub(crate) fn all_applied(migrator: &sqlx::migrate::Migrator, applied: Option<Vec<i64>>) -> bool {
+    applied.is_some_and(|v| migrator.iter().all(|m| v.contains(&m.version)))
 }
 
 /// Milliseconds since the Unix epoch.

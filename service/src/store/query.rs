@@ -4,11 +4,12 @@
 //! succeeded fit of every part; sorted, keyset-paginated. A fit without a core loss (a lossless core,
 //! a rational model) has no core corner: a query that bounds the corner never matches it.
 
+use super::pg::PgStore;
 use super::{Store, StoreError, StoreResult};
 use crate::registry::grid;
 use crate::registry::ids::PartNumber;
 use crate::registry::wire::{PartPage, PartSummary};
-use sqlx::{QueryBuilder, Row, Sqlite};
+use sqlx::Row;
 
 /// Sort keys; `descending` reverses the figure order (part numbers break ties ascending).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -220,90 +221,266 @@ impl PartQuery {
     }
 }
 
+/// The SQL of either backend for what differs between them; everything else in a query is the same
+/// text.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Dialect {
+    Sqlite,
+    Postgres,
+}
+
+/// One bound value of a [`Sql`] statement.
+#[derive(Debug, Clone)]
+enum Arg {
+    F64(f64),
+    I64(i64),
+    Text(String),
+}
+
+impl From<f64> for Arg {
+    fn from(v: f64) -> Arg {
+        Arg::F64(v)
+    }
+}
+
+impl From<i64> for Arg {
+    fn from(v: i64) -> Arg {
+        Arg::I64(v)
+    }
+}
+
+impl From<String> for Arg {
+    fn from(v: String) -> Arg {
+        Arg::Text(v)
+    }
+}
+
+/// A statement built for one dialect: its text with that dialect's placeholders (`?` or `$n`) and its
+/// bound values, run by either store ([`Sql::query`]).
+pub(crate) struct Sql {
+    dialect: Dialect,
+    text: String,
+    args: Vec<Arg>,
+}
+
+impl Sql {
+    fn new(dialect: Dialect, text: &str) -> Sql {
+        Sql {
+            dialect,
+            text: text.to_string(),
+            args: Vec::new(),
+        }
+    }
+
+    fn push(&mut self, text: impl AsRef<str>) -> &mut Sql {
+        self.text.push_str(text.as_ref());
+        self
+    }
+
+    fn push_bind(&mut self, value: impl Into<Arg>) -> &mut Sql {
+        self.args.push(value.into());
+        match self.dialect {
+            Dialect::Sqlite => self.text.push('?'),
+            Dialect::Postgres => self.text.push_str(&format!("${}", self.args.len())),
+        }
+        self
+    }
+
+    /// A part-number expression compared and sorted in byte order, as SQLite's BINARY collation does
+    /// (a PostgreSQL database may collate text by a language's rules).
+    fn part_number(&self, column: &str) -> String {
+        match self.dialect {
+            Dialect::Sqlite => column.to_string(),
+            Dialect::Postgres => format!("{column} COLLATE \"C\""),
+        }
+    }
+
+    /// The statement with its values bound, for the store of its dialect.
+    fn query<DB: sqlx::Database>(&self) -> sqlx::query::Query<'static, DB, DB::Arguments>
+    where
+        f64: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+        i64: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+        String: for<'t> sqlx::Encode<'t, DB> + sqlx::Type<DB>,
+    {
+        let mut q = sqlx::query(sqlx::AssertSqlSafe(self.text.clone()));
+        for a in &self.args {
+            q = match a {
+                Arg::F64(v) => q.bind(*v),
+                Arg::I64(v) => q.bind(*v),
+                Arg::Text(v) => q.bind(v.clone()),
+            };
+        }
+        q
+    }
+}
+
+/// The statement of one page of `query`: two steps in one statement. The inner query filters, sorts
+/// and cuts the page carrying only keys and the computed figures (so the sort over thousands of
+/// matches stays small), the outer one fetches the page's rows.
+fn page_sql(dialect: Dialect, query: &PartQuery) -> Sql {
+    let plan = Plan::of(query);
+    let drift_l0 = match dialect {
+        Dialect::Sqlite => {
+            "(SELECT json_extract(d.value, '$.percent') FROM json_each(lf.drift_json, '$.parameters') d \
+             WHERE json_extract(d.value, '$.name') = 'l0_h')"
+        }
+        Dialect::Postgres => {
+            "(SELECT (d ->> 'percent')::float8 \
+             FROM json_array_elements(lf.drift_json::json -> 'parameters') d \
+             WHERE d ->> 'name' = 'l0_h' LIMIT 1)"
+        }
+    };
+    let mut q = Sql::new(
+        dialect,
+        "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
+         CASE WHEN lf.quality = 'poor' AND lf.verdict_json IS NOT NULL \
+         AND lf.verdict_json <> '[]' THEN 'withheld' ELSE lf.verdict END AS latest_verdict, \
+         lf.drift_max_sigma AS drift_max_sigma, ",
+    );
+    q.push(drift_l0);
+    q.push(
+        " AS drift_l0_percent, \
+         p.l_tolerance_percent AS l_tolerance_percent, \
+         f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, f.core_corner_hz, \
+         k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
+         SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
+    );
+    plan.push_computed_columns(&mut q);
+    push_source(&mut q, query.source);
+    plan.push_grid_joins(&mut q);
+    q.push(" WHERE 1 = 1");
+    if let Some(text) = &query.q {
+        push_text_filter(&mut q, text);
+    }
+    push_srf_filter(&mut q, query.srf_min_hz, query.srf_max_hz);
+    push_series_resonance_filter(
+        &mut q,
+        query.series_resonance_min_hz,
+        query.series_resonance_max_hz,
+    );
+    push_figure_bounds(&mut q, query);
+    plan.push_l_filter(&mut q);
+    plan.push_z_filter(&mut q);
+    if let Some(c) = &query.cursor {
+        plan.push_after_cursor(&mut q, c);
+    }
+    plan.push_inner_order(&mut q);
+    q.push(" LIMIT ").push_bind(query.limit + 1);
+    q.push(
+        ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
+         LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
+    );
+    plan.push_outer_order(&mut q);
+    q
+}
+
+/// The page's items and cursor from the rows of [`page_sql`] (of either backend); the items' series
+/// resonances come from [`resonances_sql`].
+fn page_of<R>(rows: &[R], limit: i64) -> StoreResult<(Vec<PartSummary>, Option<String>)>
+where
+    R: Row,
+    for<'r> &'r str: sqlx::ColumnIndex<R>,
+    for<'r> f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    for<'r> i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    for<'r> String: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
+    let mut items = Vec::with_capacity(rows.len());
+    let mut sort_values = Vec::with_capacity(rows.len());
+    for row in rows {
+        sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
+        items.push(summary_of(row)?);
+    }
+    let next_cursor = cut_page(&mut items, &sort_values, limit)?;
+    Ok((items, next_cursor))
+}
+
+/// The series resonances of the items' answering fits, lowest first (none when there are no items).
+fn resonances_sql(dialect: Dialect, items: &[PartSummary]) -> Option<Sql> {
+    if items.is_empty() {
+        return None;
+    }
+    let mut r = Sql::new(
+        dialect,
+        "SELECT fit_id, frequency_hz FROM fit_resonances WHERE kind = 'series' AND fit_id IN (",
+    );
+    for (i, it) in items.iter().enumerate() {
+        if i > 0 {
+            r.push(", ");
+        }
+        match it.answered_from_fit_id {
+            Some(id) => r.push_bind(id),
+            None => r.push("NULL"),
+        };
+    }
+    r.push(") ORDER BY frequency_hz");
+    Some(r)
+}
+
+/// Fills every item's series resonances (ascending) from `(fit_id, frequency_hz)` rows.
+fn attach_series_resonances(items: &mut [PartSummary], res: &[(i64, f64)]) {
+    for it in items.iter_mut() {
+        it.series_resonances_hz = res
+            .iter()
+            .filter(|(id, _)| Some(*id) == it.answered_from_fit_id)
+            .map(|(_, f)| *f)
+            .collect();
+    }
+}
+
+/// `(fit_id, frequency_hz)` rows of [`resonances_sql`] (of either backend).
+fn pairs<R>(rows: &[R]) -> Result<Vec<(i64, f64)>, sqlx::Error>
+where
+    R: Row,
+    usize: sqlx::ColumnIndex<R>,
+    for<'r> f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    for<'r> i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
+    rows.iter()
+        .map(|row| Ok((row.try_get(0)?, row.try_get(1)?)))
+        .collect()
+}
+
+fn page(items: Vec<PartSummary>, next_cursor: Option<String>, query: &PartQuery) -> PartPage {
+    PartPage {
+        items,
+        next_cursor,
+        answer_from: query.source.as_str().to_string(),
+    }
+}
+
 impl Store {
     pub async fn query_parts(&self, query: &PartQuery) -> StoreResult<PartPage> {
         query.validate().map_err(StoreError::Invalid)?;
-        let plan = Plan::of(query);
-        // Two steps in one statement: the inner query filters, sorts and cuts the page carrying only
-        // keys and the computed figures (so the sort over thousands of matches stays small), the outer
-        // one fetches the page's rows.
-        let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-            "SELECT p.part_number, p.description, p.baseline_fit_id, p.latest_fit_id, \
-             CASE WHEN lf.quality = 'poor' AND lf.verdict_json IS NOT NULL \
-             AND lf.verdict_json <> '[]' THEN 'withheld' ELSE lf.verdict END AS latest_verdict, \
-             lf.drift_max_sigma AS drift_max_sigma, \
-             (SELECT json_extract(d.value, '$.percent') FROM json_each(lf.drift_json, '$.parameters') d \
-              WHERE json_extract(d.value, '$.name') = 'l0_h') AS drift_l0_percent, \
-             p.l_tolerance_percent AS l_tolerance_percent, \
-             f.fit_id AS answered, f.srf_hz, f.l0_h, f.rdc_ohm, f.core_corner_hz, \
-             k.l_eff_h, k.z_min_ohm, k.sort_value FROM (\
-             SELECT p.part_id AS part_id, f.fit_id AS fit_id, p.part_number AS part_number",
-        );
-        plan.push_computed_columns(&mut q);
-        push_source(&mut q, query.source);
-        plan.push_grid_joins(&mut q);
-        q.push(" WHERE 1 = 1");
-        if let Some(text) = &query.q {
-            push_text_filter(&mut q, text);
+        let rows = page_sql(Dialect::Sqlite, query)
+            .query()
+            .fetch_all(&self.reader)
+            .await?;
+        let (mut items, next_cursor) = page_of(&rows, query.limit)?;
+        if let Some(r) = resonances_sql(Dialect::Sqlite, &items) {
+            let res = pairs(&r.query().fetch_all(&self.reader).await?)?;
+            attach_series_resonances(&mut items, &res);
         }
-        push_srf_filter(&mut q, query.srf_min_hz, query.srf_max_hz);
-        push_series_resonance_filter(
-            &mut q,
-            query.series_resonance_min_hz,
-            query.series_resonance_max_hz,
-        );
-        push_figure_bounds(&mut q, query);
-        plan.push_l_filter(&mut q);
-        plan.push_z_filter(&mut q);
-        if let Some(c) = &query.cursor {
-            plan.push_after_cursor(&mut q, c);
-        }
-        plan.push_inner_order(&mut q);
-        q.push(" LIMIT ").push_bind(query.limit + 1);
-        q.push(
-            ") AS k JOIN parts p ON p.part_id = k.part_id JOIN fits f ON f.fit_id = k.fit_id \
-             LEFT JOIN fits lf ON lf.fit_id = p.latest_fit_id",
-        );
-        plan.push_outer_order(&mut q);
-
-        let rows = q.build().fetch_all(&self.reader).await?;
-        let mut items = Vec::with_capacity(rows.len());
-        let mut sort_values = Vec::with_capacity(rows.len());
-        for row in &rows {
-            sort_values.push(row.try_get::<Option<f64>, _>("sort_value")?);
-            items.push(summary_of(row)?);
-        }
-        let next_cursor = cut_page(&mut items, &sort_values, query.limit)?;
-        self.attach_series_resonances(&mut items).await?;
-        Ok(PartPage {
-            items,
-            next_cursor,
-            answer_from: query.source.as_str().to_string(),
-        })
+        Ok(page(items, next_cursor, query))
     }
+}
 
-    /// Fills every item's series resonances (ascending) from its answering fit.
-    async fn attach_series_resonances(&self, items: &mut [PartSummary]) -> StoreResult<()> {
-        if items.is_empty() {
-            return Ok(());
+impl PgStore {
+    /// [`Store::query_parts`] on PostgreSQL: the same statement in its dialect, read in one snapshot
+    /// (the page and its resonances agree).
+    pub async fn query_parts(&self, query: &PartQuery) -> StoreResult<PartPage> {
+        query.validate().map_err(StoreError::Invalid)?;
+        let mut tx = super::pg::parts::snapshot(&self.pool).await?;
+        let rows = page_sql(Dialect::Postgres, query)
+            .query()
+            .fetch_all(&mut *tx)
+            .await?;
+        let (mut items, next_cursor) = page_of(&rows, query.limit)?;
+        if let Some(r) = resonances_sql(Dialect::Postgres, &items) {
+            let res = pairs(&r.query().fetch_all(&mut *tx).await?)?;
+            attach_series_resonances(&mut items, &res);
         }
-        let mut r: QueryBuilder<Sqlite> = QueryBuilder::new(
-            "SELECT fit_id, frequency_hz FROM fit_resonances WHERE kind = 'series' AND fit_id IN (",
-        );
-        let mut sep = r.separated(", ");
-        for it in items.iter() {
-            sep.push_bind(it.answered_from_fit_id);
-        }
-        r.push(") ORDER BY frequency_hz");
-        let res: Vec<(i64, f64)> = r.build_query_as().fetch_all(&self.reader).await?;
-        for it in items.iter_mut() {
-            it.series_resonances_hz = res
-                .iter()
-                .filter(|(id, _)| Some(*id) == it.answered_from_fit_id)
-                .map(|(_, f)| *f)
-                .collect();
-        }
-        Ok(())
+        tx.commit().await?;
+        Ok(page(items, next_cursor, query))
     }
 }
 
@@ -339,7 +516,7 @@ impl Plan<'_> {
     }
 
     /// The inner query's computed columns: L at `l_at_hz`, the lowest |Z| over the band, the sort value.
-    fn push_computed_columns(&self, q: &mut QueryBuilder<Sqlite>) {
+    fn push_computed_columns(&self, q: &mut Sql) {
         match self.l_bracket {
             Some((_, w)) if w > 0.0 => {
                 q.push(", (g1.l_eff_h * (1 - ")
@@ -372,7 +549,7 @@ impl Plan<'_> {
     }
 
     /// The grid rows L at `l_at_hz` is interpolated between.
-    fn push_grid_joins(&self, q: &mut QueryBuilder<Sqlite>) {
+    fn push_grid_joins(&self, q: &mut Sql) {
         if let Some((k, w)) = self.l_bracket {
             q.push(" JOIN fit_grid g1 ON g1.fit_id = f.fit_id AND g1.k = ")
                 .push_bind(k);
@@ -384,7 +561,7 @@ impl Plan<'_> {
     }
 
     /// L at `l_at_hz` between its bounds (only with `l_at_hz`).
-    fn push_l_filter(&self, q: &mut QueryBuilder<Sqlite>) {
+    fn push_l_filter(&self, q: &mut Sql) {
         let Some((_, w)) = self.l_bracket else {
             return;
         };
@@ -402,7 +579,7 @@ impl Plan<'_> {
     }
 
     /// The |Z| band inside the fit's sweep, and its lowest |Z| at least `z_min_ohm`.
-    fn push_z_filter(&self, q: &mut QueryBuilder<Sqlite>) {
+    fn push_z_filter(&self, q: &mut Sql) {
         let Some((lo, hi)) = self.z_band else {
             return;
         };
@@ -419,60 +596,59 @@ impl Plan<'_> {
     }
 
     /// Keyset pagination: only rows after the cursor in the query's order.
-    fn push_after_cursor(&self, q: &mut QueryBuilder<Sqlite>, c: &Cursor) {
+    fn push_after_cursor(&self, q: &mut Sql, c: &Cursor) {
         match (&self.sort_expr, c.v) {
             (Some(e), Some(v)) => {
                 let cmp = if self.query.sort.descending { "<" } else { ">" };
+                let pn = q.part_number("p.part_number");
                 q.push(format!(" AND ({e} {cmp} "))
                     .push_bind(v)
                     .push(format!(" OR ({e} = "))
                     .push_bind(v)
-                    .push(" AND p.part_number > ")
+                    .push(format!(" AND {pn} > "))
                     .push_bind(c.p.as_str().to_owned())
                     .push("))");
             }
             _ => {
-                q.push(" AND p.part_number > ")
+                let pn = q.part_number("p.part_number");
+                q.push(format!(" AND {pn} > "))
                     .push_bind(c.p.as_str().to_owned());
             }
         }
     }
 
-    fn push_inner_order(&self, q: &mut QueryBuilder<Sqlite>) {
-        match &self.sort_expr {
+    fn push_inner_order(&self, q: &mut Sql) {
+        let pn = q.part_number("p.part_number");
+        self.push_order(q, self.sort_expr.as_deref(), &pn);
+    }
+
+    fn push_outer_order(&self, q: &mut Sql) {
+        let pn = q.part_number("k.part_number");
+        let sort = self.sort_expr.as_ref().map(|_| "k.sort_value");
+        self.push_order(q, sort, &pn);
+    }
+
+    /// `ORDER BY` the sort value in the query's direction (when sorting by a figure), then the part
+    /// number ascending.
+    fn push_order(&self, q: &mut Sql, sort: Option<&str>, part_number: &str) {
+        match sort {
             Some(e) => {
                 let dir = if self.query.sort.descending {
                     "DESC"
                 } else {
                     "ASC"
                 };
-                q.push(format!(" ORDER BY {e} {dir}, p.part_number ASC"));
+                q.push(format!(" ORDER BY {e} {dir}, {part_number} ASC"));
             }
             None => {
-                q.push(" ORDER BY p.part_number ASC");
-            }
-        }
-    }
-
-    fn push_outer_order(&self, q: &mut QueryBuilder<Sqlite>) {
-        match &self.sort_expr {
-            Some(_) => {
-                let dir = if self.query.sort.descending {
-                    "DESC"
-                } else {
-                    "ASC"
-                };
-                q.push(format!(" ORDER BY k.sort_value {dir}, k.part_number ASC"));
-            }
-            None => {
-                q.push(" ORDER BY k.part_number ASC");
+                q.push(format!(" ORDER BY {part_number} ASC"));
             }
         }
     }
 }
 
 /// Which fit of each part answers: the approved baseline, the newest, or the newest that passes.
-fn push_source(q: &mut QueryBuilder<Sqlite>, source: AnswerSource) {
+fn push_source(q: &mut Sql, source: AnswerSource) {
     q.push(match source {
         AnswerSource::Approved => " FROM parts p JOIN fits f ON f.fit_id = p.baseline_fit_id",
         AnswerSource::Latest => " FROM parts p JOIN fits f ON f.fit_id = p.latest_fit_id",
@@ -485,22 +661,27 @@ fn push_source(q: &mut QueryBuilder<Sqlite>, source: AnswerSource) {
     });
 }
 
-/// The text in the part number or the description (LIKE, with its wildcards escaped).
-fn push_text_filter(q: &mut QueryBuilder<Sqlite>, text: &str) {
+/// The text in the part number or the description (LIKE, with its wildcards escaped). SQLite's LIKE
+/// ignores the case of ASCII letters; PostgreSQL's ILIKE does so too (and of other letters as well).
+fn push_text_filter(q: &mut Sql, text: &str) {
+    let like_op = match q.dialect {
+        Dialect::Sqlite => "LIKE",
+        Dialect::Postgres => "ILIKE",
+    };
     let like = format!(
         "%{}%",
         text.replace('\\', "\\\\")
             .replace('%', "\\%")
             .replace('_', "\\_")
     );
-    q.push(" AND (p.part_number LIKE ")
+    q.push(format!(" AND (p.part_number {like_op} "))
         .push_bind(like.clone())
-        .push(" ESCAPE '\\' OR p.description LIKE ")
+        .push(format!(" ESCAPE '\\' OR p.description {like_op} "))
         .push_bind(like)
         .push(" ESCAPE '\\')");
 }
 
-fn push_srf_filter(q: &mut QueryBuilder<Sqlite>, min_hz: Option<f64>, max_hz: Option<f64>) {
+fn push_srf_filter(q: &mut Sql, min_hz: Option<f64>, max_hz: Option<f64>) {
     match (min_hz, max_hz) {
         (Some(lo), Some(hi)) => {
             q.push(" AND f.srf_hz BETWEEN ")
@@ -524,11 +705,7 @@ fn push_srf_filter(q: &mut QueryBuilder<Sqlite>, min_hz: Option<f64>, max_hz: Op
 }
 
 /// A series resonance inside the band (either end may be open).
-fn push_series_resonance_filter(
-    q: &mut QueryBuilder<Sqlite>,
-    min_hz: Option<f64>,
-    max_hz: Option<f64>,
-) {
+fn push_series_resonance_filter(q: &mut Sql, min_hz: Option<f64>, max_hz: Option<f64>) {
     if min_hz.is_none() && max_hz.is_none() {
         return;
     }
@@ -543,7 +720,7 @@ fn push_series_resonance_filter(
 }
 
 /// DCR at most, and the core corner between its bounds.
-fn push_figure_bounds(q: &mut QueryBuilder<Sqlite>, query: &PartQuery) {
+fn push_figure_bounds(q: &mut Sql, query: &PartQuery) {
     if let Some(max) = query.dcr_max_ohm {
         q.push(" AND f.rdc_ohm <= ").push_bind(max);
     }
@@ -557,7 +734,14 @@ fn push_figure_bounds(q: &mut QueryBuilder<Sqlite>, query: &PartQuery) {
 }
 
 /// One row of the outer query as a summary (its series resonances come later).
-fn summary_of(row: &sqlx::sqlite::SqliteRow) -> Result<PartSummary, sqlx::Error> {
+fn summary_of<R>(row: &R) -> Result<PartSummary, sqlx::Error>
+where
+    R: Row,
+    for<'r> &'r str: sqlx::ColumnIndex<R>,
+    for<'r> f64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    for<'r> i64: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+    for<'r> String: sqlx::Decode<'r, R::Database> + sqlx::Type<R::Database>,
+{
     Ok(PartSummary {
         part_number: row.try_get("part_number")?,
         description: row.try_get("description")?,
@@ -609,14 +793,22 @@ fn cut_page(
 /// `registry::grid`): the stored floor of every grid interval touching the band whose lowest point lies
 /// inside the band, the grid points inside the band, and |Z| at the band's ends interpolated linearly
 /// (in log f) between their neighbouring grid points. Caller checks `grid::cover_range(lo, hi)`.
-fn push_z_min(q: &mut QueryBuilder<Sqlite>, lo: f64, hi: f64) {
+fn push_z_min(q: &mut Sql, lo: f64, hi: f64) {
     const NONE: f64 = 1e308;
     let (kl, kh) = grid::cover_range(lo, hi).unwrap_or((0, -1));
-    q.push("NULLIF(MIN(COALESCE((SELECT MIN(CASE WHEN g.z_floor_at_hz BETWEEN ")
-        .push_bind(lo)
-        .push(" AND ")
-        .push_bind(hi)
-        .push(" THEN g.z_mag_floor_ohm");
+    // The lowest of three values: SQLite's MIN with several arguments, PostgreSQL's LEAST (no
+    // argument is NULL, so they agree).
+    let least = match q.dialect {
+        Dialect::Sqlite => "MIN",
+        Dialect::Postgres => "LEAST",
+    };
+    q.push(format!(
+        "NULLIF({least}(COALESCE((SELECT MIN(CASE WHEN g.z_floor_at_hz BETWEEN "
+    ))
+    .push_bind(lo)
+    .push(" AND ")
+    .push_bind(hi)
+    .push(" THEN g.z_mag_floor_ohm");
     if let Some((a, b)) = grid::index_range(lo, hi) {
         q.push(" WHEN g.k BETWEEN ")
             .push_bind(a)

@@ -8,8 +8,9 @@
 //! SQL are shared with the SQLite modules. tests/store/queue.rs tests the queue against a real
 //! server and tests/store/parity.rs runs the same operations on both stores and compares the answers.
 //!
-//! Not on PostgreSQL yet: the part queries ([`crate::store::query`]), the integrity check and
-//! /readyz's chain check, readiness. The service does not open PostgreSQL yet.
+//! The part queries ([`crate::store::query`]) build one statement text for either dialect; the
+//! integrity check, /readyz's chain check and readiness are in [`integrity`], sharing the SQLite
+//! store's checks.
 //!
 //! Every transaction takes its locks in one order: job rows, the part's row, fit rows, the queue-bound
 //! lock ([`sweeps::QUEUE_BOUND_LOCK`]), the audit lock ([`audit::AUDIT_LOCK`], always last).
@@ -20,6 +21,7 @@
 
 pub mod audit;
 pub mod fits;
+pub mod integrity;
 pub mod parts;
 pub mod queue;
 pub mod results;
@@ -75,6 +77,8 @@ pub async fn migrate(pool: &PgPool) -> anyhow::Result<()> {
 pub struct PgStore {
     pub(crate) pool: PgPool,
     pub(crate) queue: queue::PgQueue,
+    /// What /readyz's audit check has verified: each check continues from there.
+    pub(crate) chain_checked: crate::store::integrity::ChainWatch,
 }
 
 impl PgStore {
@@ -83,6 +87,7 @@ impl PgStore {
         PgStore {
             queue: queue::PgQueue::new(pool.clone()),
             pool,
+            chain_checked: Default::default(),
         }
     }
 
@@ -90,7 +95,14 @@ impl PgStore {
     pub async fn open(url: &str, max_connections: u32) -> anyhow::Result<PgStore> {
         let pool = connect(url, max_connections).await?;
         migrate(&pool).await?;
-        Ok(PgStore::new(pool))
+        let store = PgStore::new(pool);
+        // The whole chain is checked at start, so a trail changed while no replica ran shows.
+        let checked = store
+            .verify_audit(0, None)
+            .await
+            .context("cannot read the audit trail")?;
+        store.chain_checked.start(checked).await;
+        Ok(store)
     }
 
     pub fn pool(&self) -> &PgPool {

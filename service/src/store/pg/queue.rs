@@ -71,8 +71,11 @@ pub enum Outcome {
         kind: FailureKind,
         error: String,
     },
-    /// Stopped on request.
-    Cancelled,
+    /// Stopped on request; `reason` is stored as the fit's error and the audit row's reason (the
+    /// worker's words, as the SQLite queue stores them), or nothing.
+    Cancelled {
+        reason: Option<String>,
+    },
 }
 
 /// What [`PgQueue::cancel`] did.
@@ -154,10 +157,10 @@ pub async fn complete_in(
                 None,
                 None,
             ),
-            Outcome::Cancelled => (
+            Outcome::Cancelled { reason } => (
                 "cancelled",
                 Some(FailureKind::Cancelled.as_str()),
-                None,
+                reason.as_deref(),
                 None,
                 None,
             ),
