@@ -534,9 +534,14 @@ fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
         out.contains(&format!("{versions} migrations applied")),
         "{out}"
     );
-    // Again: nothing left to apply, the same answer.
-    let (code, again, _) = run(&["migrate", "--database", db.to_str().unwrap()]);
-    assert_eq!((code, again.as_str()), (0, out.as_str()));
+    // Again, named as a `sqlite:` URL: nothing left to apply, the same versions.
+    let url = format!("sqlite:{}", db.display());
+    let (code, again, _) = run(&["migrate", "--database", &url]);
+    assert_eq!(code, 0);
+    assert_eq!(
+        again.split_once(": ").unwrap().1,
+        out.split_once(": ").unwrap().1
+    );
 
     // PostgreSQL, on a database of the test server (the same versions: the two migration folders are
     // held to each other by a unit test); a second run applies nothing and says so the same way.
@@ -546,7 +551,7 @@ fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
         let (code, out, err) = run(&["migrate", "--database", &pg.url]);
         assert_eq!(code, 0, "{err}");
         assert!(
-            out.starts_with("PostgreSQL: ")
+            out.starts_with(&format!("{}: ", pg.url))
                 && out.contains(&format!("{versions} migrations applied")),
             "{out}"
         );

@@ -2,6 +2,7 @@
 //! (deploy/compose.yaml's `migrate` service, deploy/henrybook-postgres.yaml's Job).
 
 use crate::settings::DatabaseArgs;
+use crate::store::backend::{Location, shown};
 use crate::store::{Store, pg};
 use anyhow::Context;
 use std::io::Write;
@@ -9,28 +10,29 @@ use std::io::Write;
 /// Applies every migration to the database `database` names (a SQLite file, created when missing, or
 /// a `postgres://` URL) and prints the versions the database then has.
 pub async fn run(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result<()> {
-    let target = database.path.to_string_lossy().into_owned();
     let sql = "SELECT version FROM _sqlx_migrations WHERE success ORDER BY version";
-    let (versions, expected, place): (Vec<i64>, Vec<i64>, String) = if pg::is_postgres_url(&target)
-    {
-        let pool = pg::connect(&target, 2).await?;
-        pg::migrate(&pool).await?;
-        let versions = sqlx::query_scalar(sql)
-            .fetch_all(&pool)
-            .await
-            .context("cannot read the applied migrations")?;
-        pool.close().await;
-        let expected = pg::MIGRATOR.iter().map(|m| m.version).collect();
-        (versions, expected, "PostgreSQL".to_string())
-    } else {
-        let store = Store::open(&database.path).await?;
-        let versions = sqlx::query_scalar(sql)
-            .fetch_all(&store.reader)
-            .await
-            .context("cannot read the applied migrations")?;
-        store.close().await;
-        let expected = crate::store::MIGRATOR.iter().map(|m| m.version).collect();
-        (versions, expected, database.path.display().to_string())
+    let place = shown(&database.path);
+    let (versions, expected): (Vec<i64>, Vec<i64>) = match Location::of(&database.path) {
+        Location::Postgres(url) => {
+            let pool = pg::connect(url, 2).await?;
+            pg::migrate(&pool).await?;
+            let versions = sqlx::query_scalar(sql)
+                .fetch_all(&pool)
+                .await
+                .context("cannot read the applied migrations")?;
+            pool.close().await;
+            (versions, pg::MIGRATOR.iter().map(|m| m.version).collect())
+        }
+        Location::Sqlite(path) => {
+            let store = Store::open(path).await?;
+            let versions = sqlx::query_scalar(sql)
+                .fetch_all(&store.reader)
+                .await
+                .context("cannot read the applied migrations")?;
+            store.close().await;
+            let expected = crate::store::MIGRATOR.iter().map(|m| m.version).collect();
+            (versions, expected)
+        }
     };
     let missing: Vec<&i64> = expected.iter().filter(|v| !versions.contains(v)).collect();
     anyhow::ensure!(
