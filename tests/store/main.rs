@@ -4,3 +4,4 @@
 
 mod parity;
 mod queue;
+mod transient;

@@ -170,8 +170,8 @@ fn problem_answers(api: &mut utoipa::openapi::OpenApi) {
             }
             add(
                 "503",
-                "the service is at a bound (connections, queue, upload bytes) or draining; retry after \
-                 the Retry-After header",
+                "the service is at a bound (connections, queue, upload bytes), draining, or its \
+                 database is out of reach for the moment; retry after the Retry-After header",
             );
         }
     }

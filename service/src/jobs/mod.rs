@@ -512,7 +512,28 @@ impl RunningJob {
         })
         .await;
         match assessed {
-            Ok(Ok((report, a))) => self.store.complete_succeeded(claim, *report, a).await,
+            Ok(Ok((report, a))) => {
+                // A result costs a whole fit: a write the database could not take for the moment
+                // (a lost connection, a restart) is tried again before the claim is given up on.
+                // Each try writes only while the claim still holds, so a try whose commit did land
+                // makes the next answer "taken over" rather than write twice.
+                let mut delay = Duration::from_millis(250);
+                loop {
+                    match self
+                        .store
+                        .complete_succeeded(claim, (*report).clone(), a.clone())
+                        .await
+                    {
+                        Err(e) if e.is_transient() && delay <= WRITE_RETRY_MAX_DELAY => {
+                            tracing::warn!(error = %e, retry_in_s = delay.as_secs_f64(),
+                                "the database did not take the fit's result; trying again");
+                            tokio::time::sleep(delay).await;
+                            delay *= 2;
+                        }
+                        written => break written,
+                    }
+                }
+            }
             Ok(Err(e)) => Err(e.into()),
             Err(e) => {
                 tracing::error!(error = %e, "the assessment of a succeeded fit panicked");
@@ -523,6 +544,11 @@ impl RunningJob {
         }
     }
 }
+
+/// The longest wait between tries of a result write the database could not take for the moment
+/// (tries after 0.25, 0.5, 1 and 2 s: under 4 s in all; a claim whose lease ran out meanwhile and
+/// was taken over writes nothing).
+const WRITE_RETRY_MAX_DELAY: Duration = Duration::from_secs(2);
 
 /// Who the audit trail names for work the service queues by itself.
 pub const AUTOMATIC_ACTOR: &str = "henrybook (automatic)";

@@ -72,6 +72,9 @@ impl OpsError {
     }
 }
 
+/// Seconds a client is asked to wait when the database is out of reach for the moment.
+pub const DATABASE_RETRY_AFTER_S: u64 = 2;
+
 impl From<StoreError> for OpsError {
     fn from(e: StoreError) -> OpsError {
         match e {
@@ -87,6 +90,16 @@ impl From<StoreError> for OpsError {
                 format!("{e}; try again later"),
                 super::backpressure::QUEUE_RETRY_AFTER_S,
             ),
+            e if e.is_transient() => {
+                tracing::warn!(error = %e, "the database is out of reach for the moment");
+                OpsError::busy(
+                    ErrorKind::Unavailable,
+                    "the database is out of reach for the moment (a lost connection or a restart); \
+                     try again shortly. A change sent just before may already have been applied: \
+                     an upload sent again is answered with the same fit",
+                    DATABASE_RETRY_AFTER_S,
+                )
+            }
             other => OpsError::internal(other),
         }
     }

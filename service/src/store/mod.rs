@@ -53,6 +53,39 @@ pub enum StoreError {
 
 pub type StoreResult<T> = Result<T, StoreError>;
 
+impl StoreError {
+    /// Whether the database was out of reach for the moment rather than refusing the request: a
+    /// connection lost or refused, a pool with no connection free in time, a server shutting down
+    /// or starting (SQLSTATE class 08, 57P01–57P03), a transaction chosen as the victim of a
+    /// serialisation conflict or deadlock (40001, 40P01), SQLite busy or locked past its timeout.
+    /// The same request may succeed when tried again.
+    pub fn is_transient(&self) -> bool {
+        let StoreError::Database(e) = self else {
+            return false;
+        };
+        match e {
+            sqlx::Error::Io(_) | sqlx::Error::PoolTimedOut | sqlx::Error::PoolClosed => true,
+            sqlx::Error::Database(db) => {
+                let Some(code) = db.code() else {
+                    return false;
+                };
+                if db
+                    .try_downcast_ref::<sqlx::postgres::PgDatabaseError>()
+                    .is_some()
+                {
+                    code.starts_with("08")
+                        || matches!(&*code, "57P01" | "57P02" | "57P03" | "40001" | "40P01")
+                } else {
+                    // SQLite's extended result codes: the primary code is the low byte
+                    // (SQLITE_BUSY = 5, SQLITE_LOCKED = 6).
+                    code.parse::<u32>().is_ok_and(|c| matches!(c & 0xff, 5 | 6))
+                }
+            }
+            _ => false,
+        }
+    }
+}
+
 #[derive(Clone, Debug)]
 pub struct Store {
     /// One connection: every write transaction is serialised here.
@@ -222,6 +255,25 @@ mod tests {
     async fn a_new_database_is_migrated_and_ready() {
         let (store, _dir) = testing::temp_store().await;
         assert_eq!(store.readiness().await, (true, true));
+    }
+
+    #[test]
+    fn a_lost_connection_or_a_busy_pool_is_transient_and_a_refusal_is_not() {
+        let io = std::io::Error::new(std::io::ErrorKind::ConnectionReset, "reset by peer");
+        assert!(StoreError::Database(sqlx::Error::Io(io)).is_transient());
+        assert!(StoreError::Database(sqlx::Error::PoolTimedOut).is_transient());
+        assert!(!StoreError::Database(sqlx::Error::RowNotFound).is_transient());
+        assert!(!StoreError::Conflict("approved already".into()).is_transient());
+    }
+
+    #[tokio::test]
+    async fn a_constraint_refusal_on_sqlite_is_not_transient() {
+        let (store, _dir) = testing::temp_store().await;
+        let e = sqlx::query("INSERT INTO audit (audit_id) VALUES (NULL), (NULL)")
+            .execute(&store.writer)
+            .await
+            .unwrap_err();
+        assert!(!StoreError::Database(e).is_transient());
     }
 
     #[test]
