@@ -786,3 +786,39 @@ async fn writes_racing_a_takeover_or_a_cancel_wait_for_it_and_then_write_nothing
         ("cancelled".to_string(), None, Some("cancelled".to_string()))
     );
 }
+
+#[tokio::test]
+async fn the_status_counts_fold_into_one_row_per_status_and_keep_their_sums() {
+    let db = TestDb::new().await;
+    let store = henrybook::store::pg::PgStore::new(db.pool.clone());
+    let ids = queue_fits(&db.pool, 30).await;
+    let q = PgQueue::new(db.pool.clone());
+    let claims = q.claim_jobs(Duration::from_secs(60), 3, 20).await.unwrap();
+    for c in &claims[..10] {
+        assert!(q.mark_started(c).await.unwrap());
+    }
+    let outcomes: Vec<(Claim, Outcome)> =
+        claims[..10].iter().map(|c| (*c, succeeded("{}"))).collect();
+    q.complete(&outcomes).await.unwrap();
+    let before = store.queue_counts().await.unwrap();
+    let rows = |pool: PgPool| async move {
+        sqlx::query_scalar::<_, i64>("SELECT COUNT(*) FROM fit_status_counts")
+            .fetch_one(&pool)
+            .await
+            .unwrap()
+    };
+    // One delta per insert and two per status change: 30 + 2·10 + 2·10.
+    assert_eq!(rows(db.pool.clone()).await, 70);
+    assert_eq!(store.fold_status_counts().await.unwrap(), 70);
+    assert_eq!(
+        rows(db.pool.clone()).await,
+        2,
+        "queued and succeeded remain"
+    );
+    assert_eq!(store.queue_counts().await.unwrap(), before);
+    assert_eq!((before.queued, before.succeeded), (20, 10));
+    assert_eq!(ids.len(), 30);
+    // Folding again changes nothing.
+    store.fold_status_counts().await.unwrap();
+    assert_eq!(store.queue_counts().await.unwrap(), before);
+}

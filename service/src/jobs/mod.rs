@@ -162,9 +162,16 @@ impl Pool {
                 None
             }
         };
+        let mut maintained = Instant::now();
         loop {
             if *stop.borrow() {
                 break;
+            }
+            if maintained.elapsed() >= MAINTENANCE_INTERVAL {
+                maintained = Instant::now();
+                if let Err(e) = self.store.maintain().await {
+                    tracing::warn!(error = %e, "the store's housekeeping failed; it runs again later");
+                }
             }
             let first = tokio::select! {
                 p = permits.clone().acquire_owned() => p.expect("semaphore is never closed"),
@@ -544,6 +551,9 @@ impl RunningJob {
         }
     }
 }
+
+/// How often the pool runs the store's housekeeping ([`crate::store::backend::Backend::maintain`]).
+const MAINTENANCE_INTERVAL: Duration = Duration::from_secs(1);
 
 /// The longest wait between tries of a result write the database could not take for the moment
 /// (tries after 0.25, 0.5, 1 and 2 s: under 4 s in all; a claim whose lease ran out meanwhile and

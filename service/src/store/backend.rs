@@ -322,6 +322,15 @@ impl Backend {
         }
     }
 
+    /// Housekeeping the worker pool runs now and then: on PostgreSQL the status-count deltas are
+    /// folded (see [`PgStore::fold_status_counts`]); SQLite keeps its counts in place and has none.
+    pub async fn maintain(&self) -> StoreResult<()> {
+        match self {
+            Backend::Sqlite(_) => Ok(()),
+            Backend::Postgres(p) => p.fold_status_counts().await.map(|_| ()),
+        }
+    }
+
     /// On PostgreSQL, a listener woken when a job is queued on any replica (`None` on SQLite, whose
     /// only writer is this process and wakes its pool itself).
     pub async fn job_waker(&self) -> StoreResult<Option<pg::queue::JobWaker>> {

@@ -122,6 +122,19 @@ impl PgStore {
         Ok(job_input_from_row(&row)?)
     }
 
+    /// Folds the status-count deltas into one row per status (`fit_status_counts_fold`, 0004), so the
+    /// sums the counts and the queue bounds read stay short; safe on any replica at any time (a
+    /// delta committed meanwhile waits for the next fold). How many rows it folded.
+    pub async fn fold_status_counts(&self) -> StoreResult<i64> {
+        let before: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM fit_status_counts")
+            .fetch_one(&self.pool)
+            .await?;
+        sqlx::query("SELECT fit_status_counts_fold()")
+            .execute(&self.pool)
+            .await?;
+        Ok(before)
+    }
+
     /// Fits per status: the sums of the deltas the `fit_status_counts` triggers append (0004).
     pub async fn queue_counts(&self) -> StoreResult<QueueCounts> {
         let rows: Vec<(String, i64)> = sqlx::query_as(
