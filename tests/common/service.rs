@@ -214,21 +214,9 @@ impl TestApp {
 
     /// Polls a fit until it leaves queued/running (at most `timeout`).
     pub async fn wait_for_fit(&self, fit_id: i64, timeout: Duration) -> Value {
-        let deadline = tokio::time::Instant::now() + timeout;
-        loop {
-            let fit = self
-                .get_json(&format!("/api/v1/fits/{fit_id}"), &self.reader)
-                .await;
-            let status = fit["status"].as_str().unwrap_or_default().to_string();
-            if status != "queued" && status != "running" {
-                return fit;
-            }
-            assert!(
-                tokio::time::Instant::now() < deadline,
-                "fit {fit_id} still {status} after {timeout:?}"
-            );
-            tokio::time::sleep(Duration::from_millis(25)).await;
-        }
+        let every = Duration::from_millis(25);
+        let get = |path: String| async move { self.get_json(&path, &self.reader).await };
+        poll_fit(get, fit_id, timeout, every).await
     }
 }
 
@@ -470,21 +458,9 @@ impl ServerProcess {
 
     /// Polls a fit until it leaves queued/running (at most `timeout`).
     pub async fn wait_for_fit(&self, fit_id: i64, token: &str, timeout: Duration) -> Value {
-        let deadline = tokio::time::Instant::now() + timeout;
-        loop {
-            let fit = self
-                .get_json(&format!("/api/v1/fits/{fit_id}"), token)
-                .await;
-            let status = fit["status"].as_str().unwrap_or_default().to_string();
-            if status != "queued" && status != "running" {
-                return fit;
-            }
-            assert!(
-                tokio::time::Instant::now() < deadline,
-                "fit {fit_id} still {status} after {timeout:?}"
-            );
-            tokio::time::sleep(Duration::from_millis(50)).await;
-        }
+        let every = Duration::from_millis(50);
+        let get = |path: String| async move { self.get_json(&path, token).await };
+        poll_fit(get, fit_id, timeout, every).await
     }
 }
 
@@ -494,5 +470,27 @@ impl Drop for ServerProcess {
             let _ = c.kill();
             let _ = c.wait();
         }
+    }
+}
+
+/// Polls `GET /api/v1/fits/{fit_id}` through `get` every `every` until the fit leaves queued and
+/// running; fails the test after `timeout`.
+async fn poll_fit<F, Fut>(get: F, fit_id: i64, timeout: Duration, every: Duration) -> Value
+where
+    F: Fn(String) -> Fut,
+    Fut: std::future::Future<Output = Value>,
+{
+    let deadline = tokio::time::Instant::now() + timeout;
+    loop {
+        let fit = get(format!("/api/v1/fits/{fit_id}")).await;
+        let status = fit["status"].as_str().unwrap_or_default().to_string();
+        if status != "queued" && status != "running" {
+            return fit;
+        }
+        assert!(
+            tokio::time::Instant::now() < deadline,
+            "fit {fit_id} still {status} after {timeout:?}"
+        );
+        tokio::time::sleep(every).await;
     }
 }
