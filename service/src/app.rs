@@ -84,7 +84,7 @@ impl Application {
         settings: Settings,
         engine: Arc<dyn Engine>,
     ) -> anyhow::Result<Application> {
-        let store = Backend::open(&settings.database_path).await?;
+        let store = Backend::open(&settings.database_path, settings.database_connections).await?;
         tracing::info!(
             database = %crate::store::backend::shown(&settings.database_path),
             backend = store.kind(),

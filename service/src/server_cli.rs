@@ -187,7 +187,7 @@ async fn token(
             label,
             database,
         } => {
-            let store = Backend::open(&database.path).await?;
+            let store = Backend::open(&database.path, database.connections).await?;
             let (id, token) = store.create_token(role, label.as_deref()).await?;
             store.close().await;
             writeln!(
@@ -199,7 +199,7 @@ async fn token(
             writeln!(out, "{token}")?;
         }
         TokenCommand::List { database } => {
-            let store = Backend::open(&database.path).await?;
+            let store = Backend::open(&database.path, database.connections).await?;
             let tokens = store.list_tokens().await?;
             store.close().await;
             let when = crate::store::rfc3339;
@@ -222,7 +222,7 @@ async fn token(
             }
         }
         TokenCommand::Revoke { id, database } => {
-            let store = Backend::open(&database.path).await?;
+            let store = Backend::open(&database.path, database.connections).await?;
             let actor = std::env::var("USER")
                 .map(|u| format!("command line ({u})"))
                 .unwrap_or_else(|_| "command line".into());
@@ -243,7 +243,7 @@ async fn token(
 }
 
 async fn verify(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result<()> {
-    let store = Backend::open(&database.path).await?;
+    let store = Backend::open(&database.path, database.connections).await?;
     let report = store.verify_integrity().await?;
     store.close().await;
     writeln!(

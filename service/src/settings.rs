@@ -99,6 +99,17 @@ pub struct DatabaseArgs {
         default_value = "henrybook.db"
     )]
     pub path: PathBuf,
+    /// On PostgreSQL, the most connections this process opens (each replica has its own pool: keep
+    /// replicas × this below the server's `max_connections`). SQLite always uses one writer and up
+    /// to eight readers.
+    #[arg(
+        long = "database-connections",
+        env = "HENRYBOOK_DATABASE_CONNECTIONS",
+        value_name = "N",
+        default_value_t = crate::store::backend::POSTGRES_CONNECTIONS,
+        value_parser = clap::value_parser!(u32).range(1..=1000)
+    )]
+    pub connections: u32,
 }
 
 /// Everything [`crate::app::Application::build`] needs.
@@ -108,6 +119,8 @@ pub struct Settings {
     /// Where the gRPC interface listens.
     pub grpc_listen: SocketAddr,
     pub database_path: PathBuf,
+    /// On PostgreSQL, the pool's most connections.
+    pub database_connections: u32,
     pub workers: usize,
     pub max_body_bytes: usize,
     pub request_timeout: Duration,
@@ -137,6 +150,7 @@ impl Settings {
             listen: SocketAddr::from(([127, 0, 0, 1], 0)),
             grpc_listen: SocketAddr::from(([127, 0, 0, 1], 0)),
             database_path: database_path.into(),
+            database_connections: crate::store::backend::POSTGRES_CONNECTIONS,
             workers: default_workers(),
             max_body_bytes: 32 * 1024 * 1024,
             request_timeout: Duration::from_secs(30),
@@ -229,6 +243,7 @@ impl TryFrom<&ServeArgs> for Settings {
             listen: a.listen,
             grpc_listen: a.grpc_listen,
             database_path: a.database.path.clone(),
+            database_connections: a.database.connections,
             workers,
             max_body_bytes: a.max_body_bytes,
             request_timeout: seconds("--request-timeout-s", a.request_timeout_s)?,

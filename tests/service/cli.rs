@@ -564,6 +564,16 @@ fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
     ]);
     assert_eq!(code, 1);
     assert!(err.contains("cannot connect to PostgreSQL"), "{err}");
+    // A pool of no connections is refused before anything is opened.
+    let (code, _, err) = run(&[
+        "migrate",
+        "--database",
+        &pg.url,
+        "--database-connections",
+        "0",
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("--database-connections"), "{err}");
     drop(pg);
     std::fs::remove_dir_all(dir).ok();
 }

@@ -822,3 +822,32 @@ async fn the_status_counts_fold_into_one_row_per_status_and_keep_their_sums() {
     store.fold_status_counts().await.unwrap();
     assert_eq!(store.queue_counts().await.unwrap(), before);
 }
+
+#[tokio::test]
+async fn the_pool_opens_at_most_the_connections_it_is_given() {
+    use henrybook::store::backend::Backend;
+    let db = TestDb::new().await;
+    let backend = Backend::open(std::path::Path::new(&db.url), 3)
+        .await
+        .unwrap();
+    let Backend::Postgres(store) = &backend else {
+        panic!("a postgres:// URL opens PostgreSQL");
+    };
+    assert_eq!(store.pool().options().get_max_connections(), 3);
+    // Five queries at once on three connections: all answered, never more than three open.
+    let mut set = tokio::task::JoinSet::new();
+    for _ in 0..5 {
+        let pool = store.pool().clone();
+        set.spawn(async move {
+            sqlx::query("SELECT pg_sleep(0.1)")
+                .execute(&pool)
+                .await
+                .unwrap();
+            pool.size()
+        });
+    }
+    while let Some(size) = set.join_next().await {
+        assert!(size.unwrap() <= 3);
+    }
+    backend.close().await;
+}

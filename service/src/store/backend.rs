@@ -24,7 +24,7 @@ use std::future::Future;
 use std::path::Path;
 use std::time::Duration;
 
-/// Connections each replica's PostgreSQL pool may open.
+/// Connections each replica's PostgreSQL pool may open unless `--database-connections` says otherwise.
 pub const POSTGRES_CONNECTIONS: u32 = 16;
 
 /// Where the data is: a SQLite file or a PostgreSQL database.
@@ -168,12 +168,11 @@ forward! {
 
 impl Backend {
     /// Opens the store `location` names ([`Location::of`]), applying its migrations.
-    pub async fn open(location: &Path) -> anyhow::Result<Backend> {
+    /// Opens the store at `location`; on PostgreSQL with a pool of at most `connections`.
+    pub async fn open(location: &Path, connections: u32) -> anyhow::Result<Backend> {
         Ok(match Location::of(location) {
             Location::Sqlite(path) => Backend::Sqlite(Store::open(path).await?),
-            Location::Postgres(url) => {
-                Backend::Postgres(PgStore::open(url, POSTGRES_CONNECTIONS).await?)
-            }
+            Location::Postgres(url) => Backend::Postgres(PgStore::open(url, connections).await?),
         })
     }
 
