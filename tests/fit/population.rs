@@ -15,7 +15,7 @@ use henrybook_tests::population;
 
 use henrybook::fit::lumped::same_cost;
 use henrybook::fit::problem::density_weights;
-use henrybook::fit::{FitControl, FitOptions, FitStatus, fit};
+use henrybook::fit::{FindingKind, FitControl, FitOptions, FitStatus, fit};
 use population::{METHODS, chi2, draw, found};
 
 #[test]
@@ -40,7 +40,28 @@ fn the_lumped_fit_finds_the_best_basin_on_a_drawn_population_and_flags_every_mis
             }
         };
         let (c_fit, c_truth) = (chi2(&report.model, &sweep), chi2(&part.truth, &sweep));
+        // No part is drawn with a port error: the constant-reactance finding would be a false alarm,
+        // and so would a found fit whose inductance at the bottom the report calls off.
+        for f in &report.assessment.findings {
+            assert_ne!(
+                f.kind,
+                FindingKind::PortReactanceOffset,
+                "{}: {}",
+                part.describe(),
+                f.message
+            );
+        }
         if found(c_fit, c_truth) {
+            assert!(
+                report
+                    .assessment
+                    .findings
+                    .iter()
+                    .all(|f| f.kind != FindingKind::BottomInductance),
+                "{}: {}",
+                part.describe(),
+                report.assessment.summary
+            );
             found_count += 1;
             per_method[m].0 += 1;
             ok_among_found += (report.assessment.status == FitStatus::Ok) as usize;

@@ -8,6 +8,7 @@
 //! error of at most 2 % below the SRF. The files are read where they lie and never copied into the
 //! repository; without that folder the test prints a note and checks nothing.
 
+use henrybook::fit::assess::FindingKind;
 use henrybook::fit::problem::density_weights;
 use henrybook::fit::{FitControl, FitOptions, FitStatus, fit_lumped};
 use henrybook::model::ImpedanceModel;
@@ -45,6 +46,9 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
     eprintln!("file | status | L data | L model | ΔL | median |Z| error below SRF | summary");
     let mut ok_count = 0;
     let mut l_within_5_percent = 0;
+    let mut bottom_reported = 0;
+    let mut bottom_undecided = 0;
+    let mut port_offsets = 0;
     for file in &files {
         let bytes = std::fs::read(dir.join(file)).unwrap();
         let sweep = read_sweep(file, &bytes, &ReadOptions::default())
@@ -73,6 +77,51 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
         );
         let dl = l_model / l_data - 1.0;
         l_within_5_percent += (dl.abs() <= 0.05) as usize;
+        // The reading's own standard uncertainty, relative: the median of n points whose relative σ
+        // is σ/Im Z each (1.2533·rms/√n, the median's efficiency for a normal sample; textbook
+        // statistics, no source needed beyond that).
+        let rel_sq: f64 = sure
+            .iter()
+            .map(|&k| (sweep.sigma_ohm[k] / sweep.impedance_ohm[k].im).powi(2))
+            .sum::<f64>()
+            / sure.len() as f64;
+        let reading_sigma = 1.2533 * (rel_sq / sure.len() as f64).sqrt() * a.noise_scale.max(1.0);
+        // A miss at the bottom is said, not hidden: where this test's own reading (independent code,
+        // same points) is more than 5 % and four of the reading's σ off, the report names it, and where
+        // it is within 5 % it does not (half a percent of margin each way for the two medians).
+        let bottom = a
+            .findings
+            .iter()
+            .find(|f| f.kind == FindingKind::BottomInductance);
+        let clear_miss = dl.abs() > 0.05 && dl.abs() > 4.0 * reading_sigma;
+        if clear_miss && dl.abs() > 0.055 {
+            assert!(
+                bottom.is_some(),
+                "{file}: L at the bottom is {:+.1} % off and the report does not say so",
+                100.0 * dl
+            );
+        } else if dl.abs() < 0.045 {
+            assert!(
+                bottom.is_none(),
+                "{file}: {bottom:?} at {:+.1} %",
+                100.0 * dl
+            );
+        }
+        if dl.abs() > 0.05 {
+            match bottom {
+                Some(_) => bottom_reported += 1,
+                None if !clear_miss => bottom_undecided += 1,
+                None => {}
+            }
+        }
+        if let Some(p) = a
+            .findings
+            .iter()
+            .find(|f| f.kind == FindingKind::PortReactanceOffset)
+        {
+            eprintln!("{file}: {}", p.message);
+            port_offsets += 1;
+        }
         let srf = report
             .derived
             .srf_hz
@@ -120,8 +169,16 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
         }
     }
     eprintln!(
-        "{ok_count} of {} reported ok; L at the lowest sure points within 5 % on {l_within_5_percent}",
+        "{ok_count} of {} reported ok; L at the lowest sure points within 5 % on {l_within_5_percent}, \
+         the miss reported on {bottom_reported}, within the reading's own 4σ on {bottom_undecided}; a \
+         constant reactance at the bottom on {port_offsets}",
         files.len()
+    );
+    assert_eq!(
+        l_within_5_percent + bottom_reported + bottom_undecided,
+        files.len(),
+        "every file is within 5 % at the bottom, or its report says by how much it is not, or the \
+         difference lies within four standard deviations of the data's own reading"
     );
     // Every poor fit still owes the user the inductance the data show at the bottom of the band. Not
     // yet met on all 13; the measured count is 8. It was 10 while the fit often stopped in poorer
@@ -129,8 +186,12 @@ fn every_real_sweep_is_fitted_and_an_ok_fit_is_true_to_the_data() {
     // on eight files, by 1.08× to 3.5×, and two of them (9x5x3.44, 13x8x6) went from within 5 % to
     // +6.0 % and +5.2 %. On 9x5x3.44 the data's own Im Z/ω rises from 0.86 µH at 98 kHz to 1.22 µH at
     // 600 kHz, far below the SRF, which no element of the model produces there (a falling
-    // permeability only lowers L, and Cp raises it by about (f/SRF)²): a reading at a few ohms against
-    // the 50 Ω port that the better fit no longer bends to. This holds the line until the bottom is met.
+    // permeability only lowers L, and Cp raises it by about (f/SRF)²). Four of the five files that
+    // miss carry the constant-reactance finding (X of −0.16 to −0.29 Ω at the bottom, the size a
+    // reflection phase error of 0.4–0.7° gives near a short): the reading there is itself in doubt.
+    // Removing that X before fitting brought three of them within 5 %, but the author's own LCR
+    // readings (SOURCES.md) side with the corrected value on one file and with the raw one on two, so
+    // the data are not corrected. This holds the line until the bottom is met.
     assert!(
         l_within_5_percent >= 8,
         "L at the lowest sure points within 5 % on only {l_within_5_percent} of {}",

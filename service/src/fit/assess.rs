@@ -59,6 +59,16 @@ pub const DETERMINED_RELATIVE_SIGMA: f64 = 0.1;
 pub const MIN_DETERMINED_POINTS: usize = 20;
 /// Most the correlation widening may multiply a σ by.
 pub const MAX_CORRELATION_WIDENING: f64 = 10.0;
+/// The bottom of the band, for the inductance reading there: this many of the lowest points where Im Z
+/// stands at least [`BOTTOM_CLEARANCE`] times clear of its σ.
+pub const BOTTOM_POINTS: usize = 10;
+pub const BOTTOM_CLEARANCE: f64 = 10.0;
+/// The model's inductance at the bottom of the band may differ from the data's reading there by this
+/// fraction (and by four standard deviations of the reading) before the fit is poor.
+pub const BOTTOM_L_TOLERANCE: f64 = 0.05;
+/// A constant reactance at the bottom of a reflection sweep is reported when it stands this many
+/// standard deviations clear of zero.
+pub const PORT_OFFSET_Z: f64 = 5.0;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -100,6 +110,13 @@ pub enum FindingKind {
     /// of its noise, Im Z is buried in noise, and that point is already capacitive. L0 then rests on
     /// the resonance and the capacitive side alone, not on inductive data.
     InductanceUnresolved,
+    /// At the bottom of the band the model's inductance differs from the data's own reading there by
+    /// more than [`BOTTOM_L_TOLERANCE`] and by more than that reading's own uncertainty allows
+    /// ([`bottom_inductance`]).
+    BottomInductance,
+    /// Im Z at the bottom of a reflection sweep follows ωL + X with a constant X < 0, which no
+    /// inductor's own reactance has there (informational; [`port_reactance_offset`]).
+    PortReactanceOffset,
 }
 
 impl FindingKind {
@@ -112,6 +129,7 @@ impl FindingKind {
                 | FindingKind::StructuredResiduals
                 | FindingKind::TooFewDetermined
                 | FindingKind::InductanceUnresolved
+                | FindingKind::BottomInductance
         )
     }
 }
@@ -364,7 +382,218 @@ pub fn assess(model: &dyn ImpedanceModel, sweep: &Sweep, parameters: usize) -> A
     let mut findings = undetermined_findings;
     findings.append(&mut out.findings);
     out.findings = findings;
+    if let Some(offset) = port_reactance_offset(sweep) {
+        out.add_finding(offset.finding());
+    }
+    if let Some(bottom) = bottom_inductance(model, sweep, out.noise_scale)
+        && bottom.misses()
+    {
+        out.add_finding(bottom.finding());
+    }
     out
+}
+
+/// The inductance Im Z/ω at the bottom of the band, as the data read it and as the model does, at the
+/// same points: the [`BOTTOM_POINTS`] lowest where the model's Im Z stands [`BOTTOM_CLEARANCE`] times
+/// clear of σ, below the first point that is as clearly capacitive.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BottomReading {
+    pub band_hz: [f64; 2],
+    pub points: usize,
+    /// Median of the measured Im Z/ω over the points.
+    pub data_h: f64,
+    /// Median of the model's Im Z/ω over the same points.
+    pub model_h: f64,
+    /// Standard uncertainty of `data_h` relative to it (the median of n points: 1.2533·σ/√n, with
+    /// each point's relative σ, σ over the model's Im Z there, scaled by the noise scale).
+    pub data_sigma_relative: f64,
+}
+
+impl BottomReading {
+    /// model/data − 1.
+    pub fn deviation(&self) -> f64 {
+        self.model_h / self.data_h - 1.0
+    }
+
+    /// More than [`BOTTOM_L_TOLERANCE`] off and more than four standard deviations of the reading.
+    pub fn misses(&self) -> bool {
+        let d = self.deviation().abs();
+        d > BOTTOM_L_TOLERANCE && d > 4.0 * self.data_sigma_relative
+    }
+
+    fn finding(&self) -> Finding {
+        Finding {
+            kind: FindingKind::BottomInductance,
+            band_hz: Some(self.band_hz),
+            message: format!(
+                "at the bottom of the band ({} to {}, the {} lowest points where Im Z stands ten \
+                 times clear of its noise) the model's inductance is {}, {:+.1} % from the data's \
+                 own reading of {} there (± {:.1} %)",
+                engineering(self.band_hz[0]),
+                engineering(self.band_hz[1]),
+                self.points,
+                crate::units::eng(self.model_h, "H"),
+                100.0 * self.deviation(),
+                crate::units::eng(self.data_h, "H"),
+                100.0 * self.data_sigma_relative
+            ),
+        }
+    }
+}
+
+/// The indices of the bottom points of [`BottomReading`], ascending; fewer than five: none. Points
+/// are chosen by the reactance `reactance(k)` stands clear of σ: for a reading of the data, the model's
+/// (picking by the measured Im Z would favour points whose noise happened to raise it, and bias the
+/// reading up where Im Z rises through the threshold).
+fn bottom_points(sweep: &Sweep, reactance: impl Fn(usize) -> f64) -> Vec<usize> {
+    let mut picked = Vec::with_capacity(BOTTOM_POINTS);
+    for k in 0..sweep.frequency_hz.len() {
+        let x = reactance(k) / sweep.sigma_ohm[k];
+        if x > BOTTOM_CLEARANCE {
+            picked.push(k);
+            if picked.len() == BOTTOM_POINTS {
+                break;
+            }
+        } else if x < -BOTTOM_CLEARANCE && !picked.is_empty() {
+            break;
+        }
+    }
+    if picked.len() < 5 { Vec::new() } else { picked }
+}
+
+/// The data's and the model's inductance at the bottom of the band ([`BottomReading`]); `None` when
+/// fewer than five points there stand clear of their noise.
+pub fn bottom_inductance(
+    model: &dyn ImpedanceModel,
+    sweep: &Sweep,
+    noise_scale: f64,
+) -> Option<BottomReading> {
+    let picked = bottom_points(sweep, |k| model.impedance(sweep.frequency_hz[k]).im);
+    if picked.is_empty() {
+        return None;
+    }
+    let omega = |k: usize| 2.0 * std::f64::consts::PI * sweep.frequency_hz[k];
+    let data_h = median(
+        picked
+            .iter()
+            .map(|&k| sweep.impedance_ohm[k].im / omega(k))
+            .collect(),
+    );
+    let model_h = median(
+        picked
+            .iter()
+            .map(|&k| model.impedance(sweep.frequency_hz[k]).im / omega(k))
+            .collect(),
+    );
+    let n = picked.len() as f64;
+    let mean_sq: f64 = picked
+        .iter()
+        .map(|&k| (sweep.sigma_ohm[k] / model.impedance(sweep.frequency_hz[k]).im).powi(2))
+        .sum::<f64>()
+        / n;
+    Some(BottomReading {
+        band_hz: [
+            sweep.frequency_hz[picked[0]],
+            sweep.frequency_hz[picked[picked.len() - 1]],
+        ],
+        points: picked.len(),
+        data_h,
+        model_h,
+        data_sigma_relative: 1.2533 * noise_scale.max(1.0) * (mean_sq / n).sqrt(),
+    })
+}
+
+/// A constant reactance at the bottom of a reflection sweep: Im Z = ωL + X fitted (weighted by σ) to
+/// every point from the lowest up to the last bottom point ([`bottom_points`]) while |Z| stays below a
+/// fifth of the reference impedance, where a reflection port's phase error φ reads as the constant
+/// series reactance X ≈ −Z0·φ/2. Reported when X < 0 stands [`PORT_OFFSET_Z`] standard deviations
+/// (widened by the fit's own misfit) clear of zero and shifts the inductance read at the bottom by
+/// more than 1 %.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct PortOffset {
+    pub band_hz: [f64; 2],
+    pub points: usize,
+    pub reactance_ohm: f64,
+    pub sigma_ohm: f64,
+    /// The slope L of the same fit.
+    pub inductance_h: f64,
+    pub z0_ohm: f64,
+}
+
+impl PortOffset {
+    fn finding(&self) -> Finding {
+        Finding {
+            kind: FindingKind::PortReactanceOffset,
+            band_hz: Some(self.band_hz),
+            message: format!(
+                "from {} to {} ({} points) Im Z follows ωL + X with L = {} and a constant X = \
+                 {:.3} ± {:.3} Ω, which no inductor's own reactance has there. At a reflection \
+                 port a calibration phase error of about {:.2}° near a short reads so, and would \
+                 make the inductance read there low by up to |X|/ω: check the calibration at the \
+                 bottom of the band",
+                engineering(self.band_hz[0]),
+                engineering(self.band_hz[1]),
+                self.points,
+                crate::units::eng(self.inductance_h, "H"),
+                self.reactance_ohm,
+                self.sigma_ohm,
+                (-2.0 * self.reactance_ohm / self.z0_ohm).to_degrees()
+            ),
+        }
+    }
+}
+
+/// [`PortOffset`] for a reflection sweep, when there is one.
+pub fn port_reactance_offset(sweep: &Sweep) -> Option<PortOffset> {
+    if sweep.method != crate::sweep::Method::Reflection {
+        return None;
+    }
+    let last = *bottom_points(sweep, |k| sweep.impedance_ohm[k].im).last()?;
+    let series_limit = sweep.z0_ohm / 5.0;
+    let end = (0..=last)
+        .find(|&k| sweep.impedance_ohm[k].norm() > series_limit)
+        .unwrap_or(last + 1);
+    if end < 5 || sweep.frequency_hz[end - 1] < 3.0 * sweep.frequency_hz[0] {
+        return None;
+    }
+    // Weighted least squares on (ω/ω_top, 1): well scaled whatever the band.
+    let w_top = sweep.frequency_hz[end - 1];
+    let (mut a11, mut a12, mut a22, mut b1, mut b2) = (0.0, 0.0, 0.0, 0.0, 0.0);
+    for k in 0..end {
+        let u = sweep.frequency_hz[k] / w_top;
+        let q = sweep.sigma_ohm[k].powi(-2);
+        let y = sweep.impedance_ohm[k].im;
+        a11 += q * u * u;
+        a12 += q * u;
+        a22 += q;
+        b1 += q * u * y;
+        b2 += q * y;
+    }
+    let det = a11 * a22 - a12 * a12;
+    if det.is_nan() || det <= 0.0 {
+        return None;
+    }
+    let slope = (a22 * b1 - a12 * b2) / det;
+    let x = (a11 * b2 - a12 * b1) / det;
+    let chi2: f64 = (0..end)
+        .map(|k| {
+            let u = sweep.frequency_hz[k] / w_top;
+            ((sweep.impedance_ohm[k].im - slope * u - x) / sweep.sigma_ohm[k]).powi(2)
+        })
+        .sum();
+    let reduced = chi2 / (end as f64 - 2.0);
+    let sigma = (a11 / det * reduced.max(1.0)).sqrt();
+    let inductance_h = slope / (2.0 * std::f64::consts::PI * w_top);
+    let w_bottom = 2.0 * std::f64::consts::PI * sweep.frequency_hz[last];
+    let shift = -x / (w_bottom * inductance_h);
+    (x < -PORT_OFFSET_Z * sigma && inductance_h > 0.0 && shift > 0.01).then_some(PortOffset {
+        band_hz: [sweep.frequency_hz[0], sweep.frequency_hz[end - 1]],
+        points: end,
+        reactance_ohm: x,
+        sigma_ohm: sigma,
+        inductance_h,
+        z0_ohm: sweep.z0_ohm,
+    })
 }
 
 /// The maximal runs of indices in 0..n missing from the sorted `kept`, as (first, last).
@@ -723,6 +952,124 @@ mod tests {
         assert!(lo < 40e6 && hi > 15e6, "{lo} {hi}");
         assert!(a.summary.contains("MHz"), "{}", a.summary);
         assert!(a.sigma_widening > 1.5, "{}", a.sigma_widening);
+    }
+
+    #[test]
+    fn the_inductance_at_the_bottom_is_read_and_a_miss_there_is_poor() {
+        let sweep = sweep_of(&choke(), 801, 1.0, 4);
+        let true_reading = bottom_inductance(&choke(), &sweep, 1.0).expect("a bottom reading");
+        assert_eq!(true_reading.points, BOTTOM_POINTS);
+        // The choke's L0 + ls (10.001 µH) is what Im Z/ω reads far below its 25 MHz SRF.
+        assert!(
+            (true_reading.data_h / 10.001e-6 - 1.0).abs() < 0.01,
+            "{true_reading:?}"
+        );
+        assert!(!true_reading.misses(), "{true_reading:?}");
+        let a = assess(&choke(), &sweep, 6);
+        assert!(
+            a.findings
+                .iter()
+                .all(|x| x.kind != FindingKind::BottomInductance)
+        );
+
+        let mut off = choke();
+        off.l0_h *= 1.07;
+        let a = assess(&off, &sweep, 6);
+        assert_eq!(a.status, FitStatus::Poor);
+        let finding = a
+            .findings
+            .iter()
+            .find(|x| x.kind == FindingKind::BottomInductance)
+            .expect("the bottom miss is named");
+        let d = bottom_inductance(&off, &sweep, 1.0).unwrap().deviation();
+        assert!((d - 0.07).abs() < 0.005, "{d}");
+        assert!(
+            finding.message.contains(&format!("{:+.1} %", 100.0 * d)),
+            "{}",
+            finding.message
+        );
+        let [lo, hi] = finding.band_hz.unwrap();
+        assert!(lo == sweep.frequency_hz[0] && hi < 2e3, "{lo} {hi}");
+    }
+
+    fn small_toroid() -> LumpedModel {
+        LumpedModel {
+            l0_h: 1.3e-6,
+            rdc_ohm: 0.02,
+            k_ac_ohm_per_sqrt_hz: 0.0,
+            rp_ohm: None,
+            cp_f: 2e-12,
+            ls_h: 0.0,
+            sections: vec![],
+            core: None,
+        }
+    }
+
+    /// A reflection sweep of an inductor measured through a port whose calibration leaves a phase
+    /// error φ: Γ_measured = Γ·e^{jφ}, with Z = Z0(1 + Γ)/(1 − Γ) (the bilinear map of any
+    /// reflection measurement; common practice, no source). Near a short it reads as the constant
+    /// series reactance −Z0·φ/2.
+    fn reflection_sweep(phase_rad: f64) -> Sweep {
+        use crate::sweep::convert::{s_from_z, z_from_s};
+        let part = small_toroid();
+        let noise = crate::sweep::uncertainty::NoiseModel::default();
+        let mut g = rng(11);
+        let f: Vec<f64> = (0..1000).map(|i| 50e3 + 100e3 * i as f64).collect();
+        let mut z = Vec::new();
+        let mut sigma = Vec::new();
+        for &x in &f {
+            let s = s_from_z(Method::Reflection, part.impedance(x), 50.0)
+                * Complex64::from_polar(1.0, phase_rad);
+            let zm = z_from_s(Method::Reflection, s, 50.0);
+            let sk = noise.sigma_from_s(Method::Reflection, s, zm, 50.0);
+            z.push(zm + sk * Complex64::new(g(), g()));
+            sigma.push(sk);
+        }
+        Sweep {
+            frequency_hz: f,
+            impedance_ohm: z,
+            sigma_ohm: sigma,
+            method: Method::Reflection,
+            z0_ohm: 50.0,
+            dc_reading: None,
+            warnings: Vec::new(),
+        }
+    }
+
+    #[test]
+    fn a_reflection_phase_error_reads_as_a_constant_reactance_at_the_bottom() {
+        assert_eq!(port_reactance_offset(&reflection_sweep(0.0)), None);
+        let phase = 0.6f64.to_radians();
+        let sweep = reflection_sweep(phase);
+        let offset = port_reactance_offset(&sweep).expect("the offset is found");
+        let expected = -50.0 * phase / 2.0;
+        assert!(
+            (offset.reactance_ohm - expected).abs() < 4.0 * offset.sigma_ohm,
+            "{offset:?} against {expected}"
+        );
+        assert!(
+            (offset.inductance_h / 1.3e-6 - 1.0).abs() < 0.03,
+            "{offset:?}"
+        );
+        // The same numbers as a direct impedance measurement: not a port's doing, not reported.
+        let direct = Sweep {
+            method: Method::Direct,
+            ..sweep.clone()
+        };
+        assert_eq!(port_reactance_offset(&direct), None);
+        // Informational: it names the calibration, and does not by itself make a fit poor.
+        let a = assess(&small_toroid(), &sweep, 4);
+        let finding = a
+            .findings
+            .iter()
+            .find(|x| x.kind == FindingKind::PortReactanceOffset)
+            .expect("reported");
+        assert!(!finding.kind.makes_poor());
+        assert!(
+            finding.message.contains("calibration"),
+            "{}",
+            finding.message
+        );
     }
 
     #[test]
