@@ -426,9 +426,9 @@ impl BottomReading {
             kind: FindingKind::BottomInductance,
             band_hz: Some(self.band_hz),
             message: format!(
-                "at the bottom of the band ({} to {}, the {} lowest points where Im Z stands ten \
-                 times clear of its noise) the model's inductance is {}, {:+.1} % from the data's \
-                 own reading of {} there (± {:.1} %)",
+                "at the bottom of the band ({} to {}, the {} lowest points where the model's Im Z \
+                 stands ten σ clear of the noise) the model's inductance is {}, {:+.1} % from the \
+                 data's own reading of {} there (± {:.1} %)",
                 engineering(self.band_hz[0]),
                 engineering(self.band_hz[1]),
                 self.points,
