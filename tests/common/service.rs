@@ -138,6 +138,15 @@ impl RawConnection {
         }
     }
 
+    /// The single integer `sql` (the same text on both backends) selects, e.g. a `COUNT(*)`.
+    pub async fn fetch_i64(&mut self, sql: &str) -> Result<i64, sqlx::Error> {
+        let sql = sqlx::AssertSqlSafe(sql.to_string());
+        match self {
+            RawConnection::Sqlite(c) => sqlx::query_scalar(sql).fetch_one(c).await,
+            RawConnection::Postgres(c) => sqlx::query_scalar(sql).fetch_one(c).await,
+        }
+    }
+
     pub async fn close(self) {
         match self {
             RawConnection::Sqlite(c) => c.close().await.ok(),

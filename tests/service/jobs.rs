@@ -547,3 +547,88 @@ async fn concurrent_refits_never_take_a_part_past_its_queue_bound() {
     assert!(waiting <= 3, "{waiting} fits of the part wait: {fits}");
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn finished_jobs_are_pruned_after_the_retention_and_their_fits_answer_as_before() {
+    // Arrange: one fit succeeds and one is cancelled before it runs, under the default retention
+    // (a week): their job rows stay.
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
+    settings.workers = 1;
+    let app = spawn_app_with(
+        db.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_millis(500),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 2).await;
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/cancel", ids[1]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let mut before = Vec::new();
+    for id in &ids {
+        before.push(app.wait_for_fit(*id, Duration::from_secs(60)).await);
+    }
+    assert_eq!(before[0]["status"], "succeeded", "{}", before[0]);
+    assert_eq!(before[1]["status"], "cancelled", "{}", before[1]);
+    let mut raw = db.raw().await;
+    let count = "SELECT COUNT(*) FROM jobs";
+    assert_eq!(raw.fetch_i64(count).await.unwrap(), 2);
+    let tokens = app.tokens();
+    app.stop().await;
+
+    // Act: start again with a retention far shorter than any real one; the pool's housekeeping
+    // deletes both job rows.
+    settings.job_retention = Duration::from_millis(100);
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let deadline = Instant::now() + Duration::from_secs(30);
+    loop {
+        let rows = raw.fetch_i64(count).await.unwrap();
+        if rows == 0 {
+            break;
+        }
+        assert!(Instant::now() < deadline, "{rows} job rows still there");
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+
+    // Assert: the fits answer as before, attempts included.
+    for (id, was) in ids.iter().zip(&before) {
+        let now = app.wait_for_fit(*id, Duration::from_secs(1)).await;
+        assert_eq!(&now, was);
+    }
+    // A finished fit without its job row is still a finished fit: a cancel conflicts (409), it is
+    // not unknown.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/cancel", ids[0]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 409, "{}", r.text().await.unwrap_or_default());
+    // A retry queues the pruned job again, and it runs.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/retry", ids[1]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200, "{}", r.text().await.unwrap_or_default());
+    let retried = app.wait_for_fit(ids[1], Duration::from_secs(60)).await;
+    assert_eq!(retried["status"], "succeeded", "{retried}");
+    assert_eq!(retried["attempts"], 1, "{retried}");
+    assert_eq!(successes(&app).await.len(), 2);
+    let report = app.store.verify_integrity().await.unwrap();
+    assert!(report.ok(), "{report:?}");
+    raw.close().await;
+    app.stop().await;
+}
