@@ -272,11 +272,14 @@ impl TestApp {
 
     /// Stops without any shutdown work, as a crash would: the server task is aborted, leases stay.
     pub async fn crash(mut self) {
-        self.stop.take();
+        // The stop sender is kept until the server task is gone: dropping it completes the shutdown
+        // future, which would start a graceful shutdown racing the abort.
+        let stop = self.stop.take();
         if let Some(s) = self.server.take() {
             s.abort();
             let _ = s.await;
         }
+        drop(stop);
     }
 
     pub async fn get(&self, path: &str, token: &str) -> reqwest::Response {

@@ -632,3 +632,47 @@ async fn finished_jobs_are_pruned_after_the_retention_and_their_fits_answer_as_b
     raw.close().await;
     app.stop().await;
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_service_dropped_during_its_drain_leaves_no_worker_pool_running_behind() {
+    // Arrange: a fit running (held back for 30 s) and a long grace, so the drain waits for the pool.
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
+    settings.workers = 1;
+    let app = spawn_app_with(
+        db.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(30),
+        }),
+        None,
+    )
+    .await;
+    let id = upload_n(&app, 1).await[0];
+    wait_for_running(&app).await;
+    let tokens = app.tokens();
+
+    // Act: ask for a graceful shutdown, wait until both listeners are closed (the drain now waits for
+    // the pool), then drop the service there, as an aborted task or a runtime shut down does.
+    let mut app = app;
+    app.signal_stop();
+    let grpc_address = app.grpc_url.trim_start_matches("http://").to_string();
+    let deadline = Instant::now() + Duration::from_secs(20);
+    while app.client.get(app.url("/healthz")).send().await.is_ok()
+        || tokio::net::TcpStream::connect(&grpc_address).await.is_ok()
+    {
+        assert!(Instant::now() < deadline, "the listeners stay open");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    app.crash().await;
+
+    // Assert: the next start runs the abandoned job again after its lease, its first run counted.
+    // (A pool left running behind would give the job back at the end of its grace, uncounted, or
+    // write the result itself: attempts 1 either way.)
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
+    assert_eq!(f["status"], "succeeded", "{f}");
+    assert_eq!(f["attempts"], 2, "the abandoned run counts");
+    assert_eq!(successes(&app).await.get(&id), Some(&1));
+    app.stop().await;
+}
