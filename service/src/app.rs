@@ -191,23 +191,32 @@ impl Application {
             Ok(at) => at + drain,
             Err(_) => tokio::time::Instant::now(),
         };
-        if let Some(handle) = grpc.0.take() {
-            match tokio::time::timeout_at(deadline, handle).await {
-                Ok(joined) => joined
-                    .context("the gRPC server task")?
-                    .context("the gRPC server stopped")?,
+        // The handles stay in their abort-on-drop guards while awaited: should `run` be dropped
+        // meanwhile (its task aborted mid-drain), gRPC and the pool stop with it instead of running
+        // on detached (a pool left so would finish its fits behind the next start's back).
+        if let Some(handle) = grpc.0.as_mut() {
+            match tokio::time::timeout_at(deadline, &mut *handle).await {
+                Ok(joined) => {
+                    grpc.0 = None;
+                    joined
+                        .context("the gRPC server task")?
+                        .context("the gRPC server stopped")?
+                }
                 Err(_) => {
-                    tracing::warn!("gRPC connections still open at the drain deadline: closed")
+                    tracing::warn!("gRPC connections still open at the drain deadline: closed");
+                    handle.abort();
                 }
             }
         }
-        if let Some(handle) = pool.0.take() {
-            let abort = handle.abort_handle();
-            match tokio::time::timeout_at(deadline, handle).await {
-                Ok(joined) => joined.context("the worker pool stopped")?,
+        if let Some(handle) = pool.0.as_mut() {
+            match tokio::time::timeout_at(deadline, &mut *handle).await {
+                Ok(joined) => {
+                    pool.0 = None;
+                    joined.context("the worker pool stopped")?
+                }
                 Err(_) => {
                     tracing::warn!("fits still running at the drain deadline: abandoned");
-                    abort.abort();
+                    handle.abort();
                 }
             }
         }

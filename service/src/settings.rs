@@ -83,6 +83,10 @@ pub struct ServeArgs {
     /// reading uploads leaves the CPU to the fits.
     #[arg(long, env = "HENRYBOOK_UPLOAD_READERS")]
     pub upload_readers: Option<usize>,
+    /// How long the queue keeps a finished fit's job row, in seconds (default a week); older ones
+    /// are deleted by the worker pool's housekeeping. The fit, its result and its attempts stay.
+    #[arg(long, env = "HENRYBOOK_JOB_RETENTION_S", value_name = "S", value_parser = si, default_value_t = 7.0 * 86400.0)]
+    pub job_retention_s: f64,
     /// Log format.
     #[arg(long, env = "HENRYBOOK_LOG_FORMAT", value_enum, default_value = "text")]
     pub log_format: LogFormat,
@@ -141,6 +145,8 @@ pub struct Settings {
     pub unready_notice: Duration,
     /// How often an idle worker pool looks for work it was not told about (e.g. expired leases).
     pub poll_interval: Duration,
+    /// How long a finished fit's job row is kept before the worker pool deletes it.
+    pub job_retention: Duration,
 }
 
 impl Settings {
@@ -167,6 +173,7 @@ impl Settings {
             drain_timeout: Duration::from_secs(30),
             unready_notice: Duration::ZERO,
             poll_interval: Duration::from_millis(500),
+            job_retention: Duration::from_secs(7 * 86400),
         }
     }
 }
@@ -260,6 +267,7 @@ impl TryFrom<&ServeArgs> for Settings {
             drain_timeout,
             unready_notice,
             poll_interval: (lease / 4).min(Duration::from_millis(500)),
+            job_retention: seconds("--job-retention-s", a.job_retention_s)?,
         })
     }
 }
@@ -303,6 +311,7 @@ mod tests {
                 "--max-body-bytes",
             ),
             (&["--idle-timeout-s", "0"][..], "--idle-timeout-s"),
+            (&["--job-retention-s", "0"][..], "--job-retention-s"),
             (&["--max-connections", "0"][..], "--max-connections"),
             (
                 &["--max-queued-fits-per-part", "0"][..],

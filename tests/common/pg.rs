@@ -1,4 +1,5 @@
-//! A fresh PostgreSQL database per test, for the tests of the PostgreSQL store. Each [`TestDb`] makes a
+//! A fresh PostgreSQL database per test, for the tests of the PostgreSQL store and the service tests
+//! run on PostgreSQL (`crate::service::TestDatabase`). Each [`TestDb`] makes a
 //! database with a random name (collating text by ICU's en-US rules), applies migrations/postgres/ and
 //! drops the database when dropped (also when the test fails). The server is the one RULES.md and .ci/setup name: 127.0.0.1:5432, user
 //! postgres, trust authentication (HENRYBOOK_TEST_PG_ADMIN overrides the URL of the `postgres`
@@ -22,6 +23,12 @@ pub struct TestDb {
 
 impl TestDb {
     pub async fn new() -> TestDb {
+        TestDb::with_pool(8).await
+    }
+
+    /// As [`TestDb::new`], with a pool of at most `max_connections` (the service tests use the
+    /// application's own pools and keep this one small).
+    pub async fn with_pool(max_connections: u32) -> TestDb {
         let admin = admin_url();
         let mut conn = PgConnection::connect(&admin).await.unwrap_or_else(|e| {
             panic!(
@@ -50,7 +57,7 @@ impl TestDb {
             Some((server, _)) => format!("{server}/{name}"),
             None => panic!("{admin} names no database"),
         };
-        let pool = pg::connect(&url, 8)
+        let pool = pg::connect(&url, max_connections)
             .await
             .expect("connect to the test database");
         pg::migrate(&pool).await.expect("the migrations apply");

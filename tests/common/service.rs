@@ -1,18 +1,159 @@
-//! `spawn_app()`: the real service on 127.0.0.1 with a free port and its own temporary database, with
+//! `spawn_app()`: the real service on 127.0.0.1 with a free port and its own fresh database, with
 //! one token per role and a request helper per endpoint.
+//!
+//! The database is SQLite (a file in a temporary folder) unless `HENRYBOOK_TEST_BACKEND=postgres`:
+//! then every application runs on a fresh PostgreSQL database of its own ([`crate::pg::TestDb`]),
+//! dropped with the last handle on it. The tests that look under the API do it through
+//! [`TestApp::store`] (a [`Backend`], either store) or, for what only SQL can do (tampering with
+//! the record), through [`TestDatabase::raw`], which takes each statement in both dialects.
 
+use crate::pg::TestDb;
 use henrybook::app::Application;
 use henrybook::jobs::{CoreEngine, Engine};
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::settings::Settings;
-use henrybook::store::Store;
+use henrybook::store::Backend;
 use henrybook::store::tokens::Role;
 use serde_json::Value;
+use sqlx::Connection;
 use std::path::PathBuf;
 use std::sync::Arc;
 use std::time::Duration;
 use tokio::sync::oneshot;
 use tokio::task::JoinHandle;
+
+/// The environment variable that chooses the database of the service tests: `sqlite` (the default)
+/// or `postgres`.
+pub const BACKEND_VARIABLE: &str = "HENRYBOOK_TEST_BACKEND";
+
+/// Which database the service tests run on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum TestBackend {
+    Sqlite,
+    Postgres,
+}
+
+impl TestBackend {
+    /// The backend [`BACKEND_VARIABLE`] names (SQLite when unset); any other value fails the test,
+    /// so a typo never runs the suite on the wrong database unnoticed.
+    pub fn chosen() -> TestBackend {
+        match std::env::var(BACKEND_VARIABLE).as_deref() {
+            Err(_) | Ok("") | Ok("sqlite") => TestBackend::Sqlite,
+            Ok("postgres") => TestBackend::Postgres,
+            Ok(other) => panic!("{BACKEND_VARIABLE}={other}: expected sqlite or postgres"),
+        }
+    }
+}
+
+/// The database of one test's application (shared by its restarts): a temporary folder, with the
+/// SQLite file in it or beside a fresh PostgreSQL database. Clones share both; the folder is removed
+/// and the PostgreSQL database dropped when the last clone goes.
+#[derive(Clone)]
+pub struct TestDatabase {
+    /// A temporary folder for the test's files (and the SQLite database).
+    pub dir: Arc<tempfile::TempDir>,
+    postgres: Option<Arc<TestDb>>,
+}
+
+impl TestDatabase {
+    /// A fresh database on the backend [`TestBackend::chosen`] names.
+    pub async fn new() -> TestDatabase {
+        TestDatabase::on(TestBackend::chosen()).await
+    }
+
+    /// A fresh database on `backend`.
+    pub async fn on(backend: TestBackend) -> TestDatabase {
+        let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
+        let postgres = match backend {
+            TestBackend::Sqlite => None,
+            TestBackend::Postgres => Some(Arc::new(TestDb::with_pool(1).await)),
+        };
+        TestDatabase { dir, postgres }
+    }
+
+    pub fn backend(&self) -> TestBackend {
+        match self.postgres {
+            Some(_) => TestBackend::Postgres,
+            None => TestBackend::Sqlite,
+        }
+    }
+
+    /// The location as `--database` takes it: the SQLite file's path or the PostgreSQL URL.
+    pub fn location(&self) -> PathBuf {
+        match &self.postgres {
+            Some(db) => PathBuf::from(&db.url),
+            None => self.dir.path().join("henrybook.db"),
+        }
+    }
+
+    /// [`test_settings`] on this database.
+    pub fn settings(&self) -> Settings {
+        test_settings(self.location())
+    }
+
+    /// A connection of its own to the database, for statements under the API.
+    pub async fn raw(&self) -> RawConnection {
+        match &self.postgres {
+            Some(db) => RawConnection::Postgres(
+                sqlx::PgConnection::connect(&db.url)
+                    .await
+                    .expect("a raw PostgreSQL connection"),
+            ),
+            None => RawConnection::Sqlite(
+                sqlx::SqliteConnection::connect(&format!("sqlite://{}", self.location().display()))
+                    .await
+                    .expect("a raw SQLite connection"),
+            ),
+        }
+    }
+}
+
+/// A plain connection to a test's database, of either kind: each statement is given in both dialects.
+pub enum RawConnection {
+    Sqlite(sqlx::SqliteConnection),
+    Postgres(sqlx::PgConnection),
+}
+
+impl RawConnection {
+    /// Runs `sql` (the same text on both backends); the rows it changed.
+    pub async fn execute(&mut self, sql: &str) -> Result<u64, sqlx::Error> {
+        self.execute_per_dialect(sql, sql).await
+    }
+
+    /// Runs `sqlite` on SQLite or `postgres` on PostgreSQL; the rows it changed.
+    pub async fn execute_per_dialect(
+        &mut self,
+        sqlite: &str,
+        postgres: &str,
+    ) -> Result<u64, sqlx::Error> {
+        match self {
+            RawConnection::Sqlite(c) => sqlx::raw_sql(sqlx::AssertSqlSafe(sqlite.to_string()))
+                .execute(c)
+                .await
+                .map(|r| r.rows_affected()),
+            RawConnection::Postgres(c) => sqlx::raw_sql(sqlx::AssertSqlSafe(postgres.to_string()))
+                .execute(c)
+                .await
+                .map(|r| r.rows_affected()),
+        }
+    }
+
+    /// The single integer `sql` (the same text on both backends) selects, e.g. a `COUNT(*)`.
+    pub async fn fetch_i64(&mut self, sql: &str) -> Result<i64, sqlx::Error> {
+        let sql = sqlx::AssertSqlSafe(sql.to_string());
+        match self {
+            RawConnection::Sqlite(c) => sqlx::query_scalar(sql).fetch_one(c).await,
+            RawConnection::Postgres(c) => sqlx::query_scalar(sql).fetch_one(c).await,
+        }
+    }
+
+    pub async fn close(self) {
+        match self {
+            RawConnection::Sqlite(c) => c.close().await.ok(),
+            RawConnection::Postgres(c) => c.close().await.ok(),
+        };
+    }
+}
 
 pub struct TestApp {
     pub base_url: String,
@@ -22,45 +163,53 @@ pub struct TestApp {
     pub reader: String,
     pub inspector: String,
     pub engineer: String,
-    /// A second handle on the database, for checks that look under the API.
-    pub store: Store,
-    pub database_path: PathBuf,
+    /// A second handle on the database (either store), for checks that look under the API.
+    pub store: Backend,
+    /// The database (and temporary folder), kept alive for as long as the app; shared with a
+    /// restarted app.
+    pub database: TestDatabase,
     stop: Option<oneshot::Sender<()>>,
     server: Option<JoinHandle<anyhow::Result<()>>>,
-    /// Keeps the temporary folder (and database) alive; shared with a restarted app.
-    pub dir: Arc<tempfile::TempDir>,
 }
 
-/// Test settings: a short lease and poll so restarts are quick.
-pub fn test_settings(path: PathBuf) -> Settings {
-    let mut s = Settings::new(path);
+/// Test settings on `location`: a short lease and poll so restarts are quick, and a small pool on
+/// PostgreSQL (tests run side by side on one server).
+pub fn test_settings(location: PathBuf) -> Settings {
+    let mut s = Settings::new(location);
     s.workers = 2;
     s.lease = Duration::from_millis(600);
     s.poll_interval = Duration::from_millis(50);
     s.shutdown_grace = Duration::from_secs(10);
+    s.database_connections = 6;
     s
 }
 
+/// The service on a fresh database ([`TestDatabase::new`]) with [`test_settings`].
 pub async fn spawn_app() -> TestApp {
-    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
-    let settings = test_settings(dir.path().join("henrybook.db"));
-    spawn_app_with(dir, settings, Arc::new(CoreEngine), None).await
+    let database = TestDatabase::new().await;
+    let settings = database.settings();
+    spawn_app_with(database, settings, Arc::new(CoreEngine), None).await
 }
 
-/// Starts an application on `settings` (its database may already hold data and tokens).
+/// Starts an application on `database` with `settings` (made by [`TestDatabase::settings`], then
+/// changed as the test needs; the database may already hold data and tokens).
 pub async fn spawn_app_with(
-    dir: Arc<tempfile::TempDir>,
+    database: TestDatabase,
     settings: Settings,
     engine: Arc<dyn Engine>,
     tokens: Option<[String; 3]>,
 ) -> TestApp {
-    let database_path = settings.database_path.clone();
+    assert_eq!(
+        settings.database_path,
+        database.location(),
+        "the settings name the test's database"
+    );
     let app = Application::build_with_engine(settings, engine)
         .await
         .expect("the application builds");
     let base_url = format!("http://127.0.0.1:{}", app.port());
     let grpc_url = format!("http://{}", app.grpc_address());
-    let store = Store::open(&database_path)
+    let store = Backend::open(&database.location(), 2)
         .await
         .expect("second store handle");
     let [reader, inspector, engineer] = match tokens {
@@ -85,10 +234,9 @@ pub async fn spawn_app_with(
         inspector,
         engineer,
         store,
-        database_path,
+        database,
         stop: Some(tx),
         server: Some(server),
-        dir,
     }
 }
 
@@ -124,11 +272,14 @@ impl TestApp {
 
     /// Stops without any shutdown work, as a crash would: the server task is aborted, leases stay.
     pub async fn crash(mut self) {
-        self.stop.take();
+        // The stop sender is kept until the server task is gone: dropping it completes the shutdown
+        // future, which would start a graceful shutdown racing the abort.
+        let stop = self.stop.take();
         if let Some(s) = self.server.take() {
             s.abort();
             let _ = s.await;
         }
+        drop(stop);
     }
 
     pub async fn get(&self, path: &str, token: &str) -> reqwest::Response {

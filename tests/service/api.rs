@@ -5,7 +5,7 @@
 use henrybook::model::{Section, SectionKind};
 use henrybook_tests::repo_root;
 use henrybook_tests::service::{
-    TestApp, simple_model, spawn_app, spawn_app_with, synthetic_csv, test_settings,
+    TestApp, TestBackend, TestDatabase, simple_model, spawn_app, spawn_app_with, synthetic_csv,
 };
 use serde_json::{Value, json};
 use std::sync::Arc;
@@ -28,6 +28,27 @@ async fn upload_synthetic(app: &TestApp, part: &str, lot: &str, csv: Vec<u8>) ->
     assert_eq!(r.status(), 202, "{}", r.text().await.unwrap_or_default());
     let body: Value = r.json().await.unwrap();
     body["fit_id"].as_i64().unwrap()
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_service_runs_on_the_database_the_suite_was_asked_for() {
+    // HENRYBOOK_TEST_BACKEND picks the store: the application and the second handle are on it, and
+    // on the same database (what the API stores, the handle reads).
+    let app = spawn_app().await;
+    let expected = match TestBackend::chosen() {
+        TestBackend::Sqlite => "sqlite",
+        TestBackend::Postgres => "postgres",
+    };
+    assert_eq!(app.store.kind(), expected);
+    assert_eq!(app.database.backend(), TestBackend::chosen());
+    app.create_part("K-1", json!({"dcr_max_ohm": 0.2})).await;
+    let part = app
+        .store
+        .part(&henrybook::registry::ids::PartNumber::parse("K-1").unwrap())
+        .await
+        .unwrap();
+    assert_eq!(part.part_number, "K-1");
+    app.stop().await;
 }
 
 fn numbers(v: &Value) -> Vec<String> {
@@ -353,10 +374,10 @@ async fn a_token_records_when_it_last_authenticated_a_request_at_most_once_a_min
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn malformed_uploads_are_refused_with_a_problem_and_nothing_is_stored() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.max_body_bytes = 64 * 1024;
-    let app = spawn_app_with(dir, settings, Arc::new(henrybook::jobs::CoreEngine), None).await;
+    let app = spawn_app_with(db, settings, Arc::new(henrybook::jobs::CoreEngine), None).await;
     app.create_part("P-1", json!({})).await;
     let good = demo_file("OMW-L47U-GD/lot-2618A_analyser.csv");
     let ok = [("part_number", "P-1"), ("lot", "L1"), ("method", "direct")];
@@ -961,7 +982,6 @@ async fn verdicts_drift_approvals_and_refits_are_recorded() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_record_is_tamper_evident() {
-    use sqlx::Connection;
     // Arrange: a part with limits, one fitted lot, approved: audit rows about the part and the fit.
     let app = spawn_app().await;
     app.create_part("T-1", json!({"dcr_max_ohm": 0.1})).await;
@@ -991,30 +1011,41 @@ async fn the_record_is_tamper_evident() {
     assert_eq!(ready["audit_chain"], true, "{ready}");
     assert_eq!(ready["audit_head_hash"], json!(clean.head_hash));
 
-    let url = format!("sqlite://{}", app.database_path.display());
-    let mut raw = sqlx::SqliteConnection::connect(&url).await.unwrap();
-    // Through SQL the trail cannot be rewritten, not even by INSERT OR REPLACE (which deletes the old
-    // row without firing delete triggers).
-    let replace = sqlx::query(
-        "INSERT OR REPLACE INTO audit (audit_id, at_ms, actor, action) VALUES (1, 0, 'x', 'y')",
-    )
-    .execute(&mut raw)
-    .await;
+    let mut raw = app.database.raw().await;
+    // Through SQL the trail cannot be rewritten, not even by a replacing insert (SQLite's INSERT OR
+    // REPLACE deletes the old row without firing delete triggers; PostgreSQL's ON CONFLICT updates).
+    let replace = raw
+        .execute_per_dialect(
+            "INSERT OR REPLACE INTO audit (audit_id, at_ms, actor, action) VALUES (1, 0, 'x', 'y')",
+            "INSERT INTO audit (audit_id, at_ms, actor, action) VALUES (1, 0, 'x', 'y') \
+             ON CONFLICT (audit_id) DO UPDATE SET actor = excluded.actor, action = excluded.action",
+        )
+        .await;
     assert!(
         replace.unwrap_err().to_string().contains("append-only"),
         "REPLACE refused"
     );
-    let update = sqlx::query("UPDATE audit SET reason = 'x' WHERE audit_id = 1")
-        .execute(&mut raw)
+    let update = raw
+        .execute("UPDATE audit SET reason = 'x' WHERE audit_id = 1")
         .await;
-    assert!(update.is_err(), "UPDATE refused");
+    assert!(
+        update.unwrap_err().to_string().contains("append-only"),
+        "UPDATE refused"
+    );
+    let delete = raw.execute("DELETE FROM audit WHERE audit_id = 1").await;
+    assert!(
+        delete.unwrap_err().to_string().contains("append-only"),
+        "DELETE refused"
+    );
 
     // A verdict set by hand is caught: it is not what the result and the limits give.
-    sqlx::query("UPDATE fits SET verdict = 'fail' WHERE fit_id = ?")
-        .bind(f)
-        .execute(&mut raw)
+    let changed = raw
+        .execute(&format!(
+            "UPDATE fits SET verdict = 'fail' WHERE fit_id = {f}"
+        ))
         .await
         .unwrap();
+    assert_eq!(changed, 1);
     let found = app.store.verify_integrity().await.unwrap();
     assert!(
         found
@@ -1025,25 +1056,28 @@ async fn the_record_is_tamper_evident() {
     );
 
     // Going around the triggers: a row forged onto the end breaks the chain, and /readyz says so.
-    sqlx::query("DROP TRIGGER audit_no_update")
-        .execute(&mut raw)
-        .await
-        .unwrap();
-    sqlx::query(
+    raw.execute_per_dialect(
+        "DROP TRIGGER audit_no_update",
+        "DROP TRIGGER audit_no_update ON audit",
+    )
+    .await
+    .unwrap();
+    raw.execute(
         "INSERT INTO audit (audit_id, at_ms, actor, action, prev_hash, hash) \
          SELECT MAX(audit_id) + 1, 0, 'intruder', 'fit-approved', 'x', 'y' FROM audit",
     )
-    .execute(&mut raw)
     .await
     .unwrap();
     let r = app.get("/readyz", &app.reader).await;
     assert_eq!(r.status(), 503);
     assert!(!app.store.audit_chain_ok().await.0);
     // An old row changed in place shows in the full check (at every start, and `henrybook verify`).
-    sqlx::query("UPDATE audit SET reason = 'rewritten' WHERE audit_id = 1")
-        .execute(&mut raw)
+    let changed = raw
+        .execute("UPDATE audit SET reason = 'rewritten' WHERE audit_id = 1")
         .await
         .unwrap();
+    assert_eq!(changed, 1);
+    raw.close().await;
     let after = app.store.verify_integrity().await.unwrap();
     assert!(
         after

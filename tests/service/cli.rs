@@ -5,7 +5,9 @@
 use henrybook::cli;
 use henrybook::fit::derived;
 use henrybook::model::{ImpedanceModel, LumpedModel};
+use henrybook::store::Backend;
 use henrybook::sweep::NoiseModel;
+use henrybook_tests::service::TestDatabase;
 use henrybook_tests::synth::*;
 use num_complex::Complex64;
 use serde_json::Value;
@@ -418,9 +420,11 @@ fn at_adds_l_and_q_columns_to_the_table() {
 
 #[test]
 fn token_list_shows_every_token_and_revoke_stops_one() {
-    let dir = temp_dir("tokens");
-    let db = dir.join("tokens.db");
-    let db = db.to_str().unwrap();
+    // On the database the service tests run on (HENRYBOOK_TEST_BACKEND).
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    let database = runtime.block_on(TestDatabase::new());
+    let location = database.location();
+    let db = location.to_str().unwrap();
     let (code, token, err) = run(&[
         "token",
         "create",
@@ -471,9 +475,8 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
     // The inspector's token authenticates a request (as the service checks it): the list shows
     // when, and the reader's token stays unused.
     let before = henrybook::store::now_ms();
-    let runtime = tokio::runtime::Runtime::new().unwrap();
     runtime.block_on(async {
-        let store = henrybook::store::Store::open(Path::new(db)).await.unwrap();
+        let store = Backend::open(Path::new(db), 2).await.unwrap();
         assert!(store.authenticate(&token).await.unwrap().is_some());
         store.close().await;
     });
@@ -513,13 +516,13 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
 
     // The revoked token authenticates nobody; the other one still does.
     runtime.block_on(async {
-        let store = henrybook::store::Store::open(Path::new(db)).await.unwrap();
+        let store = Backend::open(Path::new(db), 2).await.unwrap();
         assert!(store.authenticate(&token).await.unwrap().is_none());
         assert!(store.authenticate(other.trim()).await.unwrap().is_some());
         assert!(store.verify_integrity().await.unwrap().ok());
         store.close().await;
     });
-    std::fs::remove_dir_all(dir).ok();
+    drop(database);
 }
 
 #[test]

@@ -6,7 +6,7 @@
 
 use henrybook::jobs::CoreEngine;
 use henrybook_tests::service::{
-    TestApp, simple_model, spawn_app_with, synthetic_csv, test_settings,
+    TestApp, TestDatabase, simple_model, spawn_app_with, synthetic_csv,
 };
 use std::sync::Arc;
 use std::time::Duration;
@@ -17,10 +17,10 @@ use tokio::net::TcpStream;
 const PATIENCE: Duration = Duration::from_secs(20);
 
 async fn app_with(change: impl FnOnce(&mut henrybook::settings::Settings)) -> TestApp {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     change(&mut settings);
-    spawn_app_with(dir, settings, Arc::new(CoreEngine), None).await
+    spawn_app_with(db, settings, Arc::new(CoreEngine), None).await
 }
 
 async fn connect(app: &TestApp) -> TcpStream {
@@ -338,12 +338,12 @@ async fn during_the_unready_notice_the_service_answers_but_is_unready_and_claims
     // are still served for the notice, and fits uploaded meanwhile stay queued for another replica
     // or the next start; then the listeners close. Nothing uploaded is lost.
     let notice = Duration::from_secs(3);
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.unready_notice = notice;
     settings.shutdown_grace = Duration::from_secs(2);
     settings.drain_timeout = Duration::from_secs(10);
-    let mut app = spawn_app_with(dir.clone(), settings.clone(), Arc::new(CoreEngine), None).await;
+    let mut app = spawn_app_with(db.clone(), settings.clone(), Arc::new(CoreEngine), None).await;
     app.create_part("N-1", serde_json::json!({})).await;
     let ready = app.client.get(app.url("/readyz")).send().await.unwrap();
     assert_eq!(ready.status(), 200);
@@ -398,7 +398,7 @@ async fn during_the_unready_notice_the_service_answers_but_is_unready_and_claims
         signalled.elapsed()
     );
     // The next start runs the queued fit.
-    let again = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let again = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
     let done = again.wait_for_fit(fit_id, PATIENCE).await;
     assert_eq!(done["status"], "succeeded", "{done}");
     again.stop().await;

@@ -12,6 +12,7 @@
 use henrybook::app::Application;
 use henrybook::settings::Settings;
 use henrybook::store::tokens::Role;
+use henrybook_tests::service::TestDatabase;
 use henrybook_tests::{reference_python, repo_root};
 use serde_json::Value;
 use std::process::Command;
@@ -36,8 +37,8 @@ fn int(v: &Value) -> i64 {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_dashboard_shows_queue_plots_approvals_and_upload_errors_in_a_real_browser() {
     // Arrange: the real service on a free loopback port with its own database, one token per role.
-    let dir = tempfile::tempdir().unwrap();
-    let mut settings = Settings::new(dir.path().join("henrybook.db"));
+    let database = TestDatabase::new().await;
+    let mut settings = Settings::new(database.location());
     settings.workers = 2;
     let app = Application::build(settings).await.unwrap();
     let base = format!("http://127.0.0.1:{}", app.port());

@@ -11,7 +11,7 @@ use henrybook::jobs::{CoreEngine, Engine};
 use henrybook::model::{Section, SectionKind};
 use henrybook::sweep::{ReadOptions, Sweep, SweepError};
 use henrybook_tests::service::{
-    TestApp, grpc_request, simple_model, spawn_app, spawn_app_with, synthetic_csv, test_settings,
+    TestApp, TestDatabase, grpc_request, simple_model, spawn_app, spawn_app_with, synthetic_csv,
 };
 use serde_json::{Value, json};
 use std::sync::Arc;
@@ -1543,12 +1543,12 @@ impl Engine for SlowEngine {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_watch_ends_with_a_cancelled_fit_and_with_unavailable_when_the_service_stops() {
-    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
-    let settings = test_settings(dir.path().join("henrybook.db"));
+    let db = TestDatabase::new().await;
+    let settings = db.settings();
     let engine = Arc::new(SlowEngine {
         delay: Duration::from_secs(4),
     });
-    let app = spawn_app_with(dir, settings, engine, None).await;
+    let app = spawn_app_with(db, settings, engine, None).await;
     let mut c = clients(&app).await;
     app.create_part("W-1", json!({})).await;
     let model = simple_model(1e-5, 0.05, 5e-12);
@@ -2297,12 +2297,12 @@ async fn every_operation_http_offers_answers_the_same_over_grpc() {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_fit_cancelled_and_retried_over_grpc_ends_as_over_http() {
     // Arrange: fits held back for a while, so each is still queued or running when cancelled.
-    let dir = Arc::new(tempfile::tempdir().expect("temp dir"));
-    let settings = test_settings(dir.path().join("henrybook.db"));
+    let db = TestDatabase::new().await;
+    let settings = db.settings();
     let engine = Arc::new(SlowEngine {
         delay: Duration::from_secs(4),
     });
-    let app = spawn_app_with(dir, settings, engine, None).await;
+    let app = spawn_app_with(db, settings, engine, None).await;
     let mut c = clients(&app).await;
     app.create_part("C-1", json!({})).await;
     let model = simple_model(1e-5, 0.05, 5e-12);

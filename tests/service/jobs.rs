@@ -6,7 +6,7 @@ use henrybook::fit::{FitControl, FitError, FitOptions, FitReport};
 use henrybook::jobs::{CoreEngine, Engine};
 use henrybook::sweep::{ReadOptions, Sweep, SweepError};
 use henrybook_tests::service::{
-    TestApp, simple_model, spawn_app_with, synthetic_csv, test_settings,
+    TestApp, TestDatabase, simple_model, spawn_app_with, synthetic_csv,
 };
 use serde_json::{Value, json};
 use std::collections::HashMap;
@@ -86,10 +86,10 @@ async fn successes(app: &TestApp) -> HashMap<i64, usize> {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn after_a_crash_queued_and_running_jobs_all_finish_and_none_twice() {
     // Arrange: a slow pool with jobs queued and running, then a crash (no shutdown work at all).
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let settings = db.settings();
     let app = spawn_app_with(
-        dir.clone(),
+        db.clone(),
         settings.clone(),
         Arc::new(SlowEngine {
             delay: Duration::from_secs(3),
@@ -108,7 +108,7 @@ async fn after_a_crash_queued_and_running_jobs_all_finish_and_none_twice() {
     app.crash().await;
 
     // Act: start again on the same database.
-    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
 
     // Assert: every fit succeeds, each result is written exactly once.
     let mut reruns = 0;
@@ -130,11 +130,11 @@ async fn after_a_crash_queued_and_running_jobs_all_finish_and_none_twice() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_graceful_shutdown_gives_unfinished_jobs_back_and_the_next_start_runs_them() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.shutdown_grace = Duration::from_millis(200);
     let app = spawn_app_with(
-        dir.clone(),
+        db.clone(),
         settings.clone(),
         Arc::new(SlowEngine {
             delay: Duration::from_secs(30),
@@ -153,7 +153,7 @@ async fn a_graceful_shutdown_gives_unfinished_jobs_back_and_the_next_start_runs_
     );
 
     // Nothing is left running or failed: the interrupted jobs are queued again, attempts not counted.
-    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
     for id in &ids {
         let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
         assert_eq!(f["status"], "succeeded", "{f}");
@@ -168,11 +168,11 @@ async fn a_graceful_shutdown_gives_unfinished_jobs_back_and_the_next_start_runs_
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_running_fit_can_be_cancelled_and_retried() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     let app = spawn_app_with(
-        dir,
+        db,
         settings,
         Arc::new(SlowEngine {
             delay: Duration::from_secs(2),
@@ -247,14 +247,14 @@ async fn assert_busy(r: reqwest::Response, status: u16, kind: &str) {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn past_the_queue_bounds_uploads_and_refits_are_refused_with_retry_after() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 2;
     settings.max_queued_fits = 3;
     let app = spawn_app_with(
-        dir,
+        db,
         settings,
         Arc::new(SlowEngine {
             delay: Duration::from_secs(60),
@@ -319,13 +319,13 @@ async fn past_the_queue_bounds_uploads_and_refits_are_refused_with_retry_after()
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_part_over_its_bound_is_resource_exhausted_over_grpc() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 1;
     let app = spawn_app_with(
-        dir,
+        db,
         settings,
         Arc::new(SlowEngine {
             delay: Duration::from_secs(60),
@@ -360,12 +360,12 @@ async fn a_part_over_its_bound_is_resource_exhausted_over_grpc() {
 async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
     // Options reach the database only through the checks at upload and refit; a row stored by an
     // older build (or edited by hand) must fail its own fit, with the option named, not the worker.
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     let app = spawn_app_with(
-        dir.clone(),
+        db.clone(),
         settings.clone(),
         Arc::new(SlowEngine {
             delay: Duration::from_secs(60),
@@ -376,22 +376,21 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
     let ids = upload_n(&app, 2).await;
     let tokens = app.tokens();
     app.stop().await;
-    let db = sqlx::SqlitePool::connect(&format!("sqlite:{}", dir.path().join("h.db").display()))
-        .await
-        .unwrap();
+    let mut raw = db.raw().await;
     for (id, options) in ids.iter().zip([
         r#"{"time_limit_s": 1e300}"#,
         r#"{"family": "rational", "rational_order": 2000}"#,
     ]) {
-        sqlx::query("UPDATE fits SET options_json = ? WHERE fit_id = ?")
-            .bind(options)
-            .bind(id)
-            .execute(&db)
+        let changed = raw
+            .execute(&format!(
+                "UPDATE fits SET options_json = '{options}' WHERE fit_id = {id}"
+            ))
             .await
             .unwrap();
+        assert_eq!(changed, 1);
     }
-    db.close().await;
-    let app = spawn_app_with(dir, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    raw.close().await;
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
     for (id, named) in ids.iter().zip(["time_limit_s", "rational_order"]) {
         let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
         assert_eq!(f["status"], "failed", "{f}");
@@ -428,12 +427,12 @@ impl Engine for ReaderChangedAfterUpload {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_stored_sweep_that_no_longer_reads_fails_as_unreadable_naming_the_line() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let settings = db.settings();
     let engine = ReaderChangedAfterUpload {
         reads: std::sync::atomic::AtomicUsize::new(0),
     };
-    let app = spawn_app_with(dir, settings, Arc::new(engine), None).await;
+    let app = spawn_app_with(db, settings, Arc::new(engine), None).await;
     let id = upload_n(&app, 1).await[0];
     let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
     assert_eq!(f["status"], "failed", "{f}");
@@ -444,13 +443,13 @@ async fn a_stored_sweep_that_no_longer_reads_fails_as_unreadable_naming_the_line
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_part_at_its_bound_is_refused_before_its_file_is_looked_at() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 1;
     let app = spawn_app_with(
-        dir,
+        db,
         settings,
         Arc::new(SlowEngine {
             delay: Duration::from_secs(60),
@@ -483,13 +482,13 @@ async fn a_part_at_its_bound_is_refused_before_its_file_is_looked_at() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn concurrent_refits_never_take_a_part_past_its_queue_bound() {
-    let dir = Arc::new(tempfile::tempdir().unwrap());
-    let mut settings = test_settings(dir.path().join("h.db"));
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 3;
     let app = spawn_app_with(
-        dir,
+        db,
         settings,
         Arc::new(SlowEngine {
             delay: Duration::from_secs(60),
@@ -546,5 +545,134 @@ async fn concurrent_refits_never_take_a_part_past_its_queue_bound() {
         .filter(|f| f["status"] == "queued" || f["status"] == "running")
         .count();
     assert!(waiting <= 3, "{waiting} fits of the part wait: {fits}");
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn finished_jobs_are_pruned_after_the_retention_and_their_fits_answer_as_before() {
+    // Arrange: one fit succeeds and one is cancelled before it runs, under the default retention
+    // (a week): their job rows stay.
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
+    settings.workers = 1;
+    let app = spawn_app_with(
+        db.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_millis(500),
+        }),
+        None,
+    )
+    .await;
+    let ids = upload_n(&app, 2).await;
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/cancel", ids[1]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200);
+    let mut before = Vec::new();
+    for id in &ids {
+        before.push(app.wait_for_fit(*id, Duration::from_secs(60)).await);
+    }
+    assert_eq!(before[0]["status"], "succeeded", "{}", before[0]);
+    assert_eq!(before[1]["status"], "cancelled", "{}", before[1]);
+    let mut raw = db.raw().await;
+    let count = "SELECT COUNT(*) FROM jobs";
+    assert_eq!(raw.fetch_i64(count).await.unwrap(), 2);
+    let tokens = app.tokens();
+    app.stop().await;
+
+    // Act: start again with a retention far shorter than any real one; the pool's housekeeping
+    // deletes both job rows.
+    settings.job_retention = Duration::from_millis(100);
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let deadline = Instant::now() + Duration::from_secs(30);
+    loop {
+        let rows = raw.fetch_i64(count).await.unwrap();
+        if rows == 0 {
+            break;
+        }
+        assert!(Instant::now() < deadline, "{rows} job rows still there");
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+
+    // Assert: the fits answer as before, attempts included.
+    for (id, was) in ids.iter().zip(&before) {
+        let now = app.wait_for_fit(*id, Duration::from_secs(1)).await;
+        assert_eq!(&now, was);
+    }
+    // A finished fit without its job row is still a finished fit: a cancel conflicts (409), it is
+    // not unknown.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/cancel", ids[0]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 409, "{}", r.text().await.unwrap_or_default());
+    // A retry queues the pruned job again, and it runs.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/retry", ids[1]),
+            &app.inspector,
+            &json!({}),
+        )
+        .await;
+    assert_eq!(r.status(), 200, "{}", r.text().await.unwrap_or_default());
+    let retried = app.wait_for_fit(ids[1], Duration::from_secs(60)).await;
+    assert_eq!(retried["status"], "succeeded", "{retried}");
+    assert_eq!(retried["attempts"], 1, "{retried}");
+    assert_eq!(successes(&app).await.len(), 2);
+    let report = app.store.verify_integrity().await.unwrap();
+    assert!(report.ok(), "{report:?}");
+    raw.close().await;
+    app.stop().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_service_dropped_during_its_drain_leaves_no_worker_pool_running_behind() {
+    // Arrange: a fit running (held back for 30 s) and a long grace, so the drain waits for the pool.
+    let db = TestDatabase::new().await;
+    let mut settings = db.settings();
+    settings.workers = 1;
+    let app = spawn_app_with(
+        db.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(30),
+        }),
+        None,
+    )
+    .await;
+    let id = upload_n(&app, 1).await[0];
+    wait_for_running(&app).await;
+    let tokens = app.tokens();
+
+    // Act: ask for a graceful shutdown, wait until both listeners are closed (the drain now waits for
+    // the pool), then drop the service there, as an aborted task or a runtime shut down does.
+    let mut app = app;
+    app.signal_stop();
+    let grpc_address = app.grpc_url.trim_start_matches("http://").to_string();
+    let deadline = Instant::now() + Duration::from_secs(20);
+    while app.client.get(app.url("/healthz")).send().await.is_ok()
+        || tokio::net::TcpStream::connect(&grpc_address).await.is_ok()
+    {
+        assert!(Instant::now() < deadline, "the listeners stay open");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    app.crash().await;
+
+    // Assert: the next start runs the abandoned job again after its lease, its first run counted.
+    // (A pool left running behind would give the job back at the end of its grace, uncounted, or
+    // write the result itself: attempts 1 either way.)
+    let app = spawn_app_with(db, settings, Arc::new(CoreEngine), Some(tokens)).await;
+    let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
+    assert_eq!(f["status"], "succeeded", "{f}");
+    assert_eq!(f["attempts"], 2, "the abandoned run counts");
+    assert_eq!(successes(&app).await.get(&id), Some(&1));
     app.stop().await;
 }

@@ -1380,5 +1380,26 @@ async fn worker_outcomes_through_the_backend_answer_the_same_on_both_stores() {
     for id in 1..=3 {
         same!(b, s => s.fit_detail(id)).unwrap();
     }
+    // Pruning takes the two finished jobs (cancelled, failed), never the queued one; the fits answer
+    // as before, a cancel of a pruned fit conflicts, and a retry queues it again.
+    let later = henrybook::store::now_ms() + 60_000;
+    let pruned = same!(b, s => s.prune_finished_jobs(later, 10), debug_view).unwrap();
+    assert_eq!(pruned, 2);
+    same!(b, s => s.prune_finished_jobs(later, 10), debug_view).unwrap();
+    for id in 1..=3 {
+        same!(b, s => s.fit_detail(id)).unwrap();
+    }
+    let refused = same!(b, s => s.cancel_fit("insp", 1), debug_view);
+    assert!(
+        matches!(refused, Err(StoreError::Conflict(_))),
+        "{refused:?}"
+    );
+    same!(b, s => s.retry_fit("insp", 2, None), unit).unwrap();
+    same!(b, s => s.fit_detail(2)).unwrap();
+    for store in &backends {
+        let claims = store.claim_jobs(lease, 3, 3).await.unwrap();
+        let ids: Vec<i64> = claims.iter().map(JobClaim::fit_id).collect();
+        assert_eq!(ids, [2, 3], "{}", store.kind());
+    }
     b.assert_same_audit().await;
 }

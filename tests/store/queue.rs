@@ -851,3 +851,66 @@ async fn the_pool_opens_at_most_the_connections_it_is_given() {
     }
     backend.close().await;
 }
+
+#[tokio::test]
+async fn a_pruned_job_queued_again_continues_its_claim_counter_and_an_old_claim_writes_nothing() {
+    let db = TestDb::new().await;
+    let ids = queue_fits(&db.pool, 1).await;
+    let store = henrybook::store::pg::PgStore::new(db.pool.clone());
+    let q = store.queue();
+    let first = q
+        .claim_job(Duration::from_secs(60), 3)
+        .await
+        .unwrap()
+        .unwrap();
+    assert_eq!((first.token, first.attempt), (1, 1));
+    let failed = Outcome::Failed {
+        kind: FailureKind::Internal,
+        error: "stopped".into(),
+    };
+    assert_eq!(q.complete(&[(first, failed)]).await.unwrap(), [true]);
+
+    // Pruned: the row goes, its attempts and claim counter stay on the fit.
+    let later = henrybook::store::now_ms() + 1000;
+    assert_eq!(store.prune_finished_jobs(later, 10).await.unwrap(), 1);
+    let jobs: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM jobs")
+        .fetch_one(&db.pool)
+        .await
+        .unwrap();
+    assert_eq!(jobs, 0);
+    let kept: (i64, i64) =
+        sqlx::query_as("SELECT attempts, job_claim_token FROM fits WHERE fit_id = $1")
+            .bind(ids[0])
+            .fetch_one(&db.pool)
+            .await
+            .unwrap();
+    assert_eq!(kept, (1, 1));
+    assert_eq!(store.fit_detail(ids[0]).await.unwrap().attempts, 1);
+
+    // Retried: the row is made again and the next claim's token is past every earlier one, so the
+    // claim from before the pruning matches nothing.
+    store.retry_fit("test", ids[0], None).await.unwrap();
+    let again = q
+        .claim_job(Duration::from_secs(60), 3)
+        .await
+        .unwrap()
+        .unwrap();
+    assert_eq!((again.fit_id, again.attempt), (ids[0], 1));
+    assert!(again.token > first.token, "{again:?} after {first:?}");
+    assert_eq!(
+        q.complete(&[(first, succeeded("{\"stale\":true}"))])
+            .await
+            .unwrap(),
+        [false]
+    );
+    assert_eq!(
+        fit_row(&db.pool, ids[0]).await.0,
+        "queued",
+        "claimed, not yet started"
+    );
+    // A running job is never pruned.
+    assert_eq!(
+        store.prune_finished_jobs(later + 1000, 10).await.unwrap(),
+        0
+    );
+}

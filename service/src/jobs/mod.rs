@@ -84,6 +84,8 @@ pub struct PoolSettings {
     pub max_attempts: i64,
     pub poll_interval: Duration,
     pub shutdown_grace: Duration,
+    /// How long a finished fit's job row is kept before the pool deletes it.
+    pub job_retention: Duration,
 }
 
 impl From<&Settings> for PoolSettings {
@@ -94,6 +96,7 @@ impl From<&Settings> for PoolSettings {
             max_attempts: s.max_attempts,
             poll_interval: s.poll_interval,
             shutdown_grace: s.shutdown_grace,
+            job_retention: s.job_retention,
         }
     }
 }
@@ -163,14 +166,35 @@ impl Pool {
             }
         };
         let mut maintained = Instant::now();
+        // Finished jobs are pruned at the first housekeeping, then every PRUNE_INTERVAL (or every
+        // retention, when that is shorter).
+        let prune_every = PRUNE_INTERVAL.min(self.settings.job_retention);
+        let mut pruned: Option<Instant> = None;
         loop {
             if *stop.borrow() {
                 break;
             }
             if maintained.elapsed() >= MAINTENANCE_INTERVAL {
                 maintained = Instant::now();
-                if let Err(e) = self.store.maintain().await {
-                    tracing::warn!(error = %e, "the store's housekeeping failed; it runs again later");
+                let prune = pruned.is_none_or(|at| at.elapsed() >= prune_every);
+                let before = prune.then(|| {
+                    let retention_ms =
+                        i64::try_from(self.settings.job_retention.as_millis()).unwrap_or(i64::MAX);
+                    crate::store::now_ms().saturating_sub(retention_ms)
+                });
+                match self.store.maintain(before).await {
+                    Ok(n) => {
+                        if prune {
+                            pruned = Some(Instant::now());
+                        }
+                        if n > 0 {
+                            tracing::info!(job_rows = n, "finished jobs pruned");
+                        }
+                    }
+                    Err(e) => tracing::warn!(
+                        error = %e,
+                        "the store's housekeeping failed; it runs again later"
+                    ),
                 }
             }
             let first = tokio::select! {
@@ -554,6 +578,9 @@ impl RunningJob {
 
 /// How often the pool runs the store's housekeeping ([`crate::store::backend::Backend::maintain`]).
 const MAINTENANCE_INTERVAL: Duration = Duration::from_secs(1);
+
+/// How often the housekeeping deletes the job rows of fits finished longer than the retention ago.
+const PRUNE_INTERVAL: Duration = Duration::from_secs(60);
 
 /// The longest wait between tries of a result write the database could not take for the moment
 /// (tries after 0.25, 0.5, 1 and 2 s: under 4 s in all; a claim whose lease ran out meanwhile and

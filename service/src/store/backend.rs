@@ -27,6 +27,9 @@ use std::time::Duration;
 /// Connections each replica's PostgreSQL pool may open unless `--database-connections` says otherwise.
 pub const POSTGRES_CONNECTIONS: u32 = 16;
 
+/// Most job rows one pruning deletes (a short transaction; the next pruning takes the rest).
+pub const PRUNE_BATCH: i64 = 1000;
+
 /// Where the data is: a SQLite file or a PostgreSQL database.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum Location<'a> {
@@ -160,6 +163,9 @@ forward! {
     fn revoke_token(&self, actor: &str, token_id: i64) -> StoreResult<TokenInfo>;
     fn authenticate(&self, token: &str) -> StoreResult<Option<Caller>>;
     fn verify_integrity(&self) -> StoreResult<IntegrityReport>;
+    /// Deletes the job rows of up to `limit` fits finished before `finished_before_ms`, keeping
+    /// their attempts on the fit; how many rows went.
+    fn prune_finished_jobs(&self, finished_before_ms: i64, limit: i64) -> StoreResult<u64>;
     /// /readyz's audit check (continues from the last row it verified).
     fn audit_chain_ok(&self) -> (bool, Option<String>);
     /// Readiness: the database answers, and every migration is applied.
@@ -322,11 +328,16 @@ impl Backend {
     }
 
     /// Housekeeping the worker pool runs now and then: on PostgreSQL the status-count deltas are
-    /// folded (see [`PgStore::fold_status_counts`]); SQLite keeps its counts in place and has none.
-    pub async fn maintain(&self) -> StoreResult<()> {
-        match self {
-            Backend::Sqlite(_) => Ok(()),
-            Backend::Postgres(p) => p.fold_status_counts().await.map(|_| ()),
+    /// folded (see [`PgStore::fold_status_counts`]; SQLite keeps its counts in place); with
+    /// `prune_finished_before_ms`, the job rows of fits finished before then are deleted, at most
+    /// [`PRUNE_BATCH`] at a time (see `prune_finished_jobs`). How many job rows were deleted.
+    pub async fn maintain(&self, prune_finished_before_ms: Option<i64>) -> StoreResult<u64> {
+        if let Backend::Postgres(p) = self {
+            p.fold_status_counts().await?;
+        }
+        match prune_finished_before_ms {
+            Some(before) => self.prune_finished_jobs(before, PRUNE_BATCH).await,
+            None => Ok(0),
         }
     }
 

@@ -234,17 +234,20 @@ impl Store {
         }
         sqlx::query(
             "UPDATE fits SET status = 'queued', progress = 0, error = NULL, error_kind = NULL, \
-             started_at_ms = NULL, finished_at_ms = NULL WHERE fit_id = ?",
+             started_at_ms = NULL, finished_at_ms = NULL, attempts = 0 WHERE fit_id = ?",
         )
         .bind(fit_id)
         .execute(&mut *tx)
         .await?;
+        // The job row may have been pruned (store::jobs::prune_finished_jobs): made again then.
         sqlx::query(
-            "UPDATE jobs SET state = 'queued', claim_token = NULL, lease_until_ms = NULL, \
-             attempts = 0, cancel_requested = 0, enqueued_at_ms = ? WHERE fit_id = ?",
+            "INSERT INTO jobs (fit_id, state, enqueued_at_ms) VALUES (?, 'queued', ?) \
+             ON CONFLICT (fit_id) DO UPDATE SET state = 'queued', claim_token = NULL, \
+             lease_until_ms = NULL, attempts = 0, cancel_requested = 0, \
+             enqueued_at_ms = excluded.enqueued_at_ms",
         )
-        .bind(now_ms())
         .bind(fit_id)
+        .bind(now_ms())
         .execute(&mut *tx)
         .await?;
         audit(
@@ -475,11 +478,13 @@ where
     })
 }
 
-/// What the detail reads besides the summary (one bound parameter: the fit id).
+/// What the detail reads besides the summary (one bound parameter: the fit id). The attempts come
+/// from the job row while it exists, from the fit once a finished job's row was pruned (0012).
 pub(crate) const DETAIL_SELECT: &str = "SELECT f.report_json, f.verdict_json, f.drift_json, \
     f.options_json, f.engine_version, s.method, s.z0_ohm, s.dcr_ohm, s.temperature_c, s.operator, \
-    s.file_name, s.sha256, j.attempts FROM fits f JOIN sweeps s ON s.sweep_id = f.sweep_id \
-    JOIN jobs j ON j.fit_id = f.fit_id WHERE f.fit_id = ";
+    s.file_name, s.sha256, COALESCE(j.attempts, f.attempts) AS attempts FROM fits f \
+    JOIN sweeps s ON s.sweep_id = f.sweep_id LEFT JOIN jobs j ON j.fit_id = f.fit_id \
+    WHERE f.fit_id = ";
 
 /// The refusal of an action the fit's status does not allow.
 pub(crate) fn not_now(fit_id: i64, status: &str, allowed: &str, done: &str) -> StoreError {

@@ -218,6 +218,38 @@ impl Store {
         tx.commit().await?;
         Ok(done)
     }
+
+    /// Deletes the job rows of up to `limit` fits that finished (succeeded, failed or cancelled)
+    /// before `finished_before_ms`, keeping each job's attempts on its fit (0012); how many rows were
+    /// deleted. A retry of such a fit makes its job row again.
+    pub async fn prune_finished_jobs(
+        &self,
+        finished_before_ms: i64,
+        limit: i64,
+    ) -> StoreResult<u64> {
+        const FINISHED: &str = "SELECT j.fit_id FROM jobs j JOIN fits f ON f.fit_id = j.fit_id \
+            WHERE j.state = 'done' AND f.status IN ('succeeded', 'failed', 'cancelled') \
+            AND f.finished_at_ms < ? ORDER BY j.fit_id LIMIT ?";
+        let mut tx = self.write().await?;
+        sqlx::query(sqlx::AssertSqlSafe(format!(
+            "UPDATE fits SET attempts = (SELECT j.attempts FROM jobs j WHERE j.fit_id = fits.fit_id) \
+             WHERE fit_id IN ({FINISHED})"
+        )))
+        .bind(finished_before_ms)
+        .bind(limit)
+        .execute(&mut *tx)
+        .await?;
+        let deleted = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "DELETE FROM jobs WHERE fit_id IN ({FINISHED})"
+        )))
+        .bind(finished_before_ms)
+        .bind(limit)
+        .execute(&mut *tx)
+        .await?
+        .rows_affected();
+        tx.commit().await?;
+        Ok(deleted)
+    }
 }
 
 /// The body of [`Store::claim_jobs`], inside the caller's transaction.

@@ -166,7 +166,8 @@ impl PgStore {
         bounds: Option<QueueBounds>,
     ) -> StoreResult<()> {
         let mut tx = self.pool.begin().await?;
-        // The job row first, as in the queue.
+        // The job row first, as in the queue (a pruned job's row is made again below, its claim
+        // counter continuing from the one kept on the fit).
         sqlx::query("SELECT 1 FROM jobs WHERE fit_id = $1 FOR UPDATE")
             .bind(fit_id)
             .execute(&mut *tx)
@@ -185,11 +186,14 @@ impl PgStore {
         }
         sqlx::query(
             "WITH j AS ( \
-                 UPDATE jobs SET state = 'queued', lease_until_ms = NULL, attempts = 0, \
-                     cancel_requested = false, enqueued_at_ms = $2 WHERE fit_id = $1 \
+                 INSERT INTO jobs (fit_id, state, claim_token, enqueued_at_ms) \
+                 SELECT fit_id, 'queued', job_claim_token, $2 FROM fits WHERE fit_id = $1 \
+                 ON CONFLICT (fit_id) DO UPDATE SET state = 'queued', lease_until_ms = NULL, \
+                     attempts = 0, cancel_requested = false, \
+                     enqueued_at_ms = excluded.enqueued_at_ms \
              ) \
              UPDATE fits SET status = 'queued', progress = 0, error = NULL, error_kind = NULL, \
-                 started_at_ms = NULL, finished_at_ms = NULL WHERE fit_id = $1",
+                 started_at_ms = NULL, finished_at_ms = NULL, attempts = 0 WHERE fit_id = $1",
         )
         .bind(fit_id)
         .bind(now_ms())

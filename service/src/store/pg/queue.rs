@@ -452,17 +452,17 @@ time); retry it to run it again', s.attempts) END, \
 
 /// The body of [`PgQueue::cancel`], inside the caller's transaction (its first lock is the job row).
 pub async fn cancel_in(conn: &mut PgConnection, fit_id: i64) -> StoreResult<Cancel> {
-    // Jobs before fits, as everywhere in the queue.
-    let job: Option<String> =
-        sqlx::query_scalar("SELECT state FROM jobs WHERE fit_id = $1 FOR UPDATE")
-            .bind(fit_id)
-            .fetch_optional(&mut *conn)
-            .await?;
+    // Jobs before fits, as everywhere in the queue. A finished fit's job row may be gone
+    // (pruned): the fit's status answers then, as on SQLite.
+    sqlx::query("SELECT 1 FROM jobs WHERE fit_id = $1 FOR UPDATE")
+        .bind(fit_id)
+        .execute(&mut *conn)
+        .await?;
     let status: Option<String> = sqlx::query_scalar("SELECT status FROM fits WHERE fit_id = $1")
         .bind(fit_id)
         .fetch_optional(&mut *conn)
         .await?;
-    let (Some(_), Some(status)) = (job, status) else {
+    let Some(status) = status else {
         return Err(StoreError::NotFound(format!(
             "no fit {fit_id} in the queue"
         )));

@@ -135,6 +135,37 @@ impl PgStore {
         Ok(before)
     }
 
+    /// Deletes the job rows of up to `limit` fits that finished (succeeded, failed or cancelled)
+    /// before `finished_before_ms`, keeping each job's attempts and claim counter on its fit (0012);
+    /// how many rows were deleted. Job rows first, then fits (the lock order); rows another
+    /// transaction holds (a retry) are skipped, for the next pruning.
+    pub async fn prune_finished_jobs(
+        &self,
+        finished_before_ms: i64,
+        limit: i64,
+    ) -> StoreResult<u64> {
+        let pruned = sqlx::query(
+            "WITH finished AS ( \
+                 SELECT j.fit_id FROM jobs j JOIN fits f ON f.fit_id = j.fit_id \
+                 WHERE j.state = 'done' AND f.status IN ('succeeded', 'failed', 'cancelled') \
+                   AND f.finished_at_ms < $1 \
+                 ORDER BY j.fit_id LIMIT $2 \
+                 FOR UPDATE OF j SKIP LOCKED \
+             ), gone AS ( \
+                 DELETE FROM jobs j USING finished WHERE j.fit_id = finished.fit_id \
+                 RETURNING j.fit_id, j.attempts, j.claim_token \
+             ) \
+             UPDATE fits f SET attempts = gone.attempts, job_claim_token = gone.claim_token \
+             FROM gone WHERE f.fit_id = gone.fit_id",
+        )
+        .bind(finished_before_ms)
+        .bind(limit)
+        .execute(&self.pool)
+        .await?
+        .rows_affected();
+        Ok(pruned)
+    }
+
     /// Fits per status: the sums of the deltas the `fit_status_counts` triggers append (0004).
     pub async fn queue_counts(&self) -> StoreResult<QueueCounts> {
         let rows: Vec<(String, i64)> = sqlx::query_as(
