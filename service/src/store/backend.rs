@@ -134,13 +134,10 @@ macro_rules! forward {
 }
 
 forward! {
-    fn create_part(&self, actor: &str, part_number: &PartNumber, description: &str, limits: &Limits) -> StoreResult<()>;
     fn part_row(&self, part_number: &PartNumber) -> StoreResult<PartRow>;
     fn part(&self, part_number: &PartNumber) -> StoreResult<Part>;
     fn update_limits(&self, actor: &str, part_number: &PartNumber, limits: &Limits) -> StoreResult<()>;
     fn query_parts(&self, query: &PartQuery) -> StoreResult<PartPage>;
-    fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded>;
-    fn upload_bounded(&self, actor: &str, new: NewSweep, bounds: Option<QueueBounds>) -> StoreResult<Uploaded>;
     fn sweep_file(&self, sweep_id: i64) -> StoreResult<NamedFile>;
     fn job_input(&self, fit_id: i64) -> StoreResult<JobInput>;
     fn queue_counts(&self) -> StoreResult<QueueCounts>;
@@ -153,12 +150,9 @@ forward! {
     fn cancel_fit(&self, actor: &str, fit_id: i64) -> StoreResult<bool>;
     fn retry_fit(&self, actor: &str, fit_id: i64, bounds: Option<QueueBounds>) -> StoreResult<()>;
     fn refit(&self, actor: &str, fit_id: i64, options_json: &str, options_key: &str, bounds: Option<QueueBounds>) -> StoreResult<i64>;
-    fn approve_fit(&self, actor: &str, fit_id: i64, reason: Option<&str>, overriding: bool) -> StoreResult<()>;
-    fn reject_fit(&self, actor: &str, fit_id: i64, reason: &str) -> StoreResult<()>;
     fn lot_fits(&self, part_id: i64) -> StoreResult<Vec<LotFit>>;
     fn fit_provenance(&self, fit_id: i64) -> StoreResult<FitProvenance>;
     fn assessment_basis(&self, fit_id: i64) -> StoreResult<(Basis, Option<String>)>;
-    fn create_token(&self, role: Role, label: Option<&str>) -> StoreResult<(i64, String)>;
     fn list_tokens(&self) -> StoreResult<Vec<TokenInfo>>;
     fn revoke_token(&self, actor: &str, token_id: i64) -> StoreResult<TokenInfo>;
     fn authenticate(&self, token: &str) -> StoreResult<Option<Caller>>;
@@ -170,6 +164,102 @@ forward! {
     fn audit_chain_ok(&self) -> (bool, Option<String>);
     /// Readiness: the database answers, and every migration is applied.
     fn readiness(&self) -> (bool, bool);
+}
+
+/// Refuses text holding a NUL character (U+0000): PostgreSQL cannot store it in text (SQLite
+/// could), so both refuse it alike, as a bad input, before anything is written.
+fn storable(what: &str, text: &str) -> StoreResult<()> {
+    if text.contains('\0') {
+        return Err(StoreError::Invalid(format!(
+            "{what} contains a NUL character (U+0000), which cannot be stored"
+        )));
+    }
+    Ok(())
+}
+
+/// The free text of an upload, each checked with [`storable`].
+fn storable_upload(new: &NewSweep) -> StoreResult<()> {
+    storable("the operator", &new.operator)?;
+    storable("the file name", &new.file.name)?;
+    for fixture in [&new.fixture_open, &new.fixture_short]
+        .into_iter()
+        .flatten()
+    {
+        storable("the fixture file name", &fixture.name)?;
+    }
+    storable("the options", &new.options_json)
+}
+
+/// The operations that store free text: checked with [`storable`], then forwarded.
+impl Backend {
+    pub async fn create_part(
+        &self,
+        actor: &str,
+        part_number: &PartNumber,
+        description: &str,
+        limits: &Limits,
+    ) -> StoreResult<()> {
+        storable("the description", description)?;
+        match self {
+            Backend::Sqlite(s) => s.create_part(actor, part_number, description, limits).await,
+            Backend::Postgres(p) => p.create_part(actor, part_number, description, limits).await,
+        }
+    }
+
+    pub async fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded> {
+        storable_upload(&new)?;
+        match self {
+            Backend::Sqlite(s) => s.upload(actor, new).await,
+            Backend::Postgres(p) => p.upload(actor, new).await,
+        }
+    }
+
+    pub async fn upload_bounded(
+        &self,
+        actor: &str,
+        new: NewSweep,
+        bounds: Option<QueueBounds>,
+    ) -> StoreResult<Uploaded> {
+        storable_upload(&new)?;
+        match self {
+            Backend::Sqlite(s) => s.upload_bounded(actor, new, bounds).await,
+            Backend::Postgres(p) => p.upload_bounded(actor, new, bounds).await,
+        }
+    }
+
+    pub async fn approve_fit(
+        &self,
+        actor: &str,
+        fit_id: i64,
+        reason: Option<&str>,
+        overriding: bool,
+    ) -> StoreResult<()> {
+        storable("the reason", reason.unwrap_or_default())?;
+        match self {
+            Backend::Sqlite(s) => s.approve_fit(actor, fit_id, reason, overriding).await,
+            Backend::Postgres(p) => p.approve_fit(actor, fit_id, reason, overriding).await,
+        }
+    }
+
+    pub async fn reject_fit(&self, actor: &str, fit_id: i64, reason: &str) -> StoreResult<()> {
+        storable("the reason", reason)?;
+        match self {
+            Backend::Sqlite(s) => s.reject_fit(actor, fit_id, reason).await,
+            Backend::Postgres(p) => p.reject_fit(actor, fit_id, reason).await,
+        }
+    }
+
+    pub async fn create_token(
+        &self,
+        role: Role,
+        label: Option<&str>,
+    ) -> StoreResult<(i64, String)> {
+        storable("the label", label.unwrap_or_default())?;
+        match self {
+            Backend::Sqlite(s) => s.create_token(role, label).await,
+            Backend::Postgres(p) => p.create_token(role, label).await,
+        }
+    }
 }
 
 impl Backend {
