@@ -105,6 +105,9 @@ async fn text_with_a_nul_character_is_refused_alike_on_both_backends_and_nothing
         )
         .await;
     assert_eq!(r.status(), 200);
+    // A search text is never stored, but PostgreSQL refuses it as a parameter all the same.
+    let r = app.get("/api/v1/parts?q=ch%00oke", &app.reader).await;
+    assert_eq!(r.status(), 422);
     app.stop().await;
 }
 

@@ -121,9 +121,9 @@ async fn refit(
 #[serde(deny_unknown_fields)]
 pub struct Decision {
     /// Why: optional for a plain approval, required for an approval with `override`. A reason of only
-    /// spaces is refused.
+    /// spaces, or holding a NUL character (U+0000), is refused.
     #[serde(default)]
-    #[schema(min_length = 1, pattern = r"\S")]
+    #[schema(min_length = 1, pattern = r"^[^\x00]*[^\s\x00][^\x00]*$")]
     pub reason: Option<String>,
     /// Approve a fit that fails its limits or whose model is poor anyway (the audit records it).
     #[serde(default, rename = "override")]
@@ -166,8 +166,8 @@ async fn approve(
 #[derive(Debug, Deserialize, utoipa::ToSchema)]
 #[serde(deny_unknown_fields)]
 pub struct Rejection {
-    /// What is wrong with the fit (required, not blank).
-    #[schema(min_length = 1, pattern = r"\S")]
+    /// What is wrong with the fit (required, not blank, no NUL character).
+    #[schema(min_length = 1, pattern = r"^[^\x00]*[^\s\x00][^\x00]*$")]
     pub reason: String,
 }
 

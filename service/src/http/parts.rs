@@ -36,7 +36,9 @@ pub struct NewPart {
     /// 1 to 64 characters of letters, digits and `-_.+/#`.
     #[schema(pattern = r"^[A-Za-z0-9_.+/#-]{1,64}$")]
     pub part_number: String,
+    /// Free text; no NUL character (U+0000).
     #[serde(default)]
+    #[schema(pattern = r"^[^\x00]*$")]
     pub description: String,
     #[serde(default, deserialize_with = "super::problem::object_only")]
     pub limits: Limits,

@@ -39,6 +39,8 @@ pub struct UploadForm {
     #[schema(exclusive_minimum = 0.0)]
     dcr_ohm: Option<f64>,
     temperature_c: Option<f64>,
+    /// Free text; no NUL character (U+0000).
+    #[schema(pattern = r"^[^\x00]*$")]
     operator: Option<String>,
     /// Fit options as JSON (the engine's FitOptions; every field optional).
     options: Option<String>,

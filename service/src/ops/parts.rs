@@ -18,7 +18,8 @@ use serde::Deserialize;
 #[into_params(parameter_in = Query)]
 #[serde(deny_unknown_fields)]
 pub struct PartQueryInput {
-    /// Substring of the part number or description.
+    /// Substring of the part number or description (no NUL character).
+    #[param(pattern = r"^[^\x00]*$")]
     pub q: Option<String>,
     /// Which fit of each part answers: `approved` (its approved baseline; the default), `latest` (the
     /// newest succeeded fit, whatever its verdict) or `latest-passing` (the newest whose model is ok and
@@ -81,6 +82,12 @@ pub fn part_query(p: PartQueryInput) -> OpsResult<PartQuery> {
         None | Some("") => None,
         Some(c) => Some(Cursor::decode(c).map_err(OpsError::validation)?),
     };
+    // PostgreSQL cannot hold U+0000 in text, not even as a parameter: refused alike on both stores.
+    if p.q.as_deref().is_some_and(|q| q.contains('\0')) {
+        return Err(OpsError::validation(
+            "q contains a NUL character (U+0000), which no text may hold",
+        ));
+    }
     Ok(PartQuery {
         q: p.q.filter(|s| !s.trim().is_empty()),
         source: match (p.answer_from.as_deref(), p.approved_only) {
