@@ -473,6 +473,10 @@ pub fn bottom_inductance(
         return None;
     }
     let omega = |k: usize| 2.0 * std::f64::consts::PI * sweep.frequency_hz[k];
+    let model_im: Vec<f64> = picked
+        .iter()
+        .map(|&k| model.impedance(sweep.frequency_hz[k]).im)
+        .collect();
     let data_h = median(
         picked
             .iter()
@@ -482,13 +486,15 @@ pub fn bottom_inductance(
     let model_h = median(
         picked
             .iter()
-            .map(|&k| model.impedance(sweep.frequency_hz[k]).im / omega(k))
+            .zip(&model_im)
+            .map(|(&k, im)| im / omega(k))
             .collect(),
     );
     let n = picked.len() as f64;
     let mean_sq: f64 = picked
         .iter()
-        .map(|&k| (sweep.sigma_ohm[k] / model.impedance(sweep.frequency_hz[k]).im).powi(2))
+        .zip(&model_im)
+        .map(|(&k, im)| (sweep.sigma_ohm[k] / im).powi(2))
         .sum::<f64>()
         / n;
     Some(BottomReading {

@@ -116,13 +116,15 @@ fn foreign_claim(claim: &JobClaim) -> StoreError {
     ))
 }
 
-/// Forwards each listed operation, with the same arguments and answer, to the open store.
+/// Forwards each listed operation, with the same arguments and answer, to the open store. An entry
+/// ending in `=> check` runs that check (a `StoreResult<()>`) first and forwards only when it passes.
 macro_rules! forward {
-    ($( $(#[$doc:meta])* fn $name:ident(&self $(, $arg:ident: $ty:ty)*) -> $ret:ty; )*) => {
+    ($( $(#[$doc:meta])* fn $name:ident(&self $(, $arg:ident: $ty:ty)*) -> $ret:ty $(=> $check:expr)?; )*) => {
         impl Backend {
             $(
                 $(#[$doc])*
                 pub async fn $name(&self $(, $arg: $ty)*) -> $ret {
+                    $( $check?; )?
                     match self {
                         Backend::Sqlite(s) => s.$name($($arg),*).await,
                         Backend::Postgres(p) => p.$name($($arg),*).await,
@@ -190,76 +192,18 @@ fn storable_upload(new: &NewSweep) -> StoreResult<()> {
     storable("the options", &new.options_json)
 }
 
-/// The operations that store free text: checked with [`storable`], then forwarded.
-impl Backend {
-    pub async fn create_part(
-        &self,
-        actor: &str,
-        part_number: &PartNumber,
-        description: &str,
-        limits: &Limits,
-    ) -> StoreResult<()> {
-        storable("the description", description)?;
-        match self {
-            Backend::Sqlite(s) => s.create_part(actor, part_number, description, limits).await,
-            Backend::Postgres(p) => p.create_part(actor, part_number, description, limits).await,
-        }
-    }
-
-    pub async fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded> {
-        storable_upload(&new)?;
-        match self {
-            Backend::Sqlite(s) => s.upload(actor, new).await,
-            Backend::Postgres(p) => p.upload(actor, new).await,
-        }
-    }
-
-    pub async fn upload_bounded(
-        &self,
-        actor: &str,
-        new: NewSweep,
-        bounds: Option<QueueBounds>,
-    ) -> StoreResult<Uploaded> {
-        storable_upload(&new)?;
-        match self {
-            Backend::Sqlite(s) => s.upload_bounded(actor, new, bounds).await,
-            Backend::Postgres(p) => p.upload_bounded(actor, new, bounds).await,
-        }
-    }
-
-    pub async fn approve_fit(
-        &self,
-        actor: &str,
-        fit_id: i64,
-        reason: Option<&str>,
-        overriding: bool,
-    ) -> StoreResult<()> {
-        storable("the reason", reason.unwrap_or_default())?;
-        match self {
-            Backend::Sqlite(s) => s.approve_fit(actor, fit_id, reason, overriding).await,
-            Backend::Postgres(p) => p.approve_fit(actor, fit_id, reason, overriding).await,
-        }
-    }
-
-    pub async fn reject_fit(&self, actor: &str, fit_id: i64, reason: &str) -> StoreResult<()> {
-        storable("the reason", reason)?;
-        match self {
-            Backend::Sqlite(s) => s.reject_fit(actor, fit_id, reason).await,
-            Backend::Postgres(p) => p.reject_fit(actor, fit_id, reason).await,
-        }
-    }
-
-    pub async fn create_token(
-        &self,
-        role: Role,
-        label: Option<&str>,
-    ) -> StoreResult<(i64, String)> {
-        storable("the label", label.unwrap_or_default())?;
-        match self {
-            Backend::Sqlite(s) => s.create_token(role, label).await,
-            Backend::Postgres(p) => p.create_token(role, label).await,
-        }
-    }
+// The operations that store free text: checked with [`storable`], then forwarded.
+forward! {
+    fn create_part(&self, actor: &str, part_number: &PartNumber, description: &str, limits: &Limits) -> StoreResult<()>
+        => storable("the description", description);
+    fn upload(&self, actor: &str, new: NewSweep) -> StoreResult<Uploaded> => storable_upload(&new);
+    fn upload_bounded(&self, actor: &str, new: NewSweep, bounds: Option<QueueBounds>) -> StoreResult<Uploaded>
+        => storable_upload(&new);
+    fn approve_fit(&self, actor: &str, fit_id: i64, reason: Option<&str>, overriding: bool) -> StoreResult<()>
+        => storable("the reason", reason.unwrap_or_default());
+    fn reject_fit(&self, actor: &str, fit_id: i64, reason: &str) -> StoreResult<()> => storable("the reason", reason);
+    fn create_token(&self, role: Role, label: Option<&str>) -> StoreResult<(i64, String)>
+        => storable("the label", label.unwrap_or_default());
 }
 
 impl Backend {
