@@ -70,6 +70,47 @@ pub struct Application {
     grpc_address: SocketAddr,
     state: AppState,
     pool: Pool,
+    /// The SHA-256 of the tokens file as last applied.
+    tokens_digest: Option<String>,
+}
+
+/// Who the audit trail names for the changes a tokens file makes in the service.
+pub const TOKENS_FILE_ACTOR: &str = "tokens file";
+
+/// Reads the tokens file every `every` and applies it when its content changed since `digest`. A file
+/// that cannot be read or has an error is logged and changes nothing: the tokens stay as they were.
+async fn watch_tokens_file(
+    store: Backend,
+    path: std::path::PathBuf,
+    every: std::time::Duration,
+    mut digest: String,
+) {
+    let mut tick = tokio::time::interval(every);
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    tick.tick().await;
+    loop {
+        tick.tick().await;
+        let shown = path.display();
+        let (tokens, now) = match crate::store::token_file::load(&path) {
+            Ok(read) => read,
+            Err(e) => {
+                tracing::error!(file = %shown, "the tokens file is not applied, the tokens stay as they were: {e:#}");
+                continue;
+            }
+        };
+        if now == digest {
+            continue;
+        }
+        match store.sync_tokens(TOKENS_FILE_ACTOR, &tokens).await {
+            Ok(sync) => {
+                tracing::info!(file = %shown, "tokens file changed and applied: {}", sync.summary());
+                digest = now;
+            }
+            Err(e) => {
+                tracing::error!(file = %shown, error = %e, "cannot apply the changed tokens file; will try again");
+            }
+        }
+    }
 }
 
 impl Application {
@@ -84,12 +125,26 @@ impl Application {
         settings: Settings,
         engine: Arc<dyn Engine>,
     ) -> anyhow::Result<Application> {
+        // A bad tokens file stops the start before the database is opened.
+        let tokens = match &settings.tokens_file {
+            Some(path) => Some(crate::store::token_file::load(path)?),
+            None => None,
+        };
         let store = Backend::open(&settings.database_path, settings.database_connections).await?;
         tracing::info!(
             database = %crate::store::backend::shown(&settings.database_path),
             backend = store.kind(),
             "the store is open"
         );
+        let mut tokens_digest = None;
+        if let (Some(path), Some((tokens, digest))) = (&settings.tokens_file, tokens) {
+            let sync = store
+                .sync_tokens(TOKENS_FILE_ACTOR, &tokens)
+                .await
+                .with_context(|| format!("cannot apply the tokens file {}", path.display()))?;
+            tracing::info!(file = %path.display(), "tokens file applied: {}", sync.summary());
+            tokens_digest = Some(digest);
+        }
         let listener = TcpListener::bind(settings.listen)
             .await
             .with_context(|| format!("cannot listen on {}", settings.listen))?;
@@ -115,6 +170,7 @@ impl Application {
             grpc_address,
             state,
             pool,
+            tokens_digest,
         })
     }
 
@@ -179,6 +235,16 @@ impl Application {
             self.state.clone(),
             stop_rx.clone(),
         ))));
+        // The tokens file is watched while the service runs (aborted with `run`).
+        let _tokens_watch = match (&self.state.settings.tokens_file, self.tokens_digest) {
+            (Some(path), Some(digest)) => Some(AbortOnDrop(Some(tokio::spawn(watch_tokens_file(
+                store.clone(),
+                path.clone(),
+                self.state.settings.tokens_file_recheck,
+                digest,
+            ))))),
+            _ => None,
+        };
         let router = crate::http::router(self.state);
         tracing::info!(address = %self.address, grpc_address = %self.grpc_address, "henrybook is serving");
         // The listeners close `notice` after the signal; what is left of the drain is theirs.

@@ -1,4 +1,4 @@
-//! The service's commands: `serve`, `token create|list|revoke`, `demo` (server_cli/demo.rs),
+//! The service's commands: `serve`, `token create|list|revoke|sync`, `demo` (server_cli/demo.rs),
 //! `verify` and `migrate` (server_cli/migrate.rs). They are part of the one command tree of [`crate::cli`], which parses the arguments and
 //! hands a [`ServiceCommand`] to [`run`].
 
@@ -7,6 +7,7 @@ use crate::store::Backend;
 use crate::store::tokens::Role;
 use clap::Subcommand;
 use std::io::Write;
+use std::path::PathBuf;
 
 #[derive(Debug, Subcommand)]
 pub enum ServiceCommand {
@@ -23,7 +24,7 @@ finish for the grace period and gives the rest back to the queue.",
 10^6 bytes, not 2^20)."
     )]
     Serve(ServeArgs),
-    /// Create, list and revoke the bearer tokens of a database.
+    /// Create, list, revoke and sync (from a file) the bearer tokens of a database.
     Token {
         #[command(subcommand)]
         command: TokenCommand,
@@ -99,6 +100,23 @@ an unknown id is an error (exit status 1)."
         /// The token's id, as `token list` shows it.
         #[arg(value_name = "ID")]
         id: i64,
+        #[command(flatten)]
+        database: DatabaseArgs,
+    },
+    /// Make the database's tokens agree with a tokens file (ROLE LABEL TOKEN per line).
+    #[command(
+        long_about = "Make the database's tokens agree with a tokens file, as `serve --tokens-file` \
+does at start: one token per line as ROLE LABEL TOKEN separated by blanks (a token has at least 32 \
+printable ASCII characters; blank lines and lines starting with # are skipped). Tokens new to the \
+database are added, tokens whose role or label the file changed are changed, and tokens that came \
+from the file and are no longer in it are revoked; tokens made with `token create` are left alone, \
+and a revoked token stays revoked. Only each token's SHA-256 is stored. Every change is in the audit \
+trail. A file with an error changes nothing (exit status 1, with the line)."
+    )]
+    Sync {
+        /// The tokens file.
+        #[arg(long, value_name = "FILE")]
+        file: PathBuf,
         #[command(flatten)]
         database: DatabaseArgs,
     },
@@ -205,27 +223,40 @@ async fn token(
             let when = crate::store::rfc3339;
             writeln!(
                 out,
-                "{:<4} {:<10} {:<25} {:<25} {:<25} label",
-                "id", "role", "created", "last-used", "revoked"
+                "{:<4} {:<10} {:<25} {:<25} {:<25} {:<7} label",
+                "id", "role", "created", "last-used", "revoked", "source"
             )?;
             for t in tokens {
                 writeln!(
                     out,
-                    "{:<4} {:<10} {:<25} {:<25} {:<25} {}",
+                    "{:<4} {:<10} {:<25} {:<25} {:<25} {:<7} {}",
                     t.token_id,
                     t.role.as_str(),
                     when(t.created_at_ms),
                     t.last_used_at_ms.map_or("-".to_string(), when),
                     t.revoked_at_ms.map_or("-".to_string(), when),
+                    if t.from_file { "file" } else { "created" },
                     t.label
                 )?;
             }
         }
+        TokenCommand::Sync { file, database } => {
+            // The file is read and checked before the database is opened.
+            let (tokens, _) = crate::store::token_file::load(&file)?;
+            let store = Backend::open(&database.path, database.connections).await?;
+            let result = store.sync_tokens(&command_line_actor(), &tokens).await;
+            store.close().await;
+            writeln!(
+                out,
+                "tokens file {} applied to {}: {}",
+                file.display(),
+                crate::store::backend::shown(&database.path),
+                result?.summary()
+            )?;
+        }
         TokenCommand::Revoke { id, database } => {
             let store = Backend::open(&database.path, database.connections).await?;
-            let actor = std::env::var("USER")
-                .map(|u| format!("command line ({u})"))
-                .unwrap_or_else(|_| "command line".into());
+            let actor = command_line_actor();
             let result = store.revoke_token(&actor, id).await;
             store.close().await;
             let t = result?;
@@ -240,6 +271,13 @@ async fn token(
         }
     }
     Ok(())
+}
+
+/// Who the audit trail names for a change made from the command line.
+fn command_line_actor() -> String {
+    std::env::var("USER")
+        .map(|u| format!("command line ({u})"))
+        .unwrap_or_else(|_| "command line".into())
 }
 
 async fn verify(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result<()> {

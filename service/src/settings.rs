@@ -87,6 +87,11 @@ pub struct ServeArgs {
     /// are deleted by the worker pool's housekeeping. The fit, its result and its attempts stay.
     #[arg(long, env = "HENRYBOOK_JOB_RETENTION_S", value_name = "S", value_parser = si, default_value_t = 7.0 * 86400.0)]
     pub job_retention_s: f64,
+    /// A tokens file (ROLE LABEL TOKEN per line; a cluster Secret mounted as a file, say): applied
+    /// at start (a bad file stops the start, changing nothing) and again whenever its content
+    /// changes, read every 30 s. Tokens from the file that leave it are revoked; see `token sync`.
+    #[arg(long, env = "HENRYBOOK_TOKENS_FILE", value_name = "FILE")]
+    pub tokens_file: Option<PathBuf>,
     /// Log format.
     #[arg(long, env = "HENRYBOOK_LOG_FORMAT", value_enum, default_value = "text")]
     pub log_format: LogFormat,
@@ -147,6 +152,10 @@ pub struct Settings {
     pub poll_interval: Duration,
     /// How long a finished fit's job row is kept before the worker pool deletes it.
     pub job_retention: Duration,
+    /// The tokens file applied at start and whenever it changes ([`crate::store::token_file`]).
+    pub tokens_file: Option<PathBuf>,
+    /// How often the tokens file is read again to see whether it changed.
+    pub tokens_file_recheck: Duration,
 }
 
 impl Settings {
@@ -174,6 +183,8 @@ impl Settings {
             unready_notice: Duration::ZERO,
             poll_interval: Duration::from_millis(500),
             job_retention: Duration::from_secs(7 * 86400),
+            tokens_file: None,
+            tokens_file_recheck: Duration::from_secs(30),
         }
     }
 }
@@ -268,6 +279,8 @@ impl TryFrom<&ServeArgs> for Settings {
             unready_notice,
             poll_interval: (lease / 4).min(Duration::from_millis(500)),
             job_retention: seconds("--job-retention-s", a.job_retention_s)?,
+            tokens_file: a.tokens_file.clone(),
+            tokens_file_recheck: Duration::from_secs(30),
         })
     }
 }

@@ -6,6 +6,7 @@ use henrybook::cli;
 use henrybook::fit::derived;
 use henrybook::model::{ImpedanceModel, LumpedModel};
 use henrybook::store::Backend;
+use henrybook::store::tokens::Role;
 use henrybook::sweep::NoiseModel;
 use henrybook_tests::service::TestDatabase;
 use henrybook_tests::synth::*;
@@ -256,7 +257,7 @@ fn impedance_prints_the_arrays_the_file_implies() {
 }
 
 /// Every command path of the command line, for the help and version checks.
-const COMMANDS: [&str; 11] = [
+const COMMANDS: [&str; 12] = [
     "",
     "fit",
     "impedance",
@@ -265,6 +266,7 @@ const COMMANDS: [&str; 11] = [
     "token create",
     "token list",
     "token revoke",
+    "token sync",
     "demo",
     "verify",
     "migrate",
@@ -452,7 +454,15 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
     let header: Vec<&str> = out.lines().next().unwrap().split_whitespace().collect();
     assert_eq!(
         header,
-        ["id", "role", "created", "last-used", "revoked", "label"]
+        [
+            "id",
+            "role",
+            "created",
+            "last-used",
+            "revoked",
+            "source",
+            "label"
+        ]
     );
     assert!(!out.contains(&token), "the list never shows a token");
     let listed = rows(&out);
@@ -463,9 +473,10 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
         ["-", "-"],
         "never used, not revoked: {out}"
     );
-    assert_eq!(listed[0][5..].join(" "), "bench 3");
+    assert_eq!(listed[0][5], "created");
+    assert_eq!(listed[0][6..].join(" "), "bench 3");
     assert_eq!(listed[1][..2], ["2", "reader"]);
-    assert_eq!(listed[1][5], "reader-2");
+    assert_eq!(listed[1][6], "reader-2");
     // Created is an RFC 3339 time.
     assert!(
         henrybook::store::parse_rfc3339(&listed[0][2]).is_some(),
@@ -526,6 +537,96 @@ fn token_list_shows_every_token_and_revoke_stops_one() {
 }
 
 #[test]
+fn token_sync_applies_a_tokens_file_and_a_bad_file_changes_nothing() {
+    // On the database the service tests run on (HENRYBOOK_TEST_BACKEND).
+    let runtime = tokio::runtime::Runtime::new().unwrap();
+    let database = runtime.block_on(TestDatabase::new());
+    let location = database.location();
+    let db = location.to_str().unwrap();
+    let dir = temp_dir("token-sync");
+    let file = dir.join("tokens");
+    let path = file.to_str().unwrap();
+    let (lead, tool) = ("a1".repeat(32), "b2".repeat(32));
+    std::fs::write(
+        &file,
+        format!("# the lab's tokens\nengineer lead {lead}\nreader tool {tool}\n"),
+    )
+    .unwrap();
+    let (code, out, err) = run(&["token", "sync", "--file", path, "--database", db]);
+    assert_eq!(code, 0, "{err}");
+    assert!(
+        out.contains("2 added, 0 changed, 0 revoked, 0 unchanged"),
+        "{out}"
+    );
+    assert!(!out.contains(&lead), "a token is never printed");
+
+    // tool is dropped from the file: revoked. lead moves to reader.
+    std::fs::write(&file, format!("reader lead {lead}\n")).unwrap();
+    let (code, out, err) = run(&["token", "sync", "--file", path, "--database", db]);
+    assert_eq!(code, 0, "{err}");
+    assert!(
+        out.contains("0 added, 1 changed, 1 revoked, 0 unchanged; changed: lead (reader); revoked: tool (reader)"),
+        "{out}"
+    );
+    let (_, out, _) = run(&["token", "list", "--database", db]);
+    let rows: Vec<Vec<&str>> = out
+        .lines()
+        .skip(1)
+        .map(|l| l.split_whitespace().collect())
+        .collect();
+    assert_eq!(rows.len(), 2, "{out}");
+    assert_eq!(
+        (rows[0][1], rows[0][4], rows[0][5], rows[0][6]),
+        ("reader", "-", "file", "lead")
+    );
+    assert!(
+        henrybook::store::parse_rfc3339(rows[1][4]).is_some(),
+        "tool is revoked: {out}"
+    );
+
+    // A file with an error on line 2: exit status 1 naming the line, and nothing changes.
+    std::fs::write(
+        &file,
+        format!("engineer lead {lead}\nengineer short 1234\n"),
+    )
+    .unwrap();
+    let (code, _, err) = run(&["token", "sync", "--file", path, "--database", db]);
+    assert_eq!(code, 1);
+    assert!(
+        err.contains(&format!(
+            "the tokens file {path}, line 2: the token of short has 4 characters"
+        )),
+        "{err}"
+    );
+    let (_, after, _) = run(&["token", "list", "--database", db]);
+    assert_eq!(after, out, "the bad file changed nothing");
+    let (code, _, err) = run(&[
+        "token",
+        "sync",
+        "--file",
+        "/nonexistent/tokens",
+        "--database",
+        db,
+    ]);
+    assert_eq!(code, 1);
+    assert!(
+        err.contains("cannot open the tokens file /nonexistent/tokens"),
+        "{err}"
+    );
+
+    runtime.block_on(async {
+        let store = Backend::open(&location, 2).await.unwrap();
+        let caller = store.authenticate(&lead).await.unwrap().unwrap();
+        assert_eq!((caller.role, caller.label.as_str()), (Role::Reader, "lead"));
+        assert!(store.authenticate(&tool).await.unwrap().is_none());
+        assert!(store.verify_integrity().await.unwrap().ok());
+        store.close().await;
+    });
+    drop(database);
+    std::fs::remove_dir_all(dir).ok();
+}
+
+#[test]
 fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
     let dir = temp_dir("migrate");
     let db = dir.join("fresh.db");
@@ -559,6 +660,42 @@ fn migrate_brings_a_new_file_and_a_postgres_database_to_the_current_schema() {
             "{out}"
         );
     }
+    // A `sqlite:` URL's parameters: mode=rw opens only a file that exists; mode=ro and anything
+    // else are refused with the reason, and no file is made.
+    let rw = format!("sqlite:{}?mode=rw", db.display());
+    let (code, out, err) = run(&["migrate", "--database", &rw]);
+    assert_eq!(code, 0, "{err}");
+    assert!(
+        out.contains(&format!("{versions} migrations applied")),
+        "{out}"
+    );
+    let missing = dir.join("missing.db");
+    for (url, reason) in [
+        (
+            format!("sqlite:{}?mode=rw", missing.display()),
+            "mode=rw does not create one",
+        ),
+        (
+            format!("sqlite:{}?mode=ro", missing.display()),
+            "mode=ro is refused",
+        ),
+        (
+            format!("sqlite:{}?journal=off", missing.display()),
+            "\"journal=off\" is not one",
+        ),
+        ("sqlite::memory:".to_string(), "in-memory database"),
+    ] {
+        let (code, _, err) = run(&["migrate", "--database", &url]);
+        assert_eq!(code, 1, "{url}");
+        assert!(err.contains(reason), "{url}: {err}");
+        assert!(!missing.exists(), "{url} made the file");
+    }
+    // Percent-decoded: a space in the file's name.
+    let spaced = format!("sqlite:{}/with%20space.db", dir.display());
+    let (code, _, err) = run(&["migrate", "--database", &spaced]);
+    assert_eq!(code, 0, "{err}");
+    assert!(dir.join("with space.db").exists());
+
     // An unreachable server is an error with the reason, exit status 1.
     let (code, _, err) = run(&[
         "migrate",

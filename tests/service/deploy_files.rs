@@ -135,6 +135,7 @@ fn the_replica_manifest_has_what_several_replicas_need() {
         kinds(&text),
         [
             "Secret",
+            "Secret",
             "Job",
             "Deployment",
             "Service",
@@ -162,6 +163,48 @@ fn the_replica_manifest_has_what_several_replicas_need() {
         "SQLite has one writer"
     );
     assert!(sqlite.contains("type: Recreate"));
+}
+
+/// Both manifests mount the tokens Secret where `HENRYBOOK_TOKENS_FILE` points, as a directory (a
+/// subPath mount would not see a changed Secret), and their placeholder tokens are refused by the
+/// service's own reader, so neither starts until they are replaced.
+#[test]
+fn the_manifests_give_the_tokens_as_a_file_whose_placeholders_are_refused() {
+    for name in MANIFESTS {
+        let text = read(&deploy(name));
+        assert!(text.contains("name: henrybook-tokens"), "{name}");
+        assert!(
+            text.contains("secret: {secretName: henrybook-tokens}"),
+            "{name}"
+        );
+        assert!(
+            text.contains("{name: tokens, mountPath: /etc/henrybook/tokens, readOnly: true}"),
+            "{name}"
+        );
+        assert!(
+            text.contains("{name: HENRYBOOK_TOKENS_FILE, value: /etc/henrybook/tokens/tokens}"),
+            "{name}: the file is the Secret's key `tokens` in the mounted folder"
+        );
+        assert!(!text.contains("subPath:"), "{name}");
+        // The Secret's `tokens: |` block, as the file the pod will see.
+        let block: String = text
+            .lines()
+            .skip_while(|l| l.trim() != "tokens: |")
+            .skip(1)
+            .take_while(|l| l.starts_with("    ") && !l.trim().is_empty())
+            .map(|l| format!("{}\n", l.trim()))
+            .collect();
+        assert_eq!(block.lines().count(), 2, "{name}: {block:?}");
+        let refusal = henrybook::store::token_file::parse(&block).unwrap_err();
+        assert!(
+            refusal.starts_with("line 1: the token of qa-lead has 26 characters"),
+            "{name}: {refusal}"
+        );
+        // With real tokens in their place the same lines are read.
+        let real = block.replace("replace-with-64-hex-digits", &"ab".repeat(32));
+        let real = real.replacen(&"ab".repeat(32), &"cd".repeat(32), 1);
+        assert_eq!(henrybook::store::token_file::parse(&real).unwrap().len(), 2);
+    }
 }
 
 #[test]

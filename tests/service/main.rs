@@ -17,4 +17,5 @@ mod jobs;
 mod openapi;
 mod pg_replicas;
 mod schemathesis;
+mod tokens_file;
 mod trend_report;

@@ -778,6 +778,63 @@ async fn tokens_answer_the_same_on_both_stores() {
     b.assert_same_audit().await;
 }
 
+/// A tokens file applied to both stores: the same tokens added, changed, revoked and left alone,
+/// the same reports and the same audit rows; applied again it changes nothing.
+#[tokio::test]
+async fn a_tokens_file_is_applied_alike_on_both_stores() {
+    use henrybook::store::token_file::parse;
+    let b = Both::new().await;
+    let (hand_sq, hand_pg) = (
+        b.sq.create_token(Role::Engineer, Some("by hand"))
+            .await
+            .unwrap(),
+        b.pg.create_token(Role::Engineer, Some("by hand"))
+            .await
+            .unwrap(),
+    );
+    let [t1, t2, t3] = ["1", "2", "3"].map(|d| d.repeat(40));
+    let first = parse(&format!(
+        "engineer lead {t1}\nreader tool {t2}\ninspector bench {t3}\n"
+    ))
+    .unwrap();
+    let sync = same!(b, s => s.sync_tokens("tokens file", &first), debug_view).unwrap();
+    assert_eq!((sync.added.len(), sync.unchanged), (3, 0), "{sync:?}");
+    // The second version raises tool's role, drops bench and keeps lead.
+    let second = parse(&format!("engineer lead {t1}\ninspector tool {t2}\n")).unwrap();
+    let sync = same!(b, s => s.sync_tokens("tokens file", &second), debug_view).unwrap();
+    assert_eq!(
+        sync.summary(),
+        "0 added, 1 changed, 1 revoked, 1 unchanged; changed: tool (inspector); revoked: bench \
+         (inspector)"
+    );
+    let again = same!(b, s => s.sync_tokens("tokens file", &second), debug_view).unwrap();
+    assert_eq!(
+        again.summary(),
+        "0 added, 0 changed, 0 revoked, 2 unchanged"
+    );
+    // bench's token is revoked and stays so when it comes back; the hand-made token is untouched.
+    let back = parse(&format!(
+        "engineer lead {t1}\ninspector tool {t2}\nreader bench {t3}\n"
+    ))
+    .unwrap();
+    let sync = same!(b, s => s.sync_tokens("tokens file", &back), debug_view).unwrap();
+    assert_eq!(sync.still_revoked, ["bench (line 3, token 4)"]);
+    for (store, hand) in [
+        (Backend::Sqlite(b.sq.clone()), &hand_sq.1),
+        (Backend::Postgres(b.pg.clone()), &hand_pg.1),
+    ] {
+        let role_of = async |token: &str| store.authenticate(token).await.unwrap().map(|c| c.role);
+        assert_eq!(role_of(&t1).await, Some(Role::Engineer));
+        assert_eq!(role_of(&t2).await, Some(Role::Inspector));
+        assert_eq!(role_of(&t3).await, None);
+        assert_eq!(role_of(hand).await, Some(Role::Engineer));
+    }
+    let list = same!(b, s => s.list_tokens()).unwrap();
+    let from_file: Vec<bool> = list.iter().map(|t| t.from_file).collect();
+    assert_eq!(from_file, [false, true, true, true]);
+    b.assert_same_audit().await;
+}
+
 #[tokio::test]
 async fn a_postgresql_token_records_its_last_use_at_most_once_a_minute() {
     let db = TestDb::new().await;

@@ -12,7 +12,7 @@ use std::io::Write;
 pub async fn run(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result<()> {
     let sql = "SELECT version FROM _sqlx_migrations WHERE success ORDER BY version";
     let place = shown(&database.path);
-    let (versions, expected): (Vec<i64>, Vec<i64>) = match Location::of(&database.path) {
+    let (versions, expected): (Vec<i64>, Vec<i64>) = match Location::of(&database.path)? {
         Location::Postgres(url) => {
             let pool = pg::connect(url, 2).await?;
             pg::migrate(&pool).await?;
@@ -23,8 +23,8 @@ pub async fn run(database: &DatabaseArgs, out: &mut dyn Write) -> anyhow::Result
             pool.close().await;
             (versions, pg::MIGRATOR.iter().map(|m| m.version).collect())
         }
-        Location::Sqlite(path) => {
-            let store = Store::open(path).await?;
+        Location::Sqlite(file) => {
+            let store = Store::open_file(&file).await?;
             let versions = sqlx::query_scalar(sql)
                 .fetch_all(&store.reader)
                 .await

@@ -10,6 +10,7 @@ use super::parts::PartRow;
 use super::pg::{self, PgStore};
 use super::query::PartQuery;
 use super::sweeps::{JobInput, NamedFile, NewSweep, QueueBounds, Uploaded};
+use super::token_file::{FileToken, TokenSync};
 use super::tokens::{Caller, Role, TokenInfo};
 use super::{Store, StoreError, StoreResult};
 use crate::fit::FitReport;
@@ -21,7 +22,7 @@ use crate::registry::wire::{
     FailureKind, FitDetail, FitPage, FitSummary, Part, PartPage, QueueCounts,
 };
 use std::future::Future;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 /// Connections each replica's PostgreSQL pool may open unless `--database-connections` says otherwise.
@@ -33,29 +34,103 @@ pub const PRUNE_BATCH: i64 = 1000;
 /// Where the data is: a SQLite file or a PostgreSQL database.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum Location<'a> {
-    /// A file path (a `sqlite:` or `sqlite://` prefix taken off).
-    Sqlite(&'a Path),
+    /// A SQLite database file.
+    Sqlite(SqliteFile),
     /// A `postgres://` or `postgresql://` URL.
     Postgres(&'a str),
 }
 
+/// A SQLite database file, and whether it is created when missing.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SqliteFile {
+    pub path: PathBuf,
+    /// False for `?mode=rw`: the file must exist already.
+    pub create: bool,
+}
+
+impl SqliteFile {
+    fn created(path: PathBuf) -> SqliteFile {
+        SqliteFile { path, create: true }
+    }
+}
+
+/// What a `sqlite:` URL's parameters may say (`mode=rwc` is what a plain path means).
+const SQLITE_PARAMETERS: &str = "mode=rwc (create the file when missing, the default) or mode=rw \
+(the file must exist)";
+
 impl Location<'_> {
     /// Reads the `--database` value: a PostgreSQL URL, a `sqlite:` URL, or a plain path.
-    pub fn of(location: &Path) -> Location<'_> {
+    ///
+    /// A plain path is taken as it is. A `sqlite:` (or `sqlite://`) URL is read as a URL: its path is
+    /// percent-decoded and `?` starts its parameters, of which `mode=rwc` and `mode=rw` are accepted.
+    /// Refused, each with the reason: an empty path, an in-memory database (each of the service's
+    /// connections would see its own, and the data would go with the process), `mode=ro` (the service
+    /// writes to its database) and any other parameter.
+    pub fn of(location: &Path) -> anyhow::Result<Location<'_>> {
         let Some(text) = location.to_str() else {
-            return Location::Sqlite(location);
+            return Ok(Location::Sqlite(SqliteFile::created(
+                location.to_path_buf(),
+            )));
         };
         if pg::is_postgres_url(text) {
-            return Location::Postgres(text.trim());
+            return Ok(Location::Postgres(text.trim()));
         }
-        match text
+        let Some(url) = text
             .strip_prefix("sqlite://")
             .or_else(|| text.strip_prefix("sqlite:"))
-        {
-            Some(path) => Location::Sqlite(Path::new(path)),
-            None => Location::Sqlite(location),
+        else {
+            refuse_in_memory(text, text)?;
+            return Ok(Location::Sqlite(SqliteFile::created(
+                location.to_path_buf(),
+            )));
+        };
+        let (path, query) = url.split_once('?').unwrap_or((url, ""));
+        let path = percent_encoding::percent_decode_str(path)
+            .decode_utf8()
+            .map_err(|_| {
+                anyhow::anyhow!(
+                    "the database URL {text}: its path is not UTF-8 once percent-decoded"
+                )
+            })?
+            .into_owned();
+        anyhow::ensure!(!path.is_empty(), "the database URL {text} names no file");
+        refuse_in_memory(&path, text)?;
+        let mut create = true;
+        for parameter in query.split('&').filter(|p| !p.is_empty()) {
+            create = match parameter.split_once('=').unwrap_or((parameter, "")) {
+                ("mode", "rwc") => true,
+                ("mode", "rw") => false,
+                ("mode", "ro") => anyhow::bail!(
+                    "the database URL {text}: mode=ro is refused, because the service writes its \
+                     results, audit trail and job queue to its database; accepted: {SQLITE_PARAMETERS}"
+                ),
+                ("mode", "memory") => anyhow::bail!(
+                    "the database URL {text}: mode=memory is refused, because each of the service's \
+                     connections would see a database of its own, gone when the process stops; \
+                     accepted: {SQLITE_PARAMETERS}"
+                ),
+                _ => anyhow::bail!(
+                    "the database URL {text}: the parameter {parameter:?} is not one henrybook takes; \
+                     accepted: {SQLITE_PARAMETERS}"
+                ),
+            };
         }
+        Ok(Location::Sqlite(SqliteFile {
+            path: PathBuf::from(path),
+            create,
+        }))
     }
+}
+
+/// Refuses SQLite's name for an in-memory database (see [`Location::of`]).
+fn refuse_in_memory(path: &str, given: &str) -> anyhow::Result<()> {
+    anyhow::ensure!(
+        path != ":memory:",
+        "the database {given} is an in-memory database, which henrybook refuses: each of the \
+         service's connections would see a database of its own, gone when the process stops; give a \
+         file"
+    );
+    Ok(())
 }
 
 /// The database location as messages and logs show it: a PostgreSQL URL without its password.
@@ -157,6 +232,7 @@ forward! {
     fn assessment_basis(&self, fit_id: i64) -> StoreResult<(Basis, Option<String>)>;
     fn list_tokens(&self) -> StoreResult<Vec<TokenInfo>>;
     fn revoke_token(&self, actor: &str, token_id: i64) -> StoreResult<TokenInfo>;
+    fn sync_tokens(&self, actor: &str, file: &[FileToken]) -> StoreResult<TokenSync>;
     fn authenticate(&self, token: &str) -> StoreResult<Option<Caller>>;
     fn verify_integrity(&self) -> StoreResult<IntegrityReport>;
     /// Deletes the job rows of up to `limit` fits finished before `finished_before_ms`, keeping
@@ -207,11 +283,11 @@ forward! {
 }
 
 impl Backend {
-    /// Opens the store `location` names ([`Location::of`]), applying its migrations.
-    /// Opens the store at `location`; on PostgreSQL with a pool of at most `connections`.
+    /// Opens the store `location` names ([`Location::of`]), applying its migrations; on PostgreSQL
+    /// with a pool of at most `connections`.
     pub async fn open(location: &Path, connections: u32) -> anyhow::Result<Backend> {
-        Ok(match Location::of(location) {
-            Location::Sqlite(path) => Backend::Sqlite(Store::open(path).await?),
+        Ok(match Location::of(location)? {
+            Location::Sqlite(file) => Backend::Sqlite(Store::open_file(&file).await?),
             Location::Postgres(url) => Backend::Postgres(PgStore::open(url, connections).await?),
         })
     }
@@ -391,26 +467,47 @@ mod tests {
 
     #[test]
     fn the_location_names_the_store() {
+        let of = |text: &'static str| Location::of(Path::new(text)).unwrap();
+        let file = |path: &str, create: bool| {
+            Location::Sqlite(SqliteFile {
+                path: PathBuf::from(path),
+                create,
+            })
+        };
         assert_eq!(
-            Location::of(Path::new("postgres://u@h:5432/db")),
+            of("postgres://u@h:5432/db"),
             Location::Postgres("postgres://u@h:5432/db")
         );
         assert_eq!(
-            Location::of(Path::new("postgresql://h/db")),
+            of("postgresql://h/db"),
             Location::Postgres("postgresql://h/db")
         );
-        assert_eq!(
-            Location::of(Path::new("sqlite:///var/lib/hb.db")),
-            Location::Sqlite(Path::new("/var/lib/hb.db"))
+        assert_eq!(of("sqlite:///var/lib/hb.db"), file("/var/lib/hb.db", true));
+        assert_eq!(of("sqlite:data/hb.db"), file("data/hb.db", true));
+        assert_eq!(of("henrybook.db"), file("henrybook.db", true));
+        // A URL's parameters are read as parameters and its path is percent-decoded; a plain path is
+        // taken as it is, `?` and `%` included.
+        assert_eq!(of("sqlite:data/hb.db?mode=rw"), file("data/hb.db", false));
+        assert_eq!(of("sqlite:///var/hb.db?mode=rwc"), file("/var/hb.db", true));
+        assert_eq!(of("sqlite:my%20lab.db"), file("my lab.db", true));
+        assert_eq!(of("odd?name%20.db"), file("odd?name%20.db", true));
+    }
+
+    #[test]
+    fn a_sqlite_url_the_service_cannot_keep_its_data_in_is_refused_with_the_reason() {
+        let refusal = |text: &'static str| Location::of(Path::new(text)).unwrap_err().to_string();
+        assert!(refusal("sqlite:hb.db?mode=ro").contains("mode=ro is refused"));
+        assert!(refusal("sqlite:hb.db?mode=memory").contains("mode=memory is refused"));
+        assert!(refusal("sqlite::memory:").contains("in-memory database"));
+        assert!(refusal(":memory:").contains("in-memory database"));
+        assert!(refusal("sqlite:").contains("names no file"));
+        assert!(refusal("sqlite://?mode=rw").contains("names no file"));
+        let unknown = refusal("sqlite:hb.db?cache=shared");
+        assert!(
+            unknown.contains("\"cache=shared\"") && unknown.contains("accepted: mode=rwc"),
+            "{unknown}"
         );
-        assert_eq!(
-            Location::of(Path::new("sqlite:data/hb.db")),
-            Location::Sqlite(Path::new("data/hb.db"))
-        );
-        assert_eq!(
-            Location::of(Path::new("henrybook.db")),
-            Location::Sqlite(Path::new("henrybook.db"))
-        );
+        assert!(refusal("sqlite:hb%FF.db").contains("not UTF-8"));
     }
 
     #[test]

@@ -20,6 +20,7 @@ pub mod parts;
 pub mod pg;
 pub mod query;
 pub mod sweeps;
+pub mod token_file;
 pub mod tokens;
 
 pub use backend::{Backend, JobClaim};
@@ -100,7 +101,24 @@ pub struct Store {
 impl Store {
     /// Opens (creating when missing) the database file and applies the migrations.
     pub async fn open(path: &Path) -> anyhow::Result<Store> {
-        if let Some(dir) = path.parent()
+        Store::open_file(&backend::SqliteFile {
+            path: path.to_path_buf(),
+            create: true,
+        })
+        .await
+    }
+
+    /// Opens the database file (creating it and its folder when missing, if `file.create` says so)
+    /// and applies the migrations.
+    pub async fn open_file(file: &backend::SqliteFile) -> anyhow::Result<Store> {
+        let path = file.path.as_path();
+        if !file.create {
+            anyhow::ensure!(
+                path.is_file(),
+                "cannot open the database {}: there is no such file, and mode=rw does not create one",
+                path.display()
+            );
+        } else if let Some(dir) = path.parent()
             && !dir.as_os_str().is_empty()
         {
             std::fs::create_dir_all(dir)
@@ -108,7 +126,7 @@ impl Store {
         }
         let options = SqliteConnectOptions::new()
             .filename(path)
-            .create_if_missing(true)
+            .create_if_missing(file.create)
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(SqliteSynchronous::Normal)
             .busy_timeout(Duration::from_secs(10))

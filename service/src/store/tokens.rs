@@ -1,6 +1,7 @@
 //! Bearer tokens: random, shown once at creation, stored only as their SHA-256, with when each last
 //! authenticated a request (to within a minute: see [`LAST_USED_RESOLUTION_MS`]).
 
+use super::token_file::{self, FileToken, STORED_COLUMNS, Step, StoredToken, TokenSync};
 use super::{Store, StoreResult, now_ms, sha256_hex};
 use rand::RngCore;
 use serde::{Deserialize, Serialize};
@@ -54,6 +55,8 @@ pub struct TokenInfo {
     /// not since this was recorded).
     pub last_used_at_ms: Option<i64>,
     pub revoked_at_ms: Option<i64>,
+    /// Whether the token came from a tokens file ([`super::token_file`]), which then governs it.
+    pub from_file: bool,
 }
 
 /// A token's last use is written at most once per this many milliseconds: a request finds it older
@@ -62,10 +65,10 @@ pub const LAST_USED_RESOLUTION_MS: i64 = 60_000;
 
 /// The columns of a [`TokenRow`], in its order (both backends).
 pub(crate) const TOKEN_COLUMNS: &str =
-    "token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms";
+    "token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms, from_file";
 
 /// A token's row as [`TOKEN_COLUMNS`] reads it.
-pub(crate) type TokenRow = (i64, String, String, i64, Option<i64>, Option<i64>);
+pub(crate) type TokenRow = (i64, String, String, i64, Option<i64>, Option<i64>, bool);
 
 /// Prefix that makes a henrybook token recognisable in logs and secret scanners.
 const PREFIX: &str = "hbk_";
@@ -87,7 +90,7 @@ pub(crate) fn label_or_default(label: Option<&str>, role: Role, id: i64) -> Stri
 
 /// A token's row as `henrybook token list` shows it; `None` for a role this build does not know.
 pub(crate) fn token_info(row: TokenRow) -> Option<TokenInfo> {
-    let (token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms) = row;
+    let (token_id, role, label, created_at_ms, last_used_at_ms, revoked_at_ms, from_file) = row;
     Role::parse(&role).map(|role| TokenInfo {
         token_id,
         role,
@@ -95,7 +98,22 @@ pub(crate) fn token_info(row: TokenRow) -> Option<TokenInfo> {
         created_at_ms,
         last_used_at_ms,
         revoked_at_ms,
+        from_file,
     })
+}
+
+/// The row [`token_file::STORED_COLUMNS`] reads, as the sync takes it.
+pub(crate) fn stored_token(
+    (token_id, sha256, role, label, revoked, from_file): (i64, String, String, String, bool, bool),
+) -> StoredToken {
+    StoredToken {
+        token_id,
+        sha256,
+        role,
+        label,
+        revoked,
+        from_file,
+    }
 }
 
 /// The answer for a token id no token has.
@@ -179,7 +197,7 @@ impl Store {
         .bind(token_id)
         .fetch_optional(&mut *tx)
         .await?;
-        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked)) = row else {
+        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked, from_file)) = row else {
             return Err(no_token(token_id));
         };
         if revoked.is_some() {
@@ -208,7 +226,76 @@ impl Store {
             created_at_ms,
             last_used_at_ms,
             revoked_at_ms: Some(now),
+            from_file,
         })
+    }
+
+    /// Makes the tokens agree with a tokens file's (see [`super::token_file`]), in one transaction:
+    /// adds, changes and revokes as [`token_file::plan`] says, each recorded in the audit trail
+    /// under `actor`.
+    pub async fn sync_tokens(&self, actor: &str, file: &[FileToken]) -> StoreResult<TokenSync> {
+        let mut tx = self.write().await?;
+        let stored: Vec<StoredToken> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {STORED_COLUMNS} FROM tokens ORDER BY token_id"
+        )))
+        .fetch_all(&mut *tx)
+        .await?
+        .into_iter()
+        .map(stored_token)
+        .collect();
+        let (steps, report) = token_file::plan(file, &stored);
+        let now = now_ms();
+        for step in steps {
+            let (action, reason) = match step {
+                Step::Add(entry) => {
+                    let id: i64 = sqlx::query_scalar(
+                        "INSERT INTO tokens (token_sha256, role, label, created_at_ms, from_file) \
+                         VALUES (?, ?, ?, ?, 1) RETURNING token_id",
+                    )
+                    .bind(&entry.sha256)
+                    .bind(entry.role.as_str())
+                    .bind(&entry.label)
+                    .bind(now)
+                    .fetch_one(&mut *tx)
+                    .await?;
+                    ("token-added", token_file::added_reason(id, &entry))
+                }
+                Step::Change {
+                    token_id,
+                    role,
+                    label,
+                    reason,
+                } => {
+                    sqlx::query(
+                        "UPDATE tokens SET role = ?, label = ?, from_file = 1 WHERE token_id = ?",
+                    )
+                    .bind(role.as_str())
+                    .bind(&label)
+                    .bind(token_id)
+                    .execute(&mut *tx)
+                    .await?;
+                    ("token-changed", reason)
+                }
+                Step::Revoke {
+                    token_id,
+                    role,
+                    label,
+                } => {
+                    sqlx::query("UPDATE tokens SET revoked_at_ms = ? WHERE token_id = ?")
+                        .bind(now)
+                        .bind(token_id)
+                        .execute(&mut *tx)
+                        .await?;
+                    (
+                        "token-revoked",
+                        token_file::dropped_reason(token_id, &role, &label),
+                    )
+                }
+            };
+            super::audit(&mut tx, actor, action, None, None, Some(&reason)).await?;
+        }
+        tx.commit().await?;
+        Ok(report)
     }
 
     /// The caller a presented token belongs to, or `None` for an unknown or revoked token. A token

@@ -4,11 +4,16 @@
 
 use super::PgStore;
 use super::audit::{self, Entry};
+use crate::store::token_file::{self, FileToken, STORED_COLUMNS, Step, StoredToken, TokenSync};
+use crate::store::tokens::stored_token;
 use crate::store::tokens::{
     Caller, LAST_USED_RESOLUTION_MS, Role, TOKEN_COLUMNS, TokenInfo, TokenRow, already_revoked,
     caller_of, label_or_default, new_token, no_token, revoked_reason, token_info,
 };
 use crate::store::{StoreResult, now_ms, sha256_hex};
+
+/// The advisory lock key a tokens-file sync holds until it commits.
+pub const TOKEN_SYNC_LOCK: i64 = 0x6862_746f_6b65_6e73;
 
 impl PgStore {
     /// Creates a token and returns it in plain text; only its hash is kept.
@@ -57,7 +62,7 @@ impl PgStore {
         .bind(token_id)
         .fetch_optional(&mut *tx)
         .await?;
-        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked)) = row else {
+        let Some((_, role, label, created_at_ms, last_used_at_ms, revoked, from_file)) = row else {
             return Err(no_token(token_id));
         };
         if revoked.is_some() {
@@ -88,7 +93,83 @@ impl PgStore {
             created_at_ms,
             last_used_at_ms,
             revoked_at_ms: Some(now),
+            from_file,
         })
+    }
+
+    /// Makes the tokens agree with a tokens file's, as on SQLite
+    /// ([`crate::store::Store::sync_tokens`]). The transaction holds [`TOKEN_SYNC_LOCK`], so replicas
+    /// that start together with the same file apply it once between them.
+    pub async fn sync_tokens(&self, actor: &str, file: &[FileToken]) -> StoreResult<TokenSync> {
+        let mut tx = self.pool.begin().await?;
+        sqlx::query("SELECT pg_advisory_xact_lock($1)")
+            .bind(TOKEN_SYNC_LOCK)
+            .execute(&mut *tx)
+            .await?;
+        let stored: Vec<StoredToken> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+            "SELECT {STORED_COLUMNS} FROM tokens ORDER BY token_id"
+        )))
+        .fetch_all(&mut *tx)
+        .await?
+        .into_iter()
+        .map(stored_token)
+        .collect();
+        let (steps, report) = token_file::plan(file, &stored);
+        let now = now_ms();
+        let mut entries = Vec::new();
+        for step in steps {
+            let (action, reason) = match step {
+                Step::Add(entry) => {
+                    let id: i64 = sqlx::query_scalar(
+                        "INSERT INTO tokens (token_sha256, role, label, created_at_ms, from_file) \
+                         VALUES ($1, $2, $3, $4, TRUE) RETURNING token_id",
+                    )
+                    .bind(&entry.sha256)
+                    .bind(entry.role.as_str())
+                    .bind(&entry.label)
+                    .bind(now)
+                    .fetch_one(&mut *tx)
+                    .await?;
+                    ("token-added", token_file::added_reason(id, &entry))
+                }
+                Step::Change {
+                    token_id,
+                    role,
+                    label,
+                    reason,
+                } => {
+                    sqlx::query(
+                        "UPDATE tokens SET role = $1, label = $2, from_file = TRUE \
+                         WHERE token_id = $3",
+                    )
+                    .bind(role.as_str())
+                    .bind(&label)
+                    .bind(token_id)
+                    .execute(&mut *tx)
+                    .await?;
+                    ("token-changed", reason)
+                }
+                Step::Revoke {
+                    token_id,
+                    role,
+                    label,
+                } => {
+                    sqlx::query("UPDATE tokens SET revoked_at_ms = $1 WHERE token_id = $2")
+                        .bind(now)
+                        .bind(token_id)
+                        .execute(&mut *tx)
+                        .await?;
+                    (
+                        "token-revoked",
+                        token_file::dropped_reason(token_id, &role, &label),
+                    )
+                }
+            };
+            entries.push(Entry::new(actor, action, None, None, Some(&reason)));
+        }
+        audit::append(&mut tx, &entries).await?;
+        tx.commit().await?;
+        Ok(report)
     }
 
     /// The caller a presented token belongs to, or `None` for an unknown or revoked token; its last
