@@ -78,7 +78,8 @@ pub struct Application {
 pub const TOKENS_FILE_ACTOR: &str = "tokens file";
 
 /// Reads the tokens file every `every` and applies it when its content changed since `digest`. A file
-/// that cannot be read or has an error is logged and changes nothing: the tokens stay as they were.
+/// that cannot be read or has an error is logged (once per distinct error) and changes nothing: the
+/// tokens stay as they were.
 async fn watch_tokens_file(
     store: Backend,
     path: std::path::PathBuf,
@@ -88,16 +89,22 @@ async fn watch_tokens_file(
     let mut tick = tokio::time::interval(every);
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     tick.tick().await;
+    let mut last_error = String::new();
     loop {
         tick.tick().await;
         let shown = path.display();
         let (tokens, now) = match crate::store::token_file::load(&path) {
             Ok(read) => read,
             Err(e) => {
-                tracing::error!(file = %shown, "the tokens file is not applied, the tokens stay as they were: {e:#}");
+                let error = format!("{e:#}");
+                if error != last_error {
+                    tracing::error!(file = %shown, "the tokens file is not applied, the tokens stay as they were: {error}");
+                    last_error = error;
+                }
                 continue;
             }
         };
+        last_error.clear();
         if now == digest {
             continue;
         }
