@@ -1803,6 +1803,8 @@ fn trend_json(t: &proto::PartTrend) -> Value {
             "points": f.points.iter().map(|p| json!({
                 "lot_index": p.lot_index, "value": p.value, "outside_limits": p.outside_limits,
                 "out_of_control": p.out_of_control, "in_run": p.in_run,
+                "beyond_2_sigma_2_of_3": p.beyond_2_sigma_2_of_3,
+                "beyond_1_sigma_4_of_5": p.beyond_1_sigma_4_of_5,
             })).collect::<Vec<_>>(),
         })).collect::<Vec<_>>(),
     }))

@@ -379,6 +379,8 @@ fn figure_trend(f: FigureTrend) -> proto::FigureTrend {
                 outside_limits: p.outside_limits,
                 out_of_control: p.out_of_control,
                 in_run: p.in_run,
+                beyond_2_sigma_2_of_3: p.beyond_2_sigma_2_of_3,
+                beyond_1_sigma_4_of_5: p.beyond_1_sigma_4_of_5,
             })
             .collect(),
     }

@@ -12,11 +12,16 @@
 //!   that have the figure there is no s: no centre line, no control limits and no flags, and
 //!   `control_note` says how many approved lots there are;
 //! - per point: outside the part's limits, outside the control limits (Nelson rule 1 / Western
-//!   Electric rule 1: one point beyond 3σ), and in a run (Nelson rule 2: nine or more points in a row
-//!   on the same side of the centre line). Source, from memory: L. S. Nelson, "The Shewhart Control
-//!   Chart — Tests for Special Causes", Journal of Quality Technology 16(4), 1984, pp. 237–239; the
-//!   Western Electric Statistical Quality Control Handbook (1956) states the same run test with eight
-//!   points. A point exactly on the centre line ends a run (our choice; the rule is silent on ties).
+//!   Electric rule 1: one point beyond 3σ), in a run (Nelson rule 2: nine or more points in a row
+//!   on the same side of the centre line), and the two zone tests: two of three points in a row
+//!   beyond 2σ on the same side (Western Electric rule 2, Nelson rule 5), and four of five in a row
+//!   beyond 1σ on the same side (Western Electric rule 3, Nelson rule 6); the points flagged are the
+//!   ones beyond the zone in such a window, not the point between them. Source, from memory: L. S.
+//!   Nelson, "The Shewhart Control Chart — Tests for Special Causes", Journal of Quality Technology
+//!   16(4), 1984, pp. 237–239; the Western Electric Statistical Quality Control Handbook (1956) states
+//!   the same tests (its run test with eight points). A point exactly on the centre line ends a run,
+//!   and a point exactly on a zone boundary is not beyond it (our choices; the rules are silent on
+//!   ties). Lots without the figure are skipped: "in a row" counts the lots that have it.
 //!
 //! One point per lot: the lot's approved fit (approved now, or approved earlier and superseded by a
 //! later approval, and not rejected since), else its newest succeeded fit with a trustworthy model,
@@ -210,6 +215,12 @@ pub struct TrendPoint {
     pub out_of_control: bool,
     /// Part of nine or more points in a row on one side of the centre line (Nelson rule 2).
     pub in_run: bool,
+    /// One of two (or three) of three points in a row beyond 2σ on the same side of the centre line
+    /// (Western Electric rule 2, Nelson rule 5).
+    pub beyond_2_sigma_2_of_3: bool,
+    /// One of four (or five) of five points in a row beyond 1σ on the same side of the centre line
+    /// (Western Electric rule 3, Nelson rule 6).
+    pub beyond_1_sigma_4_of_5: bool,
 }
 
 /// One figure across the lots. Every number is in `unit`, the SI unit the `figure` name ends in.
@@ -318,6 +329,41 @@ pub fn runs(values: &[Option<f64>], centre: f64, run: usize) -> Vec<bool> {
     flags
 }
 
+/// The zone test "`needed` of `window` points in a row beyond `centre ± k·sigma` on the same side":
+/// which points are beyond the zone, on the side in question, in some window of `window`
+/// consecutive present values that holds at least `needed` of them. Missing values are skipped.
+pub fn zone_test(
+    values: &[Option<f64>],
+    centre: f64,
+    sigma: f64,
+    k: f64,
+    needed: usize,
+    window: usize,
+) -> Vec<bool> {
+    let mut flags = vec![false; values.len()];
+    let present: Vec<(usize, f64)> = values
+        .iter()
+        .enumerate()
+        .filter_map(|(i, v)| v.map(|v| (i, v)))
+        .collect();
+    if sigma <= 0.0 || !sigma.is_finite() {
+        return flags;
+    }
+    for side in [1.0, -1.0] {
+        let beyond = |v: f64| side * (v - centre) > k * sigma;
+        for w in present.windows(window) {
+            if w.iter().filter(|(_, v)| beyond(*v)).count() >= needed {
+                for &(i, v) in w {
+                    if beyond(v) {
+                        flags[i] = true;
+                    }
+                }
+            }
+        }
+    }
+    flags
+}
+
 /// The trend of one figure over `lots` (already one per lot, in order).
 pub fn figure_trend(figure: Figure, lots: &[LotFit], limits: &Limits) -> FigureTrend {
     let values: Vec<Option<f64>> = lots
@@ -333,9 +379,17 @@ pub fn figure_trend(figure: Figure, lots: &[LotFit], limits: &Limits) -> FigureT
     let (limit_low, limit_high) = figure.limits(limits);
     let stats = mean_and_sample_sd(&reference);
     let control = stats.map(|(m, s)| (m - 3.0 * s, m + 3.0 * s));
+    let none = || vec![false; values.len()];
     let in_run = match stats {
         Some((m, _)) => runs(&values, m, RUN_LENGTH),
-        None => vec![false; values.len()],
+        None => none(),
+    };
+    let (two_of_three, four_of_five) = match stats {
+        Some((m, s)) => (
+            zone_test(&values, m, s, 2.0, 2, 3),
+            zone_test(&values, m, s, 1.0, 4, 5),
+        ),
+        None => (none(), none()),
     };
     let points = values
         .iter()
@@ -351,6 +405,8 @@ pub fn figure_trend(figure: Figure, lots: &[LotFit], limits: &Limits) -> FigureT
                 _ => false,
             },
             in_run: in_run[i],
+            beyond_2_sigma_2_of_3: two_of_three[i],
+            beyond_1_sigma_4_of_5: four_of_five[i],
         })
         .collect();
     FigureTrend {
@@ -470,7 +526,74 @@ mod tests {
         assert_eq!(l0.control_high, None);
         assert_eq!(l0.approved_lots, 1);
         assert!(l0.control_note.as_deref().unwrap().contains("at least 2"));
-        assert!(l0.points.iter().all(|p| !p.out_of_control && !p.in_run));
+        assert!(l0.points.iter().all(|p| !p.out_of_control
+            && !p.in_run
+            && !p.beyond_2_sigma_2_of_3
+            && !p.beyond_1_sigma_4_of_5));
+    }
+
+    /// The zone tests on hand-checked series (centre 0, σ 1; the rules as Nelson 1984 states them,
+    /// from memory; ties and skipped lots as the module comment says).
+    #[test]
+    fn two_of_three_beyond_two_sigma_and_four_of_five_beyond_one_sigma_flag_their_points() {
+        let two_of_three = |v: &[Option<f64>]| zone_test(v, 0.0, 1.0, 2.0, 2, 3);
+        let four_of_five = |v: &[Option<f64>]| zone_test(v, 0.0, 1.0, 1.0, 4, 5);
+        let some = |v: &[f64]| v.iter().map(|&x| Some(x)).collect::<Vec<_>>();
+        // 2.5 and 2.2 fall in one window of three; the point between them is not flagged.
+        assert_eq!(
+            two_of_three(&some(&[0.5, 2.5, -0.3, 2.2, 0.1])),
+            [false, true, false, true, false]
+        );
+        // Two of three but on opposite sides, or on the boundary: no flag.
+        assert!(two_of_three(&some(&[2.5, -2.5, 0.0])).iter().all(|&f| !f));
+        assert!(two_of_three(&some(&[2.0, 2.0, 2.0])).iter().all(|&f| !f));
+        // Far apart (a window of three holds only one): no flag.
+        assert!(
+            two_of_three(&some(&[2.5, 0.0, 0.0, 2.5]))
+                .iter()
+                .all(|&f| !f)
+        );
+        // Below, and across a lot without the figure (skipped).
+        assert_eq!(
+            two_of_three(&[Some(-2.5), None, Some(0.0), Some(-2.1)]),
+            [true, false, false, true]
+        );
+        assert_eq!(
+            four_of_five(&some(&[1.5, 1.2, 0.2, 1.1, 1.9, -0.5])),
+            [true, true, false, true, true, false]
+        );
+        assert!(
+            four_of_five(&some(&[1.5, 1.2, 0.2, 0.3, 1.9]))
+                .iter()
+                .all(|&f| !f)
+        );
+        // No spread, no zones.
+        assert!(
+            zone_test(&some(&[1.0, 1.0]), 1.0, 0.0, 2.0, 2, 3)
+                .iter()
+                .all(|&f| !f)
+        );
+    }
+
+    #[test]
+    fn the_zone_tests_use_the_approved_lots_centre_and_sigma() {
+        // Approved L0 10.0, 10.2, 10.1, 9.9 µH: centre 10.05 µH, σ 0.129 µH (as in the test above),
+        // so 2σ above the centre is 10.308 µH. Lots 5 and 7 (10.35, 10.4 µH) are beyond it, two of
+        // three in a row; lot 6 (10.0 µH) between them is not flagged.
+        let l0 = [10.0, 10.2, 10.1, 9.9, 10.35, 10.0, 10.4];
+        let lots: Vec<LotFit> = l0
+            .iter()
+            .enumerate()
+            .map(|(i, &l)| lot(i as i64 + 1, i < 4, l * 1e-6, 0.012))
+            .collect();
+        let t = part_trend("P", &Limits::default(), lots);
+        let l0 = t.figures.iter().find(|f| f.figure == "l0_h").unwrap();
+        let flags: Vec<bool> = l0.points.iter().map(|p| p.beyond_2_sigma_2_of_3).collect();
+        assert_eq!(flags, [false, false, false, false, true, false, true]);
+        assert!(
+            l0.points.iter().all(|p| !p.out_of_control),
+            "none is beyond 3σ (10.437 µH)"
+        );
     }
 
     #[test]

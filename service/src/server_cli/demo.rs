@@ -465,7 +465,7 @@ async fn print_band_query(c: &Client, reader: &str) -> anyhow::Result<&'static s
     Ok(query)
 }
 
-/// Every lot a part's trend flags: beyond the control limits or in a run on one side.
+/// Every lot a part's trend flags: beyond the control limits, in a run on one side, or in a zone test.
 async fn print_out_of_control(c: &Client, reader: &str, parts: &[String]) -> anyhow::Result<()> {
     println!(
         "\nLots out of statistical control (GET /api/v1/parts/{{part}}/trend; control limits = mean \
@@ -479,7 +479,13 @@ async fn print_out_of_control(c: &Client, reader: &str, parts: &[String]) -> any
         let lots = t["lots"].as_array().cloned().unwrap_or_default();
         for f in t["figures"].as_array().cloned().unwrap_or_default() {
             for p in f["points"].as_array().cloned().unwrap_or_default() {
-                if p["out_of_control"] == true || p["in_run"] == true {
+                let flagged = [
+                    "out_of_control",
+                    "in_run",
+                    "beyond_2_sigma_2_of_3",
+                    "beyond_1_sigma_4_of_5",
+                ];
+                if flagged.iter().any(|k| p[*k] == true) {
                     any = true;
                     let lot = &lots[p["lot_index"].as_u64().unwrap_or(0) as usize];
                     let unit = match f["unit"].as_str().unwrap_or("") {

@@ -62,6 +62,7 @@ function trendPlot(trend, fig) {
     { key: "other", label: "other lot", type: "points", cls: "other", x: xs, y: pick((p) => !trend.lots[p.lot_index].approved), hover: false },
     { key: "out-of-control", label: "beyond control limits", type: "points", cls: "ooc", x: xs, y: pick((p) => p.out_of_control), hover: false },
     { key: "run", label: `run of ${trend.run_length} on one side`, type: "points", cls: "run", x: xs, y: pick((p) => p.in_run), hover: false },
+    { key: "zone", label: "2 of 3 beyond 2σ or 4 of 5 beyond 1σ", type: "points", cls: "zone", x: xs, y: pick((p) => p.beyond_2_sigma_2_of_3 || p.beyond_1_sigma_4_of_5), hover: false },
     { key: "outside-limits", label: "outside the part's limits", type: "points", cls: "fail", x: xs, y: pick((p) => p.outside_limits), hover: false },
   ].filter((s) => s.type !== "points" || s.y.some(Number.isFinite) || s.key === "approved");
   const every = Math.max(1, Math.ceil(n / 12));
@@ -73,12 +74,12 @@ function trendPlot(trend, fig) {
     y: { label: `${AXIS[fig.figure] ?? fig.figure}${unit ? ` (${unit})` : ""}`, unit },
     series,
   });
-  const flagged = fig.points.filter((p) => p.out_of_control || p.in_run || p.outside_limits);
+  const flagged = fig.points.filter((p) => p.out_of_control || p.in_run || p.beyond_2_sigma_2_of_3 || p.beyond_1_sigma_4_of_5 || p.outside_limits);
   const stats = fig.centre == null
     ? h("p", { class: "note" }, fig.control_note ?? "No control limits.")
     : h("p", { class: "note" }, `Centre ${fmt(fig.centre, unit)}, σ ${fmt(fig.sigma, unit)} from ${fig.approved_lots} approved lots; control limits ${fmt(fig.control_low, unit)} to ${fmt(fig.control_high, unit)}.`);
   const flags = flagged.length
-    ? h("ul", { class: "trend-flags" }, flagged.map((p) => h("li", { "data-flag-lot": trend.lots[p.lot_index].lot }, `Lot ${trend.lots[p.lot_index].lot}: ${fmt(p.value, unit)}`, p.outside_limits ? " — outside the part's limits" : "", p.out_of_control ? " — beyond the control limits" : "", p.in_run ? ` — in a run of ${trend.run_length} or more on one side of the centre` : "")))
+    ? h("ul", { class: "trend-flags" }, flagged.map((p) => h("li", { "data-flag-lot": trend.lots[p.lot_index].lot }, `Lot ${trend.lots[p.lot_index].lot}: ${fmt(p.value, unit)}`, p.outside_limits ? " — outside the part's limits" : "", p.out_of_control ? " — beyond the control limits" : "", p.in_run ? ` — in a run of ${trend.run_length} or more on one side of the centre` : "", p.beyond_2_sigma_2_of_3 ? " — two of three in a row beyond 2σ on one side" : "", p.beyond_1_sigma_4_of_5 ? " — four of five in a row beyond 1σ on one side" : "")))
     : null;
   return h("div", { class: "trend", "data-figure": fig.figure }, h("div", { class: "plot-tools" }, plotDownloads(figure, `${safeName(trend.part_number)}-trend-${fig.figure}`)), figure, stats, flags);
 }
