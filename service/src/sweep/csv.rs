@@ -32,6 +32,9 @@ enum Style {
     MagPhase,
 }
 
+/// Largest |z_phase_deg| the reader takes (see [`Header::read_row`]).
+pub const MAX_PHASE_DEG: f64 = 360.0;
+
 const EXPECTED: &str = "expected frequency_hz with z_real_ohm,z_imag_ohm or z_mag_ohm,z_phase_deg \
                         (and optionally sigma_ohm)";
 
@@ -165,6 +168,19 @@ impl Header {
                 if a < 0.0 {
                     return Err(SweepError::at(ln, format!("z_mag_ohm {a} is negative")));
                 }
+                // An impedance's phase is within ±180° (a passive part's within ±90°, and noise);
+                // ±360° admits a phase written from 0 to 360°. A larger one is a slip of the pen
+                // (a decimal point lost), which would otherwise become a point anywhere on the
+                // circle of its magnitude.
+                if b.abs() > MAX_PHASE_DEG {
+                    return Err(SweepError::at(
+                        ln,
+                        format!(
+                            "z_phase_deg {b} lies outside ±{MAX_PHASE_DEG}°: an impedance's phase \
+                             is within ±180° (a passive part's within ±90°)"
+                        ),
+                    ));
+                }
                 Complex64::from_polar(a, b.to_radians())
             }
         };
@@ -288,6 +304,12 @@ mod tests {
                 .unwrap();
         assert!((a.impedance_ohm[0] - b.impedance_ohm[0]).norm() < 1e-12);
         assert_eq!(b.line, vec![3]);
+        // A phase written from 0 to 360°: 306.87° is −53.13°, and ±360° itself is taken.
+        let c =
+            parse_csv("frequency_hz,z_mag_ohm,z_phase_deg\n10,5,306.86989764584402\n20,1,-360\n")
+                .unwrap();
+        assert!((c.impedance_ohm[0] - Complex64::new(3.0, -4.0)).norm() < 1e-12);
+        assert!((c.impedance_ohm[1] - Complex64::new(1.0, 0.0)).norm() < 1e-12);
     }
 
     #[test]
@@ -383,6 +405,17 @@ mod tests {
                 "frequency_hz,z_mag_ohm,z_phase_deg\n1,-2,3\n",
                 Some(2),
                 "negative",
+            ),
+            // A decimal point lost from 89.63°: refused, not wrapped onto the circle.
+            (
+                "frequency_hz,z_mag_ohm,z_phase_deg\n1,2,89.5\n2,3,8962.99\n",
+                Some(3),
+                "outside ±360°",
+            ),
+            (
+                "frequency_hz,z_mag_ohm,z_phase_deg\n1,2,-360.5\n",
+                Some(2),
+                "outside ±360°",
             ),
             ("", None, "empty"),
         ];
