@@ -10,7 +10,8 @@
 #                                             build time of the default optimised one, about a
 #                                             tenth of its inputs per second
 #
-# A hang is an input that takes more than 1 s (-timeout=1); a crash, abort, hang or an input over
+# A hang is an input that takes more than 1 s (-timeout=1; for the fit target 10 s, or 60 s with
+# --dev); a crash, abort, hang or an input over
 # 2 GB of memory stops the run with a non-zero exit code and leaves the input in fuzz/artifacts/.
 # Each run ends with libFuzzer's "Done N runs in S second(s)" line, the input count to report.
 set -euo pipefail
@@ -28,7 +29,7 @@ while [ $# -gt 0 ]; do
     *) targets+=("$1"); shift ;;
   esac
 done
-[ ${#targets[@]} -gt 0 ] || targets=(touchstone csv upload_fields)
+[ ${#targets[@]} -gt 0 ] || targets=(touchstone csv upload_fields fit)
 
 if ! command -v cargo-fuzz >/dev/null; then
   cargo install cargo-fuzz --locked
@@ -82,6 +83,13 @@ done
 printf 'frequency_hz;z_mag_ohm;z_phase_deg;sigma_ohm\n0;0.1;0;0.001\n10;3;80;0.01\n10;3.1;80;0.01\n20;6;85;0.01\n' |
   seed csv dc-and-repeat.csv 100
 
+# Fit: the same CSV files, read as they are named; selector bits 0-3 pick the method, bit 4 the
+# rational family instead of the lumped one.
+for f in "$demo"/*/*.csv; do
+  head -n 60 "$f" | seed fit "lumped-$(basename "$f")" 000
+  head -n 60 "$f" | seed fit "rational-$(basename "$f")" 020
+done
+
 # Upload fields: bits 0-1 say which fixture files came; NUL-separated fields in form order.
 python3 - "$demo/manifest.json" <<'PY'
 import json, os, sys
@@ -103,7 +111,16 @@ PY
 
 for t in "${targets[@]}"; do
   echo "== fuzz target $t: ${limit[*]}"
+  # The fit target runs the whole engine with a 2 s time limit, which a fit checks between its
+  # candidate models: its hang limit is 10 s optimised, 60 s in the unoptimised --dev build (about
+  # ten times slower, so that a CI run does not fail on a slow but bounded fit). The readers' is 1 s.
+  timeout=1
+  dict="dict/$t.dict"
+  if [ "$t" = fit ]; then
+    dict=dict/csv.dict
+    if [ ${#build[@]} -gt 0 ]; then timeout=60; else timeout=10; fi
+  fi
   cargo fuzz run -s none "${build[@]}" "$t" "corpus/$t" -- \
-    "${limit[@]}" -timeout=1 -rss_limit_mb=2048 -max_len=8192 -dict="dict/$t.dict" \
+    "${limit[@]}" -timeout=$timeout -rss_limit_mb=2048 -max_len=8192 -dict="$dict" \
     -print_final_stats=1
 done
