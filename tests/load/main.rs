@@ -107,6 +107,16 @@ async fn seed(path: &std::path::Path) -> anyhow::Result<()> {
     Ok(())
 }
 
+/// Where the server's log goes: the file `HENRYBOOK_LOAD_SERVER_LOG` names (with
+/// `HENRYBOOK_LOAD_RUST_LOG` as its filter, e.g. `sqlx::query=debug` to count statements with
+/// `tests/load/statements.py`), else nowhere.
+fn server_log() -> anyhow::Result<Stdio> {
+    Ok(match std::env::var_os("HENRYBOOK_LOAD_SERVER_LOG") {
+        Some(path) => Stdio::from(std::fs::File::create(path)?),
+        None => Stdio::null(),
+    })
+}
+
 #[tokio::main]
 async fn main() -> anyhow::Result<()> {
     let n: usize = std::env::args()
@@ -150,8 +160,11 @@ async fn main() -> anyhow::Result<()> {
             "--database",
         ])
         .arg(&db)
-        .env("RUST_LOG", "warn")
-        .stdout(Stdio::null())
+        .env(
+            "RUST_LOG",
+            std::env::var("HENRYBOOK_LOAD_RUST_LOG").unwrap_or_else(|_| "warn".into()),
+        )
+        .stdout(server_log()?)
         .spawn()
         .map_err(|e| {
             anyhow::anyhow!(
@@ -262,6 +275,10 @@ async fn main() -> anyhow::Result<()> {
                 "write batches since start: {count:.0}, {:.2} requests per transaction on average",
                 sum / count
             );
+        }
+
+        if std::env::var_os("HENRYBOOK_LOAD_FITS_ONLY").is_some() {
+            return Ok(());
         }
 
         // Status poll latency (sequential, like one dashboard).

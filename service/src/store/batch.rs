@@ -2,10 +2,11 @@
 //!
 //! Every write transaction on SQLite ends in a commit that appends and syncs WAL frames, and the one
 //! writer connection is the service's narrowest point. Requests sent here are queued; one task takes
-//! all that are waiting (at most [`MAX_BATCH`]), runs each inside its own savepoint of one transaction,
-//! commits once, and only then answers each caller. A request that fails is rolled back to its savepoint
-//! and answered with its error; the others in the batch are not affected. A caller is never told
-//! "done" before its writes are committed.
+//! all that are waiting (at most [`MAX_BATCH`]), runs each inside its own savepoint of one transaction
+//! (a request alone in its batch inside the transaction itself), commits once, and only then answers
+//! each caller. A request that fails is rolled back to its savepoint and answered with its error; the
+//! others in the batch are not affected. A caller is never told "done" before its writes are
+//! committed.
 //!
 //! The worker pool's writes (claims, starts, lease renewals, outcomes) go through a second, priority
 //! queue: every batch takes them first, so an upload flood cannot hold up the claims that feed the
@@ -181,30 +182,47 @@ async fn run_batch(writer: SqlitePool, batch: Vec<Request>) {
     let mut answers: Vec<(oneshot::Sender<StoreResult<Answer>>, StoreResult<Answer>)> =
         Vec::with_capacity(batch.len());
     let mut broken: Option<String> = None;
+    // A request alone in its batch needs no savepoint: when it fails, the whole transaction is
+    // rolled back, which is all its savepoint would undo. In a batch of several, each request runs
+    // in its own savepoint; one that succeeded is released together with the next one's start (one
+    // statement), and the last is released by the commit.
+    let alone = batch.len() == 1;
+    let mut open = false;
     for Request { work, reply } in batch {
         if let Some(why) = &broken {
             let _ = reply.send(Err(batch_failed(why)));
             continue;
         }
-        if let Err(e) = sqlx::query("SAVEPOINT batched_request")
-            .execute(&mut *tx)
-            .await
-        {
-            broken = Some(e.to_string());
-            let _ = reply.send(Err(e.into()));
-            continue;
+        if !alone {
+            let start = if open {
+                "RELEASE batched_request; SAVEPOINT batched_request"
+            } else {
+                "SAVEPOINT batched_request"
+            };
+            if let Err(e) = sqlx::raw_sql(start).execute(&mut *tx).await {
+                broken = Some(e.to_string());
+                let _ = reply.send(Err(e.into()));
+                continue;
+            }
+            open = true;
         }
         let result = work(&mut tx).await;
-        let end = if result.is_ok() {
-            "RELEASE batched_request"
-        } else {
-            "ROLLBACK TO batched_request; RELEASE batched_request"
-        };
-        if let Err(e) = sqlx::raw_sql(end).execute(&mut *tx).await {
-            // The transaction cannot be trusted any more: nothing of this batch is committed.
-            broken = Some(format!("a batched write could not end its savepoint: {e}"));
-            let _ = reply.send(Err(e.into()));
-            continue;
+        if alone && result.is_err() {
+            let _ = tx.rollback().await;
+            let _ = reply.send(result);
+            return;
+        }
+        if !alone && result.is_err() {
+            open = false;
+            if let Err(e) = sqlx::raw_sql("ROLLBACK TO batched_request; RELEASE batched_request")
+                .execute(&mut *tx)
+                .await
+            {
+                // The transaction cannot be trusted any more: nothing of this batch is committed.
+                broken = Some(format!("a batched write could not end its savepoint: {e}"));
+                let _ = reply.send(Err(e.into()));
+                continue;
+            }
         }
         answers.push((reply, result));
     }
@@ -274,6 +292,41 @@ mod tests {
             .await
             .unwrap();
         assert_eq!(rows, vec![1, 2, 4, 5]);
+    }
+
+    #[tokio::test]
+    async fn a_failed_request_alone_in_its_batch_writes_nothing_and_the_next_one_commits() {
+        let (store, _dir) = temp_store().await;
+        sqlx::query("CREATE TABLE t (v INTEGER NOT NULL UNIQUE)")
+            .execute(&store.writer)
+            .await
+            .unwrap();
+        // Awaited one at a time: each request is alone in its batch (no savepoint).
+        let insert = |a: i64, b: i64| {
+            store.batch.submit(move |conn| {
+                Box::pin(async move {
+                    for v in [a, b] {
+                        sqlx::query("INSERT INTO t (v) VALUES (?)")
+                            .bind(v)
+                            .execute(&mut *conn)
+                            .await?;
+                    }
+                    Ok(a)
+                })
+            })
+        };
+        let bad = insert(1, 1).await;
+        assert!(matches!(bad, Err(StoreError::Database(_))), "{bad:?}");
+        assert_eq!(insert(2, 3).await.unwrap(), 2);
+        let rows: Vec<i64> = sqlx::query_scalar("SELECT v FROM t ORDER BY v")
+            .fetch_all(&store.reader)
+            .await
+            .unwrap();
+        assert_eq!(
+            rows,
+            vec![2, 3],
+            "the failed request's first row is rolled back"
+        );
     }
 
     #[tokio::test]

@@ -7,7 +7,6 @@ use super::{Store, StoreResult, audit, now_ms};
 use crate::fit::FitReport;
 use crate::registry::assessment::{Assessment, Basis, judge};
 use crate::registry::wire::FailureKind;
-use rand::RngCore;
 use sqlx::{Row, SqliteConnection};
 use std::time::Duration;
 
@@ -30,12 +29,6 @@ pub enum Renewal {
     },
     /// Another worker holds the job now (this one was too slow to renew): stop and write nothing.
     Lost,
-}
-
-fn new_token() -> String {
-    let mut raw = [0u8; 16];
-    rand::rng().fill_bytes(&mut raw);
-    hex::encode(raw)
 }
 
 fn ms(d: Duration) -> i64 {
@@ -133,21 +126,18 @@ impl Store {
     /// baseline (with the baseline's stored report). Read without the writer, before the result is
     /// written; [`Store::complete_succeeded`] checks it still holds.
     pub async fn assessment_basis(&self, fit_id: i64) -> StoreResult<(Basis, Option<String>)> {
-        let row = sqlx::query(sqlx::AssertSqlSafe(basis_sql()))
-            .bind(fit_id)
-            .fetch_one(&self.reader)
-            .await?;
+        // One statement: the basis with the baseline's report beside it.
+        let row = sqlx::query(sqlx::AssertSqlSafe(format!(
+            "SELECT part_id, baseline_fit_id, {}, (SELECT b.report_json FROM fits b \
+             WHERE b.fit_id = parts.baseline_fit_id) AS baseline_report_json FROM parts \
+             WHERE part_id = (SELECT part_id FROM fits WHERE fit_id = ?)",
+            super::parts::LIMIT_COLUMNS
+        )))
+        .bind(fit_id)
+        .fetch_one(&self.reader)
+        .await?;
         let (_, basis) = basis_from_row(&row)?;
-        let baseline_json = match basis.baseline_fit_id {
-            Some(id) => sqlx::query_scalar::<_, Option<String>>(
-                "SELECT report_json FROM fits WHERE fit_id = ?",
-            )
-            .bind(id)
-            .fetch_optional(&self.reader)
-            .await?
-            .flatten(),
-            None => None,
-        };
+        let baseline_json: Option<String> = row.try_get("baseline_report_json")?;
         Ok((basis, baseline_json))
     }
 
@@ -260,26 +250,22 @@ async fn claim_in(
     n: usize,
 ) -> StoreResult<Vec<Claim>> {
     let now = now_ms();
-    let cancelled: Vec<i64> = sqlx::query_scalar(
+    // Expired jobs that were cancelled or ran out of attempts are settled first (cancelled when
+    // both), so the claim below never takes them.
+    let expired: Vec<(i64, i64, i64)> = sqlx::query_as(
         "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-         WHERE state = 'running' AND lease_until_ms < ? AND cancel_requested = 1 RETURNING fit_id",
-    )
-    .bind(now)
-    .fetch_all(&mut *conn)
-    .await?;
-    for fit_id in cancelled {
-        settle(conn, fit_id, "cancelled", FailureKind::Cancelled, None, now).await?;
-    }
-    let exhausted: Vec<(i64, i64)> = sqlx::query_as(
-        "UPDATE jobs SET state = 'done', claim_token = NULL, lease_until_ms = NULL \
-         WHERE state = 'running' AND lease_until_ms < ? AND attempts >= ? \
-         RETURNING fit_id, attempts",
+         WHERE state = 'running' AND lease_until_ms < ? AND (cancel_requested = 1 OR attempts >= ?) \
+         RETURNING fit_id, attempts, cancel_requested",
     )
     .bind(now)
     .bind(max_attempts)
     .fetch_all(&mut *conn)
     .await?;
-    for (fit_id, attempts) in exhausted {
+    for (fit_id, attempts, cancel_requested) in expired {
+        if cancel_requested != 0 {
+            settle(conn, fit_id, "cancelled", FailureKind::Cancelled, None, now).await?;
+            continue;
+        }
         let error = format!(
             "the fit was started {attempts} times and never finished (the worker stopped each time); \
              retry it to run it again"
@@ -294,30 +280,29 @@ async fn claim_in(
         )
         .await?;
     }
-    let mut claims = Vec::new();
-    while claims.len() < n {
-        let token = new_token();
-        let claimed: Option<(i64, i64)> = sqlx::query_as(
-            "UPDATE jobs SET state = 'running', claim_token = ?, lease_until_ms = ?, \
-             attempts = attempts + 1 WHERE fit_id = (SELECT fit_id FROM jobs \
-             WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
-             ORDER BY fit_id LIMIT 1) RETURNING fit_id, attempts",
-        )
-        .bind(&token)
-        .bind(now + ms(lease))
-        .bind(now)
-        .fetch_optional(&mut *conn)
-        .await?;
-        let Some((fit_id, attempt)) = claimed else {
-            break;
-        };
-        // The fit shows as running only when its worker starts it ([`Store::mark_started`]).
-        claims.push(Claim {
-            fit_id,
-            token,
-            attempt,
-        });
-    }
+    // Up to n runnable jobs, oldest first, in one statement; each gets its own token: 16 random
+    // bytes (SQLite's generator, seeded from the system's) in hex.
+    let mut claims: Vec<Claim> = sqlx::query_as(
+        "UPDATE jobs SET state = 'running', claim_token = lower(hex(randomblob(16))), \
+         lease_until_ms = ?, attempts = attempts + 1 WHERE fit_id IN (SELECT fit_id FROM jobs \
+         WHERE state = 'queued' OR (state = 'running' AND lease_until_ms < ?) \
+         ORDER BY fit_id LIMIT ?) RETURNING fit_id, claim_token, attempts",
+    )
+    .bind(now + ms(lease))
+    .bind(now)
+    .bind(i64::try_from(n).unwrap_or(i64::MAX))
+    .fetch_all(&mut *conn)
+    .await?
+    .into_iter()
+    .map(|(fit_id, token, attempt)| Claim {
+        fit_id,
+        token,
+        attempt,
+    })
+    .collect();
+    // RETURNING gives no order; the fit shows as running only when its worker starts it
+    // ([`Store::mark_started`]).
+    claims.sort_by_key(|c| c.fit_id);
     Ok(claims)
 }
 
@@ -916,28 +901,28 @@ impl Store {
     /// How many fits are queued or running, in all and for one part (by number or by one of its fits).
     /// Read without the writer: the trigger-kept status counts, and the part's fits by index.
     pub async fn queue_depth(&self, part: PartRef<'_>) -> StoreResult<QueueDepth> {
-        let all: i64 = sqlx::query_scalar(
-            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
-        )
-        .fetch_one(&self.reader)
-        .await?;
+        // One statement: both counts, the part's from the partial index of open fits (0014).
+        const ALL: &str = "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts \
+                           WHERE status IN ('queued', 'running')";
         let part_sql = "SELECT COUNT(*) FROM fits WHERE part_id = (SELECT part_id FROM parts WHERE \
                         part_number = ?) AND status IN ('queued', 'running')";
         let by_fit_sql = "SELECT COUNT(*) FROM fits WHERE part_id = (SELECT part_id FROM fits WHERE \
                           fit_id = ?) AND status IN ('queued', 'running')";
-        let part: i64 = match part {
-            PartRef::Unnamed => 0,
+        let (all, part): (i64, i64) = match part {
+            PartRef::Unnamed => (sqlx::query_scalar(ALL).fetch_one(&self.reader).await?, 0),
             PartRef::Number(n) => {
-                sqlx::query_scalar(part_sql)
+                sqlx::query_as(sqlx::AssertSqlSafe(format!("SELECT ({ALL}), ({part_sql})")))
                     .bind(n.as_str())
                     .fetch_one(&self.reader)
                     .await?
             }
             PartRef::OfFit(id) => {
-                sqlx::query_scalar(by_fit_sql)
-                    .bind(id)
-                    .fetch_one(&self.reader)
-                    .await?
+                sqlx::query_as(sqlx::AssertSqlSafe(format!(
+                    "SELECT ({ALL}), ({by_fit_sql})"
+                )))
+                .bind(id)
+                .fetch_one(&self.reader)
+                .await?
             }
         };
         Ok(QueueDepth { all, part })

@@ -136,8 +136,12 @@ impl Store {
             // the mapped file into the process's resident memory once per connection.
             .pragma("temp_store", "memory")
             .pragma("cache_size", "-4096");
+        // A pooled SQLite connection is a thread of its own, and each ping a round trip to it. The
+        // pool pings every connection given back (and closes one that does not answer), so the
+        // ping before each hand-out only doubles the round trips: off.
         let writer = SqlitePoolOptions::new()
             .max_connections(1)
+            .test_before_acquire(false)
             .connect_with(options.clone())
             .await
             .with_context(|| format!("cannot open the database {}", path.display()))?;
@@ -147,6 +151,7 @@ impl Store {
             .context("cannot apply the database migrations")?;
         let reader = SqlitePoolOptions::new()
             .max_connections(8)
+            .test_before_acquire(false)
             .connect_with(options.read_only(true))
             .await
             .with_context(|| format!("cannot open the database {}", path.display()))?;

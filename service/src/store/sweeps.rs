@@ -223,6 +223,18 @@ pub(crate) async fn insert_fit(
     Ok(fit_id)
 }
 
+/// The queued and running fits of every part and of the part `part` (an SQL expression: a column or
+/// a parameter) as two columns: the status counts the triggers keep (0004), and the part's open fits
+/// from their partial index (0014).
+fn open_fits(part: &str) -> String {
+    format!(
+        "(SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts \
+         WHERE status IN ('queued', 'running')) AS open_all, \
+         (SELECT COUNT(*) FROM fits WHERE part_id = {part} AND status IN ('queued', 'running')) \
+         AS open_part"
+    )
+}
+
 /// Refuses with [`StoreError::QueueFull`] when the queue, in all or for the part, is at its bound.
 /// Called inside the transaction that adds the fit, so concurrent requests cannot together pass it.
 pub(crate) async fn check_queue_bounds(
@@ -230,23 +242,17 @@ pub(crate) async fn check_queue_bounds(
     b: QueueBounds,
     part_id: i64,
 ) -> StoreResult<()> {
-    let all: i64 = sqlx::query_scalar(
-            "SELECT COALESCE(SUM(fits), 0) FROM fit_status_counts WHERE status IN ('queued', 'running')",
-        )
-        .fetch_one(&mut *conn)
-        .await?;
-    if all >= b.all {
-        // Refused on the count of every part: the part's own count is not needed.
-        return within_bounds(b, all, 0);
-    }
-    let part: i64 = sqlx::query_scalar(
-        "SELECT COUNT(*) FROM fits WHERE part_id = ? AND status IN ('queued', 'running')",
-    )
-    .bind(part_id)
-    .fetch_one(&mut *conn)
-    .await?;
+    let (all, part): (i64, i64) =
+        sqlx::query_as(sqlx::AssertSqlSafe(format!("SELECT {}", open_fits("?"))))
+            .bind(part_id)
+            .fetch_one(&mut *conn)
+            .await?;
     within_bounds(b, all, part)
 }
+
+/// What an upload finds before it writes: the part, the duplicate's fit and sweep (when there is
+/// one), and the queued and running fits in all and of the part.
+type UploadLook = (i64, Option<i64>, Option<i64>, i64, i64);
 
 /// The body of [`Store::upload`], inside the caller's transaction.
 async fn upload_in(
@@ -255,21 +261,28 @@ async fn upload_in(
     new: &NewSweep,
     bounds: Option<QueueBounds>,
 ) -> StoreResult<Uploaded> {
-    let part_id: i64 = sqlx::query_scalar("SELECT part_id FROM parts WHERE part_number = ?")
-        .bind(new.part_number.as_str())
-        .fetch_optional(&mut *conn)
-        .await?
-        .ok_or_else(|| no_part_to_upload_to(&new.part_number))?;
-    let existing: Option<(i64, i64)> = sqlx::query_as(
-        "SELECT f.fit_id, f.sweep_id FROM sweeps s JOIN fits f ON f.sweep_id = s.sweep_id \
-         WHERE s.part_id = ? AND s.sha256 = ? AND f.options_key = ? \
-         ORDER BY f.fit_id DESC LIMIT 1",
-    )
-    .bind(part_id)
+    // The part, the newest fit of the same file with the same options, and the open fits (in all
+    // and of the part) in one statement: the writer's time is the service's narrowest point. In
+    // descending order a missing fit (NULL) sorts last, so the first row has the newest duplicate.
+    let found: Option<UploadLook> = sqlx::query_as(sqlx::AssertSqlSafe(format!(
+        "SELECT p.part_id, f.fit_id, f.sweep_id, {} FROM parts p \
+             LEFT JOIN sweeps s ON s.part_id = p.part_id AND s.sha256 = ? \
+             LEFT JOIN fits f ON f.sweep_id = s.sweep_id AND f.options_key = ? \
+             WHERE p.part_number = ? ORDER BY f.fit_id DESC LIMIT 1",
+        open_fits("p.part_id")
+    )))
     .bind(&new.sha256)
     .bind(&new.options_key)
+    .bind(new.part_number.as_str())
     .fetch_optional(&mut *conn)
     .await?;
+    let (part_id, existing, open_all, open_part) = match found {
+        Some((part_id, Some(fit_id), Some(sweep_id), all, part)) => {
+            (part_id, Some((fit_id, sweep_id)), all, part)
+        }
+        Some((part_id, _, _, all, part)) => (part_id, None, all, part),
+        None => return Err(no_part_to_upload_to(&new.part_number)),
+    };
     if let Some((fit_id, sweep_id)) = existing {
         return Ok(Uploaded {
             fit_id,
@@ -278,7 +291,7 @@ async fn upload_in(
         });
     }
     if let Some(b) = bounds {
-        check_queue_bounds(&mut *conn, b, part_id).await?;
+        within_bounds(b, open_all, open_part)?;
     }
     let now = now_ms();
     let lot_id: i64 = sqlx::query_scalar(
