@@ -55,8 +55,10 @@ pub fn parse_csv(text: &str) -> Result<ImpedanceTable, SweepError> {
         sigma_ohm: header.sigma_col.map(|_| Vec::new()),
         line: Vec::new(),
     };
+    // One buffer for every row's fields (a row of a long sweep would otherwise allocate its own).
+    let mut fields = Vec::with_capacity(header.names.len());
     for (ln, row) in lines {
-        header.read_row(ln, row, &mut table)?;
+        header.read_row(ln, row, &mut fields, &mut table)?;
     }
     if table.frequency_hz.is_empty() {
         return Err(SweepError::at(
@@ -133,8 +135,15 @@ impl Header {
     }
 
     /// Reads data row `row` on line `ln` into `table`.
-    fn read_row(&self, ln: usize, row: &str, table: &mut ImpedanceTable) -> Result<(), SweepError> {
-        let fields: Vec<&str> = row.split(self.sep).map(unquote).collect();
+    fn read_row<'a>(
+        &self,
+        ln: usize,
+        row: &'a str,
+        fields: &mut Vec<&'a str>,
+        table: &mut ImpedanceTable,
+    ) -> Result<(), SweepError> {
+        fields.clear();
+        fields.extend(row.split(self.sep).map(unquote));
         if fields.len() != self.names.len() {
             return Err(SweepError::at(
                 ln,
