@@ -289,8 +289,10 @@ pub async fn upload(state: &AppState, actor: &str, mut input: UploadInput) -> Op
         .backpressure
         .check_queue(&state.store, PartRef::Number(&part_number))
         .await?;
-    // Reading waits for one of a few slots: uploads never take the CPU the fits need.
-    let _reading = state.backpressure.reading_slot().await;
+    // Reading waits for one of a few slots: uploads never take the CPU the fits need. The slot is
+    // held for the reading only, not for the write after it, so the writes of several uploads can
+    // share a commit while the next upload is read.
+    let reading = state.backpressure.reading_slot().await;
 
     // Reading the files, hashing them and keying the duplicate check are CPU work: off the runtime.
     let engine = state.engine.clone();
@@ -346,6 +348,7 @@ pub async fn upload(state: &AppState, actor: &str, mut input: UploadInput) -> Op
             format!("{}: {}", e.file_name, e.error.message),
         )
     })?;
+    drop(reading);
     let bounds = state.backpressure.queue_bounds();
     let up = state.store.upload_bounded(actor, new, Some(bounds)).await?;
     if !up.duplicate {
