@@ -174,6 +174,22 @@ pub enum Step {
     },
 }
 
+impl Step {
+    /// The audit action and reason of this step once a store has applied it; `added_id` is the id
+    /// the store gave an added token (ignored for the other steps).
+    pub(crate) fn audit(&self, added_id: i64) -> (&'static str, String) {
+        match self {
+            Step::Add(entry) => ("token-added", added_reason(added_id, entry)),
+            Step::Change { reason, .. } => ("token-changed", reason.clone()),
+            Step::Revoke {
+                token_id,
+                role,
+                label,
+            } => ("token-revoked", dropped_reason(*token_id, role, label)),
+        }
+    }
+}
+
 /// What applying a file did, as `token sync` and the service's log report it.
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct TokenSync {
@@ -273,7 +289,7 @@ pub fn plan(file: &[FileToken], stored: &[StoredToken]) -> (Vec<Step>, TokenSync
 }
 
 /// The audit reason of a token the file added.
-pub(crate) fn added_reason(token_id: i64, entry: &FileToken) -> String {
+fn added_reason(token_id: i64, entry: &FileToken) -> String {
     format!(
         "token {token_id} ({}, {}) from line {} of the tokens file",
         entry.role.as_str(),
@@ -283,7 +299,7 @@ pub(crate) fn added_reason(token_id: i64, entry: &FileToken) -> String {
 }
 
 /// The audit reason of a token revoked because the file no longer holds it.
-pub(crate) fn dropped_reason(token_id: i64, role: &str, label: &str) -> String {
+fn dropped_reason(token_id: i64, role: &str, label: &str) -> String {
     format!("token {token_id} ({role}, {label}): no longer in the tokens file")
 }
 

@@ -246,9 +246,10 @@ impl Store {
         let (steps, report) = token_file::plan(file, &stored);
         let now = now_ms();
         for step in steps {
-            let (action, reason) = match step {
+            let mut added_id = 0;
+            match &step {
                 Step::Add(entry) => {
-                    let id: i64 = sqlx::query_scalar(
+                    added_id = sqlx::query_scalar(
                         "INSERT INTO tokens (token_sha256, role, label, created_at_ms, from_file) \
                          VALUES (?, ?, ?, ?, 1) RETURNING token_id",
                     )
@@ -258,40 +259,31 @@ impl Store {
                     .bind(now)
                     .fetch_one(&mut *tx)
                     .await?;
-                    ("token-added", token_file::added_reason(id, &entry))
                 }
                 Step::Change {
                     token_id,
                     role,
                     label,
-                    reason,
+                    ..
                 } => {
                     sqlx::query(
                         "UPDATE tokens SET role = ?, label = ?, from_file = 1 WHERE token_id = ?",
                     )
                     .bind(role.as_str())
-                    .bind(&label)
+                    .bind(label)
                     .bind(token_id)
                     .execute(&mut *tx)
                     .await?;
-                    ("token-changed", reason)
                 }
-                Step::Revoke {
-                    token_id,
-                    role,
-                    label,
-                } => {
+                Step::Revoke { token_id, .. } => {
                     sqlx::query("UPDATE tokens SET revoked_at_ms = ? WHERE token_id = ?")
                         .bind(now)
                         .bind(token_id)
                         .execute(&mut *tx)
                         .await?;
-                    (
-                        "token-revoked",
-                        token_file::dropped_reason(token_id, &role, &label),
-                    )
                 }
-            };
+            }
+            let (action, reason) = step.audit(added_id);
             super::audit(&mut tx, actor, action, None, None, Some(&reason)).await?;
         }
         tx.commit().await?;

@@ -118,9 +118,10 @@ impl PgStore {
         let now = now_ms();
         let mut entries = Vec::new();
         for step in steps {
-            let (action, reason) = match step {
+            let mut added_id = 0;
+            match &step {
                 Step::Add(entry) => {
-                    let id: i64 = sqlx::query_scalar(
+                    added_id = sqlx::query_scalar(
                         "INSERT INTO tokens (token_sha256, role, label, created_at_ms, from_file) \
                          VALUES ($1, $2, $3, $4, TRUE) RETURNING token_id",
                     )
@@ -130,41 +131,32 @@ impl PgStore {
                     .bind(now)
                     .fetch_one(&mut *tx)
                     .await?;
-                    ("token-added", token_file::added_reason(id, &entry))
                 }
                 Step::Change {
                     token_id,
                     role,
                     label,
-                    reason,
+                    ..
                 } => {
                     sqlx::query(
                         "UPDATE tokens SET role = $1, label = $2, from_file = TRUE \
                          WHERE token_id = $3",
                     )
                     .bind(role.as_str())
-                    .bind(&label)
+                    .bind(label)
                     .bind(token_id)
                     .execute(&mut *tx)
                     .await?;
-                    ("token-changed", reason)
                 }
-                Step::Revoke {
-                    token_id,
-                    role,
-                    label,
-                } => {
+                Step::Revoke { token_id, .. } => {
                     sqlx::query("UPDATE tokens SET revoked_at_ms = $1 WHERE token_id = $2")
                         .bind(now)
                         .bind(token_id)
                         .execute(&mut *tx)
                         .await?;
-                    (
-                        "token-revoked",
-                        token_file::dropped_reason(token_id, &role, &label),
-                    )
                 }
-            };
+            }
+            let (action, reason) = step.audit(added_id);
             entries.push(Entry::new(actor, action, None, None, Some(&reason)));
         }
         audit::append(&mut tx, &entries).await?;
