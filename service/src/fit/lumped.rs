@@ -477,27 +477,34 @@ fn density_weighted_jtj(data: &FitData, structure: &Structure, theta: &[f64]) ->
     let mut j = DMatrix::zeros(rows, n);
     problem.jacobian_into(theta, &mut j);
     let points = data.frequency_hz.len();
+    let g: Vec<f64> = (0..rows)
+        .map(|r| {
+            if r < 2 * points {
+                let k = r / 2;
+                (data.inv_sigma[k] * data.sigma[k]).powi(2)
+            } else {
+                1.0
+            }
+        })
+        .collect();
+    // J is column-major: each entry is a sum down two contiguous columns, over the rows in order
+    // (the same additions in the same order as a pass row by row).
+    let columns = j.as_slice();
+    let column = |a: usize| &columns[a * rows..(a + 1) * rows];
     let mut out = DMatrix::zeros(n, n);
-    for r in 0..rows {
-        let g = if r < 2 * points {
-            let k = r / 2;
-            (data.inv_sigma[k] * data.sigma[k]).powi(2)
-        } else {
-            1.0
-        };
-        for a in 0..n {
-            let ja = j[(r, a)] * g;
-            if ja == 0.0 {
-                continue;
-            }
-            for c in 0..=a {
-                out[(a, c)] += ja * j[(r, c)];
-            }
-        }
-    }
     for a in 0..n {
-        for c in 0..a {
-            out[(c, a)] = out[(a, c)];
+        let ja = column(a);
+        for c in 0..=a {
+            let jc = column(c);
+            let mut sum = 0.0;
+            for r in 0..rows {
+                let w = ja[r] * g[r];
+                if w != 0.0 {
+                    sum += w * jc[r];
+                }
+            }
+            out[(a, c)] = sum;
+            out[(c, a)] = sum;
         }
     }
     out
