@@ -29,8 +29,8 @@ pub struct ServeArgs {
     pub grpc_listen: SocketAddr,
     #[command(flatten)]
     pub database: DatabaseArgs,
-    /// Fits run at the same time (default: one more than the number of CPUs, so that no core idles
-    /// while a finished fit's successor is handed to it).
+    /// Fits run at the same time (default: one more than the number of CPUs, which keeps the cores
+    /// busier under a stream of uploads).
     #[arg(long, env = "HENRYBOOK_WORKERS")]
     pub workers: Option<usize>,
     /// Largest accepted request body, in bytes (uploads included).
@@ -190,9 +190,10 @@ impl Settings {
     }
 }
 
-/// One fit per CPU and one more. With exactly one per CPU the cores idle about a fifth of the time
-/// under a steady stream of uploads (tests/load: a fit's successor waits on the async runtime, its
-/// result is assessed and written on other threads); the extra fit fills those gaps.
+/// One fit per CPU and one more. With exactly one per CPU the two cores of the load script's machine
+/// idled 8–28 % of the time under a steady stream of uploads (tests/load, /proc/stat; where the gaps
+/// come from was not pinned down), and one more fit gave 2–10 % more fits per second (7 % on the
+/// mean of three alternated rounds, docs/benchmarks.md).
 fn default_workers() -> usize {
     std::thread::available_parallelism().map_or(2, |n| n.get()) + 1
 }
