@@ -313,7 +313,7 @@ fn an_element_the_data_cannot_see_is_not_identifiable_rather_than_confident() {
         &FitControl::default(),
     )
     .unwrap();
-    let sp = spread(&f, data.effective_residuals(), 1.0);
+    let sp = spread(&f, &data, data.effective_residuals(), 1.0);
     assert!(
         sp.not_identifiable.contains(&"rp_ohm".to_string()),
         "{:?}",

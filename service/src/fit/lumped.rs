@@ -62,11 +62,9 @@ pub struct StructureFit {
     pub cost: f64,
     pub iterations: u64,
     pub termination: Termination,
-    /// JᵀJ of the weighted residuals at `theta`.
+    /// JᵀJ of the weighted residuals at `theta`. (The sandwich covariance's other factor, JᵀGJ, is
+    /// computed by [`spread`] for the few fits whose spread is asked for, not for every candidate.)
     pub jtj: DMatrix<f64>,
-    /// JᵀGJ of the weighted residuals at `theta`, G the density weight of each row (1 for the prior
-    /// and the walls): with `jtj` it gives the sandwich covariance (see [`spread`]).
-    pub jtgj: DMatrix<f64>,
 }
 
 impl StructureFit {
@@ -455,7 +453,6 @@ fn fit_structure_staged(
             }
         }
     }
-    let jtgj = density_weighted_jtj(data, structure, &fine.theta);
     Ok(StructureFit {
         structure: structure.clone(),
         theta: fine.theta,
@@ -463,51 +460,26 @@ fn fit_structure_staged(
         iterations: iterations + fine.iterations,
         termination: fine.termination,
         jtj: fine.jtj,
-        jtgj,
     })
 }
 
 /// JᵀGJ at θ: the weighted residuals' Jacobian with each data row counted once more by its density
 /// weight g (the prior's and walls' rows by 1). The middle of the sandwich covariance: a row with
 /// weight √g/σ has variance g, so the weighted estimator's covariance is (JᵀJ)⁻¹·JᵀGJ·(JᵀJ)⁻¹.
+///
+/// A data row's Jacobian carries the point's weight w = √g/σ, so g·(row)² is the same product with
+/// the weight √g·w = g/σ = w²σ: JᵀGJ is the JᵀJ of the same problem with each point's weight w
+/// replaced by w²σ, computed by the one streaming pass the solver uses (no J is stored).
 fn density_weighted_jtj(data: &FitData, structure: &Structure, theta: &[f64]) -> DMatrix<f64> {
-    let problem = LumpedProblem::new(data, structure);
-    let n = structure.len();
-    let rows = problem.residual_rows();
-    let mut j = DMatrix::zeros(rows, n);
-    problem.jacobian_into(theta, &mut j);
-    let points = data.frequency_hz.len();
-    let g: Vec<f64> = (0..rows)
-        .map(|r| {
-            if r < 2 * points {
-                let k = r / 2;
-                (data.inv_sigma[k] * data.sigma[k]).powi(2)
-            } else {
-                1.0
-            }
-        })
-        .collect();
-    // J is column-major: each entry is a sum down two contiguous columns, over the rows in order
-    // (the same additions in the same order as a pass row by row).
-    let columns = j.as_slice();
-    let column = |a: usize| &columns[a * rows..(a + 1) * rows];
-    let mut out = DMatrix::zeros(n, n);
-    for a in 0..n {
-        let ja = column(a);
-        for c in 0..=a {
-            let jc = column(c);
-            let mut sum = 0.0;
-            for r in 0..rows {
-                let w = ja[r] * g[r];
-                if w != 0.0 {
-                    sum += w * jc[r];
-                }
-            }
-            out[(a, c)] = sum;
-            out[(c, a)] = sum;
-        }
+    let mut reweighted = data.clone();
+    for (w, s) in reweighted.inv_sigma.iter_mut().zip(&data.sigma) {
+        *w = *w * *w * s;
     }
-    out
+    let n = structure.len();
+    let mut jtgj = DMatrix::zeros(n, n);
+    let mut jr = DVector::zeros(n);
+    LumpedProblem::new(&reweighted, structure).normal_equations_into(theta, &mut jtgj, &mut jr);
+    jtgj
 }
 
 /// BIC with the noise scale estimated from the fit, on the effective number of residuals `m`
@@ -674,9 +646,9 @@ pub struct Spread {
     pub covariance_theta: DMatrix<f64>,
 }
 
-/// `residuals` is the effective number of residuals; `widening` multiplies every σ (correlated
-/// residuals, see [`super::assess`]).
-pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
+/// `data` is what `fit` was fitted to; `residuals` is its effective number of residuals; `widening`
+/// multiplies every σ (correlated residuals, see [`super::assess`]).
+pub fn spread(fit: &StructureFit, data: &FitData, residuals: f64, widening: f64) -> Spread {
     let n = fit.structure.len();
     let params = fit.structure.params();
     let jtj = &fit.jtj;
@@ -705,7 +677,8 @@ pub fn spread(fit: &StructureFit, residuals: f64, widening: f64) -> Spread {
         inverse += (v * v.transpose()) / lambda;
     }
     // Sandwich: (JᵀJ)⁻¹·JᵀGJ·(JᵀJ)⁻¹, in the same column scaling. With every g = 1 it is (JᵀJ)⁻¹.
-    let meat = DMatrix::from_fn(n, n, |i, j| fit.jtgj[(i, j)] / (d[i] * d[j]));
+    let jtgj = density_weighted_jtj(data, &fit.structure, &fit.theta);
+    let meat = DMatrix::from_fn(n, n, |i, j| jtgj[(i, j)] / (d[i] * d[j]));
     let cov = &inverse * meat * &inverse;
     let mut sigma_theta = vec![None; n];
     let mut not_identifiable = Vec::new();
@@ -760,6 +733,7 @@ const SELECTION_BIC_WINDOW: f64 = 20.0;
 /// identifiable are left out; a total above the identifiability limit makes it not identifiable.
 fn include_selection_spread(
     sp: &mut Spread,
+    data: &FitData,
     fits: &[StructureFit],
     bics: &[f64],
     chosen: usize,
@@ -770,7 +744,7 @@ fn include_selection_spread(
     let params = fits[chosen].structure.params();
     let others: Vec<(usize, Spread)> = (0..fits.len())
         .filter(|&i| i != chosen && bics[i] - best < SELECTION_BIC_WINDOW)
-        .map(|i| (i, spread(&fits[i], residuals, widening)))
+        .map(|i| (i, spread(&fits[i], data, residuals, widening)))
         .collect();
     if others.is_empty() {
         return;
@@ -1281,9 +1255,10 @@ fn lumped_report(
             message: format!("a parameter ended at the edge of its plausible range: {label}"),
         });
     }
-    let mut sp = spread(fit, residuals, assessment.sigma_widening);
+    let mut sp = spread(fit, data, residuals, assessment.sigma_widening);
     include_selection_spread(
         &mut sp,
+        data,
         fits,
         &bics,
         chosen,
@@ -1964,6 +1939,73 @@ mod tests {
             .sum();
         let expected = 10f64.ln() / mean;
         assert!((top / expected - 1.0).abs() < 0.02, "{top} vs {expected}");
+    }
+
+    /// JᵀGJ the plain way: J stored row by row, each data row's products counted g times.
+    fn explicit_jtgj(data: &FitData, structure: &Structure, theta: &[f64]) -> DMatrix<f64> {
+        let problem = LumpedProblem::new(data, structure);
+        let n = structure.len();
+        let rows = problem.residual_rows();
+        let mut j = DMatrix::zeros(rows, n);
+        problem.jacobian_into(theta, &mut j);
+        let points = data.frequency_hz.len();
+        DMatrix::from_fn(n, n, |a, c| {
+            (0..rows)
+                .map(|r| {
+                    let g = if r < 2 * points {
+                        (data.inv_sigma[r / 2] * data.sigma[r / 2]).powi(2)
+                    } else {
+                        1.0
+                    };
+                    g * j[(r, a)] * j[(r, c)]
+                })
+                .sum()
+        })
+    }
+
+    #[test]
+    fn the_streamed_jtgj_is_the_explicit_sum_over_rows() {
+        // A linear sweep (density weights from 100 down to 0.03), a DCR prior row, walls, a section
+        // and a point away from the optimum: every kind of row the sandwich's middle counts.
+        let mut truth = choke();
+        truth.sections = vec![Section {
+            kind: SectionKind::Series,
+            r_ohm: 2.0,
+            l_h: 40e-9,
+            c_f: 30e-12,
+        }];
+        let sweep = linear(&truth, 1e3, 60e6, 901, 4);
+        let options = FitOptions {
+            dcr: Some(super::super::DcrReading {
+                value_ohm: 0.118,
+                sigma_ohm: Some(0.002),
+            }),
+            ..FitOptions::default()
+        };
+        let mut data = prepare(&sweep, &options).unwrap();
+        assert!(data.dcr_prior.is_some());
+        let g = initial::guess(&data);
+        data.walls = plausible::walls(&data, &g, 1);
+        let structure = Structure::of(&truth);
+        let mut theta = structure.pack(&truth);
+        for (i, t) in theta.iter_mut().enumerate() {
+            *t += 0.05 * (i as f64 - 2.0);
+        }
+        let streamed = density_weighted_jtj(&data, &structure, &theta);
+        let explicit = explicit_jtgj(&data, &structure, &theta);
+        let n = structure.len();
+        for a in 0..n {
+            for c in 0..n {
+                // Relative to the diagonal scale: the entries differ in rounding only.
+                let scale = (explicit[(a, a)] * explicit[(c, c)]).sqrt();
+                assert!(
+                    (streamed[(a, c)] - explicit[(a, c)]).abs() <= 1e-12 * scale,
+                    "({a}, {c}): {} vs {}",
+                    streamed[(a, c)],
+                    explicit[(a, c)]
+                );
+            }
+        }
     }
 
     #[test]

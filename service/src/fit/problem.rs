@@ -136,6 +136,10 @@ pub struct LumpedProblem<'a> {
     block: RefCell<Option<Box<Block>>>,
 }
 
+/// Packed lower-triangle entries of a structure of up to 16 parameters (every structure without a
+/// dispersive core and with at most three sections).
+const SMALL_TRIANGLE: usize = 16 * 17 / 2;
+
 thread_local! {
     /// One block scratch per thread, so the stages and candidates of a fit do not each allocate and
     /// zero 31 kB. Its contents do not matter: a pass writes every entry it reads.
@@ -405,8 +409,17 @@ impl<'a> LumpedProblem<'a> {
         let v = Values::new(self.structure, theta);
         let mut block = self.block.borrow_mut();
         let b = block.as_deref_mut().expect("the block is held until drop");
-        // Lower triangle of JᵀJ, packed row by row.
-        let mut tri = [0.0; MAX_PARAMETERS * (MAX_PARAMETERS + 1) / 2];
+        // Lower triangle of JᵀJ, packed row by row. Most structures have few parameters: only the
+        // entries they use are zeroed (the pass runs on every solver step, the thinned copies' too).
+        let used = n * (n + 1) / 2;
+        let mut small = [0.0; SMALL_TRIANGLE];
+        let mut large;
+        let tri: &mut [f64] = if used <= SMALL_TRIANGLE {
+            &mut small[..used]
+        } else {
+            large = [0.0; MAX_PARAMETERS * (MAX_PARAMETERS + 1) / 2];
+            &mut large[..used]
+        };
         let mut jr = [0.0; MAX_PARAMETERS];
         let mut cost = 0.0;
         let mut r = [0.0; 2 * BLOCK];
@@ -431,7 +444,7 @@ impl<'a> LumpedProblem<'a> {
                     row[BLOCK + m..].fill(0.0);
                 }
             }
-            cost += accumulate::<FMA>(&b.d[..n], &r, &mut tri, &mut jr[..n]);
+            cost += accumulate::<FMA>(&b.d[..n], &r, tri, &mut jr[..n]);
             start = end;
         }
         if let Some((value, sigma)) = d.dcr_prior {
@@ -441,7 +454,7 @@ impl<'a> LumpedProblem<'a> {
             jr[1] += der * res;
             tri[2] += der * der;
         }
-        cost += self.add_walls(theta, &mut tri, &mut jr[..n]);
+        cost += self.add_walls(theta, tri, &mut jr[..n]);
         let mut t = 0;
         for a in 0..n {
             g[a] = jr[a];
