@@ -116,7 +116,19 @@ pub fn q_peak(model: &dyn ImpedanceModel, band_hz: [f64; 2]) -> Option<(f64, f64
     if !valid_band(band_hz) {
         return None;
     }
-    let top = srf(model, band_hz).0.unwrap_or(band_hz[1]);
+    q_peak_below(model, band_hz, srf(model, band_hz).0)
+}
+
+/// [`q_peak`] with the band's SRF already found (`None`: none in the band).
+fn q_peak_below(
+    model: &dyn ImpedanceModel,
+    band_hz: [f64; 2],
+    srf_hz: Option<f64>,
+) -> Option<(f64, f64)> {
+    if !valid_band(band_hz) {
+        return None;
+    }
+    let top = srf_hz.unwrap_or(band_hz[1]);
     let q = |f: f64| {
         let z = model.impedance(f);
         if z.re > 0.0 && z.im > 0.0 && (z.im / z.re).is_finite() {
@@ -270,7 +282,8 @@ pub fn derived_figures(
         (Some(rp), Some(l)) => Some(core_corner_hz(rp, l)),
         _ => None,
     };
-    let qp = q_peak(model, band_hz);
+    // The resonance scan above already found the SRF: not scanned a second time.
+    let qp = q_peak_below(model, band_hz, srf_hz);
     Derived {
         srf_hz,
         srf_above_hz: if srf_hz.is_none() {
