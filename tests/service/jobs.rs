@@ -405,20 +405,13 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
     app.stop().await;
 }
 
-/// The real engine, except that its reader refuses every file after the first one it reads: a stored
-/// sweep that the reader accepted at upload and no longer accepts when the fit runs (a later build
-/// stricter than the one that stored it).
-struct ReaderChangedAfterUpload {
-    reads: std::sync::atomic::AtomicUsize,
-}
+/// The real engine with a reader that refuses every file: a later build, stricter than the one that
+/// accepted and stored a sweep.
+struct StricterReader;
 
-impl Engine for ReaderChangedAfterUpload {
-    fn read_sweep(&self, name: &str, bytes: &[u8], o: &ReadOptions) -> Result<Sweep, SweepError> {
-        if self.reads.fetch_add(1, Ordering::SeqCst) == 0 {
-            CoreEngine.read_sweep(name, bytes, o)
-        } else {
-            Err(SweepError::at(2, "this reader no longer accepts the row"))
-        }
+impl Engine for StricterReader {
+    fn read_sweep(&self, _: &str, _: &[u8], _: &ReadOptions) -> Result<Sweep, SweepError> {
+        Err(SweepError::at(2, "this reader no longer accepts the row"))
     }
     fn fit(&self, s: &Sweep, o: &FitOptions, c: &FitControl) -> Result<FitReport, FitError> {
         CoreEngine.fit(s, o, c)
@@ -427,17 +420,85 @@ impl Engine for ReaderChangedAfterUpload {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_stored_sweep_that_no_longer_reads_fails_as_unreadable_naming_the_line() {
+    // Arrange: a sweep accepted and stored, its fit held back and given back at shutdown.
     let db = TestDatabase::new().await;
     let settings = db.settings();
-    let engine = ReaderChangedAfterUpload {
-        reads: std::sync::atomic::AtomicUsize::new(0),
-    };
-    let app = spawn_app_with(db, settings, Arc::new(engine), None).await;
+    let app = spawn_app_with(
+        db.clone(),
+        settings.clone(),
+        Arc::new(SlowEngine {
+            delay: Duration::from_secs(60),
+        }),
+        None,
+    )
+    .await;
     let id = upload_n(&app, 1).await[0];
+    wait_for_running(&app).await;
+    let tokens = app.tokens();
+    app.stop().await;
+
+    // Act: a later build, whose reader refuses the stored file, runs the job.
+    let app = spawn_app_with(db, settings, Arc::new(StricterReader), Some(tokens)).await;
+
+    // Assert
     let f = app.wait_for_fit(id, Duration::from_secs(60)).await;
     assert_eq!(f["status"], "failed", "{f}");
     assert_eq!(f["error_kind"], "unreadable_sweep", "{f}");
     assert!(f["error"].as_str().unwrap().contains("line 2"), "{f}");
+    app.stop().await;
+}
+
+/// The real engine, counting the files its reader reads.
+struct CountingReader {
+    reads: Arc<std::sync::atomic::AtomicUsize>,
+}
+
+impl Engine for CountingReader {
+    fn read_sweep(&self, name: &str, bytes: &[u8], o: &ReadOptions) -> Result<Sweep, SweepError> {
+        self.reads.fetch_add(1, Ordering::SeqCst);
+        CoreEngine.read_sweep(name, bytes, o)
+    }
+    fn fit(&self, s: &Sweep, o: &FitOptions, c: &FitControl) -> Result<FitReport, FitError> {
+        CoreEngine.fit(s, o, c)
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_uploaded_sweep_is_read_once_and_a_refit_reads_the_stored_file() {
+    let db = TestDatabase::new().await;
+    let settings = db.settings();
+    let reads = Arc::new(std::sync::atomic::AtomicUsize::new(0));
+    let engine = CountingReader {
+        reads: reads.clone(),
+    };
+    let app = spawn_app_with(db, settings, Arc::new(engine), None).await;
+    let ids = upload_n(&app, 3).await;
+    for id in &ids {
+        let f = app.wait_for_fit(*id, Duration::from_secs(60)).await;
+        assert_eq!(f["status"], "succeeded", "{f}");
+    }
+    // Each upload read its file and its worker took that sweep. (A worker that claims a job in the
+    // microseconds between the upload's commit and its hand-off reads the stored file instead, so
+    // one more read is allowed; two in three uploads would be a hand-off that does not work.)
+    let after_uploads = reads.load(Ordering::SeqCst);
+    assert!((3..=4).contains(&after_uploads), "{after_uploads} reads");
+    // A refit has no upload: its worker reads the stored file, and the result is the same fit.
+    let r = app
+        .post_json(
+            &format!("/api/v1/fits/{}/refit", ids[0]),
+            &app.engineer,
+            &json!({"options": {}}),
+        )
+        .await;
+    assert_eq!(r.status(), 202);
+    let again = r.json::<Value>().await.unwrap()["fit_id"].as_i64().unwrap();
+    let f = app.wait_for_fit(again, Duration::from_secs(60)).await;
+    assert_eq!(f["status"], "succeeded", "{f}");
+    assert_eq!(reads.load(Ordering::SeqCst), after_uploads + 1);
+    let first = app
+        .get_json(&format!("/api/v1/fits/{}", ids[0]), &app.reader)
+        .await;
+    assert_eq!(f["report"]["model"], first["report"]["model"]);
     app.stop().await;
 }
 

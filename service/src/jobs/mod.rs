@@ -12,6 +12,7 @@
 //! shutting down leaves its lease to expire; the next claim after expiry re-runs the job.
 
 pub mod engine;
+pub mod handoff;
 
 pub use engine::{CoreEngine, Engine};
 
@@ -106,9 +107,16 @@ impl From<&Settings> for PoolSettings {
 pub struct JobsHandle {
     notify: Arc<Notify>,
     running: Arc<Mutex<HashMap<i64, Arc<AtomicBool>>>>,
+    handoff: Arc<handoff::HandOff>,
 }
 
 impl JobsHandle {
+    /// Leaves the sweep an upload read for its fit `fit_id`, for the worker here that fits it
+    /// ([`handoff`]).
+    pub fn leave_read_sweep(&self, fit_id: i64, sweep: crate::sweep::Sweep) {
+        self.handoff.leave(fit_id, sweep);
+    }
+
     /// New work was queued.
     pub fn wake(&self) {
         self.notify.notify_one();
@@ -139,6 +147,7 @@ impl Pool {
             handle: JobsHandle {
                 notify: Arc::new(Notify::new()),
                 running: Arc::new(Mutex::new(HashMap::new())),
+                handoff: Arc::new(handoff::HandOff::default()),
             },
         }
     }
@@ -340,6 +349,8 @@ impl RunningJob {
             }),
         };
         let follow_up = rational_follow_up(&input);
+        // The sweep its upload read, when it was left here; otherwise the stored files are read.
+        let handed = self.handle.handoff.take(fit_id);
         let span = tracing::Span::current();
         let slots = self.engine_slots.clone();
         let store = self.store.clone();
@@ -351,7 +362,7 @@ impl RunningJob {
             let started = Instant::now();
             let outcome = tokio::task::spawn_blocking(move || {
                 let _entered = span.enter();
-                run_engine(engine.as_ref(), &input, &control)
+                run_engine(engine.as_ref(), &input, handed, &control)
             })
             .await;
             (outcome, started.elapsed())
@@ -660,12 +671,15 @@ pub fn job_key(input: &crate::store::sweeps::JobInput, options_json: &str) -> St
     duplicate_key_with_fixture(options_json, &input.method, input.z0_ohm, fixture.as_ref())
 }
 
+/// Fits a job: `handed` is the sweep its upload read (the same as reading the stored files again),
+/// when the upload left it here.
 fn run_engine(
     engine: &dyn Engine,
     input: &crate::store::sweeps::JobInput,
+    handed: Option<crate::sweep::Sweep>,
     control: &FitControl,
 ) -> Outcome {
-    let sweep = match job_sweep(engine, input) {
+    let sweep = match handed.map_or_else(|| job_sweep(engine, input), Ok) {
         Ok(s) => s,
         Err(text) => return Outcome::Sweep(text),
     };

@@ -14,7 +14,7 @@ use crate::registry::ids::{LotCode, PART_NUMBER_MAX_CHARS, PartNumber};
 use crate::store::jobs::PartRef;
 use crate::store::sha256_hex;
 use crate::store::sweeps::{NamedFile, NewSweep};
-use crate::sweep::{Method, ReadOptions};
+use crate::sweep::{Method, ReadOptions, Sweep};
 use serde::Serialize;
 
 #[derive(Debug, Serialize, utoipa::ToSchema)]
@@ -321,7 +321,7 @@ pub async fn upload(state: &AppState, actor: &str, mut input: UploadInput) -> Op
             .unwrap_or_default();
         let options_key =
             duplicate_key_with_fixture(&options_json, &method_text, z0_ohm, fixture.as_ref());
-        Ok::<NewSweep, InputError>(NewSweep {
+        let new = NewSweep {
             part_number,
             lot,
             sha256: sha256_hex(&file.bytes),
@@ -337,7 +337,8 @@ pub async fn upload(state: &AppState, actor: &str, mut input: UploadInput) -> Op
             fixture_short,
             points: sweep.frequency_hz.len(),
             options_json,
-        })
+        };
+        Ok::<(NewSweep, Sweep), InputError>((new, sweep))
     })
     .await
     .map_err(OpsError::internal)?
@@ -349,9 +350,12 @@ pub async fn upload(state: &AppState, actor: &str, mut input: UploadInput) -> Op
         )
     })?;
     drop(reading);
+    let (new, sweep) = new;
     let bounds = state.backpressure.queue_bounds();
     let up = state.store.upload_bounded(actor, new, Some(bounds)).await?;
     if !up.duplicate {
+        // Left for this process's worker, which then need not read the stored files again.
+        state.jobs.leave_read_sweep(up.fit_id, sweep);
         state.jobs.wake();
     }
     Ok(Accepted {
