@@ -4,6 +4,7 @@
 
 use henrybook::fit::{FitControl, FitError, FitOptions, FitReport};
 use henrybook::jobs::{CoreEngine, Engine};
+use henrybook::settings::Settings;
 use henrybook::sweep::{ReadOptions, Sweep, SweepError};
 use henrybook_tests::service::{
     TestApp, TestDatabase, simple_model, spawn_app_with, synthetic_csv,
@@ -33,6 +34,11 @@ impl Engine for SlowEngine {
         }
         CoreEngine.fit(s, o, c)
     }
+}
+
+/// The service on `db` with [`SlowEngine`] holding each fit back for `delay`.
+async fn spawn_slow(db: TestDatabase, settings: Settings, delay: Duration) -> TestApp {
+    spawn_app_with(db, settings, Arc::new(SlowEngine { delay }), None).await
 }
 
 async fn upload_n(app: &TestApp, n: usize) -> Vec<i64> {
@@ -88,15 +94,7 @@ async fn after_a_crash_queued_and_running_jobs_all_finish_and_none_twice() {
     // Arrange: a slow pool with jobs queued and running, then a crash (no shutdown work at all).
     let db = TestDatabase::new().await;
     let settings = db.settings();
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(3),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_secs(3)).await;
     let ids = upload_n(&app, 6).await;
     wait_for_running(&app).await;
     let before = app.get_json("/api/v1/queue", &app.reader).await;
@@ -133,15 +131,7 @@ async fn a_graceful_shutdown_gives_unfinished_jobs_back_and_the_next_start_runs_
     let db = TestDatabase::new().await;
     let mut settings = db.settings();
     settings.shutdown_grace = Duration::from_millis(200);
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(30),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_secs(30)).await;
     let ids = upload_n(&app, 3).await;
     wait_for_running(&app).await;
     let tokens = app.tokens();
@@ -171,15 +161,7 @@ async fn a_running_fit_can_be_cancelled_and_retried() {
     let db = TestDatabase::new().await;
     let mut settings = db.settings();
     settings.workers = 1;
-    let app = spawn_app_with(
-        db,
-        settings,
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(2),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db, settings, Duration::from_secs(2)).await;
     let ids = upload_n(&app, 2).await;
     wait_for_running(&app).await;
     // The first is running, the second queued: cancel both.
@@ -253,15 +235,7 @@ async fn past_the_queue_bounds_uploads_and_refits_are_refused_with_retry_after()
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 2;
     settings.max_queued_fits = 3;
-    let app = spawn_app_with(
-        db,
-        settings,
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db, settings, Duration::from_secs(60)).await;
     app.create_part("Q-1", json!({})).await;
     app.create_part("Q-2", json!({})).await;
     let mut ids = Vec::new();
@@ -324,15 +298,7 @@ async fn a_part_over_its_bound_is_resource_exhausted_over_grpc() {
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 1;
-    let app = spawn_app_with(
-        db,
-        settings,
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db, settings, Duration::from_secs(60)).await;
     app.create_part("Q-1", json!({})).await;
     assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
     let mut fits = henrybook::grpc::proto::fit_registry_client::FitRegistryClient::new(
@@ -364,15 +330,7 @@ async fn options_stored_out_of_range_fail_their_fit_naming_the_option() {
     let mut settings = db.settings();
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_secs(60)).await;
     let ids = upload_n(&app, 2).await;
     let tokens = app.tokens();
     app.stop().await;
@@ -423,15 +381,7 @@ async fn a_stored_sweep_that_no_longer_reads_fails_as_unreadable_naming_the_line
     // Arrange: a sweep accepted and stored, its fit held back and given back at shutdown.
     let db = TestDatabase::new().await;
     let settings = db.settings();
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_secs(60)).await;
     let id = upload_n(&app, 1).await[0];
     wait_for_running(&app).await;
     let tokens = app.tokens();
@@ -509,15 +459,7 @@ async fn a_part_at_its_bound_is_refused_before_its_file_is_looked_at() {
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 1;
-    let app = spawn_app_with(
-        db,
-        settings,
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db, settings, Duration::from_secs(60)).await;
     app.create_part("Q-1", json!({})).await;
     assert_eq!(upload_one(&app, "Q-1", 0).await.status(), 202);
     // The form names the part first: the part's bound answers (429), not the empty file (422), and
@@ -548,15 +490,7 @@ async fn concurrent_refits_never_take_a_part_past_its_queue_bound() {
     settings.workers = 1;
     settings.shutdown_grace = Duration::from_millis(200);
     settings.max_queued_fits_per_part = 3;
-    let app = spawn_app_with(
-        db,
-        settings,
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(60),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db, settings, Duration::from_secs(60)).await;
     app.create_part("B-1", json!({})).await;
     let r = upload_one(&app, "B-1", 0).await;
     assert_eq!(r.status(), 202);
@@ -616,15 +550,7 @@ async fn finished_jobs_are_pruned_after_the_retention_and_their_fits_answer_as_b
     let db = TestDatabase::new().await;
     let mut settings = db.settings();
     settings.workers = 1;
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_millis(500),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_millis(500)).await;
     let ids = upload_n(&app, 2).await;
     let r = app
         .post_json(
@@ -700,15 +626,7 @@ async fn a_service_dropped_during_its_drain_leaves_no_worker_pool_running_behind
     let db = TestDatabase::new().await;
     let mut settings = db.settings();
     settings.workers = 1;
-    let app = spawn_app_with(
-        db.clone(),
-        settings.clone(),
-        Arc::new(SlowEngine {
-            delay: Duration::from_secs(30),
-        }),
-        None,
-    )
-    .await;
+    let app = spawn_slow(db.clone(), settings.clone(), Duration::from_secs(30)).await;
     let id = upload_n(&app, 1).await[0];
     wait_for_running(&app).await;
     let tokens = app.tokens();

@@ -629,10 +629,33 @@ impl Jacobian for LumpedProblem<'_> {
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
     use crate::fit::lm::normal_equations;
     use crate::model::{LumpedModel, Section, SectionKind};
+
+    /// Asserts that two Gram matrices (JᵀJ-like) agree entry by entry to `tolerance` of the
+    /// reference's diagonal scale √(R_aa·R_cc).
+    pub(crate) fn assert_gram_close(
+        got: &DMatrix<f64>,
+        reference: &DMatrix<f64>,
+        tolerance: f64,
+        label: &str,
+    ) {
+        let n = reference.nrows();
+        assert_eq!(got.shape(), reference.shape(), "{label}");
+        for a in 0..n {
+            for c in 0..n {
+                let scale = (reference[(a, a)] * reference[(c, c)]).sqrt();
+                assert!(
+                    (got[(a, c)] - reference[(a, c)]).abs() <= tolerance * scale,
+                    "{label}[{a},{c}]: {} vs {}",
+                    got[(a, c)],
+                    reference[(a, c)]
+                );
+            }
+        }
+    }
 
     fn choke_with_sections() -> LumpedModel {
         LumpedModel {
@@ -745,16 +768,8 @@ mod tests {
                         ga <= 1e-10 * (jtj_ref[(a, a)] * cost).sqrt(),
                         "{label} g[{a}]"
                     );
-                    for c in 0..n {
-                        let scale = (jtj_ref[(a, a)] * jtj_ref[(c, c)]).sqrt();
-                        assert!(
-                            (jtj[(a, c)] - jtj_ref[(a, c)]).abs() <= 1e-10 * scale,
-                            "{label} JᵀJ[{a},{c}]: {} vs {}",
-                            jtj[(a, c)],
-                            jtj_ref[(a, c)]
-                        );
-                    }
                 }
+                assert_gram_close(&jtj, &jtj_ref, 1e-10, &format!("{label} JᵀJ"));
             }
         }
     }
